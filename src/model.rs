@@ -1,0 +1,238 @@
+//! The validated patch: typed values in SI units, names resolved to indices, stages in
+//! topological order.
+//!
+//! This is the contract between [`crate::patch`] (which builds it from TOML and checks it) and
+//! [`crate::engine`] (which compiles and runs it). Nothing below `patch` sees TOML or raw
+//! strings; every value here is already in volts, ohms, farads, hertz, seconds or kelvin.
+//!
+//! Invariants that [`crate::patch`] guarantees and the engine may rely on:
+//! - `rate > 0`, `length > 0`, `oversample` is one of 1, 2, 4, 8, 16;
+//! - `rails.pos > rails.neg`;
+//! - every [`Node`] index is in range, and a stage refers only to sources or to stages that
+//!   come *earlier* in [`Patch::stages`] (no cycles);
+//! - every resistance is finite and `> 0`, every capacitance finite and `> 0` when present;
+//! - op-amp stages carry `Some(part)`, passive stages `None`.
+
+use crate::parts::OpAmp;
+
+/// A complete, validated patch.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Patch {
+    /// Human-readable title (defaults to the file stem).
+    pub title: String,
+    /// Base (file) sample rate in Hz.
+    pub rate: f64,
+    /// Render length in seconds.
+    pub length: f64,
+    /// Oversampling factor for the stages: 1, 2, 4, 8 or 16.
+    pub oversample: usize,
+    /// Seed for every pseudo-random process (noise sources, tolerance runs).
+    pub seed: u64,
+    /// Whether circuit noise (resistor thermal noise, op-amp noise) is simulated.
+    pub noise: bool,
+    /// Circuit temperature in kelvin (for thermal noise).
+    pub temperature: f64,
+    /// Supply rails.
+    pub rails: Rails,
+    /// Signal sources, in file order.
+    pub sources: Vec<Source>,
+    /// Stages in topological order.
+    pub stages: Vec<Stage>,
+    /// Outputs (what gets rendered and measured), in file order.
+    pub outputs: Vec<Output>,
+}
+
+/// Supply rails in volts.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Rails {
+    /// Positive rail, V.
+    pub pos: f64,
+    /// Negative rail, V (may be 0 for a single supply).
+    pub neg: f64,
+}
+
+/// A reference to a signal node: a source or the output of a stage.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Node {
+    /// Index into [`Patch::sources`].
+    Source(usize),
+    /// Index into [`Patch::stages`].
+    Stage(usize),
+}
+
+/// A signal source (an ideal voltage source: zero output impedance).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Source {
+    /// Name from the patch (`[sources.NAME]`).
+    pub name: String,
+    /// The waveform.
+    pub wave: Wave,
+    /// DC offset added to the waveform, V.
+    pub offset: f64,
+    /// Time the source switches on, s (silent before).
+    pub start: f64,
+    /// Time the source switches off, s (`None`: never).
+    pub stop: Option<f64>,
+}
+
+/// Source waveforms. Levels are peak volts unless stated.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Wave {
+    /// `amp * sin(2 pi freq t + phase)`.
+    Sine {
+        /// Frequency, Hz.
+        freq: f64,
+        /// Peak amplitude, V.
+        amp: f64,
+        /// Start phase, radians.
+        phase: f64,
+    },
+    /// A constant voltage (the offset alone; `level` is added to it).
+    Dc {
+        /// Level, V.
+        level: f64,
+    },
+}
+
+/// One stage of the circuit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Stage {
+    /// Name from the patch (`[stages.NAME]`).
+    pub name: String,
+    /// The op-amp profile for active stages, `None` for passive ones.
+    pub part: Option<OpAmp>,
+    /// Topology and component values.
+    pub kind: StageKind,
+}
+
+/// Stage topologies.
+#[derive(Debug, Clone, PartialEq)]
+pub enum StageKind {
+    /// Inverting summer: `Vout = ref - Rf * sum((Vi - ref) / Ri)` in the ideal case. The
+    /// one-input inverting amplifier (`type = "inverting"`) is this with one input.
+    InvertingSum {
+        /// The inputs, each through its own resistor (and optional series capacitor).
+        inputs: Vec<SumInput>,
+        /// The feedback element.
+        feedback: Feedback,
+        /// Voltage at the non-inverting input, V (0 = ground).
+        reference: f64,
+        /// True when the patch wrote `type = "inverting"` (for display only).
+        single: bool,
+    },
+    /// Non-inverting amplifier: `Vout = Vin * (1 + Rf / Rg)` ideally, Rg to `reference`.
+    NonInverting {
+        /// Input node (drives the non-inverting input).
+        from: Node,
+        /// Feedback resistor, ohm.
+        r_fb: f64,
+        /// Optional capacitor across the feedback resistor, F.
+        c_fb: Option<f64>,
+        /// Resistor from the inverting input to `reference`, ohm.
+        r_g: f64,
+        /// Voltage the gain resistor returns to, V.
+        reference: f64,
+    },
+    /// Voltage follower (unity-gain buffer).
+    Follower {
+        /// Input node.
+        from: Node,
+    },
+    /// Passive potentiometer used as a volume control: track from the input to ground, output
+    /// at the wiper.
+    Attenuator {
+        /// Input node (top of the track).
+        from: Node,
+        /// Track resistance, ohm.
+        pot: f64,
+        /// Taper law.
+        taper: Taper,
+        /// Wiper position, 0 (ground end) to 1 (top).
+        at: f64,
+    },
+}
+
+/// One input of an inverting summer.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SumInput {
+    /// Node driving this input.
+    pub from: Node,
+    /// Input resistor, ohm.
+    pub r: f64,
+    /// Optional series (coupling) capacitor, F.
+    pub c: Option<f64>,
+}
+
+/// Feedback element of an inverting stage: a resistance (fixed, or a pot wired as a variable
+/// resistor) with an optional capacitor across it.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Feedback {
+    /// Effective resistance, ohm (for a pot: track * taper(at), floored at [`POT_END_R`]).
+    pub r: f64,
+    /// Optional capacitor in parallel, F.
+    pub c: Option<f64>,
+    /// The pot this resistance comes from, if any.
+    pub pot: Option<PotSetting>,
+}
+
+/// Smallest resistance a pot presents at the end of its track (wiper and end-terminal
+/// resistance), ohm. Keeps a fully-down feedback pot finite.
+pub const POT_END_R: f64 = 1.0;
+
+/// A pot used as a variable resistor.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct PotSetting {
+    /// Track resistance, ohm.
+    pub track: f64,
+    /// Taper law.
+    pub taper: Taper,
+    /// Position, 0 to 1.
+    pub at: f64,
+}
+
+/// Potentiometer taper laws. See [`crate::parts::taper`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Taper {
+    /// Resistance proportional to rotation.
+    Linear,
+    /// Audio ("log") taper with the given fraction of the track at mid-rotation (e.g. 0.1).
+    Log {
+        /// Fraction of the resistance at mid-rotation, 0 < mid < 0.5.
+        mid: f64,
+    },
+    /// Reverse-audio taper: the mirror image of [`Taper::Log`].
+    AntiLog {
+        /// Fraction of the resistance at mid-rotation, 0.5 < mid < 1.
+        mid: f64,
+    },
+}
+
+/// An output: a node seen through a series resistor into a load (the next module's input).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Output {
+    /// Name from the patch (`[outputs.NAME]`).
+    pub name: String,
+    /// Node that drives this output.
+    pub from: Node,
+    /// Series (output) resistor, ohm (0 allowed).
+    pub series: f64,
+    /// Load resistance to ground, ohm; `None` for an open (unloaded) output.
+    pub load: Option<f64>,
+    /// File name override for the render (without folder), if given.
+    pub file: Option<String>,
+}
+
+impl Patch {
+    /// Name of a node, for messages.
+    pub fn node_name(&self, node: Node) -> &str {
+        match node {
+            Node::Source(i) => &self.sources[i].name,
+            Node::Stage(i) => &self.stages[i].name,
+        }
+    }
+
+    /// Number of base-rate samples the patch renders.
+    pub fn frames(&self) -> usize {
+        (self.length * self.rate).round().max(0.0) as usize
+    }
+}
