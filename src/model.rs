@@ -34,6 +34,9 @@ pub struct Patch {
     pub temperature: f64,
     /// Supply rails.
     pub rails: Rails,
+    /// Render calibration: the voltage that maps to digital full scale in WAV files, V peak.
+    /// Default: the larger rail magnitude, so a rail-to-rail swing never clips the file.
+    pub full_scale: f64,
     /// Signal sources, in file order.
     pub sources: Vec<Source>,
     /// Stages in topological order.
@@ -73,9 +76,12 @@ pub struct Source {
     pub start: f64,
     /// Time the source switches off, s (`None`: never).
     pub stop: Option<f64>,
+    /// Optional gating envelope.
+    pub envelope: Option<Envelope>,
 }
 
-/// Source waveforms. Levels are peak volts unless stated.
+/// Source waveforms. Levels are peak volts unless stated (the patch layer converts Vpp, Vrms,
+/// dBu and dBV to these using the waveform's own crest factor).
 #[derive(Debug, Clone, PartialEq)]
 pub enum Wave {
     /// `amp * sin(2 pi freq t + phase)`.
@@ -87,11 +93,132 @@ pub enum Wave {
         /// Start phase, radians.
         phase: f64,
     },
-    /// A constant voltage (the offset alone; `level` is added to it).
+    /// Square wave (+amp / -amp), 50 % duty.
+    Square {
+        /// Frequency, Hz.
+        freq: f64,
+        /// Peak amplitude, V.
+        amp: f64,
+        /// Start phase, radians.
+        phase: f64,
+        /// `true`: naive (aliasing, analog-style corners at the sample grid); `false`:
+        /// band-limited.
+        raw: bool,
+    },
+    /// Triangle wave.
+    Triangle {
+        /// Frequency, Hz.
+        freq: f64,
+        /// Peak amplitude, V.
+        amp: f64,
+        /// Start phase, radians.
+        phase: f64,
+        /// Naive instead of band-limited.
+        raw: bool,
+    },
+    /// Rising sawtooth.
+    Saw {
+        /// Frequency, Hz.
+        freq: f64,
+        /// Peak amplitude, V.
+        amp: f64,
+        /// Start phase, radians.
+        phase: f64,
+        /// Naive instead of band-limited.
+        raw: bool,
+    },
+    /// Pulse wave with the given duty cycle (high for `width` of each period), zero mean not
+    /// enforced: it swings between +amp and -amp.
+    Pulse {
+        /// Frequency, Hz.
+        freq: f64,
+        /// Peak amplitude, V.
+        amp: f64,
+        /// Start phase, radians.
+        phase: f64,
+        /// Duty cycle, 0 < width < 1.
+        width: f64,
+        /// Naive instead of band-limited.
+        raw: bool,
+    },
+    /// Sum of sines.
+    Multitone {
+        /// The tones.
+        tones: Vec<Tone>,
+    },
+    /// Logarithmic (exponential) sine sweep from `from` to `to` over `duration`, then holds
+    /// at `to`.
+    Sweep {
+        /// Start frequency, Hz.
+        from: f64,
+        /// End frequency, Hz.
+        to: f64,
+        /// Peak amplitude, V.
+        amp: f64,
+        /// Sweep time, s.
+        duration: f64,
+    },
+    /// Gaussian noise, seeded from the patch seed and the source name.
+    Noise {
+        /// Pink (-3 dB/octave) instead of white.
+        pink: bool,
+        /// RMS level, V (over the generator's full band).
+        rms: f64,
+    },
+    /// A constant voltage.
     Dc {
         /// Level, V.
         level: f64,
     },
+    /// Control-voltage steps: each level held for `hold`, cycling.
+    Steps {
+        /// Levels, V.
+        levels: Vec<f64>,
+        /// Hold time per level, s.
+        hold: f64,
+    },
+    /// Linear ramp from `from` to `to` over `duration`, then holds at `to`.
+    Ramp {
+        /// Start level, V.
+        from: f64,
+        /// End level, V.
+        to: f64,
+        /// Ramp time, s.
+        duration: f64,
+    },
+    /// A WAV file, resampled to the patch rate.
+    File {
+        /// Absolute (resolved) path.
+        path: std::path::PathBuf,
+        /// Channel to use (0-based); `None` mixes all channels.
+        channel: Option<usize>,
+        /// Voltage that digital full scale maps to, V peak.
+        full_scale: f64,
+        /// Loop the file to the patch length (else pad with silence).
+        looped: bool,
+    },
+}
+
+/// One component of a [`Wave::Multitone`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Tone {
+    /// Frequency, Hz.
+    pub freq: f64,
+    /// Peak amplitude, V.
+    pub amp: f64,
+    /// Phase, radians.
+    pub phase: f64,
+}
+
+/// A retriggered attack/decay envelope that multiplies a source (a percussive voice).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Envelope {
+    /// Linear rise time from 0 to 1, s.
+    pub attack: f64,
+    /// Exponential decay time constant after the peak, s.
+    pub decay: f64,
+    /// Retrigger period, s (`None`: one shot at the source's start).
+    pub every: Option<f64>,
 }
 
 /// One stage of the circuit.
