@@ -1,0 +1,106 @@
+//! End-to-end tests of the `railsong` binary: exit codes, one-line errors, the shipped patches.
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+fn railsong(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_railsong"))
+        .args(args)
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .output()
+        .expect("binary runs")
+}
+
+fn files(dir: &str, ext: &str) -> Vec<PathBuf> {
+    let mut v: Vec<PathBuf> = std::fs::read_dir(Path::new(env!("CARGO_MANIFEST_DIR")).join(dir))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|e| e == ext))
+        .collect();
+    v.sort();
+    v
+}
+
+#[test]
+fn every_shipped_patch_checks_cleanly() {
+    let patches = files("patches", "toml");
+    assert!(patches.len() >= 5);
+    for p in patches {
+        let out = railsong(&["check", p.to_str().unwrap()]);
+        assert!(
+            out.status.success(),
+            "{}: {}",
+            p.display(),
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+}
+
+// The catalogue of malformed patches: each file's first line is `# expect: <text>`.
+#[test]
+fn bad_patches_exit_2_with_one_line_naming_the_file() {
+    let bad = files("tests/bad", "toml");
+    assert!(bad.len() >= 15, "catalogue has {} files", bad.len());
+    for p in bad {
+        let text = std::fs::read_to_string(&p).unwrap();
+        let expect = text
+            .lines()
+            .next()
+            .and_then(|l| l.strip_prefix("# expect:"))
+            .map(str::trim)
+            .unwrap_or_else(|| panic!("{} lacks an expect line", p.display()));
+        let out = railsong(&["check", p.to_str().unwrap()]);
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{}: {err}", p.display());
+        assert_eq!(err.trim_end().lines().count(), 1, "{}: {err}", p.display());
+        assert!(err.contains(expect), "{}: {err}", p.display());
+        let stem = p.file_name().unwrap().to_str().unwrap();
+        assert!(err.contains(stem), "{}: error does not name the file: {err}", p.display());
+        assert!(!err.contains("panicked"), "{err}");
+    }
+}
+
+#[test]
+fn missing_file_and_bad_flags_exit_2() {
+    let out = railsong(&["check", "no/such/patch.toml"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("no/such/patch.toml"));
+    let out = railsong(&["check"]);
+    assert_eq!(out.status.code(), Some(2));
+    let out = railsong(&["frobnicate"]);
+    assert_eq!(out.status.code(), Some(2));
+}
+
+// Common practice: four 10 Vpp inputs into a unity summer exceed +/-12 V rails.
+#[test]
+fn check_reports_the_hot_mix_and_set_overrides() {
+    let out = railsong(&["check", "patches/hot-inputs.toml"]);
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(text.contains("[clip] stages.mix"), "{text}");
+    let out = railsong(&["check", "patches/clean-mix.toml"]);
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(!text.contains("[clip]"), "{text}");
+    // Inverting gain -Rf/Rin (textbook): 10k feedback makes each input -0.1 and stops clipping.
+    let out = railsong(&[
+        "check",
+        "patches/hot-inputs.toml",
+        "--set",
+        "stages.mix.feedback.r=10k",
+    ]);
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success());
+    assert!(!text.contains("[clip] stages.mix"), "{text}");
+    assert!(text.contains("-0.100x4"), "{text}");
+}
+
+#[test]
+fn parts_lists_every_builtin_profile() {
+    let out = railsong(&["parts"]);
+    assert!(out.status.success());
+    let text = String::from_utf8_lossy(&out.stdout);
+    for name in railsong::parts::builtin_names() {
+        assert!(text.contains(name), "{name} missing");
+    }
+    let out = railsong(&["parts", "patches/own-part.toml"]);
+    assert!(String::from_utf8_lossy(&out.stdout).contains("line-driver (patch)"));
+}
