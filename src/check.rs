@@ -153,7 +153,11 @@ pub fn source_span(wave: &Wave, offset: f64, rate: f64) -> Span {
             slope: 0.0,
         },
         Wave::Steps { levels, .. } => {
-            let lo = levels.iter().cloned().fold(f64::INFINITY, f64::min).min(0.0);
+            let lo = levels
+                .iter()
+                .cloned()
+                .fold(f64::INFINITY, f64::min)
+                .min(0.0);
             let hi = levels
                 .iter()
                 .cloned()
@@ -259,7 +263,14 @@ pub fn check(patch: &Patch) -> Report {
                     dc: *reference,
                     slope: 0.0,
                 });
-                (if *single { "inverting" } else { "inverting-sum" }, total)
+                (
+                    if *single {
+                        "inverting"
+                    } else {
+                        "inverting-sum"
+                    },
+                    total,
+                )
             }
             StageKind::NonInverting {
                 from,
@@ -430,14 +441,22 @@ pub fn check(patch: &Patch) -> Report {
             bandwidth,
             span,
             swing,
-            load: if stage.part.is_some() { loads[si] } else { None },
+            load: if stage.part.is_some() {
+                loads[si]
+            } else {
+                None
+            },
         });
         spans.push(out_span);
         thevenin.push(rth);
     }
     for out in &patch.outputs {
         if out.series > 0.0 {
-            standard_value(&mut warnings, &format!("outputs.{}.series", out.name), out.series);
+            standard_value(
+                &mut warnings,
+                &format!("outputs.{}.series", out.name),
+                out.series,
+            );
         }
     }
     Report { stages, warnings }
@@ -578,7 +597,10 @@ mod tests {
         assert!((r.stages[0].noise_gain.unwrap() - 5.0).abs() < 1e-12);
         assert!(r.warnings.iter().any(|w| w.kind == WarningKind::Clipping));
         // one quiet input does not clip
-        let p = patch(vec![sine("a", 2.0)], vec![summer(1, "jfet-general", 100e3, 100e3)]);
+        let p = patch(
+            vec![sine("a", 2.0)],
+            vec![summer(1, "jfet-general", 100e3, 100e3)],
+        );
         assert!(!check(&p)
             .warnings
             .iter()
@@ -643,11 +665,17 @@ mod tests {
             phase: 0.0,
         };
         let p = patch(vec![s], vec![summer(1, "single-supply", 10e3, 100e3)]);
-        assert!(check(&p).warnings.iter().any(|w| w.kind == WarningKind::Slew));
+        assert!(check(&p)
+            .warnings
+            .iter()
+            .any(|w| w.kind == WarningKind::Slew));
         let p = patch(
             vec![sine("a", 1.0)],
             vec![summer(1, "single-supply", 10e3, 100e3)],
         );
-        assert!(!check(&p).warnings.iter().any(|w| w.kind == WarningKind::Slew));
+        assert!(!check(&p)
+            .warnings
+            .iter()
+            .any(|w| w.kind == WarningKind::Slew));
     }
 }

@@ -83,9 +83,7 @@ pub fn run() -> Result<(), Failure> {
                 .unwrap_or("bad command line")
                 .trim_start_matches("error: ")
                 .to_string();
-            return Err(Failure::bad_input(format!(
-                "{first} (see railsong --help)"
-            )));
+            return Err(Failure::bad_input(format!("{first} (see railsong --help)")));
         }
     };
     match cli.command {
@@ -178,7 +176,9 @@ fn cmd_parts(path: Option<&Path>, sets: &[String]) -> Result<(), Failure> {
             }
         }
     }
-    println!("op-amp profiles (built-in figures are typical of their class, not of any one product)");
+    println!(
+        "op-amp profiles (built-in figures are typical of their class, not of any one product)"
+    );
     println!();
     for (p, origin) in &parts {
         println!("{} ({origin}): {}", p.name, p.about);
@@ -195,8 +195,7 @@ fn cmd_parts(path: Option<&Path>, sets: &[String]) -> Result<(), Failure> {
             "    GBW {}  slew {}/us  A0 {}  swing short of rails +{} / -{}  knee {}",
             fmt_eng(p.gbw, "Hz"),
             fmt_eng(p.slew * 1e-6, "V"),
-            p.a0
-                .map_or("infinite".into(), |a| format!("{:.0} dB", 20.0 * a.log10())),
+            p.a0.map_or("infinite".into(), |a| format!("{:.0} dB", 20.0 * a.log10())),
             fmt_eng(p.drop_pos, "V"),
             fmt_eng(p.drop_neg, "V"),
             fmt_eng(p.knee, "V"),

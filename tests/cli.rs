@@ -55,7 +55,11 @@ fn bad_patches_exit_2_with_one_line_naming_the_file() {
         assert_eq!(err.trim_end().lines().count(), 1, "{}: {err}", p.display());
         assert!(err.contains(expect), "{}: {err}", p.display());
         let stem = p.file_name().unwrap().to_str().unwrap();
-        assert!(err.contains(stem), "{}: error does not name the file: {err}", p.display());
+        assert!(
+            err.contains(stem),
+            "{}: error does not name the file: {err}",
+            p.display()
+        );
         assert!(!err.contains("panicked"), "{err}");
     }
 }

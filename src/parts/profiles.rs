@@ -64,7 +64,8 @@ pub fn builtin(name: &str) -> Option<OpAmp> {
     let p = match name {
         "ideal" => OpAmp {
             name: name.into(),
-            about: "textbook op-amp: huge bandwidth and slew, output to the rails, no limits".into(),
+            about: "textbook op-amp: huge bandwidth and slew, output to the rails, no limits"
+                .into(),
             gbw: 1e12,
             slew: 1e12,
             a0: None,
@@ -84,7 +85,8 @@ pub fn builtin(name: &str) -> Option<OpAmp> {
         },
         "jfet-general" => OpAmp {
             name: name.into(),
-            about: "JFET-input general purpose; input range stops ~4 V above V-, phase reversal".into(),
+            about: "JFET-input general purpose; input range stops ~4 V above V-, phase reversal"
+                .into(),
             gbw: 3e6,
             slew: 13e6,
             a0: Some(2e5),

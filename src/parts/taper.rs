@@ -49,7 +49,11 @@ mod tests {
 
     #[test]
     fn tapers_are_monotone() {
-        for t in [Taper::Linear, Taper::Log { mid: 0.1 }, Taper::AntiLog { mid: 0.85 }] {
+        for t in [
+            Taper::Linear,
+            Taper::Log { mid: 0.1 },
+            Taper::AntiLog { mid: 0.85 },
+        ] {
             let mut last = -1.0;
             for i in 0..=100 {
                 let y = fraction(t, i as f64 / 100.0);
