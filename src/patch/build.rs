@@ -292,7 +292,7 @@ fn build_parts(root: &Tab) -> R<HashMap<String, OpAmp>> {
                 let mut cycle: Vec<String> = chain[k..].to_vec();
                 cycle.push(base.clone());
                 return Err(pt.ctx.err(
-                    &format!("parts.{cur}.based_on"),
+                    &format!("parts.{}.based_on", chain[k]),
                     Problem::PartCycle { cycle },
                 ));
             }
@@ -757,7 +757,18 @@ fn reference(t: &Tab, rails: Rails) -> R<f64> {
 fn pot_setting(t: &Tab, key: &str) -> R<PotSetting> {
     let track = res(t, key)?;
     let taper = t.word("taper", schema::TAPERS)?.unwrap_or("linear");
-    let at = t.q_req("at", Quantity::Percent, Bounds::closed(0.0, 1.0))?;
+    let at = t
+        .q_req("at", Quantity::Percent, Bounds::closed(0.0, 1.0))
+        .map_err(|e| match (e.problem(), t.get("at")) {
+            (Some(Problem::OutOfRange { .. }), Some(v)) => t.err(
+                "at",
+                Problem::OutOfRange {
+                    expected: "a wiper position from 0 to 1 (or 0% to 100%)".into(),
+                    got: super::read::raw(v),
+                },
+            ),
+            _ => e,
+        })?;
     let taper = match taper {
         "log" => Taper::Log {
             mid: t

@@ -170,7 +170,13 @@ fn parse_toml(text: &str, origin: &str) -> Result<toml::Table, PatchError> {
     toml::from_str::<toml::Table>(text).map_err(|e| PatchError::Syntax {
         file: origin.to_string(),
         line: e.span().map(|s| LineStarts::new(text).line(s.start)),
-        message: e.message().trim().to_string(),
+        message: e
+            .message()
+            .lines()
+            .map(str::trim)
+            .filter(|l| !l.is_empty())
+            .collect::<Vec<_>>()
+            .join("; "),
     })
 }
 

@@ -14,15 +14,22 @@ pub(crate) struct Ctx<'a> {
 impl Ctx<'_> {
     /// An error at `path`.
     pub(crate) fn err(&self, path: &str, problem: Problem) -> PatchError {
+        self.err_at(path, path, problem)
+    }
+
+    /// An error shown at `path` with the line of `line_path` (a key inside it).
+    pub(crate) fn err_at(&self, path: &str, line_path: &str, problem: Problem) -> PatchError {
         let from_set = self.overridden.iter().any(|o| {
-            path == o || path.starts_with(&format!("{o}.")) || path.starts_with(&format!("{o}["))
+            line_path == o
+                || line_path.starts_with(&format!("{o}."))
+                || line_path.starts_with(&format!("{o}["))
         });
         PatchError::Invalid {
             file: self.file.to_string(),
             line: if from_set {
                 None
             } else {
-                self.lines.line_of(path)
+                self.lines.line_of(line_path)
             },
             from_set,
             path: path.to_string(),
@@ -51,6 +58,9 @@ pub(crate) fn type_name(v: &toml::Value) -> String {
 pub(crate) fn raw(v: &toml::Value) -> String {
     match v {
         toml::Value::String(s) => format!("'{s}'"),
+        toml::Value::Float(f) if f.is_finite() && *f != 0.0 && !(1e-3..1e6).contains(&f.abs()) => {
+            format!("{f:e}")
+        }
         other => other.to_string(),
     }
 }
@@ -110,9 +120,10 @@ impl Bounds {
 /// Print a value of a quantity for range messages.
 pub(crate) fn show(q: Quantity, x: f64) -> String {
     match q {
-        Quantity::Resistance => units::fmt_resistance(x),
+        Quantity::Resistance => units::fmt_eng(x, "ohm"),
         Quantity::Capacitance => units::fmt_eng(x, "F"),
         Quantity::Frequency => units::fmt_eng(x, "Hz"),
+        Quantity::Time if x >= 1.0 => format!("{x} s"),
         Quantity::Time => units::fmt_eng(x, "s"),
         Quantity::Voltage | Quantity::Level => units::fmt_eng(x, "V"),
         Quantity::SlewRate => units::fmt_eng(x, "V/s"),
@@ -253,8 +264,9 @@ impl<'a> Tab<'a> {
                     },
                 ));
             }
-            return Err(self.err(
-                k,
+            return Err(self.ctx.err_at(
+                &self.path,
+                &self.key_path(k),
                 Problem::UnknownKey {
                     key: k.clone(),
                     suggestion: suggest(k, allowed.iter().copied()),

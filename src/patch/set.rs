@@ -163,7 +163,7 @@ pub(crate) fn apply_canonical(
                             Ok(here)
                         }
                         Keys::Listed(l) => Err(invalid(
-                            &here,
+                            &canon,
                             Problem::UnknownKey {
                                 suggestion: suggest(&key, l.iter().copied()),
                                 key,
