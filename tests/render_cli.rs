@@ -1,0 +1,136 @@
+//! End-to-end tests of `render`, `demo` and `measure` through the binary.
+
+use std::path::Path;
+use std::process::{Command, Output};
+
+fn railsong(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_railsong"))
+        .args(args)
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .output()
+        .expect("binary runs")
+}
+
+fn read_wav(path: &Path) -> (hound::WavSpec, Vec<f64>) {
+    let mut r = hound::WavReader::open(path).unwrap();
+    let spec = r.spec();
+    let scale = (1i64 << (spec.bits_per_sample - 1)) as f64;
+    let v = match spec.sample_format {
+        hound::SampleFormat::Float => r.samples::<f32>().map(|s| s.unwrap() as f64).collect(),
+        hound::SampleFormat::Int => r
+            .samples::<i32>()
+            .map(|s| s.unwrap() as f64 / scale)
+            .collect(),
+    };
+    (spec, v)
+}
+
+#[test]
+fn demo_writes_its_files_and_says_what_to_listen_for() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = railsong(&["demo", "--out", dir.path().to_str().unwrap()]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(text.contains("listen"), "{text}");
+    for name in ["clean", "rails", "reversal"] {
+        let wav = dir.path().join(format!("{name}.wav"));
+        assert!(wav.exists(), "{} missing", wav.display());
+        let (spec, s) = read_wav(&wav);
+        assert_eq!(spec.sample_rate, 48000);
+        assert_eq!(s.len(), 6 * 48000);
+        // Default calibration: the larger rail is full scale, so nothing clips the file.
+        assert!(s.iter().all(|x| x.abs() < 1.0));
+        assert!(dir.path().join(format!("{name}.json")).exists());
+    }
+    // no temporary files left behind
+    for e in std::fs::read_dir(dir.path()).unwrap() {
+        let n = e.unwrap().file_name().into_string().unwrap();
+        assert!(!n.contains(".tmp"), "left over {n}");
+    }
+}
+
+#[test]
+fn render_refuses_to_overwrite_a_file_it_did_not_write() {
+    let dir = tempfile::tempdir().unwrap();
+    let foreign = dir.path().join("main.wav");
+    std::fs::write(&foreign, b"my own recording").unwrap();
+    let d = dir.path().to_str().unwrap();
+    let out = railsong(&["render", "patches/clean-mix.toml", "--out", d]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("--force"));
+    assert_eq!(std::fs::read(&foreign).unwrap(), b"my own recording");
+    let out = railsong(&["render", "patches/clean-mix.toml", "--out", d, "--force"]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    // and a second render over its own files needs no flag
+    let out = railsong(&["render", "patches/clean-mix.toml", "--out", d]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}
+
+const KEYS: [&str; 14] = [
+    "fundamental_hz",
+    "thd_percent",
+    "thd_db",
+    "thdn_db",
+    "sinad_db",
+    "enob",
+    "snr_db",
+    "peak_v",
+    "rms_v",
+    "dc_v",
+    "headroom_pos_db",
+    "headroom_neg_db",
+    "harmonics_dbc",
+    "events",
+];
+
+#[test]
+fn measure_json_has_every_key_for_every_patch() {
+    let mut n = 0;
+    for e in std::fs::read_dir(Path::new(env!("CARGO_MANIFEST_DIR")).join("patches")).unwrap() {
+        let p = e.unwrap().path();
+        if p.extension().is_none_or(|x| x != "toml") {
+            continue;
+        }
+        n += 1;
+        let out = railsong(&[
+            "measure",
+            p.to_str().unwrap(),
+            "--json",
+            "--set",
+            "patch.length=0.5 s",
+        ]);
+        assert!(
+            out.status.success(),
+            "{}: {}",
+            p.display(),
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let v: serde_json::Value = serde_json::from_slice(&out.stdout)
+            .unwrap_or_else(|e| panic!("{}: not JSON: {e}", p.display()));
+        let outs = v["outputs"].as_object().expect("outputs object");
+        assert!(!outs.is_empty());
+        for (name, o) in outs {
+            for k in KEYS {
+                assert!(
+                    o.get(k).is_some(),
+                    "{}: outputs.{name} lacks {k}",
+                    p.display()
+                );
+            }
+        }
+        assert!(v["settings"].is_object());
+    }
+    assert!(n >= 5);
+}
