@@ -476,3 +476,47 @@ fn variants_apply_over_the_base() {
         "{err}"
     );
 }
+
+/// A long chain written backwards sorts into signal order, and a long chain of derived parts
+/// resolves, without deep recursion (thousands of stages).
+#[test]
+fn long_chains_of_stages_and_parts() {
+    let n = 3000;
+    let mut text =
+        String::from("[rails]\npos = 12\nneg = -12\n[sources.s]\nwave = \"dc\"\nlevel = 1\n");
+    for i in (0..n).rev() {
+        let from = if i == 0 {
+            "s".to_string()
+        } else {
+            format!("f{}", i - 1)
+        };
+        text.push_str(&format!(
+            "[stages.f{i}]\ntype = \"follower\"\npart = \"p{i}\"\nfrom = \"{from}\"\n"
+        ));
+        let base = if i == 0 {
+            "ideal".to_string()
+        } else {
+            format!("p{}", i - 1)
+        };
+        text.push_str(&format!("[parts.p{i}]\nbased_on = \"{base}\"\n"));
+    }
+    text.push_str(&format!("[outputs.o]\nfrom = \"f{}\"\n", n - 1));
+    let p = railsong::patch::parse_str(&text, "chain.toml", Path::new("."), &[]).unwrap();
+    assert_topological(&p);
+    for (i, s) in p.stages.iter().enumerate() {
+        assert_eq!(s.name, format!("f{i}"));
+        assert_eq!(s.part.as_ref().unwrap().name, format!("p{i}"));
+    }
+    assert_eq!(p.outputs[0].from, Node::Stage(n - 1));
+    // Closing the loop is reported as a cycle.
+    let set = vec!["stages.f0.from=f2999".to_string()];
+    let e = railsong::patch::parse_str(&text, "chain.toml", Path::new("."), &set).unwrap_err();
+    let m = e.to_string();
+    // The loop is printed in signal order from the stage written first in the file.
+    assert!(
+        m.contains("stages.f2999: cycle through stages f2999 -> f0 -> f1 -> "),
+        "{}",
+        &m[..200.min(m.len())]
+    );
+    assert!(m.ends_with("f2998 -> f2999"));
+}

@@ -706,17 +706,21 @@ struct StageEnv<'a> {
 }
 
 fn part(t: &Tab, parts: &HashMap<String, OpAmp>) -> R<OpAmp> {
-    let mut valid: Vec<String> = parts::builtin_names()
-        .iter()
-        .map(|s| s.to_string())
-        .collect();
-    let mut user: Vec<&String> = parts.keys().collect();
-    user.sort();
-    valid.extend(user.into_iter().cloned());
+    // The list of valid names is only built for a message.
+    let valid = || {
+        let mut v: Vec<String> = parts::builtin_names()
+            .iter()
+            .map(|s| s.to_string())
+            .collect();
+        let mut user: Vec<&String> = parts.keys().collect();
+        user.sort();
+        v.extend(user.into_iter().cloned());
+        v
+    };
     let Some(name) = t.str_opt("part")? else {
         return Err(t.err_here(Problem::Missing {
             key: "part".into(),
-            expected: format!("an op-amp: {} or a [parts.NAME]", valid.join(", ")),
+            expected: format!("an op-amp: {} or a [parts.NAME]", valid().join(", ")),
         }));
     };
     if let Some(p) = parts.get(name) {
@@ -725,6 +729,7 @@ fn part(t: &Tab, parts: &HashMap<String, OpAmp>) -> R<OpAmp> {
     if let Some(p) = parts::builtin(name) {
         return Ok(p);
     }
+    let valid = valid();
     Err(t.err(
         "part",
         Problem::UnknownName {
