@@ -281,6 +281,7 @@ fn aliased_harmonics_follow_the_stated_rule() {
     )
     .unwrap();
     assert_eq!(stop.skipped_orders, vec![22, 23, 24, 25]);
+    assert_eq!(stop.harmonics.len(), 20); // orders 2..=21
     assert!((stop.thd_db + 60.0).abs() < 0.01);
     let fold = thd_from_spectrum(&spec, f0, Harmonics::UpTo(22), AliasRule::Fold, true).unwrap();
     let h22 = fold.harmonics.iter().find(|h| h.order == 22).unwrap();

@@ -77,9 +77,10 @@ impl Bandwidth {
         match self {
             Bandwidth::Full => Ok([0.0, nyq]),
             Bandwidth::Band { lo, hi } => {
+                let finite = lo.is_finite() && hi.is_finite();
                 let lo = lo.max(0.0);
                 let hi = hi.min(nyq);
-                if lo.is_finite() && hi.is_finite() && lo < hi {
+                if finite && lo < hi {
                     Ok([lo, hi])
                 } else {
                     Err(AnalysisError::BadSetting {
@@ -122,7 +123,7 @@ pub struct CapturePlan {
 impl CapturePlan {
     /// The captured slice (the tail of `samples`).
     pub fn slice<'a>(&self, samples: &'a [f64]) -> &'a [f64] {
-        &samples[samples.len() - self.len..]
+        &samples[samples.len().saturating_sub(self.len)..]
     }
 }
 
@@ -203,7 +204,9 @@ pub struct ThdResult {
     pub thd_db: f64,
     /// Harmonics counted, in order.
     pub harmonics: Vec<HarmonicLevel>,
-    /// Orders skipped (above Nyquist, or colliding when folded).
+    /// Orders skipped: under [`AliasRule::StopAtNyquist`] every order from the first one
+    /// above Nyquist to the last asked for; under [`AliasRule::Fold`] the folded orders that
+    /// would collide with DC, the fundamental or a harmonic already counted.
     pub skipped_orders: Vec<usize>,
     /// Window used.
     pub window: Window,
@@ -231,6 +234,19 @@ pub fn thd_from_spectrum(
 ) -> Result<ThdResult, AnalysisError> {
     check_freq("fundamental frequency", fundamental_hz, spec.rate)?;
     let nyq = spec.nyquist();
+    let lobe_bins = spec.window.lobe_half_width() as f64;
+    if fundamental_hz < lobe_bins * spec.bin_hz {
+        return Err(AnalysisError::BadSetting {
+            what: "fundamental frequency",
+            expected: format!(
+                "at least {} Hz (the {} window's lobe half width at {} Hz per bin) so the \
+                 fundamental is apart from DC; got {fundamental_hz} Hz: use a longer record",
+                lobe_bins * spec.bin_hz,
+                spec.window.name(),
+                spec.bin_hz
+            ),
+        });
+    }
     let f1 = spec.lobe_amplitude(fundamental_hz);
     if f1 <= 0.0 {
         return Err(AnalysisError::NoTone { what: "samples" });
@@ -245,6 +261,8 @@ pub fn thd_from_spectrum(
         }
         Harmonics::Nyquist => (nyq / fundamental_hz).floor() as usize,
     };
+    // Beyond N orders the folded positions only repeat: examine at most N orders.
+    let last = last.min(spec.fft_len.max(2));
     let lobe = spec.window.lobe_half_width() as f64 * spec.bin_hz;
     let mut taken: Vec<f64> = vec![0.0, fundamental_hz];
     let mut out = Vec::new();
@@ -257,8 +275,8 @@ pub fn thd_from_spectrum(
         } else {
             match alias {
                 AliasRule::StopAtNyquist => {
-                    skipped.push(h);
-                    continue;
+                    skipped.extend(h..=last);
+                    break;
                 }
                 AliasRule::Fold => {
                     let r = f.rem_euclid(spec.rate);

@@ -18,8 +18,10 @@
 //! capture is then coherent and analysed with the rectangular window, where every bin is a
 //! harmonic, an alias or noise and the numerical floor is near -290 dB. Otherwise the whole
 //! record is analysed with the 7-term window (floor about -180 dB).
+//! [`spectrum::coherent_frequency`] gives a generator the nearest coherent tone (`M` odd and
+//! coprime with `N`).
 //!
-//! # Figures ([`distortion`], [`levels`])
+//! # Figures ([`distortion`], [`levels`](mod@levels))
 //! - **THD** (`THD_F`) = `sqrt(sum_{h=2..N} A_h^2) / A_1`, `N` = 10 by default or every
 //!   harmonic below Nyquist; harmonics above Nyquist are not counted by default
 //!   ([`AliasRule`]). Also each harmonic in dBc.
@@ -44,6 +46,23 @@
 //!
 //! [`measure_output`] gathers all that apply for one output into [`OutputFigures`], a serde
 //! struct where a figure that does not apply is `None` (JSON `null`), never 0.
+//!
+//! ```
+//! use railsong::analysis::{measure_output, MeasureContext, TestSignal};
+//! let rate = 48_000.0;
+//! // 997 Hz, 1 V peak, with 1 % third harmonic: coherent in 48000 samples
+//! let x: Vec<f64> = (0..48_000)
+//!     .map(|n| {
+//!         let p = 2.0 * std::f64::consts::PI * 997.0 * n as f64 / rate;
+//!         p.sin() + 0.01 * (3.0 * p).sin()
+//!     })
+//!     .collect();
+//! let ctx = MeasureContext { test: TestSignal::Tone(997.0), ..MeasureContext::default() };
+//! let fig = measure_output(&x, rate, &ctx);
+//! assert!((fig.thd_percent.unwrap() - 1.0).abs() < 1e-9);
+//! assert_eq!(fig.window.as_deref(), Some("rectangular"));
+//! assert!(fig.imd_smpte_percent.is_none()); // does not apply: JSON null
+//! ```
 
 pub mod distortion;
 pub mod levels;
@@ -62,7 +81,7 @@ pub use distortion::{
     SnrResult, ThdResult, ThdnResult, TwinToneImd,
 };
 pub use levels::{headroom_db, levels, Levels, SwingLimits};
-pub use spectrum::{choose_capture, Capture, Spectrum};
+pub use spectrum::{choose_capture, coherent_frequency, Capture, Spectrum};
 pub use weighting::{a_weight_db, c_weight_db, AWeightingFilter, Weighting};
 pub use window::Window;
 

@@ -153,6 +153,9 @@ impl Spectrum {
 
     /// Mean square over the main lobe around `freq` (see [`Spectrum::lobe_amplitude`]).
     pub fn lobe_ms(&self, freq: f64) -> f64 {
+        if self.amplitude.is_empty() {
+            return 0.0;
+        }
         let p = freq / self.bin_hz;
         let half = self.window.lobe_half_width() as f64;
         let last = (self.amplitude.len() - 1) as f64;
@@ -301,6 +304,47 @@ pub fn choose_capture(
     })
 }
 
+/// The coherent test-tone frequency nearest `near_hz` for an `n`-sample capture at `rate`:
+/// `M rate / n` with `M` odd and coprime with `n` (so every sample falls at a distinct
+/// phase and harmonics land on distinct bins, common practice for coherent sampling), and
+/// `1 <= M < n / 2`. A generator producing it with exact integer phase `(M k mod n) / n`
+/// gives a leakage-free rectangular-window capture.
+pub fn coherent_frequency(rate: f64, n: usize, near_hz: f64) -> Result<f64, AnalysisError> {
+    check_rate(rate)?;
+    check_freq("tone frequency", near_hz, rate)?;
+    if n < 8 {
+        return Err(AnalysisError::TooShort {
+            what: "capture",
+            got: n,
+            need: 8,
+        });
+    }
+    let target = near_hz * n as f64 / rate;
+    let top = (n as u64 - 1) / 2; // M < n/2
+    let ok = |m: u64| m >= 1 && m <= top && m % 2 == 1 && gcd(m, n as u64) == 1;
+    let centre = target.round().clamp(1.0, top as f64) as u64;
+    for d in 0..=top {
+        let (below, above) = (centre.checked_sub(d), centre + d);
+        let pick = match (below.filter(|&m| ok(m)), ok(above).then_some(above)) {
+            (Some(b), Some(a)) => {
+                if (a as f64 - target).abs() < (target - b as f64).abs() {
+                    Some(a)
+                } else {
+                    Some(b)
+                }
+            }
+            (b, a) => b.or(a),
+        };
+        if let Some(m) = pick {
+            return Ok(m as f64 * rate / n as f64);
+        }
+    }
+    Err(AnalysisError::BadSetting {
+        what: "capture length",
+        expected: format!("a length with an odd cycle count coprime with it (got {n})"),
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -359,6 +403,21 @@ mod tests {
         let c = choose_capture(48_000.0, &[997.0], 40_000, 1024).unwrap();
         assert!(!c.coherent);
         assert_eq!(c.len, 40_000);
+    }
+
+    #[test]
+    fn coherent_frequency_near_one_khz() {
+        // N = 65536 = 2^16: any odd M is coprime; 1 kHz at 48 kHz is 1365.33 cycles, so
+        // M = 1365 and f = 1365 * 48000 / 65536 Hz (coherent sampling, common practice).
+        let f = coherent_frequency(48_000.0, 65_536, 1000.0).unwrap();
+        assert_eq!(f, 1365.0 * 48_000.0 / 65_536.0);
+        let c = choose_capture(48_000.0, &[f], 65_536, 1024).unwrap();
+        assert!(c.coherent && c.coprime && c.len == 65_536);
+        // N = 48000: 997 is prime and odd, so 997 Hz itself is chosen
+        assert_eq!(coherent_frequency(48_000.0, 48_000, 997.2).unwrap(), 997.0);
+        // 1000 is even; 999 = 3^3 * 37 shares the factor 3 with 48000 = 2^7 * 3 * 5^3;
+        // 1001 = 7 * 11 * 13 is coprime, so M = 1001.
+        assert_eq!(coherent_frequency(48_000.0, 48_000, 1000.0).unwrap(), 1001.0);
     }
 
     #[test]
