@@ -367,3 +367,31 @@ fn measure_output_fills_the_figures_that_apply() {
     let expect = (2.0f64).sqrt() * 0.01 * 0.8 * 0.2 / 0.2;
     assert!((f.imd_smpte_percent.unwrap() - 100.0 * expect).abs() < 1e-6);
 }
+
+#[test]
+fn capture_limit_and_bad_settings() {
+    // The capture is the tail of the record, at most `max_capture` samples; within that the
+    // longest coherent length is used (997 Hz at 48 kHz: multiples of 48000, AES17 tone).
+    let x = sine(997.0, 1.0, 0.0, 150_000);
+    let s = Settings {
+        max_capture: 100_000,
+        ..Settings::default()
+    };
+    let r = thd(&x, RATE, Some(997.0), &s).unwrap();
+    assert!(r.coherent);
+    assert_eq!(r.fft_len, 96_000);
+    // a NaN band edge is an error naming the setting, not a silent full band
+    let bad = Settings {
+        bandwidth: Bandwidth::Band {
+            lo: f64::NAN,
+            hi: 20_000.0,
+        },
+        ..Settings::default()
+    };
+    let e = thdn(&x, RATE, Some(997.0), &bad).unwrap_err();
+    assert!(e.to_string().contains("settings.bandwidth"), "{e}");
+    // a fundamental inside the DC lobe cannot be separated from DC: 35 Hz in 4800 samples
+    // is not coherent (7-term window, lobe half width 7 bins of 10 Hz = 70 Hz)
+    let e = thd(&x[..4800], RATE, Some(35.0), &Settings::default()).unwrap_err();
+    assert!(e.to_string().contains("fundamental"), "{e}");
+}

@@ -93,8 +93,11 @@ impl Bandwidth {
     }
 }
 
+/// Default longest capture: 2^20 samples (21.8 s at 48 kHz).
+pub const DEFAULT_MAX_CAPTURE: usize = 1 << 20;
+
 /// Analysis settings shared by every figure.
-#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct Settings {
     /// Window; `None` = automatic (rectangular for a coherent capture, 7-term
     /// Blackman-Harris otherwise).
@@ -107,6 +110,22 @@ pub struct Settings {
     pub bandwidth: Bandwidth,
     /// Weighting of THD+N, SINAD and SNR (default flat).
     pub weighting: Weighting,
+    /// Longest capture analysed, samples (default [`DEFAULT_MAX_CAPTURE`]); a longer record
+    /// is analysed over its last `max_capture` samples, which bounds FFT memory and time.
+    pub max_capture: usize,
+}
+
+impl Default for Settings {
+    fn default() -> Self {
+        Settings {
+            window: None,
+            harmonics: Harmonics::default(),
+            alias: AliasRule::default(),
+            bandwidth: Bandwidth::default(),
+            weighting: Weighting::default(),
+            max_capture: DEFAULT_MAX_CAPTURE,
+        }
+    }
 }
 
 /// A capture: the last `len` samples of a record, and how to window them.
@@ -127,14 +146,17 @@ impl CapturePlan {
     }
 }
 
-/// Plan a capture of `available` samples for tones `freqs` (empty: unknown, not coherent).
+/// Plan a capture from a record of `available` samples for tones `freqs` (empty: unknown,
+/// not coherent), with the window and capture limit of `settings`.
 pub fn plan_capture(
     rate: f64,
     freqs: &[f64],
     available: usize,
-    window: Option<Window>,
+    settings: &Settings,
 ) -> Result<CapturePlan, AnalysisError> {
     let need = 4 * Window::BlackmanHarris7.lobe_half_width();
+    let available = available.min(settings.max_capture.max(need));
+    let window = settings.window;
     let (len, coherent) = if freqs.is_empty() {
         (available, false)
     } else {
@@ -327,9 +349,9 @@ pub fn thd(
     check_rate(rate)?;
     check_samples("samples", samples, 32)?;
     let (f0, plan) = match fundamental_hz {
-        Some(f) => (f, plan_capture(rate, &[f], samples.len(), settings.window)?),
+        Some(f) => (f, plan_capture(rate, &[f], samples.len(), settings)?),
         None => {
-            let plan = plan_capture(rate, &[], samples.len(), settings.window)?;
+            let plan = plan_capture(rate, &[], samples.len(), settings)?;
             (detect_fundamental(plan.slice(samples), rate)?.freq, plan)
         }
     };
@@ -399,7 +421,7 @@ pub fn thdn(
     let band = settings.bandwidth.resolve(rate)?;
     let (fit, kind, plan) = match fundamental_hz {
         Some(f) => {
-            let plan = plan_capture(rate, &[f], samples.len(), settings.window)?;
+            let plan = plan_capture(rate, &[f], samples.len(), settings)?;
             (
                 fit_sine_3(plan.slice(samples), rate, f)?,
                 FitKind::ThreeParameter,
@@ -407,7 +429,7 @@ pub fn thdn(
             )
         }
         None => {
-            let plan = plan_capture(rate, &[], samples.len(), settings.window)?;
+            let plan = plan_capture(rate, &[], samples.len(), settings)?;
             (
                 detect_fundamental(plan.slice(samples), rate)?,
                 FitKind::FourParameter,
@@ -461,12 +483,14 @@ pub struct BandRms {
     pub weighting: Weighting,
 }
 
-/// Band-limited (and weighted) RMS of a whole record, by the frequency-domain band limit
-/// (window: [`Settings::window`], else 7-term Blackman-Harris).
+/// Band-limited (and weighted) RMS of a record (its last [`Settings::max_capture`] samples),
+/// by the frequency-domain band limit (window: [`Settings::window`], else 7-term
+/// Blackman-Harris).
 pub fn band_rms(samples: &[f64], rate: f64, settings: &Settings) -> Result<BandRms, AnalysisError> {
     let band = settings.bandwidth.resolve(rate)?;
     let window = settings.window.unwrap_or(Window::BlackmanHarris7);
-    let spec = Spectrum::compute(samples, rate, window)?;
+    let take = samples.len().min(settings.max_capture.max(1));
+    let spec = Spectrum::compute(&samples[samples.len() - take..], rate, window)?;
     Ok(BandRms {
         rms_v: spec.band_ms(band[0], band[1], settings.weighting).sqrt(),
         window,
@@ -623,7 +647,7 @@ pub fn imd_smpte(
     for (_, f) in products {
         check_freq("imd sideband", f, rate)?;
     }
-    let plan = plan_capture(rate, &[f_low, f_high], samples.len(), settings.window)?;
+    let plan = plan_capture(rate, &[f_low, f_high], samples.len(), settings)?;
     let spec = Spectrum::compute(plan.slice(samples), rate, plan.window)?;
     let mut all = vec![f_low, f_high];
     all.extend(products.iter().map(|p| p.1));
@@ -721,7 +745,7 @@ pub fn imd_twin_tone(
     let fd = f2 - f1;
     let f3l = 2.0 * f1 - f2;
     let f3h = 2.0 * f2 - f1;
-    let plan = plan_capture(rate, &[f1, f2], samples.len(), settings.window)?;
+    let plan = plan_capture(rate, &[f1, f2], samples.len(), settings)?;
     let spec = Spectrum::compute(plan.slice(samples), rate, plan.window)?;
     let high_ok = f3h < rate / 2.0;
     let mut all = vec![f1, f2, fd, f3l];

@@ -417,7 +417,10 @@ mod tests {
         assert_eq!(coherent_frequency(48_000.0, 48_000, 997.2).unwrap(), 997.0);
         // 1000 is even; 999 = 3^3 * 37 shares the factor 3 with 48000 = 2^7 * 3 * 5^3;
         // 1001 = 7 * 11 * 13 is coprime, so M = 1001.
-        assert_eq!(coherent_frequency(48_000.0, 48_000, 1000.0).unwrap(), 1001.0);
+        assert_eq!(
+            coherent_frequency(48_000.0, 48_000, 1000.0).unwrap(),
+            1001.0
+        );
     }
 
     #[test]
