@@ -6,6 +6,10 @@
 //! Dirichlet kernels, so it is zero at every integer bin offset `|d| >= K` (`K` = number of
 //! terms) and the main lobe spans `K` bins either side of a tone.
 //!
+//! The citations below are given from memory; the coefficient values agree with public
+//! reference implementations, and the unit tests check their defining properties (unit sum,
+//! zero ends, ENBW).
+//!
 //! | window | terms | highest sidelobe | coefficient source |
 //! |---|---|---|---|
 //! | [`Window::Rectangular`] | 1 | -13 dB | (none: `a0 = 1`) |
@@ -23,9 +27,11 @@ pub enum Window {
     /// number of cycles in the record).
     Rectangular,
     /// Minimum 4-term Blackman-Harris (sidelobes about -92 dB).
+    #[serde(rename = "blackman-harris-4")]
     BlackmanHarris4,
     /// Minimum-sidelobe 7-term Blackman-Harris (sidelobes about -180 dB): the default for
     /// non-coherent captures.
+    #[serde(rename = "blackman-harris-7")]
     BlackmanHarris7,
     /// 5-term flat-top: scalloping loss of a few thousandths of a dB, for amplitude readings
     /// of tones that fall between bins.
@@ -151,6 +157,20 @@ mod tests {
         ] {
             let s: f64 = w.coefficients().iter().sum();
             assert!((s - 1.0).abs() < 1e-7, "{}: {s}", w.name());
+        }
+    }
+
+    #[test]
+    fn serde_names_match_figure_names() {
+        // figures write `name()`; settings files deserialise the same spelling
+        for w in [
+            Window::Rectangular,
+            Window::BlackmanHarris4,
+            Window::BlackmanHarris7,
+            Window::FlatTop,
+        ] {
+            let json = serde_json::to_string(&w).unwrap();
+            assert_eq!(json, format!("\"{}\"", w.name()));
         }
     }
 
