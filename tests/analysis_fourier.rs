@@ -227,7 +227,7 @@ fn hard_clip_at_one_over_root_two_matches_closed_form() {
 #[test]
 fn fft_matches_a_plain_dft() {
     // Independent cross-check: the realfft result against a direct O(N^2) DFT of the same
-    // windowed record, within 1e-9 relative (the RustFFT test convention, STYLE.md).
+    // windowed record, within 1e-9 relative (a plain reference beside the fast path, STYLE.md).
     let n = 1000;
     let mut seed = 12345u64;
     let mut rnd = || {

@@ -255,7 +255,7 @@ mod tests {
     #[test]
     fn filter_impulse_response_matches_its_transfer_function() {
         // Analytic z-domain response vs the FFT of the filter's own impulse response
-        // (common practice; fundsp tests its filters the same way).
+        // (common practice; STYLE.md point 5).
         let rate = 48_000.0;
         let mut f = AWeightingFilter::new(rate).unwrap();
         let n = 1 << 16;
