@@ -4,10 +4,16 @@ use std::path::{Path, PathBuf};
 
 use clap::{Parser, Subcommand};
 
+use railsong::analysis::sweep::level_at_thd;
+use railsong::analysis::{Harmonics, Settings, Weighting};
 use railsong::check::{self, WarningKind};
+use railsong::engine::Run;
+use railsong::measure;
 use railsong::model::Patch;
 use railsong::parts::{builtin, builtin_names, OpAmp};
-use railsong::units::fmt_eng;
+use railsong::render::{self, RenderError, RenderOptions};
+use railsong::signal::{self, Depth, OutputDir, SignalError, WavSpec};
+use railsong::units::{self, fmt_eng, Level};
 
 /// Exit code for bad input (patch, flags, input files).
 pub const EXIT_BAD_INPUT: u8 = 2;
@@ -56,6 +62,51 @@ enum Command {
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
     },
+    /// Render every output to a WAV file, with a figures file beside them.
+    Render {
+        /// The patch file.
+        patch: PathBuf,
+        #[command(flatten)]
+        out: RenderFlags,
+        /// Override a value by dotted path (repeatable).
+        #[arg(long = "set", value_name = "PATH=VALUE")]
+        sets: Vec<String>,
+    },
+    /// Render the built-in demo patch (a four-voice mixer) and say what to listen for.
+    Demo {
+        #[command(flatten)]
+        out: RenderFlags,
+    },
+    /// Run a patch and print its figures (THD, THD+N, SINAD, levels, headroom, events).
+    Measure {
+        /// The patch file.
+        patch: PathBuf,
+        /// Only this output.
+        #[arg(long, value_name = "NAME")]
+        output: Option<String>,
+        /// Print one JSON object instead of the table.
+        #[arg(long, conflicts_with = "csv")]
+        json: bool,
+        /// Print CSV instead of the table.
+        #[arg(long)]
+        csv: bool,
+        /// Step one source's level and report THD and THD+N at each step, and the levels
+        /// where THD crosses 1 % and 0.1 % (e.g. --level-sweep lead=0.5V..8V).
+        #[arg(long, value_name = "SOURCE=FROM..TO")]
+        level_sweep: Option<String>,
+        /// Number of points of --level-sweep (equal steps in dB).
+        #[arg(long, default_value_t = 13)]
+        steps: usize,
+        /// Highest harmonic counted by THD.
+        #[arg(long, default_value_t = 10)]
+        harmonics: usize,
+        /// Weight THD+N and SNR: flat or a (IEC 61672-1 A-weighting).
+        #[arg(long, default_value = "flat", value_parser = ["flat", "a"])]
+        weighting: String,
+        /// Override a value by dotted path (repeatable).
+        #[arg(long = "set", value_name = "PATH=VALUE")]
+        sets: Vec<String>,
+    },
     /// List the built-in op-amp profiles (and a patch's own parts) with their figures.
     Parts {
         /// Also list the [parts.*] defined in this patch.
@@ -64,6 +115,24 @@ enum Command {
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
     },
+}
+
+/// Flags shared by the commands that write renders.
+#[derive(clap::Args, Debug)]
+struct RenderFlags {
+    /// Folder to write into (default: renders/<patch name>/).
+    #[arg(long, value_name = "DIR")]
+    out: Option<PathBuf>,
+    /// Sample format of the WAV files: 16 (TPDF-dithered), 24 or float.
+    #[arg(long, default_value = "24", value_parser = ["16", "24", "float"])]
+    depth: String,
+    /// Scale each file so its RMS sits at this level in dBFS (peaks kept below -1 dBFS)
+    /// instead of the patch calibration; for listening, e.g. --listen -18.
+    #[arg(long, value_name = "DBFS", allow_negative_numbers = true)]
+    listen: Option<f64>,
+    /// Overwrite files in the folder that railsong did not write.
+    #[arg(long)]
+    force: bool,
 }
 
 /// Parse the command line and run the command.
@@ -89,6 +158,32 @@ pub fn run() -> Result<(), Failure> {
     match cli.command {
         Command::Check { patch, sets } => cmd_check(&patch, &sets),
         Command::Parts { patch, sets } => cmd_parts(patch.as_deref(), &sets),
+        Command::Render { patch, out, sets } => {
+            let p = load(&patch, &sets)?;
+            let stem = patch
+                .file_stem()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_else(|| "patch".into());
+            render_to(&p, &stem, &out).map(|_| ())
+        }
+        Command::Demo { out } => cmd_demo(&out),
+        Command::Measure {
+            patch,
+            output,
+            json,
+            csv,
+            level_sweep,
+            steps,
+            harmonics,
+            weighting,
+            sets,
+        } => {
+            let settings = analysis_settings(harmonics, &weighting)?;
+            match level_sweep {
+                Some(spec) => cmd_level_sweep(&patch, &sets, &spec, steps, &settings, json, csv),
+                None => cmd_measure(&patch, &sets, output.as_deref(), json, csv, &settings),
+            }
+        }
     }
 }
 
@@ -226,4 +321,521 @@ fn cmd_parts(path: Option<&Path>, sets: &[String]) -> Result<(), Failure> {
         );
     }
     Ok(())
+}
+
+/// The demo patch, compiled into the binary (the same file as patches/demo.toml).
+const DEMO: &str = include_str!("../patches/demo.toml");
+
+fn failure_io(e: impl std::fmt::Display) -> Failure {
+    Failure {
+        code: EXIT_FAILURE,
+        message: e.to_string(),
+    }
+}
+
+fn render_error(e: RenderError) -> Failure {
+    // Every render error comes from the patch or an input file: bad input.
+    Failure::bad_input(e)
+}
+
+fn signal_error(e: SignalError) -> Failure {
+    match e {
+        SignalError::Io { .. } | SignalError::Stream(_) => failure_io(e),
+        other => Failure::bad_input(other),
+    }
+}
+
+fn analysis_settings(harmonics: usize, weighting: &str) -> Result<Settings, Failure> {
+    if harmonics < 2 {
+        return Err(Failure::bad_input(format!(
+            "--harmonics {harmonics}: expected 2 or more"
+        )));
+    }
+    Ok(Settings {
+        harmonics: Harmonics::UpTo(harmonics),
+        weighting: if weighting == "a" {
+            Weighting::A
+        } else {
+            Weighting::Flat
+        },
+        ..Settings::default()
+    })
+}
+
+/// Keep only the characters allowed in file names.
+fn safe_stem(s: &str) -> String {
+    let t: String = s
+        .chars()
+        .map(|c| {
+            if c.is_ascii_alphanumeric() || c == '_' || c == '-' {
+                c
+            } else {
+                '-'
+            }
+        })
+        .collect();
+    if t.is_empty() {
+        "patch".into()
+    } else {
+        t
+    }
+}
+
+fn progress_bar(frames: usize, rate: f64) -> Option<indicatif::ProgressBar> {
+    if (frames as f64) < 2.0 * rate {
+        return None;
+    }
+    let bar = indicatif::ProgressBar::new(1000);
+    bar.set_style(
+        indicatif::ProgressStyle::with_template("rendering {bar:40} {percent:>3}% {eta}")
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    Some(bar)
+}
+
+fn run_patch(patch: &Patch, alias: bool, show_progress: bool) -> Result<Run, Failure> {
+    let bar = if show_progress {
+        progress_bar(patch.frames(), patch.rate)
+    } else {
+        None
+    };
+    let opts = RenderOptions {
+        frames: None,
+        alias_probe: alias,
+    };
+    let run = render::render(patch, &opts, &mut |f| {
+        if let Some(b) = &bar {
+            b.set_position((f * 1000.0) as u64);
+        }
+    })
+    .map_err(render_error)?;
+    if let Some(b) = bar {
+        b.finish_and_clear();
+    }
+    Ok(run)
+}
+
+/// Render a patch into its folder; returns the folder.
+fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, Failure> {
+    let dir = flags
+        .out
+        .clone()
+        .unwrap_or_else(|| Path::new("renders").join(safe_stem(stem)));
+    let depth = match flags.depth.as_str() {
+        "16" => Depth::Pcm16,
+        "float" => Depth::Float32,
+        _ => Depth::Pcm24,
+    };
+    // Check every file name (and the overwrite guard) before spending time on the render.
+    let names: Vec<String> = patch
+        .outputs
+        .iter()
+        .map(|o| {
+            o.file
+                .clone()
+                .map(|f| if f.ends_with(".wav") { f } else { format!("{f}.wav") })
+                .unwrap_or_else(|| format!("{}.wav", o.name))
+        })
+        .collect();
+    let mut folder = OutputDir::open(&dir, flags.force).map_err(signal_error)?;
+    for n in names.iter().map(String::as_str).chain(["figures.json"]) {
+        folder.check_writable(n).map_err(signal_error)?;
+    }
+    let run = run_patch(patch, true, true)?;
+    let idle = if patch.noise {
+        Some(run_patch(&render::muted(patch), false, false)?)
+    } else {
+        None
+    };
+    let m = measure::measure(patch, &run, idle.as_ref(), &Settings::default(), None);
+
+    println!("{} -> {}", patch.title, dir.display());
+    println!(
+        "  calibration: {} = 0 dBFS peak{}",
+        fmt_eng(patch.full_scale, "V"),
+        if flags.listen.is_some() {
+            " (files scaled for listening, see below)"
+        } else {
+            ""
+        }
+    );
+    for (o, name) in run.outputs.iter().zip(&names) {
+        let spec = WavSpec {
+            rate: patch.rate.round() as u32,
+            channels: 1,
+            depth,
+            full_scale: patch.full_scale,
+            dither_seed: signal::source_seed(patch.seed, &o.name),
+        };
+        let (gain, note) = match flags.listen {
+            Some(target) => {
+                let g = signal::listen_gain(&o.samples, target, patch.full_scale);
+                (g, format!(", listening gain {:+.1} dB", 20.0 * g.log10()))
+            }
+            None => (1.0, String::new()),
+        };
+        let stats = if gain == 1.0 {
+            folder.write(name, spec, &o.samples)
+        } else {
+            let scaled: Vec<f64> = o.samples.iter().map(|x| x * gain).collect();
+            folder.write(name, spec, &scaled)
+        }
+        .map_err(signal_error)?;
+        let f = &m.outputs[&o.name].figures;
+        println!(
+            "  {}: peak {}  rms {}  headroom {} / {}{}{}",
+            name,
+            f.peak_v.map_or("-".into(), |v| fmt_eng(v, "V")),
+            f.rms_v.map_or("-".into(), |v| fmt_eng(v, "V")),
+            db_or_dash(f.headroom_pos_db, "to +swing"),
+            db_or_dash(f.headroom_neg_db, "to -swing"),
+            note,
+            if stats.clipped > 0 {
+                format!(", {} samples clipped in the file", stats.clipped)
+            } else {
+                String::new()
+            }
+        );
+        print_events(&m.outputs[&o.name].events);
+    }
+    for a in &run.alias {
+        println!(
+            "  alias figure of '{}' in {} at x{}: {:.1} dBc (5 kHz tone 7 dB past the swing)",
+            a.part, a.stage, run.oversample, a.dbc
+        );
+    }
+    folder
+        .write_text("figures.json", &measure::to_json(&m))
+        .map_err(signal_error)?;
+    Ok(dir)
+}
+
+fn db_or_dash(v: Option<f64>, what: &str) -> String {
+    v.map_or(format!("- {what}"), |d| format!("{d:+.1} dB {what}"))
+}
+
+fn print_events(events: &std::collections::BTreeMap<String, measure::EventSeconds>) {
+    for (stage, e) in events {
+        let mut parts = Vec::new();
+        for (label, s) in [
+            ("clipping", e.clip_s),
+            ("slew-limited", e.slew_s),
+            ("outside input range", e.cm_out_s),
+            ("phase reversed", e.reversed_s),
+        ] {
+            if s > 0.0 {
+                parts.push(format!("{label} {}", fmt_eng(s, "s")));
+            }
+        }
+        println!(
+            "      {stage}: {}",
+            if parts.is_empty() {
+                "clean".to_string()
+            } else {
+                parts.join(", ")
+            }
+        );
+    }
+}
+
+fn cmd_demo(flags: &RenderFlags) -> Result<(), Failure> {
+    let patch = railsong::patch::parse_str(DEMO, "demo.toml", Path::new("."), &[])
+        .map_err(Failure::bad_input)?;
+    let dir = render_to(&patch, "demo", flags)?;
+    println!();
+    println!("What to listen for (start quietly: the last two are harsh):");
+    println!(
+        "  {}  the mixer as designed: four voices, nothing happening to them.",
+        dir.join("clean.wav").display()
+    );
+    println!(
+        "  {}  the same voices at gain -3: squared-off, buzzy peaks where the mix hits the rails.",
+        dir.join("rails.wav").display()
+    );
+    println!(
+        "  {}  a JFET-input follower driven below its input range: upward spikes where it reverses phase.",
+        dir.join("reversal.wav").display()
+    );
+    Ok(())
+}
+
+fn cmd_measure(
+    path: &Path,
+    sets: &[String],
+    output: Option<&str>,
+    json: bool,
+    csv: bool,
+    settings: &Settings,
+) -> Result<(), Failure> {
+    let patch = load(path, sets)?;
+    if let Some(name) = output {
+        if !patch.outputs.iter().any(|o| o.name == name) {
+            let names: Vec<&str> = patch.outputs.iter().map(|o| o.name.as_str()).collect();
+            return Err(Failure::bad_input(format!(
+                "--output {name}: no such output in {} (outputs: {})",
+                path.display(),
+                names.join(", ")
+            )));
+        }
+    }
+    let run = run_patch(&patch, true, !json && !csv)?;
+    let idle = if patch.noise {
+        Some(run_patch(&render::muted(&patch), false, false)?)
+    } else {
+        None
+    };
+    let m = measure::measure(&patch, &run, idle.as_ref(), settings, output);
+    if json {
+        println!("{}", measure::to_json(&m));
+    } else if csv {
+        print!("{}", measure::to_csv(&m));
+    } else {
+        print_table(&patch, &m);
+    }
+    Ok(())
+}
+
+fn opt(v: Option<f64>, unit: &str, digits: usize) -> String {
+    v.map_or("-".into(), |x| format!("{x:.digits$}{unit}"))
+}
+
+fn print_table(patch: &Patch, m: &measure::Measurement) {
+    println!("{}", patch.title);
+    for o in &patch.outputs {
+        let Some(r) = m.outputs.get(&o.name) else {
+            continue;
+        };
+        let f = &r.figures;
+        println!();
+        println!("output {} (from {})", o.name, r.from);
+        println!(
+            "  level       peak {}  rms {}  dc {}  crest {}  ({} / {} / {})",
+            opt(f.peak_v, " V", 3),
+            opt(f.rms_v, " V", 3),
+            opt(f.dc_v.map(|d| d * 1e3), " mV", 2),
+            opt(f.crest_db, " dB", 1),
+            opt(f.rms_dbu, " dBu", 1),
+            opt(f.rms_dbv, " dBV", 1),
+            opt(f.rms_dbfs, " dBFS", 1),
+        );
+        println!(
+            "  headroom    {} to the positive swing, {} to the negative",
+            opt(f.headroom_pos_db, " dB", 1),
+            opt(f.headroom_neg_db, " dB", 1)
+        );
+        if f.thd_percent.is_some() {
+            println!(
+                "  distortion  fundamental {}  THD {} ({})  THD+N {}  SINAD {}  ENOB {}",
+                opt(f.fundamental_hz, " Hz", 2),
+                opt(f.thd_percent, " %", 4),
+                opt(f.thd_db, " dB", 1),
+                opt(f.thdn_db, " dB", 1),
+                opt(f.sinad_db, " dB", 1),
+                opt(f.enob, "", 1),
+            );
+            let h: Vec<String> = f
+                .harmonics_dbc
+                .iter()
+                .enumerate()
+                .map(|(i, d)| {
+                    if d.is_finite() {
+                        format!("H{} {d:.1}", i + 2)
+                    } else {
+                        format!("H{} -", i + 2)
+                    }
+                })
+                .collect();
+            println!("  harmonics   {} (dBc)", h.join("  "));
+        }
+        if f.imd_smpte_percent.is_some() {
+            println!(
+                "  IMD         SMPTE RP120 {} ({})",
+                opt(f.imd_smpte_percent, " %", 4),
+                opt(f.imd_smpte_db, " dB", 1)
+            );
+        }
+        if f.imd_ccif_percent.is_some() {
+            println!(
+                "  IMD         twin tone d2 {} ({}), 2f1-f2 {}, 2f2-f1 {}",
+                opt(f.imd_ccif_percent, " %", 4),
+                opt(f.imd_ccif_db, " dB", 1),
+                opt(f.imd_ccif_d3_low_dbc, " dBc", 1),
+                opt(f.imd_ccif_d3_high_dbc, " dBc", 1)
+            );
+        }
+        if f.snr_db.is_some() {
+            println!("  noise       SNR {}", opt(f.snr_db, " dB", 1));
+        }
+        println!("  events");
+        print_events(&r.events);
+        for n in &f.notes {
+            println!("  note        {n}");
+        }
+        println!(
+            "  taken with  window {}, FFT {}, band {}, weighting {}",
+            f.window.as_deref().unwrap_or("-"),
+            f.fft_len.map_or("-".into(), |n| n.to_string()),
+            f.bandwidth_hz
+                .map_or("-".into(), |[a, b]| format!("{a} Hz - {b} Hz")),
+            f.weighting.as_deref().unwrap_or("flat")
+        );
+    }
+    let s = &m.settings;
+    println!();
+    println!(
+        "settings: {} x{}, {} rendered, calibration {} = 0 dBFS, circuit noise {}",
+        fmt_eng(s.rate_hz, "Hz"),
+        s.oversample,
+        fmt_eng(s.length_s, "s"),
+        fmt_eng(s.full_scale_v, "V"),
+        if s.noise { "on" } else { "off" }
+    );
+    for (stage, dbc) in &s.alias_dbc {
+        println!("  alias figure at this oversampling, {stage}: {dbc:.1} dBc");
+    }
+}
+
+/// Parse `SOURCE=FROM..TO`.
+fn parse_sweep_spec(spec: &str) -> Result<(String, String, String), Failure> {
+    let bad = || {
+        Failure::bad_input(format!(
+            "--level-sweep {spec}: expected SOURCE=FROM..TO, e.g. lead=0.5V..8V"
+        ))
+    };
+    let (src, range) = spec.split_once('=').ok_or_else(bad)?;
+    let (from, to) = range.split_once("..").ok_or_else(bad)?;
+    if src.trim().is_empty() || from.trim().is_empty() || to.trim().is_empty() {
+        return Err(bad());
+    }
+    Ok((
+        src.trim().to_string(),
+        from.trim().to_string(),
+        to.trim().to_string(),
+    ))
+}
+
+fn cmd_level_sweep(
+    path: &Path,
+    sets: &[String],
+    spec: &str,
+    steps: usize,
+    settings: &Settings,
+    json: bool,
+    csv: bool,
+) -> Result<(), Failure> {
+    let (src, from, to) = parse_sweep_spec(spec)?;
+    if steps < 2 {
+        return Err(Failure::bad_input(format!(
+            "--steps {steps}: expected 2 or more"
+        )));
+    }
+    let base = load(path, sets)?;
+    if !base.sources.iter().any(|s| s.name == src) {
+        return Err(Failure::bad_input(format!(
+            "--level-sweep: no source '{src}' in {}",
+            path.display()
+        )));
+    }
+    let lvl = |t: &str| {
+        units::parse_level(t)
+            .map_err(|e| Failure::bad_input(format!("--level-sweep {spec}: {e}")))
+    };
+    let (a, b) = (lvl(&from)?, lvl(&to)?);
+    let (va, vb) = (level_volts(a), level_volts(b));
+    if !(va > 0.0 && vb > 0.0) {
+        return Err(Failure::bad_input(format!(
+            "--level-sweep {spec}: both levels must be above 0 V"
+        )));
+    }
+    let unit = level_unit(a);
+    let mut rows = Vec::new();
+    for k in 0..steps {
+        let v = va * (vb / va).powf(k as f64 / (steps - 1) as f64);
+        let mut s = sets.to_vec();
+        s.push(format!("sources.{src}.amp={v} {unit}"));
+        let patch = load(path, &s)?;
+        let run = run_patch(&patch, false, false)?;
+        let m = measure::measure(&patch, &run, None, settings, None);
+        rows.push((v, m));
+    }
+    // one table per output
+    let outputs: Vec<String> = base.outputs.iter().map(|o| o.name.clone()).collect();
+    let mut json_out = serde_json::Map::new();
+    for name in &outputs {
+        let pts: Vec<(f64, Option<f64>, Option<f64>)> = rows
+            .iter()
+            .map(|(v, m)| {
+                let f = &m.outputs[name].figures;
+                (*v, f.thd_percent, f.thdn_db)
+            })
+            .collect();
+        let thd_pts: Vec<(f64, f64)> = pts
+            .iter()
+            .filter_map(|(v, t, _)| t.map(|t| (*v, t / 100.0)))
+            .collect();
+        let at1 = level_at_thd(&thd_pts, 0.01);
+        let at01 = level_at_thd(&thd_pts, 0.001);
+        if json {
+            json_out.insert(
+                name.clone(),
+                serde_json::json!({
+                    "source": src,
+                    "level_unit": unit,
+                    "points": pts.iter().map(|(v, t, n)| serde_json::json!({
+                        "level": v, "thd_percent": t, "thdn_db": n})).collect::<Vec<_>>(),
+                    "level_at_1_percent": at1,
+                    "level_at_0_1_percent": at01,
+                }),
+            );
+        } else if csv {
+            println!("output,level_{},thd_percent,thdn_db", unit.replace(' ', ""));
+            for (v, t, n) in &pts {
+                println!(
+                    "{name},{v},{},{}",
+                    t.map_or(String::new(), |x| x.to_string()),
+                    n.map_or(String::new(), |x| x.to_string())
+                );
+            }
+        } else {
+            println!("output {name}: level sweep of source {src}");
+            println!("  {:>12}  {:>12}  {:>10}", format!("level {unit}"), "THD %", "THD+N dB");
+            for (v, t, n) in &pts {
+                println!(
+                    "  {:>12.4}  {:>12}  {:>10}",
+                    v,
+                    t.map_or("-".into(), |x| format!("{x:.5}")),
+                    n.map_or("-".into(), |x| format!("{x:.1}"))
+                );
+            }
+            let say = |x: Option<f64>, th: &str| match x {
+                Some(l) => println!("  THD reaches {th} at {l:.4} {unit}"),
+                None => println!("  THD does not cross {th} in this range"),
+            };
+            say(at01, "0.1 %");
+            say(at1, "1 %");
+            println!();
+        }
+    }
+    if json {
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&serde_json::Value::Object(json_out))
+                .unwrap_or_default()
+        );
+    }
+    Ok(())
+}
+
+fn level_volts(l: Level) -> f64 {
+    match l {
+        Level::Peak(v) | Level::PeakToPeak(v) | Level::Rms(v) => v,
+    }
+}
+
+fn level_unit(l: Level) -> &'static str {
+    match l {
+        Level::Peak(_) => "Vpk",
+        Level::PeakToPeak(_) => "Vpp",
+        Level::Rms(_) => "Vrms",
+    }
 }

@@ -1,0 +1,133 @@
+//! Rendering a patch end to end: every source's generator (synthetic, or a WAV file) at the
+//! engine's internal rate, the engine, and each output's samples at the base rate.
+//!
+//! This layer joins [`crate::signal`] and [`crate::engine`]. It reads WAV *inputs* but writes
+//! nothing: writing renders is the caller's job (through [`crate::signal::OutputDir`]), so a
+//! failed render never leaves a file behind.
+
+use crate::engine::{self, Engine, EngineError, Plan, Run, SourceFeed};
+use crate::model::{Patch, Wave};
+use crate::signal::{self, Generator, SignalError};
+
+/// What can go wrong while rendering.
+#[derive(Debug, thiserror::Error)]
+pub enum RenderError {
+    /// The engine rejected the patch.
+    #[error("{0}")]
+    Engine(#[from] EngineError),
+    /// A source could not be built (a WAV input that is missing or broken, a bad value).
+    #[error("{0}")]
+    Signal(#[from] SignalError),
+}
+
+/// Options of [`render`].
+#[derive(Debug, Clone, Default)]
+pub struct RenderOptions {
+    /// Frames to render at the base rate (default: the patch length).
+    pub frames: Option<usize>,
+    /// Also measure each op-amp stage's alias figure (see [`engine::alias_probe`]).
+    pub alias_probe: bool,
+}
+
+/// Adapts a [`Generator`] (which starts at t = 0) to the engine's feed contract (which starts
+/// `preroll` samples before t = 0): the pre-roll holds the source's resting value.
+struct GeneratorFeed {
+    gen: Box<dyn Generator>,
+    preroll: usize,
+    left: usize,
+    rest: f64,
+}
+
+impl SourceFeed for GeneratorFeed {
+    fn fill(&mut self, out: &mut [f64]) {
+        let k = self.left.min(out.len());
+        out[..k].fill(self.rest);
+        self.left -= k;
+        if k < out.len() {
+            self.gen.fill(&mut out[k..]);
+        }
+    }
+
+    fn reset(&mut self) {
+        self.gen.reset();
+        self.left = self.preroll;
+    }
+}
+
+/// One feed per source of `patch`, at the plan's internal rate.
+pub fn feeds(patch: &Patch, plan: &Plan) -> Result<Vec<Box<dyn SourceFeed>>, RenderError> {
+    let fs = plan.internal_rate;
+    let frames_int = plan.oversample * patch.frames() + plan.preroll + plan.block;
+    patch
+        .sources
+        .iter()
+        .zip(&plan.sources)
+        .map(|(src, sp)| {
+            let gen = match &src.wave {
+                Wave::File { .. } => signal::file_source(src, fs, frames_int)?,
+                _ => signal::generator(src, fs, patch.seed)?,
+            };
+            Ok(Box::new(GeneratorFeed {
+                gen,
+                preroll: plan.preroll,
+                left: plan.preroll,
+                rest: sp.rest,
+            }) as Box<dyn SourceFeed>)
+        })
+        .collect()
+}
+
+/// Render every output of `patch`. `progress` is called with the fraction done (0..=1)
+/// after each chunk.
+pub fn render(
+    patch: &Patch,
+    opts: &RenderOptions,
+    progress: &mut dyn FnMut(f64),
+) -> Result<Run, RenderError> {
+    let plan = engine::compile(patch)?;
+    let feeds = feeds(patch, &plan)?;
+    let mut eng = Engine::with_feeds(&plan, feeds);
+    let frames = opts.frames.unwrap_or_else(|| patch.frames());
+    let mut bufs: Vec<Vec<f64>> = plan.outputs.iter().map(|_| vec![0.0; frames]).collect();
+    let chunk = ((patch.rate * 0.25) as usize).max(1);
+    let mut done = 0;
+    while done < frames {
+        let n = chunk.min(frames - done);
+        let mut refs: Vec<&mut [f64]> = bufs.iter_mut().map(|b| &mut b[done..done + n]).collect();
+        eng.process(&mut refs);
+        done += n;
+        progress(done as f64 / frames as f64);
+    }
+    let outputs = plan
+        .outputs
+        .iter()
+        .zip(bufs)
+        .map(|(o, samples)| engine::OutputSignal {
+            name: o.name.clone(),
+            samples,
+        })
+        .collect();
+    let alias = if opts.alias_probe {
+        engine::alias_figures(patch)
+    } else {
+        Vec::new()
+    };
+    Ok(Run {
+        rate: plan.rate,
+        oversample: plan.oversample,
+        outputs,
+        events: eng.events(),
+        alias,
+    })
+}
+
+/// The same patch with every source muted (its waveform replaced by silence, its DC offset
+/// kept): the idle-channel render that noise and SNR figures are measured against.
+pub fn muted(patch: &Patch) -> Patch {
+    let mut p = patch.clone();
+    for s in &mut p.sources {
+        s.wave = Wave::Dc { level: 0.0 };
+        s.envelope = None;
+    }
+    p
+}
