@@ -7,8 +7,8 @@ use crate::model::Source;
 /// Envelope parameters in samples.
 #[derive(Debug, Clone, Copy)]
 struct Env {
-    /// Level rise per sample during the attack (`inf` for an instant attack).
-    rise: f64,
+    /// Attack time in samples (0 for an instant attack).
+    attack: f64,
     /// `1 / (decay * rate)` (`inf` for an instant decay).
     inv_decay: f64,
     /// Retrigger period in samples (`None`: one shot).
@@ -19,7 +19,13 @@ struct Env {
 #[derive(Debug, Clone, Copy)]
 struct EnvState {
     level: f64,
+    /// The first trigger has happened.
+    started: bool,
     attacking: bool,
+    /// Level at the last trigger.
+    from: f64,
+    /// Samples since the last trigger (attack phase).
+    since_trigger: u64,
     /// Samples since the peak (decay phase).
     since_peak: u64,
     /// Index of the next trigger (0 = the trigger at `start`).
@@ -28,7 +34,10 @@ struct EnvState {
 
 const ENV_START: EnvState = EnvState {
     level: 0.0,
+    started: false,
     attacking: false,
+    from: 0.0,
+    since_trigger: 0,
     since_peak: 0,
     next_trigger: 0,
 };
@@ -106,7 +115,7 @@ impl Gated {
                     }
                 };
                 Some(Env {
-                    rise: 1.0 / (e.attack * rate),
+                    attack: e.attack * rate,
                     inv_decay: 1.0 / (e.decay * rate),
                     every,
                 })
@@ -135,30 +144,39 @@ impl Env {
     }
 
     /// Advance the state to relative sample `rel` (one call per sample, in order) and return
-    /// the level there. A trigger sample keeps the current level (0 at the first trigger) and
-    /// the linear rise starts after it, so the level reaches 1 at `attack * rate` samples after
-    /// a trigger from 0; an instant attack jumps to 1 on the trigger sample.
+    /// the level there. The level first evolves as it would without a trigger (attack ramp or
+    /// decay); a trigger on this sample then starts a linear rise from that level (0 at the
+    /// first trigger), so from 0 the level reaches 1 exactly `attack * rate` samples after
+    /// the trigger. An instant attack jumps to 1 on the trigger sample.
     #[inline]
     fn step(&self, st: &mut EnvState, rel: u64) -> f64 {
+        if st.started {
+            if st.attacking {
+                st.since_trigger += 1;
+                // From the trigger level, not accumulated, so no rounding builds up.
+                st.level = (st.from + st.since_trigger as f64 / self.attack).min(1.0);
+                if st.level >= 1.0 {
+                    st.attacking = false;
+                    st.since_peak = 0;
+                }
+            } else {
+                st.since_peak += 1;
+                // since_peak >= 1: an instant decay (inv_decay = inf) gives exp(-inf) = 0.
+                st.level = (-(st.since_peak as f64) * self.inv_decay).exp();
+            }
+        }
         if rel == self.trigger_at(st.next_trigger) {
             st.next_trigger += 1;
-            if self.rise.is_infinite() {
+            st.started = true;
+            if self.attack <= 0.0 || st.level >= 1.0 {
                 st.level = 1.0;
                 st.attacking = false;
                 st.since_peak = 0;
             } else {
                 st.attacking = true;
+                st.from = st.level;
+                st.since_trigger = 0;
             }
-        } else if st.attacking {
-            st.level = (st.level + self.rise).min(1.0);
-            if st.level >= 1.0 {
-                st.attacking = false;
-                st.since_peak = 0;
-            }
-        } else {
-            st.since_peak += 1;
-            // since_peak >= 1 here, so an instant decay (inv_decay = inf) gives exp(-inf) = 0.
-            st.level = (-(st.since_peak as f64) * self.inv_decay).exp();
         }
         st.level
     }

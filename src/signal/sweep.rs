@@ -41,8 +41,17 @@ impl LogSweep {
             rate,
             n: 0,
         };
-        s.phi_end = s.phase_at(duration);
+        s.phi_end = s.sweep_phase(duration);
         s
+    }
+
+    /// The sweep's own phase law, cycles, for `0 <= t <= T`.
+    fn sweep_phase(&self, t: f64) -> f64 {
+        if self.k.abs() < 1e-300 {
+            self.f0 * t
+        } else {
+            self.f0 / self.k * (self.k * t).exp_m1()
+        }
     }
 
     /// Phase in cycles at time `t` s (closed form; see the module docs).
@@ -50,11 +59,7 @@ impl LogSweep {
         if t >= self.duration {
             return self.phi_end + self.f1 * (t - self.duration);
         }
-        if self.k.abs() < 1e-300 {
-            self.f0 * t
-        } else {
-            self.f0 / self.k * (self.k * t).exp_m1()
-        }
+        self.sweep_phase(t)
     }
 
     /// Instantaneous frequency in Hz at time `t` s.
