@@ -28,15 +28,21 @@ pub const MIN_RATE: f64 = 100.0;
 /// Highest WAV sample rate accepted, Hz.
 pub const MAX_RATE: f64 = 1_536_000.0;
 
+/// Whether an I/O error from the decoder means the file ended early: either
+/// `UnexpectedEof`, or the `Other` error hound 3.5 returns on a short read ("Failed to read
+/// enough bytes.").
+fn is_short_read(e: &io::Error) -> bool {
+    e.kind() == io::ErrorKind::UnexpectedEof
+        || (e.kind() == io::ErrorKind::Other && e.to_string().contains("read enough bytes"))
+}
+
 fn hound_err(path: &Path, e: hound::Error) -> SignalError {
     let path = path.to_path_buf();
     match e {
-        hound::Error::IoError(io) if io.kind() == io::ErrorKind::UnexpectedEof => {
-            SignalError::Truncated {
-                path,
-                what: "the header ends early".into(),
-            }
-        }
+        hound::Error::IoError(io) if is_short_read(&io) => SignalError::Truncated {
+            path,
+            what: "the header ends early".into(),
+        },
         hound::Error::IoError(source) => SignalError::Io { path, source },
         hound::Error::FormatError(msg) if msg.contains("zero channels") => {
             SignalError::ZeroChannels { path }
@@ -140,9 +146,7 @@ pub fn load_wav(
             let scale = full_scale / 2f64.powi(i32::from(bits) - 1);
             for (i, s) in reader.samples::<i32>().enumerate() {
                 let s = s.map_err(|e| match e {
-                    hound::Error::IoError(ref io) if io.kind() == io::ErrorKind::UnexpectedEof => {
-                        truncated(i)
-                    }
+                    hound::Error::IoError(ref io) if is_short_read(io) => truncated(i),
                     e => hound_err(path, e),
                 })?;
                 take(i, f64::from(s) * scale);
@@ -151,9 +155,7 @@ pub fn load_wav(
         (hound::SampleFormat::Float, 32) => {
             for (i, s) in reader.samples::<f32>().enumerate() {
                 let s = s.map_err(|e| match e {
-                    hound::Error::IoError(ref io) if io.kind() == io::ErrorKind::UnexpectedEof => {
-                        truncated(i)
-                    }
+                    hound::Error::IoError(ref io) if is_short_read(io) => truncated(i),
                     e => hound_err(path, e),
                 })?;
                 if !s.is_finite() {
