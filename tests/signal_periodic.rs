@@ -607,3 +607,34 @@ fn bad_parameters_are_errors_not_panics() {
     }
     assert!(generator(&source(Wave::Dc { level: 0.0 }), f64::NAN, 0).is_err());
 }
+
+#[test]
+fn extreme_fundamentals() {
+    // At or above Nyquist a band-limited square has no harmonic left: silence (its mean).
+    let x = render(
+        Wave::Square {
+            freq: 30_000.0,
+            amp: 1.0,
+            phase: 0.0,
+            raw: false,
+        },
+        48_000.0,
+        64,
+    );
+    assert!(x.iter().all(|v| v.abs() < 1e-15));
+    // A 0.05 Hz LFO (table at its size cap): bounded by the Gibbs overshoot of the series,
+    // about 1.179 (2/pi Si(pi), Wilbraham-Gibbs constant, from memory), and +1 for most of
+    // the first half period.
+    let y = render(
+        Wave::Square {
+            freq: 0.05,
+            amp: 1.0,
+            phase: 0.0,
+            raw: false,
+        },
+        48_000.0,
+        48_000,
+    );
+    assert!(y.iter().all(|v| v.abs() < 1.18));
+    assert!(y[1000..].iter().all(|v| (v - 1.0).abs() < 0.01));
+}

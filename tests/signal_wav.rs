@@ -662,3 +662,32 @@ fn listening_gain_hits_target_with_peak_guard() {
     assert!((peak_db + 1.0).abs() < 1e-9, "{peak_db}");
     assert_eq!(listen_gain(&[0.0; 10], -20.0, fs), 1.0);
 }
+
+#[test]
+fn very_short_file_resamples_without_error() {
+    // Shorter than the resampler's filter: still converted, padded to the asked length.
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("blip.wav");
+    let frames: Vec<Vec<f64>> = (0..10).map(|_| vec![0.25]).collect();
+    hound_write(&path, 1, 44_100, 16, false, &frames);
+    let y = load_wav(&path, None, 1.0, 48_000.0, 100, false).unwrap();
+    assert_eq!(y.len(), 100);
+    assert!(y.iter().all(|v| v.is_finite()));
+    assert!(y.iter().any(|v| v.abs() > 0.05), "the blip survives");
+    // A 64-bit float file is reported as unsupported, naming the file.
+    let mut f64_bytes = Vec::new();
+    for v in [0.0f64, 0.5] {
+        f64_bytes.extend_from_slice(&v.to_le_bytes());
+    }
+    fs::write(
+        dir.path().join("f64.wav"),
+        wav_bytes(3, 1, 48_000, 64, &f64_bytes),
+    )
+    .unwrap();
+    let e = load_wav(&dir.path().join("f64.wav"), None, 1.0, 48_000.0, 4, false).unwrap_err();
+    let msg = e.to_string();
+    assert!(
+        msg.contains("f64.wav") && msg.contains("unsupported"),
+        "{msg}"
+    );
+}

@@ -30,6 +30,8 @@ struct EnvState {
     since_peak: u64,
     /// Index of the next trigger (0 = the trigger at `start`).
     next_trigger: u64,
+    /// Relative sample of the next trigger.
+    next_at: u64,
 }
 
 const ENV_START: EnvState = EnvState {
@@ -40,6 +42,7 @@ const ENV_START: EnvState = EnvState {
     since_trigger: 0,
     since_peak: 0,
     next_trigger: 0,
+    next_at: 0,
 };
 
 /// A waveform switched on at `start`, off at `stop`, with offset and optional envelope.
@@ -165,8 +168,9 @@ impl Env {
                 st.level = (-(st.since_peak as f64) * self.inv_decay).exp();
             }
         }
-        if rel == self.trigger_at(st.next_trigger) {
+        if rel == st.next_at {
             st.next_trigger += 1;
+            st.next_at = self.trigger_at(st.next_trigger);
             st.started = true;
             if self.attack <= 0.0 || st.level >= 1.0 {
                 st.level = 1.0;

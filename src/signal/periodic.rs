@@ -9,9 +9,11 @@
 //! radians per table step is of order `w^4 / 384` of its amplitude: at most about
 //! `(2 pi / 32)^4 / 384 = 4e-6` (-108 dB) of the top harmonic, which itself is `1/N` (square,
 //! saw) or `1/N^2` (triangle) of the fundamental. Those errors are the only aliases. The table
-//! is capped at 2^21 points (fundamentals below about `fs / 131072`: sub-hertz LFOs), where
-//! the top harmonics are smaller still. Per sample the cost is one table look-up, whatever
-//! the number of harmonics; the table is built once in the constructor.
+//! is capped at 2^20 points (8 MiB per table), reached by fundamentals below `fs / 65536`
+//! (0.73 Hz at 48 kHz: LFOs); there the top harmonics are interpolated less accurately and
+//! harmonics above 2^19 are left out, all below -114 dBc for square and saw. Per sample the
+//! cost is one table look-up, whatever the number of harmonics; the table is built once in
+//! the constructor.
 //!
 //! Fourier series used (`phi` in cycles, any signals text):
 //! - square: `(4 / pi) sum_{n odd} sin(2 pi n phi) / n`;
@@ -259,7 +261,7 @@ impl Generator for Naive {
 }
 
 /// Largest table, points (see the module docs).
-const MAX_TABLE_BITS: u32 = 21;
+const MAX_TABLE_BITS: u32 = 20;
 /// Smallest table, points.
 const MIN_TABLE_BITS: u32 = 10;
 

@@ -47,6 +47,12 @@ fn hound_err(path: &Path, e: hound::Error) -> SignalError {
         hound::Error::FormatError(msg) if msg.contains("zero channels") => {
             SignalError::ZeroChannels { path }
         }
+        hound::Error::FormatError(msg) if msg.starts_with("bits per sample") => {
+            SignalError::Unsupported {
+                path,
+                what: msg.to_string(),
+            }
+        }
         hound::Error::FormatError(msg) => SignalError::Malformed {
             path,
             what: msg.to_string(),
