@@ -104,13 +104,12 @@ fn noise_seeds_repeat_and_differ() {
         assert_eq!(x1, x2, "same seed and name repeat");
         assert_ne!(x1, y, "another seed differs");
         assert_ne!(x1, z, "another source name differs");
-        // And they are not merely shifted copies: correlation near zero.
+        // And they are not merely shifted copies: correlation near zero (pink noise has
+        // fewer independent samples in 4096, so a wider bound).
         let corr: f64 = x1.iter().zip(&z).map(|(a, b)| a * b).sum::<f64>()
             / x1.iter().map(|a| a * a).sum::<f64>();
-        assert!(
-            corr.abs() < 0.1 + if pink { 0.2 } else { 0.0 },
-            "corr {corr}"
-        );
+        let limit = if pink { 0.3 } else { 0.1 };
+        assert!(corr.abs() < limit, "corr {corr}");
     }
     assert_ne!(source_seed(1, "a"), source_seed(1, "b"));
     assert_eq!(source_seed(1, "a"), source_seed(1, "a"));
