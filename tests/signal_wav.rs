@@ -691,3 +691,18 @@ fn very_short_file_resamples_without_error() {
         "{msg}"
     );
 }
+
+#[cfg(unix)]
+#[test]
+fn manifest_must_be_a_plain_file() {
+    // A manifest that is a symbolic link could redirect appends outside the folder.
+    let dir = tempfile::tempdir().unwrap();
+    let elsewhere = dir.path().join("elsewhere.txt");
+    fs::write(&elsewhere, b"keep me\n").unwrap();
+    let out = dir.path().join("out");
+    fs::create_dir(&out).unwrap();
+    std::os::unix::fs::symlink(&elsewhere, out.join(MANIFEST_NAME)).unwrap();
+    let e = OutputDir::open(&out, false).unwrap_err();
+    assert!(e.to_string().contains(MANIFEST_NAME), "{e}");
+    assert_eq!(fs::read(&elsewhere).unwrap(), b"keep me\n");
+}

@@ -66,6 +66,15 @@ impl OutputDir {
     pub fn open(dir: &Path, force: bool) -> Result<Self, SignalError> {
         fs::create_dir_all(dir).map_err(io_at(dir))?;
         let manifest = dir.join(MANIFEST_NAME);
+        // Appending through a symbolic link (or into anything but a plain file) could write
+        // outside the folder: refuse.
+        if let Ok(meta) = fs::symlink_metadata(&manifest) {
+            if !meta.file_type().is_file() {
+                return Err(io_at(&manifest)(std::io::Error::other(
+                    "the manifest is not a regular file (a link or a folder?); remove it",
+                )));
+            }
+        }
         let written = match fs::read_to_string(&manifest) {
             Ok(text) => text
                 .lines()
