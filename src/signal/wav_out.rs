@@ -1,0 +1,265 @@
+//! WAV output: calibrated, dithered (16-bit), clipped-and-counted, streaming, to any
+//! `Write + Seek`.
+//!
+//! Layout (RIFF/WAVE as in the Microsoft/IBM Multimedia Programming Interface and Data
+//! Specifications 1.0, 1991): `RIFF` size `WAVE`, a `fmt ` chunk, for float a `fact` chunk,
+//! then `data`. PCM uses format tag 1 (WAVE_FORMAT_PCM, 16-byte `fmt `) at every depth and
+//! channel count, the form most readers accept; float uses tag 3 (WAVE_FORMAT_IEEE_FLOAT,
+//! 18-byte `fmt ` with `cbSize = 0`, plus `fact`). Sizes are written as placeholders and
+//! patched by [`WavWriter::finish`].
+//!
+//! Calibration: a value of `v` volts is written as `v / full_scale` of digital full scale;
+//! PCM of `b` bits scales that by `2^(b-1)` and rounds to the nearest code. 16-bit adds TPDF
+//! dither of +/-1 LSB peak (the sum of two independent uniform values of +/-0.5 LSB, seeded)
+//! before rounding; 24-bit and float are not dithered. Anything beyond full scale is clipped
+//! in the file (PCM to the extreme codes, float to +/-1.0) and counted; the caller's samples
+//! are untouched. A non-finite value is written as 0 and counted as clipped.
+
+use std::io::{Seek, SeekFrom, Write};
+
+use super::noise::Rng;
+use super::SignalError;
+
+/// Sample format of a written WAV file.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum Depth {
+    /// 16-bit PCM with TPDF dither.
+    Pcm16,
+    /// 24-bit PCM (the default).
+    #[default]
+    Pcm24,
+    /// 32-bit IEEE float.
+    Float32,
+}
+
+impl Depth {
+    /// Bytes per sample.
+    pub fn bytes(self) -> usize {
+        match self {
+            Depth::Pcm16 => 2,
+            Depth::Pcm24 => 3,
+            Depth::Float32 => 4,
+        }
+    }
+    /// Bits per sample.
+    pub fn bits(self) -> u16 {
+        8 * self.bytes() as u16
+    }
+}
+
+/// What to write.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct WavSpec {
+    /// Sample rate, Hz (1 to 2^32 - 1).
+    pub rate: u32,
+    /// Channels (interleaved in the blocks given to [`WavWriter::write`]), at least 1.
+    pub channels: u16,
+    /// Sample format.
+    pub depth: Depth,
+    /// Volts that map to digital full scale (> 0).
+    pub full_scale: f64,
+    /// Seed of the 16-bit dither.
+    pub dither_seed: u64,
+}
+
+/// What a finished write did.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct WriteStats {
+    /// Frames written (samples per channel).
+    pub frames: u64,
+    /// Samples (over all channels) that were beyond full scale or not finite, clipped in the
+    /// file.
+    pub clipped: u64,
+}
+
+const CHUNK: usize = 4096;
+const PCM_HEADER: u64 = 44;
+const FLOAT_HEADER: u64 = 58;
+
+/// Streaming WAV writer: [`WavWriter::new`], any number of [`WavWriter::write`] calls,
+/// [`WavWriter::finish`]. Without `finish` the stream is incomplete (its sizes are
+/// placeholders).
+pub struct WavWriter<W: Write + Seek> {
+    out: W,
+    spec: WavSpec,
+    inv_fs: f64,
+    rng: Rng,
+    samples: u64,
+    clipped: u64,
+    bytes: [u8; CHUNK * 4],
+}
+
+impl<W: Write + Seek> WavWriter<W> {
+    /// Start a WAV stream on `out` (positioned at its start) and write the header.
+    pub fn new(mut out: W, spec: WavSpec) -> Result<Self, SignalError> {
+        if spec.channels == 0 {
+            return Err(SignalError::BadSpec(
+                "channels = 0: expected at least 1".into(),
+            ));
+        }
+        if spec.rate == 0 {
+            return Err(SignalError::BadSpec(
+                "rate = 0 Hz: expected at least 1 Hz".into(),
+            ));
+        }
+        if !(spec.full_scale.is_finite() && spec.full_scale > 0.0) {
+            return Err(SignalError::BadSpec(format!(
+                "full_scale = {} V: expected a finite voltage > 0",
+                spec.full_scale
+            )));
+        }
+        let header = header(&spec, 0, 0);
+        out.write_all(&header).map_err(SignalError::Stream)?;
+        Ok(WavWriter {
+            out,
+            spec,
+            inv_fs: 1.0 / spec.full_scale,
+            rng: Rng::new(spec.dither_seed),
+            samples: 0,
+            clipped: 0,
+            bytes: [0; CHUNK * 4],
+        })
+    }
+
+    /// Samples (all channels) that were clipped so far.
+    pub fn clipped(&self) -> u64 {
+        self.clipped
+    }
+
+    /// Append interleaved samples in volts. Blocks may split frames anywhere.
+    pub fn write(&mut self, samples: &[f64]) -> Result<(), SignalError> {
+        let bps = self.spec.depth.bytes();
+        let total = (self.header_len() + (self.samples + samples.len() as u64) * bps as u64)
+            .div_ceil(2)
+            * 2;
+        if total - 8 > u64::from(u32::MAX) {
+            return Err(SignalError::TooLong);
+        }
+        for block in samples.chunks(CHUNK) {
+            for (k, &v) in block.iter().enumerate() {
+                let x = v * self.inv_fs;
+                let dst = &mut self.bytes[k * bps..(k + 1) * bps];
+                let (x, clip) = if x.is_nan() {
+                    (0.0, true)
+                } else {
+                    (x.clamp(-1.0, 1.0), x.abs() > 1.0)
+                };
+                self.clipped += u64::from(clip);
+                match self.spec.depth {
+                    Depth::Pcm16 => {
+                        let d = self.rng.uniform() - self.rng.uniform();
+                        let c = (x * 32_768.0 + d).round().clamp(-32_768.0, 32_767.0) as i16;
+                        dst.copy_from_slice(&c.to_le_bytes());
+                    }
+                    Depth::Pcm24 => {
+                        let c = (x * 8_388_608.0).round().clamp(-8_388_608.0, 8_388_607.0) as i32;
+                        dst.copy_from_slice(&c.to_le_bytes()[..3]);
+                    }
+                    Depth::Float32 => dst.copy_from_slice(&(x as f32).to_le_bytes()),
+                }
+            }
+            self.out
+                .write_all(&self.bytes[..block.len() * bps])
+                .map_err(SignalError::Stream)?;
+        }
+        self.samples += samples.len() as u64;
+        Ok(())
+    }
+
+    fn header_len(&self) -> u64 {
+        match self.spec.depth {
+            Depth::Float32 => FLOAT_HEADER,
+            _ => PCM_HEADER,
+        }
+    }
+
+    /// Pad, patch the sizes, flush, and return the stream with the statistics.
+    pub fn finish(mut self) -> Result<(W, WriteStats), SignalError> {
+        let ch = u64::from(self.spec.channels);
+        if !self.samples.is_multiple_of(ch) {
+            return Err(SignalError::BadSpec(format!(
+                "{} samples written: not a whole number of {ch}-channel frames",
+                self.samples
+            )));
+        }
+        let data = self.samples * self.spec.depth.bytes() as u64;
+        if data % 2 == 1 {
+            self.out.write_all(&[0]).map_err(SignalError::Stream)?;
+        }
+        let frames = self.samples / ch;
+        // Both fit in u32: `write` refuses anything larger.
+        let header = header(&self.spec, data as u32, frames as u32);
+        let io = |e| SignalError::Stream(e);
+        self.out.seek(SeekFrom::Start(0)).map_err(io)?;
+        self.out.write_all(&header).map_err(io)?;
+        self.out.seek(SeekFrom::End(0)).map_err(io)?;
+        self.out.flush().map_err(io)?;
+        Ok((
+            self.out,
+            WriteStats {
+                frames,
+                clipped: self.clipped,
+            },
+        ))
+    }
+}
+
+/// The header for `data` bytes of sample data (`frames` per channel).
+fn header(spec: &WavSpec, data: u32, frames: u32) -> Vec<u8> {
+    let float = spec.depth == Depth::Float32;
+    let bps = spec.depth.bytes() as u32;
+    let block = u32::from(spec.channels) * bps;
+    let mut h = Vec::with_capacity(FLOAT_HEADER as usize);
+    let fmt_len: u32 = if float { 18 } else { 16 };
+    let head_len = if float { FLOAT_HEADER } else { PCM_HEADER } as u32;
+    let riff = head_len - 8 + data + (data & 1);
+    h.extend_from_slice(b"RIFF");
+    h.extend_from_slice(&riff.to_le_bytes());
+    h.extend_from_slice(b"WAVE");
+    h.extend_from_slice(b"fmt ");
+    h.extend_from_slice(&fmt_len.to_le_bytes());
+    h.extend_from_slice(&(if float { 3u16 } else { 1u16 }).to_le_bytes());
+    h.extend_from_slice(&spec.channels.to_le_bytes());
+    h.extend_from_slice(&spec.rate.to_le_bytes());
+    h.extend_from_slice(&(spec.rate.wrapping_mul(block)).to_le_bytes());
+    h.extend_from_slice(&(block as u16).to_le_bytes());
+    h.extend_from_slice(&spec.depth.bits().to_le_bytes());
+    if float {
+        h.extend_from_slice(&0u16.to_le_bytes());
+        h.extend_from_slice(b"fact");
+        h.extend_from_slice(&4u32.to_le_bytes());
+        h.extend_from_slice(&frames.to_le_bytes());
+    }
+    h.extend_from_slice(b"data");
+    h.extend_from_slice(&data.to_le_bytes());
+    debug_assert_eq!(h.len() as u32, head_len);
+    h
+}
+
+/// Peak ceiling of [`listen_gain`], dBFS.
+pub const LISTEN_PEAK_DBFS: f64 = -1.0;
+
+/// Gain (a factor on volts) for a comfortable listening copy: it brings the RMS of `samples`
+/// to `target_rms_dbfs`, where RMS in dBFS is `20 log10(rms / full_scale)` (full scale as a
+/// constant level, so a full-scale sine reads -3.01 dB), but never lets the peak exceed
+/// [`LISTEN_PEAK_DBFS`] (-1 dBFS): when the two disagree the peak guard wins and the copy is
+/// quieter than asked (a crest factor above `LISTEN_PEAK_DBFS - target` dB). Empty, silent or
+/// non-finite input, or an unusable `full_scale`, gives 1.
+pub fn listen_gain(samples: &[f64], target_rms_dbfs: f64, full_scale: f64) -> f64 {
+    if samples.is_empty() || !(full_scale.is_finite() && full_scale > 0.0) {
+        return 1.0;
+    }
+    let mut sum = 0.0;
+    let mut peak = 0.0f64;
+    for &v in samples {
+        sum += v * v;
+        peak = peak.max(v.abs());
+    }
+    let rms = (sum / samples.len() as f64).sqrt();
+    if !(rms.is_finite() && rms > 0.0 && peak.is_finite()) {
+        return 1.0;
+    }
+    let want = full_scale * 10f64.powf(target_rms_dbfs / 20.0) / rms;
+    let guard = full_scale * 10f64.powf(LISTEN_PEAK_DBFS / 20.0) / peak;
+    want.min(guard)
+}
