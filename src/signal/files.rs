@@ -26,11 +26,15 @@ const MAX_STEM: usize = 100;
 
 static COUNTER: AtomicU64 = AtomicU64::new(0);
 
-/// Accept only `STEM.wav` with a stem of 1 to 100 characters from `[A-Za-z0-9_-]`: no
-/// folders, no dots, no absolute paths, nothing hidden.
+/// Extensions railsong writes into an output folder.
+pub const EXTENSIONS: [&str; 5] = ["wav", "json", "csv", "svg", "html"];
+
+/// Accept only `STEM.EXT` with a stem of 1 to 100 characters from `[A-Za-z0-9_-]` and an
+/// extension from [`EXTENSIONS`]: no folders, no dots, no absolute paths, nothing hidden.
 pub fn check_file_name(name: &str) -> Result<(), SignalError> {
-    let ok = name.strip_suffix(".wav").is_some_and(|stem| {
-        !stem.is_empty()
+    let ok = name.rsplit_once('.').is_some_and(|(stem, ext)| {
+        EXTENSIONS.contains(&ext)
+            && !stem.is_empty()
             && stem.len() <= MAX_STEM
             && stem
                 .bytes()
@@ -132,6 +136,55 @@ impl OutputDir {
         out.writer = Some(w);
         self.written.insert(name.to_string());
         Ok(out)
+    }
+
+    /// Whether `name` may be written: a valid name, and not a file railsong did not write
+    /// (unless the folder was opened with `force`). Lets a command refuse before it spends
+    /// time rendering.
+    pub fn check_writable(&self, name: &str) -> Result<(), SignalError> {
+        check_file_name(name)?;
+        let target = self.dir.join(name);
+        if fs::symlink_metadata(&target).is_ok() && !self.force && !self.written.contains(name) {
+            return Err(SignalError::Foreign { path: target });
+        }
+        Ok(())
+    }
+
+    /// Write a text file (JSON, CSV, SVG, HTML) atomically, under the same guard as WAVs.
+    pub fn write_text(&mut self, name: &str, text: &str) -> Result<(), SignalError> {
+        self.check_writable(name)?;
+        let target = self.dir.join(name);
+        let temp = self.dir.join(format!(
+            ".{name}.tmp-{}-{}",
+            std::process::id(),
+            COUNTER.fetch_add(1, Ordering::Relaxed)
+        ));
+        let result = (|| -> Result<(), SignalError> {
+            let mut file = OpenOptions::new()
+                .write(true)
+                .create_new(true)
+                .open(&temp)
+                .map_err(io_at(&temp))?;
+            file.write_all(text.as_bytes()).map_err(io_at(&temp))?;
+            file.sync_all().map_err(io_at(&temp))?;
+            drop(file);
+            fs::rename(&temp, &target).map_err(io_at(&target))
+        })();
+        if result.is_err() {
+            let _ = fs::remove_file(&temp);
+            return result;
+        }
+        if self.written.insert(name.to_string()) {
+            let manifest = self.dir.join(MANIFEST_NAME);
+            let mut m = OpenOptions::new()
+                .create(true)
+                .append(true)
+                .open(&manifest)
+                .map_err(io_at(&manifest))?;
+            m.write_all(format!("{name}\n").as_bytes())
+                .map_err(io_at(&manifest))?;
+        }
+        Ok(())
     }
 
     /// Write a whole buffer (interleaved volts) to `name` atomically.

@@ -189,7 +189,7 @@ pub enum SignalError {
     #[error("WAV output: more than 4 GiB of sample data (RIFF size limit); shorten the render or split it")]
     TooLong,
     /// An output file name does not pass the name filter.
-    #[error("output file name `{name}` is not allowed: use letters, digits, `_` and `-` followed by `.wav` (no folders)")]
+    #[error("output file name `{name}` is not allowed: use letters, digits, `_` and `-` followed by .wav, .json, .csv, .svg or .html (no folders)")]
     BadName {
         /// The rejected name.
         name: String,
