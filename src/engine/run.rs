@@ -79,84 +79,53 @@ impl std::fmt::Debug for Engine {
     }
 }
 
-/// phi(x) = tanh(x) / x.
+/// `ln(sinh(z))` for `z > 0`, without overflow.
 #[inline]
-fn phi(x: f64) -> f64 {
-    if x.abs() < 1e-4 {
-        1.0 - x * x / 3.0
+fn ln_sinh(z: f64) -> f64 {
+    if z > 1.0 {
+        z - std::f64::consts::LN_2 + (-(-2.0 * z).exp()).ln_1p()
     } else {
-        x.tanh() / x
+        z.sinh().ln()
     }
 }
 
-/// Solve one implicit step of `dv/dt = k (f phi(f Vd / Vov) (p - b v) - eps v)` with the
-/// input held as a first-order hold between `pp` and `p` and phi taken at the end of the
-/// step. Returns the new (unclamped) output.
+/// One step of `dv/dt = SR tanh(f Vd / Vov) - k eps v` with `Vd = p - b v`, the input as a
+/// first-order hold from `pp` to `p`. Returns the new (unclamped) output.
+///
+/// For a constant target the slew equation is separable: with `z = f Vd / Vov`,
+/// `dz/dt = -k f b tanh z`, so `sinh z(h) = sinh z(0) exp(-k f b h)` exactly. That exact
+/// decay, taken for the step's mean target, defines an effective `phi = ln(z0 / z1) / lam`;
+/// the step is then the exact exponential (first-order-hold) step of the linear equation with
+/// that `phi`. Small signals give `phi = 1`, the linear recursion; a slewing step moves by
+/// exactly `SR h`.
 #[allow(clippy::too_many_arguments)]
 #[inline]
 fn solve(v0: f64, p: f64, pp: f64, b: f64, eps: f64, f: f64, kh: f64, vov: f64) -> f64 {
-    let inv_vov = 1.0 / vov;
-    let rhs = |v: f64| -> f64 {
-        let g = f * phi(f * (p - b * v) * inv_vov);
-        let c = g * b + eps;
-        let (e, a1, a0) = super::plan::foh(kh * c);
-        let inv = g / c;
-        e * v0 + a1 * p * inv + a0 * pp * inv
-    };
-    // Linear (phi = 1) candidate.
-    let c1 = f * b + eps;
-    let veq_n = f * p / c1;
-    let veq_p = f * pp / c1;
-    let (e, a1, a0) = super::plan::foh(kh * c1);
-    let vl = e * v0 + a1 * veq_n + a0 * veq_p;
-    if phi(f * (p - b * vl) * inv_vov) == 1.0 {
-        return vl;
-    }
-    let mut lo = v0.min(veq_n).min(veq_p);
-    let mut hi = v0.max(veq_n).max(veq_p);
-    if eps > 0.0 {
-        lo = lo.min(0.0);
-        hi = hi.max(0.0);
-    }
-    // F(v) = v - rhs(v): F(lo) <= 0 <= F(hi). Illinois (modified regula falsi).
-    let mut fa = lo - rhs(lo);
-    let mut fb = hi - rhs(hi);
-    if fa >= 0.0 {
-        return lo;
-    }
-    if fb <= 0.0 {
-        return hi;
-    }
-    let (mut a, mut bb) = (lo, hi);
-    let tol = 1e-13 * (1.0 + a.abs().max(bb.abs()));
-    let mut side = 0i8;
-    let mut c = vl.clamp(a, bb);
-    for _ in 0..100 {
-        let fc = c - rhs(c);
-        if fc.abs() <= tol || (bb - a) <= tol {
-            return c;
-        }
-        if fc < 0.0 {
-            a = c;
-            fa = fc;
-            if side == -1 {
-                fb *= 0.5;
-            }
-            side = -1;
+    let z0 = (f * (0.5 * (p + pp) - b * v0) / vov).abs();
+    let lam = kh * f * b;
+    let phi_eff = if z0 < 1e-4 || lam <= 0.0 {
+        1.0
+    } else {
+        let ls0 = ln_sinh(z0);
+        let l1 = ls0 - lam;
+        let ln_z1 = if l1 < -20.0 {
+            l1
+        } else if l1 > 20.0 {
+            (l1 + std::f64::consts::LN_2).ln()
         } else {
-            bb = c;
-            fb = fc;
-            if side == 1 {
-                fa *= 0.5;
-            }
-            side = 1;
-        }
-        c = (a * fb - bb * fa) / (fb - fa);
-        if !(c > a && c < bb) {
-            c = 0.5 * (a + bb);
-        }
-    }
-    c
+            l1.exp().asinh().ln()
+        };
+        ((z0.ln() - ln_z1) / lam).clamp(0.0, 1.0)
+    };
+    let g = f * phi_eff;
+    let c = g * b + eps;
+    let (e, a1, a0) = super::plan::foh(kh * c);
+    let inv = g / c;
+    let v = e * v0 + (a1 * p + a0 * pp) * inv;
+    // |dv/dt| <= SR + k eps |v| holds for the exact trajectory; the first-order hold can
+    // overshoot it when the target moves by several Vov within one step.
+    let dmax = kh * (vov + eps * v0.abs());
+    v0 + (v - v0).clamp(-dmax, dmax)
 }
 
 impl Engine {
