@@ -1,0 +1,902 @@
+//! Compilation of a validated [`Patch`] into a flat [`Plan`].
+
+use super::halfband;
+use super::shaper::Shaper;
+use super::EngineError;
+use crate::model::{Envelope, Node, Patch, StageKind, Wave};
+use crate::parts::taper;
+
+/// Internal samples per processing block.
+pub const BLOCK: usize = 512;
+/// Softness of the common-mode reversal factor `tanh(m / delta)`, V.
+pub const CM_DELTA: f64 = 0.2;
+/// How far beyond the knee the integrator state may go before it is held, V.
+pub const STATE_MARGIN: f64 = 0.1;
+/// Fast-path guard: largest |Vd| / Vov for which the linear recursion is accepted.
+pub const FAST_VD: f64 = 0.005;
+
+/// The compiled patch: plain data, printable, no strings in the hot path.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Plan {
+    /// Patch title.
+    pub title: String,
+    /// Base rate, Hz.
+    pub rate: f64,
+    /// Oversampling factor K.
+    pub oversample: usize,
+    /// Internal rate K * rate, Hz.
+    pub internal_rate: f64,
+    /// Internal samples per block.
+    pub block: usize,
+    /// Buffer index of every patch source is its index; op-amp stages follow.
+    pub sources: Vec<SourcePlan>,
+    /// Op-amp stages in processing order.
+    pub stages: Vec<StagePlan>,
+    /// Passive stages (folded into the inputs that read them).
+    pub passives: Vec<PassivePlan>,
+    /// Outputs in patch order.
+    pub outputs: Vec<OutputPlan>,
+    /// Length (total taps) of every decimation stage, internal rate first.
+    pub filter_lengths: Vec<usize>,
+    /// Decimator group delay, internal samples.
+    pub decimator_delay: usize,
+    /// Largest node latency among the outputs (one sample per op-amp stage in the path, for
+    /// the clipper's lookahead), internal samples.
+    pub latency: usize,
+    /// Internal samples generated before t = 0.
+    pub preroll: usize,
+    /// Base-rate frames computed and dropped at the start.
+    pub discard: usize,
+    /// Buffer history length (largest input delay), internal samples.
+    pub history: usize,
+    /// Band-limited clipper evaluation (on by default; off gives the naive clip for
+    /// comparison).
+    pub antialias: bool,
+}
+
+/// A planned source.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SourcePlan {
+    /// Source name.
+    pub name: String,
+    /// Waveform the built-in generator produces.
+    pub wave: SourceWave,
+    /// DC offset, V.
+    pub offset: f64,
+    /// Switch-on time, s.
+    pub start: f64,
+    /// Switch-off time, s.
+    pub stop: Option<f64>,
+    /// Envelope, if any.
+    pub envelope: Option<Envelope>,
+    /// Value before t = 0 (the DC component when the source is on from the start), V.
+    pub rest: f64,
+}
+
+/// Waveforms the engine generates itself.
+#[derive(Debug, Clone, PartialEq)]
+pub enum SourceWave {
+    /// Sum of sines: (frequency Hz, peak V, phase rad).
+    Tones {
+        /// The tones.
+        tones: Vec<(f64, f64, f64)>,
+    },
+    /// Constant level.
+    Dc {
+        /// Level, V.
+        level: f64,
+    },
+}
+
+/// One input of the inverting node of a stage (through its resistor, optional capacitor).
+#[derive(Debug, Clone, PartialEq)]
+pub struct MinusInput {
+    /// Buffer read.
+    pub node: usize,
+    /// Delay applied to that buffer, internal samples.
+    pub delay: usize,
+    /// Thevenin gain of the tap (attenuators on the way), 1 for a direct connection.
+    pub gain: f64,
+    /// Total series resistance: input resistor plus the tap's Thevenin resistance, ohm.
+    pub r: f64,
+    /// Series capacitor, F.
+    pub cap: Option<f64>,
+    /// Per-step decay `exp(-h / (r C))` of the capacitor (1 without one).
+    pub decay: f64,
+    /// Millman weight `G' / G_total` of this branch.
+    pub mu: f64,
+}
+
+/// The non-inverting input when it is driven by a node.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PlusInput {
+    /// Buffer read.
+    pub node: usize,
+    /// Delay, internal samples.
+    pub delay: usize,
+    /// Tap gain.
+    pub gain: f64,
+    /// Tap Thevenin resistance (bias current flows through it), ohm.
+    pub rth: f64,
+}
+
+/// Capacitor across the feedback resistor.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FeedbackCap {
+    /// Capacitance, F.
+    pub c: f64,
+    /// Companion conductance `1 / (Rf (exp(h / (Rf C)) - 1))` (exact pole), S.
+    pub g: f64,
+    /// Millman weight of its history source.
+    pub mu: f64,
+}
+
+/// One op-amp stage, compiled: `V+ = plus_const + gain * in`, `V- = minus_const + sum mu_i
+/// (g_i s_i - vc_i) - mu_c vf + b v`, so `Vd = p - b v`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StagePlan {
+    /// Stage name.
+    pub name: String,
+    /// Part (profile) name.
+    pub part: String,
+    /// Topology.
+    pub topology: String,
+    /// Buffer this stage writes.
+    pub node: usize,
+    /// Latency of that buffer relative to source time, internal samples.
+    pub latency: usize,
+    /// Inverting-node inputs.
+    pub minus: Vec<MinusInput>,
+    /// Non-inverting input (non-inverting amplifier, follower).
+    pub plus: Option<PlusInput>,
+    /// Constant part of V+: reference + vos (- ib * rth), V.
+    pub plus_const: f64,
+    /// Constant part of V-: (G_g ref - ib) / G_total, V.
+    pub minus_const: f64,
+    /// Coefficient of the output in V- (Millman), 0 < b <= 1.
+    pub b: f64,
+    /// Feedback capacitor.
+    pub fb_cap: Option<FeedbackCap>,
+    /// Gain-bandwidth product, Hz.
+    pub gbw: f64,
+    /// Slew rate, V/s.
+    pub slew: f64,
+    /// Vov = SR / (2 pi GBW), V.
+    pub vov: f64,
+    /// 1 / A0 (0: infinite DC gain).
+    pub eps: f64,
+    /// Linear recursion: `v = e v + a1 p[n] + a0 p[n-1]`.
+    pub lin_e: f64,
+    /// Linear recursion coefficient of p[n].
+    pub lin_a1: f64,
+    /// Linear recursion coefficient of p[n-1].
+    pub lin_a0: f64,
+    /// Output clipper (swing after the current limit).
+    pub shaper: Shaper,
+    /// Swing from the profile alone (before the current limit), V.
+    pub swing: (f64, f64),
+    /// Static load conductance on the output (feedback network, downstream inputs, output
+    /// loads), S.
+    pub load_g: f64,
+    /// Integrator state limits, V.
+    pub state_lo: f64,
+    /// Integrator state upper limit, V.
+    pub state_hi: f64,
+    /// Input common-mode range (absolute volts), if limited.
+    pub cm: Option<(f64, f64)>,
+    /// Whether the part reverses phase outside the range.
+    pub reversal: bool,
+    /// Rest (steady) output state, V.
+    pub rest_v: f64,
+    /// Rest capacitor voltages of the minus inputs (0 where no capacitor), V.
+    pub rest_vc: Vec<f64>,
+    /// Rest voltage across the feedback capacitor, V.
+    pub rest_vf: f64,
+    /// Rest value of p, V.
+    pub rest_p: f64,
+}
+
+/// A passive stage (attenuator), folded into the taps of its consumers.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PassivePlan {
+    /// Stage name.
+    pub name: String,
+    /// Track resistance, ohm.
+    pub pot: f64,
+    /// Fraction of the track below the wiper.
+    pub fraction: f64,
+}
+
+/// An output.
+#[derive(Debug, Clone, PartialEq)]
+pub struct OutputPlan {
+    /// Output name.
+    pub name: String,
+    /// Buffer read.
+    pub node: usize,
+    /// Alignment delay, internal samples.
+    pub delay: usize,
+    /// Overall gain from the buffer: tap gain times load / (series + Rth + load).
+    pub gain: f64,
+    /// Thevenin resistance of the tap, ohm.
+    pub rth: f64,
+    /// Rest value, V.
+    pub rest: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Consumer {
+    Input(usize, usize),
+    Output(usize),
+}
+
+#[derive(Debug, Clone, Copy)]
+struct Tap {
+    base: usize,
+    gain: f64,
+    rth: f64,
+}
+
+struct Ctx<'a> {
+    patch: &'a Patch,
+    /// buffer index of every base node: sources then op stages; None for passive stages
+    stage_buf: Vec<Option<usize>>,
+    /// consumers of every patch stage node with their (approximate, to ~0 V) conductance
+    loads: Vec<Vec<(Consumer, f64)>>,
+    /// input resistance of each attenuator (track top plus bottom || its loads)
+    att_rin: Vec<f64>,
+}
+
+fn check_node(patch: &Patch, node: Node, before: usize, who: &str) -> Result<(), EngineError> {
+    let ok = match node {
+        Node::Source(i) => i < patch.sources.len(),
+        Node::Stage(i) => i < before,
+    };
+    if ok {
+        Ok(())
+    } else {
+        Err(EngineError::BadNode {
+            consumer: who.to_string(),
+        })
+    }
+}
+
+fn positive(v: f64, what: impl FnOnce() -> String) -> Result<f64, EngineError> {
+    if v.is_finite() && v > 0.0 {
+        Ok(v)
+    } else {
+        Err(EngineError::BadValue {
+            what: what(),
+            expected: "a finite value > 0",
+        })
+    }
+}
+
+impl Ctx<'_> {
+    fn base_of(&self, node: Node) -> Option<usize> {
+        match node {
+            Node::Source(i) => Some(i),
+            Node::Stage(i) => self.stage_buf[i],
+        }
+    }
+
+    fn tap(&self, consumer: Consumer, node: Node) -> Tap {
+        if let Some(base) = self.base_of(node) {
+            return Tap {
+                base,
+                gain: 1.0,
+                rth: 0.0,
+            };
+        }
+        let Node::Stage(a) = node else {
+            unreachable!("sources are base nodes")
+        };
+        let StageKind::Attenuator {
+            from,
+            pot,
+            taper: t,
+            at,
+        } = &self.patch.stages[a].kind
+        else {
+            unreachable!("non-base stages are attenuators")
+        };
+        let up = self.tap(Consumer::Input(a, 0), *from);
+        let frac = taper::fraction(*t, *at);
+        let r_top = pot * (1.0 - frac) + up.rth;
+        let r_bot = pot * frac;
+        let other: f64 = self.loads[a]
+            .iter()
+            .filter(|(c, _)| *c != consumer)
+            .map(|(_, g)| g)
+            .sum();
+        let r_bot2 = if r_bot > 0.0 {
+            1.0 / (1.0 / r_bot + other)
+        } else {
+            0.0
+        };
+        let sum = r_bot2 + r_top;
+        let (gain, rth) = if sum > 0.0 {
+            (r_bot2 / sum, r_bot2 * r_top / sum)
+        } else {
+            (0.0, 0.0)
+        };
+        Tap {
+            base: up.base,
+            gain: up.gain * gain,
+            rth,
+        }
+    }
+}
+
+/// First-order-hold coefficients of the exact exponential step with rate `lam = k h c`:
+/// returns (E, alpha1, alpha0) with E + alpha1 + alpha0 = 1.
+#[inline]
+pub fn foh(lam: f64) -> (f64, f64, f64) {
+    let e = (-lam).exp();
+    let r = if lam < 1e-9 {
+        1.0 - 0.5 * lam
+    } else {
+        -(-lam).exp_m1() / lam
+    };
+    (e, 1.0 - r, r - e)
+}
+
+/// Compile a validated patch.
+pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
+    let k = patch.oversample;
+    if !matches!(k, 1 | 2 | 4 | 8 | 16) {
+        return Err(EngineError::BadOversample { value: k });
+    }
+    if !(patch.rate.is_finite() && patch.rate > 0.0) {
+        return Err(EngineError::BadValue {
+            what: "patch.rate".into(),
+            expected: "a finite rate > 0 Hz",
+        });
+    }
+    if patch.rails.pos.partial_cmp(&patch.rails.neg) != Some(std::cmp::Ordering::Greater) {
+        return Err(EngineError::BadValue {
+            what: "rails".into(),
+            expected: "rails.pos above rails.neg",
+        });
+    }
+    let fs = patch.rate * k as f64;
+    let h = 1.0 / fs;
+    let ns = patch.sources.len();
+
+    // Sources.
+    let mut sources = Vec::new();
+    for s in &patch.sources {
+        let wave = match &s.wave {
+            Wave::Sine { freq, amp, phase } => SourceWave::Tones {
+                tones: vec![(*freq, *amp, *phase)],
+            },
+            Wave::Multitone { tones } => SourceWave::Tones {
+                tones: tones.iter().map(|t| (t.freq, t.amp, t.phase)).collect(),
+            },
+            Wave::Dc { level } => SourceWave::Dc { level: *level },
+            other => {
+                return Err(EngineError::UnsupportedWave {
+                    source_name: s.name.clone(),
+                    wave: wave_name(other),
+                })
+            }
+        };
+        let dc = match wave {
+            SourceWave::Dc { level } => level + s.offset,
+            SourceWave::Tones { .. } => s.offset,
+        };
+        let rest = if s.start <= 0.0 && s.envelope.is_none() {
+            dc
+        } else {
+            0.0
+        };
+        sources.push(SourcePlan {
+            name: s.name.clone(),
+            wave,
+            offset: s.offset,
+            start: s.start,
+            stop: s.stop,
+            envelope: s.envelope,
+            rest,
+        });
+    }
+
+    // Validate references and assign buffers.
+    let mut stage_buf = Vec::new();
+    let mut next = ns;
+    for (i, st) in patch.stages.iter().enumerate() {
+        let who = format!("stage `{}`", st.name);
+        match &st.kind {
+            StageKind::InvertingSum {
+                inputs, feedback, ..
+            } => {
+                if inputs.is_empty() {
+                    return Err(EngineError::BadValue {
+                        what: format!("{who} inputs"),
+                        expected: "at least one input",
+                    });
+                }
+                for (j, inp) in inputs.iter().enumerate() {
+                    check_node(patch, inp.from, i, &who)?;
+                    positive(inp.r, || format!("{who} inputs[{j}].r"))?;
+                    if let Some(c) = inp.c {
+                        positive(c, || format!("{who} inputs[{j}].c"))?;
+                    }
+                }
+                positive(feedback.r, || format!("{who} feedback.r"))?;
+                if let Some(c) = feedback.c {
+                    positive(c, || format!("{who} feedback.c"))?;
+                }
+            }
+            StageKind::NonInverting {
+                from,
+                r_fb,
+                c_fb,
+                r_g,
+                ..
+            } => {
+                check_node(patch, *from, i, &who)?;
+                positive(*r_fb, || format!("{who} r_fb"))?;
+                positive(*r_g, || format!("{who} r_g"))?;
+                if let Some(c) = c_fb {
+                    positive(*c, || format!("{who} c_fb"))?;
+                }
+            }
+            StageKind::Follower { from } => check_node(patch, *from, i, &who)?,
+            StageKind::Attenuator { from, pot, .. } => {
+                check_node(patch, *from, i, &who)?;
+                positive(*pot, || format!("{who} pot"))?;
+            }
+        }
+        if matches!(st.kind, StageKind::Attenuator { .. }) {
+            stage_buf.push(None);
+        } else {
+            if st.part.is_none() {
+                return Err(EngineError::MissingPart {
+                    stage: st.name.clone(),
+                });
+            }
+            stage_buf.push(Some(next));
+            next += 1;
+        }
+    }
+    for o in &patch.outputs {
+        check_node(
+            patch,
+            o.from,
+            patch.stages.len(),
+            &format!("output `{}`", o.name),
+        )?;
+        if !(o.series.is_finite() && o.series >= 0.0) {
+            return Err(EngineError::BadValue {
+                what: format!("output `{}` series", o.name),
+                expected: "a finite resistance >= 0",
+            });
+        }
+        if let Some(l) = o.load {
+            positive(l, || format!("output `{}` load", o.name))?;
+        }
+    }
+
+    // Loads of every stage node, and attenuator input resistances (reverse order: consumers
+    // come later).
+    let n_st = patch.stages.len();
+    let mut loads: Vec<Vec<(Consumer, f64)>> = vec![Vec::new(); n_st];
+    let mut att_rin = vec![0.0; n_st];
+    for (o, out) in patch.outputs.iter().enumerate() {
+        if let (Node::Stage(i), Some(l)) = (out.from, out.load) {
+            loads[i].push((Consumer::Output(o), 1.0 / (out.series + l)));
+        }
+    }
+    for i in (0..n_st).rev() {
+        let st = &patch.stages[i];
+        match &st.kind {
+            StageKind::InvertingSum { inputs, .. } => {
+                for (j, inp) in inputs.iter().enumerate() {
+                    if let Node::Stage(a) = inp.from {
+                        loads[a].push((Consumer::Input(i, j), 1.0 / inp.r));
+                    }
+                }
+            }
+            StageKind::Attenuator {
+                from,
+                pot,
+                taper: t,
+                at,
+            } => {
+                let frac = taper::fraction(*t, *at);
+                let g_loads: f64 = loads[i].iter().map(|(_, g)| g).sum();
+                let r_bot = pot * frac;
+                let bot = if r_bot > 0.0 {
+                    1.0 / (1.0 / r_bot + g_loads)
+                } else {
+                    0.0
+                };
+                att_rin[i] = pot * (1.0 - frac) + bot;
+                if let Node::Stage(a) = from {
+                    if att_rin[i] > 0.0 {
+                        loads[*a].push((Consumer::Input(i, 0), 1.0 / att_rin[i]));
+                    }
+                }
+            }
+            _ => {}
+        }
+    }
+    let ctx = Ctx {
+        patch,
+        stage_buf,
+        loads,
+        att_rin,
+    };
+
+    // Latencies of base nodes.
+    let nb = next;
+    let mut node_lat = vec![0usize; nb];
+    let mut stages = Vec::new();
+    let mut passives = Vec::new();
+    let mut rest_node = vec![0.0; nb];
+    for (i, s) in sources.iter().enumerate() {
+        rest_node[i] = s.rest;
+    }
+    let mut history = 1;
+    for (i, st) in patch.stages.iter().enumerate() {
+        let Some(buf) = ctx.stage_buf[i] else {
+            if let StageKind::Attenuator {
+                pot, taper: t, at, ..
+            } = &st.kind
+            {
+                passives.push(PassivePlan {
+                    name: st.name.clone(),
+                    pot: *pot,
+                    fraction: taper::fraction(*t, *at),
+                });
+            }
+            continue;
+        };
+        let part = st.part.as_ref().ok_or_else(|| EngineError::MissingPart {
+            stage: st.name.clone(),
+        })?;
+        positive(part.gbw, || format!("part `{}` gbw", part.name))?;
+        positive(part.slew, || format!("part `{}` slew", part.name))?;
+        let kgain = std::f64::consts::TAU * part.gbw;
+        let vov = part.slew / kgain;
+        let eps = match part.a0 {
+            Some(a) if a.is_finite() && a > 0.0 => 1.0 / a,
+            _ => 0.0,
+        };
+        let ib = if part.ib.is_finite() { part.ib } else { 0.0 };
+        let vos = if part.vos.is_finite() { part.vos } else { 0.0 };
+        let mut minus = Vec::new();
+        let mut taps = Vec::new();
+        let mut plus = None;
+        let plus_const;
+        let minus_const;
+        let b;
+        let mut fb_cap = None;
+        let topology;
+        let g_fb_load;
+        // DC (caps open) Millman for the rest state: V- = a_dc + beta_dc v.
+        let a_dc;
+        let beta_dc;
+        let vp_rest;
+        let fb_companion = |rf: f64, c: Option<f64>| -> f64 {
+            match c {
+                Some(c) => 1.0 / (rf * (h / (rf * c)).exp_m1()),
+                None => 0.0,
+            }
+        };
+        match &st.kind {
+            StageKind::InvertingSum {
+                inputs,
+                feedback,
+                reference,
+                single,
+            } => {
+                topology = if *single {
+                    "inverting"
+                } else {
+                    "inverting-sum"
+                };
+                let gf = 1.0 / feedback.r;
+                let gc = fb_companion(feedback.r, feedback.c);
+                let mut gsum = 0.0;
+                let mut dc_g = 0.0;
+                let mut dc_num = 0.0;
+                for (j, inp) in inputs.iter().enumerate() {
+                    let t = ctx.tap(Consumer::Input(i, j), inp.from);
+                    let r = inp.r + t.rth;
+                    let (decay, g) = match inp.c {
+                        Some(c) => {
+                            let d = (-h / (r * c)).exp();
+                            (d, d / r)
+                        }
+                        None => {
+                            dc_g += 1.0 / r;
+                            dc_num += t.gain * rest_node[t.base] / r;
+                            (1.0, 1.0 / r)
+                        }
+                    };
+                    gsum += g;
+                    minus.push(MinusInput {
+                        node: t.base,
+                        delay: 0,
+                        gain: t.gain,
+                        r,
+                        cap: inp.c,
+                        decay,
+                        mu: g,
+                    });
+                    taps.push(t.base);
+                }
+                let gtot = gsum + gf + gc;
+                for m in &mut minus {
+                    m.mu /= gtot;
+                }
+                b = (gf + gc) / gtot;
+                minus_const = -ib / gtot;
+                plus_const = reference + vos;
+                if let Some(c) = feedback.c {
+                    fb_cap = Some(FeedbackCap {
+                        c,
+                        g: gc,
+                        mu: gc / gtot,
+                    });
+                }
+                g_fb_load = gf;
+                let gd = dc_g + gf;
+                a_dc = (dc_num - ib) / gd;
+                beta_dc = gf / gd;
+                vp_rest = plus_const;
+            }
+            StageKind::NonInverting {
+                from,
+                r_fb,
+                c_fb,
+                r_g,
+                reference,
+            } => {
+                topology = "non-inverting";
+                let t = ctx.tap(Consumer::Input(i, 0), *from);
+                let gf = 1.0 / r_fb;
+                let gg = 1.0 / r_g;
+                let gc = fb_companion(*r_fb, *c_fb);
+                let gtot = gg + gf + gc;
+                b = (gf + gc) / gtot;
+                minus_const = (gg * reference - ib) / gtot;
+                plus_const = vos - ib * t.rth;
+                plus = Some(PlusInput {
+                    node: t.base,
+                    delay: 0,
+                    gain: t.gain,
+                    rth: t.rth,
+                });
+                taps.push(t.base);
+                if let Some(c) = c_fb {
+                    fb_cap = Some(FeedbackCap {
+                        c: *c,
+                        g: gc,
+                        mu: gc / gtot,
+                    });
+                }
+                g_fb_load = 1.0 / (r_fb + r_g);
+                a_dc = (gg * reference - ib) / (gg + gf);
+                beta_dc = gf / (gg + gf);
+                vp_rest = plus_const + t.gain * rest_node[t.base];
+            }
+            StageKind::Follower { from } => {
+                topology = "follower";
+                let t = ctx.tap(Consumer::Input(i, 0), *from);
+                b = 1.0;
+                minus_const = 0.0;
+                plus_const = vos - ib * t.rth;
+                plus = Some(PlusInput {
+                    node: t.base,
+                    delay: 0,
+                    gain: t.gain,
+                    rth: t.rth,
+                });
+                taps.push(t.base);
+                g_fb_load = 0.0;
+                a_dc = 0.0;
+                beta_dc = 1.0;
+                vp_rest = plus_const + t.gain * rest_node[t.base];
+            }
+            StageKind::Attenuator { .. } => unreachable!("handled above"),
+        }
+
+        // Static load and swing.
+        let mut load_g = g_fb_load;
+        for (c, g) in &ctx.loads[i] {
+            load_g += match c {
+                Consumer::Input(j, _) => match patch.stages[*j].kind {
+                    StageKind::Attenuator { .. } => {
+                        if ctx.att_rin[*j] > 0.0 {
+                            1.0 / ctx.att_rin[*j]
+                        } else {
+                            0.0
+                        }
+                    }
+                    _ => *g,
+                },
+                Consumer::Output(_) => *g,
+            };
+        }
+        let mut lo = patch.rails.neg + part.drop_neg.max(0.0);
+        let mut hi = patch.rails.pos - part.drop_pos.max(0.0);
+        if hi < lo {
+            let mid = 0.5 * (hi + lo);
+            hi = mid;
+            lo = mid;
+        }
+        let swing = (lo, hi);
+        if let Some(isc) = part.isc {
+            if isc.is_finite() && isc > 0.0 && load_g > 0.0 {
+                let vmax = isc / load_g;
+                hi = hi.min(vmax).max(lo);
+                lo = lo.max(-vmax).min(hi);
+            }
+        }
+        let w = part.knee.max(0.0).min(0.25 * (hi - lo));
+        let shaper = Shaper { lo, hi, w };
+        let cm = match (part.cm_low, part.cm_high) {
+            (None, None) => None,
+            (l, u) => Some((
+                l.map_or(f64::NEG_INFINITY, |l| patch.rails.neg + l),
+                u.map_or(f64::INFINITY, |u| patch.rails.pos - u),
+            )),
+        };
+
+        // Rest state.
+        let vp_eff = match cm {
+            Some((cl, ch)) if !part.reversal => vp_rest.clamp(cl, ch.max(cl)),
+            _ => vp_rest,
+        };
+        let v_lin = (vp_eff - a_dc) / (beta_dc + eps);
+        let rest_v = if v_lin.is_finite() {
+            v_lin.clamp(lo, hi)
+        } else {
+            0.0
+        };
+        let vminus = a_dc + beta_dc * rest_v;
+        let rest_vc: Vec<f64> = minus
+            .iter()
+            .map(|m| {
+                if m.cap.is_some() {
+                    m.gain * rest_node[m.node] - vminus
+                } else {
+                    0.0
+                }
+            })
+            .collect();
+        let rest_vf = if fb_cap.is_some() {
+            rest_v - vminus
+        } else {
+            0.0
+        };
+        let mrest = minus_const
+            + minus
+                .iter()
+                .zip(&rest_vc)
+                .map(|(m, vc)| m.mu * (m.gain * rest_node[m.node] - vc))
+                .sum::<f64>()
+            - fb_cap.as_ref().map_or(0.0, |f| f.mu * rest_vf);
+        let rest_p = vp_eff - mrest;
+        rest_node[buf] = shaper.apply(rest_v);
+
+        let lat = 1 + taps.iter().map(|&t| node_lat[t]).max().unwrap_or(0);
+        node_lat[buf] = lat;
+        for m in &mut minus {
+            m.delay = lat - 1 - node_lat[m.node];
+            history = history.max(m.delay);
+        }
+        if let Some(p) = &mut plus {
+            p.delay = lat - 1 - node_lat[p.node];
+            history = history.max(p.delay);
+        }
+        let (e, a1, a0) = foh(kgain * h * (b + eps));
+        stages.push(StagePlan {
+            name: st.name.clone(),
+            part: part.name.clone(),
+            topology: topology.to_string(),
+            node: buf,
+            latency: lat,
+            minus,
+            plus,
+            plus_const,
+            minus_const,
+            b,
+            fb_cap,
+            gbw: part.gbw,
+            slew: part.slew,
+            vov,
+            eps,
+            lin_e: e,
+            lin_a1: a1 / (b + eps),
+            lin_a0: a0 / (b + eps),
+            shaper,
+            swing,
+            load_g,
+            state_lo: lo - w - STATE_MARGIN,
+            state_hi: hi + w + STATE_MARGIN,
+            cm,
+            reversal: part.reversal,
+            rest_v,
+            rest_vc,
+            rest_vf,
+            rest_p,
+        });
+    }
+
+    // Outputs.
+    let mut outputs = Vec::new();
+    let mut latency = 0;
+    let mut taps = Vec::new();
+    for (o, out) in patch.outputs.iter().enumerate() {
+        let t = ctx.tap(Consumer::Output(o), out.from);
+        latency = latency.max(node_lat[t.base]);
+        taps.push(t);
+    }
+    for (out, t) in patch.outputs.iter().zip(&taps) {
+        let div = match out.load {
+            Some(l) => l / (out.series + t.rth + l),
+            None => 1.0,
+        };
+        let delay = latency - node_lat[t.base];
+        history = history.max(delay);
+        outputs.push(OutputPlan {
+            name: out.name.clone(),
+            node: t.base,
+            delay,
+            gain: t.gain * div,
+            rth: t.rth,
+            rest: t.gain * div * rest_node[t.base],
+        });
+    }
+
+    let chain = halfband::chain(k);
+    let filter_lengths: Vec<usize> = chain.iter().map(|t| 4 * t.len() - 1).collect();
+    let mut gdelay = 0;
+    let mut step = 1;
+    for t in &chain {
+        gdelay += (2 * t.len() - 1) * step;
+        step *= 2;
+    }
+    let total = gdelay + latency;
+    let discard = total.div_ceil(k);
+    let preroll = discard * k - total;
+    Ok(Plan {
+        title: patch.title.clone(),
+        rate: patch.rate,
+        oversample: k,
+        internal_rate: fs,
+        block: BLOCK,
+        sources,
+        stages,
+        passives,
+        outputs,
+        filter_lengths,
+        decimator_delay: gdelay,
+        latency,
+        preroll,
+        discard,
+        history,
+        antialias: true,
+    })
+}
+
+fn wave_name(w: &Wave) -> &'static str {
+    match w {
+        Wave::Sine { .. } => "sine",
+        Wave::Square { .. } => "square",
+        Wave::Triangle { .. } => "triangle",
+        Wave::Saw { .. } => "saw",
+        Wave::Pulse { .. } => "pulse",
+        Wave::Multitone { .. } => "multitone",
+        Wave::Sweep { .. } => "sweep",
+        Wave::Noise { .. } => "noise",
+        Wave::Dc { .. } => "dc",
+        Wave::Steps { .. } => "steps",
+        Wave::Ramp { .. } => "ramp",
+        Wave::File { .. } => "file",
+    }
+}

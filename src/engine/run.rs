@@ -1,0 +1,532 @@
+//! The running engine: block processing of a [`Plan`].
+
+use super::feed::{SourceFeed, ToneFeed};
+use super::halfband::Decimator;
+use super::plan::{Plan, StagePlan, FAST_VD};
+use super::StageEvents;
+
+/// Per-stage running state.
+#[derive(Debug, Clone)]
+struct StageState {
+    v: f64,
+    p_prev: f64,
+    vc: Vec<f64>,
+    vf: f64,
+    x1: f64,
+    x2: f64,
+    clip: u64,
+    slew: u64,
+    cm: u64,
+    rev: u64,
+}
+
+impl StageState {
+    fn rest(sp: &StagePlan) -> StageState {
+        StageState {
+            v: sp.rest_v,
+            p_prev: sp.rest_p,
+            vc: sp.rest_vc.clone(),
+            vf: sp.rest_vf,
+            x1: sp.rest_v,
+            x2: sp.rest_v,
+            clip: 0,
+            slew: 0,
+            cm: 0,
+            rev: 0,
+        }
+    }
+
+    fn restore_from(&mut self, o: &StageState) {
+        self.v = o.v;
+        self.p_prev = o.p_prev;
+        self.vc.copy_from_slice(&o.vc);
+        self.vf = o.vf;
+        self.x1 = o.x1;
+        self.x2 = o.x2;
+        self.clip = o.clip;
+        self.slew = o.slew;
+        self.cm = o.cm;
+        self.rev = o.rev;
+    }
+}
+
+/// Runs a compiled [`Plan`] block by block.
+pub struct Engine {
+    plan: Plan,
+    feeds: Vec<Box<dyn SourceFeed>>,
+    bufs: Vec<Vec<f64>>,
+    states: Vec<StageState>,
+    saved: Vec<StageState>,
+    xbuf: Vec<f64>,
+    pbuf: Vec<f64>,
+    out_int: Vec<f64>,
+    decims: Vec<Decimator>,
+    out_base: Vec<Vec<f64>>,
+    pos: usize,
+    avail: usize,
+    skip: usize,
+    fast: bool,
+    fast_blocks: u64,
+    full_blocks: u64,
+}
+
+impl std::fmt::Debug for Engine {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Engine")
+            .field("plan", &self.plan)
+            .field("fast", &self.fast)
+            .finish_non_exhaustive()
+    }
+}
+
+/// `ln(sinh(z))` for `z > 0`, without overflow.
+#[inline]
+fn ln_sinh(z: f64) -> f64 {
+    if z > 1.0 {
+        z - std::f64::consts::LN_2 + (-(-2.0 * z).exp()).ln_1p()
+    } else {
+        z.sinh().ln()
+    }
+}
+
+/// One step of `dv/dt = SR tanh(f Vd / Vov) - k eps v` with `Vd = p - b v`, the input as a
+/// first-order hold from `pp` to `p`. Returns the new (unclamped) output.
+///
+/// For a constant target the slew equation is separable: with `z = f Vd / Vov`,
+/// `dz/dt = -k f b tanh z`, so `sinh z(h) = sinh z(0) exp(-k f b h)` exactly. That exact
+/// decay, taken for the step's mean target, defines an effective `phi = ln(z0 / z1) / lam`;
+/// the step is then the exact exponential (first-order-hold) step of the linear equation with
+/// that `phi`. Small signals give `phi = 1`, the linear recursion; a slewing step moves by
+/// exactly `SR h`.
+#[allow(clippy::too_many_arguments)]
+#[inline]
+fn solve(v0: f64, p: f64, pp: f64, b: f64, eps: f64, f: f64, kh: f64, vov: f64) -> f64 {
+    let z0 = (f * (0.5 * (p + pp) - b * v0) / vov).abs();
+    let lam = kh * f * b;
+    let phi_eff = if z0 < 1e-4 || lam <= 0.0 {
+        1.0
+    } else {
+        let ls0 = ln_sinh(z0);
+        let l1 = ls0 - lam;
+        let ln_z1 = if l1 < -20.0 {
+            l1
+        } else if l1 > 20.0 {
+            (l1 + std::f64::consts::LN_2).ln()
+        } else {
+            l1.exp().asinh().ln()
+        };
+        ((z0.ln() - ln_z1) / lam).clamp(0.0, 1.0)
+    };
+    let g = f * phi_eff;
+    let c = g * b + eps;
+    let (e, a1, a0) = super::plan::foh(kh * c);
+    let inv = g / c;
+    let v = e * v0 + (a1 * p + a0 * pp) * inv;
+    // |dv/dt| <= SR + k eps |v| holds for the exact trajectory; the first-order hold can
+    // overshoot it when the target moves by several Vov within one step.
+    let dmax = kh * (vov + eps * v0.abs());
+    v0 + (v - v0).clamp(-dmax, dmax)
+}
+
+impl Engine {
+    /// An engine with the built-in generators for every source.
+    pub fn new(plan: &Plan) -> Engine {
+        Engine::with_feeds(plan, Vec::new())
+    }
+
+    /// An engine whose first `feeds.len()` sources come from the given feeds (in source
+    /// order); the remaining sources use the built-in generators. Extra feeds are ignored.
+    pub fn with_feeds(plan: &Plan, feeds: Vec<Box<dyn SourceFeed>>) -> Engine {
+        let plan = plan.clone();
+        let mut given = feeds.into_iter();
+        let mut all: Vec<Box<dyn SourceFeed>> = Vec::new();
+        for s in &plan.sources {
+            match given.next() {
+                Some(f) => all.push(f),
+                None => all.push(Box::new(ToneFeed::new(s, plan.internal_rate, plan.preroll))),
+            }
+        }
+        let nb = plan.sources.len() + plan.stages.len();
+        let b = plan.block;
+        let hist = plan.history;
+        let bufs = vec![vec![0.0; hist + b]; nb];
+        let states: Vec<StageState> = plan.stages.iter().map(StageState::rest).collect();
+        let saved = states.clone();
+        let decims = plan
+            .outputs
+            .iter()
+            .map(|_| Decimator::new(plan.oversample, b))
+            .collect();
+        let out_base = vec![vec![0.0; b / plan.oversample]; plan.outputs.len()];
+        let mut e = Engine {
+            feeds: all,
+            bufs,
+            states,
+            saved,
+            xbuf: vec![0.0; b],
+            pbuf: vec![0.0; b],
+            out_int: vec![0.0; b],
+            decims,
+            out_base,
+            pos: 0,
+            avail: 0,
+            skip: plan.discard,
+            fast: true,
+            fast_blocks: 0,
+            full_blocks: 0,
+            plan,
+        };
+        e.reset();
+        e
+    }
+
+    /// The plan this engine runs.
+    pub fn plan(&self) -> &Plan {
+        &self.plan
+    }
+
+    /// Enable or disable the block-linear fast path (for verification; on by default).
+    pub fn set_fast_path(&mut self, on: bool) {
+        self.fast = on;
+    }
+
+    /// Number of (stage, block) pairs run by the fast path and by the full model.
+    pub fn path_counts(&self) -> (u64, u64) {
+        (self.fast_blocks, self.full_blocks)
+    }
+
+    /// Back to the start: reproduces a render bit for bit. Does not allocate.
+    pub fn reset(&mut self) {
+        for f in &mut self.feeds {
+            f.reset();
+        }
+        let hist = self.plan.history;
+        for (i, s) in self.plan.sources.iter().enumerate() {
+            self.bufs[i][..hist].fill(s.rest);
+        }
+        for (sp, st) in self.plan.stages.iter().zip(self.states.iter_mut()) {
+            self.bufs[sp.node][..hist].fill(sp.shaper.apply(sp.rest_v));
+            st.v = sp.rest_v;
+            st.p_prev = sp.rest_p;
+            st.vc.copy_from_slice(&sp.rest_vc);
+            st.vf = sp.rest_vf;
+            st.x1 = sp.rest_v;
+            st.x2 = sp.rest_v;
+            st.clip = 0;
+            st.slew = 0;
+            st.cm = 0;
+            st.rev = 0;
+        }
+        for (d, o) in self.decims.iter_mut().zip(&self.plan.outputs) {
+            d.reset(o.rest);
+        }
+        self.pos = 0;
+        self.avail = 0;
+        self.skip = self.plan.discard;
+        self.fast_blocks = 0;
+        self.full_blocks = 0;
+    }
+
+    /// Event durations per op-amp stage so far, seconds.
+    pub fn events(&self) -> Vec<StageEvents> {
+        let h = 1.0 / self.plan.internal_rate;
+        self.plan
+            .stages
+            .iter()
+            .zip(&self.states)
+            .map(|(sp, st)| StageEvents {
+                stage: sp.name.clone(),
+                clip_s: st.clip as f64 * h,
+                slew_s: st.slew as f64 * h,
+                cm_out_s: st.cm as f64 * h,
+                reversed_s: st.rev as f64 * h,
+            })
+            .collect()
+    }
+
+    /// Fill the next base-rate frames of every output. All slices should have the same
+    /// length (the shortest one sets how many frames are produced); slices beyond the number
+    /// of outputs are left untouched.
+    pub fn process(&mut self, outs: &mut [&mut [f64]]) {
+        let n = outs.iter().map(|o| o.len()).min().unwrap_or(0);
+        let no = self.plan.outputs.len().min(outs.len());
+        let mut done = 0;
+        while done < n {
+            if self.pos >= self.avail {
+                self.block();
+                continue;
+            }
+            let m = (self.avail - self.pos).min(n - done);
+            for (o, out) in outs.iter_mut().enumerate().take(no) {
+                out[done..done + m].copy_from_slice(&self.out_base[o][self.pos..self.pos + m]);
+            }
+            self.pos += m;
+            done += m;
+        }
+    }
+
+    /// Compute one internal block and decimate it.
+    fn block(&mut self) {
+        let b = self.plan.block;
+        let hist = self.plan.history;
+        let ns = self.plan.sources.len();
+        for (i, f) in self.feeds.iter_mut().enumerate() {
+            f.fill(&mut self.bufs[i][hist..hist + b]);
+        }
+        for si in 0..self.plan.stages.len() {
+            let sp = &self.plan.stages[si];
+            let mut own = std::mem::take(&mut self.bufs[sp.node]);
+            let st = &mut self.states[si];
+            let mut ok = false;
+            if self.fast {
+                self.saved[si].restore_from(st);
+                ok = linear_block(sp, st, &self.bufs, hist, &mut self.xbuf, &mut self.pbuf);
+                if ok {
+                    self.fast_blocks += 1;
+                } else {
+                    st.restore_from(&self.saved[si]);
+                }
+            }
+            if !ok {
+                self.full_blocks += 1;
+                full_block(
+                    sp,
+                    st,
+                    &self.bufs,
+                    hist,
+                    &mut self.xbuf,
+                    1.0 / self.plan.internal_rate,
+                );
+            }
+            shape_block(
+                sp,
+                st,
+                &self.xbuf,
+                &mut own[hist..hist + b],
+                self.plan.antialias,
+            );
+            self.bufs[sp.node] = own;
+        }
+        let kf = self.plan.oversample;
+        for (o, op) in self.plan.outputs.iter().enumerate() {
+            let src = &self.bufs[op.node][hist - op.delay..hist - op.delay + b];
+            for (d, s) in self.out_int.iter_mut().zip(src) {
+                *d = op.gain * s;
+            }
+            self.decims[o].process(&self.out_int, &mut self.out_base[o][..b / kf]);
+        }
+        for buf in self.bufs.iter_mut().take(ns + self.plan.stages.len()) {
+            buf.copy_within(b..b + hist, 0);
+        }
+        self.avail = b / kf;
+        self.pos = self.skip.min(self.avail);
+        self.skip -= self.pos;
+    }
+}
+
+/// The linear recursion over a block; returns false (state to be restored) when a sample came
+/// near a limit.
+fn linear_block(
+    sp: &StagePlan,
+    st: &mut StageState,
+    bufs: &[Vec<f64>],
+    hist: usize,
+    x: &mut [f64],
+    p: &mut [f64],
+) -> bool {
+    let b = x.len();
+    let (e, a1, a0, bcoef) = (sp.lin_e, sp.lin_a1, sp.lin_a0, sp.b);
+    let vd_max = FAST_VD * sp.vov;
+    let (slo, shi) = (sp.state_lo, sp.state_hi);
+    let margin = if sp.reversal {
+        20.0 * super::plan::CM_DELTA
+    } else {
+        0.0
+    };
+    let has_caps = sp.fb_cap.is_some() || sp.minus.iter().any(|m| m.cap.is_some());
+    // V+ over the block, checked against the common-mode range.
+    let c0 = sp.plus_const - sp.minus_const;
+    if let Some(pi) = &sp.plus {
+        let src = &bufs[pi.node][hist - pi.delay..hist - pi.delay + b];
+        let mut mn = f64::INFINITY;
+        let mut mx = f64::NEG_INFINITY;
+        for (d, s) in p.iter_mut().zip(src) {
+            let vp = sp.plus_const + pi.gain * s;
+            mn = mn.min(vp);
+            mx = mx.max(vp);
+            *d = vp - sp.minus_const;
+        }
+        if let Some((cl, ch)) = sp.cm {
+            if mn < cl + margin || mx > ch - margin {
+                return false;
+            }
+        }
+    } else {
+        if let Some((cl, ch)) = sp.cm {
+            if sp.plus_const < cl + margin || sp.plus_const > ch - margin {
+                return false;
+            }
+        }
+        p.fill(c0);
+    }
+    if !has_caps {
+        for m in &sp.minus {
+            let w = m.mu * m.gain;
+            let src = &bufs[m.node][hist - m.delay..hist - m.delay + b];
+            for (d, s) in p.iter_mut().zip(src) {
+                *d -= w * s;
+            }
+        }
+        let mut v = st.v;
+        let mut pp = st.p_prev;
+        let mut vdm = 0.0f64;
+        let mut xmn = f64::INFINITY;
+        let mut xmx = f64::NEG_INFINITY;
+        for (xo, &pn) in x.iter_mut().zip(p.iter()) {
+            v = e * v + a1 * pn + a0 * pp;
+            pp = pn;
+            *xo = v;
+            vdm = vdm.max((pn - bcoef * v).abs());
+            xmn = xmn.min(v);
+            xmx = xmx.max(v);
+        }
+        if vdm > vd_max || xmn < slo || xmx > shi || !v.is_finite() {
+            return false;
+        }
+        st.v = v;
+        st.p_prev = pp;
+        return true;
+    }
+    // With capacitors: per-sample companion updates.
+    let mut v = st.v;
+    let mut pp = st.p_prev;
+    for t in 0..b {
+        let mut mrest = 0.0;
+        for (m, vc) in sp.minus.iter().zip(st.vc.iter()) {
+            let s = bufs[m.node][hist - m.delay + t];
+            mrest += m.mu * (m.gain * s - vc);
+        }
+        if let Some(fc) = &sp.fb_cap {
+            mrest -= fc.mu * st.vf;
+        }
+        let pn = p[t] - mrest;
+        v = e * v + a1 * pn + a0 * pp;
+        pp = pn;
+        x[t] = v;
+        if (pn - bcoef * v).abs() > vd_max || v < slo || v > shi || !v.is_finite() {
+            return false;
+        }
+        let vminus = sp.minus_const + mrest + bcoef * v;
+        for (m, vc) in sp.minus.iter().zip(st.vc.iter_mut()) {
+            if m.cap.is_some() {
+                let s = bufs[m.node][hist - m.delay + t];
+                *vc += (1.0 - m.decay) * (m.gain * s - vminus - *vc);
+            }
+        }
+        if sp.fb_cap.is_some() {
+            st.vf = v - vminus;
+        }
+    }
+    st.v = v;
+    st.p_prev = pp;
+    true
+}
+
+/// The full model over a block: slew (implicit phi), common-mode range and reversal, state
+/// clamp, events.
+fn full_block(
+    sp: &StagePlan,
+    st: &mut StageState,
+    bufs: &[Vec<f64>],
+    hist: usize,
+    x: &mut [f64],
+    h: f64,
+) {
+    let b = x.len();
+    let kh = std::f64::consts::TAU * sp.gbw * h;
+    let kgain = std::f64::consts::TAU * sp.gbw;
+    let delta_inv = 1.0 / super::plan::CM_DELTA;
+    let mut v = st.v;
+    let mut pp = st.p_prev;
+    for (t, xo) in x.iter_mut().enumerate().take(b) {
+        let vp = match &sp.plus {
+            Some(pi) => sp.plus_const + pi.gain * bufs[pi.node][hist - pi.delay + t],
+            None => sp.plus_const,
+        };
+        let mut mrest = sp.minus_const;
+        for (m, vc) in sp.minus.iter().zip(st.vc.iter()) {
+            let s = bufs[m.node][hist - m.delay + t];
+            mrest += m.mu * (m.gain * s - vc);
+        }
+        if let Some(fc) = &sp.fb_cap {
+            mrest -= fc.mu * st.vf;
+        }
+        let mut f = 1.0;
+        let mut vp_eff = vp;
+        if let Some((cl, ch)) = sp.cm {
+            if vp < cl || vp > ch {
+                st.cm += 1;
+            }
+            if sp.reversal {
+                let m = (vp - cl).min(ch - vp);
+                f = (m * delta_inv).tanh();
+                if f < 0.0 {
+                    st.rev += 1;
+                }
+            } else {
+                vp_eff = vp.clamp(cl, ch.max(cl));
+            }
+        }
+        let pn = vp_eff - mrest;
+        let xn = if f > 0.0 {
+            solve(v, pn, pp, sp.b, sp.eps, f, kh, sp.vov)
+        } else {
+            let vd = f * (pn - sp.b * v);
+            v + h * (sp.slew * (vd / sp.vov).tanh() - kgain * sp.eps * v)
+        };
+        let xn = if xn.is_finite() { xn } else { v };
+        v = xn.clamp(sp.state_lo, sp.state_hi);
+        *xo = xn;
+        if (f * (pn - sp.b * v)).abs() > sp.vov {
+            st.slew += 1;
+        }
+        let vminus = mrest + sp.b * v;
+        for (m, vc) in sp.minus.iter().zip(st.vc.iter_mut()) {
+            if m.cap.is_some() {
+                let s = bufs[m.node][hist - m.delay + t];
+                *vc += (1.0 - m.decay) * (m.gain * s - vminus - *vc);
+            }
+        }
+        if sp.fb_cap.is_some() {
+            st.vf = v - vminus;
+        }
+        pp = pn;
+    }
+    st.v = v;
+    st.p_prev = pp;
+}
+
+/// Output clipper with one sample of lookahead: writes y[n-1] at position n.
+fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], aa: bool) {
+    let sh = sp.shaper;
+    let (lin_lo, lin_hi) = (sh.lo + sh.w, sh.hi - sh.w);
+    let mut x1 = st.x1;
+    let mut x2 = st.x2;
+    let mut clip = 0u64;
+    for (o, &xn) in out.iter_mut().zip(x) {
+        let a = 0.5 * (xn - x2).abs();
+        *o = if x1 - a >= lin_lo && x1 + a <= lin_hi {
+            x1
+        } else if aa {
+            sh.smooth(x1, a)
+        } else {
+            sh.apply(x1)
+        };
+        clip += u64::from(sh.clipping(x1));
+        x2 = x1;
+        x1 = xn;
+    }
+    st.clip += clip;
+    st.x1 = x1;
+    st.x2 = x2;
+}
