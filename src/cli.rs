@@ -433,7 +433,13 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
         .map(|o| {
             o.file
                 .clone()
-                .map(|f| if f.ends_with(".wav") { f } else { format!("{f}.wav") })
+                .map(|f| {
+                    if f.ends_with(".wav") {
+                        f
+                    } else {
+                        format!("{f}.wav")
+                    }
+                })
                 .unwrap_or_else(|| format!("{}.wav", o.name))
         })
         .collect();
@@ -737,8 +743,7 @@ fn cmd_level_sweep(
         )));
     }
     let lvl = |t: &str| {
-        units::parse_level(t)
-            .map_err(|e| Failure::bad_input(format!("--level-sweep {spec}: {e}")))
+        units::parse_level(t).map_err(|e| Failure::bad_input(format!("--level-sweep {spec}: {e}")))
     };
     let (a, b) = (lvl(&from)?, lvl(&to)?);
     let (va, vb) = (level_volts(a), level_volts(b));
@@ -798,7 +803,12 @@ fn cmd_level_sweep(
             }
         } else {
             println!("output {name}: level sweep of source {src}");
-            println!("  {:>12}  {:>12}  {:>10}", format!("level {unit}"), "THD %", "THD+N dB");
+            println!(
+                "  {:>12}  {:>12}  {:>10}",
+                format!("level {unit}"),
+                "THD %",
+                "THD+N dB"
+            );
             for (v, t, n) in &pts {
                 println!(
                     "  {:>12.4}  {:>12}  {:>10}",
@@ -819,8 +829,7 @@ fn cmd_level_sweep(
     if json {
         println!(
             "{}",
-            serde_json::to_string_pretty(&serde_json::Value::Object(json_out))
-                .unwrap_or_default()
+            serde_json::to_string_pretty(&serde_json::Value::Object(json_out)).unwrap_or_default()
         );
     }
     Ok(())

@@ -13,8 +13,10 @@
 pub mod analysis;
 pub mod check;
 pub mod engine;
+pub mod measure;
 pub mod model;
 pub mod parts;
 pub mod patch;
+pub mod render;
 pub mod signal;
 pub mod units;

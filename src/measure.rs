@@ -244,11 +244,7 @@ pub fn measure(
             full_scale_v: patch.full_scale,
             analysis: *settings,
             noise: patch.noise,
-            alias_dbc: run
-                .alias
-                .iter()
-                .map(|a| (a.stage.clone(), a.dbc))
-                .collect(),
+            alias_dbc: run.alias.iter().map(|a| (a.stage.clone(), a.dbc)).collect(),
         },
     }
 }

@@ -77,6 +77,24 @@ pub fn feeds(patch: &Patch, plan: &Plan) -> Result<Vec<Box<dyn SourceFeed>>, Ren
         .collect()
 }
 
+/// The patch as the engine's compiler sees it: every source whose waveform comes from
+/// [`crate::signal`] is replaced by its resting (t = 0) DC value, which is all the plan needs
+/// from it (pre-roll level and capacitor steady states); the feeds supply the waveform.
+fn for_compile(patch: &Patch) -> Patch {
+    let mut p = patch.clone();
+    for s in &mut p.sources {
+        let level = match &s.wave {
+            Wave::Pulse { amp, width, .. } => amp * (2.0 * width - 1.0),
+            Wave::Steps { levels, .. } => levels.first().copied().unwrap_or(0.0),
+            Wave::Ramp { from, .. } => *from,
+            Wave::Dc { level } => *level,
+            _ => 0.0,
+        };
+        s.wave = Wave::Dc { level };
+    }
+    p
+}
+
 /// Render every output of `patch`. `progress` is called with the fraction done (0..=1)
 /// after each chunk.
 pub fn render(
@@ -84,7 +102,7 @@ pub fn render(
     opts: &RenderOptions,
     progress: &mut dyn FnMut(f64),
 ) -> Result<Run, RenderError> {
-    let plan = engine::compile(patch)?;
+    let plan = engine::compile(&for_compile(patch))?;
     let feeds = feeds(patch, &plan)?;
     let mut eng = Engine::with_feeds(&plan, feeds);
     let frames = opts.frames.unwrap_or_else(|| patch.frames());

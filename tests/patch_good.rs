@@ -303,8 +303,8 @@ fn every_source_kind() {
     assert!(close(env.attack, 2e-3));
     assert!(close(env.decay, 0.15));
     assert_eq!(env.every, Some(0.5));
-    // No [patch] full_scale: the larger rail magnitude.
-    assert_eq!(p.full_scale, 15.0);
+    // No [patch] full_scale: 1.25 times the larger rail magnitude (Gibbs margin).
+    assert_eq!(p.full_scale, 1.25 * 15.0);
 }
 
 #[test]
@@ -424,7 +424,8 @@ fn defaults_of_a_minimal_patch() {
     assert!(!p.noise);
     // 25 C = 298.15 K (SI definition of the degree Celsius) [S].
     assert!(close(p.temperature, 298.15));
-    assert_eq!(p.full_scale, 15.0);
+    // Default calibration: 1.25 times the larger rail (Gibbs margin of a rail-to-rail step).
+    assert_eq!(p.full_scale, 1.25 * p.rails.pos.abs().max(p.rails.neg.abs()));
     assert_eq!(p.frames(), 96_000);
     assert!(p.stages.is_empty());
     assert_eq!(

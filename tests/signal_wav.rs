@@ -626,7 +626,13 @@ fn file_name_filter() {
     ] {
         assert!(check_file_name(bad).is_err(), "{bad:?} must be rejected");
     }
-    for good in ["out.wav", "A_b-9.wav", "x.wav", "figures.json", "plot_1.svg"] {
+    for good in [
+        "out.wav",
+        "A_b-9.wav",
+        "x.wav",
+        "figures.json",
+        "plot_1.svg",
+    ] {
         assert!(check_file_name(good).is_ok(), "{good:?}");
     }
     let dir = tempfile::tempdir().unwrap();

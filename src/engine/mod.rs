@@ -195,6 +195,22 @@ pub struct Run {
     pub alias: Vec<AliasFigure>,
 }
 
+/// The alias figure ([`alias_probe`]) of every op-amp stage's part, at the patch's rate,
+/// rails and oversampling.
+pub fn alias_figures(patch: &Patch) -> Vec<AliasFigure> {
+    patch
+        .stages
+        .iter()
+        .filter_map(|st| {
+            st.part.as_ref().map(|part| AliasFigure {
+                stage: st.name.clone(),
+                part: part.name.clone(),
+                dbc: alias_probe(part, patch.rails, patch.rate, patch.oversample),
+            })
+        })
+        .collect()
+}
+
 /// Compile and render a patch.
 pub fn run(patch: &Patch, opts: &RunOptions) -> Result<Run, EngineError> {
     let plan = compile(patch)?;
@@ -214,21 +230,11 @@ pub fn run(patch: &Patch, opts: &RunOptions) -> Result<Run, EngineError> {
             samples,
         })
         .collect();
-    let mut alias = Vec::new();
-    if opts.alias_probe {
-        for st in &patch.stages {
-            if let Some(part) = &st.part {
-                if matches!(st.kind, crate::model::StageKind::Attenuator { .. }) {
-                    continue;
-                }
-                alias.push(AliasFigure {
-                    stage: st.name.clone(),
-                    part: part.name.clone(),
-                    dbc: alias_probe(part, patch.rails, patch.rate, patch.oversample),
-                });
-            }
-        }
-    }
+    let alias = if opts.alias_probe {
+        alias_figures(patch)
+    } else {
+        Vec::new()
+    };
     Ok(Run {
         rate: plan.rate,
         oversample: plan.oversample,

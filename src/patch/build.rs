@@ -83,7 +83,7 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
         )?
         .unwrap_or(25.0 + crate::units::ZERO_CELSIUS);
     let full_scale = match ptab.get("full_scale") {
-        None => rails.pos.abs().max(rails.neg.abs()),
+        None => DEFAULT_FULL_SCALE_MARGIN * rails.pos.abs().max(rails.neg.abs()),
         Some(v) => full_scale(ctx, &ptab.key_path("full_scale"), v)?,
     };
 
@@ -216,6 +216,11 @@ fn rails(t: &Tab) -> R<Rails> {
 }
 
 /// A full-scale voltage: peak (or peak-to-peak, halved); RMS makes no sense for a file scale.
+/// Default calibration: full scale is this many times the larger rail. A rail-to-rail step
+/// (a clipping edge, a phase reversal) band-limited to the file's rate overshoots by up to
+/// about 9 % of the step (Gibbs), i.e. about 18 % of one rail: 1.25 keeps it inside the file.
+pub const DEFAULT_FULL_SCALE_MARGIN: f64 = 1.25;
+
 fn full_scale(ctx: &Ctx, path: &str, v: &toml::Value) -> R<f64> {
     let l = super::read::level(ctx, path, v)?;
     let x = match l {
