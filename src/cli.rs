@@ -5,11 +5,11 @@ use std::path::{Path, PathBuf};
 use clap::{Parser, Subcommand};
 
 use railsong::analysis::sweep::level_at_thd;
-use railsong::analysis::{Harmonics, Settings, Weighting};
+use railsong::analysis::{Harmonics, Settings, TestSignal, Weighting};
 use railsong::check::{self, WarningKind};
 use railsong::engine::Run;
 use railsong::measure;
-use railsong::model::Patch;
+use railsong::model::{Patch, Wave};
 use railsong::parts::{builtin, builtin_names, OpAmp};
 use railsong::render::{self, RenderError, RenderOptions};
 use railsong::signal::{self, Depth, OutputDir, SignalError, WavSpec};
@@ -453,7 +453,7 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
     } else {
         None
     };
-    let m = measure::measure(patch, &run, idle.as_ref(), &Settings::default(), None);
+    let m = measure::measure(patch, &run, idle.as_ref(), &Settings::default(), None, None);
 
     println!("{} -> {}", patch.title, dir.display());
     println!(
@@ -590,7 +590,7 @@ fn cmd_measure(
     } else {
         None
     };
-    let m = measure::measure(&patch, &run, idle.as_ref(), settings, output);
+    let m = measure::measure(&patch, &run, idle.as_ref(), settings, output, None);
     if json {
         println!("{}", measure::to_json(&m));
     } else if csv {
@@ -677,6 +677,9 @@ fn print_table(patch: &Patch, m: &measure::Measurement) {
         for n in &f.notes {
             println!("  note        {n}");
         }
+        if f.window.is_none() {
+            continue;
+        }
         println!(
             "  taken with  window {}, FFT {}, band {}, weighting {}",
             f.window.as_deref().unwrap_or("-"),
@@ -753,6 +756,24 @@ fn cmd_level_sweep(
         )));
     }
     let unit = level_unit(a);
+    // THD is measured at the swept source's own frequency, whatever else is in the mix.
+    let tone = base
+        .sources
+        .iter()
+        .find(|s| s.name == src)
+        .and_then(|s| match &s.wave {
+            Wave::Sine { freq, .. }
+            | Wave::Square { freq, .. }
+            | Wave::Triangle { freq, .. }
+            | Wave::Saw { freq, .. }
+            | Wave::Pulse { freq, .. } => Some(TestSignal::Tone(*freq)),
+            _ => None,
+        });
+    if tone.is_none() {
+        return Err(Failure::bad_input(format!(
+            "--level-sweep: source '{src}' is not a periodic wave (sine, square, triangle, saw or pulse), so THD has no fundamental"
+        )));
+    }
     let mut rows = Vec::new();
     for k in 0..steps {
         let v = va * (vb / va).powf(k as f64 / (steps - 1) as f64);
@@ -760,7 +781,7 @@ fn cmd_level_sweep(
         s.push(format!("sources.{src}.amp={v} {unit}"));
         let patch = load(path, &s)?;
         let run = run_patch(&patch, false, false)?;
-        let m = measure::measure(&patch, &run, None, settings, None);
+        let m = measure::measure(&patch, &run, None, settings, None, tone);
         rows.push((v, m));
     }
     // one table per output

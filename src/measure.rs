@@ -127,7 +127,7 @@ pub fn test_signal(patch: &Patch, node: Node) -> TestSignal {
     let srcs: Vec<&Wave> = upstream_sources(patch, node)
         .into_iter()
         .map(|i| &patch.sources[i].wave)
-        .filter(|w| !matches!(w, Wave::Dc { .. }))
+        .filter(|w| !matches!(w, Wave::Dc { .. }) && !silent(w))
         .collect();
     if srcs.len() != 1 {
         return TestSignal::None;
@@ -165,6 +165,21 @@ pub fn test_signal(patch: &Patch, node: Node) -> TestSignal {
     }
 }
 
+/// A waveform whose amplitude is zero contributes nothing.
+fn silent(w: &Wave) -> bool {
+    match w {
+        Wave::Sine { amp, .. }
+        | Wave::Square { amp, .. }
+        | Wave::Triangle { amp, .. }
+        | Wave::Saw { amp, .. }
+        | Wave::Pulse { amp, .. }
+        | Wave::Sweep { amp, .. } => *amp == 0.0,
+        Wave::Multitone { tones } => tones.iter().all(|t| t.amp == 0.0),
+        Wave::Noise { rms, .. } => *rms == 0.0,
+        _ => false,
+    }
+}
+
 /// Swing limits seen at an output: the driving op-amp's limits (or the rails, for a source
 /// or passive node), scaled by the output's series/load divider.
 pub fn swing_at(patch: &Patch, out: usize) -> SwingLimits {
@@ -186,13 +201,15 @@ pub fn swing_at(patch: &Patch, out: usize) -> SwingLimits {
 }
 
 /// Measure every output of a run. `idle` is a render of the same patch with its sources
-/// muted (for SNR), when available.
+/// muted (for SNR), when available; `outputs` picks one output by name; `test` overrides the
+/// test signal found by [`test_signal`].
 pub fn measure(
     patch: &Patch,
     run: &Run,
     idle: Option<&Run>,
     settings: &Settings,
     outputs: Option<&str>,
+    test: Option<TestSignal>,
 ) -> Measurement {
     let mut map = BTreeMap::new();
     for (i, o) in patch.outputs.iter().enumerate() {
@@ -210,7 +227,7 @@ pub fn measure(
             full_scale_v: Some(patch.full_scale),
             idle: idle_samples,
             snr_reference_v: None,
-            test: test_signal(patch, o.from),
+            test: test.unwrap_or_else(|| test_signal(patch, o.from)),
             settings: *settings,
         };
         let figures = analysis::measure_output(&sig.samples, run.rate, &ctx);

@@ -425,7 +425,10 @@ fn defaults_of_a_minimal_patch() {
     // 25 C = 298.15 K (SI definition of the degree Celsius) [S].
     assert!(close(p.temperature, 298.15));
     // Default calibration: 1.25 times the larger rail (Gibbs margin of a rail-to-rail step).
-    assert_eq!(p.full_scale, 1.25 * p.rails.pos.abs().max(p.rails.neg.abs()));
+    assert_eq!(
+        p.full_scale,
+        1.25 * p.rails.pos.abs().max(p.rails.neg.abs())
+    );
     assert_eq!(p.frames(), 96_000);
     assert!(p.stages.is_empty());
     assert_eq!(

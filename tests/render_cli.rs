@@ -50,9 +50,22 @@ fn demo_writes_its_files_and_says_what_to_listen_for() {
         serde_json::from_str(&std::fs::read_to_string(dir.path().join("figures.json")).unwrap())
             .unwrap();
     // Common practice: the follower's input dips below -8 V, so it spends time reversed.
-    assert!(fig["outputs"]["reversal"]["events"]["buffer"]["reversed_s"].as_f64().unwrap() > 0.0);
-    assert_eq!(fig["outputs"]["clean"]["events"]["mix"]["clip_s"].as_f64(), Some(0.0));
-    assert!(fig["outputs"]["rails"]["events"]["hot"]["clip_s"].as_f64().unwrap() > 0.0);
+    assert!(
+        fig["outputs"]["reversal"]["events"]["buffer"]["reversed_s"]
+            .as_f64()
+            .unwrap()
+            > 0.0
+    );
+    assert_eq!(
+        fig["outputs"]["clean"]["events"]["mix"]["clip_s"].as_f64(),
+        Some(0.0)
+    );
+    assert!(
+        fig["outputs"]["rails"]["events"]["hot"]["clip_s"]
+            .as_f64()
+            .unwrap()
+            > 0.0
+    );
     // no temporary files left behind
     for e in std::fs::read_dir(dir.path()).unwrap() {
         let n = e.unwrap().file_name().into_string().unwrap();
