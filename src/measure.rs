@@ -181,7 +181,8 @@ fn silent(w: &Wave) -> bool {
 }
 
 /// Swing limits seen at an output: the driving op-amp's limits (or the rails, for a source
-/// or passive node), scaled by the output's series/load divider.
+/// or passive node), narrowed by its output current limit into its static load
+/// ([`crate::check::static_loads`]), scaled by the output's series/load divider.
 pub fn swing_at(patch: &Patch, out: usize) -> SwingLimits {
     let o = &patch.outputs[out];
     let (mut lo, mut hi) = (patch.rails.neg, patch.rails.pos);
@@ -190,6 +191,10 @@ pub fn swing_at(patch: &Patch, out: usize) -> SwingLimits {
             let (l, h) = crate::check::swing_limits(part, patch.rails.pos, patch.rails.neg);
             lo = l;
             hi = h;
+            if let (Some(isc), Some(load)) = (part.isc, crate::check::static_loads(patch)[i]) {
+                lo = lo.max(-isc * load);
+                hi = hi.min(isc * load);
+            }
         }
     }
     let d = o.load.map_or(1.0, |l| l / (l + o.series));
