@@ -14,6 +14,7 @@ pub mod analysis;
 pub mod check;
 pub mod engine;
 pub mod model;
+pub mod noise;
 pub mod parts;
 pub mod patch;
 pub mod signal;
