@@ -12,21 +12,27 @@
 //!   `T` = [`Patch::temperature`]).
 //! - Every op-amp: its input voltage noise `en` at the non-inverting input, with a 1/f corner
 //!   `fc`: `density^2(f) = en^2 (1 + fc / f)`; and its input current noise `in` (white; the
-//!   profiles carry no current-noise corner) into each input, flowing through the resistance
+//!   profiles carry no current-noise corner) into each input, flowing through the impedance
 //!   that input sees.
 //!
-//! # Gains (op-amp textbooks; ideal closed loop)
-//! Each node is held as a Thevenin equivalent: its open-circuit noise (one signed gain per
+//! # Gains (op-amp textbooks)
+//! Each node is held as a Thevenin equivalent: its open-circuit noise (one complex gain per
 //! source, so a source that reaches an output along two paths adds in amplitude, not power) and
 //! its source resistance `Rs` (0 for sources and op-amp outputs, the wiper resistance for an
-//! attenuator). Per stage:
-//! - inverting summer: each input `-Rf / (Ri + Rs_i)` (its node's noise and `Ri`'s own),
-//!   `Rf` 1, `en` the noise gain `NG = 1 + Rf / Rpar` with `Rpar` all `Ri + Rs_i` in parallel,
-//!   `in-` times `Rf`; the non-inverting input sits at the ideal reference, so `in+` sees no
-//!   resistance;
-//! - non-inverting: input and `en` times `1 + Rf / Rg`, `Rf` 1, `Rg` `-Rf / Rg`, `in-` times
-//!   `Rf`, `in+` times `Rs (1 + Rf / Rg)`;
+//! attenuator). `Zf` is the feedback resistor with its optional capacitor across it,
+//! `Zi = Ri + Rs_i + 1 / (j w Ci)` an input branch with its optional coupling capacitor.
+//! Per stage, in the ideal-op-amp limit:
+//! - inverting summer: each input `-Zf / Zi` (its node's noise and `Ri`'s own), `Rf`
+//!   `Zf / Rf` (its noise as a current across the feedback element; 1 without a capacitor),
+//!   `en` the noise gain `NG = 1 + Zf / Zpar` with `Zpar` all `Zi` in parallel (flat:
+//!   `1 + Rf / Rpar`), `in-` times `Zf`; the non-inverting input sits at the ideal reference,
+//!   so `in+` sees no resistance and is not listed;
+//! - non-inverting: input and `en` times `NG = 1 + Zf / Rg`, `Rf` `Zf / Rf`, `Rg` `-Zf / Rg`,
+//!   `in-` times `Zf`, `in+` times `Rs NG`;
 //! - follower: input and `en` 1, `in+` times `Rs`;
+//! - then every gain of an op-amp stage is multiplied by the single-pole closed-loop factor
+//!   `1 / (1 + NG / A(f))`, `A = A0 / (1 + j f A0 / GBW)` (or `GBW / (j f)` without a DC gain),
+//!   which gives `G0 / (1 + j f NG / GBW)` for a resistive network;
 //! - attenuator with track `P` at fraction `y`, fed from `Rs`: upper segment
 //!   `t = Rs + P (1 - y)`, lower `b = P y`; input and upper segment times `b / (t + b)`, lower
 //!   segment times `t / (t + b)`; wiper resistance `t b / (t + b)` (the segments are the noisy
@@ -35,15 +41,18 @@
 //!   `RL` times `(Rs + Rser) / (Rs + Rser + RL)`; an unloaded output passes everything at 1.
 //!
 //! # Band
-//! White power integrates to `S (f2 - f1)`; the 1/f part analytically:
-//! `en^2 (f2 - f1 + fc ln(f2 / f1))`. Shares are of the total power over the band.
+//! Spot densities are `|H(1 kHz)|` times the source density at 1 kHz. Band powers are
+//! `d^2 (integral of |H|^2 df + fc * integral of |H|^2 / f df)`; with a flat gain these are the
+//! closed forms `d^2 (f2 - f1 + fc ln(f2 / f1))`. Between points of a logarithmic grid
+//! (400 per decade) `|H|^2` is taken as linear in `f` and the `1/f` weight is integrated
+//! exactly, so flat gains give the closed form to rounding and one-pole responses agree with
+//! their `atan` closed forms to about 1e-5 in power. Shares are of the total power over the
+//! band, in %; items are sorted by share, largest first.
 //!
 //! # Assumptions (stated in every budget's notes where they matter)
-//! - Ideal closed-loop gain within the band: GBW well above `NG * f2` and infinite DC gain.
-//!   Stages where `GBW / NG` falls inside the band are flagged; there the budget overstates the
-//!   noise above that corner.
-//! - Flat band: feedback and coupling capacitors are ignored; those whose corner falls inside
-//!   the band are flagged with the corner frequency.
+//! - Op-amps: single-pole open loop, zero output impedance; no slew or clipping (small signal).
+//!   Stages whose closed-loop bandwidth `GBW / NG` falls inside the band are flagged.
+//! - Capacitor corners inside the band are named in the notes (they are in the gains).
 //! - Each consumer of an attenuator node sees its open-circuit Thevenin equivalent. This is
 //!   exact when the attenuator drives a single load (the usual volume pot); when it drives
 //!   several, the interaction between the loads is not modelled and the budget says so.
@@ -51,10 +60,16 @@
 //! - The load resistor of an output belongs to the next module but is physically there: it is
 //!   counted, labelled `outputs.NAME.load`, and the notes give the total without it.
 
+use std::f64::consts::PI;
+
+use rustfft::num_complex::Complex;
 use serde::Serialize;
 
 use crate::model::{Node, Patch, StageKind};
 use crate::parts::taper;
+use crate::parts::OpAmp;
+
+type C = Complex<f64>;
 use crate::units::{fmt_eng, fmt_resistance};
 
 /// Boltzmann constant, J/K (exact by definition in the SI since 2019; BIPM SI Brochure,
@@ -142,31 +157,49 @@ struct NoiseSource {
     load: bool,
 }
 
-/// Signed gain from every source (by index) to one node's open-circuit voltage.
+/// Complex gain from every source (by index) to one node's open-circuit voltage, at one
+/// frequency.
 #[derive(Clone, Default)]
-struct Transfer(Vec<f64>);
+struct Transfer(Vec<C>);
 
 impl Transfer {
-    fn add(&mut self, id: usize, g: f64) {
+    fn add(&mut self, id: usize, g: C) {
         if self.0.len() <= id {
-            self.0.resize(id + 1, 0.0);
+            self.0.resize(id + 1, C::new(0.0, 0.0));
         }
         self.0[id] += g;
     }
-    fn add_scaled(&mut self, other: &Transfer, k: f64) {
+    fn add_scaled(&mut self, other: &Transfer, k: C) {
         for (id, g) in other.0.iter().enumerate() {
-            if *g != 0.0 {
+            if g.re != 0.0 || g.im != 0.0 {
                 self.add(id, g * k);
             }
         }
     }
+    fn scale(&mut self, k: C) {
+        for g in &mut self.0 {
+            *g *= k;
+        }
+    }
+    fn get(&self, id: usize) -> C {
+        self.0.get(id).copied().unwrap_or_default()
+    }
 }
 
-/// A node as its consumers see it: open-circuit noise and source resistance.
+/// A node as its consumers see it: open-circuit noise and (resistive) source resistance.
 #[derive(Clone, Default)]
 struct Thevenin {
     noise: Transfer,
     r: f64,
+}
+
+/// The network at one frequency: every source, and its gain to every output.
+struct Network {
+    sources: Vec<NoiseSource>,
+    /// Per output, in output order.
+    outputs: Vec<Transfer>,
+    /// Per output: the notes about it and the stages upstream of it.
+    notes: Vec<Vec<String>>,
 }
 
 /// Everything collected while walking the stages.
@@ -203,15 +236,45 @@ impl Walk {
     }
 }
 
+fn real(x: f64) -> C {
+    C::new(x, 0.0)
+}
+
+/// Impedance of a capacitor `c` at `f`: `1 / (j 2 pi f C)`.
+fn z_cap(c: f64, f: f64) -> C {
+    C::new(0.0, -1.0 / (2.0 * PI * f * c))
+}
+
+/// A resistor with an optional capacitor across it, at `f`.
+fn z_parallel(r: f64, c: Option<f64>, f: f64) -> C {
+    match c {
+        Some(c) => real(r) / C::new(1.0, 2.0 * PI * f * r * c),
+        None => real(r),
+    }
+}
+
+/// Closed-loop factor `1 / (1 + NG / A(f))` of a stage with noise gain `ng` (single-pole
+/// open loop `A = A0 / (1 + j f A0 / GBW)`, or `GBW / (j f)` without a DC gain).
+fn loop_factor(part: &OpAmp, ng: C, f: f64) -> C {
+    if !(part.gbw.is_finite() && part.gbw > 0.0) {
+        return real(1.0);
+    }
+    let a = match part.a0 {
+        Some(a0) if a0.is_finite() && a0 > 0.0 => real(a0) / C::new(1.0, f * a0 / part.gbw),
+        _ => C::new(0.0, -part.gbw / f),
+    };
+    real(1.0) / (real(1.0) + ng / a)
+}
+
 fn thermal_label(key: &str, r: f64) -> String {
     format!("{key} ({}, thermal)", fmt_resistance(r))
 }
 
 fn corner_note(key: &str, r: f64, c: f64, band: (f64, f64), what: &str) -> Option<String> {
-    let f = 1.0 / (2.0 * std::f64::consts::PI * r * c);
+    let f = 1.0 / (2.0 * PI * r * c);
     (f > band.0 && f < band.1).then(|| {
         format!(
-            "{key}: {what} corner {} is inside the band; the budget is flat-band and ignores it",
+            "{key}: {what} corner 1 / (2 pi R C) = {} is inside the band (included in the gains)",
             fmt_eng(f, "Hz")
         )
     })
@@ -239,7 +302,8 @@ fn load_counts(patch: &Patch) -> Vec<usize> {
     n
 }
 
-fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
+/// Walk the stages at frequency `f` (Hz, > 0).
+fn walk(patch: &Patch, band: (f64, f64), f: f64) -> Walk {
     let t = patch.temperature;
     let n = patch.stages.len();
     let mut w = Walk {
@@ -249,6 +313,7 @@ fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
         upstream: Vec::with_capacity(n),
     };
     let loads = load_counts(patch);
+    let one = real(1.0);
     for (si, stage) in patch.stages.iter().enumerate() {
         let key = format!("stages.{}", stage.name);
         let mut notes = Vec::new();
@@ -262,7 +327,8 @@ fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
             }
         };
         let mut out = Thevenin::default();
-        let mut noise_gain = None;
+        // (noise gain at f, flat-band noise gain) of active stages
+        let mut noise_gain: Option<(C, f64)> = None;
         let part = stage.part.as_ref();
         let en_label = |p: &str| format!("{key} en ({p})");
         match &stage.kind {
@@ -273,13 +339,20 @@ fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
                 ..
             } => {
                 let rf = feedback.r;
-                let mut g_par = 0.0;
+                let zf = z_parallel(rf, feedback.c, f);
+                let mut y_par = C::new(0.0, 0.0);
+                let mut g_flat = 0.0;
                 for (k, inp) in inputs.iter().enumerate() {
                     mark(inp.from, &mut up, &w);
                     let src = w.node(inp.from);
                     let r_tot = inp.r + src.r;
-                    g_par += 1.0 / r_tot;
-                    let g = -rf / r_tot;
+                    let z_in = match inp.c {
+                        Some(c) => real(r_tot) + z_cap(c, f),
+                        None => real(r_tot),
+                    };
+                    y_par += one / z_in;
+                    g_flat += 1.0 / r_tot;
+                    let g = -zf / z_in;
                     out.noise.add_scaled(&src.noise, g);
                     let rkey = if *single {
                         format!("{key}.r_in")
@@ -307,8 +380,9 @@ fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
                     (None, true) => thermal_label(&format!("{key}.r_fb"), rf),
                     (None, false) => thermal_label(&format!("{key}.feedback.r"), rf),
                 };
+                // Rf's noise as a current e / Rf across the whole feedback element
                 if let Some(id) = w.register(fb_label, johnson_density(rf, t), 0.0) {
-                    out.noise.add(id, 1.0);
+                    out.noise.add(id, zf / rf);
                 }
                 if let Some(c) = feedback.c {
                     let ckey = if *single && feedback.pot.is_none() {
@@ -318,15 +392,15 @@ fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
                     };
                     notes.extend(corner_note(&ckey, rf, c, band, "low-pass"));
                 }
-                let ng = 1.0 + rf * g_par;
-                noise_gain = Some(ng);
+                let ng = one + zf * y_par;
+                noise_gain = Some((ng, 1.0 + rf * g_flat));
                 if let Some(p) = part {
                     if let Some(id) = w.register(en_label(&p.name), p.en, p.en_corner) {
                         out.noise.add(id, ng);
                     }
                     let label = format!("{key} in- ({}, into {})", p.name, fmt_resistance(rf));
                     if let Some(id) = w.register(label, p.inoise * rf, 0.0) {
-                        out.noise.add(id, 1.0);
+                        out.noise.add(id, zf / rf);
                     }
                 }
             }
@@ -339,16 +413,17 @@ fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
             } => {
                 mark(*from, &mut up, &w);
                 let src = w.node(*from);
-                let ng = 1.0 + r_fb / r_g;
-                noise_gain = Some(ng);
+                let zf = z_parallel(*r_fb, *c_fb, f);
+                let ng = one + zf / *r_g;
+                noise_gain = Some((ng, 1.0 + r_fb / r_g));
                 out.noise.add_scaled(&src.noise, ng);
                 let fb = thermal_label(&format!("{key}.r_fb"), *r_fb);
                 if let Some(id) = w.register(fb, johnson_density(*r_fb, t), 0.0) {
-                    out.noise.add(id, 1.0);
+                    out.noise.add(id, zf / *r_fb);
                 }
                 let rg = thermal_label(&format!("{key}.r_g"), *r_g);
                 if let Some(id) = w.register(rg, johnson_density(*r_g, t), 0.0) {
-                    out.noise.add(id, -r_fb / r_g);
+                    out.noise.add(id, -zf / *r_g);
                 }
                 if let Some(c) = c_fb {
                     notes.extend(corner_note(
@@ -365,7 +440,7 @@ fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
                     }
                     let label = format!("{key} in- ({}, into {})", p.name, fmt_resistance(*r_fb));
                     if let Some(id) = w.register(label, p.inoise * r_fb, 0.0) {
-                        out.noise.add(id, 1.0);
+                        out.noise.add(id, zf / *r_fb);
                     }
                     if src.r > 0.0 {
                         let label =
@@ -379,17 +454,17 @@ fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
             StageKind::Follower { from } => {
                 mark(*from, &mut up, &w);
                 let src = w.node(*from);
-                noise_gain = Some(1.0);
-                out.noise.add_scaled(&src.noise, 1.0);
+                noise_gain = Some((one, 1.0));
+                out.noise.add_scaled(&src.noise, one);
                 if let Some(p) = part {
                     if let Some(id) = w.register(en_label(&p.name), p.en, p.en_corner) {
-                        out.noise.add(id, 1.0);
+                        out.noise.add(id, one);
                     }
                     if src.r > 0.0 {
                         let label =
                             format!("{key} in+ ({}, through {})", p.name, fmt_resistance(src.r));
                         if let Some(id) = w.register(label, p.inoise * src.r, 0.0) {
-                            out.noise.add(id, 1.0);
+                            out.noise.add(id, one);
                         }
                     }
                 }
@@ -412,14 +487,14 @@ fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
                 } else {
                     (0.0, 0.0)
                 };
-                out.noise.add_scaled(&src.noise, ratio);
+                out.noise.add_scaled(&src.noise, real(ratio));
                 let ul = thermal_label(&format!("{key}.pot upper"), upper);
                 if let Some(id) = w.register(ul, johnson_density(upper, t), 0.0) {
-                    out.noise.add(id, ratio);
+                    out.noise.add(id, real(ratio));
                 }
                 let ll = thermal_label(&format!("{key}.pot lower"), lower);
                 if let Some(id) = w.register(ll, johnson_density(lower, t), 0.0) {
-                    out.noise.add(id, rest);
+                    out.noise.add(id, real(rest));
                 }
                 out.r = if sum > 0.0 { top * lower / sum } else { 0.0 };
                 if loads[si] > 1 && out.r > 0.0 {
@@ -432,15 +507,15 @@ fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
                 }
             }
         }
-        if let (Some(p), Some(ng)) = (part, noise_gain) {
-            let bw = p.gbw / ng;
+        if let (Some(p), Some((ng, ng_flat))) = (part, noise_gain) {
+            out.noise.scale(loop_factor(p, ng, f));
+            let bw = p.gbw / ng_flat;
             if bw < band.1 {
                 notes.push(format!(
                     "{key}: closed-loop bandwidth GBW / noise gain = {} / {:.2} = {} is inside \
-                     the band; the budget assumes the ideal closed-loop gain and overstates the \
-                     noise above it",
+                     the band (its single-pole roll-off is included in the gains)",
                     fmt_eng(p.gbw, "Hz"),
-                    ng,
+                    ng_flat,
                     fmt_eng(bw, "Hz")
                 ));
             }
@@ -451,6 +526,70 @@ fn walk(patch: &Patch, band: (f64, f64)) -> Walk {
     }
     w
 }
+
+/// The whole network at frequency `f`: stages, then each output's series resistor and load.
+fn network(patch: &Patch, band: (f64, f64), f: f64) -> Network {
+    let mut w = walk(patch, band, f);
+    let t = patch.temperature;
+    let mut outputs = Vec::with_capacity(patch.outputs.len());
+    let mut all_notes = Vec::with_capacity(patch.outputs.len());
+    for out in &patch.outputs {
+        let key = format!("outputs.{}", out.name);
+        let node = w.node(out.from);
+        let mut noise = Transfer::default();
+        let mut notes = vec![format!(
+            "band {} .. {}, spot densities at {}, {t:.2} K; powers of independent sources added",
+            fmt_eng(band.0, "Hz"),
+            fmt_eng(band.1, "Hz"),
+            fmt_eng(SPOT_FREQUENCY, "Hz")
+        )];
+        let series_label = thermal_label(&format!("{key}.series"), out.series);
+        match out.load {
+            Some(rl) => {
+                let ahead = node.r + out.series;
+                let div = real(rl / (ahead + rl));
+                noise.add_scaled(&node.noise, div);
+                if let Some(id) = w.register(series_label, johnson_density(out.series, t), 0.0) {
+                    noise.add(id, div);
+                }
+                let ll = format!(
+                    "{key}.load ({}, thermal, next module's input)",
+                    fmt_resistance(rl)
+                );
+                if let Some(id) = w.register(ll, johnson_density(rl, t), 0.0) {
+                    w.sources[id].load = true;
+                    noise.add(id, real(ahead / (ahead + rl)));
+                }
+            }
+            None => {
+                noise.add_scaled(&node.noise, real(1.0));
+                if let Some(id) = w.register(series_label, johnson_density(out.series, t), 0.0) {
+                    noise.add(id, real(1.0));
+                }
+                notes.push(format!(
+                    "{key}: unloaded; the open-circuit voltage is budgeted"
+                ));
+            }
+        }
+        if let Node::Stage(j) = out.from {
+            for (k, stage_notes) in w.stage_notes.iter().enumerate() {
+                if k == j || w.upstream[j][k] {
+                    notes.extend(stage_notes.iter().cloned());
+                }
+            }
+        }
+        outputs.push(noise);
+        all_notes.push(notes);
+    }
+    Network {
+        sources: w.sources,
+        outputs,
+        notes: all_notes,
+    }
+}
+
+/// Grid points per decade for the band integral.
+const POINTS_PER_DECADE: f64 = 400.0;
 
 /// The noise budget of every output of `patch` over `band` (Hz, `(low, high)`), in output
 /// order. See the module docs for the model. Returns an empty list when the band is not a
@@ -465,67 +604,59 @@ pub fn try_budget(patch: &Patch, band: (f64, f64)) -> Result<Vec<OutputBudget>, 
     if !(f1.is_finite() && f2.is_finite() && f1 > 0.0 && f2 > f1) {
         return Err(NoiseError::Band { low: f1, high: f2 });
     }
-    let mut w = walk(patch, band);
-    let t = patch.temperature;
-    let mut result = Vec::with_capacity(patch.outputs.len());
-    for out in &patch.outputs {
-        let key = format!("outputs.{}", out.name);
-        let node = w.node(out.from);
-        let mut noise = Transfer::default();
-        let mut notes = vec![format!(
-            "band {} .. {}, spot densities at {}, {t:.2} K; powers of independent sources added",
-            fmt_eng(f1, "Hz"),
-            fmt_eng(f2, "Hz"),
-            fmt_eng(SPOT_FREQUENCY, "Hz")
-        )];
-        let series_label = thermal_label(&format!("{key}.series"), out.series);
-        match out.load {
-            Some(rl) => {
-                let ahead = node.r + out.series;
-                let div = rl / (ahead + rl);
-                noise.add_scaled(&node.noise, div);
-                if let Some(id) = w.register(series_label, johnson_density(out.series, t), 0.0) {
-                    noise.add(id, div);
-                }
-                let ll = format!(
-                    "{key}.load ({}, thermal, next module's input)",
-                    fmt_resistance(rl)
-                );
-                if let Some(id) = w.register(ll, johnson_density(rl, t), 0.0) {
-                    w.sources[id].load = true;
-                    noise.add(id, ahead / (ahead + rl));
-                }
-            }
-            None => {
-                noise.add_scaled(&node.noise, 1.0);
-                if let Some(id) = w.register(series_label, johnson_density(out.series, t), 0.0) {
-                    noise.add(id, 1.0);
-                }
-                notes.push(format!(
-                    "{key}: unloaded; the open-circuit voltage is budgeted"
-                ));
+    let spot = network(patch, band, SPOT_FREQUENCY);
+    let n_src = spot.sources.len();
+    let n_out = patch.outputs.len();
+    // Per output and source: integral of |H|^2 df and of |H|^2 / f df over the band, with
+    // |H|^2 linear in f between grid points and the 1/f weight integrated exactly, so a flat
+    // gain gives the closed forms (f2 - f1) and ln(f2 / f1) exactly.
+    let mut white = vec![vec![0.0f64; n_src]; n_out];
+    let mut flicker = vec![vec![0.0f64; n_src]; n_out];
+    let segments = ((f2 / f1).log10() * POINTS_PER_DECADE).ceil().max(16.0) as usize;
+    let freq = |i: usize| {
+        if i == segments {
+            f2
+        } else {
+            f1 * (f2 / f1).powf(i as f64 / segments as f64)
+        }
+    };
+    let h2_at = |f: f64| -> Vec<Vec<f64>> {
+        let net = network(patch, band, f);
+        net.outputs
+            .iter()
+            .map(|tr| (0..n_src).map(|id| tr.get(id).norm_sqr()).collect())
+            .collect()
+    };
+    let mut prev = h2_at(f1);
+    let mut fa = f1;
+    for i in 1..=segments {
+        let fb = freq(i);
+        let next = h2_at(fb);
+        let (df, ln) = (fb - fa, (fb / fa).ln());
+        for o in 0..n_out {
+            for id in 0..n_src {
+                let (ha, hb) = (prev[o][id], next[o][id]);
+                let slope = (hb - ha) / df;
+                white[o][id] += 0.5 * (ha + hb) * df;
+                flicker[o][id] += (ha - slope * fa) * ln + slope * df;
             }
         }
-        if let Node::Stage(j) = out.from {
-            for (k, stage_notes) in w.stage_notes.iter().enumerate() {
-                if k == j || w.upstream[j][k] {
-                    notes.extend(stage_notes.iter().cloned());
-                }
-            }
-        }
+        prev = next;
+        fa = fb;
+    }
 
+    let mut result = Vec::with_capacity(n_out);
+    for (o, out) in patch.outputs.iter().enumerate() {
+        let key = format!("outputs.{}", out.name);
+        let mut notes = spot.notes[o].clone();
         let mut items = Vec::new();
         let mut total_power = 0.0;
         let mut total_d2 = 0.0;
         let mut load_power = 0.0;
-        for (id, g) in noise.0.iter().enumerate() {
-            if *g == 0.0 {
-                continue;
-            }
-            let s = &w.sources[id];
-            let d = s.density * g.abs();
-            let power = band_power(d, s.corner, band);
-            let d2 = d * d * (1.0 + s.corner / SPOT_FREQUENCY);
+        for (id, s) in spot.sources.iter().enumerate() {
+            let d0 = s.density * s.density;
+            let power = d0 * (white[o][id] + s.corner * flicker[o][id]);
+            let d2 = d0 * spot.outputs[o].get(id).norm_sqr() * (1.0 + s.corner / SPOT_FREQUENCY);
             if power.is_nan() || power <= 0.0 {
                 continue;
             }
@@ -636,10 +767,28 @@ mod tests {
     #[test]
     fn transfer_adds_amplitudes() {
         let mut a = Transfer::default();
-        a.add(2, 1.0);
+        a.add(2, real(1.0));
         let mut b = Transfer::default();
-        b.add_scaled(&a, 2.0);
-        b.add_scaled(&a, -0.5);
-        assert_eq!(b.0, vec![0.0, 0.0, 1.5]);
+        b.add_scaled(&a, real(2.0));
+        b.add_scaled(&a, real(-0.5));
+        assert_eq!(b.get(2), real(1.5));
+        assert_eq!(b.get(0), real(0.0));
+        assert_eq!(b.get(7), real(0.0));
+    }
+
+    // Single-pole closed loop G = G0 / (1 + j f NG / GBW) (op-amp textbooks, CHECKS.md [S]):
+    // at f = GBW / NG the factor is 1 / (1 + j), |.|^2 = 1/2.
+    #[test]
+    fn loop_factor_is_single_pole() {
+        let mut p = crate::parts::builtin("ideal").unwrap();
+        p.gbw = 1e6;
+        p.a0 = None;
+        let k = loop_factor(&p, real(11.0), 1e6 / 11.0);
+        assert!((k.norm_sqr() - 0.5).abs() < 1e-12);
+        assert!((k.arg() + std::f64::consts::FRAC_PI_4).abs() < 1e-12);
+        // finite DC gain: G = G_ideal / (1 + NG / A0) at low frequency (CHECKS.md [M])
+        p.a0 = Some(1e3);
+        let k = loop_factor(&p, real(10.0), 1e-3);
+        assert!((k.re - 1.0 / (1.0 + 10.0 / 1e3)).abs() < 1e-9);
     }
 }

@@ -633,3 +633,83 @@ fn bad_band_is_an_error() {
     let e = try_budget(&p, (0.0, 1.0)).unwrap_err().to_string();
     assert!(e.contains("0 < low < high"));
 }
+
+/// `fp (atan(f2 / fp) - atan(f1 / fp))`: the integral of `1 / (1 + (f / fp)^2)` over the band,
+/// a one-pole low-pass's power response [D].
+fn lowpass_integral(fp: f64, (f1, f2): (f64, f64)) -> f64 {
+    fp * ((f2 / fp).atan() - (f1 / fp).atan())
+}
+
+// A capacitor across Rf: every resistor's noise sees the one-pole low-pass 1 / (1 + j f / fp),
+// fp = 1 / (2 pi Rf Cf) [S, textbook], so the power is the flat density times the integral
+// above [D], and the spot density at fp = 1 kHz is the flat one over sqrt 2.
+#[test]
+fn feedback_capacitor_low_passes_resistor_noise() {
+    let (rin, rf) = (10e3, 100e3);
+    let fp = 1e3;
+    let cf = 1.0 / (2.0 * std::f64::consts::PI * rf * fp);
+    let mut st = summer("inv", part(0.0, 0.0, 0.0), &[(Node::Source(0), rin)], rf);
+    if let StageKind::InvertingSum { feedback, .. } = &mut st.kind {
+        feedback.c = Some(cf);
+    }
+    let p = patch(1, vec![st], vec![out("o", Node::Stage(0), 0.0, None)]);
+    let b = &budget(&p, DEFAULT_BAND)[0];
+    let flat = four_ktr(rf) * (1.0 + rf / rin);
+    // (the ideal profile's 1 THz GBW moves this by about 1e-8)
+    assert!(close(b.total_density_1k.powi(2), flat / 2.0, 1e-6));
+    assert!(close(
+        b.total_rms.powi(2),
+        flat * lowpass_integral(fp, DEFAULT_BAND),
+        1e-5
+    ));
+    assert!(b.notes.iter().any(|n| n.starts_with("stages.inv.c_fb")));
+}
+
+// A coupling capacitor in series with Ri: Ri's noise reaches the output through
+// -Rf / (Ri + 1 / (j w C)), |H|^2 = (Rf / Ri)^2 f^2 / (f^2 + fp^2), fp = 1 / (2 pi Ri C), whose
+// integral is (Rf / Ri)^2 (f2 - f1 - fp (atan(f2 / fp) - atan(f1 / fp))) [D]; Rf stays flat.
+#[test]
+fn coupling_capacitor_high_passes_its_resistor() {
+    let (rin, rf) = (10e3, 20e3);
+    let fp = 100.0;
+    let c = 1.0 / (2.0 * std::f64::consts::PI * rin * fp);
+    let mut st = summer("inv", part(0.0, 0.0, 0.0), &[(Node::Source(0), rin)], rf);
+    if let StageKind::InvertingSum { inputs, .. } = &mut st.kind {
+        inputs[0].c = Some(c);
+    }
+    let p = patch(1, vec![st], vec![out("o", Node::Stage(0), 0.0, None)]);
+    let b = &budget(&p, DEFAULT_BAND)[0];
+    let (f1, f2) = DEFAULT_BAND;
+    let want = four_ktr(rin) * (rf / rin).powi(2) * (f2 - f1 - lowpass_integral(fp, DEFAULT_BAND));
+    assert!(close(item(b, "stages.inv.r_in").rms.powi(2), want, 1e-5));
+    let flat_rf = four_ktr(rf) * (f2 - f1);
+    assert!(close(item(b, "stages.inv.r_fb").rms.powi(2), flat_rf, 1e-9));
+}
+
+// Single-pole closed loop G(f) = G0 / (1 + j f NG / GBW) [S]: a follower on a 10 kHz GBW part
+// low-passes its own en at 10 kHz. With a 1/f corner the band power is
+// en^2 (I0 + fc I1), I0 the low-pass integral above and
+// I1 = ln(f2 / f1) - ln((1 + (f2/fp)^2) / (1 + (f1/fp)^2)) / 2 [D].
+#[test]
+fn gain_bandwidth_rolls_off_the_noise() {
+    let (en, fc, gbw) = (10e-9, 100.0, 10e3);
+    let mut pt = part(en, fc, 0.0);
+    pt.gbw = gbw;
+    pt.a0 = None;
+    let p = patch(
+        1,
+        vec![follower("buf", pt, Node::Source(0))],
+        vec![out("o", Node::Stage(0), 0.0, None)],
+    );
+    let b = &budget(&p, DEFAULT_BAND)[0];
+    let (f1, f2) = DEFAULT_BAND;
+    let i0 = lowpass_integral(gbw, DEFAULT_BAND);
+    let i1 = (f2 / f1).ln() - 0.5 * ((1.0 + (f2 / gbw).powi(2)) / (1.0 + (f1 / gbw).powi(2))).ln();
+    assert!(close(b.total_rms.powi(2), en * en * (i0 + fc * i1), 1e-5));
+    let spot = en * en * (1.0 + fc / 1e3) / (1.0 + (1e3 / gbw).powi(2));
+    assert!(close(b.total_density_1k.powi(2), spot, 1e-9));
+    assert!(b
+        .notes
+        .iter()
+        .any(|n| n.starts_with("stages.buf: closed-loop bandwidth")));
+}
