@@ -145,6 +145,20 @@ pub struct OutputBudget {
     pub notes: Vec<String>,
 }
 
+impl OutputBudget {
+    /// The total rms without the output's load resistor (`outputs.NAME.load`), V: the figure to
+    /// compare with a render that does not simulate the next module's input resistor.
+    pub fn rms_without_load(&self) -> f64 {
+        let prefix = format!("outputs.{}.load (", self.output);
+        self.items
+            .iter()
+            .filter(|c| !c.label.starts_with(&prefix))
+            .map(|c| c.rms * c.rms)
+            .sum::<f64>()
+            .sqrt()
+    }
+}
+
 /// A noise source referred to the place where it is injected.
 struct NoiseSource {
     label: String,

@@ -713,3 +713,115 @@ fn gain_bandwidth_rolls_off_the_noise() {
         .iter()
         .any(|n| n.starts_with("stages.buf: closed-loop bandwidth")));
 }
+
+// The table layout (our own): share %, nV/rtHz at 1 kHz, uV rms, contributor. One 1k resistor
+// at 300 K over a 20 kHz wide band: 4.070 nV/rtHz, 0.5756 uV rms (CHECKS.md [D]).
+#[test]
+fn table_layout() {
+    let p = patch(
+        1,
+        vec![follower("buf", part(0.0, 0.0, 0.0), Node::Source(0))],
+        vec![out("o", Node::Stage(0), 1e3, None)],
+    );
+    let b = &budget(&p, (1.0, 20_001.0))[0];
+    let text = format_budget(b);
+    let lines: Vec<&str> = text.lines().collect();
+    assert_eq!(lines[0], "noise at output 'o'");
+    assert_eq!(
+        lines[1].split_whitespace().collect::<Vec<_>>(),
+        ["share", "%", "nV/rtHz", "uV", "rms", "contributor"]
+    );
+    let row: Vec<&str> = lines[2].split_whitespace().collect();
+    assert_eq!(row[..3], ["100.00", "4.070", "0.5756"]);
+    assert_eq!(row[3..].join(" "), "outputs.o.series (1k, thermal)");
+    let total: Vec<&str> = lines[3].split_whitespace().collect();
+    assert_eq!(total, ["100.00", "4.070", "0.5756", "total"]);
+    assert!(lines[4..].iter().all(|l| l.starts_with("note: ")));
+}
+
+// The load resistor is counted but can be left out for comparison: the total without it is the
+// power sum of the other items [D].
+#[test]
+fn total_without_load() {
+    let b = &budget(&mixer(), DEFAULT_BAND)[0];
+    let load = item(b, "outputs.main.load (");
+    let want = (b.total_rms.powi(2) - load.rms.powi(2)).sqrt();
+    assert!(close(b.rms_without_load(), want, 1e-12));
+    assert!(b.rms_without_load() < b.total_rms);
+}
+
+// Labels for the other key paths: a feedback pot, a coupling capacitor's corner note, a
+// non-inverting stage and a follower behind a pot (in+ through the wiper resistance).
+#[test]
+fn labels_for_pots_and_non_inverting() {
+    let text = r#"
+[patch]
+temperature = "300 K"
+[rails]
+pos = "12 V"
+neg = "-12 V"
+[sources.a]
+wave = "sine"
+freq = "1 kHz"
+amp = "1 V"
+[stages.gain]
+type = "inverting"
+part = "jfet-general"
+from = "a"
+r_in = "10k"
+c_in = "1u"
+feedback = { pot = "100k", taper = "linear", at = 0.5 }
+[stages.vol]
+type = "attenuator"
+from = "gain"
+pot = "10k"
+taper = "linear"
+at = 0.5
+[stages.buf]
+type = "follower"
+part = "bipolar-lownoise"
+from = "vol"
+[stages.boost]
+type = "non-inverting"
+part = "bipolar-lownoise"
+from = "buf"
+r_fb = "22k"
+r_g = "2k2"
+[outputs.out]
+from = "boost"
+"#;
+    let p = railsong::patch::parse_str(text, "t.toml", std::path::Path::new("."), &[])
+        .unwrap_or_else(|e| panic!("{e}"));
+    let b = &budget(&p, DEFAULT_BAND)[0];
+    for want in [
+        "stages.gain.feedback.pot (50k set, thermal)",
+        "stages.gain.r_in (10k, thermal)",
+        "stages.buf in+ (bipolar-lownoise, through 2k5)",
+        "stages.buf en (bipolar-lownoise)",
+        "stages.boost.r_fb (22k, thermal)",
+        "stages.boost.r_g (2k2, thermal)",
+        "stages.boost in- (bipolar-lownoise, into 22k)",
+    ] {
+        assert!(
+            b.items.iter().any(|c| c.label == want),
+            "missing '{want}' in {:#?}",
+            b.items
+        );
+    }
+    // 10k with 1 uF: 15.9 Hz, below the band, so no note; 10k with 100 nF: 159 Hz, noted
+    assert!(!b.notes.iter().any(|n| n.starts_with("stages.gain.c_in")));
+    let q = railsong::patch::parse_str(
+        text,
+        "t.toml",
+        std::path::Path::new("."),
+        &["stages.gain.c_in=100n".into()],
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    let bq = &budget(&q, DEFAULT_BAND)[0];
+    assert!(bq
+        .notes
+        .iter()
+        .any(|n| n.starts_with("stages.gain.c_in") && n.contains("159.2 Hz")));
+    // the unloaded output is said to be unloaded
+    assert!(b.notes.iter().any(|n| n.contains("unloaded")));
+}
