@@ -294,7 +294,8 @@ fn corner_note(key: &str, r: f64, c: f64, band: (f64, f64), what: &str) -> Optio
     })
 }
 
-/// Number of loads on each stage's output (summer inputs, stage inputs, outputs).
+/// Number of finite-impedance loads on each stage's output: summer inputs, attenuator tracks
+/// and loaded outputs (op-amp inputs and open outputs draw no current).
 fn load_counts(patch: &Patch) -> Vec<usize> {
     let mut n = vec![0usize; patch.stages.len()];
     let mut bump = |node: Node| {
@@ -305,12 +306,11 @@ fn load_counts(patch: &Patch) -> Vec<usize> {
     for stage in &patch.stages {
         match &stage.kind {
             StageKind::InvertingSum { inputs, .. } => inputs.iter().for_each(|i| bump(i.from)),
-            StageKind::NonInverting { from, .. }
-            | StageKind::Follower { from }
-            | StageKind::Attenuator { from, .. } => bump(*from),
+            StageKind::Attenuator { from, .. } => bump(*from),
+            StageKind::NonInverting { .. } | StageKind::Follower { .. } => {}
         }
     }
-    for out in &patch.outputs {
+    for out in patch.outputs.iter().filter(|o| o.load.is_some()) {
         bump(out.from);
     }
     n
@@ -513,8 +513,9 @@ fn walk(patch: &Patch, band: (f64, f64), f: f64) -> Walk {
                 out.r = if sum > 0.0 { top * lower / sum } else { 0.0 };
                 if loads[si] > 1 && out.r > 0.0 {
                     notes.push(format!(
-                        "{key}: the wiper ({} source resistance) drives {} loads; each is taken \
-                         as seeing the unloaded wiper, so their interaction is not modelled",
+                        "{key}: the wiper ({} source resistance) drives {} resistive loads; each \
+                         is taken as seeing the unloaded wiper, so their interaction is not \
+                         modelled",
                         fmt_resistance(out.r),
                         loads[si]
                     ));

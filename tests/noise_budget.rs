@@ -825,3 +825,41 @@ from = "boost"
     // the unloaded output is said to be unloaded
     assert!(b.notes.iter().any(|n| n.contains("unloaded")));
 }
+
+// A pot wiper feeding an op-amp input and one loaded output is still a single resistive load
+// (exact Thevenin); feeding two summing resistors it is not, and the budget says so.
+#[test]
+fn shared_wiper_is_noted() {
+    let noted = |p: &Patch, o: usize| {
+        budget(p, DEFAULT_BAND)[o]
+            .notes
+            .iter()
+            .any(|n| n.starts_with("stages.vol: the wiper"))
+    };
+    let p = patch(
+        1,
+        vec![
+            attenuator("vol", Node::Source(0), 10e3, 0.5),
+            follower("buf", part(0.0, 0.0, 0.0), Node::Stage(0)),
+        ],
+        vec![
+            out("a", Node::Stage(1), 0.0, None),
+            out("b", Node::Stage(0), 1e3, Some(100e3)),
+        ],
+    );
+    assert!(!noted(&p, 0) && !noted(&p, 1));
+    let p = patch(
+        1,
+        vec![
+            attenuator("vol", Node::Source(0), 10e3, 0.5),
+            summer(
+                "mix",
+                part(0.0, 0.0, 0.0),
+                &[(Node::Stage(0), 10e3), (Node::Stage(0), 10e3)],
+                10e3,
+            ),
+        ],
+        vec![out("a", Node::Stage(1), 0.0, None)],
+    );
+    assert!(noted(&p, 0));
+}
