@@ -863,3 +863,50 @@ fn shared_wiper_is_noted() {
     );
     assert!(noted(&p, 0));
 }
+
+// Seeded sweep over summers with 1 to 5 inputs: resistor noise 4 k T Rf (1 + Rf / Rpar) and en
+// times 1 + Rf / Rpar (CHECKS.md [D], textbook noise gain [S]) for every drawn circuit; white
+// sources through flat gains give rms^2 = density^2 (f2 - f1) [D].
+#[test]
+fn seeded_summers_match_closed_forms() {
+    let mut state: u64 = 0x5eed_2026;
+    let mut uniform = move || {
+        // 64-bit LCG (Knuth's MMIX constants), top 53 bits as a fraction
+        state = state
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
+        (state >> 11) as f64 / (1u64 << 53) as f64
+    };
+    let en = 5e-9;
+    for _ in 0..40 {
+        let n = 1 + (uniform() * 5.0) as usize;
+        let rs: Vec<f64> = (0..n).map(|_| 10f64.powf(3.0 + 3.0 * uniform())).collect();
+        let rf = 10f64.powf(3.0 + 3.0 * uniform());
+        let inputs: Vec<(Node, f64)> = rs
+            .iter()
+            .enumerate()
+            .map(|(i, r)| (Node::Source(i), *r))
+            .collect();
+        let p = patch(
+            n,
+            vec![summer("mix", part(en, 0.0, 0.0), &inputs, rf)],
+            vec![out("o", Node::Stage(0), 0.0, None)],
+        );
+        let b = &budget(&p, DEFAULT_BAND)[0];
+        let rpar = 1.0 / rs.iter().map(|r| 1.0 / r).sum::<f64>();
+        let ng = 1.0 + rf / rpar;
+        let resistors: f64 = b
+            .items
+            .iter()
+            .filter(|c| c.label.contains("thermal"))
+            .map(|c| c.density_1k.powi(2))
+            .sum();
+        assert!(close(resistors, four_ktr(rf) * ng, 1e-6), "{rs:?} {rf}");
+        assert!(close(item(b, "stages.mix en").density_1k, en * ng, 1e-6));
+        assert!(close(
+            b.total_rms.powi(2),
+            b.total_density_1k.powi(2) * (DEFAULT_BAND.1 - DEFAULT_BAND.0),
+            1e-6
+        ));
+    }
+}
