@@ -15,30 +15,32 @@
 //!   profiles carry no current-noise corner) into each input, flowing through the impedance
 //!   that input sees.
 //!
-//! # Gains (op-amp textbooks)
-//! Each node is held as a Thevenin equivalent: its open-circuit noise (one complex gain per
-//! source, so a source that reaches an output along two paths adds in amplitude, not power) and
-//! its source resistance `Rs` (0 for sources and op-amp outputs, the wiper resistance for an
-//! attenuator). `Zf` is the feedback resistor with its optional capacitor across it,
-//! `Zi = Ri + Rs_i + 1 / (j w Ci)` an input branch with its optional coupling capacitor.
-//! Per stage, in the ideal-op-amp limit:
-//! - inverting summer: each input `-Zf / Zi` (its node's noise and `Ri`'s own), `Rf`
-//!   `Zf / Rf` (its noise as a current across the feedback element; 1 without a capacitor),
-//!   `en` the noise gain `NG = 1 + Zf / Zpar` with `Zpar` all `Zi` in parallel (flat:
-//!   `1 + Rf / Rpar`), `in-` times `Zf`; the non-inverting input sits at the ideal reference,
+//! # Gains: nodal analysis at each frequency
+//! The patch becomes a small linear network: a node voltage for each op-amp output, each
+//! inverting input, each pot wiper and each series-resistor/load junction; sources and
+//! references are fixed (0 V for noise). Resistors are branches (with an input's coupling
+//! capacitor in series, a feedback capacitor across); each resistor's noise is a voltage in
+//! series with it, entered as its Norton current. Each op-amp is an ideal controlled voltage
+//! source `Vout = A(f) (V+ + en - V-)` with a single-pole open loop
+//! `A = A0 / (1 + j f A0 / GBW)` (or `GBW / (j f)` without a DC gain); current noise enters as
+//! a current into each input node that has a resistance to it. Kirchhoff's current law at
+//! every undriven node plus one op-amp equation per output is solved (complex LU with partial
+//! pivoting) for all sources at once through the adjoint system, one solve per output. So a
+//! source that reaches an output along two paths adds in amplitude, and a pot wiper with
+//! several loads on it is solved with all of them (all outputs' loads are connected, as in a
+//! render). For a resistive chain the result is the textbook set of noise gains:
+//! - inverting summer: each input and its `Ri` at `-Rf / (Ri + Rs_i)` (`Rs_i` the driving
+//!   wiper's resistance), `Rf` at 1, `en` at the noise gain `NG = 1 + Rf / Rpar` (all
+//!   `Ri + Rs_i` in parallel), `in-` at `Rf`; the non-inverting input sits at the reference,
 //!   so `in+` sees no resistance and is not listed;
-//! - non-inverting: input and `en` times `NG = 1 + Zf / Rg`, `Rf` `Zf / Rf`, `Rg` `-Zf / Rg`,
-//!   `in-` times `Zf`, `in+` times `Rs NG`;
-//! - follower: input and `en` 1, `in+` times `Rs`;
-//! - then every gain of an op-amp stage is multiplied by the single-pole closed-loop factor
-//!   `1 / (1 + NG / A(f))`, `A = A0 / (1 + j f A0 / GBW)` (or `GBW / (j f)` without a DC gain),
-//!   which gives `G0 / (1 + j f NG / GBW)` for a resistive network;
-//! - attenuator with track `P` at fraction `y`, fed from `Rs`: upper segment
-//!   `t = Rs + P (1 - y)`, lower `b = P y`; input and upper segment times `b / (t + b)`, lower
-//!   segment times `t / (t + b)`; wiper resistance `t b / (t + b)` (the segments are the noisy
-//!   resistors of that Thevenin resistance, so their powers add up to `4 k T Rs`);
-//! - output with series `Rser` into load `RL`: node and `Rser` times `RL / (Rs + Rser + RL)`,
-//!   `RL` times `(Rs + Rser) / (Rs + Rser + RL)`; an unloaded output passes everything at 1.
+//! - non-inverting: input and `en` at `1 + Rf / Rg`, `Rf` at 1, `Rg` at `Rf / Rg`, `in-` at
+//!   `Rf`, `in+` at `Rs (1 + Rf / Rg)`; follower: input and `en` at 1, `in+` at `Rs`;
+//! - attenuator, track `P` at fraction `y` (upper segment `P (1 - y)`, lower `P y`, both
+//!   noisy resistors): the divider ratio; its wiper resistance is what the next stage sees;
+//! - output with series `Rser` into load `RL`: divider `RL / (Rs + Rser + RL)`, the load's own
+//!   noise at `(Rs + Rser) / (Rs + Rser + RL)`; an unloaded output passes everything at 1,
+//!   `Rser` included;
+//! - each op-amp stage's gains times `1 / (1 + NG / A(f))`: `G0 / (1 + j f NG / GBW)`.
 //!
 //! # Band
 //! Spot densities are `|H(1 kHz)|` times the source density at 1 kHz. Band powers are
@@ -50,15 +52,15 @@
 //! band, in %; items are sorted by share, largest first.
 //!
 //! # Assumptions (stated in every budget's notes where they matter)
-//! - Op-amps: single-pole open loop, zero output impedance; no slew or clipping (small signal).
-//!   Stages whose closed-loop bandwidth `GBW / NG` falls inside the band are flagged.
-//! - Capacitor corners inside the band are named in the notes (they are in the gains).
-//! - Each consumer of an attenuator node sees its open-circuit Thevenin equivalent. This is
-//!   exact when the attenuator drives a single load (the usual volume pot); when it drives
-//!   several, the interaction between the loads is not modelled and the budget says so.
+//! - Op-amps: single-pole open loop, zero output impedance, small signal (no slewing,
+//!   clipping or common-mode effects). Stages whose closed-loop bandwidth `GBW / NG` falls
+//!   inside the band are flagged (their roll-off is in the gains).
+//! - Capacitor corners `1 / (2 pi R C)` inside the band are named in the notes (they are in
+//!   the gains too).
 //! - Sources are ideal (noiseless, zero impedance); references (`ref`) are ideal voltages.
 //! - The load resistor of an output belongs to the next module but is physically there: it is
-//!   counted, labelled `outputs.NAME.load`, and the notes give the total without it.
+//!   counted, labelled `outputs.NAME.load`, and the notes (and
+//!   [`OutputBudget::rms_without_load`]) give the total without it.
 
 use std::f64::consts::PI;
 
@@ -67,7 +69,6 @@ use serde::Serialize;
 
 use crate::model::{Node, Patch, StageKind};
 use crate::parts::taper;
-use crate::parts::OpAmp;
 
 type C = Complex<f64>;
 use crate::units::{fmt_eng, fmt_resistance};
@@ -115,6 +116,12 @@ pub enum NoiseError {
         /// Upper edge given, Hz.
         high: f64,
     },
+    /// The nodal equations of the noise network have no unique solution.
+    #[error("the noise network of the patch has no unique solution at {frequency} Hz")]
+    Singular {
+        /// Frequency of the failed solve, Hz.
+        frequency: f64,
+    },
 }
 
 /// One contributor to the noise at an output.
@@ -159,11 +166,10 @@ impl OutputBudget {
     }
 }
 
-/// A noise source referred to the place where it is injected.
+/// A noise source where it is injected.
 struct NoiseSource {
     label: String,
-    /// White density at the point of injection, V/sqrt(Hz) (already times any resistance for
-    /// a current noise).
+    /// White density: V/sqrt(Hz) for a voltage source, A/sqrt(Hz) for a current source.
     density: f64,
     /// 1/f corner, Hz.
     corner: f64,
@@ -171,82 +177,14 @@ struct NoiseSource {
     load: bool,
 }
 
-/// Complex gain from every source (by index) to one node's open-circuit voltage, at one
-/// frequency.
+/// Complex gain from every source (by index) to one output, at one frequency (V per unit of
+/// the source: V/V or V/A).
 #[derive(Clone, Default)]
 struct Transfer(Vec<C>);
 
 impl Transfer {
-    fn add(&mut self, id: usize, g: C) {
-        if self.0.len() <= id {
-            self.0.resize(id + 1, C::new(0.0, 0.0));
-        }
-        self.0[id] += g;
-    }
-    fn add_scaled(&mut self, other: &Transfer, k: C) {
-        for (id, g) in other.0.iter().enumerate() {
-            if g.re != 0.0 || g.im != 0.0 {
-                self.add(id, g * k);
-            }
-        }
-    }
-    fn scale(&mut self, k: C) {
-        for g in &mut self.0 {
-            *g *= k;
-        }
-    }
     fn get(&self, id: usize) -> C {
         self.0.get(id).copied().unwrap_or_default()
-    }
-}
-
-/// A node as its consumers see it: open-circuit noise and (resistive) source resistance.
-#[derive(Clone, Default)]
-struct Thevenin {
-    noise: Transfer,
-    r: f64,
-}
-
-/// The network at one frequency: every source, and its gain to every output.
-struct Network {
-    sources: Vec<NoiseSource>,
-    /// Per output, in output order.
-    outputs: Vec<Transfer>,
-    /// Per output: the notes about it and the stages upstream of it.
-    notes: Vec<Vec<String>>,
-}
-
-/// Everything collected while walking the stages.
-struct Walk {
-    sources: Vec<NoiseSource>,
-    nodes: Vec<Thevenin>,
-    /// Per stage: notes about it (bandwidth, capacitors, loading) and its upstream stages.
-    stage_notes: Vec<Vec<String>>,
-    upstream: Vec<Vec<bool>>,
-}
-
-impl Walk {
-    fn register(&mut self, label: String, density: f64, corner: f64) -> Option<usize> {
-        if !(density.is_finite() && density > 0.0) {
-            return None;
-        }
-        self.sources.push(NoiseSource {
-            label,
-            density,
-            corner: if corner.is_finite() {
-                corner.max(0.0)
-            } else {
-                0.0
-            },
-            load: false,
-        });
-        Some(self.sources.len() - 1)
-    }
-    fn node(&self, node: Node) -> Thevenin {
-        match node {
-            Node::Source(_) => Thevenin::default(),
-            Node::Stage(i) => self.nodes[i].clone(),
-        }
     }
 }
 
@@ -254,30 +192,86 @@ fn real(x: f64) -> C {
     C::new(x, 0.0)
 }
 
-/// Impedance of a capacitor `c` at `f`: `1 / (j 2 pi f C)`.
-fn z_cap(c: f64, f: f64) -> C {
-    C::new(0.0, -1.0 / (2.0 * PI * f * c))
+/// The impedance of a two-terminal branch.
+#[derive(Debug, Clone, Copy)]
+enum Imp {
+    /// A resistor.
+    R(f64),
+    /// A resistor in series with a capacitor (an input with a coupling capacitor).
+    Series(f64, f64),
+    /// A resistor with a capacitor across it (a feedback element).
+    Parallel(f64, f64),
 }
 
-/// A resistor with an optional capacitor across it, at `f`.
-fn z_parallel(r: f64, c: Option<f64>, f: f64) -> C {
-    match c {
-        Some(c) => real(r) / C::new(1.0, 2.0 * PI * f * r * c),
-        None => real(r),
+impl Imp {
+    fn z(self, f: f64) -> C {
+        let w = 2.0 * PI * f;
+        match self {
+            Imp::R(r) => real(r),
+            Imp::Series(r, c) => C::new(r, -1.0 / (w * c)),
+            Imp::Parallel(r, c) => real(r) / C::new(1.0, w * r * c),
+        }
+    }
+    /// Norton current of the resistor's series noise voltage, per volt: `1 / Z` when the
+    /// voltage is in series with the whole branch, `1 / R` when a capacitor is across it.
+    fn norton(self, f: f64) -> C {
+        match self {
+            Imp::R(r) | Imp::Parallel(r, _) => real(1.0 / r),
+            Imp::Series(..) => real(1.0) / self.z(f),
+        }
     }
 }
 
-/// Closed-loop factor `1 / (1 + NG / A(f))` of a stage with noise gain `ng` (single-pole
-/// open loop `A = A0 / (1 + j f A0 / GBW)`, or `GBW / (j f)` without a DC gain).
-fn loop_factor(part: &OpAmp, ng: C, f: f64) -> C {
-    if !(part.gbw.is_finite() && part.gbw > 0.0) {
-        return real(1.0);
+/// A branch between two unknowns (`None`: ground, a source or a reference: fixed for noise).
+struct Branch {
+    a: Option<usize>,
+    b: Option<usize>,
+    imp: Imp,
+    /// The resistor's thermal noise, a voltage in series from `a` to `b`.
+    noise: Option<usize>,
+}
+
+/// An op-amp: `Vout = A(f) (V+ + en - V-)`, an ideal controlled voltage source at `out`.
+struct Amp {
+    out: usize,
+    plus: Option<usize>,
+    minus: usize,
+    gbw: f64,
+    a0: Option<f64>,
+    en: Option<usize>,
+}
+
+/// An output: the voltage of `node`, plus sources seen at gain 1 (an unloaded series resistor).
+struct Probe {
+    node: Option<usize>,
+    direct: Vec<usize>,
+}
+
+/// The small-signal noise network of a patch: unknown node voltages, branches, op-amps and
+/// current injections, built once and solved at each frequency.
+struct Netlist {
+    /// Per unknown: true when it is an op-amp output (its row is the op-amp's equation).
+    driven: Vec<bool>,
+    branches: Vec<Branch>,
+    amps: Vec<Amp>,
+    /// Current noise sources: (node, source) with 1 A per unit density into the node.
+    injections: Vec<(usize, usize)>,
+    probes: Vec<Probe>,
+    sources: Vec<NoiseSource>,
+    /// Per output: notes about it and the stages upstream of it.
+    notes: Vec<Vec<String>>,
+}
+
+/// `1 / A(f)` of a single-pole open loop `A = A0 / (1 + j f A0 / GBW)`, or `GBW / (j f)`
+/// without a DC gain.
+fn inv_open_loop(gbw: f64, a0: Option<f64>, f: f64) -> C {
+    if !(gbw.is_finite() && gbw > 0.0) {
+        return real(0.0);
     }
-    let a = match part.a0 {
-        Some(a0) if a0.is_finite() && a0 > 0.0 => real(a0) / C::new(1.0, f * a0 / part.gbw),
-        _ => C::new(0.0, -part.gbw / f),
-    };
-    real(1.0) / (real(1.0) + ng / a)
+    match a0 {
+        Some(a0) if a0.is_finite() && a0 > 0.0 => C::new(1.0 / a0, f / gbw),
+        _ => C::new(0.0, f / gbw),
+    }
 }
 
 fn thermal_label(key: &str, r: f64) -> String {
@@ -294,313 +288,472 @@ fn corner_note(key: &str, r: f64, c: f64, band: (f64, f64), what: &str) -> Optio
     })
 }
 
-/// Number of finite-impedance loads on each stage's output: summer inputs, attenuator tracks
-/// and loaded outputs (op-amp inputs and open outputs draw no current).
-fn load_counts(patch: &Patch) -> Vec<usize> {
-    let mut n = vec![0usize; patch.stages.len()];
-    let mut bump = |node: Node| {
-        if let Node::Stage(j) = node {
-            n[j] += 1;
-        }
-    };
-    for stage in &patch.stages {
-        match &stage.kind {
-            StageKind::InvertingSum { inputs, .. } => inputs.iter().for_each(|i| bump(i.from)),
-            StageKind::Attenuator { from, .. } => bump(*from),
-            StageKind::NonInverting { .. } | StageKind::Follower { .. } => {}
-        }
+impl Netlist {
+    fn unknown(&mut self, driven: bool) -> usize {
+        self.driven.push(driven);
+        self.driven.len() - 1
     }
-    for out in patch.outputs.iter().filter(|o| o.load.is_some()) {
-        bump(out.from);
-    }
-    n
-}
 
-/// Walk the stages at frequency `f` (Hz, > 0).
-fn walk(patch: &Patch, band: (f64, f64), f: f64) -> Walk {
-    let t = patch.temperature;
-    let n = patch.stages.len();
-    let mut w = Walk {
-        sources: Vec::new(),
-        nodes: Vec::with_capacity(n),
-        stage_notes: Vec::with_capacity(n),
-        upstream: Vec::with_capacity(n),
-    };
-    let loads = load_counts(patch);
-    let one = real(1.0);
-    for (si, stage) in patch.stages.iter().enumerate() {
-        let key = format!("stages.{}", stage.name);
-        let mut notes = Vec::new();
-        let mut up = vec![false; n];
-        let mark = |node: Node, up: &mut Vec<bool>, w: &Walk| {
-            if let Node::Stage(j) = node {
-                up[j] = true;
-                for (k, u) in w.upstream[j].iter().enumerate() {
-                    up[k] |= *u;
-                }
-            }
+    fn register(&mut self, label: String, density: f64, corner: f64) -> Option<usize> {
+        if !(density.is_finite() && density > 0.0) {
+            return None;
+        }
+        self.sources.push(NoiseSource {
+            label,
+            density,
+            corner: if corner.is_finite() {
+                corner.max(0.0)
+            } else {
+                0.0
+            },
+            load: false,
+        });
+        Some(self.sources.len() - 1)
+    }
+
+    /// A resistor (with its optional capacitor) between `a` and `b`, with its thermal noise.
+    fn resistor(&mut self, a: Option<usize>, b: Option<usize>, imp: Imp, label: String, t: f64) {
+        let r = match imp {
+            Imp::R(r) | Imp::Series(r, _) | Imp::Parallel(r, _) => r,
         };
-        let mut out = Thevenin::default();
-        // (noise gain at f, flat-band noise gain) of active stages
-        let mut noise_gain: Option<(C, f64)> = None;
-        let part = stage.part.as_ref();
-        let en_label = |p: &str| format!("{key} en ({p})");
-        match &stage.kind {
-            StageKind::InvertingSum {
-                inputs,
-                feedback,
-                single,
-                ..
-            } => {
-                let rf = feedback.r;
-                let zf = z_parallel(rf, feedback.c, f);
-                let mut y_par = C::new(0.0, 0.0);
-                let mut g_flat = 0.0;
-                for (k, inp) in inputs.iter().enumerate() {
-                    mark(inp.from, &mut up, &w);
-                    let src = w.node(inp.from);
-                    let r_tot = inp.r + src.r;
-                    let z_in = match inp.c {
-                        Some(c) => real(r_tot) + z_cap(c, f),
-                        None => real(r_tot),
-                    };
-                    y_par += one / z_in;
-                    g_flat += 1.0 / r_tot;
-                    let g = -zf / z_in;
-                    out.noise.add_scaled(&src.noise, g);
-                    let rkey = if *single {
-                        format!("{key}.r_in")
-                    } else {
-                        format!("{key}.inputs[{k}].r")
-                    };
-                    if let Some(id) =
-                        w.register(thermal_label(&rkey, inp.r), johnson_density(inp.r, t), 0.0)
-                    {
-                        out.noise.add(id, g);
-                    }
-                    if let Some(c) = inp.c {
-                        let ckey = if *single {
-                            format!("{key}.c_in")
-                        } else {
-                            format!("{key}.inputs[{k}].c")
-                        };
-                        notes.extend(corner_note(&ckey, r_tot, c, band, "high-pass"));
-                    }
-                }
-                let fb_label = match (&feedback.pot, single) {
-                    (Some(_), _) => {
-                        format!("{key}.feedback.pot ({} set, thermal)", fmt_resistance(rf))
-                    }
-                    (None, true) => thermal_label(&format!("{key}.r_fb"), rf),
-                    (None, false) => thermal_label(&format!("{key}.feedback.r"), rf),
-                };
-                // Rf's noise as a current e / Rf across the whole feedback element
-                if let Some(id) = w.register(fb_label, johnson_density(rf, t), 0.0) {
-                    out.noise.add(id, zf / rf);
-                }
-                if let Some(c) = feedback.c {
-                    let ckey = if *single && feedback.pot.is_none() {
-                        format!("{key}.c_fb")
-                    } else {
-                        format!("{key}.feedback.c")
-                    };
-                    notes.extend(corner_note(&ckey, rf, c, band, "low-pass"));
-                }
-                let ng = one + zf * y_par;
-                noise_gain = Some((ng, 1.0 + rf * g_flat));
-                if let Some(p) = part {
-                    if let Some(id) = w.register(en_label(&p.name), p.en, p.en_corner) {
-                        out.noise.add(id, ng);
-                    }
-                    let label = format!("{key} in- ({}, into {})", p.name, fmt_resistance(rf));
-                    if let Some(id) = w.register(label, p.inoise * rf, 0.0) {
-                        out.noise.add(id, zf / rf);
-                    }
-                }
-            }
-            StageKind::NonInverting {
-                from,
-                r_fb,
-                c_fb,
-                r_g,
-                ..
-            } => {
-                mark(*from, &mut up, &w);
-                let src = w.node(*from);
-                let zf = z_parallel(*r_fb, *c_fb, f);
-                let ng = one + zf / *r_g;
-                noise_gain = Some((ng, 1.0 + r_fb / r_g));
-                out.noise.add_scaled(&src.noise, ng);
-                let fb = thermal_label(&format!("{key}.r_fb"), *r_fb);
-                if let Some(id) = w.register(fb, johnson_density(*r_fb, t), 0.0) {
-                    out.noise.add(id, zf / *r_fb);
-                }
-                let rg = thermal_label(&format!("{key}.r_g"), *r_g);
-                if let Some(id) = w.register(rg, johnson_density(*r_g, t), 0.0) {
-                    out.noise.add(id, -zf / *r_g);
-                }
-                if let Some(c) = c_fb {
-                    notes.extend(corner_note(
-                        &format!("{key}.c_fb"),
-                        *r_fb,
-                        *c,
-                        band,
-                        "low-pass",
-                    ));
-                }
-                if let Some(p) = part {
-                    if let Some(id) = w.register(en_label(&p.name), p.en, p.en_corner) {
-                        out.noise.add(id, ng);
-                    }
-                    let label = format!("{key} in- ({}, into {})", p.name, fmt_resistance(*r_fb));
-                    if let Some(id) = w.register(label, p.inoise * r_fb, 0.0) {
-                        out.noise.add(id, zf / *r_fb);
-                    }
-                    if src.r > 0.0 {
-                        let label =
-                            format!("{key} in+ ({}, through {})", p.name, fmt_resistance(src.r));
-                        if let Some(id) = w.register(label, p.inoise * src.r, 0.0) {
-                            out.noise.add(id, ng);
-                        }
-                    }
-                }
-            }
-            StageKind::Follower { from } => {
-                mark(*from, &mut up, &w);
-                let src = w.node(*from);
-                noise_gain = Some((one, 1.0));
-                out.noise.add_scaled(&src.noise, one);
-                if let Some(p) = part {
-                    if let Some(id) = w.register(en_label(&p.name), p.en, p.en_corner) {
-                        out.noise.add(id, one);
-                    }
-                    if src.r > 0.0 {
-                        let label =
-                            format!("{key} in+ ({}, through {})", p.name, fmt_resistance(src.r));
-                        if let Some(id) = w.register(label, p.inoise * src.r, 0.0) {
-                            out.noise.add(id, one);
-                        }
-                    }
-                }
-            }
-            StageKind::Attenuator {
-                from,
-                pot,
-                taper: law,
-                at,
-            } => {
-                mark(*from, &mut up, &w);
-                let src = w.node(*from);
-                let y = taper::fraction(*law, *at);
-                let upper = pot * (1.0 - y);
-                let lower = pot * y;
-                let top = src.r + upper;
-                let sum = top + lower;
-                let (ratio, rest) = if sum > 0.0 {
-                    (lower / sum, top / sum)
-                } else {
-                    (0.0, 0.0)
-                };
-                out.noise.add_scaled(&src.noise, real(ratio));
-                let ul = thermal_label(&format!("{key}.pot upper"), upper);
-                if let Some(id) = w.register(ul, johnson_density(upper, t), 0.0) {
-                    out.noise.add(id, real(ratio));
-                }
-                let ll = thermal_label(&format!("{key}.pot lower"), lower);
-                if let Some(id) = w.register(ll, johnson_density(lower, t), 0.0) {
-                    out.noise.add(id, real(rest));
-                }
-                out.r = if sum > 0.0 { top * lower / sum } else { 0.0 };
-                if loads[si] > 1 && out.r > 0.0 {
-                    notes.push(format!(
-                        "{key}: the wiper ({} source resistance) drives {} resistive loads; each \
-                         is taken as seeing the unloaded wiper, so their interaction is not \
-                         modelled",
-                        fmt_resistance(out.r),
-                        loads[si]
-                    ));
-                }
-            }
+        if a.is_none() && b.is_none() {
+            return;
         }
-        if let (Some(p), Some((ng, ng_flat))) = (part, noise_gain) {
-            out.noise.scale(loop_factor(p, ng, f));
-            let bw = p.gbw / ng_flat;
-            if bw < band.1 {
-                notes.push(format!(
-                    "{key}: closed-loop bandwidth GBW / noise gain = {} / {:.2} = {} is inside \
-                     the band (its single-pole roll-off is included in the gains)",
-                    fmt_eng(p.gbw, "Hz"),
-                    ng_flat,
-                    fmt_eng(bw, "Hz")
-                ));
-            }
-        }
-        w.nodes.push(out);
-        w.stage_notes.push(notes);
-        w.upstream.push(up);
+        let noise = self.register(label, johnson_density(r, t), 0.0);
+        self.branches.push(Branch { a, b, imp, noise });
     }
-    w
+
+    /// A current noise into `node`, when that node has a resistance to take it.
+    fn inject(&mut self, node: Option<usize>, label: String, density: f64) {
+        if let Some(n) = node.filter(|n| !self.driven[*n]) {
+            if let Some(id) = self.register(label, density, 0.0) {
+                self.injections.push((n, id));
+            }
+        }
+    }
+
+    fn build(patch: &Patch, band: (f64, f64)) -> Netlist {
+        let t = patch.temperature;
+        let n = patch.stages.len();
+        let mut net = Netlist {
+            driven: Vec::new(),
+            branches: Vec::new(),
+            amps: Vec::new(),
+            injections: Vec::new(),
+            probes: Vec::new(),
+            sources: Vec::new(),
+            notes: Vec::new(),
+        };
+        // per stage: its output unknown, unloaded Thevenin resistance (for labels and the flat
+        // noise gain), notes and upstream stages
+        let mut outs: Vec<Option<usize>> = Vec::with_capacity(n);
+        let mut rth: Vec<f64> = Vec::with_capacity(n);
+        let mut stage_notes: Vec<Vec<String>> = Vec::with_capacity(n);
+        let mut upstream: Vec<Vec<bool>> = Vec::with_capacity(n);
+        for stage in &patch.stages {
+            let key = format!("stages.{}", stage.name);
+            let node_of = |node: Node, outs: &Vec<Option<usize>>| match node {
+                Node::Source(_) => None,
+                Node::Stage(j) => outs[j],
+            };
+            let rth_of = |node: Node, rth: &Vec<f64>| match node {
+                Node::Source(_) => 0.0,
+                Node::Stage(j) => rth[j],
+            };
+            let mut up = vec![false; n];
+            let mut mark = |node: Node| {
+                if let Node::Stage(j) = node {
+                    up[j] = true;
+                    for (k, u) in upstream[j].iter().enumerate() {
+                        up[k] |= *u;
+                    }
+                }
+            };
+            let mut notes = Vec::new();
+            let mut out_node = None;
+            let mut out_r = 0.0;
+            let mut ng_flat = None;
+            let part = stage.part.as_ref();
+            match &stage.kind {
+                StageKind::InvertingSum {
+                    inputs,
+                    feedback,
+                    single,
+                    ..
+                } => {
+                    let out = net.unknown(true);
+                    let minus = net.unknown(false);
+                    let rf = feedback.r;
+                    let mut g_flat = 0.0;
+                    for (k, inp) in inputs.iter().enumerate() {
+                        mark(inp.from);
+                        let r_tot = inp.r + rth_of(inp.from, &rth);
+                        g_flat += 1.0 / r_tot;
+                        let (rkey, ckey) = if *single {
+                            (format!("{key}.r_in"), format!("{key}.c_in"))
+                        } else {
+                            (
+                                format!("{key}.inputs[{k}].r"),
+                                format!("{key}.inputs[{k}].c"),
+                            )
+                        };
+                        let imp = match inp.c {
+                            Some(c) => {
+                                notes.extend(corner_note(&ckey, r_tot, c, band, "high-pass"));
+                                Imp::Series(inp.r, c)
+                            }
+                            None => Imp::R(inp.r),
+                        };
+                        let from = node_of(inp.from, &outs);
+                        net.resistor(from, Some(minus), imp, thermal_label(&rkey, inp.r), t);
+                    }
+                    let fb_label = match (&feedback.pot, single) {
+                        (Some(_), _) => {
+                            format!("{key}.feedback.pot ({} set, thermal)", fmt_resistance(rf))
+                        }
+                        (None, true) => thermal_label(&format!("{key}.r_fb"), rf),
+                        (None, false) => thermal_label(&format!("{key}.feedback.r"), rf),
+                    };
+                    let imp = match feedback.c {
+                        Some(c) => {
+                            let ckey = if *single && feedback.pot.is_none() {
+                                format!("{key}.c_fb")
+                            } else {
+                                format!("{key}.feedback.c")
+                            };
+                            notes.extend(corner_note(&ckey, rf, c, band, "low-pass"));
+                            Imp::Parallel(rf, c)
+                        }
+                        None => Imp::R(rf),
+                    };
+                    net.resistor(Some(minus), Some(out), imp, fb_label, t);
+                    ng_flat = Some(1.0 + rf * g_flat);
+                    if let Some(p) = part {
+                        let en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
+                        let label = format!("{key} in- ({}, into {})", p.name, fmt_resistance(rf));
+                        net.inject(Some(minus), label, p.inoise);
+                        net.amps.push(Amp {
+                            out,
+                            plus: None,
+                            minus,
+                            gbw: p.gbw,
+                            a0: p.a0,
+                            en,
+                        });
+                    }
+                    out_node = Some(out);
+                }
+                StageKind::NonInverting {
+                    from,
+                    r_fb,
+                    c_fb,
+                    r_g,
+                    ..
+                } => {
+                    mark(*from);
+                    let plus = node_of(*from, &outs);
+                    let rs = rth_of(*from, &rth);
+                    let out = net.unknown(true);
+                    let minus = net.unknown(false);
+                    let imp = match c_fb {
+                        Some(c) => {
+                            notes.extend(corner_note(
+                                &format!("{key}.c_fb"),
+                                *r_fb,
+                                *c,
+                                band,
+                                "low-pass",
+                            ));
+                            Imp::Parallel(*r_fb, *c)
+                        }
+                        None => Imp::R(*r_fb),
+                    };
+                    let fb = thermal_label(&format!("{key}.r_fb"), *r_fb);
+                    net.resistor(Some(minus), Some(out), imp, fb, t);
+                    let rg = thermal_label(&format!("{key}.r_g"), *r_g);
+                    net.resistor(Some(minus), None, Imp::R(*r_g), rg, t);
+                    ng_flat = Some(1.0 + r_fb / r_g);
+                    if let Some(p) = part {
+                        let en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
+                        let label =
+                            format!("{key} in- ({}, into {})", p.name, fmt_resistance(*r_fb));
+                        net.inject(Some(minus), label, p.inoise);
+                        let label =
+                            format!("{key} in+ ({}, through {})", p.name, fmt_resistance(rs));
+                        net.inject(plus, label, p.inoise);
+                        net.amps.push(Amp {
+                            out,
+                            plus,
+                            minus,
+                            gbw: p.gbw,
+                            a0: p.a0,
+                            en,
+                        });
+                    }
+                    out_node = Some(out);
+                }
+                StageKind::Follower { from } => {
+                    mark(*from);
+                    let plus = node_of(*from, &outs);
+                    let rs = rth_of(*from, &rth);
+                    let out = net.unknown(true);
+                    ng_flat = Some(1.0);
+                    if let Some(p) = part {
+                        let en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
+                        let label =
+                            format!("{key} in+ ({}, through {})", p.name, fmt_resistance(rs));
+                        net.inject(plus, label, p.inoise);
+                        net.amps.push(Amp {
+                            out,
+                            plus,
+                            minus: out,
+                            gbw: p.gbw,
+                            a0: p.a0,
+                            en,
+                        });
+                    }
+                    out_node = Some(out);
+                }
+                StageKind::Attenuator {
+                    from,
+                    pot,
+                    taper: law,
+                    at,
+                } => {
+                    mark(*from);
+                    let src = node_of(*from, &outs);
+                    let y = taper::fraction(*law, *at);
+                    let upper = pot * (1.0 - y);
+                    let lower = pot * y;
+                    let ul = thermal_label(&format!("{key}.pot upper"), upper);
+                    let ll = thermal_label(&format!("{key}.pot lower"), lower);
+                    if lower <= 0.0 {
+                        // wiper at the ground end
+                        if upper > 0.0 {
+                            net.resistor(src, None, Imp::R(upper), ul, t);
+                        }
+                    } else if upper <= 0.0 {
+                        // wiper at the top: the input node itself
+                        net.resistor(src, None, Imp::R(lower), ll, t);
+                        out_node = src;
+                    } else {
+                        let w = net.unknown(false);
+                        net.resistor(src, Some(w), Imp::R(upper), ul, t);
+                        net.resistor(Some(w), None, Imp::R(lower), ll, t);
+                        out_node = Some(w);
+                    }
+                    let top = rth_of(*from, &rth) + upper;
+                    out_r = if top + lower > 0.0 {
+                        top * lower / (top + lower)
+                    } else {
+                        0.0
+                    };
+                }
+            }
+            if let (Some(p), Some(ng)) = (part, ng_flat) {
+                let bw = p.gbw / ng;
+                if bw < band.1 {
+                    notes.push(format!(
+                        "{key}: closed-loop bandwidth GBW / noise gain = {} / {:.2} = {} is \
+                         inside the band (its single-pole roll-off is included in the gains)",
+                        fmt_eng(p.gbw, "Hz"),
+                        ng,
+                        fmt_eng(bw, "Hz")
+                    ));
+                }
+            }
+            outs.push(out_node);
+            rth.push(out_r);
+            stage_notes.push(notes);
+            upstream.push(up);
+        }
+
+        for out in &patch.outputs {
+            let key = format!("outputs.{}", out.name);
+            let from = match out.from {
+                Node::Source(_) => None,
+                Node::Stage(j) => outs[j],
+            };
+            let mut notes = vec![format!(
+                "band {} .. {}, spot densities at {}, {t:.2} K; powers of independent sources \
+                 added",
+                fmt_eng(band.0, "Hz"),
+                fmt_eng(band.1, "Hz"),
+                fmt_eng(SPOT_FREQUENCY, "Hz")
+            )];
+            let series_label = thermal_label(&format!("{key}.series"), out.series);
+            let probe = match out.load {
+                Some(rl) => {
+                    let load_label = format!(
+                        "{key}.load ({}, thermal, next module's input)",
+                        fmt_resistance(rl)
+                    );
+                    let node = if out.series > 0.0 {
+                        let o = net.unknown(false);
+                        net.resistor(from, Some(o), Imp::R(out.series), series_label, t);
+                        Some(o)
+                    } else {
+                        from
+                    };
+                    let before = net.sources.len();
+                    // straight across an ideal source the load's noise is shorted: not listed
+                    net.resistor(node, None, Imp::R(rl), load_label, t);
+                    for s in &mut net.sources[before..] {
+                        s.load = true;
+                    }
+                    Probe {
+                        node,
+                        direct: Vec::new(),
+                    }
+                }
+                None => {
+                    notes.push(format!(
+                        "{key}: unloaded; the open-circuit voltage is budgeted"
+                    ));
+                    let direct = net
+                        .register(series_label, johnson_density(out.series, t), 0.0)
+                        .into_iter()
+                        .collect();
+                    Probe { node: from, direct }
+                }
+            };
+            if let Node::Stage(j) = out.from {
+                for (k, sn) in stage_notes.iter().enumerate() {
+                    if k == j || upstream[j][k] {
+                        notes.extend(sn.iter().cloned());
+                    }
+                }
+            }
+            net.probes.push(probe);
+            net.notes.push(notes);
+        }
+        net
+    }
+
+    /// Gains from every source to every output at frequency `f`; `None` if the network
+    /// matrix is singular there.
+    fn transfers(&self, f: f64) -> Option<Vec<Transfer>> {
+        let n = self.driven.len();
+        let n_src = self.sources.len();
+        // Nodal equations Y v = B s: a KCL row per undriven node, the op-amp equation
+        // (1/A) Vout - V+ + V- = en per driven one.
+        let mut y = vec![C::new(0.0, 0.0); n * n];
+        let mut b: Vec<(usize, usize, C)> = Vec::new();
+        for br in &self.branches {
+            let adm = real(1.0) / br.imp.z(f);
+            let norton = br.imp.norton(f);
+            for (this, other, sign) in [(br.a, br.b, -1.0), (br.b, br.a, 1.0)] {
+                let Some(i) = this.filter(|i| !self.driven[*i]) else {
+                    continue;
+                };
+                y[i * n + i] += adm;
+                if let Some(j) = other {
+                    y[i * n + j] -= adm;
+                }
+                if let Some(id) = br.noise {
+                    b.push((i, id, norton * sign));
+                }
+            }
+        }
+        for amp in &self.amps {
+            let r = amp.out;
+            y[r * n + r] += inv_open_loop(amp.gbw, amp.a0, f);
+            if let Some(p) = amp.plus {
+                y[r * n + p] -= real(1.0);
+            }
+            y[r * n + amp.minus] += real(1.0);
+            if let Some(id) = amp.en {
+                b.push((r, id, real(1.0)));
+            }
+        }
+        for (node, id) in &self.injections {
+            b.push((*node, *id, real(1.0)));
+        }
+        // A driven row without an op-amp (a passive stage has none) cannot occur; an op-amp
+        // stage always pushes its amp when it has a part, and patch validation guarantees it.
+        for (i, d) in self.driven.iter().enumerate() {
+            if *d && !self.amps.iter().any(|a| a.out == i) {
+                y[i * n + i] = real(1.0);
+            }
+        }
+        // Adjoint: solve Y^T z = e_k for each probed node; the gain of source s is z . B[:, s].
+        let probed: Vec<usize> = self.probes.iter().filter_map(|p| p.node).collect();
+        let mut yt = vec![C::new(0.0, 0.0); n * n];
+        for i in 0..n {
+            for j in 0..n {
+                yt[j * n + i] = y[i * n + j];
+            }
+        }
+        let mut rhs = vec![C::new(0.0, 0.0); n * probed.len()];
+        for (k, node) in probed.iter().enumerate() {
+            rhs[node * probed.len() + k] = real(1.0);
+        }
+        solve_in_place(&mut yt, &mut rhs, n, probed.len())?;
+        let mut result = Vec::with_capacity(self.probes.len());
+        let mut k = 0;
+        for probe in &self.probes {
+            let mut g = vec![C::new(0.0, 0.0); n_src];
+            if probe.node.is_some() {
+                for (row, id, v) in &b {
+                    g[*id] += rhs[row * probed.len() + k] * v;
+                }
+                k += 1;
+            }
+            for id in &probe.direct {
+                g[*id] += real(1.0);
+            }
+            result.push(Transfer(g));
+        }
+        Some(result)
+    }
 }
 
-/// The whole network at frequency `f`: stages, then each output's series resistor and load.
-fn network(patch: &Patch, band: (f64, f64), f: f64) -> Network {
-    let mut w = walk(patch, band, f);
-    let t = patch.temperature;
-    let mut outputs = Vec::with_capacity(patch.outputs.len());
-    let mut all_notes = Vec::with_capacity(patch.outputs.len());
-    for out in &patch.outputs {
-        let key = format!("outputs.{}", out.name);
-        let node = w.node(out.from);
-        let mut noise = Transfer::default();
-        let mut notes = vec![format!(
-            "band {} .. {}, spot densities at {}, {t:.2} K; powers of independent sources added",
-            fmt_eng(band.0, "Hz"),
-            fmt_eng(band.1, "Hz"),
-            fmt_eng(SPOT_FREQUENCY, "Hz")
-        )];
-        let series_label = thermal_label(&format!("{key}.series"), out.series);
-        match out.load {
-            Some(rl) => {
-                let ahead = node.r + out.series;
-                let div = real(rl / (ahead + rl));
-                noise.add_scaled(&node.noise, div);
-                if let Some(id) = w.register(series_label, johnson_density(out.series, t), 0.0) {
-                    noise.add(id, div);
-                }
-                let ll = format!(
-                    "{key}.load ({}, thermal, next module's input)",
-                    fmt_resistance(rl)
-                );
-                if let Some(id) = w.register(ll, johnson_density(rl, t), 0.0) {
-                    w.sources[id].load = true;
-                    noise.add(id, real(ahead / (ahead + rl)));
-                }
+/// Solve `A X = B` in place by Gaussian elimination with partial pivoting (`A` is `n x n`,
+/// `B` is `n x m`, both row-major); `B` becomes `X`. `None` when `A` is singular.
+fn solve_in_place(a: &mut [C], b: &mut [C], n: usize, m: usize) -> Option<()> {
+    let scale = a.iter().map(|v| v.norm()).fold(0.0, f64::max);
+    for col in 0..n {
+        let (piv, best) = (col..n)
+            .map(|r| (r, a[r * n + col].norm()))
+            .fold((col, -1.0), |acc, x| if x.1 > acc.1 { x } else { acc });
+        if best.is_nan() || best <= scale * 1e-300 || best == 0.0 || !best.is_finite() {
+            return None;
+        }
+        if piv != col {
+            for j in 0..n {
+                a.swap(piv * n + j, col * n + j);
             }
-            None => {
-                noise.add_scaled(&node.noise, real(1.0));
-                if let Some(id) = w.register(series_label, johnson_density(out.series, t), 0.0) {
-                    noise.add(id, real(1.0));
-                }
-                notes.push(format!(
-                    "{key}: unloaded; the open-circuit voltage is budgeted"
-                ));
+            for j in 0..m {
+                b.swap(piv * m + j, col * m + j);
             }
         }
-        if let Node::Stage(j) = out.from {
-            for (k, stage_notes) in w.stage_notes.iter().enumerate() {
-                if k == j || w.upstream[j][k] {
-                    notes.extend(stage_notes.iter().cloned());
-                }
+        let d = a[col * n + col];
+        for r in col + 1..n {
+            let factor = a[r * n + col] / d;
+            if factor.re == 0.0 && factor.im == 0.0 {
+                continue;
+            }
+            for j in col..n {
+                let v = a[col * n + j];
+                a[r * n + j] -= factor * v;
+            }
+            for j in 0..m {
+                let v = b[col * m + j];
+                b[r * m + j] -= factor * v;
             }
         }
-        outputs.push(noise);
-        all_notes.push(notes);
     }
-    Network {
-        sources: w.sources,
-        outputs,
-        notes: all_notes,
+    for col in (0..n).rev() {
+        let d = a[col * n + col];
+        for j in 0..m {
+            let mut v = b[col * m + j];
+            for k in col + 1..n {
+                v -= a[col * n + k] * b[k * m + j];
+            }
+            b[col * m + j] = v / d;
+        }
     }
+    Some(())
 }
 
 /// Grid points per decade for the band integral.
@@ -619,8 +772,12 @@ pub fn try_budget(patch: &Patch, band: (f64, f64)) -> Result<Vec<OutputBudget>, 
     if !(f1.is_finite() && f2.is_finite() && f1 > 0.0 && f2 > f1) {
         return Err(NoiseError::Band { low: f1, high: f2 });
     }
-    let spot = network(patch, band, SPOT_FREQUENCY);
-    let n_src = spot.sources.len();
+    let net = Netlist::build(patch, band);
+    let singular = |f: f64| NoiseError::Singular { frequency: f };
+    let spot = net
+        .transfers(SPOT_FREQUENCY)
+        .ok_or_else(|| singular(SPOT_FREQUENCY))?;
+    let n_src = net.sources.len();
     let n_out = patch.outputs.len();
     // Per output and source: integral of |H|^2 df and of |H|^2 / f df over the band, with
     // |H|^2 linear in f between grid points and the 1/f weight integrated exactly, so a flat
@@ -635,18 +792,18 @@ pub fn try_budget(patch: &Patch, band: (f64, f64)) -> Result<Vec<OutputBudget>, 
             f1 * (f2 / f1).powf(i as f64 / segments as f64)
         }
     };
-    let h2_at = |f: f64| -> Vec<Vec<f64>> {
-        let net = network(patch, band, f);
-        net.outputs
+    let h2_at = |f: f64| -> Result<Vec<Vec<f64>>, NoiseError> {
+        let tr = net.transfers(f).ok_or_else(|| singular(f))?;
+        Ok(tr
             .iter()
             .map(|tr| (0..n_src).map(|id| tr.get(id).norm_sqr()).collect())
-            .collect()
+            .collect())
     };
-    let mut prev = h2_at(f1);
+    let mut prev = h2_at(f1)?;
     let mut fa = f1;
     for i in 1..=segments {
         let fb = freq(i);
-        let next = h2_at(fb);
+        let next = h2_at(fb)?;
         let (df, ln) = (fb - fa, (fb / fa).ln());
         for o in 0..n_out {
             for id in 0..n_src {
@@ -663,15 +820,15 @@ pub fn try_budget(patch: &Patch, band: (f64, f64)) -> Result<Vec<OutputBudget>, 
     let mut result = Vec::with_capacity(n_out);
     for (o, out) in patch.outputs.iter().enumerate() {
         let key = format!("outputs.{}", out.name);
-        let mut notes = spot.notes[o].clone();
+        let mut notes = net.notes[o].clone();
         let mut items = Vec::new();
         let mut total_power = 0.0;
         let mut total_d2 = 0.0;
         let mut load_power = 0.0;
-        for (id, s) in spot.sources.iter().enumerate() {
+        for (id, s) in net.sources.iter().enumerate() {
             let d0 = s.density * s.density;
             let power = d0 * (white[o][id] + s.corner * flicker[o][id]);
-            let d2 = d0 * spot.outputs[o].get(id).norm_sqr() * (1.0 + s.corner / SPOT_FREQUENCY);
+            let d2 = d0 * spot[o].get(id).norm_sqr() * (1.0 + s.corner / SPOT_FREQUENCY);
             if power.is_nan() || power <= 0.0 {
                 continue;
             }
@@ -779,31 +936,36 @@ mod tests {
         assert!((p - (990.0 + 100.0 * 100f64.ln())).abs() < 1e-9);
     }
 
-    #[test]
-    fn transfer_adds_amplitudes() {
-        let mut a = Transfer::default();
-        a.add(2, real(1.0));
-        let mut b = Transfer::default();
-        b.add_scaled(&a, real(2.0));
-        b.add_scaled(&a, real(-0.5));
-        assert_eq!(b.get(2), real(1.5));
-        assert_eq!(b.get(0), real(0.0));
-        assert_eq!(b.get(7), real(0.0));
-    }
-
     // Single-pole closed loop G = G0 / (1 + j f NG / GBW) (op-amp textbooks, CHECKS.md [S]):
-    // at f = GBW / NG the factor is 1 / (1 + j), |.|^2 = 1/2.
+    // at f = GBW / NG the factor 1 / (1 + NG / A) is 1 / (1 + j), |.|^2 = 1/2.
     #[test]
-    fn loop_factor_is_single_pole() {
-        let mut p = crate::parts::builtin("ideal").unwrap();
-        p.gbw = 1e6;
-        p.a0 = None;
-        let k = loop_factor(&p, real(11.0), 1e6 / 11.0);
+    fn open_loop_is_single_pole() {
+        let ng = 11.0;
+        let k = real(1.0) / (real(1.0) + inv_open_loop(1e6, None, 1e6 / ng) * ng);
         assert!((k.norm_sqr() - 0.5).abs() < 1e-12);
         assert!((k.arg() + std::f64::consts::FRAC_PI_4).abs() < 1e-12);
         // finite DC gain: G = G_ideal / (1 + NG / A0) at low frequency (CHECKS.md [M])
-        p.a0 = Some(1e3);
-        let k = loop_factor(&p, real(10.0), 1e-3);
+        let k = real(1.0) / (real(1.0) + inv_open_loop(1e6, Some(1e3), 1e-3) * 10.0);
         assert!((k.re - 1.0 / (1.0 + 10.0 / 1e3)).abs() < 1e-9);
+    }
+
+    // A plain 2 x 2 complex system with a known solution [D].
+    #[test]
+    fn solver_recovers_a_known_solution() {
+        let x = [C::new(1.0, -2.0), C::new(0.5, 3.0)];
+        let a0 = [
+            C::new(0.0, 0.0),
+            C::new(2.0, 1.0),
+            C::new(3.0, 0.0),
+            C::new(-1.0, 1.0),
+        ];
+        let mut b: Vec<C> = (0..2)
+            .map(|i| a0[2 * i] * x[0] + a0[2 * i + 1] * x[1])
+            .collect();
+        let mut a = a0.to_vec();
+        solve_in_place(&mut a, &mut b, 2, 1).unwrap();
+        assert!((b[0] - x[0]).norm() < 1e-12 && (b[1] - x[1]).norm() < 1e-12);
+        let mut singular = vec![real(1.0), real(2.0), real(2.0), real(4.0)];
+        assert!(solve_in_place(&mut singular, &mut b, 2, 1).is_none());
     }
 }

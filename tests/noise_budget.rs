@@ -826,42 +826,48 @@ from = "boost"
     assert!(b.notes.iter().any(|n| n.contains("unloaded")));
 }
 
-// A pot wiper feeding an op-amp input and one loaded output is still a single resistive load
-// (exact Thevenin); feeding two summing resistors it is not, and the budget says so.
+// A pot wiper shared by two summing resistors: the budget solves the wiper node with every
+// load on it. By nodal analysis (Kirchhoff's current law at the wiper, virtual ground at V-)
+// [D]: G = 1/Ru + 1/Rl + 1/R1 + 1/R2; a track segment Rx reaches the output at
+// Rf (1/R1 + 1/R2) / (Rx G), a summing resistor Rk at Rf (1/Rk - (1/R1 + 1/R2) / (Rk G)), and
+// Rf at 1.
 #[test]
-fn shared_wiper_is_noted() {
-    let noted = |p: &Patch, o: usize| {
-        budget(p, DEFAULT_BAND)[o]
-            .notes
-            .iter()
-            .any(|n| n.starts_with("stages.vol: the wiper"))
-    };
+fn shared_wiper_is_solved_with_all_its_loads() {
+    let (pot, at) = (10e3, 0.7);
+    let (ru, rl) = (pot * (1.0 - at), pot * at);
+    let (r1, r2, rf) = (10e3, 22e3, 47e3);
     let p = patch(
         1,
         vec![
-            attenuator("vol", Node::Source(0), 10e3, 0.5),
-            follower("buf", part(0.0, 0.0, 0.0), Node::Stage(0)),
-        ],
-        vec![
-            out("a", Node::Stage(1), 0.0, None),
-            out("b", Node::Stage(0), 1e3, Some(100e3)),
-        ],
-    );
-    assert!(!noted(&p, 0) && !noted(&p, 1));
-    let p = patch(
-        1,
-        vec![
-            attenuator("vol", Node::Source(0), 10e3, 0.5),
+            attenuator("vol", Node::Source(0), pot, at),
             summer(
                 "mix",
                 part(0.0, 0.0, 0.0),
-                &[(Node::Stage(0), 10e3), (Node::Stage(0), 10e3)],
-                10e3,
+                &[(Node::Stage(0), r1), (Node::Stage(0), r2)],
+                rf,
             ),
         ],
         vec![out("a", Node::Stage(1), 0.0, None)],
     );
-    assert!(noted(&p, 0));
+    let b = &budget(&p, DEFAULT_BAND)[0];
+    let g = 1.0 / ru + 1.0 / rl + 1.0 / r1 + 1.0 / r2;
+    let sum = 1.0 / r1 + 1.0 / r2;
+    let seg = |rx: f64| rf * sum / (rx * g);
+    let inp = |rk: f64| rf * (1.0 / rk - sum / (rk * g));
+    for (label, r, gain) in [
+        ("stages.vol.pot upper", ru, seg(ru)),
+        ("stages.vol.pot lower", rl, seg(rl)),
+        ("stages.mix.inputs[0].r", r1, inp(r1)),
+        ("stages.mix.inputs[1].r", r2, inp(r2)),
+        ("stages.mix.feedback.r", rf, 1.0),
+    ] {
+        let c = item(b, label);
+        assert!(
+            close(c.density_1k, four_ktr(r).sqrt() * gain.abs(), 1e-9),
+            "{label}"
+        );
+    }
+    assert_eq!(b.items.len(), 5);
 }
 
 // Seeded sweep over summers with 1 to 5 inputs: resistor noise 4 k T Rf (1 + Rf / Rpar) and en
