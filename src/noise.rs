@@ -428,19 +428,20 @@ impl Netlist {
                     };
                     net.resistor(Some(minus), Some(out), imp, fb_label, t);
                     ng_flat = Some(1.0 + rf * g_flat);
+                    let mut en = None;
                     if let Some(p) = part {
-                        let en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
+                        en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
                         let label = format!("{key} in- ({}, into {})", p.name, fmt_resistance(rf));
                         net.inject(Some(minus), label, p.inoise);
-                        net.amps.push(Amp {
-                            out,
-                            plus: None,
-                            minus,
-                            gbw: p.gbw,
-                            a0: p.a0,
-                            en,
-                        });
                     }
+                    net.amps.push(Amp {
+                        out,
+                        plus: None,
+                        minus,
+                        gbw: part.map_or(f64::INFINITY, |p| p.gbw),
+                        a0: part.and_then(|p| p.a0),
+                        en,
+                    });
                     out_node = Some(out);
                 }
                 StageKind::NonInverting {
@@ -473,23 +474,24 @@ impl Netlist {
                     let rg = thermal_label(&format!("{key}.r_g"), *r_g);
                     net.resistor(Some(minus), None, Imp::R(*r_g), rg, t);
                     ng_flat = Some(1.0 + r_fb / r_g);
+                    let mut en = None;
                     if let Some(p) = part {
-                        let en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
+                        en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
                         let label =
                             format!("{key} in- ({}, into {})", p.name, fmt_resistance(*r_fb));
                         net.inject(Some(minus), label, p.inoise);
                         let label =
                             format!("{key} in+ ({}, through {})", p.name, fmt_resistance(rs));
                         net.inject(plus, label, p.inoise);
-                        net.amps.push(Amp {
-                            out,
-                            plus,
-                            minus,
-                            gbw: p.gbw,
-                            a0: p.a0,
-                            en,
-                        });
                     }
+                    net.amps.push(Amp {
+                        out,
+                        plus,
+                        minus,
+                        gbw: part.map_or(f64::INFINITY, |p| p.gbw),
+                        a0: part.and_then(|p| p.a0),
+                        en,
+                    });
                     out_node = Some(out);
                 }
                 StageKind::Follower { from } => {
@@ -498,20 +500,21 @@ impl Netlist {
                     let rs = rth_of(*from, &rth);
                     let out = net.unknown(true);
                     ng_flat = Some(1.0);
+                    let mut en = None;
                     if let Some(p) = part {
-                        let en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
+                        en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
                         let label =
                             format!("{key} in+ ({}, through {})", p.name, fmt_resistance(rs));
                         net.inject(plus, label, p.inoise);
-                        net.amps.push(Amp {
-                            out,
-                            plus,
-                            minus: out,
-                            gbw: p.gbw,
-                            a0: p.a0,
-                            en,
-                        });
                     }
+                    net.amps.push(Amp {
+                        out,
+                        plus,
+                        minus: out,
+                        gbw: part.map_or(f64::INFINITY, |p| p.gbw),
+                        a0: part.and_then(|p| p.a0),
+                        en,
+                    });
                     out_node = Some(out);
                 }
                 StageKind::Attenuator {
@@ -668,13 +671,6 @@ impl Netlist {
         }
         for (node, id) in &self.injections {
             b.push((*node, *id, real(1.0)));
-        }
-        // A driven row without an op-amp (a passive stage has none) cannot occur; an op-amp
-        // stage always pushes its amp when it has a part, and patch validation guarantees it.
-        for (i, d) in self.driven.iter().enumerate() {
-            if *d && !self.amps.iter().any(|a| a.out == i) {
-                y[i * n + i] = real(1.0);
-            }
         }
         // Adjoint: solve Y^T z = e_k for each probed node; the gain of source s is z . B[:, s].
         let probed: Vec<usize> = self.probes.iter().filter_map(|p| p.node).collect();
