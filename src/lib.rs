@@ -15,6 +15,7 @@ pub mod check;
 pub mod engine;
 pub mod measure;
 pub mod model;
+pub mod noise;
 pub mod parts;
 pub mod patch;
 pub mod render;
