@@ -107,6 +107,21 @@ enum Command {
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
     },
+    /// Analytic noise budget at each output: every resistor's thermal noise and every
+    /// op-amp's voltage and current noise, through the network's noise gains.
+    Noise {
+        /// The patch file.
+        patch: PathBuf,
+        /// Only this output.
+        #[arg(long, value_name = "NAME")]
+        output: Option<String>,
+        /// Print JSON instead of the tables.
+        #[arg(long)]
+        json: bool,
+        /// Override a value by dotted path (repeatable).
+        #[arg(long = "set", value_name = "PATH=VALUE")]
+        sets: Vec<String>,
+    },
     /// List the built-in op-amp profiles (and a patch's own parts) with their figures.
     Parts {
         /// Also list the [parts.*] defined in this patch.
@@ -167,6 +182,12 @@ pub fn run() -> Result<(), Failure> {
             render_to(&p, &stem, &out).map(|_| ())
         }
         Command::Demo { out } => cmd_demo(&out),
+        Command::Noise {
+            patch,
+            output,
+            json,
+            sets,
+        } => cmd_noise(&patch, &sets, output.as_deref(), json),
         Command::Measure {
             patch,
             output,
@@ -868,4 +889,43 @@ fn level_unit(l: Level) -> &'static str {
         Level::PeakToPeak(_) => "Vpp",
         Level::Rms(_) => "Vrms",
     }
+}
+
+fn cmd_noise(
+    path: &Path,
+    sets: &[String],
+    output: Option<&str>,
+    json: bool,
+) -> Result<(), Failure> {
+    let patch = load(path, sets)?;
+    let budgets = railsong::noise::try_budget(&patch, railsong::noise::DEFAULT_BAND)
+        .map_err(Failure::bad_input)?;
+    let picked: Vec<_> = budgets
+        .iter()
+        .filter(|b| output.is_none_or(|n| n == b.output))
+        .collect();
+    if picked.is_empty() {
+        return Err(Failure::bad_input(format!(
+            "--output {}: no such output in {}",
+            output.unwrap_or(""),
+            path.display()
+        )));
+    }
+    if json {
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&picked).map_err(failure_io)?
+        );
+        return Ok(());
+    }
+    println!(
+        "{}: noise budget over 20 Hz - 20 kHz at {:.1} C (analytic, from the network's noise gains)",
+        patch.title,
+        patch.temperature - railsong::units::ZERO_CELSIUS
+    );
+    for b in picked {
+        println!();
+        print!("{}", railsong::noise::format_budget(b));
+    }
+    Ok(())
 }
