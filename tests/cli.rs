@@ -108,3 +108,42 @@ fn parts_lists_every_builtin_profile() {
     let out = railsong(&["parts", "patches/own-part.toml"]);
     assert!(String::from_utf8_lossy(&out.stdout).contains("line-driver (patch)"));
 }
+
+// Independent noise sources add in power; each resistor's share follows Johnson-Nyquist
+// e = sqrt(4 k T R) (k = 1.380649e-23 J/K, SI 2019) times its gain to the output.
+#[test]
+fn noise_budget_json_adds_up_in_power() {
+    let out = railsong(&["noise", "patches/clean-mix.toml", "--json"]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let b = &v[0];
+    let total = b["total_rms"].as_f64().unwrap();
+    let items = b["items"].as_array().unwrap();
+    let sum: f64 = items
+        .iter()
+        .map(|i| i["rms"].as_f64().unwrap().powi(2))
+        .sum::<f64>()
+        .sqrt();
+    assert!((sum / total - 1.0).abs() < 1e-9, "{sum} vs {total}");
+    // the 1k output series resistor sees only the 100k load divider: sqrt(4kTR) * 100/101
+    let k: f64 = 1.380649e-23;
+    let t = 298.15;
+    let series = items
+        .iter()
+        .find(|i| {
+            i["label"]
+                .as_str()
+                .unwrap()
+                .starts_with("outputs.main.series")
+        })
+        .unwrap();
+    let expect = (4.0 * k * t * 1e3).sqrt() * 100.0 / 101.0;
+    let got = series["density_1k"].as_f64().unwrap();
+    assert!((got / expect - 1.0).abs() < 1e-3, "{got} vs {expect}");
+    let out = railsong(&["noise", "patches/clean-mix.toml", "--output", "nope"]);
+    assert_eq!(out.status.code(), Some(2));
+}
