@@ -377,24 +377,31 @@ fn linear_block(
                 *d -= w * s;
             }
         }
-        let mut v = st.v;
-        let mut pp = st.p_prev;
-        let mut vdm = 0.0f64;
-        let mut xmn = f64::INFINITY;
-        let mut xmx = f64::NEG_INFINITY;
-        for (xo, &pn) in x.iter_mut().zip(p.iter()) {
-            v = e * v + a1 * pn + a0 * pp;
-            pp = pn;
-            *xo = v;
-            vdm = vdm.max((pn - bcoef * v).abs());
-            xmn = xmn.min(v);
-            xmx = xmx.max(v);
+        let mut ok = true;
+        if e <= 1e-17 {
+            // The previous output's weight is below 1e-17: the recursion is a two-tap FIR,
+            // computed without a serial dependency.
+            x[0] = a1 * p[0] + a0 * st.p_prev;
+            for ((xo, &pn), &pp) in x[1..].iter_mut().zip(&p[1..]).zip(&p[..b - 1]) {
+                *xo = a1 * pn + a0 * pp;
+            }
+        } else {
+            let mut v = st.v;
+            let mut pp = st.p_prev;
+            for (xo, &pn) in x.iter_mut().zip(p.iter()) {
+                v = e * v + a1 * pn + a0 * pp;
+                pp = pn;
+                *xo = v;
+            }
         }
-        if vdm > vd_max || xmn < slo || xmx > shi || !v.is_finite() {
+        for (&v, &pn) in x.iter().zip(p.iter()) {
+            ok &= ((pn - bcoef * v).abs() <= vd_max) & (v >= slo) & (v <= shi);
+        }
+        if !ok {
             return false;
         }
-        st.v = v;
-        st.p_prev = pp;
+        st.v = x[b - 1];
+        st.p_prev = p[b - 1];
         return true;
     }
     // With capacitors: per-sample companion updates.
@@ -512,6 +519,26 @@ fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], 
     let (lin_lo, lin_hi) = (sh.lo + sh.w, sh.hi - sh.w);
     let mut x1 = st.x1;
     let mut x2 = st.x2;
+    let b = x.len();
+    // Whole block strictly inside the linear region: the output is the drive, one sample
+    // late (same values as the per-sample branch below).
+    if b >= 2 {
+        let inside = |xm: f64, xc: f64, xp: f64| {
+            let a = 0.5 * (xp - xm).abs();
+            (xc - a > lin_lo) & (xc + a < lin_hi)
+        };
+        let mut all = inside(x2, x1, x[0]) & inside(x1, x[0], x[1]);
+        for ((&xm, &xc), &xp) in x.iter().zip(&x[1..]).zip(&x[2..]) {
+            all &= inside(xm, xc, xp);
+        }
+        if all {
+            out[0] = x1;
+            out[1..b].copy_from_slice(&x[..b - 1]);
+            st.x2 = x[b - 2];
+            st.x1 = x[b - 1];
+            return;
+        }
+    }
     let mut clip = 0u64;
     for (o, &xn) in out.iter_mut().zip(x) {
         let a = 0.5 * (xn - x2).abs();
