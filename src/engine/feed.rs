@@ -134,8 +134,15 @@ impl ToneFeed {
     }
 }
 
-impl SourceFeed for ToneFeed {
-    fn fill(&mut self, out: &mut [f64]) {
+impl ToneFeed {
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn fill_avx2(&mut self, out: &mut [f64]) {
+        self.fill_impl(out);
+    }
+
+    #[inline(always)]
+    fn fill_impl(&mut self, out: &mut [f64]) {
         let len = out.len();
         out.fill(self.dc);
         for o in &mut self.oscs {
@@ -182,6 +189,20 @@ impl SourceFeed for ToneFeed {
             }
         }
         self.n = last;
+    }
+}
+
+impl SourceFeed for ToneFeed {
+    fn fill(&mut self, out: &mut [f64]) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::arch::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU supports AVX2 (checked just above).
+                unsafe { self.fill_avx2(out) };
+                return;
+            }
+        }
+        self.fill_impl(out);
     }
 
     fn reset(&mut self) {

@@ -138,6 +138,7 @@ impl DownStage {
         }
     }
 
+    #[inline(always)]
     fn process(&mut self, input: &[f64], out: &mut [f64]) {
         // Full-buffer view: buf[2m + i] = input[i]; even[r] = buf[2r], odd[r] = buf[2r + 1].
         // Output j has its centre at buf[2j + m] (odd, m is odd) = odd[j + (m - 1) / 2] and
@@ -217,6 +218,7 @@ impl Decimator {
     }
 
     /// Decimate `input` (length a multiple of k) into `out` (length input / k).
+    #[inline(always)]
     pub fn process(&mut self, input: &[f64], out: &mut [f64]) {
         let ns = self.stages.len();
         if ns == 0 {

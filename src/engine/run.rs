@@ -59,6 +59,7 @@ pub struct Engine {
     saved: Vec<StageState>,
     xbuf: Vec<f64>,
     pbuf: Vec<f64>,
+    qbuf: Vec<f64>,
     out_int: Vec<f64>,
     decims: Vec<Decimator>,
     out_base: Vec<Vec<f64>>,
@@ -165,6 +166,7 @@ impl Engine {
             saved,
             xbuf: vec![0.0; b],
             pbuf: vec![0.0; b],
+            qbuf: vec![0.0; b],
             out_int: vec![0.0; b],
             decims,
             out_base,
@@ -265,8 +267,28 @@ impl Engine {
         }
     }
 
-    /// Compute one internal block and decimate it.
+    /// Compute one internal block and decimate it (with AVX2 code generation where the CPU
+    /// has it: the same arithmetic, wider vectors, so results do not change).
     fn block(&mut self) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::arch::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU supports AVX2 (checked just above).
+                unsafe { self.block_avx2() };
+                return;
+            }
+        }
+        self.block_impl();
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn block_avx2(&mut self) {
+        self.block_impl();
+    }
+
+    #[inline(always)]
+    fn block_impl(&mut self) {
         let b = self.plan.block;
         let hist = self.plan.history;
         let ns = self.plan.sources.len();
@@ -280,7 +302,15 @@ impl Engine {
             let mut ok = false;
             if self.fast {
                 self.saved[si].restore_from(st);
-                ok = linear_block(sp, st, &self.bufs, hist, &mut self.xbuf, &mut self.pbuf);
+                ok = linear_block(
+                    sp,
+                    st,
+                    &self.bufs,
+                    hist,
+                    &mut self.xbuf,
+                    &mut self.pbuf,
+                    &mut self.qbuf,
+                );
                 if ok {
                     self.fast_blocks += 1;
                 } else {
@@ -324,6 +354,8 @@ impl Engine {
     }
 }
 
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
 /// The linear recursion over a block; returns false (state to be restored) when a sample came
 /// near a limit.
 fn linear_block(
@@ -333,6 +365,7 @@ fn linear_block(
     hist: usize,
     x: &mut [f64],
     p: &mut [f64],
+    q: &mut [f64],
 ) -> bool {
     let b = x.len();
     let (e, a1, a0, bcoef) = (sp.lin_e, sp.lin_a1, sp.lin_a0, sp.b);
@@ -378,19 +411,65 @@ fn linear_block(
             }
         }
         let mut ok = true;
-        if e <= 1e-17 {
-            // The previous output's weight is below 1e-17: the recursion is a two-tap FIR,
-            // computed without a serial dependency.
-            x[0] = a1 * p[0] + a0 * st.p_prev;
-            for ((xo, &pn), &pp) in x[1..].iter_mut().zip(&p[1..]).zip(&p[..b - 1]) {
-                *xo = a1 * pn + a0 * pp;
+        // q[n] = a1 p[n] + a0 p[n-1], then v[n] = e v[n-1] + q[n].
+        q[0] = a1 * p[0] + a0 * st.p_prev;
+        for ((qo, &pn), &pp) in q[1..].iter_mut().zip(&p[1..]).zip(&p[..b - 1]) {
+            *qo = a1 * pn + a0 * pp;
+        }
+        // Memory depth: the smallest m with e^m below 1e-17 (the previous outputs' weight
+        // beyond m steps is negligible). Up to four taps the recursion is unrolled into a
+        // short FIR on q (no serial dependency); otherwise it runs serially.
+        let mut depth = 0usize;
+        let mut em = 1.0;
+        while em > 1e-17 && depth < 5 {
+            em *= e;
+            depth += 1;
+        }
+        if depth <= 4 && b > 8 {
+            let mut v = st.v;
+            for (xo, &qn) in x.iter_mut().zip(q.iter()).take(depth) {
+                v = e * v + qn;
+                *xo = v;
+            }
+            let (e2, e3) = (e * e, e * e * e);
+            let n = b - depth;
+            let (q0, q1, q2, q3) = (
+                &q[depth..],
+                &q[depth - 1..],
+                &q[depth.max(2) - 2..],
+                &q[depth.max(3) - 3..],
+            );
+            let xs = &mut x[depth..];
+            match depth {
+                1 => xs.copy_from_slice(&q0[..n]),
+                2 => {
+                    for ((xo, a), b1) in xs.iter_mut().zip(&q0[..n]).zip(&q1[..n]) {
+                        *xo = a + e * b1;
+                    }
+                }
+                3 => {
+                    for (((xo, a), b1), c) in
+                        xs.iter_mut().zip(&q0[..n]).zip(&q1[..n]).zip(&q2[..n])
+                    {
+                        *xo = a + e * b1 + e2 * c;
+                    }
+                }
+                _ => {
+                    for ((((xo, a), b1), c), d) in xs
+                        .iter_mut()
+                        .zip(&q0[..n])
+                        .zip(&q1[..n])
+                        .zip(&q2[..n])
+                        .zip(&q3[..n])
+                    {
+                        *xo = a + e * b1 + e2 * c + e3 * d;
+                    }
+                }
             }
         } else {
             let mut v = st.v;
-            let mut pp = st.p_prev;
-            for (xo, &pn) in x.iter_mut().zip(p.iter()) {
-                v = e * v + a1 * pn + a0 * pp;
-                pp = pn;
+            for (xo, &qn) in x.iter_mut().zip(q.iter()) {
+                v = e * v + qn;
                 *xo = v;
             }
         }
@@ -514,6 +593,7 @@ fn full_block(
 }
 
 /// Output clipper with one sample of lookahead: writes y[n-1] at position n.
+#[inline(always)]
 fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], aa: bool) {
     let sh = sp.shaper;
     let (lin_lo, lin_hi) = (sh.lo + sh.w, sh.hi - sh.w);
