@@ -149,18 +149,34 @@ impl DownStage {
             self.even[m + r] = pair[0];
             self.odd[m + r] = pair[1];
         }
-        let out = &mut out[..half];
         let c0 = (m - 1) / 2;
-        for (o, x) in out.iter_mut().zip(&self.odd[c0..c0 + half]) {
-            *o = 0.5 * x;
-        }
-        for (i, &h) in self.taps.iter().enumerate() {
-            let d = 2 * i + 1;
-            let lo = &self.even[(m - d) / 2..(m - d) / 2 + half];
-            let hi = &self.even[(m + d) / 2..(m + d) / 2 + half];
-            for ((o, a), b) in out.iter_mut().zip(lo).zip(hi) {
-                *o += h * (a + b);
+        let (even, odd) = (&self.even, &self.odd);
+        // Eight outputs at a time, accumulated in registers over all taps.
+        const W: usize = 8;
+        let mut j = 0;
+        while j + W <= half {
+            let mut acc = [0.0; W];
+            for (a, x) in acc.iter_mut().zip(&odd[c0 + j..c0 + j + W]) {
+                *a = 0.5 * x;
             }
+            for (i, &h) in self.taps.iter().enumerate() {
+                let d = 2 * i + 1;
+                let lo = &even[(m - d) / 2 + j..(m - d) / 2 + j + W];
+                let hi = &even[(m + d) / 2 + j..(m + d) / 2 + j + W];
+                for ((a, x), y) in acc.iter_mut().zip(lo).zip(hi) {
+                    *a += h * (x + y);
+                }
+            }
+            out[j..j + W].copy_from_slice(&acc);
+            j += W;
+        }
+        for (jj, o) in out.iter_mut().enumerate().take(half).skip(j) {
+            let mut a = 0.5 * odd[c0 + jj];
+            for (i, &h) in self.taps.iter().enumerate() {
+                let d = 2 * i + 1;
+                a += h * (even[(m - d) / 2 + jj] + even[(m + d) / 2 + jj]);
+            }
+            *o = a;
         }
         self.even.copy_within(half..half + m, 0);
         self.odd.copy_within(half..half + m, 0);

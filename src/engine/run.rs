@@ -10,6 +10,7 @@ use super::StageEvents;
 struct StageState {
     v: f64,
     p_prev: f64,
+    p_prev2: f64,
     vc: Vec<f64>,
     vf: f64,
     x1: f64,
@@ -25,6 +26,7 @@ impl StageState {
         StageState {
             v: sp.rest_v,
             p_prev: sp.rest_p,
+            p_prev2: sp.rest_p,
             vc: sp.rest_vc.clone(),
             vf: sp.rest_vf,
             x1: sp.rest_v,
@@ -39,6 +41,7 @@ impl StageState {
     fn restore_from(&mut self, o: &StageState) {
         self.v = o.v;
         self.p_prev = o.p_prev;
+        self.p_prev2 = o.p_prev2;
         self.vc.copy_from_slice(&o.vc);
         self.vf = o.vf;
         self.x1 = o.x1;
@@ -210,6 +213,7 @@ impl Engine {
             self.bufs[sp.node][..hist].fill(sp.shaper.apply(sp.rest_v));
             st.v = sp.rest_v;
             st.p_prev = sp.rest_p;
+            st.p_prev2 = sp.rest_p;
             st.vc.copy_from_slice(&sp.rest_vc);
             st.vf = sp.rest_vf;
             st.x1 = sp.rest_v;
@@ -403,7 +407,17 @@ fn linear_block(
         p.fill(c0);
     }
     if !has_caps {
-        for m in &sp.minus {
+        // inputs two at a time (one pass over the block per pair)
+        let mut pairs = sp.minus.chunks_exact(2);
+        for pr in &mut pairs {
+            let (w0, w1) = (pr[0].mu * pr[0].gain, pr[1].mu * pr[1].gain);
+            let s0 = &bufs[pr[0].node][hist - pr[0].delay..hist - pr[0].delay + b];
+            let s1 = &bufs[pr[1].node][hist - pr[1].delay..hist - pr[1].delay + b];
+            for ((d, a), c) in p.iter_mut().zip(s0).zip(s1) {
+                *d -= w0 * a + w1 * c;
+            }
+        }
+        for m in pairs.remainder() {
             let w = m.mu * m.gain;
             let src = &bufs[m.node][hist - m.delay..hist - m.delay + b];
             for (d, s) in p.iter_mut().zip(src) {
@@ -411,6 +425,40 @@ fn linear_block(
             }
         }
         let mut ok = true;
+        if e * e <= 1e-17 && b > 2 {
+            // Memory of at most one step: v[n] = q[n] + e q[n-1] (the dropped term e^2 v[n-2]
+            // is below 1e-17 relative), q[n] = a1 p[n] + a0 p[n-1]: a three-tap FIR on p,
+            // fused with the checks.
+            let (c0, c1, c2) = if e <= 1e-17 {
+                (a1, a0, 0.0)
+            } else {
+                (a1, a0 + e * a1, e * a0)
+            };
+            let (pp1, pp2) = (st.p_prev, st.p_prev2);
+            x[0] = c0 * p[0] + c1 * pp1 + c2 * pp2;
+            x[1] = c0 * p[1] + c1 * p[0] + c2 * pp1;
+            let mut ok = true;
+            for (&pn, &v) in p[..2].iter().zip(&x[..2]) {
+                ok &= ((pn - bcoef * v).abs() <= vd_max) & (v >= slo) & (v <= shi);
+            }
+            for (((xo, &pn), &pm1), &pm2) in x[2..]
+                .iter_mut()
+                .zip(&p[2..])
+                .zip(&p[1..b - 1])
+                .zip(&p[..b - 2])
+            {
+                let v = c0 * pn + c1 * pm1 + c2 * pm2;
+                *xo = v;
+                ok &= ((pn - bcoef * v).abs() <= vd_max) & (v >= slo) & (v <= shi);
+            }
+            if !ok {
+                return false;
+            }
+            st.v = x[b - 1];
+            st.p_prev = p[b - 1];
+            st.p_prev2 = p[b - 2];
+            return true;
+        }
         // q[n] = a1 p[n] + a0 p[n-1], then v[n] = e v[n-1] + q[n].
         q[0] = a1 * p[0] + a0 * st.p_prev;
         for ((qo, &pn), &pp) in q[1..].iter_mut().zip(&p[1..]).zip(&p[..b - 1]) {
@@ -481,11 +529,13 @@ fn linear_block(
         }
         st.v = x[b - 1];
         st.p_prev = p[b - 1];
+        st.p_prev2 = p[b - 2];
         return true;
     }
     // With capacitors: per-sample companion updates.
     let mut v = st.v;
     let mut pp = st.p_prev;
+    let mut pp2 = st.p_prev2;
     for t in 0..b {
         let mut mrest = 0.0;
         for (m, vc) in sp.minus.iter().zip(st.vc.iter()) {
@@ -497,6 +547,7 @@ fn linear_block(
         }
         let pn = p[t] - mrest;
         v = e * v + a1 * pn + a0 * pp;
+        pp2 = pp;
         pp = pn;
         x[t] = v;
         if (pn - bcoef * v).abs() > vd_max || v < slo || v > shi || !v.is_finite() {
@@ -515,6 +566,7 @@ fn linear_block(
     }
     st.v = v;
     st.p_prev = pp;
+    st.p_prev2 = pp2;
     true
 }
 
@@ -534,6 +586,7 @@ fn full_block(
     let delta_inv = 1.0 / super::plan::CM_DELTA;
     let mut v = st.v;
     let mut pp = st.p_prev;
+    let mut pp2 = st.p_prev2;
     for (t, xo) in x.iter_mut().enumerate().take(b) {
         let vp = match &sp.plus {
             Some(pi) => sp.plus_const + pi.gain * bufs[pi.node][hist - pi.delay + t],
@@ -586,10 +639,12 @@ fn full_block(
         if sp.fb_cap.is_some() {
             st.vf = v - vminus;
         }
+        pp2 = pp;
         pp = pn;
     }
     st.v = v;
     st.p_prev = pp;
+    st.p_prev2 = pp2;
 }
 
 /// Output clipper with one sample of lookahead: writes y[n-1] at position n.
