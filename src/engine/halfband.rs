@@ -26,7 +26,7 @@ fn bessel_i0(x: f64) -> f64 {
 }
 
 /// Kaiser-window half-band design with `j` non-zero odd taps per side and window parameter
-/// `beta`. Returns the odd taps h[1], h[3], ... (one side; h[0] = 1/2).
+/// `beta`. Returns the odd taps `h[1], h[3], ...` (one side; h[0] = 1/2).
 fn kaiser(j: usize, beta: f64) -> Vec<f64> {
     let m = (2 * j - 1) as f64;
     let i0b = bessel_i0(beta);
@@ -69,8 +69,8 @@ pub const MIN_STOP_DB: f64 = 100.5;
 
 /// Design one half-band stage for a transition band of width `delta` (fraction of the stage's
 /// input rate): the shortest Kaiser-window design (over a few window parameters) that meets
-/// the specification on a dense grid. Returns the non-zero odd taps h[1], h[3], ... (one
-/// side; the filter is symmetric and h[0] = 1/2).
+/// the specification on a dense grid. Returns the non-zero odd taps `h[1], h[3], ...` (one
+/// side; the filter is symmetric and `h[0] = 1/2`).
 pub fn design(delta: f64) -> Vec<f64> {
     let mut best: Option<Vec<f64>> = None;
     for a in [102.0, 104.0, 106.0, 108.0, 110.0, STOP_DB] {
@@ -139,15 +139,15 @@ impl DownStage {
     }
 
     #[inline(always)]
-    fn process(&mut self, input: &[f64], out: &mut [f64]) {
+    fn process(&mut self, input: &[f64], gain: f64, out: &mut [f64]) {
         // Full-buffer view: buf[2m + i] = input[i]; even[r] = buf[2r], odd[r] = buf[2r + 1].
         // Output j has its centre at buf[2j + m] (odd, m is odd) = odd[j + (m - 1) / 2] and
         // the tap at distance d = 2i + 1 reads even[j + (m -/+ d) / 2].
         let m = self.m;
         let half = input.len() / 2;
         for (r, pair) in input.chunks_exact(2).enumerate() {
-            self.even[m + r] = pair[0];
-            self.odd[m + r] = pair[1];
+            self.even[m + r] = gain * pair[0];
+            self.odd[m + r] = gain * pair[1];
         }
         let c0 = (m - 1) / 2;
         let (even, odd) = (&self.even, &self.odd);
@@ -236,17 +236,29 @@ impl Decimator {
     /// Decimate `input` (length a multiple of k) into `out` (length input / k).
     #[inline(always)]
     pub fn process(&mut self, input: &[f64], out: &mut [f64]) {
+        self.process_scaled(input, 1.0, out);
+    }
+
+    /// Decimate `gain * input` (the gain applied on the way in, no extra pass).
+    #[inline(always)]
+    pub fn process_scaled(&mut self, input: &[f64], gain: f64, out: &mut [f64]) {
         let ns = self.stages.len();
         if ns == 0 {
-            out[..input.len()].copy_from_slice(input);
+            for (o, x) in out.iter_mut().zip(input) {
+                *o = gain * x;
+            }
             return;
         }
         let mut len = input.len();
         for i in 0..ns {
             let (done, rest) = self.scratch.split_at_mut(i);
-            let src: &[f64] = if i == 0 { input } else { &done[i - 1][..len] };
+            let (src, g): (&[f64], f64) = if i == 0 {
+                (input, gain)
+            } else {
+                (&done[i - 1][..len], 1.0)
+            };
             let dst = &mut rest[0][..len / 2];
-            self.stages[i].process(src, dst);
+            self.stages[i].process(src, g, dst);
             len /= 2;
         }
         out[..len].copy_from_slice(&self.scratch[ns - 1][..len]);

@@ -167,9 +167,9 @@ pub struct StagePlan {
     pub eps: f64,
     /// Linear recursion: `v = e v + a1 p[n] + a0 p[n-1]`.
     pub lin_e: f64,
-    /// Linear recursion coefficient of p[n].
+    /// Linear recursion coefficient of `p[n]`.
     pub lin_a1: f64,
-    /// Linear recursion coefficient of p[n-1].
+    /// Linear recursion coefficient of `p[n-1]`.
     pub lin_a0: f64,
     /// Output clipper (swing after the current limit).
     pub shaper: Shaper,

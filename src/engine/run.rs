@@ -63,7 +63,6 @@ pub struct Engine {
     xbuf: Vec<f64>,
     pbuf: Vec<f64>,
     qbuf: Vec<f64>,
-    out_int: Vec<f64>,
     decims: Vec<Decimator>,
     out_base: Vec<Vec<f64>>,
     pos: usize,
@@ -170,7 +169,6 @@ impl Engine {
             xbuf: vec![0.0; b],
             pbuf: vec![0.0; b],
             qbuf: vec![0.0; b],
-            out_int: vec![0.0; b],
             decims,
             out_base,
             pos: 0,
@@ -344,10 +342,7 @@ impl Engine {
         let kf = self.plan.oversample;
         for (o, op) in self.plan.outputs.iter().enumerate() {
             let src = &self.bufs[op.node][hist - op.delay..hist - op.delay + b];
-            for (d, s) in self.out_int.iter_mut().zip(src) {
-                *d = op.gain * s;
-            }
-            self.decims[o].process(&self.out_int, &mut self.out_base[o][..b / kf]);
+            self.decims[o].process_scaled(src, op.gain, &mut self.out_base[o][..b / kf]);
         }
         for buf in self.bufs.iter_mut().take(ns + self.plan.stages.len()) {
             buf.copy_within(b..b + hist, 0);
