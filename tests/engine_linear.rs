@@ -233,6 +233,9 @@ fn plan_is_inspectable() {
     );
     let text = format!("{plan:?}");
     assert!(text.contains("second") && text.contains("lin_e"));
+    let summary = plan.to_string();
+    assert!(summary.contains("stage 1 `second` (inverting, part jfet-general)"));
+    assert!(summary.contains("decimator [27, 79] taps"), "{summary}");
     // swing with the current limit: 25 mA into 10k feedback + 10k downstream input is 125 V,
     // so the profile's swing (rails -/+ 1.5 V) holds [S: profile figures]
     assert!((plan.stages[0].shaper.hi - 10.5).abs() < 1e-12);
