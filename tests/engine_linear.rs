@@ -294,6 +294,9 @@ fn capacitor_networks_follow_first_order_responses() {
         let mag = (a * a + q * q).sqrt() / 0.1;
         let x = f / 100.0;
         let expect = (rf / rin) * x / (1.0 + x * x).sqrt();
-        assert!(rel(mag, expect) < 0.01, "high-pass f {f}: {mag} vs {expect}");
+        assert!(
+            rel(mag, expect) < 0.01,
+            "high-pass f {f}: {mag} vs {expect}"
+        );
     }
 }
