@@ -35,6 +35,28 @@ struct Osc {
     two_cos: f64,
 }
 
+impl Osc {
+    /// Lane values at the current accumulator: lane j holds `amp sin(theta + j w)` and its
+    /// previous value `amp sin(theta + (j - LANES) w)`; each lane then advances by LANES steps
+    /// with the second-order recurrence `s[n+1] = 2 cos(LANES w) s[n] - s[n-1]`.
+    #[inline(always)]
+    fn lanes(&self) -> ([f64; LANES], [f64; LANES]) {
+        let (s0, c0) = fixed_to_angle(self.acc).sin_cos();
+        let mut cur = [0.0; LANES];
+        let mut prev = [0.0; LANES];
+        for j in 0..LANES {
+            cur[j] = self.amp * (s0 * self.lane_c[j] + c0 * self.lane_s[j]);
+            prev[j] = self.amp * (s0 * self.prev_c[j] + c0 * self.prev_s[j]);
+        }
+        (cur, prev)
+    }
+
+    #[inline(always)]
+    fn advance(&mut self, len: usize) {
+        self.acc = self.acc.wrapping_add(self.inc.wrapping_mul(len as u64));
+    }
+}
+
 fn turns_to_fixed(t: f64) -> u64 {
     let f = t - t.floor();
     // 2^64 * f, exact for f with at most 53 significant bits
@@ -145,17 +167,34 @@ impl ToneFeed {
     fn fill_impl(&mut self, out: &mut [f64]) {
         let len = out.len();
         out.fill(self.dc);
-        for o in &mut self.oscs {
-            let th = fixed_to_angle(o.acc);
-            let (s0, c0) = th.sin_cos();
-            // Lane j holds sin(theta + (j + LANES c) w); each lane advances by LANES steps
-            // with the second-order recurrence s[n+1] = 2 cos(LANES w) s[n] - s[n-1].
-            let mut cur = [0.0; LANES];
-            let mut prev = [0.0; LANES];
-            for j in 0..LANES {
-                cur[j] = o.amp * (s0 * o.lane_c[j] + c0 * o.lane_s[j]);
-                prev[j] = o.amp * (s0 * o.prev_c[j] + c0 * o.prev_s[j]);
+        // Tones two at a time (one pass over the block per pair).
+        let mut pairs = self.oscs.chunks_exact_mut(2);
+        for pr in &mut pairs {
+            let (a, b) = pr.split_at_mut(1);
+            let (ca, pa) = a[0].lanes();
+            let (cb, pb) = b[0].lanes();
+            let (mut ca, mut pa, mut cb, mut pb) = (ca, pa, cb, pb);
+            let (ta, tb) = (a[0].two_cos, b[0].two_cos);
+            let mut chunks = out.chunks_exact_mut(LANES);
+            for ch in &mut chunks {
+                for j in 0..LANES {
+                    ch[j] += ca[j] + cb[j];
+                    let na = ta * ca[j] - pa[j];
+                    let nb = tb * cb[j] - pb[j];
+                    pa[j] = ca[j];
+                    ca[j] = na;
+                    pb[j] = cb[j];
+                    cb[j] = nb;
+                }
             }
+            for ((v, x), y) in chunks.into_remainder().iter_mut().zip(&ca).zip(&cb) {
+                *v += x + y;
+            }
+            a[0].advance(len);
+            b[0].advance(len);
+        }
+        for o in pairs.into_remainder() {
+            let (mut cur, mut prev) = o.lanes();
             let tc = o.two_cos;
             let mut chunks = out.chunks_exact_mut(LANES);
             for ch in &mut chunks {
@@ -169,7 +208,7 @@ impl ToneFeed {
             for (v, sj) in chunks.into_remainder().iter_mut().zip(cur.iter()) {
                 *v += sj;
             }
-            o.acc = o.acc.wrapping_add(o.inc.wrapping_mul(len as u64));
+            o.advance(len);
         }
         let first = self.n;
         let last = self.n + len as i64; // exclusive

@@ -399,17 +399,28 @@ fn linear_block(
                 return false;
             }
         }
-        p.fill(c0);
+        if has_caps || sp.minus.len() < 2 {
+            p.fill(c0);
+        }
     }
     if !has_caps {
-        // inputs two at a time (one pass over the block per pair)
+        // inputs two at a time (one pass over the block per pair); without a V+ input the
+        // first pass also writes the constant
         let mut pairs = sp.minus.chunks_exact(2);
+        let mut fresh = sp.plus.is_none();
         for pr in &mut pairs {
             let (w0, w1) = (pr[0].mu * pr[0].gain, pr[1].mu * pr[1].gain);
             let s0 = &bufs[pr[0].node][hist - pr[0].delay..hist - pr[0].delay + b];
             let s1 = &bufs[pr[1].node][hist - pr[1].delay..hist - pr[1].delay + b];
-            for ((d, a), c) in p.iter_mut().zip(s0).zip(s1) {
-                *d -= w0 * a + w1 * c;
+            if fresh {
+                for ((d, a), c) in p.iter_mut().zip(s0).zip(s1) {
+                    *d = c0 - (w0 * a + w1 * c);
+                }
+                fresh = false;
+            } else {
+                for ((d, a), c) in p.iter_mut().zip(s0).zip(s1) {
+                    *d -= w0 * a + w1 * c;
+                }
             }
         }
         for m in pairs.remainder() {
@@ -658,12 +669,13 @@ fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], 
             (xc - a > lin_lo) & (xc + a < lin_hi)
         };
         let mut all = inside(x2, x1, x[0]) & inside(x1, x[0], x[1]);
-        for ((&xm, &xc), &xp) in x.iter().zip(&x[1..]).zip(&x[2..]) {
+        out[0] = x1;
+        out[1] = x[0];
+        for (((o, &xm), &xc), &xp) in out[2..].iter_mut().zip(x).zip(&x[1..]).zip(&x[2..]) {
+            *o = xc;
             all &= inside(xm, xc, xp);
         }
         if all {
-            out[0] = x1;
-            out[1..b].copy_from_slice(&x[..b - 1]);
             st.x2 = x[b - 2];
             st.x1 = x[b - 1];
             return;
