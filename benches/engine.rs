@@ -1,1 +1,157 @@
-fn main() {}
+//! Engine throughput: a four-input summer with a restoring inverter at K = 4, 48 kHz, one
+//! core. Prints samples/s (base-rate frames per second of wall time) and times real time for
+//! a clean mix and a mix that clips. Only the processing is timed (compile and allocation
+//! happen before the clock starts). Run with `cargo bench --bench engine`.
+
+use railsong::engine::{compile, Engine};
+use railsong::model::*;
+use railsong::parts::builtin;
+use std::time::Instant;
+
+fn patch(amp: f64) -> Patch {
+    let jf = builtin("jfet-general").expect("built-in");
+    let freqs = [110.0, 440.0, 997.0, 3150.0];
+    let sources = freqs
+        .iter()
+        .enumerate()
+        .map(|(i, &f)| Source {
+            name: format!("in{i}"),
+            wave: Wave::Sine {
+                freq: f,
+                amp,
+                phase: 0.3 * i as f64,
+            },
+            offset: 0.0,
+            start: 0.0,
+            stop: None,
+            envelope: None,
+        })
+        .collect();
+    let inputs = (0..4)
+        .map(|i| SumInput {
+            from: Node::Source(i),
+            r: 100e3,
+            c: None,
+        })
+        .collect();
+    Patch {
+        title: "bench".into(),
+        rate: 48_000.0,
+        length: 10.0,
+        oversample: 4,
+        seed: 1,
+        noise: false,
+        temperature: 298.15,
+        rails: Rails {
+            pos: 12.0,
+            neg: -12.0,
+        },
+        full_scale: 12.0,
+        sources,
+        stages: vec![
+            Stage {
+                name: "mix".into(),
+                part: Some(jf.clone()),
+                kind: StageKind::InvertingSum {
+                    inputs,
+                    feedback: Feedback {
+                        r: 100e3,
+                        c: None,
+                        pot: None,
+                    },
+                    reference: 0.0,
+                    single: false,
+                },
+            },
+            Stage {
+                name: "restore".into(),
+                part: Some(jf),
+                kind: StageKind::InvertingSum {
+                    inputs: vec![SumInput {
+                        from: Node::Stage(0),
+                        r: 10e3,
+                        c: None,
+                    }],
+                    feedback: Feedback {
+                        r: 10e3,
+                        c: None,
+                        pot: None,
+                    },
+                    reference: 0.0,
+                    single: true,
+                },
+            },
+        ],
+        outputs: vec![Output {
+            name: "out".into(),
+            from: Node::Stage(1),
+            series: 1e3,
+            load: Some(100e3),
+            file: None,
+        }],
+    }
+}
+
+/// CPU time of this process in seconds (Linux `/proc/self/schedstat`, first field, ns), so the
+/// figure is not inflated by other processes competing for the cores; None elsewhere.
+fn cpu_time() -> Option<f64> {
+    let s = std::fs::read_to_string("/proc/self/schedstat").ok()?;
+    let ns: f64 = s.split_whitespace().next()?.parse().ok()?;
+    Some(ns * 1e-9)
+}
+
+fn measure(label: &str, amp: f64, seconds: f64) {
+    let p = patch(amp);
+    let plan = compile(&p).expect("bench patch compiles");
+    let mut e = Engine::new(&plan);
+    let frames = (seconds * p.rate) as usize;
+    let mut out = vec![0.0; 4800];
+    // warm-up
+    e.process(&mut [&mut out[..]]);
+    e.reset();
+    let mut best = f64::INFINITY;
+    let mut best_cpu = f64::INFINITY;
+    for _ in 0..5 {
+        e.reset();
+        let c0 = cpu_time();
+        let t = Instant::now();
+        let mut done = 0;
+        while done < frames {
+            let n = out.len().min(frames - done);
+            e.process(&mut [&mut out[..n]]);
+            done += n;
+        }
+        best = best.min(t.elapsed().as_secs_f64());
+        if let (Some(a), Some(b)) = (c0, cpu_time()) {
+            best_cpu = best_cpu.min(b - a);
+        }
+    }
+    let (fast, full) = e.path_counts();
+    let sps = frames as f64 / best;
+    println!(
+        "{label:10} {frames} frames in {best:.4} s wall: {sps:.3e} samples/s, {:.0}x real time \
+         at 48 kHz (stage blocks: {fast} fast, {full} full; clip {:.3} s)",
+        sps / p.rate,
+        e.events().iter().map(|ev| ev.clip_s).sum::<f64>()
+    );
+    if best_cpu.is_finite() {
+        let cps = frames as f64 / best_cpu;
+        println!(
+            "{label:10} by CPU time {best_cpu:.4} s: {cps:.3e} samples/s, {:.0}x real time",
+            cps / p.rate
+        );
+    }
+    std::hint::black_box(&out);
+}
+
+fn main() {
+    println!("four-input summer + restoring inverter, jfet-general, K = 4, 48 kHz, one core");
+    // RAILSONG_BENCH=clean or =clipping runs one case only (for profiling).
+    let only = std::env::var("RAILSONG_BENCH").unwrap_or_default();
+    if only.is_empty() || only == "clean" {
+        measure("clean", 0.5, 20.0);
+    }
+    if only.is_empty() || only == "clipping" {
+        measure("clipping", 5.0, 5.0);
+    }
+}

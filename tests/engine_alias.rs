@@ -62,3 +62,25 @@ fn band_limited_clip_meets_the_targets() {
     let n4 = alias_probe_with(&part("ideal"), RAILS, 48_000.0, 4, false);
     assert!(i4 < n4 - 30.0, "{i4} vs naive {n4}");
 }
+
+// run() with alias_probe fills one figure per op-amp stage, equal to alias_probe for its part.
+#[test]
+fn run_reports_alias_per_stage() {
+    let mut b = Pb::new(48_000.0, 4, 0.01);
+    let s = b.sine("in", 1000.0, 1.0);
+    let a = b.inv("a", &part("jfet-general"), &[(s, 10e3)], 10e3);
+    let v = b.atten("vol", a, 10e3, railsong::model::Taper::Linear, 0.5);
+    let c = b.follower("b", &part("ideal"), v);
+    b.out("out", c, 0.0, None);
+    let opts = railsong::engine::RunOptions {
+        frames: Some(100),
+        alias_probe: true,
+    };
+    let r = railsong::engine::run(&b.p, &opts).unwrap();
+    assert_eq!(r.outputs[0].samples.len(), 100);
+    assert_eq!(r.alias.len(), 2);
+    assert_eq!(r.alias[0].stage, "a");
+    assert_eq!(r.alias[1].part, "ideal");
+    let direct = alias_probe(&part("jfet-general"), RAILS, 48_000.0, 4);
+    assert_eq!(r.alias[0].dbc, direct);
+}

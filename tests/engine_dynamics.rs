@@ -68,6 +68,29 @@ fn full_power_bandwidth() {
     assert!((s / 0.1e6 - 1.0).abs() < 0.02, "slope above fp {s}");
 }
 
+// Slew events: a slew-limited render reports slew time, a small signal reports none (slewing
+// means |Vd| > Vov by the model's definition; for a follower at 5 kHz, 5 V peak, the input
+// slope exceeds SR for the part of each period where |cos| > SR / (2 pi f Vp) [D]).
+#[test]
+fn slew_events_are_reported() {
+    let ev = |vp: f64| {
+        let mut b = Pb::new(48_000.0, 4, 0.02).rails(15.0, -15.0);
+        let s = b.sine("in", 5000.0, vp);
+        let f = b.follower("buf", &slow(), s);
+        b.out("out", f, 0.0, None);
+        run(&b.p, &RunOptions::default()).unwrap().events[0].clone()
+    };
+    let big = ev(5.0);
+    // fraction of time with |cos| > r is (2/pi) acos(r) [D]; the output slews somewhat
+    // longer (it must catch up), so the measured time is at least that fraction
+    let r = 0.1e6 / (std::f64::consts::TAU * 5000.0 * 5.0);
+    let min_frac = 2.0 / std::f64::consts::PI * r.acos();
+    assert!(big.slew_s > 0.02 * min_frac, "{big:?} vs {min_frac}");
+    let small = ev(0.5);
+    assert_eq!(small.slew_s, 0.0, "{small:?}");
+    assert_eq!(small.clip_s, 0.0);
+}
+
 // Phase reversal (common practice): JFET-input general-purpose profile on +/-12 V, follower.
 // The input range stops 4 V above V- (-8 V): at -7.9 V the output follows, at -8.1 V the loop
 // turns positive and the output goes to the positive side.

@@ -233,7 +233,70 @@ fn plan_is_inspectable() {
     );
     let text = format!("{plan:?}");
     assert!(text.contains("second") && text.contains("lin_e"));
+    let summary = plan.to_string();
+    assert!(summary.contains("stage 1 `second` (inverting, part jfet-general)"));
+    assert!(summary.contains("decimator [27, 79] taps"), "{summary}");
     // swing with the current limit: 25 mA into 10k feedback + 10k downstream input is 125 V,
     // so the profile's swing (rails -/+ 1.5 V) holds [S: profile figures]
     assert!((plan.stages[0].shaper.hi - 10.5).abs() < 1e-12);
+}
+
+// Capacitors, ideal part. Feedback Rf || Cf: G = -(Rf/Rin) / (1 + j f / fc), fc = 1/(2 pi Rf
+// Cf); series input C with Rin: G = -(Rf/Rin) j(f/fc) / (1 + j f/fc), fc = 1/(2 pi Rin C)
+// (first-order RC networks, any circuits text [S]). |G| within 1 % at K = 16.
+#[test]
+fn capacitor_networks_follow_first_order_responses() {
+    let (rin, rf) = (10e3, 20e3);
+    let cf = 1.0 / (std::f64::consts::TAU * rf * 5000.0); // fc 5 kHz
+    for &f in &[1000.0, 5000.0, 10000.0] {
+        let mut b = Pb::new(RATE, 16, 0.1);
+        let s = b.sine("in", f, 0.1);
+        let st = b.inv_full(
+            "lp",
+            &part("ideal"),
+            vec![SumInput {
+                from: s,
+                r: rin,
+                c: None,
+            }],
+            rf,
+            Some(cf),
+            None,
+        );
+        b.out("out", st, 0.0, None);
+        let y = &render(&b.p)[0];
+        let (a, q, _, _) = fit(&y[480..], 480, f, RATE);
+        let mag = (a * a + q * q).sqrt() / 0.1;
+        let expect = (rf / rin) / (1.0 + (f / 5000.0f64).powi(2)).sqrt();
+        assert!(rel(mag, expect) < 0.01, "low-pass f {f}: {mag} vs {expect}");
+    }
+    let c = 1.0 / (std::f64::consts::TAU * rin * 100.0); // fc 100 Hz
+    for &f in &[50.0, 100.0, 400.0] {
+        let mut b = Pb::new(RATE, 16, 0.5);
+        let s = b.sine("in", f, 0.1);
+        let st = b.inv_full(
+            "hp",
+            &part("ideal"),
+            vec![SumInput {
+                from: s,
+                r: rin,
+                c: Some(c),
+            }],
+            rf,
+            None,
+            None,
+        );
+        b.out("out", st, 0.0, None);
+        let y = &render(&b.p)[0];
+        // skip 0.2 s: the start transient decays with tau = Rin C = 1.6 ms
+        let skip = (0.2 * RATE) as usize;
+        let (a, q, _, _) = fit(&y[skip..], skip, f, RATE);
+        let mag = (a * a + q * q).sqrt() / 0.1;
+        let x = f / 100.0;
+        let expect = (rf / rin) * x / (1.0 + x * x).sqrt();
+        assert!(
+            rel(mag, expect) < 0.01,
+            "high-pass f {f}: {mag} vs {expect}"
+        );
+    }
 }

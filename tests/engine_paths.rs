@@ -62,6 +62,7 @@ fn fast_path_agrees_with_full_model() {
                     .zip(&yr)
                     .map(|(a, b)| (a - b).abs())
                     .fold(0.0, f64::max);
+                println!("K {k} caps {caps} amp {amp}: max difference {d:.3e} V");
                 assert!(d < 1e-6, "K {k} caps {caps} amp {amp}: {d} V");
                 let (nf, _) = fast.path_counts();
                 if amp < 1.0 {
@@ -124,6 +125,8 @@ fn upsampler_then_decimator_is_a_delay() {
             let expect = (std::f64::consts::TAU * f * (i as f64 - d)).sin();
             err = err.max((v - expect).abs());
         }
-        assert!(err < 2.5e-4, "K {k}: {err}");
+        println!("K {k}: max error {err:.3e}");
+        // 1e-4 relative is 0.00087 dB: within the chain specification [railsong design]
+        assert!(err < 1e-4, "K {k}: {err}");
     }
 }

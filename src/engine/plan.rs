@@ -167,9 +167,9 @@ pub struct StagePlan {
     pub eps: f64,
     /// Linear recursion: `v = e v + a1 p[n] + a0 p[n-1]`.
     pub lin_e: f64,
-    /// Linear recursion coefficient of p[n].
+    /// Linear recursion coefficient of `p[n]`.
     pub lin_a1: f64,
-    /// Linear recursion coefficient of p[n-1].
+    /// Linear recursion coefficient of `p[n-1]`.
     pub lin_a0: f64,
     /// Output clipper (swing after the current limit).
     pub shaper: Shaper,
@@ -898,5 +898,105 @@ fn wave_name(w: &Wave) -> &'static str {
         Wave::Steps { .. } => "steps",
         Wave::Ramp { .. } => "ramp",
         Wave::File { .. } => "file",
+    }
+}
+
+impl std::fmt::Display for Plan {
+    /// A compact, human-readable summary: rates, stage order and coefficients, limits,
+    /// latencies and filter lengths.
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        writeln!(
+            f,
+            "plan `{}`: rate {} Hz, oversample {} (internal {} Hz), block {}",
+            self.title, self.rate, self.oversample, self.internal_rate, self.block
+        )?;
+        let node_name = |n: usize| -> String {
+            if n < self.sources.len() {
+                format!("source `{}`", self.sources[n].name)
+            } else {
+                self.stages
+                    .iter()
+                    .find(|s| s.node == n)
+                    .map_or_else(|| format!("node {n}"), |s| format!("stage `{}`", s.name))
+            }
+        };
+        for (i, s) in self.sources.iter().enumerate() {
+            let wave = match &s.wave {
+                SourceWave::Tones { tones } => tones
+                    .iter()
+                    .map(|(fr, a, _)| format!("{fr} Hz {a} V"))
+                    .collect::<Vec<_>>()
+                    .join(" + "),
+                SourceWave::Dc { level } => format!("dc {level} V"),
+            };
+            writeln!(
+                f,
+                "  source {i} `{}`: {wave}, offset {} V, start {} s",
+                s.name, s.offset, s.start
+            )?;
+        }
+        for (i, s) in self.stages.iter().enumerate() {
+            writeln!(
+                f,
+                "  stage {i} `{}` ({}, part {}): Vd = p - {:.6} v, latency {}",
+                s.name, s.topology, s.part, s.b, s.latency
+            )?;
+            for m in &s.minus {
+                writeln!(
+                    f,
+                    "    V- input {}: weight {:.6}, tap gain {:.6}, R {:.1} ohm{}, delay {}",
+                    node_name(m.node),
+                    m.mu,
+                    m.gain,
+                    m.r,
+                    m.cap.map_or(String::new(), |c| format!(", C {c:e} F")),
+                    m.delay
+                )?;
+            }
+            if let Some(p) = &s.plus {
+                writeln!(
+                    f,
+                    "    V+ input {}: tap gain {:.6}, Rth {:.1} ohm, delay {}",
+                    node_name(p.node),
+                    p.gain,
+                    p.rth,
+                    p.delay
+                )?;
+            }
+            writeln!(
+                f,
+                "    swing [{:.4}, {:.4}] V (profile [{:.4}, {:.4}]), knee {} V, load {:.3e} S",
+                s.shaper.lo, s.shaper.hi, s.swing.0, s.swing.1, s.shaper.w, s.load_g
+            )?;
+            if let Some((lo, hi)) = s.cm {
+                writeln!(
+                    f,
+                    "    input range [{lo}, {hi}] V{}",
+                    if s.reversal { ", reverses" } else { "" }
+                )?;
+            }
+            writeln!(
+                f,
+                "    GBW {:e} Hz, SR {:e} V/s, Vov {:.4} V, recursion e {:.3e}",
+                s.gbw, s.slew, s.vov, s.lin_e
+            )?;
+        }
+        for o in &self.outputs {
+            writeln!(
+                f,
+                "  output `{}` <- {} x {:.6} (Rth {:.1} ohm), delay {}",
+                o.name,
+                node_name(o.node),
+                o.gain,
+                o.rth,
+                o.delay
+            )?;
+        }
+        write!(
+            f,
+            "  decimator {:?} taps, delay {} + latency {} internal samples; pre-roll {}, \
+             {} frames dropped",
+            self.filter_lengths, self.decimator_delay, self.latency, self.preroll, self.discard
+        )
     }
 }

@@ -10,6 +10,7 @@ use super::StageEvents;
 struct StageState {
     v: f64,
     p_prev: f64,
+    p_prev2: f64,
     vc: Vec<f64>,
     vf: f64,
     x1: f64,
@@ -25,6 +26,7 @@ impl StageState {
         StageState {
             v: sp.rest_v,
             p_prev: sp.rest_p,
+            p_prev2: sp.rest_p,
             vc: sp.rest_vc.clone(),
             vf: sp.rest_vf,
             x1: sp.rest_v,
@@ -39,6 +41,7 @@ impl StageState {
     fn restore_from(&mut self, o: &StageState) {
         self.v = o.v;
         self.p_prev = o.p_prev;
+        self.p_prev2 = o.p_prev2;
         self.vc.copy_from_slice(&o.vc);
         self.vf = o.vf;
         self.x1 = o.x1;
@@ -59,7 +62,7 @@ pub struct Engine {
     saved: Vec<StageState>,
     xbuf: Vec<f64>,
     pbuf: Vec<f64>,
-    out_int: Vec<f64>,
+    qbuf: Vec<f64>,
     decims: Vec<Decimator>,
     out_base: Vec<Vec<f64>>,
     pos: usize,
@@ -165,7 +168,7 @@ impl Engine {
             saved,
             xbuf: vec![0.0; b],
             pbuf: vec![0.0; b],
-            out_int: vec![0.0; b],
+            qbuf: vec![0.0; b],
             decims,
             out_base,
             pos: 0,
@@ -208,6 +211,7 @@ impl Engine {
             self.bufs[sp.node][..hist].fill(sp.shaper.apply(sp.rest_v));
             st.v = sp.rest_v;
             st.p_prev = sp.rest_p;
+            st.p_prev2 = sp.rest_p;
             st.vc.copy_from_slice(&sp.rest_vc);
             st.vf = sp.rest_vf;
             st.x1 = sp.rest_v;
@@ -265,8 +269,28 @@ impl Engine {
         }
     }
 
-    /// Compute one internal block and decimate it.
+    /// Compute one internal block and decimate it (with AVX2 code generation where the CPU
+    /// has it: the same arithmetic, wider vectors, so results do not change).
     fn block(&mut self) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::arch::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU supports AVX2 (checked just above).
+                unsafe { self.block_avx2() };
+                return;
+            }
+        }
+        self.block_impl();
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn block_avx2(&mut self) {
+        self.block_impl();
+    }
+
+    #[inline(always)]
+    fn block_impl(&mut self) {
         let b = self.plan.block;
         let hist = self.plan.history;
         let ns = self.plan.sources.len();
@@ -280,7 +304,15 @@ impl Engine {
             let mut ok = false;
             if self.fast {
                 self.saved[si].restore_from(st);
-                ok = linear_block(sp, st, &self.bufs, hist, &mut self.xbuf, &mut self.pbuf);
+                ok = linear_block(
+                    sp,
+                    st,
+                    &self.bufs,
+                    hist,
+                    &mut self.xbuf,
+                    &mut self.pbuf,
+                    &mut self.qbuf,
+                );
                 if ok {
                     self.fast_blocks += 1;
                 } else {
@@ -310,10 +342,7 @@ impl Engine {
         let kf = self.plan.oversample;
         for (o, op) in self.plan.outputs.iter().enumerate() {
             let src = &self.bufs[op.node][hist - op.delay..hist - op.delay + b];
-            for (d, s) in self.out_int.iter_mut().zip(src) {
-                *d = op.gain * s;
-            }
-            self.decims[o].process(&self.out_int, &mut self.out_base[o][..b / kf]);
+            self.decims[o].process_scaled(src, op.gain, &mut self.out_base[o][..b / kf]);
         }
         for buf in self.bufs.iter_mut().take(ns + self.plan.stages.len()) {
             buf.copy_within(b..b + hist, 0);
@@ -324,6 +353,8 @@ impl Engine {
     }
 }
 
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
 /// The linear recursion over a block; returns false (state to be restored) when a sample came
 /// near a limit.
 fn linear_block(
@@ -333,6 +364,7 @@ fn linear_block(
     hist: usize,
     x: &mut [f64],
     p: &mut [f64],
+    q: &mut [f64],
 ) -> bool {
     let b = x.len();
     let (e, a1, a0, bcoef) = (sp.lin_e, sp.lin_a1, sp.lin_a0, sp.b);
@@ -367,39 +399,149 @@ fn linear_block(
                 return false;
             }
         }
-        p.fill(c0);
+        if has_caps || sp.minus.len() < 2 {
+            p.fill(c0);
+        }
     }
     if !has_caps {
-        for m in &sp.minus {
+        // inputs two at a time (one pass over the block per pair); without a V+ input the
+        // first pass also writes the constant
+        let mut pairs = sp.minus.chunks_exact(2);
+        let mut fresh = sp.plus.is_none();
+        for pr in &mut pairs {
+            let (w0, w1) = (pr[0].mu * pr[0].gain, pr[1].mu * pr[1].gain);
+            let s0 = &bufs[pr[0].node][hist - pr[0].delay..hist - pr[0].delay + b];
+            let s1 = &bufs[pr[1].node][hist - pr[1].delay..hist - pr[1].delay + b];
+            if fresh {
+                for ((d, a), c) in p.iter_mut().zip(s0).zip(s1) {
+                    *d = c0 - (w0 * a + w1 * c);
+                }
+                fresh = false;
+            } else {
+                for ((d, a), c) in p.iter_mut().zip(s0).zip(s1) {
+                    *d -= w0 * a + w1 * c;
+                }
+            }
+        }
+        for m in pairs.remainder() {
             let w = m.mu * m.gain;
             let src = &bufs[m.node][hist - m.delay..hist - m.delay + b];
             for (d, s) in p.iter_mut().zip(src) {
                 *d -= w * s;
             }
         }
-        let mut v = st.v;
-        let mut pp = st.p_prev;
-        let mut vdm = 0.0f64;
-        let mut xmn = f64::INFINITY;
-        let mut xmx = f64::NEG_INFINITY;
-        for (xo, &pn) in x.iter_mut().zip(p.iter()) {
-            v = e * v + a1 * pn + a0 * pp;
-            pp = pn;
-            *xo = v;
-            vdm = vdm.max((pn - bcoef * v).abs());
-            xmn = xmn.min(v);
-            xmx = xmx.max(v);
+        let mut ok = true;
+        if e * e <= 1e-17 && b > 2 {
+            // Memory of at most one step: v[n] = q[n] + e q[n-1] (the dropped term e^2 v[n-2]
+            // is below 1e-17 relative), q[n] = a1 p[n] + a0 p[n-1]: a three-tap FIR on p,
+            // fused with the checks.
+            let (c0, c1, c2) = if e <= 1e-17 {
+                (a1, a0, 0.0)
+            } else {
+                (a1, a0 + e * a1, e * a0)
+            };
+            let (pp1, pp2) = (st.p_prev, st.p_prev2);
+            x[0] = c0 * p[0] + c1 * pp1 + c2 * pp2;
+            x[1] = c0 * p[1] + c1 * p[0] + c2 * pp1;
+            let mut ok = true;
+            for (&pn, &v) in p[..2].iter().zip(&x[..2]) {
+                ok &= ((pn - bcoef * v).abs() <= vd_max) & (v >= slo) & (v <= shi);
+            }
+            for (((xo, &pn), &pm1), &pm2) in x[2..]
+                .iter_mut()
+                .zip(&p[2..])
+                .zip(&p[1..b - 1])
+                .zip(&p[..b - 2])
+            {
+                let v = c0 * pn + c1 * pm1 + c2 * pm2;
+                *xo = v;
+                ok &= ((pn - bcoef * v).abs() <= vd_max) & (v >= slo) & (v <= shi);
+            }
+            if !ok {
+                return false;
+            }
+            st.v = x[b - 1];
+            st.p_prev = p[b - 1];
+            st.p_prev2 = p[b - 2];
+            return true;
         }
-        if vdm > vd_max || xmn < slo || xmx > shi || !v.is_finite() {
+        // q[n] = a1 p[n] + a0 p[n-1], then v[n] = e v[n-1] + q[n].
+        q[0] = a1 * p[0] + a0 * st.p_prev;
+        for ((qo, &pn), &pp) in q[1..].iter_mut().zip(&p[1..]).zip(&p[..b - 1]) {
+            *qo = a1 * pn + a0 * pp;
+        }
+        // Memory depth: the smallest m with e^m below 1e-17 (the previous outputs' weight
+        // beyond m steps is negligible). Up to four taps the recursion is unrolled into a
+        // short FIR on q (no serial dependency); otherwise it runs serially.
+        let mut depth = 0usize;
+        let mut em = 1.0;
+        while em > 1e-17 && depth < 5 {
+            em *= e;
+            depth += 1;
+        }
+        if depth <= 4 && b > 8 {
+            let mut v = st.v;
+            for (xo, &qn) in x.iter_mut().zip(q.iter()).take(depth) {
+                v = e * v + qn;
+                *xo = v;
+            }
+            let (e2, e3) = (e * e, e * e * e);
+            let n = b - depth;
+            let (q0, q1, q2, q3) = (
+                &q[depth..],
+                &q[depth - 1..],
+                &q[depth.max(2) - 2..],
+                &q[depth.max(3) - 3..],
+            );
+            let xs = &mut x[depth..];
+            match depth {
+                1 => xs.copy_from_slice(&q0[..n]),
+                2 => {
+                    for ((xo, a), b1) in xs.iter_mut().zip(&q0[..n]).zip(&q1[..n]) {
+                        *xo = a + e * b1;
+                    }
+                }
+                3 => {
+                    for (((xo, a), b1), c) in
+                        xs.iter_mut().zip(&q0[..n]).zip(&q1[..n]).zip(&q2[..n])
+                    {
+                        *xo = a + e * b1 + e2 * c;
+                    }
+                }
+                _ => {
+                    for ((((xo, a), b1), c), d) in xs
+                        .iter_mut()
+                        .zip(&q0[..n])
+                        .zip(&q1[..n])
+                        .zip(&q2[..n])
+                        .zip(&q3[..n])
+                    {
+                        *xo = a + e * b1 + e2 * c + e3 * d;
+                    }
+                }
+            }
+        } else {
+            let mut v = st.v;
+            for (xo, &qn) in x.iter_mut().zip(q.iter()) {
+                v = e * v + qn;
+                *xo = v;
+            }
+        }
+        for (&v, &pn) in x.iter().zip(p.iter()) {
+            ok &= ((pn - bcoef * v).abs() <= vd_max) & (v >= slo) & (v <= shi);
+        }
+        if !ok {
             return false;
         }
-        st.v = v;
-        st.p_prev = pp;
+        st.v = x[b - 1];
+        st.p_prev = p[b - 1];
+        st.p_prev2 = p[b - 2];
         return true;
     }
     // With capacitors: per-sample companion updates.
     let mut v = st.v;
     let mut pp = st.p_prev;
+    let mut pp2 = st.p_prev2;
     for t in 0..b {
         let mut mrest = 0.0;
         for (m, vc) in sp.minus.iter().zip(st.vc.iter()) {
@@ -411,6 +553,7 @@ fn linear_block(
         }
         let pn = p[t] - mrest;
         v = e * v + a1 * pn + a0 * pp;
+        pp2 = pp;
         pp = pn;
         x[t] = v;
         if (pn - bcoef * v).abs() > vd_max || v < slo || v > shi || !v.is_finite() {
@@ -429,6 +572,7 @@ fn linear_block(
     }
     st.v = v;
     st.p_prev = pp;
+    st.p_prev2 = pp2;
     true
 }
 
@@ -448,6 +592,7 @@ fn full_block(
     let delta_inv = 1.0 / super::plan::CM_DELTA;
     let mut v = st.v;
     let mut pp = st.p_prev;
+    let mut pp2 = st.p_prev2;
     for (t, xo) in x.iter_mut().enumerate().take(b) {
         let vp = match &sp.plus {
             Some(pi) => sp.plus_const + pi.gain * bufs[pi.node][hist - pi.delay + t],
@@ -500,18 +645,42 @@ fn full_block(
         if sp.fb_cap.is_some() {
             st.vf = v - vminus;
         }
+        pp2 = pp;
         pp = pn;
     }
     st.v = v;
     st.p_prev = pp;
+    st.p_prev2 = pp2;
 }
 
 /// Output clipper with one sample of lookahead: writes y[n-1] at position n.
+#[inline(always)]
 fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], aa: bool) {
     let sh = sp.shaper;
     let (lin_lo, lin_hi) = (sh.lo + sh.w, sh.hi - sh.w);
     let mut x1 = st.x1;
     let mut x2 = st.x2;
+    let b = x.len();
+    // Whole block strictly inside the linear region: the output is the drive, one sample
+    // late (same values as the per-sample branch below).
+    if b >= 2 {
+        let inside = |xm: f64, xc: f64, xp: f64| {
+            let a = 0.5 * (xp - xm).abs();
+            (xc - a > lin_lo) & (xc + a < lin_hi)
+        };
+        let mut all = inside(x2, x1, x[0]) & inside(x1, x[0], x[1]);
+        out[0] = x1;
+        out[1] = x[0];
+        for (((o, &xm), &xc), &xp) in out[2..].iter_mut().zip(x).zip(&x[1..]).zip(&x[2..]) {
+            *o = xc;
+            all &= inside(xm, xc, xp);
+        }
+        if all {
+            st.x2 = x[b - 2];
+            st.x1 = x[b - 1];
+            return;
+        }
+    }
     let mut clip = 0u64;
     for (o, &xn) in out.iter_mut().zip(x) {
         let a = 0.5 * (xn - x2).abs();
