@@ -16,5 +16,6 @@ pub mod engine;
 pub mod model;
 pub mod parts;
 pub mod patch;
+pub mod plot;
 pub mod signal;
 pub mod units;
