@@ -237,17 +237,39 @@ impl Svg {
         source: usize,
         style: &str,
     ) {
+        self.paths(
+            class,
+            name,
+            extra,
+            std::slice::from_ref(&pts),
+            source,
+            style,
+        );
+    }
+
+    /// A series path made of sub-paths (each starts with `M`).
+    pub fn paths<P: AsRef<[(f64, f64)]>>(
+        &mut self,
+        class: &str,
+        name: &str,
+        extra: &str,
+        subpaths: &[P],
+        source: usize,
+        style: &str,
+    ) {
+        let total: usize = subpaths.iter().map(|p| p.as_ref().len()).sum();
         let _ = write!(
             self.out,
-            "<path class=\"series {class}\" data-series=\"{}\" data-points=\"{}\" data-source-points=\"{source}\"{extra} clip-path=\"url(#plot-clip)\" {style} d=\"",
+            "<path class=\"series {class}\" data-series=\"{}\" data-points=\"{total}\" data-source-points=\"{source}\"{extra} clip-path=\"url(#plot-clip)\" {style} d=\"",
             esc(name),
-            pts.len()
         );
-        for (i, &(x, y)) in pts.iter().enumerate() {
-            self.out.push(if i == 0 { 'M' } else { 'L' });
-            self.out.push_str(&px1(x));
-            self.out.push(',');
-            self.out.push_str(&px1(y));
+        for pts in subpaths {
+            for (i, &(x, y)) in pts.as_ref().iter().enumerate() {
+                self.out.push(if i == 0 { 'M' } else { 'L' });
+                self.out.push_str(&px1(x));
+                self.out.push(',');
+                self.out.push_str(&px1(y));
+            }
         }
         self.out.push_str("\"/>\n");
     }

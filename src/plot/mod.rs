@@ -36,8 +36,12 @@
 //! - Long series are decimated per pixel column: for each run of consecutive points falling
 //!   in the same 1 px column, the first, lowest, highest and last point are kept (in their
 //!   original order), so peaks and the envelope survive and a path has at most about four
-//!   points per column. Coordinates are written with 0.1 px resolution (0.01 px for ticks and
-//!   markers). A plot of a million samples stays well under 300 kB.
+//!   points per column. A transfer curve may go back and forth (a ramp up and down, a sine
+//!   input): it is cut into 1 px cells, points in the cell of the previous point are dropped
+//!   and a step between two cells is drawn only the first time, so a curve retraced many times
+//!   costs one pass (the cell grows if more than 16 000 points would remain). Coordinates are
+//!   written with 0.1 px resolution (0.01 px for ticks and markers). A plot of a million
+//!   samples stays well under 300 kB.
 //!
 //! # Machine-readable contract
 //! Tests and tools can parse the SVG and find each element by class and data attributes;

@@ -3,7 +3,7 @@
 use std::fmt::Write;
 
 use super::axis::{nice_linear_range, Axis, Scale, TickFormat};
-use super::decimate::decimate;
+use super::decimate::decimate_xy;
 use super::doc::{
     clip_to_area, esc, num, px, Frame, Svg, ACCENT, BOTTOM, DARK, LEFT, MID, RIGHT, TOP,
 };
@@ -141,13 +141,14 @@ pub fn transfer_svg(p: &TransferPlot) -> Result<String, PlotError> {
             esc(&label)
         );
     }
-    let pts = decimate(
-        p.input_v
-            .iter()
-            .zip(p.output_v)
-            .map(|(&x, &y)| (frame.px(x), frame.py(y).clamp(TOP, BOTTOM))),
-    );
-    svg.path(
+    let pixels: Vec<(f64, f64)> = p
+        .input_v
+        .iter()
+        .zip(p.output_v)
+        .map(|(&x, &y)| (frame.px(x), frame.py(y).clamp(TOP, BOTTOM)))
+        .collect();
+    let pts = decimate_xy(&pixels);
+    svg.paths(
         "transfer",
         "transfer",
         "",
