@@ -122,6 +122,7 @@ impl Svg {
              .tick text{{font-size:11px;fill:#555555}}\
              .tick line{{stroke:#e3e3e3;stroke-width:1}}\
              .level-label,.marker-label,.legend text,.note{{font-size:11px}}\
+             .level-label,.marker-label{{paint-order:stroke;stroke:#ffffff;stroke-width:3px;stroke-linejoin:round}}\
              .series{{fill:none;stroke-width:1.3;stroke-linejoin:round}}\
              </style>\n\
              <rect class=\"background\" x=\"0\" y=\"0\" width=\"{WIDTH}\" height=\"{HEIGHT}\" fill=\"#ffffff\"/>\n\
@@ -216,7 +217,7 @@ impl Svg {
         let _ = write!(
             self.out,
             "<rect class=\"plot-area\" x=\"{LEFT}\" y=\"{TOP}\" width=\"{}\" height=\"{}\" fill=\"none\" stroke=\"{MID}\" stroke-width=\"1\"/>\n\
-             <text class=\"title\" x=\"{LEFT}\" y=\"30\">{}</text>\n\
+             <text class=\"title\" x=\"{LEFT}\" y=\"26\">{}</text>\n\
              <text class=\"caption\" x=\"{LEFT}\" y=\"{}\">{}</text>\n</svg>\n",
             RIGHT - LEFT,
             BOTTOM - TOP,
@@ -274,38 +275,35 @@ impl Svg {
         self.out.push_str("\"/>\n");
     }
 
-    /// A legend box at the top right of the plot area. Each entry: the item's
+    /// A legend row above the top right of the plot area. Each entry: the item's
     /// attribute (`data-kind="..."` or `data-series="..."`), its swatch markup drawn in a
     /// 18 x 10 box at the origin, and its label.
     pub fn legend(&mut self, entries: &[(String, String, String)]) {
         if entries.is_empty() {
             return;
         }
-        let longest = entries
+        // One row above the plot area, right-aligned (clear of the data and of the title,
+        // which sits higher).
+        let widths: Vec<f64> = entries
             .iter()
-            .map(|e| e.2.chars().count())
-            .max()
-            .unwrap_or(0) as f64;
-        let w = 34.0 + longest * 6.3;
-        let h = 8.0 + 16.0 * entries.len() as f64;
-        let x0 = RIGHT - w - 8.0;
-        let y0 = TOP + 8.0;
+            .map(|e| 24.0 + 6.3 * e.2.chars().count() as f64 + 14.0)
+            .collect();
+        let total: f64 = widths.iter().sum();
         let _ = writeln!(
             self.out,
-            "<g class=\"legend\" transform=\"translate({} {})\"><rect x=\"0\" y=\"0\" width=\"{}\" height=\"{}\" fill=\"#ffffff\" fill-opacity=\"0.85\" stroke=\"#cfcfcf\"/>",
-            px(x0),
-            px(y0),
-            px(w),
-            px(h)
+            "<g class=\"legend\" transform=\"translate({} {})\">",
+            px(RIGHT - total + 14.0),
+            px(TOP - 17.0)
         );
-        for (i, (attr, swatch, label)) in entries.iter().enumerate() {
-            let y = 6.0 + 16.0 * i as f64;
+        let mut x = 0.0;
+        for ((attr, swatch, label), w) in entries.iter().zip(&widths) {
             let _ = writeln!(
                 self.out,
-                "<g class=\"legend-item\" {attr} transform=\"translate(8 {})\">{swatch}<text x=\"24\" y=\"9\">{}</text></g>",
-                px(y),
+                "<g class=\"legend-item\" {attr} transform=\"translate({} 0)\">{swatch}<text x=\"24\" y=\"9\">{}</text></g>",
+                px(x),
                 esc(label)
             );
+            x += w;
         }
         self.out.push_str("</g>\n");
     }

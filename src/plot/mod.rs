@@ -19,6 +19,25 @@
 //! [`crate::analysis::ThdResult`], [`settings_caption`] writes the settings line of a THD result,
 //! [`histogram_bins`] computes the bins a histogram would draw.
 //!
+//! ```
+//! use railsong::plot::{sweep_svg, AxisSpec, Crossing, SweepPlot, SweepSeries, Threshold};
+//! // THD (%) measured at five input levels (Vpk).
+//! let points = [(0.5, 0.002), (1.0, 0.008), (2.0, 0.03), (4.0, 0.4), (8.0, 6.0)];
+//! let at = railsong::analysis::sweep::level_at_thd(&points, 1.0).unwrap();
+//! let svg = sweep_svg(&SweepPlot {
+//!     title: "THD against level",
+//!     caption: "997 Hz, harmonics 2-10",
+//!     x: AxisSpec::log("Input level", "Vpk"),
+//!     y: AxisSpec::log("THD", "%"),
+//!     series: &[SweepSeries { name: "stage 1", points: &points }],
+//!     crossings: &[Crossing { x: at, y: 1.0, label: format!("1 % THD at {at:.1} Vpk") }],
+//!     threshold: Some(Threshold { y: 1.0, label: "1 % THD".into() }),
+//! })
+//! .unwrap();
+//! assert!(svg.contains("data-series=\"stage 1\""));
+//! assert!(svg.contains("class=\"crossing\""));
+//! ```
+//!
 //! # Style
 //! - Fixed canvas of [`WIDTH`] x [`HEIGHT`] px, white background, plot area framed in a
 //!   mid grey, light grey grid lines at every tick. Generic `sans-serif` font.

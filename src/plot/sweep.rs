@@ -138,11 +138,11 @@ pub fn sweep_svg(p: &SweepPlot) -> Result<String, PlotError> {
         let _ = writeln!(
             svg.buf(),
             "<line class=\"threshold\" data-y=\"{}\" x1=\"{LEFT}\" y1=\"{}\" x2=\"{RIGHT}\" y2=\"{}\" stroke=\"{ACCENT2}\" stroke-width=\"1\" stroke-dasharray=\"6 4\"/>\
-             <text class=\"marker-label threshold-label\" x=\"{}\" y=\"{}\" text-anchor=\"end\" fill=\"{ACCENT2}\">{}</text>",
+             <text class=\"marker-label threshold-label\" x=\"{}\" y=\"{}\" text-anchor=\"start\" fill=\"{ACCENT2}\">{}</text>",
             num(t.y),
             px(y),
             px(y),
-            px(RIGHT - 6.0),
+            px(LEFT + 6.0),
             px(y - 4.0),
             esc(&t.label)
         );
@@ -213,7 +213,7 @@ pub fn sweep_svg(p: &SweepPlot) -> Result<String, PlotError> {
             num(c.y),
             px(cy + 4.5),
             px(tx),
-            px(cy - 7.0),
+            px(cy + 16.0),
             esc(&c.label),
             x = px(cx),
             y = px(cy),

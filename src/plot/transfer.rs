@@ -98,9 +98,9 @@ pub fn transfer_svg(p: &TransferPlot) -> Result<String, PlotError> {
             let _ = writeln!(
                 svg.buf(),
                 "<line class=\"level rail\" data-level=\"{which}\" data-v=\"{}\" x1=\"{LEFT}\" y1=\"{y}\" x2=\"{RIGHT}\" y2=\"{y}\" stroke=\"{DARK}\" stroke-width=\"1\"/>\
-                 <text class=\"level-label\" x=\"{}\" y=\"{}\" fill=\"{DARK}\">rail {} V</text>",
+                 <text class=\"level-label\" x=\"{}\" y=\"{}\" text-anchor=\"end\" fill=\"{DARK}\">rail {} V</text>",
                 num(v),
-                LEFT + 6.0,
+                RIGHT - 6.0,
                 px(ty),
                 fmt_v(v)
             );

@@ -307,12 +307,19 @@ pub fn waveform_svg(p: &WaveformPlot) -> Result<String, PlotError> {
         } else {
             y + 12.0
         };
+        // Rails are labelled at the left, swing limits at the right, the common-mode
+        // window in the middle, so close levels do not overprint.
+        let (tx, anchor) = match *class {
+            "rail" => (LEFT + 6.0, "start"),
+            "swing" => (RIGHT - 6.0, "end"),
+            _ => ((LEFT + RIGHT) / 2.0, "middle"),
+        };
         let _ = writeln!(
             svg.buf(),
             "<line class=\"level {class}\" data-level=\"{which}\" data-v=\"{}\" x1=\"{LEFT}\" y1=\"{y}\" x2=\"{RIGHT}\" y2=\"{y}\" stroke=\"{colour}\" stroke-width=\"1\"{dash_attr}/>\
-             <text class=\"level-label\" x=\"{}\" y=\"{}\" text-anchor=\"start\" fill=\"{colour}\">{}</text>",
+             <text class=\"level-label\" x=\"{}\" y=\"{}\" text-anchor=\"{anchor}\" fill=\"{colour}\">{}</text>",
             num(*v),
-            LEFT + 6.0,
+            px(tx),
             px(ty),
             esc(label),
             y = px(y),
