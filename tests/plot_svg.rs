@@ -841,3 +841,126 @@ fn output_is_deterministic() {
     let (b, _, _) = square_spectrum_plot(None);
     assert_eq!(a, b);
 }
+
+#[test]
+fn linear_ticks_use_1_2_5_steps_at_linear_positions() {
+    let rate = 48_000.0;
+    let x = sine(rate, 480, 1000.0, 7.3);
+    let svg = waveform_svg(&WaveformPlot {
+        output: Trace {
+            samples: &x,
+            rate,
+            start_s: 0.0,
+        },
+        ..WaveformPlot::default()
+    })
+    .unwrap();
+    let root = parse(&svg).unwrap();
+    for axis in ["x", "y"] {
+        let m = Map::of(&root, axis);
+        let vals: Vec<f64> = ticks(&root, axis)
+            .iter()
+            .map(|t| t.num("data-value"))
+            .collect();
+        assert!(vals.len() >= 4 && vals.len() <= 12, "{axis}: {vals:?}");
+        let step = vals[1] - vals[0];
+        // Step is 1, 2 or 5 times a power of ten (common practice for axis ticks).
+        let mant = step / 10f64.powf(step.log10().floor());
+        assert!(
+            [1.0, 2.0, 5.0].iter().any(|k| (mant - k).abs() < 1e-9),
+            "{axis}: {step}"
+        );
+        for (i, t) in ticks(&root, axis).iter().enumerate() {
+            let v = t.num("data-value");
+            assert!((v - (vals[0] + i as f64 * step)).abs() < 1e-9 * step.max(1.0));
+            let line = t.first("line").unwrap();
+            let p = if axis == "x" {
+                line.num("x1")
+            } else {
+                line.num("y1")
+            };
+            assert!((p - m.px(v)).abs() < 0.006);
+        }
+    }
+    // Time axis: 10 ms record, 0 .. 479/48 ms.
+    let m = Map::of(&root, "x");
+    assert_eq!(m.min, 0.0);
+    assert!((m.max - 479.0 / 48.0).abs() < 1e-12);
+}
+
+#[test]
+fn checker_rejects_a_damaged_plot() {
+    // The checker can fail on the plots themselves: cut or corrupted documents are refused.
+    let (svg, _, _) = square_spectrum_plot(None);
+    assert!(parse(&svg).is_ok());
+    assert!(parse(&svg[..svg.len() - 8]).is_err());
+    assert!(parse(&svg.replacen("</g>", "</path>", 1)).is_err());
+    let escaped = waveform_svg(&WaveformPlot {
+        title: "a < b",
+        output: Trace {
+            samples: &[0.0, 1.0],
+            rate: 1.0,
+            start_s: 0.0,
+        },
+        ..WaveformPlot::default()
+    })
+    .unwrap();
+    assert!(parse(&escaped).is_ok());
+    assert!(parse(&escaped.replacen("&lt;", "<", 1)).is_err());
+}
+
+mod arbitrary_input {
+    use super::*;
+    use proptest::prelude::*;
+
+    proptest! {
+        // Fixed seed and case count: the same 64 inputs on every run.
+        #![proptest_config(ProptestConfig {
+            cases: 64,
+            failure_persistence: None,
+            rng_seed: proptest::test_runner::RngSeed::Fixed(20_261_202),
+            ..ProptestConfig::default()
+        })]
+
+        /// Any finite input gives a well-formed document or a typed error, never a panic.
+        #[test]
+        fn any_finite_input_gives_a_document(
+            v in proptest::collection::vec(-1e12f64..1e12, 1..300),
+            w in proptest::collection::vec(1e-9f64..1e9, 2..300),
+        ) {
+            let h = histogram_svg(&HistogramPlot { values: &v, ..HistogramPlot::default() }).unwrap();
+            prop_assert!(parse(&h).is_ok());
+            let pts: Vec<(f64, f64)> = w.iter().zip(&v).map(|(&a, &b)| (a, b.abs() + 1e-9)).collect();
+            let s = sweep_svg(&SweepPlot {
+                x: AxisSpec::log("x", "V"),
+                y: AxisSpec::log("y", "%"),
+                series: &[SweepSeries { name: "s", points: &pts }],
+                ..SweepPlot::default()
+            }).unwrap();
+            prop_assert!(parse(&s).is_ok());
+            let n = v.len().min(w.len());
+            let t = transfer_svg(&TransferPlot {
+                input_v: &v[..n],
+                output_v: &w[..n],
+                gain: 1.0,
+                ..TransferPlot::default()
+            });
+            if n >= 2 {
+                prop_assert!(parse(&t.unwrap()).is_ok());
+            } else {
+                prop_assert!(t.is_err());
+            }
+            let mut f = w.clone();
+            f.sort_by(f64::total_cmp);
+            let l: Vec<f64> = v.iter().cycle().take(f.len()).map(|x| x / 1e10).collect();
+            if let Ok(sp) = spectrum_svg(&SpectrumPlot { freq_hz: &f, level_db: &l, unit: "dBV", ..SpectrumPlot::default() }) {
+                prop_assert!(parse(&sp).is_ok());
+            }
+            let wf = waveform_svg(&WaveformPlot {
+                output: Trace { samples: &v, rate: 48_000.0, start_s: 0.0 },
+                ..WaveformPlot::default()
+            }).unwrap();
+            prop_assert!(parse(&wf).is_ok());
+        }
+    }
+}

@@ -174,8 +174,16 @@ pub(crate) fn linear_step(lo: f64, hi: f64) -> f64 {
 
 /// Multiples of `step` within `lo..hi` (computed as `k * step`, no accumulation).
 pub(crate) fn linear_ticks(lo: f64, hi: f64, step: f64) -> Vec<f64> {
-    let k0 = (lo / step - 1e-9).ceil() as i64;
-    let k1 = (hi / step + 1e-9).floor() as i64;
+    if !(step.is_finite() && step > 0.0 && lo.is_finite() && hi.is_finite()) {
+        return Vec::new();
+    }
+    let k0 = (lo / step - 1e-9).ceil();
+    let k1 = (hi / step + 1e-9).floor();
+    // A degenerate range (values near the limits of f64) gets no ticks rather than millions.
+    if !(k1 - k0).is_finite() || k1 - k0 > 100.0 {
+        return Vec::new();
+    }
+    let (k0, k1) = (k0 as i64, k1 as i64);
     (k0..=k1)
         .map(|k| {
             let v = k as f64 * step;
@@ -196,10 +204,15 @@ pub(crate) fn nice_linear_range(lo: f64, hi: f64) -> (f64, f64) {
         (lo, hi)
     };
     let step = linear_step(lo, hi);
-    (
+    let (a, b) = (
         (lo / step - 1e-9).floor() * step,
         (hi / step + 1e-9).ceil() * step,
-    )
+    );
+    if a.is_finite() && b.is_finite() && a < b {
+        (a, b)
+    } else {
+        (lo, hi)
+    }
 }
 
 /// `m * 10^e` exactly as the decimal literal reads.
@@ -240,6 +253,9 @@ pub(crate) fn nice_log_range(lo: f64, hi: f64) -> (f64, f64) {
 /// Ticks on a log axis: 1-2-5 per decade up to four decades, each decade up to twelve,
 /// every other decade beyond.
 pub(crate) fn log_ticks(lo: f64, hi: f64) -> Vec<f64> {
+    if !(lo > 0.0 && hi > lo && hi.is_finite()) {
+        return Vec::new();
+    }
     let decades = (hi / lo).log10();
     let mantissas: &[u32] = if decades <= 4.0 { &[1, 2, 5] } else { &[1] };
     let every = if decades <= 12.0 { 1 } else { 2 };
