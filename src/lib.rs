@@ -18,6 +18,7 @@ pub mod model;
 pub mod noise;
 pub mod parts;
 pub mod patch;
+pub mod plot;
 pub mod render;
 pub mod signal;
 pub mod units;
