@@ -12,6 +12,7 @@ use railsong::measure;
 use railsong::model::{Patch, Wave};
 use railsong::parts::{builtin, builtin_names, OpAmp};
 use railsong::render::{self, RenderError, RenderOptions};
+use railsong::report;
 use railsong::signal::{self, Depth, OutputDir, SignalError, WavSpec};
 use railsong::units::{self, fmt_eng, Level};
 
@@ -107,6 +108,17 @@ enum Command {
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
     },
+    /// Write one self-contained HTML page: the patch, its figures, plots and a player for
+    /// each render (works offline from a file:// URL).
+    Report {
+        /// The patch file.
+        patch: PathBuf,
+        #[command(flatten)]
+        out: RenderFlags,
+        /// Override a value by dotted path (repeatable).
+        #[arg(long = "set", value_name = "PATH=VALUE")]
+        sets: Vec<String>,
+    },
     /// Analytic noise budget at each output: every resistor's thermal noise and every
     /// op-amp's voltage and current noise, through the network's noise gains.
     Noise {
@@ -148,6 +160,9 @@ struct RenderFlags {
     /// Overwrite files in the folder that railsong did not write.
     #[arg(long)]
     force: bool,
+    /// Also write the plots (SVG: spectrum, waveform, transfer curve, THD against level).
+    #[arg(long)]
+    plots: bool,
 }
 
 /// Parse the command line and run the command.
@@ -182,6 +197,7 @@ pub fn run() -> Result<(), Failure> {
             render_to(&p, &stem, &out).map(|_| ())
         }
         Command::Demo { out } => cmd_demo(&out),
+        Command::Report { patch, out, sets } => cmd_report(&patch, &out, &sets),
         Command::Noise {
             patch,
             output,
@@ -534,7 +550,70 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
     folder
         .write_text("figures.json", &measure::to_json(&m))
         .map_err(signal_error)?;
+    if flags.plots {
+        let figs = report::plots(patch, &run, &m, None).map_err(render_error)?;
+        for f in &figs {
+            folder
+                .write_text(&f.file_name(), &f.svg)
+                .map_err(signal_error)?;
+        }
+        println!("  {} plot(s) written", figs.len());
+    }
     Ok(dir)
+}
+
+fn cmd_report(path: &Path, flags: &RenderFlags, sets: &[String]) -> Result<(), Failure> {
+    let patch = load(path, sets)?;
+    let text = std::fs::read_to_string(path)
+        .map_err(|e| Failure::bad_input(format!("{}: {e}", path.display())))?;
+    let stem = path
+        .file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "patch".into());
+    let dir = flags
+        .out
+        .clone()
+        .unwrap_or_else(|| Path::new("renders").join(safe_stem(&stem)));
+    let mut folder = OutputDir::open(&dir, flags.force).map_err(signal_error)?;
+    folder.check_writable("report.html").map_err(signal_error)?;
+    let run = run_patch(&patch, true, true)?;
+    let m = measure::measure(&patch, &run, None, &Settings::default(), None, None);
+    let figs = report::plots(&patch, &run, &m, None).map_err(render_error)?;
+    let players: Vec<report::Player> = run
+        .outputs
+        .iter()
+        .map(|o| {
+            let f = &m.outputs[&o.name].figures;
+            report::Player {
+                label: o.name.clone(),
+                note: format!(
+                    "peak {}, rms {}",
+                    f.peak_v.map_or("-".into(), |v| fmt_eng(v, "V")),
+                    f.rms_v.map_or("-".into(), |v| fmt_eng(v, "V"))
+                ),
+                samples: &o.samples,
+            }
+        })
+        .collect();
+    let html = report::page(&patch, &text, &m, &figs, &players, &[]);
+    folder
+        .write_text("report.html", &html)
+        .map_err(signal_error)?;
+    if flags.plots {
+        for f in &figs {
+            folder
+                .write_text(&f.file_name(), &f.svg)
+                .map_err(signal_error)?;
+        }
+    }
+    println!(
+        "{}: report with {} plot(s) and {} player(s) -> {}",
+        patch.title,
+        figs.len(),
+        players.len(),
+        dir.join("report.html").display()
+    );
+    Ok(())
 }
 
 fn db_or_dash(v: Option<f64>, what: &str) -> String {

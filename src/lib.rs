@@ -20,5 +20,6 @@ pub mod parts;
 pub mod patch;
 pub mod plot;
 pub mod render;
+pub mod report;
 pub mod signal;
 pub mod units;

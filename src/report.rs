@@ -1,0 +1,628 @@
+//! Pictures of a render and the self-contained listening page.
+//!
+//! [`plots`] draws, per output: its spectrum (harmonics marked when the output carries a test
+//! tone), a waveform window against the rails, the swing limits and the input range with the
+//! event spans shaded, the transfer curve from a slow ramp with the linear-gain line, and THD
+//! against input level when the output is fed by one periodic source. [`page`] puts the patch,
+//! its figures, the plots (inline SVG) and an audio player per render (16-bit WAV as a
+//! `data:` URI) into one HTML file that works offline from a `file://` URL: no network
+//! fetches, no framework, one small inline script that marks which players loaded.
+//!
+//! Event spans in the waveform plot are *estimated* from node voltages at the base rate
+//! (output within 1 % of a swing limit; slope above 90 % of the slew rate; V+ outside the
+//! input range; reversed = outside the range on a reversing part); the durations in the
+//! figures come from the engine's per-step flags.
+
+use std::fmt::Write as _;
+
+use crate::analysis::{self, Settings, Spectrum, TestSignal, Window};
+use crate::engine::Run;
+use crate::measure::{self, Measurement};
+use crate::model::{Node, Output, Patch, StageKind, Wave};
+use crate::plot::{
+    self, AxisSpec, Crossing, DbScale, EventKind, EventSpan, HarmonicMark, SpectrumPlot,
+    SweepPlot, SweepSeries, Threshold, Trace, TransferPlot, WaveformPlot,
+};
+use crate::render::{self, RenderError, RenderOptions};
+
+/// One drawn plot.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Figure {
+    /// Output it belongs to.
+    pub output: String,
+    /// Kind: `spectrum`, `waveform`, `transfer` or `thd-vs-level`.
+    pub kind: &'static str,
+    /// The SVG document.
+    pub svg: String,
+}
+
+impl Figure {
+    /// File name for the figure (`NAME-KIND.svg`).
+    pub fn file_name(&self) -> String {
+        format!("{}-{}.svg", self.output, self.kind)
+    }
+}
+
+const PROBE: &str = "probe:";
+
+/// The patch with an extra open (unloaded) output on every source and stage, named
+/// `probe:NAME`, so node voltages can be read back without changing the circuit.
+fn with_probes(patch: &Patch) -> Patch {
+    let mut p = patch.clone();
+    let nodes: Vec<(String, Node)> = (0..patch.sources.len())
+        .map(|i| (patch.sources[i].name.clone(), Node::Source(i)))
+        .chain((0..patch.stages.len()).map(|i| (patch.stages[i].name.clone(), Node::Stage(i))))
+        .collect();
+    for (name, node) in nodes {
+        p.outputs.push(Output {
+            name: format!("{PROBE}{name}"),
+            from: node,
+            series: 0.0,
+            load: None,
+            file: None,
+        });
+    }
+    p
+}
+
+fn signal<'a>(run: &'a Run, name: &str) -> Option<&'a [f64]> {
+    run.outputs
+        .iter()
+        .find(|o| o.name == name)
+        .map(|o| o.samples.as_slice())
+}
+
+fn node_signal<'a>(patch: &Patch, run: &'a Run, node: Node) -> Option<&'a [f64]> {
+    signal(run, &format!("{PROBE}{}", patch.node_name(node)))
+}
+
+/// Coalesce a per-sample condition into spans (seconds).
+fn spans_of(kind: EventKind, flags: impl Iterator<Item = bool>, rate: f64) -> Vec<EventSpan> {
+    let mut out = Vec::new();
+    let mut start = None;
+    let mut n = 0;
+    for (i, f) in flags.enumerate() {
+        n = i + 1;
+        match (f, start) {
+            (true, None) => start = Some(i),
+            (false, Some(s)) => {
+                out.push(EventSpan {
+                    kind,
+                    start_s: s as f64 / rate,
+                    end_s: i as f64 / rate,
+                });
+                start = None;
+            }
+            _ => {}
+        }
+    }
+    if let Some(s) = start {
+        out.push(EventSpan {
+            kind,
+            start_s: s as f64 / rate,
+            end_s: n as f64 / rate,
+        });
+    }
+    out
+}
+
+/// The input common-mode window of the stage driving `node`, if it has one.
+fn cm_window(patch: &Patch, node: Node) -> Option<(f64, f64, bool, Node)> {
+    let Node::Stage(i) = node else { return None };
+    let st = &patch.stages[i];
+    let part = st.part.as_ref()?;
+    let plus = match &st.kind {
+        StageKind::NonInverting { from, .. } | StageKind::Follower { from } => *from,
+        _ => return None,
+    };
+    let lo = part.cm_low.map_or(f64::NEG_INFINITY, |d| patch.rails.neg + d);
+    let hi = part.cm_high.map_or(f64::INFINITY, |d| patch.rails.pos - d);
+    Some((lo, hi, part.reversal, plus))
+}
+
+/// Estimated event spans of the stage driving an output.
+fn event_spans(patch: &Patch, probes: &Run, node: Node) -> Vec<EventSpan> {
+    let Node::Stage(i) = node else {
+        return Vec::new();
+    };
+    let Some(part) = patch.stages[i].part.as_ref() else {
+        return Vec::new();
+    };
+    let Some(v) = node_signal(patch, probes, node) else {
+        return Vec::new();
+    };
+    let rate = probes.rate;
+    let (lo, hi) = crate::check::swing_limits(part, patch.rails.pos, patch.rails.neg);
+    let mut spans = spans_of(
+        EventKind::Clipping,
+        v.iter()
+            .map(|&x| x >= hi - 0.01 * hi.abs() || x <= lo + 0.01 * lo.abs()),
+        rate,
+    );
+    let sr = part.slew;
+    spans.extend(spans_of(
+        EventKind::Slewing,
+        (0..v.len()).map(|n| n > 0 && (v[n] - v[n - 1]).abs() * rate >= 0.9 * sr),
+        rate,
+    ));
+    if let Some((clo, chi, reversal, plus)) = cm_window(patch, node) {
+        if let Some(x) = node_signal(patch, probes, plus) {
+            let out = |y: f64| y < clo || y > chi;
+            spans.extend(spans_of(
+                EventKind::OutOfInputRange,
+                x.iter().map(|&y| out(y)),
+                rate,
+            ));
+            if reversal {
+                spans.extend(spans_of(EventKind::Reversed, x.iter().map(|&y| out(y)), rate));
+            }
+        }
+    }
+    spans
+}
+
+/// A window of about 20 ms around the first event, or around the largest peak.
+fn waveform_window(v: &[f64], rate: f64, spans: &[EventSpan]) -> (f64, f64) {
+    let total = v.len() as f64 / rate;
+    let width = 0.02f64.min(total);
+    let centre = match spans.iter().map(|s| s.start_s).reduce(f64::min) {
+        Some(t) => t + 0.004,
+        None => {
+            let (k, _) = v
+                .iter()
+                .enumerate()
+                .fold((0, 0.0), |(bk, bv), (k, x)| {
+                    if x.abs() > bv {
+                        (k, x.abs())
+                    } else {
+                        (bk, bv)
+                    }
+                });
+            k as f64 / rate
+        }
+    };
+    let t0 = (centre - width / 2.0).clamp(0.0, (total - width).max(0.0));
+    (t0, t0 + width)
+}
+
+fn first_source(patch: &Patch, node: Node) -> Option<usize> {
+    measure::upstream_sources(patch, node)
+        .into_iter()
+        .find(|&s| !matches!(patch.sources[s].wave, Wave::Dc { .. }))
+}
+
+/// Every plot of every output (`only`: one output by name).
+pub fn plots(
+    patch: &Patch,
+    run: &Run,
+    m: &Measurement,
+    only: Option<&str>,
+) -> Result<Vec<Figure>, RenderError> {
+    let probe_patch = with_probes(patch);
+    let probes = render::render(&probe_patch, &RenderOptions::default(), &mut |_| {})?;
+    let mut figs = Vec::new();
+    for (oi, o) in patch.outputs.iter().enumerate() {
+        if only.is_some_and(|n| n != o.name) {
+            continue;
+        }
+        let Some(v) = signal(run, &o.name) else { continue };
+        let swing = measure::swing_at(patch, oi);
+        let fig = m.outputs.get(&o.name).map(|r| &r.figures);
+        let test = measure::test_signal(patch, o.from);
+        let mut push = |kind: &'static str, svg: Result<String, plot::PlotError>| {
+            if let Ok(svg) = svg {
+                figs.push(Figure {
+                    output: o.name.clone(),
+                    kind,
+                    svg,
+                });
+            }
+        };
+
+        // Spectrum.
+        let settings = Settings::default();
+        let (spec, marks, caption) = match test {
+            TestSignal::Tone(f) => match analysis::thd(v, run.rate, Some(f), &settings) {
+                Ok(t) => {
+                    let cap = plot::settings_caption(&t);
+                    let tail = &v[v.len() - t.fft_len..];
+                    (
+                        Spectrum::compute(tail, run.rate, t.window).ok(),
+                        HarmonicMark::from_levels(&t.harmonics),
+                        cap,
+                    )
+                }
+                Err(_) => (None, Vec::new(), String::new()),
+            },
+            _ => {
+                let n = v.len().min(1 << 16);
+                (
+                    Spectrum::compute(&v[v.len() - n..], run.rate, Window::BlackmanHarris7).ok(),
+                    Vec::new(),
+                    format!("window blackman-harris-7, FFT {n}, last {n} samples"),
+                )
+            }
+        };
+        if let Some(spec) = spec {
+            if let Ok((f, l)) = plot::spectrum_db(&spec, DbScale::Dbv) {
+                let title = format!("{}: spectrum", o.name);
+                push(
+                    "spectrum",
+                    plot::spectrum_svg(&SpectrumPlot {
+                        title: &title,
+                        caption: &caption,
+                        freq_hz: &f,
+                        level_db: &l,
+                        unit: "dBV",
+                        band_hz: None,
+                        db_range: None,
+                        harmonics: &marks,
+                        hide_below_dbc: Some(-160.0),
+                        noise_floor_db: None,
+                    }),
+                );
+            }
+        }
+
+        // Waveform.
+        let spans = event_spans(patch, &probes, o.from);
+        let win = waveform_window(v, run.rate, &spans);
+        let input = first_source(patch, o.from).and_then(|s| {
+            node_signal(patch, &probes, Node::Source(s)).map(|x| Trace {
+                samples: x,
+                rate: run.rate,
+                start_s: 0.0,
+            })
+        });
+        let cm = cm_window(patch, o.from)
+            .map(|(lo, hi, _, _)| (lo.max(patch.rails.neg), hi.min(patch.rails.pos)));
+        let title = format!("{}: waveform (from {})", o.name, patch.node_name(o.from));
+        let caption = "event spans estimated from node voltages; durations in the figures come from the engine";
+        push(
+            "waveform",
+            plot::waveform_svg(&WaveformPlot {
+                title: &title,
+                caption,
+                output: Trace {
+                    samples: v,
+                    rate: run.rate,
+                    start_s: 0.0,
+                },
+                input,
+                window_s: Some(win),
+                rails: Some((patch.rails.neg, patch.rails.pos)),
+                swing: Some((swing.neg, swing.pos)),
+                common_mode: cm,
+                spans: &spans,
+            }),
+        );
+
+        // Transfer curve from a slow ramp through the first source, the others muted.
+        if let Some(s) = first_source(patch, o.from) {
+            if let Ok((x, y)) = transfer_run(patch, s, oi) {
+                let (gain, offset) = small_signal_fit(&x, &y, patch.rails.pos.abs().max(patch.rails.neg.abs()));
+                let title = format!("{}: transfer curve from {}", o.name, patch.sources[s].name);
+                let caption = format!(
+                    "slow ramp rail to rail on {}, other sources muted; dashed: linear gain {gain:.3} fitted near 0 V",
+                    patch.sources[s].name
+                );
+                push(
+                    "transfer",
+                    plot::transfer_svg(&TransferPlot {
+                        title: &title,
+                        caption: &caption,
+                        input_v: &x,
+                        output_v: &y,
+                        gain,
+                        offset_v: offset,
+                        rails: Some((patch.rails.neg, patch.rails.pos)),
+                    }),
+                );
+            }
+        }
+
+        // THD against level for a single-tone output.
+        if let (TestSignal::Tone(_), Some(s)) = (test, first_source(patch, o.from)) {
+            if let Some(pts) = level_sweep(patch, s, oi) {
+                let thd_pts: Vec<(f64, f64)> = pts.iter().map(|(l, t)| (*l, t / 100.0)).collect();
+                let at = analysis::sweep::level_at_thd(&thd_pts, 0.01);
+                let crossings: Vec<Crossing> = at
+                    .map(|l| Crossing {
+                        x: l,
+                        y: 1.0,
+                        label: format!("1 % THD at {l:.2} Vpk"),
+                    })
+                    .into_iter()
+                    .collect();
+                let title = format!("{}: THD against level of {}", o.name, patch.sources[s].name);
+                let caption = "harmonics 2-10, 0.5 s per point, coherent capture where possible";
+                let series = [SweepSeries {
+                    name: "THD",
+                    points: &pts,
+                }];
+                push(
+                    "thd-vs-level",
+                    plot::sweep_svg(&SweepPlot {
+                        title: &title,
+                        caption,
+                        x: AxisSpec::log("Input level", "Vpk"),
+                        y: AxisSpec::log("THD", "%"),
+                        series: &series,
+                        crossings: &crossings,
+                        threshold: Some(Threshold {
+                            y: 1.0,
+                            label: "1 % THD".into(),
+                        }),
+                    }),
+                );
+            }
+        }
+        let _ = fig;
+    }
+    Ok(figs)
+}
+
+/// Run the patch with source `s` replaced by a rail-to-rail ramp over 1 s and every other
+/// source muted; returns (input, output) of output `oi`.
+fn transfer_run(patch: &Patch, s: usize, oi: usize) -> Result<(Vec<f64>, Vec<f64>), RenderError> {
+    let mut p = render::muted(patch);
+    let span = patch.rails.pos.abs().max(patch.rails.neg.abs());
+    p.sources[s].wave = Wave::Ramp {
+        from: -span,
+        to: span,
+        duration: 1.0,
+    };
+    p.sources[s].offset = 0.0;
+    p.sources[s].start = 0.0;
+    p.sources[s].stop = None;
+    p.length = 1.0;
+    let run = render::render(&p, &RenderOptions::default(), &mut |_| {})?;
+    let y = run.outputs[oi].samples.clone();
+    let n = y.len();
+    let x = (0..n)
+        .map(|k| -span + 2.0 * span * (k as f64 / p.rate).min(1.0))
+        .collect();
+    Ok((x, y))
+}
+
+/// Least-squares line through the points with |x| below 10 % of `span`.
+fn small_signal_fit(x: &[f64], y: &[f64], span: f64) -> (f64, f64) {
+    let (mut n, mut sx, mut sy, mut sxx, mut sxy) = (0.0, 0.0, 0.0, 0.0, 0.0);
+    for (&a, &b) in x.iter().zip(y) {
+        if a.abs() < 0.1 * span {
+            n += 1.0;
+            sx += a;
+            sy += b;
+            sxx += a * a;
+            sxy += a * b;
+        }
+    }
+    let d = n * sxx - sx * sx;
+    if n < 2.0 || d == 0.0 {
+        return (1.0, 0.0);
+    }
+    let g = (n * sxy - sx * sy) / d;
+    (g, (sy - g * sx) / n)
+}
+
+/// THD (%) of output `oi` at nine levels of source `s`, from a tenth to twice its level.
+fn level_sweep(patch: &Patch, s: usize, oi: usize) -> Option<Vec<(f64, f64)>> {
+    let amp = match &patch.sources[s].wave {
+        Wave::Sine { amp, .. } => *amp,
+        _ => return None,
+    };
+    let mut pts = Vec::new();
+    for k in 0..9 {
+        let a = amp * 0.1 * 20f64.powf(k as f64 / 8.0);
+        let mut p = patch.clone();
+        if let Wave::Sine { amp, .. } = &mut p.sources[s].wave {
+            *amp = a;
+        }
+        p.length = p.length.min(0.5);
+        let run = render::render(&p, &RenderOptions::default(), &mut |_| {}).ok()?;
+        let m = measure::measure(&p, &run, None, &Settings::default(), None, None);
+        if let Some(t) = m.outputs.get(&p.outputs[oi].name).and_then(|r| r.figures.thd_percent) {
+            if t > 0.0 {
+                pts.push((a, t));
+            }
+        }
+    }
+    (pts.len() >= 2).then_some(pts)
+}
+
+/// XML/HTML text escape.
+pub fn escape(s: &str) -> String {
+    s.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
+        .replace('"', "&quot;")
+}
+
+/// Standard base64 (RFC 4648) of `bytes`.
+pub fn base64(bytes: &[u8]) -> String {
+    const T: &[u8; 64] = b"ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789+/";
+    let mut out = String::with_capacity(bytes.len().div_ceil(3) * 4);
+    for c in bytes.chunks(3) {
+        let b = [c[0], *c.get(1).unwrap_or(&0), *c.get(2).unwrap_or(&0)];
+        let n = (u32::from(b[0]) << 16) | (u32::from(b[1]) << 8) | u32::from(b[2]);
+        for (i, shift) in [18, 12, 6, 0].into_iter().enumerate() {
+            if i <= c.len() {
+                out.push(T[((n >> shift) & 63) as usize] as char);
+            } else {
+                out.push('=');
+            }
+        }
+    }
+    out
+}
+
+/// A 16-bit WAV file of `samples` (volts) at the patch calibration, as bytes.
+pub fn wav_bytes(samples: &[f64], rate: f64, full_scale: f64, seed: u64) -> Vec<u8> {
+    use crate::signal::{Depth, WavSpec, WavWriter};
+    let spec = WavSpec {
+        rate: rate.round() as u32,
+        channels: 1,
+        depth: Depth::Pcm16,
+        full_scale,
+        dither_seed: seed,
+    };
+    let cur = std::io::Cursor::new(Vec::new());
+    let Ok(mut w) = WavWriter::new(cur, spec) else {
+        return Vec::new();
+    };
+    if w.write(samples).is_err() {
+        return Vec::new();
+    }
+    w.finish().map(|(c, _)| c.into_inner()).unwrap_or_default()
+}
+
+/// A render on the page: a label and its samples.
+pub struct Player<'a> {
+    /// Heading of the player.
+    pub label: String,
+    /// One line under it.
+    pub note: String,
+    /// Samples, volts.
+    pub samples: &'a [f64],
+}
+
+/// The comment lines at the top of a patch file (its title and job), without the `#`.
+pub fn header_comment(text: &str) -> Vec<String> {
+    text.lines()
+        .take_while(|l| l.trim_start().starts_with('#') || l.trim().is_empty())
+        .filter_map(|l| l.trim_start().strip_prefix('#'))
+        .map(|l| l.trim().to_string())
+        .collect()
+}
+
+fn fmt_opt(v: Option<f64>, digits: usize) -> String {
+    v.map_or("&ndash;".into(), |x| format!("{x:.digits$}"))
+}
+
+/// The listening page. `sections` are extra HTML blocks (e.g. an A/B comparison).
+pub fn page(
+    patch: &Patch,
+    patch_text: &str,
+    m: &Measurement,
+    figures: &[Figure],
+    players: &[Player],
+    sections: &[String],
+) -> String {
+    let mut h = String::new();
+    let title = escape(&patch.title);
+    let _ = write!(
+        h,
+        "<!doctype html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">\
+<title>{title}</title>\n<style>\
+body{{font-family:sans-serif;color:#222;max-width:1100px;margin:2em auto;padding:0 1em;line-height:1.4}}\
+h1{{font-weight:600;border-bottom:2px solid #3d6a8a}}h2{{color:#3d6a8a;margin-top:2em}}\
+table{{border-collapse:collapse;font-size:90%}}td,th{{border:1px solid #ccc;padding:3px 8px;text-align:right}}\
+th{{background:#eef2f5}}td:first-child,th:first-child{{text-align:left}}\
+.job{{color:#555;white-space:pre-line}}pre{{background:#f6f6f4;padding:1em;overflow:auto;font-size:85%}}\
+.players{{display:flex;flex-wrap:wrap;gap:1em}}.player{{border:1px solid #ddd;padding:.6em;border-radius:4px}}\
+figure{{margin:1em 0}}figure svg{{max-width:100%;height:auto}}.caution{{color:#8a4b2a}}\
+</style></head>\n<body data-players=\"{}\">\n<h1>{title}</h1>\n",
+        players.len()
+    );
+    let job = header_comment(patch_text);
+    if !job.is_empty() {
+        let _ = writeln!(h, "<p class=\"job\">{}</p>", escape(&job.join("\n")));
+    }
+    let _ = writeln!(
+        h,
+        "<p class=\"caution\">Start playback quietly: clipped and reversed renders are harsh.</p>"
+    );
+    // Players.
+    let _ = writeln!(h, "<h2>Listen</h2>\n<div class=\"players\">");
+    for (i, p) in players.iter().enumerate() {
+        let wav = wav_bytes(p.samples, m.settings.rate_hz, m.settings.full_scale_v, i as u64 + 1);
+        let _ = writeln!(
+            h,
+            "<div class=\"player\"><div><b>{}</b></div><div>{}</div>\
+<audio controls preload=\"auto\" data-name=\"{}\" src=\"data:audio/wav;base64,{}\"></audio></div>",
+            escape(&p.label),
+            escape(&p.note),
+            escape(&p.label),
+            base64(&wav)
+        );
+    }
+    let _ = writeln!(h, "</div>");
+    for s in sections {
+        h.push_str(s);
+        h.push('\n');
+    }
+    // Figures table.
+    let _ = writeln!(
+        h,
+        "<h2>Figures</h2>\n<table id=\"figures\"><tr><th>output</th><th>peak V</th><th>rms V</th>\
+<th>headroom + dB</th><th>headroom &minus; dB</th><th>THD %</th><th>THD+N dB</th><th>SINAD dB</th><th>events</th></tr>"
+    );
+    for (name, r) in &m.outputs {
+        let f = &r.figures;
+        let ev: Vec<String> = r
+            .events
+            .iter()
+            .map(|(st, e)| {
+                format!(
+                    "{st}: clip {:.3} s, slew {:.3} s, out of range {:.3} s, reversed {:.3} s",
+                    e.clip_s, e.slew_s, e.cm_out_s, e.reversed_s
+                )
+            })
+            .collect();
+        let _ = writeln!(
+            h,
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td style=\"text-align:left\">{}</td></tr>",
+            escape(name),
+            fmt_opt(f.peak_v, 3),
+            fmt_opt(f.rms_v, 3),
+            fmt_opt(f.headroom_pos_db, 1),
+            fmt_opt(f.headroom_neg_db, 1),
+            fmt_opt(f.thd_percent, 4),
+            fmt_opt(f.thdn_db, 1),
+            fmt_opt(f.sinad_db, 1),
+            escape(&ev.join("; "))
+        );
+    }
+    let s = &m.settings;
+    let _ = writeln!(
+        h,
+        "</table>\n<p>{} Hz &times;{} oversampling, {:.2} s rendered, calibration {} V = 0 dBFS; \
+THD over harmonics 2&ndash;10; THD+N band 20 Hz &ndash; 20 kHz (AES17 practice); \
+0 dBu = 0.7746 V rms, 0 dBV = 1 V rms.</p>",
+        s.rate_hz, s.oversample, s.length_s, s.full_scale_v
+    );
+    // Plots.
+    let _ = writeln!(h, "<h2>Plots</h2>");
+    for f in figures {
+        let _ = writeln!(
+            h,
+            "<figure class=\"plot\" data-output=\"{}\" data-kind=\"{}\">{}</figure>",
+            escape(&f.output),
+            f.kind,
+            strip_xml_prolog(&f.svg)
+        );
+    }
+    // The patch itself.
+    let _ = writeln!(
+        h,
+        "<h2>The patch</h2>\n<pre id=\"patch\">{}</pre>",
+        escape(patch_text)
+    );
+    // Mark players whose source loaded (for checking the page in a browser).
+    h.push_str(
+        "<script>\n(function(){var a=document.querySelectorAll('audio');var ok=0,bad=0;\
+function done(){document.body.setAttribute('data-audio-loaded',String(ok));\
+document.body.setAttribute('data-audio-failed',String(bad));}\
+a.forEach(function(x){x.addEventListener('loadedmetadata',function(){ok++;done();});\
+x.addEventListener('error',function(){bad++;done();});});done();})();\n</script>\n",
+    );
+    h.push_str("</body></html>\n");
+    h
+}
+
+fn strip_xml_prolog(svg: &str) -> &str {
+    match svg.find("<svg") {
+        Some(i) => &svg[i..],
+        None => svg,
+    }
+}
