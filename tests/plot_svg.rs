@@ -964,3 +964,23 @@ mod arbitrary_input {
         }
     }
 }
+
+#[test]
+fn spectrum_db_scales() {
+    // 1 V peak sine on a bin centre (coherent, rectangular window): 1/sqrt 2 V rms, so
+    // 20 log10(1/sqrt 2) = -3.01 dBV (0 dBV = 1 V rms); re a 2 V peak full scale,
+    // 20 log10(1/2) = -6.02 dBFS (a full-scale sine is 0 dBFS) [D].
+    let rate = 48_000.0;
+    let x = sine(rate, 4800, 1000.0, 1.0);
+    let spec = Spectrum::compute(&x, rate, Window::Rectangular).unwrap();
+    let k = 100; // 1000 Hz / (48000 / 4800) Hz per bin
+    let (f, dbv) = spectrum_db(&spec, DbScale::Dbv).unwrap();
+    assert_eq!(f[k], 1000.0);
+    assert!((dbv[k] - 20.0 * (1.0 / 2f64.sqrt()).log10()).abs() < 1e-9);
+    let (_, dbfs) = spectrum_db(&spec, DbScale::Dbfs { full_scale_v: 2.0 }).unwrap();
+    assert!((dbfs[k] - 20.0 * 0.5f64.log10()).abs() < 1e-9);
+    // Empty bins are clamped to the floor, never -inf.
+    assert!(dbv.iter().all(|d| d.is_finite() && *d >= FLOOR_DB));
+    assert!(spectrum_db(&spec, DbScale::Dbfs { full_scale_v: 0.0 }).is_err());
+    assert_eq!(DbScale::Dbv.unit(), "dBV");
+}

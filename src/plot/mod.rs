@@ -51,7 +51,12 @@
 //!   ticks). Log axes put ticks at 1, 2 and 5 times each decade when they span at most four
 //!   decades (20, 50, 100, 200 ... 20k), at each decade up to twelve decades, and every other
 //!   decade beyond. Frequency and parameter axes may print SI prefixes (`20k`, `4.7m`).
-//! - A title on top (bold), a caption line at the bottom (settings, source), both XML-escaped.
+//! - A title on top (bold), a caption line at the bottom (settings, source), both XML-escaped,
+//!   as is every other text and attribute taken from the caller. Labels drawn over data
+//!   (harmonics, levels, crossings) have a white halo; a legend, when there is one, is a row
+//!   above the top right of the plot area, clear of the data.
+//! - Spectrum harmonic labels are vertical (they stay readable when harmonics crowd together
+//!   at the top of a log axis); they read `H3 -9.5 dBc`.
 //! - Long series are decimated per pixel column: for each run of consecutive points falling
 //!   in the same 1 px column, the first, lowest, highest and last point are kept (in their
 //!   original order), so peaks and the envelope survive and a path has at most about four
@@ -82,8 +87,9 @@
 //!   data-count>` inside `<g class="bins" data-rule="freedman-diaconis|sqrt" data-width
 //!   data-count>`.
 //! - spectrum: `<g class="harmonic" data-order data-freq data-dbc>` with a `<circle>` on the
-//!   peak and a `<text>` `H3 -9.5 dBc`; `<line class="noise-floor" data-db
-//!   data-source="median|given">`.
+//!   peak (the highest bin within 3 bins of `data-freq`) and a `<text>` `H3 -9.5 dBc`;
+//!   `<g class="harmonics-hidden" data-count>` (how many were below `hide_below_dbc`);
+//!   `<line class="noise-floor" data-db data-source="median|given">`.
 //! - waveform: `<line class="level rail|swing|common-mode" data-level="pos|neg|low|high" data-v>`
 //!   with a `<text class="level-label">`; event spans `<rect class="span KIND" data-kind="KIND"
 //!   data-start-ms data-end-ms>`, `KIND` one of `clipping`, `slewing`, `out-of-input-range`,
@@ -91,8 +97,10 @@
 //! - transfer: `<line class="reference ideal" data-slope data-offset>` (the ideal line, clipped
 //!   to the plot area) and rail lines as for the waveform.
 //! - sweep: `<line class="threshold" data-y>`, `<g class="crossing" data-x data-y>` with a
-//!   `<circle>` and `<text>`.
-//! - histogram: `<line class="stat min|median|max" data-stat data-value>` with a label.
+//!   `<circle>` and `<text>`; series points `<circle class="point" data-x data-y>` (series of
+//!   at most 100 points).
+//! - histogram: `<line class="stat min|median|max" data-stat data-value>` with a label, and
+//!   `<text class="note">` naming the bin rule, bin count and width.
 
 mod axis;
 mod decimate;
@@ -104,9 +112,9 @@ mod transfer;
 mod waveform;
 
 pub use axis::{AxisSpec, Scale, TickFormat};
-pub use histogram::{histogram_bins, histogram_svg, BinRule, Bins, HistogramPlot};
+pub use histogram::{histogram_bins, histogram_svg, BinRule, Bins, HistogramPlot, MAX_BINS};
 pub use spectrum::{
-    settings_caption, spectrum_db, spectrum_svg, DbScale, HarmonicMark, SpectrumPlot,
+    settings_caption, spectrum_db, spectrum_svg, DbScale, HarmonicMark, SpectrumPlot, FLOOR_DB,
 };
 pub use sweep::{sweep_svg, Crossing, SweepPlot, SweepSeries, Threshold};
 pub use transfer::{transfer_svg, TransferPlot};

@@ -131,8 +131,10 @@ fn check_trace(what: &'static str, t: &Trace) -> Result<(), PlotError> {
 /// Indices of the samples of `t` inside `[t0, t1]` seconds.
 fn in_window(t: &Trace, t0: f64, t1: f64) -> std::ops::Range<usize> {
     let n = t.samples.len();
-    let a = ((t0 - t.start_s) * t.rate).ceil().max(0.0);
-    let b = ((t1 - t.start_s) * t.rate).floor() + 1.0;
+    // A sample within 1e-9 of a sample period of an edge counts as inside (rounding of
+    // times such as 1 ms * 48 kHz).
+    let a = ((t0 - t.start_s) * t.rate - 1e-9).ceil().max(0.0);
+    let b = ((t1 - t.start_s) * t.rate + 1e-9).floor() + 1.0;
     let a = (a as usize).min(n);
     let b = (b.max(0.0) as usize).min(n);
     a..b.max(a)
