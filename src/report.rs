@@ -20,8 +20,8 @@ use crate::engine::Run;
 use crate::measure::{self, Measurement};
 use crate::model::{Node, Output, Patch, StageKind, Wave};
 use crate::plot::{
-    self, AxisSpec, Crossing, DbScale, EventKind, EventSpan, HarmonicMark, SpectrumPlot,
-    SweepPlot, SweepSeries, Threshold, Trace, TransferPlot, WaveformPlot,
+    self, AxisSpec, Crossing, DbScale, EventKind, EventSpan, HarmonicMark, SpectrumPlot, SweepPlot,
+    SweepSeries, Threshold, Trace, TransferPlot, WaveformPlot,
 };
 use crate::render::{self, RenderError, RenderOptions};
 
@@ -115,7 +115,9 @@ fn cm_window(patch: &Patch, node: Node) -> Option<(f64, f64, bool, Node)> {
         StageKind::NonInverting { from, .. } | StageKind::Follower { from } => *from,
         _ => return None,
     };
-    let lo = part.cm_low.map_or(f64::NEG_INFINITY, |d| patch.rails.neg + d);
+    let lo = part
+        .cm_low
+        .map_or(f64::NEG_INFINITY, |d| patch.rails.neg + d);
     let hi = part.cm_high.map_or(f64::INFINITY, |d| patch.rails.pos - d);
     Some((lo, hi, part.reversal, plus))
 }
@@ -154,7 +156,11 @@ fn event_spans(patch: &Patch, probes: &Run, node: Node) -> Vec<EventSpan> {
                 rate,
             ));
             if reversal {
-                spans.extend(spans_of(EventKind::Reversed, x.iter().map(|&y| out(y)), rate));
+                spans.extend(spans_of(
+                    EventKind::Reversed,
+                    x.iter().map(|&y| out(y)),
+                    rate,
+                ));
             }
         }
     }
@@ -168,16 +174,13 @@ fn waveform_window(v: &[f64], rate: f64, spans: &[EventSpan]) -> (f64, f64) {
     let centre = match spans.iter().map(|s| s.start_s).reduce(f64::min) {
         Some(t) => t + 0.004,
         None => {
-            let (k, _) = v
-                .iter()
-                .enumerate()
-                .fold((0, 0.0), |(bk, bv), (k, x)| {
-                    if x.abs() > bv {
-                        (k, x.abs())
-                    } else {
-                        (bk, bv)
-                    }
-                });
+            let (k, _) = v.iter().enumerate().fold((0, 0.0), |(bk, bv), (k, x)| {
+                if x.abs() > bv {
+                    (k, x.abs())
+                } else {
+                    (bk, bv)
+                }
+            });
             k as f64 / rate
         }
     };
@@ -205,7 +208,9 @@ pub fn plots(
         if only.is_some_and(|n| n != o.name) {
             continue;
         }
-        let Some(v) = signal(run, &o.name) else { continue };
+        let Some(v) = signal(run, &o.name) else {
+            continue;
+        };
         let swing = measure::swing_at(patch, oi);
         let fig = m.outputs.get(&o.name).map(|r| &r.figures);
         let test = measure::test_signal(patch, o.from);
@@ -300,7 +305,8 @@ pub fn plots(
         // Transfer curve from a slow ramp through the first source, the others muted.
         if let Some(s) = first_source(patch, o.from) {
             if let Ok((x, y)) = transfer_run(patch, s, oi) {
-                let (gain, offset) = small_signal_fit(&x, &y, patch.rails.pos.abs().max(patch.rails.neg.abs()));
+                let (gain, offset) =
+                    small_signal_fit(&x, &y, patch.rails.pos.abs().max(patch.rails.neg.abs()));
                 let title = format!("{}: transfer curve from {}", o.name, patch.sources[s].name);
                 let caption = format!(
                     "slow ramp rail to rail on {}, other sources muted; dashed: linear gain {gain:.3} fitted near 0 V",
@@ -421,7 +427,11 @@ fn level_sweep(patch: &Patch, s: usize, oi: usize) -> Option<Vec<(f64, f64)>> {
         p.length = p.length.min(0.5);
         let run = render::render(&p, &RenderOptions::default(), &mut |_| {}).ok()?;
         let m = measure::measure(&p, &run, None, &Settings::default(), None, None);
-        if let Some(t) = m.outputs.get(&p.outputs[oi].name).and_then(|r| r.figures.thd_percent) {
+        if let Some(t) = m
+            .outputs
+            .get(&p.outputs[oi].name)
+            .and_then(|r| r.figures.thd_percent)
+        {
             if t > 0.0 {
                 pts.push((a, t));
             }
@@ -535,7 +545,12 @@ figure{{margin:1em 0}}figure svg{{max-width:100%;height:auto}}.caution{{color:#8
     // Players.
     let _ = writeln!(h, "<h2>Listen</h2>\n<div class=\"players\">");
     for (i, p) in players.iter().enumerate() {
-        let wav = wav_bytes(p.samples, m.settings.rate_hz, m.settings.full_scale_v, i as u64 + 1);
+        let wav = wav_bytes(
+            p.samples,
+            m.settings.rate_hz,
+            m.settings.full_scale_v,
+            i as u64 + 1,
+        );
         let _ = writeln!(
             h,
             "<div class=\"player\"><div><b>{}</b></div><div>{}</div>\
@@ -610,11 +625,12 @@ THD over harmonics 2&ndash;10; THD+N band 20 Hz &ndash; 20 kHz (AES17 practice);
     );
     // Mark players whose source loaded (for checking the page in a browser).
     h.push_str(
-        "<script>\n(function(){var a=document.querySelectorAll('audio');var ok=0,bad=0;\
-function done(){document.body.setAttribute('data-audio-loaded',String(ok));\
+        "<script>\n(function(){var a=document.querySelectorAll('audio');\
+function count(){var ok=0,bad=0;a.forEach(function(x){if(x.error){bad++;}else if(x.readyState>=1){ok++;}});\
+document.body.setAttribute('data-audio-loaded',String(ok));\
 document.body.setAttribute('data-audio-failed',String(bad));}\
-a.forEach(function(x){x.addEventListener('loadedmetadata',function(){ok++;done();});\
-x.addEventListener('error',function(){bad++;done();});});done();})();\n</script>\n",
+a.forEach(function(x){x.addEventListener('loadedmetadata',count);x.addEventListener('error',count);});\
+count();setInterval(count,200);})();\n</script>\n",
     );
     h.push_str("</body></html>\n");
     h
