@@ -104,6 +104,15 @@ enum Command {
         /// Weight THD+N and SNR: flat or a (IEC 61672-1 A-weighting).
         #[arg(long, default_value = "flat", value_parser = ["flat", "a"])]
         weighting: String,
+        /// Also write the plots (SVG) into --plots-dir.
+        #[arg(long)]
+        plots: bool,
+        /// Folder for --plots (default: renders/<patch name>/).
+        #[arg(long, value_name = "DIR")]
+        plots_dir: Option<PathBuf>,
+        /// Overwrite plot files railsong did not write.
+        #[arg(long)]
+        force: bool,
         /// Override a value by dotted path (repeatable).
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
@@ -213,12 +222,32 @@ pub fn run() -> Result<(), Failure> {
             steps,
             harmonics,
             weighting,
+            plots,
+            plots_dir,
+            force,
             sets,
         } => {
             let settings = analysis_settings(harmonics, &weighting)?;
+            let plots = plots.then(|| {
+                plots_dir.unwrap_or_else(|| {
+                    Path::new("renders").join(safe_stem(
+                        &patch
+                            .file_stem()
+                            .map(|s| s.to_string_lossy().into_owned())
+                            .unwrap_or_default(),
+                    ))
+                })
+            });
             match level_sweep {
                 Some(spec) => cmd_level_sweep(&patch, &sets, &spec, steps, &settings, json, csv),
-                None => cmd_measure(&patch, &sets, output.as_deref(), json, csv, &settings),
+                None => cmd_measure(
+                    &patch,
+                    &sets,
+                    output.as_deref(),
+                    (json, csv),
+                    &settings,
+                    plots.map(|d| (d, force)),
+                ),
             }
         }
     }
@@ -669,11 +698,15 @@ fn cmd_measure(
     path: &Path,
     sets: &[String],
     output: Option<&str>,
-    json: bool,
-    csv: bool,
+    (json, csv): (bool, bool),
     settings: &Settings,
+    plots: Option<(PathBuf, bool)>,
 ) -> Result<(), Failure> {
     let patch = load(path, sets)?;
+    let mut folder = match &plots {
+        Some((dir, force)) => Some(OutputDir::open(dir, *force).map_err(signal_error)?),
+        None => None,
+    };
     if let Some(name) = output {
         if !patch.outputs.iter().any(|o| o.name == name) {
             let names: Vec<&str> = patch.outputs.iter().map(|o| o.name.as_str()).collect();
@@ -691,6 +724,26 @@ fn cmd_measure(
         None
     };
     let m = measure::measure(&patch, &run, idle.as_ref(), settings, output, None);
+    if let Some(folder) = folder.as_mut() {
+        let figs = report::plots(&patch, &run, &m, output).map_err(render_error)?;
+        for f in &figs {
+            folder
+                .check_writable(&f.file_name())
+                .map_err(signal_error)?;
+        }
+        for f in &figs {
+            folder
+                .write_text(&f.file_name(), &f.svg)
+                .map_err(signal_error)?;
+        }
+        if !json && !csv {
+            println!(
+                "{} plot(s) written to {}",
+                figs.len(),
+                folder.path().display()
+            );
+        }
+    }
     if json {
         println!("{}", measure::to_json(&m));
     } else if csv {
