@@ -113,6 +113,9 @@ enum Command {
         /// Overwrite plot files railsong did not write.
         #[arg(long)]
         force: bool,
+        /// Allow patches longer than 10 minutes.
+        #[arg(long)]
+        long: bool,
         /// Override a value by dotted path (repeatable).
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
@@ -172,6 +175,9 @@ struct RenderFlags {
     /// Also write the plots (SVG: spectrum, waveform, transfer curve, THD against level).
     #[arg(long)]
     plots: bool,
+    /// Allow renders longer than 10 minutes.
+    #[arg(long)]
+    long: bool,
 }
 
 /// Parse the command line and run the command.
@@ -225,6 +231,7 @@ pub fn run() -> Result<(), Failure> {
             plots,
             plots_dir,
             force,
+            long,
             sets,
         } => {
             let settings = analysis_settings(harmonics, &weighting)?;
@@ -244,7 +251,7 @@ pub fn run() -> Result<(), Failure> {
                     &patch,
                     &sets,
                     output.as_deref(),
-                    (json, csv),
+                    (json, csv, long),
                     &settings,
                     plots.map(|d| (d, force)),
                 ),
@@ -400,8 +407,12 @@ fn failure_io(e: impl std::fmt::Display) -> Failure {
 }
 
 fn render_error(e: RenderError) -> Failure {
-    // Every render error comes from the patch or an input file: bad input.
-    Failure::bad_input(e)
+    match e {
+        // Writing failed (disk full, permissions): not the user's input.
+        RenderError::Signal(s) => signal_error(s),
+        // The patch or an input file: bad input.
+        other => Failure::bad_input(other),
+    }
 }
 
 fn signal_error(e: SignalError) -> Failure {
@@ -513,13 +524,63 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
     for n in names.iter().map(String::as_str).chain(["figures.json"]) {
         folder.check_writable(n).map_err(signal_error)?;
     }
-    let run = run_patch(patch, true, true)?;
+    check_length(patch, flags.long)?;
+    // Listening gains need each output's RMS and peak first: one extra pass without files.
+    let gains: Vec<f64> = match flags.listen {
+        Some(target) => {
+            let first = stream_patch(patch, false, true, &mut |_, _| Ok(()))?;
+            first
+                .levels
+                .iter()
+                .map(|l| {
+                    l.map_or(1.0, |l| {
+                        signal::listen_gain_from(l.rms_v, l.peak_v, target, patch.full_scale)
+                    })
+                })
+                .collect()
+        }
+        None => vec![1.0; names.len()],
+    };
+    let mut files = Vec::new();
+    for (o, name) in patch.outputs.iter().zip(&names) {
+        let spec = WavSpec {
+            rate: patch.rate.round() as u32,
+            channels: 1,
+            depth,
+            full_scale: patch.full_scale,
+            dither_seed: signal::source_seed(patch.seed, &o.name),
+        };
+        files.push(folder.create(name, spec).map_err(signal_error)?);
+    }
+    let mut scratch: Vec<f64> = Vec::new();
+    let streamed = stream_patch(patch, true, true, &mut |i, x| {
+        if gains[i] == 1.0 {
+            files[i].write(x)
+        } else {
+            scratch.clear();
+            scratch.extend(x.iter().map(|v| v * gains[i]));
+            files[i].write(&scratch)
+        }
+    })?;
+    let mut stats = Vec::new();
+    for f in files {
+        stats.push(f.finish().map_err(signal_error)?);
+    }
     let idle = if patch.noise {
-        Some(run_patch(&render::muted(patch), false, false)?)
+        Some(stream_patch(&render::muted(patch), false, false, &mut |_, _| Ok(()))?)
     } else {
         None
     };
-    let m = measure::measure(patch, &run, idle.as_ref(), &Settings::default(), None, None);
+    let run = &streamed.run;
+    let mut m = measure::measure(
+        patch,
+        run,
+        idle.as_ref().map(|s| &s.run),
+        &Settings::default(),
+        None,
+        None,
+    );
+    measure::apply_full_levels(&mut m, patch, &streamed.levels);
 
     println!("{} -> {}", patch.title, dir.display());
     println!(
@@ -531,28 +592,12 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
             ""
         }
     );
-    for (o, name) in run.outputs.iter().zip(&names) {
-        let spec = WavSpec {
-            rate: patch.rate.round() as u32,
-            channels: 1,
-            depth,
-            full_scale: patch.full_scale,
-            dither_seed: signal::source_seed(patch.seed, &o.name),
-        };
-        let (gain, note) = match flags.listen {
-            Some(target) => {
-                let g = signal::listen_gain(&o.samples, target, patch.full_scale);
-                (g, format!(", listening gain {:+.1} dB", 20.0 * g.log10()))
-            }
-            None => (1.0, String::new()),
-        };
-        let stats = if gain == 1.0 {
-            folder.write(name, spec, &o.samples)
+    for (k, (o, name)) in patch.outputs.iter().zip(&names).enumerate() {
+        let note = if flags.listen.is_some() {
+            format!(", listening gain {:+.1} dB", 20.0 * gains[k].log10())
         } else {
-            let scaled: Vec<f64> = o.samples.iter().map(|x| x * gain).collect();
-            folder.write(name, spec, &scaled)
-        }
-        .map_err(signal_error)?;
+            String::new()
+        };
         let f = &m.outputs[&o.name].figures;
         println!(
             "  {}: peak {}  rms {}  headroom {} / {}{}{}",
@@ -562,8 +607,8 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
             db_or_dash(f.headroom_pos_db, "to +swing"),
             db_or_dash(f.headroom_neg_db, "to -swing"),
             note,
-            if stats.clipped > 0 {
-                format!(", {} samples clipped in the file", stats.clipped)
+            if stats[k].clipped > 0 {
+                format!(", {} samples clipped in the file", stats[k].clipped)
             } else {
                 String::new()
             }
@@ -580,7 +625,7 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
         .write_text("figures.json", &measure::to_json(&m))
         .map_err(signal_error)?;
     if flags.plots {
-        let figs = report::plots(patch, &run, &m, None).map_err(render_error)?;
+        let figs = report::plots(patch, &m, None).map_err(render_error)?;
         for f in &figs {
             folder
                 .write_text(&f.file_name(), &f.svg)
@@ -591,8 +636,59 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
     Ok(dir)
 }
 
+/// Longest render without `--long`, s.
+const LONG_RENDER_S: f64 = 600.0;
+
+fn check_length(patch: &Patch, long: bool) -> Result<(), Failure> {
+    if patch.length > LONG_RENDER_S && !long {
+        return Err(Failure::bad_input(format!(
+            "patch.length = {} is longer than {} minutes: pass --long to render it (memory stays flat, but it takes a while)",
+            fmt_eng(patch.length, "s"),
+            LONG_RENDER_S / 60.0
+        )));
+    }
+    Ok(())
+}
+
+/// Stream a patch through `sink`, with a progress bar when asked and the render is long.
+fn stream_patch(
+    patch: &Patch,
+    alias: bool,
+    show_progress: bool,
+    sink: &mut dyn FnMut(usize, &[f64]) -> Result<(), SignalError>,
+) -> Result<render::Streamed, Failure> {
+    let bar = if show_progress {
+        progress_bar(patch.frames(), patch.rate)
+    } else {
+        None
+    };
+    let opts = RenderOptions {
+        frames: None,
+        alias_probe: alias,
+    };
+    let r = render::render_streaming(patch, &opts, sink, &mut |f| {
+        if let Some(b) = &bar {
+            b.set_position((f * 1000.0) as u64);
+        }
+    });
+    if let Some(b) = bar {
+        b.finish_and_clear();
+    }
+    r.map_err(render_error)
+}
+
+/// Longest stretch the listening page embeds, s.
+const REPORT_MAX_S: f64 = 60.0;
+
 fn cmd_report(path: &Path, flags: &RenderFlags, sets: &[String]) -> Result<(), Failure> {
-    let patch = load(path, sets)?;
+    let mut patch = load(path, sets)?;
+    if patch.length > REPORT_MAX_S {
+        println!(
+            "the page plays and measures the first {REPORT_MAX_S} s of this {} patch",
+            fmt_eng(patch.length, "s")
+        );
+        patch.length = REPORT_MAX_S;
+    }
     let text = std::fs::read_to_string(path)
         .map_err(|e| Failure::bad_input(format!("{}: {e}", path.display())))?;
     let stem = path
@@ -607,7 +703,7 @@ fn cmd_report(path: &Path, flags: &RenderFlags, sets: &[String]) -> Result<(), F
     folder.check_writable("report.html").map_err(signal_error)?;
     let run = run_patch(&patch, true, true)?;
     let m = measure::measure(&patch, &run, None, &Settings::default(), None, None);
-    let figs = report::plots(&patch, &run, &m, None).map_err(render_error)?;
+    let figs = report::plots(&patch, &m, None).map_err(render_error)?;
     let players: Vec<report::Player> = run
         .outputs
         .iter()
@@ -698,11 +794,12 @@ fn cmd_measure(
     path: &Path,
     sets: &[String],
     output: Option<&str>,
-    (json, csv): (bool, bool),
+    (json, csv, long): (bool, bool, bool),
     settings: &Settings,
     plots: Option<(PathBuf, bool)>,
 ) -> Result<(), Failure> {
     let patch = load(path, sets)?;
+    check_length(&patch, long)?;
     let mut folder = match &plots {
         Some((dir, force)) => Some(OutputDir::open(dir, *force).map_err(signal_error)?),
         None => None,
@@ -717,15 +814,24 @@ fn cmd_measure(
             )));
         }
     }
-    let run = run_patch(&patch, true, !json && !csv)?;
+    let streamed = stream_patch(&patch, true, !json && !csv, &mut |_, _| Ok(()))?;
     let idle = if patch.noise {
-        Some(run_patch(&render::muted(&patch), false, false)?)
+        Some(stream_patch(&render::muted(&patch), false, false, &mut |_, _| Ok(()))?)
     } else {
         None
     };
-    let m = measure::measure(&patch, &run, idle.as_ref(), settings, output, None);
+    let run = &streamed.run;
+    let mut m = measure::measure(
+        &patch,
+        run,
+        idle.as_ref().map(|s| &s.run),
+        settings,
+        output,
+        None,
+    );
+    measure::apply_full_levels(&mut m, &patch, &streamed.levels);
     if let Some(folder) = folder.as_mut() {
-        let figs = report::plots(&patch, &run, &m, output).map_err(render_error)?;
+        let figs = report::plots(&patch, &m, output).map_err(render_error)?;
         for f in &figs {
             folder
                 .check_writable(&f.file_name())

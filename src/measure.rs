@@ -327,3 +327,35 @@ pub fn to_csv(m: &Measurement) -> String {
 pub fn to_json(m: &Measurement) -> String {
     serde_json::to_string_pretty(m).unwrap_or_else(|e| format!("{{\"error\": \"{e}\"}}"))
 }
+
+/// Replace the level figures of each output (peak, RMS, DC, crest factor, dBu/dBV/dBFS,
+/// headroom) with full-record levels, for a streamed render whose samples were only kept as
+/// a tail. `levels` is in patch output order.
+pub fn apply_full_levels(
+    m: &mut Measurement,
+    patch: &Patch,
+    levels: &[Option<crate::analysis::Levels>],
+) {
+    for (i, o) in patch.outputs.iter().enumerate() {
+        let (Some(r), Some(Some(l))) = (m.outputs.get_mut(&o.name), levels.get(i)) else {
+            continue;
+        };
+        let f = &mut r.figures;
+        f.peak_v = Some(l.peak_v);
+        f.rms_v = Some(l.rms_v);
+        f.dc_v = Some(l.dc_v);
+        f.crest_db = l.crest_db;
+        let lv = crate::analysis::levels::v_to_dbu;
+        f.rms_dbu = (l.ac_rms_v > 0.0).then(|| lv(l.ac_rms_v));
+        f.rms_dbv = (l.ac_rms_v > 0.0).then(|| crate::analysis::levels::v_to_dbv(l.ac_rms_v));
+        let fs = patch.full_scale;
+        f.peak_dbfs = (l.peak_v > 0.0).then(|| crate::analysis::levels::peak_to_dbfs(l.peak_v, fs));
+        f.rms_dbfs = (l.ac_rms_v > 0.0).then(|| crate::analysis::levels::rms_to_dbfs(l.ac_rms_v, fs));
+        let (p, n) = crate::analysis::headroom_db(l, &swing_at(patch, i));
+        f.headroom_pos_db = p;
+        f.headroom_neg_db = n;
+    }
+    m.settings.length_s = levels
+        .first()
+        .map_or(m.settings.length_s, |_| patch.length.min(patch.frames() as f64 / patch.rate));
+}

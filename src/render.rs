@@ -149,3 +149,182 @@ pub fn muted(patch: &Patch) -> Patch {
     }
     p
 }
+
+/// Running peak, RMS and DC of a stream (the full-record levels of a long render, without
+/// keeping it).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct LevelAccumulator {
+    n: u64,
+    sum: f64,
+    sum_sq: f64,
+    max: f64,
+    min: f64,
+}
+
+impl Default for LevelAccumulator {
+    fn default() -> Self {
+        LevelAccumulator {
+            n: 0,
+            sum: 0.0,
+            sum_sq: 0.0,
+            max: f64::NEG_INFINITY,
+            min: f64::INFINITY,
+        }
+    }
+}
+
+impl LevelAccumulator {
+    /// Add samples.
+    pub fn push(&mut self, x: &[f64]) {
+        for &v in x {
+            self.sum += v;
+            self.sum_sq += v * v;
+            self.max = self.max.max(v);
+            self.min = self.min.min(v);
+        }
+        self.n += x.len() as u64;
+    }
+
+    /// The levels so far (`None` before the first sample).
+    pub fn levels(&self) -> Option<crate::analysis::Levels> {
+        if self.n == 0 {
+            return None;
+        }
+        let n = self.n as f64;
+        let dc = self.sum / n;
+        let ms = self.sum_sq / n;
+        let rms = ms.sqrt();
+        let peak = self.max.abs().max(self.min.abs());
+        Some(crate::analysis::Levels {
+            peak_v: peak,
+            peak_pos_v: self.max,
+            peak_neg_v: self.min,
+            rms_v: rms,
+            ac_rms_v: (ms - dc * dc).max(0.0).sqrt(),
+            dc_v: dc,
+            crest_db: (rms > 0.0).then(|| 20.0 * (peak / rms).log10()),
+        })
+    }
+}
+
+/// The last `len` samples of a stream.
+#[derive(Debug, Clone)]
+pub struct Tail {
+    buf: Vec<f64>,
+    pos: usize,
+    filled: bool,
+}
+
+impl Tail {
+    /// A tail keeping `len` samples (allocated once).
+    pub fn new(len: usize) -> Tail {
+        Tail {
+            buf: vec![0.0; len.max(1)],
+            pos: 0,
+            filled: false,
+        }
+    }
+
+    /// Add samples.
+    pub fn push(&mut self, x: &[f64]) {
+        let n = self.buf.len();
+        let x = if x.len() > n { &x[x.len() - n..] } else { x };
+        for &v in x {
+            self.buf[self.pos] = v;
+            self.pos += 1;
+            if self.pos == n {
+                self.pos = 0;
+                self.filled = true;
+            }
+        }
+    }
+
+    /// The kept samples, oldest first.
+    pub fn into_vec(self) -> Vec<f64> {
+        if !self.filled {
+            let mut b = self.buf;
+            b.truncate(self.pos);
+            return b;
+        }
+        let mut v = Vec::with_capacity(self.buf.len());
+        v.extend_from_slice(&self.buf[self.pos..]);
+        v.extend_from_slice(&self.buf[..self.pos]);
+        v
+    }
+}
+
+/// Longest tail a streaming render keeps per output for spectral figures: 2^19 samples
+/// (10.9 s at 48 kHz, 4 MiB).
+pub const TAIL_MAX: usize = 1 << 19;
+
+/// A render whose outputs were streamed: [`Run::outputs`] holds only each output's last
+/// [`TAIL_MAX`] samples (all of them for shorter renders); `levels` are over the whole record.
+#[derive(Debug, Clone)]
+pub struct Streamed {
+    /// The run, with tails for outputs.
+    pub run: Run,
+    /// Full-record levels per output (same order).
+    pub levels: Vec<Option<crate::analysis::Levels>>,
+    /// Frames rendered.
+    pub frames: usize,
+}
+
+/// Render in chunks of a quarter second, handing each chunk of each output to `sink`
+/// (output index, samples) as soon as it exists, so memory stays flat however long the
+/// render. `sink` errors stop the render.
+pub fn render_streaming(
+    patch: &Patch,
+    opts: &RenderOptions,
+    sink: &mut dyn FnMut(usize, &[f64]) -> Result<(), SignalError>,
+    progress: &mut dyn FnMut(f64),
+) -> Result<Streamed, RenderError> {
+    let plan = engine::compile(&for_compile(patch))?;
+    let feeds = feeds(patch, &plan)?;
+    let mut eng = Engine::with_feeds(&plan, feeds);
+    let frames = opts.frames.unwrap_or_else(|| patch.frames());
+    let chunk = ((patch.rate * 0.25) as usize).max(1);
+    let nout = plan.outputs.len();
+    let mut bufs: Vec<Vec<f64>> = vec![vec![0.0; chunk]; nout];
+    let mut acc = vec![LevelAccumulator::default(); nout];
+    let mut tails: Vec<Tail> = (0..nout).map(|_| Tail::new(frames.min(TAIL_MAX))).collect();
+    let mut done = 0;
+    while done < frames {
+        let n = chunk.min(frames - done);
+        {
+            let mut refs: Vec<&mut [f64]> = bufs.iter_mut().map(|b| &mut b[..n]).collect();
+            eng.process(&mut refs);
+        }
+        for (i, b) in bufs.iter().enumerate() {
+            acc[i].push(&b[..n]);
+            tails[i].push(&b[..n]);
+            sink(i, &b[..n])?;
+        }
+        done += n;
+        progress(done as f64 / frames as f64);
+    }
+    let outputs = plan
+        .outputs
+        .iter()
+        .zip(tails)
+        .map(|(o, t)| engine::OutputSignal {
+            name: o.name.clone(),
+            samples: t.into_vec(),
+        })
+        .collect();
+    let alias = if opts.alias_probe {
+        engine::alias_figures(patch)
+    } else {
+        Vec::new()
+    };
+    Ok(Streamed {
+        run: Run {
+            rate: plan.rate,
+            oversample: plan.oversample,
+            outputs,
+            events: eng.events(),
+            alias,
+        },
+        levels: acc.iter().map(LevelAccumulator::levels).collect(),
+        frames,
+    })
+}

@@ -194,15 +194,19 @@ fn first_source(patch: &Patch, node: Node) -> Option<usize> {
         .find(|&s| !matches!(patch.sources[s].wave, Wave::Dc { .. }))
 }
 
-/// Every plot of every output (`only`: one output by name).
-pub fn plots(
-    patch: &Patch,
-    run: &Run,
-    m: &Measurement,
-    only: Option<&str>,
-) -> Result<Vec<Figure>, RenderError> {
+/// Longest stretch the plots are drawn from, s: a longer patch is plotted from its first
+/// [`PLOT_MAX_S`] seconds (the plots show shapes, not the whole record).
+pub const PLOT_MAX_S: f64 = 10.0;
+
+/// Every plot of every output (`only`: one output by name). Renders the patch once more with
+/// probes on every node (at most [`PLOT_MAX_S`] long).
+pub fn plots(patch: &Patch, m: &Measurement, only: Option<&str>) -> Result<Vec<Figure>, RenderError> {
+    let mut short = patch.clone();
+    short.length = short.length.min(PLOT_MAX_S);
+    let patch = &short;
     let probe_patch = with_probes(patch);
     let probes = render::render(&probe_patch, &RenderOptions::default(), &mut |_| {})?;
+    let run = &probes;
     let mut figs = Vec::new();
     for (oi, o) in patch.outputs.iter().enumerate() {
         if only.is_some_and(|n| n != o.name) {

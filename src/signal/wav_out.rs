@@ -256,7 +256,15 @@ pub fn listen_gain(samples: &[f64], target_rms_dbfs: f64, full_scale: f64) -> f6
         peak = peak.max(v.abs());
     }
     let rms = (sum / samples.len() as f64).sqrt();
-    if !(rms.is_finite() && rms > 0.0 && peak.is_finite()) {
+    listen_gain_from(rms, peak, target_rms_dbfs, full_scale)
+}
+
+/// [`listen_gain`] from a record's RMS and peak (V), for streams that are not kept whole.
+pub fn listen_gain_from(rms: f64, peak: f64, target_rms_dbfs: f64, full_scale: f64) -> f64 {
+    if !(full_scale.is_finite() && full_scale > 0.0) {
+        return 1.0;
+    }
+    if !(rms.is_finite() && rms > 0.0 && peak.is_finite() && peak > 0.0) {
         return 1.0;
     }
     let want = full_scale * 10f64.powf(target_rms_dbfs / 20.0) / rms;
