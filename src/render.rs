@@ -95,48 +95,32 @@ fn for_compile(patch: &Patch) -> Patch {
     p
 }
 
-/// Render every output of `patch`. `progress` is called with the fraction done (0..=1)
-/// after each chunk.
+/// Render every output of `patch`, keeping every sample. `progress` is called with the
+/// fraction done (0..=1) after each chunk. For long renders prefer [`render_streaming`].
 pub fn render(
     patch: &Patch,
     opts: &RenderOptions,
     progress: &mut dyn FnMut(f64),
 ) -> Result<Run, RenderError> {
-    let plan = engine::compile(&for_compile(patch))?;
-    let feeds = feeds(patch, &plan)?;
-    let mut eng = Engine::with_feeds(&plan, feeds);
     let frames = opts.frames.unwrap_or_else(|| patch.frames());
-    let mut bufs: Vec<Vec<f64>> = plan.outputs.iter().map(|_| vec![0.0; frames]).collect();
-    let chunk = ((patch.rate * 0.25) as usize).max(1);
-    let mut done = 0;
-    while done < frames {
-        let n = chunk.min(frames - done);
-        let mut refs: Vec<&mut [f64]> = bufs.iter_mut().map(|b| &mut b[done..done + n]).collect();
-        eng.process(&mut refs);
-        done += n;
-        progress(done as f64 / frames as f64);
-    }
-    let outputs = plan
+    let mut full: Vec<Vec<f64>> = patch
         .outputs
         .iter()
-        .zip(bufs)
-        .map(|(o, samples)| engine::OutputSignal {
-            name: o.name.clone(),
-            samples,
-        })
+        .map(|_| Vec::with_capacity(frames))
         .collect();
-    let alias = if opts.alias_probe {
-        engine::alias_figures(patch)
-    } else {
-        Vec::new()
-    };
-    Ok(Run {
-        rate: plan.rate,
-        oversample: plan.oversample,
-        outputs,
-        events: eng.events(),
-        alias,
-    })
+    let mut streamed = render_streaming(
+        patch,
+        opts,
+        &mut |i, x| {
+            full[i].extend_from_slice(x);
+            Ok(())
+        },
+        progress,
+    )?;
+    for (o, samples) in streamed.run.outputs.iter_mut().zip(full) {
+        o.samples = samples;
+    }
+    Ok(streamed.run)
 }
 
 /// The same patch with every source muted (its waveform replaced by silence, its DC offset
