@@ -30,7 +30,7 @@ pub struct Failure {
 }
 
 impl Failure {
-    fn bad_input(message: impl std::fmt::Display) -> Failure {
+    pub(crate) fn bad_input(message: impl std::fmt::Display) -> Failure {
         Failure {
             code: EXIT_BAD_INPUT,
             message: message.to_string(),
@@ -68,6 +68,10 @@ enum Command {
         patch: PathBuf,
         #[command(flatten)]
         out: RenderFlags,
+        /// Render only this [variants.NAME] besides the base (repeatable; default: every
+        /// variant). Its files are named <output>-<variant>.wav.
+        #[arg(long = "variant", value_name = "NAME")]
+        variants: Vec<String>,
         /// Override a value by dotted path (repeatable).
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
@@ -115,24 +119,120 @@ enum Command {
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
     },
+    /// Level-matched A/B of two variants: both renders, an alternating file, a difference
+    /// file, and the figures side by side.
+    Compare {
+        /// The patch file.
+        patch: PathBuf,
+        /// Variant A (a [variants.NAME] or `base`).
+        #[arg(long, value_name = "NAME")]
+        a: String,
+        /// Variant B (a [variants.NAME] or `base`).
+        #[arg(long, value_name = "NAME")]
+        b: String,
+        /// Segment length of the alternating file.
+        #[arg(long, default_value = "2s", value_name = "TIME")]
+        segment: String,
+        /// Print the comparison as JSON (it is always written to compare.json).
+        #[arg(long)]
+        json: bool,
+        #[command(flatten)]
+        out: RenderFlags,
+        /// Override a value by dotted path, applied to both sides (repeatable).
+        #[arg(long = "set", value_name = "PATH=VALUE")]
+        sets: Vec<String>,
+    },
+    /// Step one value (a level, a resistor, a frequency, a pot position) and tabulate
+    /// figures at each step.
+    Sweep {
+        /// The patch file.
+        patch: PathBuf,
+        /// What to sweep: PATH=FROM..TO (with --steps), or PATH alone with --values or
+        /// --series and --range.
+        #[arg(long = "set", value_name = "PATH=FROM..TO")]
+        set: String,
+        /// Number of points of a FROM..TO range.
+        #[arg(long, default_value_t = 11)]
+        steps: usize,
+        /// Equal ratios between the points instead of equal steps.
+        #[arg(long)]
+        log: bool,
+        /// An explicit list of values, e.g. 10k,22k,47k.
+        #[arg(long, value_name = "LIST")]
+        values: Option<String>,
+        /// Every IEC 60063 value of this series (E12, E24, E48, E96, E192) within --range.
+        #[arg(long, value_name = "SERIES", requires = "range")]
+        series: Option<String>,
+        /// Range of --series, LO..HI.
+        #[arg(long, value_name = "LO..HI")]
+        range: Option<String>,
+        /// Figures to tabulate, comma-separated (default thd_percent, thdn_db, peak_v,
+        /// headroom_pos_db, headroom_neg_db).
+        #[arg(long, value_name = "LIST")]
+        figure: Option<String>,
+        /// A fixed override for every point (repeatable).
+        #[arg(long = "with", value_name = "PATH=VALUE")]
+        with: Vec<String>,
+        /// Sweep this [variants.NAME] instead of the base patch.
+        #[arg(long, value_name = "NAME")]
+        variant: Option<String>,
+        /// Print CSV.
+        #[arg(long, conflicts_with = "json")]
+        csv: bool,
+        /// Print JSON.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Monte Carlo over every resistor and capacitor within its tolerance.
+    Tolerance {
+        /// The patch file.
+        patch: PathBuf,
+        /// Number of runs.
+        #[arg(long, default_value_t = 200)]
+        runs: usize,
+        /// Resistor tolerance, e.g. 1% (default: that of --series, else 1 %).
+        #[arg(long, value_name = "PERCENT")]
+        tol: Option<String>,
+        /// Capacitor tolerance (default: the resistor tolerance).
+        #[arg(long, value_name = "PERCENT")]
+        cap_tol: Option<String>,
+        /// Take the resistor tolerance from a series: E12 10 %, E24 5 %, E48 2 %, E96 1 %,
+        /// E192 0.5 %.
+        #[arg(long, value_name = "SERIES")]
+        series: Option<String>,
+        /// Study seed (default: the patch seed).
+        #[arg(long)]
+        seed: Option<u64>,
+        /// Render run N of the study (same --tol, --cap-tol and --seed) instead of running it.
+        #[arg(long, value_name = "N")]
+        render_run: Option<usize>,
+        /// Print the whole study as JSON.
+        #[arg(long)]
+        json: bool,
+        #[command(flatten)]
+        out: RenderFlags,
+        /// Override a value by dotted path (repeatable).
+        #[arg(long = "set", value_name = "PATH=VALUE")]
+        sets: Vec<String>,
+    },
 }
 
 /// Flags shared by the commands that write renders.
 #[derive(clap::Args, Debug)]
-struct RenderFlags {
+pub(crate) struct RenderFlags {
     /// Folder to write into (default: renders/<patch name>/).
     #[arg(long, value_name = "DIR")]
-    out: Option<PathBuf>,
+    pub(crate) out: Option<PathBuf>,
     /// Sample format of the WAV files: 16 (TPDF-dithered), 24 or float.
     #[arg(long, default_value = "24", value_parser = ["16", "24", "float"])]
-    depth: String,
+    pub(crate) depth: String,
     /// Scale each file so its RMS sits at this level in dBFS (peaks kept below -1 dBFS)
     /// instead of the patch calibration; for listening, e.g. --listen -18.
     #[arg(long, value_name = "DBFS", allow_negative_numbers = true)]
-    listen: Option<f64>,
+    pub(crate) listen: Option<f64>,
     /// Overwrite files in the folder that railsong did not write.
     #[arg(long)]
-    force: bool,
+    pub(crate) force: bool,
 }
 
 /// Parse the command line and run the command.
@@ -158,13 +258,19 @@ pub fn run() -> Result<(), Failure> {
     match cli.command {
         Command::Check { patch, sets } => cmd_check(&patch, &sets),
         Command::Parts { patch, sets } => cmd_parts(patch.as_deref(), &sets),
-        Command::Render { patch, out, sets } => {
+        Command::Render {
+            patch,
+            out,
+            variants,
+            sets,
+        } => {
             let p = load(&patch, &sets)?;
             let stem = patch
                 .file_stem()
                 .map(|s| s.to_string_lossy().into_owned())
                 .unwrap_or_else(|| "patch".into());
-            render_to(&p, &stem, &out).map(|_| ())
+            render_to(&p, &stem, &out)?;
+            crate::cli_study::render_variants(&patch, &sets, &variants, &out)
         }
         Command::Demo { out } => cmd_demo(&out),
         Command::Measure {
@@ -184,10 +290,77 @@ pub fn run() -> Result<(), Failure> {
                 None => cmd_measure(&patch, &sets, output.as_deref(), json, csv, &settings),
             }
         }
+        Command::Compare {
+            patch,
+            a,
+            b,
+            segment,
+            json,
+            out,
+            sets,
+        } => crate::cli_study::cmd_compare(&crate::cli_study::CompareArgs {
+            patch: &patch,
+            a: &a,
+            b: &b,
+            segment: &segment,
+            sets: &sets,
+            flags: &out,
+            json,
+        }),
+        Command::Sweep {
+            patch,
+            set,
+            steps,
+            log,
+            values,
+            series,
+            range,
+            figure,
+            with,
+            variant,
+            csv,
+            json,
+        } => crate::cli_study::cmd_sweep(&crate::cli_study::SweepArgs {
+            patch: &patch,
+            set: &set,
+            steps,
+            log,
+            values: values.as_deref(),
+            series: series.as_deref(),
+            range: range.as_deref(),
+            figures: figure.as_deref(),
+            with: &with,
+            variant: variant.as_deref(),
+            csv,
+            json,
+        }),
+        Command::Tolerance {
+            patch,
+            runs,
+            tol,
+            cap_tol,
+            series,
+            seed,
+            render_run,
+            json,
+            out,
+            sets,
+        } => crate::cli_study::cmd_tolerance(&crate::cli_study::ToleranceArgs {
+            patch: &patch,
+            runs,
+            tol: tol.as_deref(),
+            cap_tol: cap_tol.as_deref(),
+            series: series.as_deref(),
+            seed,
+            render_run,
+            sets: &sets,
+            flags: &out,
+            json,
+        }),
     }
 }
 
-fn load(path: &Path, sets: &[String]) -> Result<Patch, Failure> {
+pub(crate) fn load(path: &Path, sets: &[String]) -> Result<Patch, Failure> {
     railsong::patch::load(path, sets).map_err(Failure::bad_input)
 }
 
@@ -326,19 +499,19 @@ fn cmd_parts(path: Option<&Path>, sets: &[String]) -> Result<(), Failure> {
 /// The demo patch, compiled into the binary (the same file as patches/demo.toml).
 const DEMO: &str = include_str!("../patches/demo.toml");
 
-fn failure_io(e: impl std::fmt::Display) -> Failure {
+pub(crate) fn failure_io(e: impl std::fmt::Display) -> Failure {
     Failure {
         code: EXIT_FAILURE,
         message: e.to_string(),
     }
 }
 
-fn render_error(e: RenderError) -> Failure {
+pub(crate) fn render_error(e: RenderError) -> Failure {
     // Every render error comes from the patch or an input file: bad input.
     Failure::bad_input(e)
 }
 
-fn signal_error(e: SignalError) -> Failure {
+pub(crate) fn signal_error(e: SignalError) -> Failure {
     match e {
         SignalError::Io { .. } | SignalError::Stream(_) => failure_io(e),
         other => Failure::bad_input(other),
@@ -363,7 +536,7 @@ fn analysis_settings(harmonics: usize, weighting: &str) -> Result<Settings, Fail
 }
 
 /// Keep only the characters allowed in file names.
-fn safe_stem(s: &str) -> String {
+pub(crate) fn safe_stem(s: &str) -> String {
     let t: String = s
         .chars()
         .map(|c| {
@@ -393,7 +566,7 @@ fn progress_bar(frames: usize, rate: f64) -> Option<indicatif::ProgressBar> {
     Some(bar)
 }
 
-fn run_patch(patch: &Patch, alias: bool, show_progress: bool) -> Result<Run, Failure> {
+pub(crate) fn run_patch(patch: &Patch, alias: bool, show_progress: bool) -> Result<Run, Failure> {
     let bar = if show_progress {
         progress_bar(patch.frames(), patch.rate)
     } else {
@@ -516,11 +689,11 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
     Ok(dir)
 }
 
-fn db_or_dash(v: Option<f64>, what: &str) -> String {
+pub(crate) fn db_or_dash(v: Option<f64>, what: &str) -> String {
     v.map_or(format!("- {what}"), |d| format!("{d:+.1} dB {what}"))
 }
 
-fn print_events(events: &std::collections::BTreeMap<String, measure::EventSeconds>) {
+pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::EventSeconds>) {
     for (stage, e) in events {
         let mut parts = Vec::new();
         for (label, s) in [

@@ -19,4 +19,5 @@ pub mod parts;
 pub mod patch;
 pub mod render;
 pub mod signal;
+pub mod study;
 pub mod units;
