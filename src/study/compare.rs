@@ -202,7 +202,7 @@ impl Alternation {
 }
 
 fn side_of(k: usize) -> Side {
-    if k % 2 == 0 {
+    if k.is_multiple_of(2) {
         Side::A
     } else {
         Side::B
