@@ -451,7 +451,7 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
 
     let mut json_out = serde_json::Map::new();
     if args.csv {
-        println!("output,{},value,{}", "path", figures.join(","));
+        println!("output,path,value,{}", figures.join(","));
     }
     for o in &base.outputs {
         let rows: Vec<(&Value, Vec<Option<f64>>)> = pts
@@ -514,11 +514,20 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                     .iter()
                     .map(|x| x.map_or(format!("{:>16}", "-"), |x| format!("{x:>16.5}")))
                     .collect();
-                println!("  {:>14}  {}", v.text, cells.join(""));
+                let unit = sweep::parse_quantity(&v.text)
+                    .map(|q| q.1)
+                    .unwrap_or_default();
+                println!("  {:>14}  {}", fmt_eng(v.x, &unit), cells.join(""));
             }
             if !thd.is_empty() {
+                let xunit = sweep::parse_quantity(&values[0].text)
+                    .map(|q| q.1)
+                    .unwrap_or_default();
                 let say = |x: Option<f64>, th: &str| match x {
-                    Some(l) => println!("  THD reaches {th} at {}", fmt_number(l)),
+                    Some(l) => println!(
+                        "  THD reaches {th} at {} ({path} = {l:.6})",
+                        fmt_eng(l, &xunit)
+                    ),
                     None => println!("  THD does not cross {th} in this range"),
                 };
                 say(at01, "0.1 %");
@@ -535,10 +544,6 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
         );
     }
     Ok(())
-}
-
-fn fmt_number(x: f64) -> String {
-    format!("{x:.5}")
 }
 
 /// Options of `tolerance`.

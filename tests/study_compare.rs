@@ -100,8 +100,8 @@ fn identical_variants_null_out() {
 fn doubled_feedback_is_matched_by_minus_6_db() {
     let dir = tempfile::tempdir().unwrap();
     let j = compare_json(dir.path(), "base", "double");
-    let (rin, rf_a, rf_b) = (10e3, 10e3, 20e3);
-    let expected = 20.0 * ((rf_a / rin) / (rf_b / rin) as f64).log10();
+    let (rin, rf_a, rf_b): (f64, f64, f64) = (10e3, 10e3, 20e3);
+    let expected = 20.0 * ((rf_a / rin) / (rf_b / rin)).log10();
     let got = j["outputs"][0]["gain_db"].as_f64().unwrap();
     assert!(
         (got - expected).abs() < 0.01,
@@ -136,10 +136,10 @@ fn alternation_layout_and_equal_power() {
     let b = vec![-2.0; frames];
     let mix = alt.render(&a, &b).unwrap();
     let mut fade_samples = 0;
-    for n in 0..frames {
+    for (n, &m) in mix.iter().enumerate() {
         let (ga, gb) = alt.gains(n);
         assert!((ga * ga + gb * gb - 1.0).abs() < 1e-12, "n {n}: {ga} {gb}");
-        assert!((mix[n] - (ga - 2.0 * gb)).abs() < 1e-12);
+        assert!((m - (ga - 2.0 * gb)).abs() < 1e-12);
         if alt.in_fade(n) {
             fade_samples += 1;
             // the closed form at this sample's position in its fade
@@ -155,7 +155,7 @@ fn alternation_layout_and_equal_power() {
         } else {
             let k = n / 48_000;
             let want = if k % 2 == 0 { 1.0 } else { -2.0 };
-            assert_eq!(mix[n], want, "n {n} outside a fade must be pure {k}");
+            assert_eq!(m, want, "n {n} outside a fade must be pure {k}");
         }
     }
     // five boundaries, each with one full fade
