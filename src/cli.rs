@@ -265,6 +265,7 @@ pub fn run() -> Result<(), Failure> {
             sets,
         } => {
             let p = load(&patch, &sets)?;
+            crate::cli_study::check_variants(&patch, &variants)?;
             let stem = patch
                 .file_stem()
                 .map(|s| s.to_string_lossy().into_owned())

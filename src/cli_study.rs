@@ -75,6 +75,28 @@ fn load_side(path: &Path, name: &str, sets: &[String]) -> Result<Patch, Failure>
     }
 }
 
+/// Check the names given to `render --variant` before anything is rendered.
+pub(crate) fn check_variants(path: &Path, chosen: &[String]) -> Result<(), Failure> {
+    if chosen.is_empty() {
+        return Ok(());
+    }
+    let all = variant_names(path)?;
+    for v in chosen {
+        if !all.contains(v) {
+            return Err(Failure::bad_input(format!(
+                "--variant {v}: {} has no [variants.{v}] (variants: {})",
+                path.display(),
+                if all.is_empty() {
+                    "none".to_string()
+                } else {
+                    all.join(", ")
+                }
+            )));
+        }
+    }
+    Ok(())
+}
+
 /// `render --variant`: after the base render, render the chosen variants (all of them when
 /// `chosen` is empty) into the same folder, each output's file named `<file>-<variant>.wav`
 /// and the figures `figures-<variant>.json`.
@@ -96,7 +118,7 @@ pub(crate) fn render_variants(
         .unwrap_or_else(|| Path::new("renders").join(safe_stem(&stem_of(path))));
     for v in &names {
         let p = railsong::patch::load_variant(path, Some(v), sets).map_err(Failure::bad_input)?;
-        render_variant(&p, v, &dir, flags)?;
+        render_variant(&p, v, &format!("variant {v}"), &dir, flags)?;
     }
     Ok(())
 }
@@ -111,6 +133,7 @@ fn file_stem_of(o: &railsong::model::Output) -> String {
 fn render_variant(
     patch: &Patch,
     variant: &str,
+    label: &str,
     dir: &Path,
     flags: &RenderFlags,
 ) -> Result<(), Failure> {
@@ -126,7 +149,7 @@ fn render_variant(
     }
     let run = run_patch(patch, false, true)?;
     let m = measure::measure(patch, &run, None, &Settings::default(), None, None);
-    println!("variant {variant} -> {}", dir.display());
+    println!("{label} -> {}", dir.display());
     for (o, name) in run.outputs.iter().zip(&names) {
         let spec = WavSpec {
             rate: patch.rate.round() as u32,
@@ -632,7 +655,13 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             tol.resistor * 100.0,
             tol.capacitor * 100.0
         );
-        return render_variant(&p, &format!("run{i}"), &dir, args.flags);
+        return render_variant(
+            &p,
+            &format!("run{i}"),
+            &format!("run {i}"),
+            &dir,
+            args.flags,
+        );
     }
     if args.runs == 0 {
         return Err(Failure::bad_input("--runs 0: expected 1 or more"));

@@ -209,3 +209,37 @@ fn render_writes_every_variant() {
     assert!(out2.join("out.wav").is_file() && out2.join("out-double.wav").is_file());
     assert!(!out2.join("out-same.wav").exists());
 }
+
+// The wording of each moved figure, with its sign convention: headroom lost means the swing
+// is reached sooner; THD in dB rising means B adds THD; event time rising means more of it.
+#[test]
+fn wording_of_deltas() {
+    use railsong::study::compare::{describe, FigureRow, DB_THRESHOLD};
+    let row = |figure: &'static str, a: f64, b: f64| FigureRow {
+        figure,
+        unit: "",
+        a: Some(a),
+        b: Some(b),
+        delta: Some(b - a),
+    };
+    let rows = [
+        row("headroom_pos_db", 6.0, 2.9),
+        row("headroom_neg_db", 6.0, 6.0 + DB_THRESHOLD / 2.0),
+        row("thd_db", -60.0, -56.0),
+        row("thdn_db", -50.0, -52.5),
+        row("clip_s", 0.10, 0.31),
+        row("rms_v", 1.0, 2.0),
+    ];
+    let s = describe(&rows);
+    assert_eq!(
+        s,
+        [
+            "B reaches the positive swing 3.1 dB sooner",
+            "B adds 4.0 dB of THD",
+            "B has 2.5 dB less THD+N",
+            "B clips for 0.21 s more",
+            // 20 log10(2) = 6.02 dB
+            "B is 6.0 dB louder than A before matching",
+        ]
+    );
+}
