@@ -166,3 +166,46 @@ fn values_and_ranges() {
     assert!(range_values("1k", "2 V", 3, Spacing::Linear).is_err());
     assert!(range_values("0", "1", 3, Spacing::Log).is_err());
 }
+
+// Points run in parallel, but the results come back in the order of the values and do not
+// depend on the number of threads.
+#[test]
+fn sweep_order_and_numbers_independent_of_threads() {
+    use railsong::analysis::Settings;
+    use railsong::study::sweep::{run, PatchText};
+    let src = PatchText {
+        text: PATCH,
+        origin: "sweep.toml",
+        base_dir: Path::new("."),
+        variant: None,
+    };
+    let values = range_values("1 Vpk", "8 Vpk", 6, Spacing::Linear).unwrap();
+    let go = |threads: usize| {
+        rayon::ThreadPoolBuilder::new()
+            .num_threads(threads)
+            .build()
+            .unwrap()
+            .install(|| {
+                run(
+                    &src,
+                    &["patch.length=0.05s".to_string()],
+                    "sources.osc.amp",
+                    &values,
+                    &Settings::default(),
+                    &|| {},
+                )
+                .unwrap()
+            })
+    };
+    let (one, three) = (go(1), go(3));
+    for ((a, b), v) in one.iter().zip(&three).zip(&values) {
+        assert_eq!(&a.value, v);
+        assert_eq!(a.measurement, b.measurement);
+    }
+    // and the order is the order of the values: peak rises with the input level
+    let peaks: Vec<f64> = one
+        .iter()
+        .map(|p| p.measurement.outputs["out"].figures.peak_v.unwrap())
+        .collect();
+    assert!(peaks.windows(2).all(|w| w[1] > w[0]), "{peaks:?}");
+}
