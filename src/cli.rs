@@ -133,6 +133,10 @@ enum Command {
         /// Segment length of the alternating file.
         #[arg(long, default_value = "2s", value_name = "TIME")]
         segment: String,
+        /// Level-match B to A by the RMS of the whole output or by integrated loudness
+        /// (ITU-R BS.1770-4).
+        #[arg(long = "match", default_value = "rms", value_parser = ["rms", "loudness"])]
+        matching: String,
         /// Print the comparison as JSON (it is always written to compare.json).
         #[arg(long)]
         json: bool,
@@ -296,6 +300,7 @@ pub fn run() -> Result<(), Failure> {
             a,
             b,
             segment,
+            matching,
             json,
             out,
             sets,
@@ -304,6 +309,7 @@ pub fn run() -> Result<(), Failure> {
             a: &a,
             b: &b,
             segment: &segment,
+            matching: &matching,
             sets: &sets,
             flags: &out,
             json,

@@ -196,6 +196,7 @@ pub(crate) struct CompareArgs<'a> {
     pub a: &'a str,
     pub b: &'a str,
     pub segment: &'a str,
+    pub matching: &'a str,
     pub sets: &'a [String],
     pub flags: &'a RenderFlags,
     pub json: bool,
@@ -218,6 +219,11 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             fmt_eng(pb.length, "s")
         )));
     }
+    let matching = if args.matching == "loudness" {
+        compare::Matching::Loudness
+    } else {
+        compare::Matching::Rms
+    };
     let layout = Alternation::new(pa.frames(), pa.rate, seg, FADE_S).map_err(study_error)?;
     let dir = args.flags.out.clone().unwrap_or_else(|| {
         Path::new("renders").join(safe_stem(&format!(
@@ -262,6 +268,7 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             &mb.outputs[&ob.name],
             &layout,
             pa.full_scale,
+            matching,
         )
         .map_err(study_error)?;
         let spec = WavSpec {
@@ -296,7 +303,7 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     let json = serde_json::json!({
         "a": args.a,
         "b": args.b,
-        "matched_by": "rms",
+        "matched_by": matching,
         "crossfade_s": layout.fade_frames() as f64 / pa.rate,
         "outputs": results,
     });
@@ -319,7 +326,11 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         println!();
         println!("output {}", c.output);
         println!(
-            "  B matched to A by RMS of the whole output: gain {:+.2} dB",
+            "  B matched to A by {}: gain {:+.2} dB",
+            match c.matched_by {
+                compare::Matching::Rms => "RMS of the whole output",
+                compare::Matching::Loudness => "integrated loudness (ITU-R BS.1770-4)",
+            },
             c.gain_db
         );
         match c.difference_below_db {

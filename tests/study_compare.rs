@@ -52,12 +52,27 @@ fn write_patch(dir: &Path) -> std::path::PathBuf {
 }
 
 fn compare_json(dir: &Path, a: &str, b: &str) -> serde_json::Value {
+    compare_json_by(dir, a, b, "rms")
+}
+
+fn compare_json_by(dir: &Path, a: &str, b: &str, by: &str) -> serde_json::Value {
     let patch = write_patch(dir);
     let out = Command::new(BIN)
         .arg("compare")
         .arg(&patch)
-        .args(["--a", a, "--b", b, "--segment", "0.1s", "--json", "--out"])
-        .arg(dir.join(format!("{a}-{b}")))
+        .args([
+            "--a",
+            a,
+            "--b",
+            b,
+            "--segment",
+            "0.1s",
+            "--json",
+            "--match",
+            by,
+        ])
+        .arg("--out")
+        .arg(dir.join(format!("{a}-{b}-{by}")))
         .output()
         .unwrap();
     assert!(
@@ -88,7 +103,7 @@ fn identical_variants_null_out() {
         "out-AB.wav",
         "out-difference.wav",
     ] {
-        assert!(dir.path().join("same-twin").join(f).is_file(), "{f}");
+        assert!(dir.path().join("same-twin-rms").join(f).is_file(), "{f}");
     }
 }
 
@@ -241,5 +256,21 @@ fn wording_of_deltas() {
             // 20 log10(2) = 6.02 dB
             "B is 6.0 dB louder than A before matching",
         ]
+    );
+}
+
+// BS.1770 loudness is a K-weighted mean square, so it scales exactly with level: matching the
+// doubled-feedback variant by loudness gives the same -6.02 dB as the textbook ratio
+// -Rf/Rin (Sedra & Smith) of the two gains.
+#[test]
+fn doubled_feedback_matched_by_loudness() {
+    let dir = tempfile::tempdir().unwrap();
+    let j = compare_json_by(dir.path(), "base", "double", "loudness");
+    assert_eq!(j["matched_by"], "loudness");
+    let expected = 20.0 * (10e3f64 / 20e3).log10();
+    let got = j["outputs"][0]["gain_db"].as_f64().unwrap();
+    assert!(
+        (got - expected).abs() < 0.01,
+        "{got} dB, expected {expected}"
     );
 }

@@ -2,8 +2,9 @@
 //! of both sides with the wording of what moved.
 //!
 //! Conventions:
-//! - B is matched to A by the RMS of the whole output: `gain = rms(A) / rms(B)`; the gain in
-//!   dB is `20 log10(gain)`. (Loudness per ITU-R BS.1770 is not used.)
+//! - B is matched to A by the RMS of the whole output, `gain = rms(A) / rms(B)`, or by
+//!   integrated loudness per ITU-R BS.1770-4 ([`super::loudness`]),
+//!   `gain = 10^((L_A - L_B) / 20)`; the gain in dB is `20 log10(gain)`.
 //! - The alternating file plays A, B, A, B ... in segments of equal length, starting with A
 //!   at t = 0. Each boundary at `k * segment` is the centre of a crossfade of `fade` samples
 //!   (`fade/2` before, `fade/2` after). Inside it, at position `u = (n - start + 0.5) / fade`
@@ -47,6 +48,26 @@ pub fn matching_gain(a: &[f64], b: &[f64]) -> Option<f64> {
     let (ra, rb) = (rms(a), rms(b));
     let g = ra / rb;
     (rb > 0.0 && g.is_finite()).then_some(g)
+}
+
+/// How B is level-matched to A.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Matching {
+    /// By the RMS of the whole output.
+    Rms,
+    /// By integrated loudness, ITU-R BS.1770-4 (K-weighted, gated).
+    Loudness,
+}
+
+/// Level-matching gain for B by integrated loudness (BS.1770-4): `10^((L_A - L_B) / 20)`.
+/// `None` when either is shorter than one 400 ms block or gated out as silence.
+pub fn loudness_gain(a: &[f64], b: &[f64], rate: f64, full_scale: f64) -> Option<f64> {
+    let scale = |x: &[f64]| -> Vec<f64> { x.iter().map(|v| v / full_scale).collect() };
+    let la = super::loudness::integrated_lkfs(&scale(a), rate)?;
+    let lb = super::loudness::integrated_lkfs(&scale(b), rate)?;
+    let g = 10f64.powf((la - lb) / 20.0);
+    g.is_finite().then_some(g)
 }
 
 /// Crossfade gains at position `u` (0..1) through a crossfade: `(outgoing, incoming)` =
@@ -413,6 +434,8 @@ pub fn describe(rows: &[FigureRow]) -> Vec<String> {
 pub struct OutputComparison {
     /// Output name.
     pub output: String,
+    /// How B was matched.
+    pub matched_by: Matching,
     /// Gain applied to B, linear.
     pub gain: f64,
     /// Gain applied to B, dB.
@@ -439,7 +462,9 @@ pub struct OutputComparison {
     pub difference: Vec<f64>,
 }
 
-/// Compare one output: `a` and `b` are its samples, `ra` and `rb` its figures.
+/// Compare one output: `a` and `b` are its samples, `ra` and `rb` its figures, `full_scale`
+/// the calibration (V at 0 dBFS).
+#[allow(clippy::too_many_arguments)]
 pub fn compare_output(
     name: &str,
     a: &[f64],
@@ -448,11 +473,21 @@ pub fn compare_output(
     rb: &OutputReport,
     layout: &Alternation,
     full_scale: f64,
+    matching: Matching,
 ) -> Result<OutputComparison, StudyError> {
-    let gain = matching_gain(a, b).ok_or_else(|| StudyError::Silent {
+    let gain = match matching {
+        Matching::Rms => matching_gain(a, b),
+        Matching::Loudness => loudness_gain(a, b, layout.rate, full_scale),
+    }
+    .ok_or_else(|| StudyError::Silent {
         output: name.to_string(),
         which: "B".into(),
-        what: "no level to match it to A".into(),
+        what: match matching {
+            Matching::Rms => "no level to match it to A".into(),
+            Matching::Loudness => {
+                "no loudness to match it to A (silent, or shorter than 400 ms)".into()
+            }
+        },
     })?;
     let b_matched: Vec<f64> = b.iter().map(|x| x * gain).collect();
     let alternating = layout.render(a, &b_matched)?;
@@ -462,6 +497,7 @@ pub fn compare_output(
     let changes = describe(&figures);
     Ok(OutputComparison {
         output: name.to_string(),
+        matched_by: matching,
         gain,
         gain_db: db(gain),
         difference_below_db: (!silent).then(|| db_below(&difference, a)),

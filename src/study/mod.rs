@@ -16,6 +16,7 @@
 //!   closed-form channel gains of inverting summers, percentiles, and the parallel runs.
 
 pub mod compare;
+pub mod loudness;
 pub mod sweep;
 pub mod tolerance;
 
