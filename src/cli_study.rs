@@ -219,6 +219,16 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             fmt_eng(pb.length, "s")
         )));
     }
+    let names = |p: &Patch| p.outputs.iter().map(|o| o.name.clone()).collect::<Vec<_>>();
+    if names(&pa) != names(&pb) {
+        return Err(Failure::bad_input(format!(
+            "compare {} and {}: both need the same outputs (found {} and {})",
+            args.a,
+            args.b,
+            names(&pa).join(", "),
+            names(&pb).join(", ")
+        )));
+    }
     let matching = if args.matching == "loudness" {
         compare::Matching::Loudness
     } else {
