@@ -31,7 +31,7 @@ pub struct Failure {
 }
 
 impl Failure {
-    fn bad_input(message: impl std::fmt::Display) -> Failure {
+    pub(crate) fn bad_input(message: impl std::fmt::Display) -> Failure {
         Failure {
             code: EXIT_BAD_INPUT,
             message: message.to_string(),
@@ -69,6 +69,10 @@ enum Command {
         patch: PathBuf,
         #[command(flatten)]
         out: RenderFlags,
+        /// Render only this [variants.NAME] besides the base (repeatable; default: every
+        /// variant). Its files are named <output>-<variant>.wav.
+        #[arg(long = "variant", value_name = "NAME")]
+        variants: Vec<String>,
         /// Override a value by dotted path (repeatable).
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
@@ -154,30 +158,130 @@ enum Command {
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
     },
+    /// Level-matched A/B of two variants: both renders, an alternating file, a difference
+    /// file, and the figures side by side.
+    Compare {
+        /// The patch file.
+        patch: PathBuf,
+        /// Variant A (a [variants.NAME] or `base`).
+        #[arg(long, value_name = "NAME")]
+        a: String,
+        /// Variant B (a [variants.NAME] or `base`).
+        #[arg(long, value_name = "NAME")]
+        b: String,
+        /// Segment length of the alternating file.
+        #[arg(long, default_value = "2s", value_name = "TIME")]
+        segment: String,
+        /// Level-match B to A by the RMS of the whole output or by integrated loudness
+        /// (ITU-R BS.1770-4).
+        #[arg(long = "match", default_value = "rms", value_parser = ["rms", "loudness"])]
+        matching: String,
+        /// Print the comparison as JSON (it is always written to compare.json).
+        #[arg(long)]
+        json: bool,
+        #[command(flatten)]
+        out: RenderFlags,
+        /// Override a value by dotted path, applied to both sides (repeatable).
+        #[arg(long = "set", value_name = "PATH=VALUE")]
+        sets: Vec<String>,
+    },
+    /// Step one value (a level, a resistor, a frequency, a pot position) and tabulate
+    /// figures at each step.
+    Sweep {
+        /// The patch file.
+        patch: PathBuf,
+        /// What to sweep: PATH=FROM..TO (with --steps), or PATH alone with --values or
+        /// --series and --range.
+        #[arg(long = "set", value_name = "PATH=FROM..TO")]
+        set: String,
+        /// Number of points of a FROM..TO range.
+        #[arg(long, default_value_t = 11)]
+        steps: usize,
+        /// Equal ratios between the points instead of equal steps.
+        #[arg(long)]
+        log: bool,
+        /// An explicit list of values, e.g. 10k,22k,47k.
+        #[arg(long, value_name = "LIST")]
+        values: Option<String>,
+        /// Every IEC 60063 value of this series (E12, E24, E48, E96, E192) within --range.
+        #[arg(long, value_name = "SERIES", requires = "range")]
+        series: Option<String>,
+        /// Range of --series, LO..HI.
+        #[arg(long, value_name = "LO..HI")]
+        range: Option<String>,
+        /// Figures to tabulate, comma-separated (default thd_percent, thdn_db, peak_v,
+        /// headroom_pos_db, headroom_neg_db).
+        #[arg(long, value_name = "LIST")]
+        figure: Option<String>,
+        /// A fixed override for every point (repeatable).
+        #[arg(long = "with", value_name = "PATH=VALUE")]
+        with: Vec<String>,
+        /// Sweep this [variants.NAME] instead of the base patch.
+        #[arg(long, value_name = "NAME")]
+        variant: Option<String>,
+        /// Print CSV.
+        #[arg(long, conflicts_with = "json")]
+        csv: bool,
+        /// Print JSON.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Monte Carlo over every resistor and capacitor within its tolerance.
+    Tolerance {
+        /// The patch file.
+        patch: PathBuf,
+        /// Number of runs.
+        #[arg(long, default_value_t = 200)]
+        runs: usize,
+        /// Resistor tolerance, e.g. 1% (default: that of --series, else 1 %).
+        #[arg(long, value_name = "PERCENT")]
+        tol: Option<String>,
+        /// Capacitor tolerance (default: the resistor tolerance).
+        #[arg(long, value_name = "PERCENT")]
+        cap_tol: Option<String>,
+        /// Take the resistor tolerance from a series: E12 10 %, E24 5 %, E48 2 %, E96 1 %,
+        /// E192 0.5 %.
+        #[arg(long, value_name = "SERIES")]
+        series: Option<String>,
+        /// Study seed (default: the patch seed).
+        #[arg(long)]
+        seed: Option<u64>,
+        /// Render run N of the study (same --tol, --cap-tol and --seed) instead of running it.
+        #[arg(long, value_name = "N")]
+        render_run: Option<usize>,
+        /// Print the whole study as JSON.
+        #[arg(long)]
+        json: bool,
+        #[command(flatten)]
+        out: RenderFlags,
+        /// Override a value by dotted path (repeatable).
+        #[arg(long = "set", value_name = "PATH=VALUE")]
+        sets: Vec<String>,
+    },
 }
 
 /// Flags shared by the commands that write renders.
 #[derive(clap::Args, Debug)]
-struct RenderFlags {
+pub(crate) struct RenderFlags {
     /// Folder to write into (default: renders/<patch name>/).
     #[arg(long, value_name = "DIR")]
-    out: Option<PathBuf>,
+    pub(crate) out: Option<PathBuf>,
     /// Sample format of the WAV files: 16 (TPDF-dithered), 24 or float.
     #[arg(long, default_value = "24", value_parser = ["16", "24", "float"])]
-    depth: String,
+    pub(crate) depth: String,
     /// Scale each file so its RMS sits at this level in dBFS (peaks kept below -1 dBFS)
     /// instead of the patch calibration; for listening, e.g. --listen -18.
     #[arg(long, value_name = "DBFS", allow_negative_numbers = true)]
-    listen: Option<f64>,
+    pub(crate) listen: Option<f64>,
     /// Overwrite files in the folder that railsong did not write.
     #[arg(long)]
-    force: bool,
+    pub(crate) force: bool,
     /// Also write the plots (SVG: spectrum, waveform, transfer curve, THD against level).
     #[arg(long)]
-    plots: bool,
+    pub(crate) plots: bool,
     /// Allow renders longer than 10 minutes.
     #[arg(long)]
-    long: bool,
+    pub(crate) long: bool,
 }
 
 /// Parse the command line and run the command.
@@ -203,13 +307,20 @@ pub fn run() -> Result<(), Failure> {
     match cli.command {
         Command::Check { patch, sets } => cmd_check(&patch, &sets),
         Command::Parts { patch, sets } => cmd_parts(patch.as_deref(), &sets),
-        Command::Render { patch, out, sets } => {
+        Command::Render {
+            patch,
+            out,
+            variants,
+            sets,
+        } => {
             let p = load(&patch, &sets)?;
+            crate::cli_study::check_variants(&patch, &variants)?;
             let stem = patch
                 .file_stem()
                 .map(|s| s.to_string_lossy().into_owned())
                 .unwrap_or_else(|| "patch".into());
-            render_to(&p, &stem, &out).map(|_| ())
+            render_to(&p, &stem, &out, None)?;
+            crate::cli_study::render_variants(&patch, &sets, &variants, &out)
         }
         Command::Demo { out } => cmd_demo(&out),
         Command::Report { patch, out, sets } => cmd_report(&patch, &out, &sets),
@@ -257,10 +368,79 @@ pub fn run() -> Result<(), Failure> {
                 ),
             }
         }
+        Command::Compare {
+            patch,
+            a,
+            b,
+            segment,
+            matching,
+            json,
+            out,
+            sets,
+        } => crate::cli_study::cmd_compare(&crate::cli_study::CompareArgs {
+            patch: &patch,
+            a: &a,
+            b: &b,
+            segment: &segment,
+            matching: &matching,
+            sets: &sets,
+            flags: &out,
+            json,
+        }),
+        Command::Sweep {
+            patch,
+            set,
+            steps,
+            log,
+            values,
+            series,
+            range,
+            figure,
+            with,
+            variant,
+            csv,
+            json,
+        } => crate::cli_study::cmd_sweep(&crate::cli_study::SweepArgs {
+            patch: &patch,
+            set: &set,
+            steps,
+            log,
+            values: values.as_deref(),
+            series: series.as_deref(),
+            range: range.as_deref(),
+            figures: figure.as_deref(),
+            with: &with,
+            variant: variant.as_deref(),
+            csv,
+            json,
+        }),
+        Command::Tolerance {
+            patch,
+            runs,
+            tol,
+            cap_tol,
+            series,
+            seed,
+            render_run,
+            json,
+            out,
+            sets,
+        } => crate::cli_study::cmd_tolerance(&crate::cli_study::ToleranceArgs {
+            patch: &patch,
+            runs,
+            tol: tol.as_deref(),
+            cap_tol: cap_tol.as_deref(),
+            series: series.as_deref(),
+            seed,
+            render_run,
+            sets: &sets,
+            flags: &out,
+            json,
+        }),
     }
 }
 
-fn load(path: &Path, sets: &[String]) -> Result<Patch, Failure> {
+pub(crate) fn load(path: &Path, sets: &[String]) -> Result<Patch, Failure> {
     railsong::patch::load(path, sets).map_err(Failure::bad_input)
 }
 
@@ -399,14 +579,14 @@ fn cmd_parts(path: Option<&Path>, sets: &[String]) -> Result<(), Failure> {
 /// The demo patch, compiled into the binary (the same file as patches/demo.toml).
 const DEMO: &str = include_str!("../patches/demo.toml");
 
-fn failure_io(e: impl std::fmt::Display) -> Failure {
+pub(crate) fn failure_io(e: impl std::fmt::Display) -> Failure {
     Failure {
         code: EXIT_FAILURE,
         message: e.to_string(),
     }
 }
 
-fn render_error(e: RenderError) -> Failure {
+pub(crate) fn render_error(e: RenderError) -> Failure {
     match e {
         // Writing failed (disk full, permissions): not the user's input.
         RenderError::Signal(s) => signal_error(s),
@@ -415,7 +595,7 @@ fn render_error(e: RenderError) -> Failure {
     }
 }
 
-fn signal_error(e: SignalError) -> Failure {
+pub(crate) fn signal_error(e: SignalError) -> Failure {
     match e {
         SignalError::Io { .. } | SignalError::Stream(_) => failure_io(e),
         other => Failure::bad_input(other),
@@ -440,7 +620,7 @@ fn analysis_settings(harmonics: usize, weighting: &str) -> Result<Settings, Fail
 }
 
 /// Keep only the characters allowed in file names.
-fn safe_stem(s: &str) -> String {
+pub(crate) fn safe_stem(s: &str) -> String {
     let t: String = s
         .chars()
         .map(|c| {
@@ -470,7 +650,7 @@ fn progress_bar(frames: usize, rate: f64) -> Option<indicatif::ProgressBar> {
     Some(bar)
 }
 
-fn run_patch(patch: &Patch, alias: bool, show_progress: bool) -> Result<Run, Failure> {
+pub(crate) fn run_patch(patch: &Patch, alias: bool, show_progress: bool) -> Result<Run, Failure> {
     let bar = if show_progress {
         progress_bar(patch.frames(), patch.rate)
     } else {
@@ -492,8 +672,14 @@ fn run_patch(patch: &Patch, alias: bool, show_progress: bool) -> Result<Run, Fai
     Ok(run)
 }
 
-/// Render a patch into its folder; returns the folder.
-fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, Failure> {
+/// Render a patch into its folder; returns the folder. A `variant` render names its files
+/// `<output>-<variant>.wav` and `figures-<variant>.json`.
+pub(crate) fn render_to(
+    patch: &Patch,
+    stem: &str,
+    flags: &RenderFlags,
+    variant: Option<&str>,
+) -> Result<PathBuf, Failure> {
     let dir = flags
         .out
         .clone()
@@ -504,24 +690,26 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
         _ => Depth::Pcm24,
     };
     // Check every file name (and the overwrite guard) before spending time on the render.
+    let suffix = variant.map_or(String::new(), |v| format!("-{v}"));
     let names: Vec<String> = patch
         .outputs
         .iter()
         .map(|o| {
-            o.file
+            let stem = o
+                .file
                 .clone()
-                .map(|f| {
-                    if f.ends_with(".wav") {
-                        f
-                    } else {
-                        format!("{f}.wav")
-                    }
-                })
-                .unwrap_or_else(|| format!("{}.wav", o.name))
+                .map(|f| f.strip_suffix(".wav").map(str::to_string).unwrap_or(f))
+                .unwrap_or_else(|| o.name.clone());
+            format!("{stem}{suffix}.wav")
         })
         .collect();
+    let figures_name = format!("figures{suffix}.json");
     let mut folder = OutputDir::open(&dir, flags.force).map_err(signal_error)?;
-    for n in names.iter().map(String::as_str).chain(["figures.json"]) {
+    for n in names
+        .iter()
+        .map(String::as_str)
+        .chain([figures_name.as_str()])
+    {
         folder.check_writable(n).map_err(signal_error)?;
     }
     check_length(patch, flags.long)?;
@@ -567,7 +755,12 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
         stats.push(f.finish().map_err(signal_error)?);
     }
     let idle = if patch.noise {
-        Some(stream_patch(&render::muted(patch), false, false, &mut |_, _| Ok(()))?)
+        Some(stream_patch(
+            &render::muted(patch),
+            false,
+            false,
+            &mut |_, _| Ok(()),
+        )?)
     } else {
         None
     };
@@ -582,7 +775,10 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
     );
     measure::apply_full_levels(&mut m, patch, &streamed.levels);
 
-    println!("{} -> {}", patch.title, dir.display());
+    match variant {
+        Some(v) => println!("{} (variant {v}) -> {}", patch.title, dir.display()),
+        None => println!("{} -> {}", patch.title, dir.display()),
+    }
     println!(
         "  calibration: {} = 0 dBFS peak{}",
         fmt_eng(patch.full_scale, "V"),
@@ -622,9 +818,9 @@ fn render_to(patch: &Patch, stem: &str, flags: &RenderFlags) -> Result<PathBuf, 
         );
     }
     folder
-        .write_text("figures.json", &measure::to_json(&m))
+        .write_text(&figures_name, &measure::to_json(&m))
         .map_err(signal_error)?;
-    if flags.plots {
+    if flags.plots && variant.is_none() {
         let figs = report::plots(patch, &m, None).map_err(render_error)?;
         for f in &figs {
             folder
@@ -655,7 +851,7 @@ fn stream_patch(
     patch: &Patch,
     alias: bool,
     show_progress: bool,
-    sink: &mut dyn FnMut(usize, &[f64]) -> Result<(), SignalError>,
+    sink: &mut render::Sink,
 ) -> Result<render::Streamed, Failure> {
     let bar = if show_progress {
         progress_bar(patch.frames(), patch.rate)
@@ -741,11 +937,11 @@ fn cmd_report(path: &Path, flags: &RenderFlags, sets: &[String]) -> Result<(), F
     Ok(())
 }
 
-fn db_or_dash(v: Option<f64>, what: &str) -> String {
+pub(crate) fn db_or_dash(v: Option<f64>, what: &str) -> String {
     v.map_or(format!("- {what}"), |d| format!("{d:+.1} dB {what}"))
 }
 
-fn print_events(events: &std::collections::BTreeMap<String, measure::EventSeconds>) {
+pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::EventSeconds>) {
     for (stage, e) in events {
         let mut parts = Vec::new();
         for (label, s) in [
@@ -772,7 +968,7 @@ fn print_events(events: &std::collections::BTreeMap<String, measure::EventSecond
 fn cmd_demo(flags: &RenderFlags) -> Result<(), Failure> {
     let patch = railsong::patch::parse_str(DEMO, "demo.toml", Path::new("."), &[])
         .map_err(Failure::bad_input)?;
-    let dir = render_to(&patch, "demo", flags)?;
+    let dir = render_to(&patch, "demo", flags, None)?;
     println!();
     println!("What to listen for (start quietly: the last two are harsh):");
     println!(
@@ -816,7 +1012,12 @@ fn cmd_measure(
     }
     let streamed = stream_patch(&patch, true, !json && !csv, &mut |_, _| Ok(()))?;
     let idle = if patch.noise {
-        Some(stream_patch(&render::muted(&patch), false, false, &mut |_, _| Ok(()))?)
+        Some(stream_patch(
+            &render::muted(&patch),
+            false,
+            false,
+            &mut |_, _| Ok(()),
+        )?)
     } else {
         None
     };

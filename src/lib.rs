@@ -22,4 +22,5 @@ pub mod plot;
 pub mod render;
 pub mod report;
 pub mod signal;
+pub mod study;
 pub mod units;

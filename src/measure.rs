@@ -350,12 +350,13 @@ pub fn apply_full_levels(
         f.rms_dbv = (l.ac_rms_v > 0.0).then(|| crate::analysis::levels::v_to_dbv(l.ac_rms_v));
         let fs = patch.full_scale;
         f.peak_dbfs = (l.peak_v > 0.0).then(|| crate::analysis::levels::peak_to_dbfs(l.peak_v, fs));
-        f.rms_dbfs = (l.ac_rms_v > 0.0).then(|| crate::analysis::levels::rms_to_dbfs(l.ac_rms_v, fs));
+        f.rms_dbfs =
+            (l.ac_rms_v > 0.0).then(|| crate::analysis::levels::rms_to_dbfs(l.ac_rms_v, fs));
         let (p, n) = crate::analysis::headroom_db(l, &swing_at(patch, i));
         f.headroom_pos_db = p;
         f.headroom_neg_db = n;
     }
-    m.settings.length_s = levels
-        .first()
-        .map_or(m.settings.length_s, |_| patch.length.min(patch.frames() as f64 / patch.rate));
+    m.settings.length_s = levels.first().map_or(m.settings.length_s, |_| {
+        patch.length.min(patch.frames() as f64 / patch.rate)
+    });
 }

@@ -253,13 +253,16 @@ pub struct Streamed {
     pub frames: usize,
 }
 
+/// Where [`render_streaming`] hands each chunk: (output index, samples).
+pub type Sink<'a> = dyn FnMut(usize, &[f64]) -> Result<(), SignalError> + 'a;
+
 /// Render in chunks of a quarter second, handing each chunk of each output to `sink`
 /// (output index, samples) as soon as it exists, so memory stays flat however long the
 /// render. `sink` errors stop the render.
 pub fn render_streaming(
     patch: &Patch,
     opts: &RenderOptions,
-    sink: &mut dyn FnMut(usize, &[f64]) -> Result<(), SignalError>,
+    sink: &mut Sink,
     progress: &mut dyn FnMut(f64),
 ) -> Result<Streamed, RenderError> {
     let plan = engine::compile(&for_compile(patch))?;

@@ -200,7 +200,11 @@ pub const PLOT_MAX_S: f64 = 10.0;
 
 /// Every plot of every output (`only`: one output by name). Renders the patch once more with
 /// probes on every node (at most [`PLOT_MAX_S`] long).
-pub fn plots(patch: &Patch, m: &Measurement, only: Option<&str>) -> Result<Vec<Figure>, RenderError> {
+pub fn plots(
+    patch: &Patch,
+    m: &Measurement,
+    only: Option<&str>,
+) -> Result<Vec<Figure>, RenderError> {
     let mut short = patch.clone();
     short.length = short.length.min(PLOT_MAX_S);
     let patch = &short;

@@ -57,7 +57,9 @@ pub use noise::{PinkNoise, WhiteNoise, PINK_LOW_HZ};
 pub use periodic::{BandLimited, Multitone, Naive, Shape, Sine};
 pub use sweep::LogSweep;
 pub use wav_in::{load_wav, Playback, MAX_RATE, MIN_RATE};
-pub use wav_out::{listen_gain, listen_gain_from, Depth, WavSpec, WavWriter, WriteStats, LISTEN_PEAK_DBFS};
+pub use wav_out::{
+    listen_gain, listen_gain_from, Depth, WavSpec, WavWriter, WriteStats, LISTEN_PEAK_DBFS,
+};
 
 /// A block-based signal generator.
 ///
