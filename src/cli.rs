@@ -129,6 +129,15 @@ enum Command {
     Report {
         /// The patch file.
         patch: PathBuf,
+        /// Compare: side A (`base` or a [variants.NAME]); needs --b.
+        #[arg(long, value_name = "NAME", requires = "b")]
+        a: Option<String>,
+        /// Compare: side B (`base` or a [variants.NAME]); needs --a.
+        #[arg(long, value_name = "NAME", requires = "a")]
+        b: Option<String>,
+        /// Segment length of the alternating A/B file.
+        #[arg(long, default_value = "2 s")]
+        segment: String,
         #[command(flatten)]
         out: RenderFlags,
         /// Override a value by dotted path (repeatable).
@@ -323,7 +332,23 @@ pub fn run() -> Result<(), Failure> {
             crate::cli_study::render_variants(&patch, &sets, &variants, &out)
         }
         Command::Demo { out } => cmd_demo(&out),
-        Command::Report { patch, out, sets } => cmd_report(&patch, &out, &sets),
+        Command::Report {
+            patch,
+            a,
+            b,
+            segment,
+            out,
+            sets,
+        } => {
+            let ab = a.zip(b);
+            cmd_report(
+                &patch,
+                &out,
+                &sets,
+                ab.as_ref()
+                    .map(|(a, b)| (a.as_str(), b.as_str(), segment.as_str())),
+            )
+        }
         Command::Noise {
             patch,
             output,
@@ -876,7 +901,12 @@ fn stream_patch(
 /// Longest stretch the listening page embeds, s.
 const REPORT_MAX_S: f64 = 60.0;
 
-fn cmd_report(path: &Path, flags: &RenderFlags, sets: &[String]) -> Result<(), Failure> {
+fn cmd_report(
+    path: &Path,
+    flags: &RenderFlags,
+    sets: &[String],
+    ab: Option<(&str, &str, &str)>,
+) -> Result<(), Failure> {
     let mut patch = load(path, sets)?;
     if patch.length > REPORT_MAX_S {
         println!(
@@ -897,26 +927,71 @@ fn cmd_report(path: &Path, flags: &RenderFlags, sets: &[String]) -> Result<(), F
         .unwrap_or_else(|| Path::new("renders").join(safe_stem(&stem)));
     let mut folder = OutputDir::open(&dir, flags.force).map_err(signal_error)?;
     folder.check_writable("report.html").map_err(signal_error)?;
-    let run = run_patch(&patch, true, true)?;
-    let m = measure::measure(&patch, &run, None, &Settings::default(), None, None);
-    let figs = report::plots(&patch, &m, None).map_err(render_error)?;
-    let players: Vec<report::Player> = run
-        .outputs
-        .iter()
-        .map(|o| {
-            let f = &m.outputs[&o.name].figures;
-            report::Player {
-                label: o.name.clone(),
-                note: format!(
-                    "peak {}, rms {}",
-                    f.peak_v.map_or("-".into(), |v| fmt_eng(v, "V")),
-                    f.rms_v.map_or("-".into(), |v| fmt_eng(v, "V"))
-                ),
-                samples: &o.samples,
+    let (patch, run, m, comparison) = match ab {
+        None => {
+            let run = run_patch(&patch, true, true)?;
+            let m = measure::measure(&patch, &run, None, &Settings::default(), None, None);
+            (patch, run, m, None)
+        }
+        Some((a, b, segment)) => {
+            let seg = units::parse_time(segment)
+                .map_err(|e| Failure::bad_input(format!("--segment {segment}: {e}")))?;
+            let mut sets = sets.to_vec();
+            if patch.length < REPORT_MAX_S {
+                sets.push(format!("patch.length={} s", patch.length));
             }
-        })
-        .collect();
-    let html = report::page(&patch, &text, &m, &figs, &players, &[]);
+            let c = crate::cli_study::compare_sides(path, a, b, &sets, seg, "rms", true)?;
+            (c.pa, c.ra, c.ma, Some((c.results, a, b)))
+        }
+    };
+    let figs = report::plots(&patch, &m, None).map_err(render_error)?;
+    let mut players: Vec<report::Player> = Vec::new();
+    let mut sections = Vec::new();
+    match &comparison {
+        None => {
+            for o in &run.outputs {
+                let f = &m.outputs[&o.name].figures;
+                players.push(report::Player {
+                    label: o.name.clone(),
+                    note: format!(
+                        "peak {}, rms {}",
+                        f.peak_v.map_or("-".into(), |v| fmt_eng(v, "V")),
+                        f.rms_v.map_or("-".into(), |v| fmt_eng(v, "V"))
+                    ),
+                    samples: &o.samples,
+                });
+            }
+        }
+        Some((results, a, b)) => {
+            for (o, c) in run.outputs.iter().zip(results) {
+                players.push(report::Player {
+                    label: format!("{} A", o.name),
+                    note: format!("A = {a}"),
+                    samples: &o.samples,
+                });
+                players.push(report::Player {
+                    label: format!("{} B", o.name),
+                    note: format!("B = {b}, matched: {:+.2} dB", c.gain_db),
+                    samples: &c.b_matched,
+                });
+                players.push(report::Player {
+                    label: format!("{} A/B", o.name),
+                    note: "alternating A, B, A, B ...".into(),
+                    samples: &c.alternating,
+                });
+                players.push(report::Player {
+                    label: format!("{} difference", o.name),
+                    note: match c.difference_below_db {
+                        Some(d) => format!("A minus matched B, {d:.1} dB below the signal"),
+                        None => "A minus matched B: silent".into(),
+                    },
+                    samples: &c.difference,
+                });
+            }
+            sections.push(report::comparison_section(results, a, b));
+        }
+    }
+    let html = report::page(&patch, &text, &m, &figs, &players, &sections);
     folder
         .write_text("report.html", &html)
         .map_err(signal_error)?;

@@ -5,7 +5,9 @@
 use std::path::{Path, PathBuf};
 
 use railsong::analysis::Settings;
+use railsong::engine::Run;
 use railsong::measure;
+use railsong::measure::Measurement;
 use railsong::model::Patch;
 use railsong::parts::eseries::Series;
 use railsong::signal::{self, Depth, OutputDir, WavSpec};
@@ -143,16 +145,37 @@ pub(crate) struct CompareArgs<'a> {
 }
 
 /// `railsong compare`.
-pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
-    let seg = units::parse_time(args.segment)
-        .map_err(|e| Failure::bad_input(format!("--segment {}: {e}", args.segment)))?;
-    let pa = load_side(args.patch, args.a, args.sets)?;
-    let pb = load_side(args.patch, args.b, args.sets)?;
+/// Both sides of a comparison, rendered, measured and compared output by output.
+pub(crate) struct Compared {
+    /// Patch A.
+    pub pa: Patch,
+    /// Render of A.
+    pub ra: Run,
+    /// Figures of A.
+    pub ma: Measurement,
+    /// One comparison per output.
+    pub results: Vec<OutputComparison>,
+    /// How B was matched.
+    pub matching: compare::Matching,
+    /// The alternating file's layout.
+    pub layout: Alternation,
+}
+
+/// Load, render, measure and compare the two sides `a` and `b` (`base` or a variant).
+pub(crate) fn compare_sides(
+    path: &Path,
+    a: &str,
+    b: &str,
+    sets: &[String],
+    segment_s: f64,
+    matching: &str,
+    progress: bool,
+) -> Result<Compared, Failure> {
+    let pa = load_side(path, a, sets)?;
+    let pb = load_side(path, b, sets)?;
     if pa.rate != pb.rate || pa.frames() != pb.frames() {
         return Err(Failure::bad_input(format!(
-            "compare {} and {}: both need the same rate and length (found {} / {} and {} / {})",
-            args.a,
-            args.b,
+            "compare {a} and {b}: both need the same rate and length (found {} / {} and {} / {})",
             fmt_eng(pa.rate, "Hz"),
             fmt_eng(pa.length, "s"),
             fmt_eng(pb.rate, "Hz"),
@@ -162,19 +185,55 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     let names = |p: &Patch| p.outputs.iter().map(|o| o.name.clone()).collect::<Vec<_>>();
     if names(&pa) != names(&pb) {
         return Err(Failure::bad_input(format!(
-            "compare {} and {}: both need the same outputs (found {} and {})",
-            args.a,
-            args.b,
+            "compare {a} and {b}: both need the same outputs (found {} and {})",
             names(&pa).join(", "),
             names(&pb).join(", ")
         )));
     }
-    let matching = if args.matching == "loudness" {
+    let matching = if matching == "loudness" {
         compare::Matching::Loudness
     } else {
         compare::Matching::Rms
     };
-    let layout = Alternation::new(pa.frames(), pa.rate, seg, FADE_S).map_err(study_error)?;
+    let layout = Alternation::new(pa.frames(), pa.rate, segment_s, FADE_S).map_err(study_error)?;
+    let (ra, rb) = (
+        run_patch(&pa, false, progress)?,
+        run_patch(&pb, false, progress)?,
+    );
+    let settings = Settings::default();
+    let ma = measure::measure(&pa, &ra, None, &settings, None, None);
+    let mb = measure::measure(&pb, &rb, None, &settings, None, None);
+    let mut results = Vec::new();
+    for (oa, ob) in ra.outputs.iter().zip(&rb.outputs) {
+        results.push(
+            compare::compare_output(
+                &oa.name,
+                &oa.samples,
+                &ob.samples,
+                &ma.outputs[&oa.name],
+                &mb.outputs[&ob.name],
+                &layout,
+                pa.full_scale,
+                matching,
+            )
+            .map_err(study_error)?,
+        );
+    }
+    Ok(Compared {
+        pa,
+        ra,
+        ma,
+        results,
+        matching,
+        layout,
+    })
+}
+
+pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
+    let seg = units::parse_time(args.segment)
+        .map_err(|e| Failure::bad_input(format!("--segment {}: {e}", args.segment)))?;
+    // Refuse early, before rendering, when the folder holds files railsong did not write.
+    let pa = load_side(args.patch, args.a, args.sets)?;
     let dir = args.flags.out.clone().unwrap_or_else(|| {
         Path::new("renders").join(safe_stem(&format!(
             "{}-{}-vs-{}",
@@ -201,26 +260,23 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         .check_writable("compare.json")
         .map_err(signal_error)?;
 
-    let (ra, rb) = (
-        run_patch(&pa, false, !args.json)?,
-        run_patch(&pb, false, !args.json)?,
-    );
-    let settings = Settings::default();
-    let ma = measure::measure(&pa, &ra, None, &settings, None, None);
-    let mb = measure::measure(&pb, &rb, None, &settings, None, None);
+    let Compared {
+        ra,
+        results: compared,
+        matching,
+        layout,
+        ..
+    } = compare_sides(
+        args.patch,
+        args.a,
+        args.b,
+        args.sets,
+        seg,
+        args.matching,
+        !args.json,
+    )?;
     let mut results: Vec<OutputComparison> = Vec::new();
-    for (oa, ob) in ra.outputs.iter().zip(&rb.outputs) {
-        let c = compare::compare_output(
-            &oa.name,
-            &oa.samples,
-            &ob.samples,
-            &ma.outputs[&oa.name],
-            &mb.outputs[&ob.name],
-            &layout,
-            pa.full_scale,
-            matching,
-        )
-        .map_err(study_error)?;
+    for (oa, c) in ra.outputs.iter().zip(compared) {
         let spec = WavSpec {
             rate: pa.rate.round() as u32,
             channels: 1,

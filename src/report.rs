@@ -650,3 +650,74 @@ fn strip_xml_prolog(svg: &str) -> &str {
         None => svg,
     }
 }
+
+/// The A/B block of the page: per output, the matching gain, the difference level, the key
+/// of the alternating file, the figures side by side and the sentences for what moved.
+pub fn comparison_section(
+    results: &[crate::study::compare::OutputComparison],
+    a: &str,
+    b: &str,
+) -> String {
+    use crate::study::compare::Matching;
+    let mut h = String::new();
+    let _ = writeln!(h, "<h2>A/B: {} against {}</h2>", escape(a), escape(b));
+    for c in results {
+        let _ = writeln!(
+            h,
+            "<section class=\"comparison\" data-output=\"{}\"><h3>output {}</h3>",
+            escape(&c.output),
+            escape(&c.output)
+        );
+        let by = match c.matched_by {
+            Matching::Rms => "RMS of the whole output",
+            Matching::Loudness => "integrated loudness (ITU-R BS.1770-4)",
+        };
+        let _ = writeln!(
+            h,
+            "<p class=\"matching\">B matched to A by {by}: gain <b>{:+.2} dB</b>. {}</p>",
+            c.gain_db,
+            match c.difference_below_db {
+                Some(d) =>
+                    format!("The difference (A minus matched B) sits {d:.1} dB below the signal."),
+                None =>
+                    "The difference (A minus matched B) is silent: the two are identical.".into(),
+            }
+        );
+        let key: Vec<String> = c
+            .segments
+            .iter()
+            .map(|s| format!("{} {:.2}&ndash;{:.2} s", s.side.label(), s.start_s, s.end_s))
+            .collect();
+        let _ = writeln!(
+            h,
+            "<p class=\"key\">Alternating file: {}</p>",
+            key.join(", ")
+        );
+        let _ = writeln!(
+            h,
+            "<table class=\"ab\"><tr><th>figure</th><th>A</th><th>B</th><th>B &minus; A</th><th>unit</th></tr>"
+        );
+        for r in &c.figures {
+            let v = |x: Option<f64>| x.map_or("&ndash;".to_string(), |x| format!("{x:.4}"));
+            let _ = writeln!(
+                h,
+                "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+                r.figure,
+                v(r.a),
+                v(r.b),
+                r.delta
+                    .map_or("&ndash;".to_string(), |d| format!("{d:+.4}")),
+                escape(r.unit)
+            );
+        }
+        let _ = writeln!(h, "</table><ul class=\"changes\">");
+        if c.changes.is_empty() {
+            let _ = writeln!(h, "<li>no figure moved beyond its threshold</li>");
+        }
+        for s in &c.changes {
+            let _ = writeln!(h, "<li>{}</li>", escape(s));
+        }
+        let _ = writeln!(h, "</ul></section>");
+    }
+    h
+}

@@ -148,3 +148,45 @@ fn report_page_loads_every_plot_and_player_in_a_browser() {
     let keep = Path::new(env!("CARGO_TARGET_TMPDIR")).join("report.png");
     let _ = std::fs::copy(&shot, keep);
 }
+
+// Inverting gain -Rf/Rin (textbook): the "hot" variant has 3.3 times the feedback resistor,
+// so before clipping it would be 10.4 dB louder; matched by RMS, B comes back down by about
+// that much (a little less, since it clips on the rails).
+#[test]
+fn comparison_page_has_the_four_players_and_the_differences() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path().to_str().unwrap();
+    let out = railsong(&[
+        "report",
+        "patches/ab-feedback.toml",
+        "--a",
+        "base",
+        "--b",
+        "hot",
+        "--out",
+        d,
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let html = std::fs::read_to_string(dir.path().join("report.html")).unwrap();
+    assert_eq!(html.matches("<audio").count(), 4);
+    for label in ["main A", "main B", "main A/B", "main difference"] {
+        assert!(html.contains(&format!("data-name=\"{label}\"")), "{label}");
+    }
+    assert!(html.contains("class=\"comparison\""));
+    assert!(html.contains("B clips for"));
+    let gain: f64 = html
+        .split("gain <b>")
+        .nth(1)
+        .and_then(|r| r.split(" dB").next())
+        .and_then(|g| g.trim().parse().ok())
+        .expect("matching gain on the page");
+    let ideal = -20.0 * 3.3f64.log10();
+    assert!(
+        gain < 0.0 && gain > ideal - 0.5 && gain < ideal + 3.0,
+        "{gain} vs {ideal}"
+    );
+}
