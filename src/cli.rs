@@ -234,6 +234,15 @@ enum Command {
         /// Print JSON.
         #[arg(long)]
         json: bool,
+        /// Also write a plot (SVG) of each figure against the swept value into --out.
+        #[arg(long)]
+        plots: bool,
+        /// Folder for --plots (default: renders/<patch name>/).
+        #[arg(long, value_name = "DIR")]
+        out: Option<PathBuf>,
+        /// Overwrite plot files railsong did not write.
+        #[arg(long)]
+        force: bool,
     },
     /// Monte Carlo over every resistor and capacitor within its tolerance.
     Tolerance {
@@ -425,6 +434,9 @@ pub fn run() -> Result<(), Failure> {
             variant,
             csv,
             json,
+            plots,
+            out,
+            force,
         } => crate::cli_study::cmd_sweep(&crate::cli_study::SweepArgs {
             patch: &patch,
             set: &set,
@@ -438,6 +450,7 @@ pub fn run() -> Result<(), Failure> {
             variant: variant.as_deref(),
             csv,
             json,
+            plots: plots.then_some((out, force)),
         }),
         Command::Tolerance {
             patch,

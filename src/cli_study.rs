@@ -396,6 +396,8 @@ pub(crate) struct SweepArgs<'a> {
     pub variant: Option<&'a str>,
     pub csv: bool,
     pub json: bool,
+    /// Write plots: (folder, force).
+    pub plots: Option<(Option<PathBuf>, bool)>,
 }
 
 fn split_range<'s>(flag: &str, s: &'s str) -> Result<(&'s str, &'s str), Failure> {
@@ -489,6 +491,15 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
         .map_err(study_error)?;
     pb.finish_and_clear();
 
+    let mut folder = match &args.plots {
+        Some((dir, force)) => {
+            let dir = dir
+                .clone()
+                .unwrap_or_else(|| Path::new("renders").join(safe_stem(&stem_of(args.patch))));
+            Some(OutputDir::open(&dir, *force).map_err(signal_error)?)
+        }
+        None => None,
+    };
     let mut json_out = serde_json::Map::new();
     if args.csv {
         println!("output,path,value,{}", figures.join(","));
@@ -515,6 +526,61 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
             .collect();
         let at1 = sweep::crossing(&thd, 1.0);
         let at01 = sweep::crossing(&thd, 0.1);
+        if let Some(folder) = folder.as_mut() {
+            let log_x = args.log || args.series.is_some();
+            for (k, f) in figures.iter().enumerate() {
+                let pts: Vec<(f64, f64)> = rows
+                    .iter()
+                    .filter_map(|(v, fs)| fs[k].map(|y| (v.x, y)))
+                    .filter(|(x, y)| x.is_finite() && y.is_finite())
+                    .collect();
+                let log_y = f == "thd_percent" && pts.iter().all(|p| p.1 > 0.0);
+                if pts.len() < 2 || (log_x && pts.iter().any(|p| p.0 <= 0.0)) {
+                    continue;
+                }
+                let axis = |log: bool, label: &str, unit: &str| {
+                    if log {
+                        railsong::plot::AxisSpec::log(label, unit)
+                    } else {
+                        railsong::plot::AxisSpec::linear(label, unit)
+                    }
+                };
+                let crossings: Vec<railsong::plot::Crossing> = if f == "thd_percent" {
+                    at1.map(|x| railsong::plot::Crossing {
+                        x,
+                        y: 1.0,
+                        label: format!("1 % THD at {}", fmt_eng(x, "")),
+                    })
+                    .into_iter()
+                    .collect()
+                } else {
+                    Vec::new()
+                };
+                let title = format!("{}: {f} against {path}", o.name);
+                let caption = format!("{} points; each a full render and measurement", pts.len());
+                let series = [railsong::plot::SweepSeries {
+                    name: f,
+                    points: &pts,
+                }];
+                let svg = railsong::plot::sweep_svg(&railsong::plot::SweepPlot {
+                    title: &title,
+                    caption: &caption,
+                    x: axis(log_x, &path, ""),
+                    y: axis(log_y, f, ""),
+                    series: &series,
+                    crossings: &crossings,
+                    threshold: (f == "thd_percent").then(|| railsong::plot::Threshold {
+                        y: 1.0,
+                        label: "1 % THD".into(),
+                    }),
+                });
+                if let Ok(svg) = svg {
+                    folder
+                        .write_text(&format!("{}-sweep-{f}.svg", o.name), &svg)
+                        .map_err(signal_error)?;
+                }
+            }
+        }
         if args.json {
             let points: Vec<serde_json::Value> = rows
                 .iter()
@@ -690,6 +756,36 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
     let rep = tolerance::study(&patch, &tol, args.runs, seed, &Settings::default(), &tick)
         .map_err(study_error)?;
     pb.finish_and_clear();
+    if args.flags.plots {
+        let dir = args
+            .flags
+            .out
+            .clone()
+            .unwrap_or_else(|| Path::new("renders").join(safe_stem(&stem_of(args.patch))));
+        let mut folder = OutputDir::open(&dir, args.flags.force).map_err(signal_error)?;
+        for (k, o) in patch.outputs.iter().enumerate() {
+            let gains: Vec<f64> = rep.runs.iter().map(|r| r.outputs[k].gain_db).collect();
+            let title = format!("{}: gain spread over {} runs", o.name, rep.runs.len());
+            let caption = format!(
+                "resistors +/-{} %, capacitors +/-{} % (uniform), seed {}; Freedman-Diaconis bins",
+                tol.resistor * 100.0,
+                tol.capacitor * 100.0,
+                rep.seed
+            );
+            let svg = railsong::plot::histogram_svg(&railsong::plot::HistogramPlot {
+                title: &title,
+                caption: &caption,
+                values: &gains,
+                x: railsong::plot::AxisSpec::linear("Gain change", "dB"),
+                rule: railsong::plot::BinRule::FreedmanDiaconis,
+            });
+            if let Ok(svg) = svg {
+                folder
+                    .write_text(&format!("{}-tolerance-gain.svg", o.name), &svg)
+                    .map_err(signal_error)?;
+            }
+        }
+    }
     if args.json {
         println!(
             "{}",

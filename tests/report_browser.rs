@@ -190,3 +190,58 @@ fn comparison_page_has_the_four_players_and_the_differences() {
         "{gain} vs {ideal}"
     );
 }
+
+// The follower's swing limit is 12 V - 1.3 V = 10.7 V (bipolar-lownoise, from memory): THD
+// crosses 1 % just below it, and the sweep plot marks that crossing. The tolerance histogram
+// holds every run (Freedman-Diaconis bins).
+#[test]
+fn sweep_and_tolerance_plots_are_valid_svg_with_their_marks() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path().to_str().unwrap();
+    let out = railsong(&[
+        "sweep",
+        "patches/reversal-buffer.toml",
+        "--set",
+        "sources.osc.amp=2Vpk..11Vpk",
+        "--steps",
+        "6",
+        "--log",
+        "--with",
+        "stages.buffer.part=bipolar-lownoise",
+        "--plots",
+        "--out",
+        d,
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let svg = std::fs::read_to_string(dir.path().join("folded-sweep-thd_percent.svg")).unwrap();
+    let root = plot_xml::parse(&svg).unwrap();
+    let crossing = root.by_class("crossing");
+    assert_eq!(crossing.len(), 1, "one 1 % crossing");
+    let out = railsong(&[
+        "tolerance",
+        "patches/clean-mix.toml",
+        "--runs",
+        "40",
+        "--plots",
+        "--out",
+        d,
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let svg = std::fs::read_to_string(dir.path().join("main-tolerance-gain.svg")).unwrap();
+    let root = plot_xml::parse(&svg).unwrap();
+    let counted: f64 = root
+        .descendants()
+        .iter()
+        .filter(|e| e.has_class("bin"))
+        .map(|e| e.num("data-count"))
+        .sum();
+    assert_eq!(counted, 40.0);
+}
