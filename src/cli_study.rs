@@ -153,6 +153,10 @@ pub(crate) struct Compared {
     pub ra: Run,
     /// Figures of A.
     pub ma: Measurement,
+    /// Patch B.
+    pub pb: Patch,
+    /// Figures of B.
+    pub mb: Measurement,
     /// One comparison per output.
     pub results: Vec<OutputComparison>,
     /// How B was matched.
@@ -223,6 +227,8 @@ pub(crate) fn compare_sides(
         pa,
         ra,
         ma,
+        pb,
+        mb,
         results,
         matching,
         layout,
@@ -262,6 +268,9 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
 
     let Compared {
         ra,
+        ma,
+        pb,
+        mb,
         results: compared,
         matching,
         layout,
@@ -317,6 +326,16 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     folder
         .write_text("compare.json", &text)
         .map_err(signal_error)?;
+    if args.flags.plots {
+        for (side, p, m) in [("A", &pa, &ma), ("B", &pb, &mb)] {
+            let figs = railsong::report::plots(p, m, None).map_err(crate::cli::render_error)?;
+            for f in figs {
+                folder
+                    .write_text(&format!("{}-{side}-{}.svg", f.output, f.kind), &f.svg)
+                    .map_err(signal_error)?;
+            }
+        }
+    }
     if args.json {
         println!("{text}");
         return Ok(());
