@@ -115,6 +115,7 @@
 
 pub mod feed;
 pub mod halfband;
+pub mod noise;
 pub mod plan;
 pub mod probe;
 mod run;
