@@ -171,7 +171,7 @@ impl Engine {
         let out_base = vec![vec![0.0; b / plan.oversample]; plan.outputs.len()];
         let fs = plan.internal_rate;
         let stream = |white: f64, flicker: f64, seed: u64| {
-            let s = NoiseStream::new(white, flicker, fs, seed);
+            let s = NoiseStream::new(white, flicker, fs, seed, b);
             (plan.noise && !s.is_silent()).then_some(s)
         };
         let stage_noise: Vec<Option<NoiseStream>> = plan
