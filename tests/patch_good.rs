@@ -421,7 +421,8 @@ fn defaults_of_a_minimal_patch() {
     assert_eq!(p.length, 2.0);
     assert_eq!(p.oversample, 4);
     assert_eq!(p.seed, 1);
-    assert!(!p.noise);
+    // Circuit noise is on by default for renders (project decision, patches/README.md).
+    assert!(p.noise);
     // 25 C = 298.15 K (SI definition of the degree Celsius) [S].
     assert!(close(p.temperature, 298.15));
     // Default calibration: 1.25 times the larger rail (Gibbs margin of a rail-to-rail step).

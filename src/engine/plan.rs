@@ -52,6 +52,11 @@ pub struct Plan {
     /// Band-limited clipper evaluation (on by default; off gives the naive clip for
     /// comparison).
     pub antialias: bool,
+    /// Whether circuit noise is simulated (`patch.noise`); the densities are in the stage and
+    /// output plans either way.
+    pub noise: bool,
+    /// Circuit temperature, K (thermal noise).
+    pub temperature: f64,
 }
 
 /// A planned source.
@@ -194,6 +199,14 @@ pub struct StagePlan {
     pub rest_vf: f64,
     /// Rest value of p, V.
     pub rest_p: f64,
+    /// One-sided density of the combined white noise in `p` (all resistors' thermal noise
+    /// through their Millman weights, `en`, current noise through the resistances it sees),
+    /// V/sqrt(Hz).
+    pub noise_white: f64,
+    /// 1/f part of the voltage noise: density^2 = `noise_flicker^2 / f` (`en sqrt(fc)`), V.
+    pub noise_flicker: f64,
+    /// Seed of this stage's noise stream.
+    pub noise_seed: u64,
 }
 
 /// A passive stage (attenuator), folded into the taps of its consumers.
@@ -222,6 +235,11 @@ pub struct OutputPlan {
     pub rth: f64,
     /// Rest value, V.
     pub rest: f64,
+    /// One-sided density of the output's thermal noise: the series side (series resistor
+    /// plus the tap's Thevenin resistance) in parallel with the load, V/sqrt(Hz).
+    pub noise_density: f64,
+    /// Seed of this output's noise stream.
+    pub noise_seed: u64,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -362,6 +380,12 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
     let fs = patch.rate * k as f64;
     let h = 1.0 / fs;
     let ns = patch.sources.len();
+    // 4 k T: thermal noise density^2 per ohm, V^2/(Hz ohm).
+    let four_kt = if patch.temperature.is_finite() && patch.temperature > 0.0 {
+        4.0 * crate::noise::BOLTZMANN * patch.temperature
+    } else {
+        0.0
+    };
 
     // Sources.
     let mut sources = Vec::new();
@@ -565,6 +589,11 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
             _ => 0.0,
         };
         let ib = if part.ib.is_finite() { part.ib } else { 0.0 };
+        let nonneg = |x: f64| if x.is_finite() && x > 0.0 { x } else { 0.0 };
+        let (en, fc, inoise) = (nonneg(part.en), nonneg(part.en_corner), nonneg(part.inoise));
+        // White noise power densities at V+ and V- (V^2/Hz); en is at V+ in every topology.
+        let mut n_plus = en * en;
+        let n_minus;
         let vos = if part.vos.is_finite() { part.vos } else { 0.0 };
         let mut minus = Vec::new();
         let mut taps = Vec::new();
@@ -643,6 +672,15 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                     });
                 }
                 g_fb_load = gf;
+                // Series noise voltages of every input branch (its resistor and the tap's
+                // Thevenin resistance) and of Rf enter V- at their Millman weights; in- flows
+                // into the node's total conductance.
+                n_minus = minus
+                    .iter()
+                    .map(|m| m.mu * m.mu * four_kt * m.r)
+                    .sum::<f64>()
+                    + (gf / gtot).powi(2) * four_kt * feedback.r
+                    + (inoise / gtot).powi(2);
                 let gd = dc_g + gf;
                 a_dc = (dc_num - ib) / gd;
                 beta_dc = gf / gd;
@@ -679,6 +717,10 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                     });
                 }
                 g_fb_load = 1.0 / (r_fb + r_g);
+                n_minus = (gg / gtot).powi(2) * four_kt * r_g
+                    + (gf / gtot).powi(2) * four_kt * r_fb
+                    + (inoise / gtot).powi(2);
+                n_plus += four_kt * t.rth + (inoise * t.rth).powi(2);
                 a_dc = (gg * reference - ib) / (gg + gf);
                 beta_dc = gf / (gg + gf);
                 vp_rest = plus_const + t.gain * rest_node[t.base];
@@ -697,6 +739,8 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                 });
                 taps.push(t.base);
                 g_fb_load = 0.0;
+                n_minus = 0.0;
+                n_plus += four_kt * t.rth + (inoise * t.rth).powi(2);
                 a_dc = 0.0;
                 beta_dc = 1.0;
                 vp_rest = plus_const + t.gain * rest_node[t.base];
@@ -824,6 +868,9 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
             rest_vc,
             rest_vf,
             rest_p,
+            noise_white: (n_plus + n_minus).sqrt(),
+            noise_flicker: en * fc.sqrt(),
+            noise_seed: super::noise::stream_seed(patch.seed, &format!("stages.{}", st.name), "vd"),
         });
     }
 
@@ -841,6 +888,12 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
             Some(l) => l / (out.series + t.rth + l),
             None => 1.0,
         };
+        let rs = (out.series + t.rth).max(0.0);
+        let r_out = match out.load {
+            Some(l) if l > 0.0 && rs > 0.0 => rs * l / (rs + l),
+            Some(_) => 0.0,
+            None => rs,
+        };
         let delay = latency - node_lat[t.base];
         history = history.max(delay);
         outputs.push(OutputPlan {
@@ -850,6 +903,12 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
             gain: t.gain * div,
             rth: t.rth,
             rest: t.gain * div * rest_node[t.base],
+            noise_density: (four_kt * r_out).sqrt(),
+            noise_seed: super::noise::stream_seed(
+                patch.seed,
+                &format!("outputs.{}", out.name),
+                "thermal",
+            ),
         });
     }
 
@@ -881,6 +940,8 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
         discard,
         history,
         antialias: true,
+        noise: patch.noise,
+        temperature: patch.temperature,
     })
 }
 
@@ -991,6 +1052,26 @@ impl std::fmt::Display for Plan {
                 o.rth,
                 o.delay
             )?;
+        }
+        if self.noise {
+            writeln!(f, "  noise at {} K:", self.temperature)?;
+            for s in &self.stages {
+                writeln!(
+                    f,
+                    "    stage `{}`: white {:.3} nV/rtHz in Vd, 1/f {:.3} nV/rtHz at 1 Hz",
+                    s.name,
+                    s.noise_white * 1e9,
+                    s.noise_flicker * 1e9
+                )?;
+            }
+            for o in &self.outputs {
+                writeln!(
+                    f,
+                    "    output `{}`: thermal {:.3} nV/rtHz",
+                    o.name,
+                    o.noise_density * 1e9
+                )?;
+            }
         }
         write!(
             f,

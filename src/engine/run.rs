@@ -2,6 +2,7 @@
 
 use super::feed::{SourceFeed, ToneFeed};
 use super::halfband::Decimator;
+use super::noise::NoiseStream;
 use super::plan::{Plan, StagePlan, FAST_VD};
 use super::StageEvents;
 
@@ -65,6 +66,13 @@ pub struct Engine {
     qbuf: Vec<f64>,
     decims: Vec<Decimator>,
     out_base: Vec<Vec<f64>>,
+    /// Noise streams of the stages (`None`: noise off or silent stage) and their block
+    /// buffers.
+    stage_noise: Vec<Option<NoiseStream>>,
+    nbuf: Vec<Vec<f64>>,
+    /// Noise streams of the outputs and one scratch block for the noisy output.
+    out_noise: Vec<Option<NoiseStream>>,
+    obuf: Vec<f64>,
     pos: usize,
     avail: usize,
     skip: usize,
@@ -161,6 +169,36 @@ impl Engine {
             .map(|_| Decimator::new(plan.oversample, b))
             .collect();
         let out_base = vec![vec![0.0; b / plan.oversample]; plan.outputs.len()];
+        let fs = plan.internal_rate;
+        let stream = |white: f64, flicker: f64, seed: u64| {
+            let s = NoiseStream::new(white, flicker, fs, seed, b);
+            (plan.noise && !s.is_silent()).then_some(s)
+        };
+        let stage_noise: Vec<Option<NoiseStream>> = plan
+            .stages
+            .iter()
+            .map(|s| stream(s.noise_white, s.noise_flicker, s.noise_seed))
+            .collect();
+        let nbuf = stage_noise
+            .iter()
+            .map(|s| {
+                if s.is_some() {
+                    vec![0.0; b]
+                } else {
+                    Vec::new()
+                }
+            })
+            .collect();
+        let out_noise: Vec<Option<NoiseStream>> = plan
+            .outputs
+            .iter()
+            .map(|o| stream(o.noise_density, 0.0, o.noise_seed))
+            .collect();
+        let obuf = if out_noise.iter().any(Option::is_some) {
+            vec![0.0; b]
+        } else {
+            Vec::new()
+        };
         let mut e = Engine {
             feeds: all,
             bufs,
@@ -171,6 +209,10 @@ impl Engine {
             qbuf: vec![0.0; b],
             decims,
             out_base,
+            stage_noise,
+            nbuf,
+            out_noise,
+            obuf,
             pos: 0,
             avail: 0,
             skip: plan.discard,
@@ -223,6 +265,14 @@ impl Engine {
         }
         for (d, o) in self.decims.iter_mut().zip(&self.plan.outputs) {
             d.reset(o.rest);
+        }
+        for s in self
+            .stage_noise
+            .iter_mut()
+            .chain(self.out_noise.iter_mut())
+            .flatten()
+        {
+            s.reset();
         }
         self.pos = 0;
         self.avail = 0;
@@ -297,8 +347,18 @@ impl Engine {
         for (i, f) in self.feeds.iter_mut().enumerate() {
             f.fill(&mut self.bufs[i][hist..hist + b]);
         }
+        // Noise of the block, generated once before the path decision so that the fast path
+        // and the full model see the same samples.
+        for (s, nb) in self.stage_noise.iter_mut().zip(self.nbuf.iter_mut()) {
+            if let Some(s) = s {
+                s.fill(nb);
+            }
+        }
         for si in 0..self.plan.stages.len() {
             let sp = &self.plan.stages[si];
+            let noise = self.stage_noise[si]
+                .as_ref()
+                .map(|_| self.nbuf[si].as_slice());
             let mut own = std::mem::take(&mut self.bufs[sp.node]);
             let st = &mut self.states[si];
             let mut ok = false;
@@ -309,6 +369,7 @@ impl Engine {
                     st,
                     &self.bufs,
                     hist,
+                    noise,
                     &mut self.xbuf,
                     &mut self.pbuf,
                     &mut self.qbuf,
@@ -326,6 +387,7 @@ impl Engine {
                     st,
                     &self.bufs,
                     hist,
+                    noise,
                     &mut self.xbuf,
                     1.0 / self.plan.internal_rate,
                 );
@@ -342,7 +404,17 @@ impl Engine {
         let kf = self.plan.oversample;
         for (o, op) in self.plan.outputs.iter().enumerate() {
             let src = &self.bufs[op.node][hist - op.delay..hist - op.delay + b];
-            self.decims[o].process_scaled(src, op.gain, &mut self.out_base[o][..b / kf]);
+            if let Some(ns) = &mut self.out_noise[o] {
+                // Thermal noise of the output's resistances, added at the internal rate
+                // (the decimator removes the excess band).
+                ns.fill(&mut self.obuf);
+                for (y, &x) in self.obuf.iter_mut().zip(src) {
+                    *y += op.gain * x;
+                }
+                self.decims[o].process(&self.obuf, &mut self.out_base[o][..b / kf]);
+            } else {
+                self.decims[o].process_scaled(src, op.gain, &mut self.out_base[o][..b / kf]);
+            }
         }
         for buf in self.bufs.iter_mut().take(ns + self.plan.stages.len()) {
             buf.copy_within(b..b + hist, 0);
@@ -362,6 +434,7 @@ fn linear_block(
     st: &mut StageState,
     bufs: &[Vec<f64>],
     hist: usize,
+    noise: Option<&[f64]>,
     x: &mut [f64],
     p: &mut [f64],
     q: &mut [f64],
@@ -428,6 +501,11 @@ fn linear_block(
             let src = &bufs[m.node][hist - m.delay..hist - m.delay + b];
             for (d, s) in p.iter_mut().zip(src) {
                 *d -= w * s;
+            }
+        }
+        if let Some(nz) = noise {
+            for (d, n) in p.iter_mut().zip(nz) {
+                *d += n;
             }
         }
         let mut ok = true;
@@ -539,6 +617,11 @@ fn linear_block(
         return true;
     }
     // With capacitors: per-sample companion updates.
+    if let Some(nz) = noise {
+        for (d, n) in p.iter_mut().zip(nz) {
+            *d += n;
+        }
+    }
     let mut v = st.v;
     let mut pp = st.p_prev;
     let mut pp2 = st.p_prev2;
@@ -583,6 +666,7 @@ fn full_block(
     st: &mut StageState,
     bufs: &[Vec<f64>],
     hist: usize,
+    noise: Option<&[f64]>,
     x: &mut [f64],
     h: f64,
 ) {
@@ -622,7 +706,7 @@ fn full_block(
                 vp_eff = vp.clamp(cl, ch.max(cl));
             }
         }
-        let pn = vp_eff - mrest;
+        let pn = vp_eff - mrest + noise.map_or(0.0, |n| n[t]);
         let xn = if f > 0.0 {
             solve(v, pn, pp, sp.b, sp.eps, f, kh, sp.vov)
         } else {

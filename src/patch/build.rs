@@ -74,7 +74,8 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
             ))
         }
     };
-    let noise = ptab.bool_opt("noise")?.unwrap_or(false);
+    // Default on for renders (`check` never runs the engine, so it is unaffected).
+    let noise = ptab.bool_opt("noise")?.unwrap_or(true);
     let temperature = ptab
         .q_opt(
             "temperature",
