@@ -1217,8 +1217,22 @@ fn print_table(patch: &Patch, m: &measure::Measurement) {
                 opt(f.imd_ccif_d3_high_dbc, " dBc", 1)
             );
         }
-        if f.snr_db.is_some() {
-            println!("  noise       SNR {}", opt(f.snr_db, " dB", 1));
+        let n = &r.noise;
+        if n.noise_rms_v.is_some() {
+            println!(
+                "  noise       {} ({}), A-weighted {} ({}); idle channel, 20 Hz - 20 kHz",
+                opt(n.noise_rms_v.map(|v| v * 1e6), " uV rms", 2),
+                opt(n.noise_dbu, " dBu", 1),
+                opt(n.noise_a_rms_v.map(|v| v * 1e6), " uV rms", 2),
+                opt(n.noise_a_dbu, " dBu", 1),
+            );
+            println!(
+                "  SNR         {} re 10 Vpp ({} A-weighted){}",
+                opt(n.snr_ref_db, " dB", 1),
+                opt(n.snr_ref_a_db, " dB", 1),
+                f.snr_db
+                    .map_or(String::new(), |d| format!(", {d:.1} dB re this signal"))
+            );
         }
         println!("  events");
         print_events(&r.events);
@@ -1450,9 +1464,26 @@ fn cmd_noise(
         patch.title,
         patch.temperature - railsong::units::ZERO_CELSIUS
     );
+    // The simulated counterpart: the idle render (sources muted) with circuit noise on.
+    let mut idle = render::muted(&patch);
+    idle.noise = true;
+    idle.length = idle.length.max(2.0);
+    let sim = stream_patch(&idle, false, false, &mut |_, _| Ok(()))?;
     for b in picked {
         println!();
         print!("{}", railsong::noise::format_budget(b));
+        let k = patch.outputs.iter().position(|o| o.name == b.output);
+        let simulated = k
+            .and_then(|k| sim.run.outputs.get(k))
+            .map(|o| measure::noise_figures(&o.samples, sim.run.rate));
+        if let Some(n) = simulated.and_then(|n| n.noise_rms_v) {
+            println!(
+                "simulated: {:.4} uV rms over 20 Hz - 20 kHz from a {} idle render ({:+.2} dB against the budget)",
+                n * 1e6,
+                fmt_eng(idle.length, "s"),
+                20.0 * (n / b.total_rms).log10()
+            );
+        }
     }
     Ok(())
 }

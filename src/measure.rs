@@ -34,12 +34,62 @@ impl From<&StageEvents> for EventSeconds {
     }
 }
 
+/// SNR reference level: 10 Vpp, a full modular audio swing (common practice), as the RMS of
+/// that sine: 5 / sqrt(2) V.
+pub const SNR_REFERENCE_V_RMS: f64 = 5.0 / std::f64::consts::SQRT_2;
+
+/// Noise figures of an output, from its idle render (sources muted, circuit noise on), over
+/// 20 Hz - 20 kHz. Every field is `null` when there is no idle render (noise off).
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize)]
+pub struct NoiseFigures {
+    /// Output noise, V rms, unweighted.
+    pub noise_rms_v: Option<f64>,
+    /// Output noise, dBu, unweighted.
+    pub noise_dbu: Option<f64>,
+    /// Output noise, V rms, A-weighted (IEC 61672-1).
+    pub noise_a_rms_v: Option<f64>,
+    /// Output noise, dBu, A-weighted.
+    pub noise_a_dbu: Option<f64>,
+    /// SNR against [`SNR_REFERENCE_V_RMS`] (10 Vpp sine), unweighted, dB.
+    pub snr_ref_db: Option<f64>,
+    /// SNR against the same reference, A-weighted, dB.
+    pub snr_ref_a_db: Option<f64>,
+}
+
+/// Noise figures of an idle record.
+pub fn noise_figures(idle: &[f64], rate: f64) -> NoiseFigures {
+    let flat = Settings::default();
+    let a = Settings {
+        weighting: analysis::Weighting::A,
+        ..Settings::default()
+    };
+    let rms = |s: &Settings| {
+        analysis::band_rms(idle, rate, s)
+            .ok()
+            .map(|b| b.rms_v)
+            .filter(|v| *v > 0.0)
+    };
+    let (n, na) = (rms(&flat), rms(&a));
+    let db = |v: Option<f64>| v.map(|v| 20.0 * (SNR_REFERENCE_V_RMS / v).log10());
+    NoiseFigures {
+        noise_rms_v: n,
+        noise_dbu: n.map(analysis::levels::v_to_dbu),
+        noise_a_rms_v: na,
+        noise_a_dbu: na.map(analysis::levels::v_to_dbu),
+        snr_ref_db: db(n),
+        snr_ref_a_db: db(na),
+    }
+}
+
 /// Figures of one output plus the events of every op-amp stage upstream of it.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct OutputReport {
     /// The analysis figures (flattened into the JSON object).
     #[serde(flatten)]
     pub figures: OutputFigures,
+    /// Noise figures from the idle render (flattened).
+    #[serde(flatten)]
+    pub noise: NoiseFigures,
     /// Node the output is taken from.
     pub from: String,
     /// Events per upstream op-amp stage, by stage name.
@@ -63,6 +113,8 @@ pub struct RunSettings {
     pub analysis: Settings,
     /// Whether circuit noise was simulated.
     pub noise: bool,
+    /// Reference of `snr_ref_db`, V rms (a 10 Vpp sine).
+    pub snr_reference_v_rms: f64,
     /// Alias figure (dBc) of each op-amp stage's part at this oversampling, when measured.
     pub alias_dbc: BTreeMap<String, f64>,
 }
@@ -247,10 +299,14 @@ pub fn measure(
                     .map(|e| (name.clone(), EventSeconds::from(e)))
             })
             .collect();
+        let noise = idle_samples
+            .map(|x| noise_figures(x, run.rate))
+            .unwrap_or_default();
         map.insert(
             o.name.clone(),
             OutputReport {
                 figures,
+                noise,
                 from: patch.node_name(o.from).to_string(),
                 events,
             },
@@ -266,6 +322,7 @@ pub fn measure(
             full_scale_v: patch.full_scale,
             analysis: *settings,
             noise: patch.noise,
+            snr_reference_v_rms: SNR_REFERENCE_V_RMS,
             alias_dbc: run.alias.iter().map(|a| (a.stage.clone(), a.dbc)).collect(),
         },
     }

@@ -147,3 +147,43 @@ fn noise_budget_json_adds_up_in_power() {
     let out = railsong(&["noise", "patches/clean-mix.toml", "--output", "nope"]);
     assert_eq!(out.status.code(), Some(2));
 }
+
+// SNR re 10 Vpp (common practice for modular audio): 20 log10(5/sqrt2 V / noise rms); the
+// A-weighted noise of a flat-ish hiss is lower than the unweighted (IEC 61672-1 curve).
+#[test]
+fn measure_reports_idle_channel_noise_and_snr() {
+    let out = railsong(&[
+        "measure",
+        "patches/clean-mix.toml",
+        "--json",
+        "--set",
+        "patch.length=1 s",
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let o = &v["outputs"]["main"];
+    let n = o["noise_rms_v"].as_f64().unwrap();
+    let na = o["noise_a_rms_v"].as_f64().unwrap();
+    let snr = o["snr_ref_db"].as_f64().unwrap();
+    assert!(n > 1e-6 && n < 1e-3, "{n}");
+    assert!(na < n);
+    let expect = 20.0 * ((5.0 / 2f64.sqrt()) / n).log10();
+    assert!((snr - expect).abs() < 1e-9);
+    // noise off: every noise figure is null, not 0
+    let out = railsong(&[
+        "measure",
+        "patches/clean-mix.toml",
+        "--json",
+        "--set",
+        "patch.length=1 s",
+        "--set",
+        "patch.noise=false",
+    ]);
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert!(v["outputs"]["main"]["noise_rms_v"].is_null());
+    assert!(v["outputs"]["main"]["snr_db"].is_null());
+}
