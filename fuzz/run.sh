@@ -21,6 +21,9 @@ for t in "${targets[@]}"; do
     # checks) on, so an arithmetic overflow is found as a crash.
     cargo fuzz run -s none -a "$t" "corpus/$t" -- \
         -max_total_time="$secs" -jobs=1 -workers=1 -max_len=8192 -rss_limit_mb=2048 \
-        -timeout=10 -print_final_stats=1 2>&1 | tee "logs/$t.log" | grep -E '^#[0-9]+ +(DONE|pulse)|CRASH|panicked|ERROR|stat::' || true
+        -timeout=10 -print_final_stats=1 > "logs/$t.run.log" 2>&1 || true
+    # with -jobs=1 libFuzzer runs one worker that logs to fuzz-0.log
+    if [ -f fuzz-0.log ]; then mv fuzz-0.log "logs/$t.log"; fi
+    grep -E '^#[0-9]+ +DONE|^stat::|panicked|ERROR|SUMMARY' "logs/$t.log" || true
 done
 ls artifacts/*/ 2>/dev/null && echo "crash inputs above (artifacts/)" || echo "no crash inputs"

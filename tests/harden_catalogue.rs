@@ -278,6 +278,26 @@ fn wav_with_bad_format_fields() {
     adpcm[28..32].copy_from_slice(&(48_000u32 * 256).to_le_bytes());
     adpcm[32..34].copy_from_slice(&256u16.to_le_bytes());
     bad_wav(Some(&adpcm), "", &["unsupported"]);
+    // WAVE_FORMAT_EXTENSIBLE whose sub-format GUID names no known codec.
+    let mut ext = Vec::new();
+    ext.extend_from_slice(b"RIFF");
+    ext.extend_from_slice(&(4 + 48 + 8 + 400u32).to_le_bytes());
+    ext.extend_from_slice(b"WAVEfmt ");
+    ext.extend_from_slice(&40u32.to_le_bytes());
+    for v in [0xFFFEu16, 1] {
+        ext.extend_from_slice(&v.to_le_bytes());
+    }
+    ext.extend_from_slice(&48_000u32.to_le_bytes());
+    ext.extend_from_slice(&96_000u32.to_le_bytes());
+    for v in [2u16, 16, 22, 16] {
+        ext.extend_from_slice(&v.to_le_bytes());
+    }
+    ext.extend_from_slice(&4u32.to_le_bytes());
+    ext.extend_from_slice(&[0x11; 16]);
+    ext.extend_from_slice(b"data");
+    ext.extend_from_slice(&400u32.to_le_bytes());
+    ext.extend_from_slice(&data);
+    bad_wav(Some(&ext), "", &["unsupported"]);
     // PCM of 12 bits in 16-bit containers is not a size railsong reads.
     bad_wav(Some(&wav(1, 1, 48_000, 12, &data, 400)), "", &["WAV file"]);
     // 64-bit float is not read.

@@ -316,3 +316,31 @@ fn two_renders_into_one_folder_at_once_both_finish() {
         }
     }
 }
+
+/// The interleaving that made the second of two concurrent renders fail: both open the folder
+/// (empty manifest), the first writes `x.wav`, then the second must still be allowed to
+/// replace it, since the manifest on disk now says railsong wrote it.
+#[test]
+fn a_folder_opened_before_another_render_wrote_may_replace_its_files() {
+    use railsong::signal::{Depth, OutputDir, WavSpec};
+    let tmp = tempfile::tempdir().unwrap();
+    let spec = WavSpec {
+        rate: 48_000,
+        channels: 1,
+        depth: Depth::Pcm24,
+        full_scale: 1.0,
+        dither_seed: 1,
+    };
+    let mut first = OutputDir::open(tmp.path(), false).unwrap();
+    let mut second = OutputDir::open(tmp.path(), false).unwrap();
+    first.write("x.wav", spec, &[0.25; 100]).unwrap();
+    first.write_text("figures.json", "{}").unwrap();
+    second.check_writable("x.wav").unwrap();
+    second.write("x.wav", spec, &[0.5; 200]).unwrap();
+    second.write_text("figures.json", "{\"a\": 1}").unwrap();
+    complete_wav(&tmp.path().join("x.wav"), 200);
+    // A file no railsong process listed is still refused.
+    std::fs::write(tmp.path().join("mine.wav"), b"not railsong's").unwrap();
+    let third = OutputDir::open(tmp.path(), false).unwrap();
+    assert!(third.check_writable("mine.wav").is_err());
+}

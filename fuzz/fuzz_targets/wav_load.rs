@@ -18,7 +18,11 @@ fuzz_target!(|data: &[u8]| {
         let mut f = std::fs::File::create(path).expect("scratch file");
         f.write_all(data).expect("scratch write");
     }
-    // Mixed channels at the default internal rate (48 kHz x 4), and channel 1 at 48 kHz.
-    let _ = railsong::signal::load_wav(path, None, 1.0, 192_000.0, 4800, true);
-    let _ = railsong::signal::load_wav(path, Some(1), 5.0, 48_000.0, 1000, false);
+    // One load per input (the resampler's set-up dominates the time): mixed channels at
+    // 48 kHz for inputs of even length, channel 1 at 44.1 kHz with another scale otherwise.
+    let _ = if data.len() % 2 == 0 {
+        railsong::signal::load_wav(path, None, 1.0, 48_000.0, 1000, true)
+    } else {
+        railsong::signal::load_wav(path, Some(1), 5.0, 44_100.0, 1000, false)
+    };
 });
