@@ -202,3 +202,40 @@ fn random_bytes_into_load_wav_never_panic() {
     })
     .unwrap();
 }
+
+/// Regression: 8-bit samples in 1000 channels with a data chunk that claims 4 GB: the buffer
+/// is sized by what the file can hold, which ends inside a frame; the partial frame must be
+/// dropped, not indexed past the buffer, and the file reported as truncated.
+#[test]
+fn a_lying_size_ending_inside_a_wide_frame_is_truncated() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("wide.wav");
+    let mut bytes = header(1, 1000, 8_000, 8, 4_000_000_000);
+    bytes.extend_from_slice(&[128u8; 1456]);
+    std::fs::write(&path, &bytes).unwrap();
+    for channel in [None, Some(999)] {
+        let e = railsong::signal::load_wav(&path, channel, 1.0, 8_000.0, 4, false).unwrap_err();
+        let msg = e.to_string();
+        assert!(
+            msg.contains("wide.wav") && msg.contains("truncated"),
+            "{msg}"
+        );
+    }
+}
+
+/// Regression: a data chunk that claims 4 GiB in a file of a few hundred bytes is reported as
+/// truncated after the samples that are there, without sizing a buffer by the claim.
+#[test]
+fn a_lying_data_size_is_truncated_not_allocated() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("lie.wav");
+    let mut bytes = header(1, 1, 48_000, 16, 0xFFFF_FFF0);
+    bytes.extend_from_slice(&[0u8; 200]);
+    std::fs::write(&path, &bytes).unwrap();
+    let e = railsong::signal::load_wav(&path, None, 1.0, 48_000.0, 10, false).unwrap_err();
+    let msg = e.to_string();
+    assert!(
+        msg.contains("truncated") && msg.contains("after 100 of"),
+        "{msg}"
+    );
+}
