@@ -26,4 +26,9 @@ for t in "${targets[@]}"; do
     if [ -f fuzz-0.log ]; then mv fuzz-0.log "logs/$t.log"; fi
     grep -E '^#[0-9]+ +DONE|^stat::|panicked|ERROR|SUMMARY' "logs/$t.log" || true
 done
-ls artifacts/*/ 2>/dev/null && echo "crash inputs above (artifacts/)" || echo "no crash inputs"
+if [ -n "$(find artifacts -type f 2>/dev/null)" ]; then
+    find artifacts -type f
+    echo "crash inputs above: fix them and add each to the catalogue"
+else
+    echo "no crash inputs"
+fi
