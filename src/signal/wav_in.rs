@@ -143,7 +143,7 @@ pub fn load_wav(
         path: path.to_path_buf(),
         what: format!("the data ends after {i} of {declared} samples"),
     };
-    // A trailing partial frame (a data size that is not a whole number of frames) is dropped.
+    // A frame that the end of the file cuts (when the declared size lies) is dropped.
     let mut take = |i: usize, v: f64| {
         let ch = i % channels;
         let Some(m) = mono.get_mut(i / channels) else {
