@@ -1098,6 +1098,13 @@ fn topo_order(ctx: &Ctx, stages: Vec<Stage>) -> R<Vec<Stage>> {
 
 // ----- outputs -------------------------------------------------------------------------------
 
+/// The file an output is rendered to: its `file` (".wav" appended unless present) or
+/// `NAME.wav`, as the renderer names it.
+fn render_file_name(name: &str, file: Option<&str>) -> String {
+    let stem = file.map_or(name, |f| f.strip_suffix(".wav").unwrap_or(f));
+    format!("{stem}.wav")
+}
+
 fn build_outputs(root: &Tab, names: &Names, stage_pos: &HashMap<&str, usize>) -> R<Vec<Output>> {
     let none = || {
         root.ctx.err(
@@ -1113,7 +1120,7 @@ fn build_outputs(root: &Tab, names: &Names, stage_pos: &HashMap<&str, usize>) ->
     if ot.t.is_empty() {
         return Err(none());
     }
-    let mut outs = Vec::with_capacity(ot.t.len());
+    let mut outs: Vec<Output> = Vec::with_capacity(ot.t.len());
     for (name, v) in ot.t {
         let t = entity(&ot, name, v, "an [outputs.NAME] table like from = \"amp\"")?;
         let tab = Tab::new(root.ctx, format!("outputs.{name}"), t);
@@ -1180,9 +1187,33 @@ fn build_outputs(root: &Tab, names: &Names, stage_pos: &HashMap<&str, usize>) ->
                         )),
                     ));
                 }
+                // The renderer appends ".wav" unless the name ends with it; the stem goes
+                // through the same strict filter as names ([A-Za-z0-9_-], at most 100).
+                let stem = f.strip_suffix(".wav").unwrap_or(f);
+                if !valid_name(stem) || stem.len() > 100 {
+                    return Err(tab.err(
+                        "file",
+                        Problem::Other(format!(
+                            "expected a file name of letters, digits, '_' and '-' (at most 100), optionally ending in .wav, like \"{name}.wav\", got '{f}'"
+                        )),
+                    ));
+                }
                 Some(f.to_string())
             }
         };
+        let wav_name = render_file_name(name, file.as_deref());
+        if let Some(other) = outs
+            .iter()
+            .find(|o| render_file_name(&o.name, o.file.as_deref()) == wav_name)
+        {
+            return Err(tab.err(
+                if file.is_some() { "file" } else { "from" },
+                Problem::Other(format!(
+                    "outputs.{} is already rendered to {wav_name}: give each output its own file name",
+                    other.name
+                )),
+            ));
+        }
         outs.push(Output {
             name: name.clone(),
             from,

@@ -112,7 +112,7 @@ impl OutputDir {
         check_file_name(name)?;
         let target = self.dir.join(name);
         let exists = fs::symlink_metadata(&target).is_ok();
-        if exists && !self.force && !self.written.contains(name) {
+        if exists && !self.force && !self.written.contains(name) && !self.listed_now(name) {
             return Err(SignalError::Foreign { path: target });
         }
         let temp = self.dir.join(format!(
@@ -144,10 +144,24 @@ impl OutputDir {
     pub fn check_writable(&self, name: &str) -> Result<(), SignalError> {
         check_file_name(name)?;
         let target = self.dir.join(name);
-        if fs::symlink_metadata(&target).is_ok() && !self.force && !self.written.contains(name) {
+        if fs::symlink_metadata(&target).is_ok()
+            && !self.force
+            && !self.written.contains(name)
+            && !self.listed_now(name)
+        {
             return Err(SignalError::Foreign { path: target });
         }
         Ok(())
+    }
+
+    /// Whether the manifest on disk lists `name` now: another railsong process rendering into
+    /// the same folder may have written the file since this folder was opened.
+    fn listed_now(&self, name: &str) -> bool {
+        let manifest = self.dir.join(MANIFEST_NAME);
+        let is_file = fs::symlink_metadata(&manifest).is_ok_and(|m| m.file_type().is_file());
+        is_file
+            && fs::read_to_string(&manifest)
+                .is_ok_and(|text| text.lines().any(|l| l.trim() == name))
     }
 
     /// Write a text file (JSON, CSV, SVG, HTML) atomically, under the same guard as WAVs.

@@ -133,18 +133,26 @@ pub fn load_wav(
             what: "the data chunk holds no samples",
         });
     }
-    let n_frames = declared / channels;
+    // The size fields may lie (a data chunk claiming 4 GiB in a 100-byte file): size the
+    // buffer by what the file can hold, and let the read loop report where the data ends.
+    let bytes_per_sample = usize::from(spec.bits_per_sample).div_ceil(8).max(1);
+    let fits = usize::try_from(meta.len()).unwrap_or(usize::MAX) / bytes_per_sample;
+    let n_frames = declared.min(fits) / channels;
     let mut mono = vec![0.0f64; n_frames];
     let truncated = |i: usize| SignalError::Truncated {
         path: path.to_path_buf(),
         what: format!("the data ends after {i} of {declared} samples"),
     };
+    // A frame that the end of the file cuts (when the declared size lies) is dropped.
     let mut take = |i: usize, v: f64| {
         let ch = i % channels;
+        let Some(m) = mono.get_mut(i / channels) else {
+            return;
+        };
         match channel {
-            Some(c) if c == ch => mono[i / channels] = v,
+            Some(c) if c == ch => *m = v,
             Some(_) => {}
-            None => mono[i / channels] += v / channels as f64,
+            None => *m += v / channels as f64,
         }
     };
     match (spec.sample_format, spec.bits_per_sample) {
