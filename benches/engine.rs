@@ -47,6 +47,7 @@ fn patch(amp: f64) -> Patch {
             neg: -12.0,
         },
         full_scale: 12.0,
+        tolerances: Default::default(),
         sources,
         stages: vec![
             Stage {

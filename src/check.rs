@@ -549,6 +549,7 @@ mod tests {
                 neg: -12.0,
             },
             full_scale: 12.0,
+            tolerances: Default::default(),
             outputs: vec![Output {
                 name: "out".into(),
                 from: Node::Stage(stages.len() - 1),

@@ -696,7 +696,10 @@ fn series_tolerance(s: Series) -> f64 {
     }
 }
 
-fn tolerances(args: &ToleranceArgs) -> Result<Tolerances, Failure> {
+/// The study's tolerances: `--tol` (or the class of `--series`), else the patch's
+/// `[patch] tolerance`, else 1 %; capacitors: `--cap-tol`, else `[patch] cap_tolerance`, else
+/// the resistor tolerance. Per-stage keys in the patch override both for their stage.
+fn tolerances(args: &ToleranceArgs, patch: &Patch) -> Result<Tolerances, Failure> {
     let pct = |flag: &str, s: &str| {
         units::parse_percent(s).map_err(|e| Failure::bad_input(format!("{flag} {s}: {e}")))
     };
@@ -705,11 +708,11 @@ fn tolerances(args: &ToleranceArgs) -> Result<Tolerances, Failure> {
         (None, Some(s)) => series_tolerance(Series::parse(s).ok_or_else(|| {
             Failure::bad_input(format!("--series {s}: expected E12, E24, E48, E96 or E192"))
         })?),
-        (None, None) => 0.01,
+        (None, None) => patch.tolerances.resistor.unwrap_or(0.01),
     };
     let capacitor = match args.cap_tol {
         Some(t) => pct("--cap-tol", t)?,
-        None => resistor,
+        None => patch.tolerances.capacitor.unwrap_or(resistor),
     };
     let t = Tolerances {
         resistor,
@@ -736,8 +739,8 @@ fn fmt_spread(s: &Option<Spread>, scale: f64, digits: usize) -> String {
 
 /// `railsong tolerance`.
 pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
-    let tol = tolerances(args)?;
     let patch = load(args.patch, args.sets)?;
+    let tol = tolerances(args, &patch)?;
     let seed = args.seed.unwrap_or(patch.seed);
     if let Some(i) = args.render_run {
         if i == 0 {

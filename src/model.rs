@@ -43,6 +43,21 @@ pub struct Patch {
     pub stages: Vec<Stage>,
     /// Outputs (what gets rendered and measured), in file order.
     pub outputs: Vec<Output>,
+    /// Component tolerances for tolerance studies.
+    pub tolerances: Tolerances,
+}
+
+/// Component tolerances (fractions, 0.01 = 1 %) for tolerance studies: patch-level defaults
+/// and per-stage overrides. `None`: not stated (the study's own default applies).
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct Tolerances {
+    /// Default for every resistor (`[patch] tolerance`).
+    pub resistor: Option<f64>,
+    /// Default for every capacitor (`[patch] cap_tolerance`).
+    pub capacitor: Option<f64>,
+    /// Per-stage overrides (`[stages.NAME] tolerance` / `cap_tolerance`): (stage name,
+    /// resistor, capacitor).
+    pub stages: Vec<(String, Option<f64>, Option<f64>)>,
 }
 
 /// Supply rails in volts.

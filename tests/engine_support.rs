@@ -39,6 +39,7 @@ impl Pb {
                     neg: -12.0,
                 },
                 full_scale: 12.0,
+                tolerances: Default::default(),
                 sources: Vec::new(),
                 stages: Vec::new(),
                 outputs: Vec::new(),

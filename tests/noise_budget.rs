@@ -60,6 +60,7 @@ fn patch(n_sources: usize, stages: Vec<Stage>, outputs: Vec<Output>) -> Patch {
             neg: -12.0,
         },
         full_scale: 12.0,
+        tolerances: Default::default(),
         sources: (0..n_sources).map(|i| sine(&format!("s{i}"))).collect(),
         stages,
         outputs,

@@ -210,3 +210,62 @@ fn render_run_reproduces_the_reported_run() {
     assert!((g - gain_db).abs() < 1e-4, "{g} vs {gain_db}");
     assert!(gain_db.abs() > 1e-3, "the worst run should move the gain");
 }
+
+// Per-stage tolerance keys: a stage marked 0 % keeps its nominal values in every run, the
+// others move within the study's tolerance; `[patch] tolerance` is read as the default.
+#[test]
+fn per_stage_tolerance_overrides_the_study_default() {
+    let text = r#"
+[patch]
+tolerance = "2%"
+cap_tolerance = "10%"
+[rails]
+pos = "12 V"
+neg = "-12 V"
+[sources.a]
+wave = "sine"
+freq = "1 kHz"
+amp = "1 Vpk"
+[stages.precise]
+type = "inverting"
+part = "ideal"
+from = "a"
+r_in = "10k"
+r_fb = "10k"
+tolerance = "0%"
+[stages.loose]
+type = "inverting"
+part = "ideal"
+from = "precise"
+r_in = "10k"
+r_fb = "10k"
+[outputs.out]
+from = "loose"
+"#;
+    let p = railsong::patch::parse_str(text, "t.toml", std::path::Path::new("."), &[]).unwrap();
+    assert_eq!(p.tolerances.resistor, Some(0.02));
+    assert_eq!(p.tolerances.capacitor, Some(0.10));
+    let tol = railsong::study::tolerance::Tolerances {
+        resistor: 0.05,
+        capacitor: 0.05,
+    };
+    let r_in = |p: &railsong::model::Patch, i: usize| match &p.stages[i].kind {
+        railsong::model::StageKind::InvertingSum { inputs, .. } => inputs[0].r,
+        _ => unreachable!(),
+    };
+    let mut moved = 0;
+    for run in 1..=20 {
+        let q = railsong::study::tolerance::perturb(&p, &tol, run);
+        assert_eq!(r_in(&q, 0), 10e3, "the 0 % stage never moves");
+        let d = (r_in(&q, 1) / 10e3 - 1.0).abs();
+        assert!(d <= 0.05 + 1e-12);
+        if d > 0.0 {
+            moved += 1;
+        }
+    }
+    assert!(moved > 15);
+    // out of range
+    let bad = text.replace("tolerance = \"0%\"", "tolerance = \"80%\"");
+    let e = railsong::patch::parse_str(&bad, "t.toml", std::path::Path::new("."), &[]).unwrap_err();
+    assert!(e.to_string().contains("stages.precise.tolerance"), "{e}");
+}

@@ -70,6 +70,7 @@ pub fn probe_patch(part: &OpAmp, rails: Rails, rate: f64, oversample: usize) -> 
         temperature: 298.15,
         rails,
         full_scale: rails.pos.abs().max(rails.neg.abs()),
+        tolerances: Default::default(),
         sources: vec![Source {
             name: "probe".into(),
             wave: Wave::Sine {

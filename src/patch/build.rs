@@ -88,6 +88,13 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
         Some(v) => full_scale(ctx, &ptab.key_path("full_scale"), v)?,
     };
 
+    let tol_bounds = Bounds::closed(0.0, 0.5);
+    let mut tolerances = crate::model::Tolerances {
+        resistor: ptab.q_opt("tolerance", Quantity::Percent, tol_bounds)?,
+        capacitor: ptab.q_opt("cap_tolerance", Quantity::Percent, tol_bounds)?,
+        stages: Vec::new(),
+    };
+
     let parts = build_parts(&root)?;
 
     // Names of sources and stages share one namespace (`from` refers to either).
@@ -145,6 +152,11 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
     for (name, t) in &stg_list {
         let tab = Tab::new(ctx, format!("stages.{name}"), t);
         stages.push(stage(&tab, name, &env)?);
+        let r = tab.q_opt("tolerance", Quantity::Percent, tol_bounds)?;
+        let c = tab.q_opt("cap_tolerance", Quantity::Percent, tol_bounds)?;
+        if r.is_some() || c.is_some() {
+            tolerances.stages.push((name.to_string(), r, c));
+        }
     }
     let stages = topo_order(ctx, stages)?;
     let stage_pos: HashMap<&str, usize> = stages
@@ -168,6 +180,7 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
         sources,
         stages,
         outputs,
+        tolerances,
     })
 }
 

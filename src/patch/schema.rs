@@ -16,6 +16,8 @@ pub(crate) const PATCH: &[&str] = &[
     "noise",
     "temperature",
     "full_scale",
+    "tolerance",
+    "cap_tolerance",
 ];
 
 /// `[rails]`.
@@ -87,13 +89,41 @@ pub(crate) const STAGE_TYPES: &[&str] = &[
 /// Keys of one stage type (including `type`).
 pub(crate) fn stage_keys(kind: &str) -> &'static [&'static str] {
     match kind {
-        "inverting-sum" => &["type", "part", "inputs", "feedback", "ref"],
-        "inverting" => &[
-            "type", "part", "from", "r_in", "c_in", "r_fb", "c_fb", "feedback", "ref",
+        "inverting-sum" => &[
+            "type",
+            "part",
+            "inputs",
+            "feedback",
+            "ref",
+            "tolerance",
+            "cap_tolerance",
         ],
-        "non-inverting" => &["type", "part", "from", "r_fb", "r_g", "c_fb", "ref"],
+        "inverting" => &[
+            "type",
+            "part",
+            "from",
+            "r_in",
+            "c_in",
+            "r_fb",
+            "c_fb",
+            "feedback",
+            "ref",
+            "tolerance",
+            "cap_tolerance",
+        ],
+        "non-inverting" => &[
+            "type",
+            "part",
+            "from",
+            "r_fb",
+            "r_g",
+            "c_fb",
+            "ref",
+            "tolerance",
+            "cap_tolerance",
+        ],
         "follower" => &["type", "part", "from"],
-        "attenuator" => &["type", "from", "pot", "taper", "at", "mid"],
+        "attenuator" => &["type", "from", "pot", "taper", "at", "mid", "tolerance"],
         _ => &[],
     }
 }

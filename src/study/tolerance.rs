@@ -84,13 +84,22 @@ impl Tolerances {
 }
 
 /// The patch of one run: every resistor and capacitor scaled by `1 + tol * u`, `u` uniform
-/// in [-1, 1), drawn from a generator seeded with `seed` (use [`run_seed`]).
+/// in [-1, 1), drawn from a generator seeded with `seed` (use [`run_seed`]). A stage with its
+/// own `tolerance` / `cap_tolerance` in the patch ([`crate::model::Tolerances`]) uses those
+/// for its components; everything else uses `tol`.
 pub fn perturb(patch: &Patch, tol: &Tolerances, seed: u64) -> Patch {
     let mut g = SplitMix64::new(seed);
-    let r = |x: f64, g: &mut SplitMix64| x * (1.0 + tol.resistor * g.symmetric());
-    let c = |x: f64, g: &mut SplitMix64| x * (1.0 + tol.capacitor * g.symmetric());
     let mut p = patch.clone();
     for st in &mut p.stages {
+        let own = patch
+            .tolerances
+            .stages
+            .iter()
+            .find(|(n, _, _)| *n == st.name);
+        let tr = own.and_then(|o| o.1).unwrap_or(tol.resistor);
+        let tc = own.and_then(|o| o.2).unwrap_or(tol.capacitor);
+        let r = |x: f64, g: &mut SplitMix64| x * (1.0 + tr * g.symmetric());
+        let c = |x: f64, g: &mut SplitMix64| x * (1.0 + tc * g.symmetric());
         match &mut st.kind {
             StageKind::InvertingSum {
                 inputs, feedback, ..
@@ -128,7 +137,7 @@ pub fn perturb(patch: &Patch, tol: &Tolerances, seed: u64) -> Patch {
     }
     for o in &mut p.outputs {
         if o.series > 0.0 {
-            o.series = r(o.series, &mut g);
+            o.series *= 1.0 + tol.resistor * g.symmetric();
         }
     }
     p
