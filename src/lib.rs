@@ -21,6 +21,7 @@ pub mod patch;
 pub mod plot;
 pub mod render;
 pub mod report;
+mod rng;
 pub mod signal;
 pub mod study;
 pub mod units;

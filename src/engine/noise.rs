@@ -8,48 +8,7 @@
 
 use std::f64::consts::PI;
 
-/// SplitMix64 step: advance `state` and return the next output.
-fn splitmix64(state: &mut u64) -> u64 {
-    *state = state.wrapping_add(0x9e37_79b9_7f4a_7c15);
-    let mut z = *state;
-    z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-    z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-    z ^ (z >> 31)
-}
-
-/// xoshiro256++.
-#[derive(Debug, Clone)]
-struct Rng {
-    s: [u64; 4],
-}
-
-impl Rng {
-    fn new(seed: u64) -> Rng {
-        let mut st = seed;
-        Rng {
-            s: [
-                splitmix64(&mut st),
-                splitmix64(&mut st),
-                splitmix64(&mut st),
-                splitmix64(&mut st),
-            ],
-        }
-    }
-
-    #[inline(always)]
-    fn next_u64(&mut self) -> u64 {
-        let s = &mut self.s;
-        let result = s[0].wrapping_add(s[3]).rotate_left(23).wrapping_add(s[0]);
-        let t = s[1] << 17;
-        s[2] ^= s[0];
-        s[3] ^= s[1];
-        s[1] ^= s[2];
-        s[0] ^= s[3];
-        s[2] ^= t;
-        s[3] = s[3].rotate_left(45);
-        result
-    }
-}
+use crate::rng::{splitmix64, Rng};
 
 /// Lowest pole of the 1/f filter, Hz (below the audio band, so the shape at 20 Hz is already
 /// the 1/f asymptote).
@@ -381,7 +340,7 @@ mod tests {
         // worked by hand: out1 = rotl(1 + 4, 23) + 1 = 5 * 2^23 + 1; the state becomes
         // [7, 0, 262146, rotl(6, 45)], so out2 = rotl(7 + 6 * 2^45, 23) + 7
         // = 7 * 2^23 + 96 + 7.
-        let mut r = Rng { s: [1, 2, 3, 4] };
+        let mut r = Rng::from_state([1, 2, 3, 4]);
         assert_eq!(r.next_u64(), 5 * (1 << 23) + 1);
         assert_eq!(r.next_u64(), 7 * (1 << 23) + 96 + 7);
     }
