@@ -1,5 +1,6 @@
 #!/usr/bin/env bash
-# Peak memory of a long render: a one-hour, four-output patch rendered to 16-bit WAVs, timed
+# Peak memory of a long render: a one-hour, four-output patch (with a looped WAV input)
+# rendered to 16-bit WAVs, timed
 # with /usr/bin/time -v (GNU time). Target: under 64 MiB peak RSS. Writes about 1.4 GB into a
 # temporary folder, removed afterwards.
 #   bash benches/long_render.sh [SECONDS]      (default 3600)
@@ -12,6 +13,18 @@ fi
 cargo build --release --quiet
 dir="$(mktemp -d)"
 trap 'rm -rf "$dir"' EXIT
+# A 10 s, 44.1 kHz stereo recording (written with Python's standard library), looped for the
+# whole render and resampled on the fly: file inputs stream too.
+python3 - "$dir/take.wav" <<'PY'
+import math, struct, sys, wave
+with wave.open(sys.argv[1], "wb") as w:
+    w.setnchannels(2); w.setsampwidth(2); w.setframerate(44100)
+    frames = bytearray()
+    for n in range(441000):
+        v = int(12000 * math.sin(2 * math.pi * 330 * n / 44100))
+        frames += struct.pack("<hh", v, -v)
+    w.writeframes(bytes(frames))
+PY
 cat > "$dir/long.toml" <<TOML
 # One hour of a two-voice mixer with four outputs, for the memory benchmark.
 [patch]
@@ -26,6 +39,12 @@ neg = "-12 V"
 wave = "sine"
 freq = "220 Hz"
 amp = "3 Vpk"
+
+[sources.take]
+wave = "file"
+path = "take.wav"
+channel = 0
+full_scale = "5 V"
 
 [sources.b]
 wave = "saw"
@@ -55,7 +74,7 @@ from = "mix"
 load = "10k"
 
 [outputs.dry]
-from = "a"
+from = "take"
 
 [outputs.bass]
 from = "b"

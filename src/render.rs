@@ -57,14 +57,13 @@ impl SourceFeed for GeneratorFeed {
 /// One feed per source of `patch`, at the plan's internal rate.
 pub fn feeds(patch: &Patch, plan: &Plan) -> Result<Vec<Box<dyn SourceFeed>>, RenderError> {
     let fs = plan.internal_rate;
-    let frames_int = plan.oversample * patch.frames() + plan.preroll + plan.block;
     patch
         .sources
         .iter()
         .zip(&plan.sources)
         .map(|(src, sp)| {
             let gen = match &src.wave {
-                Wave::File { .. } => signal::file_source(src, fs, frames_int)?,
+                Wave::File { .. } => signal::file_stream(src, fs)?,
                 _ => signal::generator(src, fs, patch.seed)?,
             };
             Ok(Box::new(GeneratorFeed {
@@ -237,9 +236,9 @@ impl Tail {
     }
 }
 
-/// Longest tail a streaming render keeps per output for spectral figures: 2^19 samples
-/// (10.9 s at 48 kHz, 4 MiB).
-pub const TAIL_MAX: usize = 1 << 19;
+/// Longest tail a streaming render keeps per output for spectral figures: 2^18 samples
+/// (5.46 s at 48 kHz, 2 MiB).
+pub const TAIL_MAX: usize = 1 << 18;
 
 /// A render whose outputs were streamed: [`Run::outputs`] holds only each output's last
 /// [`TAIL_MAX`] samples (all of them for shorter renders); `levels` are over the whole record.

@@ -56,7 +56,7 @@ pub use gate::Gated;
 pub use noise::{PinkNoise, WhiteNoise, PINK_LOW_HZ};
 pub use periodic::{BandLimited, Multitone, Naive, Shape, Sine};
 pub use sweep::LogSweep;
-pub use wav_in::{load_wav, Playback, MAX_RATE, MIN_RATE};
+pub use wav_in::{load_wav, Playback, WavStream, MAX_RATE, MIN_RATE};
 pub use wav_out::{
     listen_gain, listen_gain_from, Depth, WavSpec, WavWriter, WriteStats, LISTEN_PEAK_DBFS,
 };
@@ -387,6 +387,25 @@ pub fn file_source(
     check_finite(src, "full_scale", *full_scale)?;
     let buf = load_wav(path, *channel, *full_scale, rate, frames, *looped)?;
     let wave = Box::new(Playback::new(buf, *looped));
+    Gated::new(src, wave, rate).map(|g| Box::new(g) as Box<dyn Generator>)
+}
+
+/// Build the generator for a [`Wave::File`] source that streams the file from disk
+/// ([`WavStream`]: memory stays flat whatever its length), with the same checks, gating,
+/// offset and envelope as [`file_source`].
+pub fn file_stream(src: &Source, rate: f64) -> Result<Box<dyn Generator>, SignalError> {
+    check_rate(src, rate)?;
+    let Wave::File {
+        path,
+        channel,
+        full_scale,
+        looped,
+    } = &src.wave
+    else {
+        return Err(SignalError::bad(src, "file_stream needs a `file` wave"));
+    };
+    check_finite(src, "full_scale", *full_scale)?;
+    let wave = Box::new(WavStream::open(path, *channel, *full_scale, rate, *looped)?);
     Gated::new(src, wave, rate).map(|g| Box::new(g) as Box<dyn Generator>)
 }
 

@@ -68,19 +68,22 @@ fn hound_err(path: &Path, e: hound::Error) -> SignalError {
     }
 }
 
-/// Load a WAV file as volts at `target_rate`, exactly `frames` long.
-///
-/// `channel`: 0-based channel to use, or `None` to mix all channels (mean). Digital full scale
-/// maps to `full_scale` volts. A file at another rate is resampled. The result is looped
-/// (`looped`) or zero-padded to `frames`, and truncated if longer.
-pub fn load_wav(
+/// What [`open_checked`] learned about a file that decodes cleanly.
+#[derive(Debug, Clone, Copy)]
+struct Checked {
+    spec: hound::WavSpec,
+    channels: usize,
+    rate: f64,
+    declared: usize,
+    n_frames: usize,
+}
+
+/// Open `path`, check its header against what railsong accepts, and size what it can hold.
+fn open_checked(
     path: &Path,
     channel: Option<usize>,
-    full_scale: f64,
     target_rate: f64,
-    frames: usize,
-    looped: bool,
-) -> Result<Vec<f64>, SignalError> {
+) -> Result<(hound::WavReader<io::BufReader<fs::File>>, Checked), SignalError> {
     let meta = fs::metadata(path).map_err(|e| match e.kind() {
         io::ErrorKind::NotFound => SignalError::Missing {
             path: path.to_path_buf(),
@@ -102,7 +105,7 @@ pub fn load_wav(
             rate: target_rate,
         });
     }
-    let mut reader = hound::WavReader::open(path).map_err(|e| hound_err(path, e))?;
+    let reader = hound::WavReader::open(path).map_err(|e| hound_err(path, e))?;
     let spec = reader.spec();
     let channels = usize::from(spec.channels);
     if channels == 0 {
@@ -133,29 +136,38 @@ pub fn load_wav(
             what: "the data chunk holds no samples",
         });
     }
-    // The size fields may lie (a data chunk claiming 4 GiB in a 100-byte file): size the
-    // buffer by what the file can hold, and let the read loop report where the data ends.
+    // The size fields may lie (a data chunk claiming 4 GiB in a 100-byte file): size by what
+    // the file can hold, and let the read loop report where the data ends.
     let bytes_per_sample = usize::from(spec.bits_per_sample).div_ceil(8).max(1);
     let fits = usize::try_from(meta.len()).unwrap_or(usize::MAX) / bytes_per_sample;
     let n_frames = declared.min(fits) / channels;
-    let mut mono = vec![0.0f64; n_frames];
+    Ok((
+        reader,
+        Checked {
+            spec,
+            channels,
+            rate,
+            declared,
+            n_frames,
+        },
+    ))
+}
+
+/// Decode every sample of an opened file, in order, as volts, handing each to `take`
+/// (sample index over all channels, value). Stops with the error that names what is wrong.
+fn decode(
+    path: &Path,
+    reader: &mut hound::WavReader<io::BufReader<fs::File>>,
+    c: &Checked,
+    full_scale: f64,
+    take: &mut dyn FnMut(usize, f64),
+) -> Result<(), SignalError> {
+    let declared = c.declared;
     let truncated = |i: usize| SignalError::Truncated {
         path: path.to_path_buf(),
         what: format!("the data ends after {i} of {declared} samples"),
     };
-    // A frame that the end of the file cuts (when the declared size lies) is dropped.
-    let mut take = |i: usize, v: f64| {
-        let ch = i % channels;
-        let Some(m) = mono.get_mut(i / channels) else {
-            return;
-        };
-        match channel {
-            Some(c) if c == ch => *m = v,
-            Some(_) => {}
-            None => *m += v / channels as f64,
-        }
-    };
-    match (spec.sample_format, spec.bits_per_sample) {
+    match (c.spec.sample_format, c.spec.bits_per_sample) {
         (hound::SampleFormat::Int, bits @ (8 | 16 | 24 | 32)) => {
             let scale = full_scale / 2f64.powi(i32::from(bits) - 1);
             for (i, s) in reader.samples::<i32>().enumerate() {
@@ -188,12 +200,256 @@ pub fn load_wav(
             })
         }
     }
-    let data = if (rate - target_rate).abs() > 1e-9 * target_rate {
-        resample(path, &mono, rate, target_rate)?
+    Ok(())
+}
+
+/// Load a WAV file as volts at `target_rate`, exactly `frames` long.
+///
+/// `channel`: 0-based channel to use, or `None` to mix all channels (mean). Digital full scale
+/// maps to `full_scale` volts. A file at another rate is resampled. The result is looped
+/// (`looped`) or zero-padded to `frames`, and truncated if longer.
+pub fn load_wav(
+    path: &Path,
+    channel: Option<usize>,
+    full_scale: f64,
+    target_rate: f64,
+    frames: usize,
+    looped: bool,
+) -> Result<Vec<f64>, SignalError> {
+    let (mut reader, c) = open_checked(path, channel, target_rate)?;
+    let mut mono = vec![0.0f64; c.n_frames];
+    let channels = c.channels;
+    // A frame that the end of the file cuts (when the declared size lies) is dropped.
+    decode(path, &mut reader, &c, full_scale, &mut |i, v| {
+        let ch = i % channels;
+        let Some(m) = mono.get_mut(i / channels) else {
+            return;
+        };
+        match channel {
+            Some(k) if k == ch => *m = v,
+            Some(_) => {}
+            None => *m += v / channels as f64,
+        }
+    })?;
+    let data = if (c.rate - target_rate).abs() > 1e-9 * target_rate {
+        resample(path, &mono, c.rate, target_rate)?
     } else {
         mono
     };
     Ok(fit(data, frames, looped))
+}
+
+/// Frames per read of [`WavStream`] (at the file's rate).
+const STREAM_CHUNK: usize = 4096;
+
+/// Plays a WAV file from disk at `target_rate` without holding it in memory: reads a chunk
+/// at a time, picks or mixes the channel, resamples continuously (the same rubato sinc
+/// resampler as [`load_wav`], its delay trimmed at the start), and loops by reading the file
+/// again from its start into the same resampler (a seamless loop), or gives 0 V after the
+/// end. [`WavStream::open`] decodes the whole file once first, storing nothing, so every error
+/// [`load_wav`] would report is reported before playback starts.
+pub struct WavStream {
+    path: std::path::PathBuf,
+    channel: Option<usize>,
+    full_scale: f64,
+    looped: bool,
+    checked: Checked,
+    reader: Option<hound::WavReader<io::BufReader<fs::File>>>,
+    resampler: Option<Async<f64>>,
+    raw: Vec<f64>,
+    mono: Vec<f64>,
+    out: Vec<f64>,
+    out_pos: usize,
+    out_len: usize,
+    trim: usize,
+    ended: bool,
+}
+
+impl std::fmt::Debug for WavStream {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("WavStream")
+            .field("path", &self.path)
+            .field("looped", &self.looped)
+            .finish()
+    }
+}
+
+fn sinc_resampler(
+    path: &Path,
+    from: f64,
+    to: f64,
+    chunk: usize,
+) -> Result<Async<f64>, SignalError> {
+    let params = SincInterpolationParameters {
+        sinc_len: 256,
+        f_cutoff: None,
+        oversampling_factor: 256,
+        interpolation: SincInterpolationType::Cubic,
+        window: WindowFunction::BlackmanHarris2,
+    };
+    Async::<f64>::new_sinc(to / from, 1.0, &params, chunk, 1, FixedAsync::Input).map_err(|e| {
+        SignalError::Resample {
+            path: path.to_path_buf(),
+            from,
+            to,
+            what: e.to_string(),
+        }
+    })
+}
+
+impl WavStream {
+    /// Check and open `path` for streaming at `target_rate`.
+    pub fn open(
+        path: &Path,
+        channel: Option<usize>,
+        full_scale: f64,
+        target_rate: f64,
+        looped: bool,
+    ) -> Result<WavStream, SignalError> {
+        let (mut reader, c) = open_checked(path, channel, target_rate)?;
+        decode(path, &mut reader, &c, full_scale, &mut |_, _| {})?;
+        let resampler = if (c.rate - target_rate).abs() > 1e-9 * target_rate {
+            Some(sinc_resampler(path, c.rate, target_rate, STREAM_CHUNK)?)
+        } else {
+            None
+        };
+        let out_max = resampler
+            .as_ref()
+            .map_or(STREAM_CHUNK, |r| r.output_frames_max());
+        let mut s = WavStream {
+            path: path.to_path_buf(),
+            channel,
+            full_scale,
+            looped,
+            checked: c,
+            reader: None,
+            resampler,
+            raw: Vec::with_capacity(STREAM_CHUNK * c.channels),
+            mono: vec![0.0; STREAM_CHUNK],
+            out: vec![0.0; out_max],
+            out_pos: 0,
+            out_len: 0,
+            trim: 0,
+            ended: false,
+        };
+        s.rewind();
+        Ok(s)
+    }
+
+    fn rewind(&mut self) {
+        self.reader = hound::WavReader::open(&self.path).ok();
+        if let Some(r) = &mut self.resampler {
+            r.reset();
+            self.trim = r.output_delay();
+        }
+        self.out_pos = 0;
+        self.out_len = 0;
+        self.ended = false;
+    }
+
+    /// Read up to `STREAM_CHUNK - at` mono frames into `self.mono[at..]`; returns how many
+    /// (0 at the end of the file).
+    fn read_chunk(&mut self, at: usize) -> usize {
+        let c = self.checked;
+        let Some(reader) = self.reader.as_mut() else {
+            return 0;
+        };
+        self.raw.clear();
+        let want = (STREAM_CHUNK - at) * c.channels;
+        let scale_int = self.full_scale / 2f64.powi(i32::from(c.spec.bits_per_sample) - 1);
+        match c.spec.sample_format {
+            hound::SampleFormat::Int => {
+                for s in reader.samples::<i32>().take(want) {
+                    match s {
+                        Ok(v) => self.raw.push(f64::from(v) * scale_int),
+                        Err(_) => break,
+                    }
+                }
+            }
+            hound::SampleFormat::Float => {
+                for s in reader.samples::<f32>().take(want) {
+                    match s {
+                        Ok(v) => self.raw.push(f64::from(v) * self.full_scale),
+                        Err(_) => break,
+                    }
+                }
+            }
+        }
+        let n = self.raw.len() / c.channels;
+        for (k, m) in self.mono[at..at + n].iter_mut().enumerate() {
+            let frame = &self.raw[k * c.channels..(k + 1) * c.channels];
+            *m = match self.channel {
+                Some(ch) => frame[ch],
+                None => frame.iter().sum::<f64>() / c.channels as f64,
+            };
+        }
+        n
+    }
+
+    /// Refill `self.out` with the next resampled samples; false when nothing more comes.
+    fn refill(&mut self) -> bool {
+        let mut n = self.read_chunk(0);
+        // A looped file runs on from its start into the same chunk: no gap at the loop point.
+        let mut restarts = 0;
+        while self.looped && !self.ended && n < STREAM_CHUNK && restarts < 2 {
+            self.reader = hound::WavReader::open(&self.path).ok();
+            let got = self.read_chunk(n);
+            restarts = if got == 0 { restarts + 1 } else { 0 };
+            n += got;
+        }
+        if n == 0 {
+            if self.ended || self.resampler.is_none() {
+                return false;
+            }
+            // Flush the resampler's tail once with silence.
+            self.ended = true;
+        }
+        if n < STREAM_CHUNK {
+            self.mono[n..].fill(0.0);
+        }
+        match &mut self.resampler {
+            None => {
+                self.out[..n].copy_from_slice(&self.mono[..n]);
+                self.out_len = n;
+            }
+            Some(r) => {
+                let frames_in = r.input_frames_next().min(self.mono.len());
+                let input = InterleavedSlice::new(&self.mono[..frames_in], 1, frames_in);
+                let olen = self.out.len();
+                let output = InterleavedSlice::new_mut(&mut self.out[..], 1, olen);
+                let (Ok(input), Ok(mut output)) = (input, output) else {
+                    return false;
+                };
+                match r.process_into_buffer(&input, &mut output, None) {
+                    Ok((_, written)) => self.out_len = written,
+                    Err(_) => return false,
+                }
+            }
+        }
+        self.out_pos = self.trim.min(self.out_len);
+        self.trim -= self.out_pos;
+        true
+    }
+}
+
+impl Generator for WavStream {
+    fn fill(&mut self, out: &mut [f64]) {
+        let mut done = 0;
+        while done < out.len() {
+            if self.out_pos >= self.out_len && !self.refill() {
+                out[done..].fill(0.0);
+                return;
+            }
+            let n = (out.len() - done).min(self.out_len - self.out_pos);
+            out[done..done + n].copy_from_slice(&self.out[self.out_pos..self.out_pos + n]);
+            self.out_pos += n;
+            done += n;
+        }
+    }
+
+    fn reset(&mut self) {
+        self.rewind();
+    }
 }
 
 fn resample(path: &Path, x: &[f64], from: f64, to: f64) -> Result<Vec<f64>, SignalError> {
