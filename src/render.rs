@@ -15,9 +15,18 @@ pub enum RenderError {
     /// The engine rejected the patch.
     #[error("{0}")]
     Engine(#[from] EngineError),
-    /// A source could not be built (a WAV input that is missing or broken, a bad value).
+    /// Writing or another signal-layer step failed.
     #[error("{0}")]
     Signal(#[from] SignalError),
+    /// A source could not be built (a WAV input that is missing or broken, a bad value).
+    #[error("{key}: {source}")]
+    Source {
+        /// The patch key of the source (`sources.NAME.path` for a file, `sources.NAME`
+        /// otherwise).
+        key: String,
+        /// What went wrong.
+        source: SignalError,
+    },
 }
 
 /// Options of [`render`].
@@ -63,8 +72,16 @@ pub fn feeds(patch: &Patch, plan: &Plan) -> Result<Vec<Box<dyn SourceFeed>>, Ren
         .zip(&plan.sources)
         .map(|(src, sp)| {
             let gen = match &src.wave {
-                Wave::File { .. } => signal::file_stream(src, fs)?,
-                _ => signal::generator(src, fs, patch.seed)?,
+                Wave::File { .. } => {
+                    signal::file_stream(src, fs).map_err(|e| RenderError::Source {
+                        key: format!("sources.{}.path", src.name),
+                        source: e,
+                    })?
+                }
+                _ => signal::generator(src, fs, patch.seed).map_err(|e| RenderError::Source {
+                    key: format!("sources.{}", src.name),
+                    source: e,
+                })?,
             };
             Ok(Box::new(GeneratorFeed {
                 gen,
