@@ -333,11 +333,7 @@ pub fn run() -> Result<(), Failure> {
         } => {
             let p = load(&patch, &sets)?;
             crate::cli_study::check_variants(&patch, &variants)?;
-            let stem = patch
-                .file_stem()
-                .map(|s| s.to_string_lossy().into_owned())
-                .unwrap_or_else(|| "patch".into());
-            render_to(&p, &stem, &out, None)?;
+            render_to(&p, &stem_of(&patch), &out, None)?;
             crate::cli_study::render_variants(&patch, &sets, &variants, &out)
         }
         Command::Demo { out } => cmd_demo(&out),
@@ -380,16 +376,7 @@ pub fn run() -> Result<(), Failure> {
             sets,
         } => {
             let settings = analysis_settings(harmonics, &weighting)?;
-            let plots = plots.then(|| {
-                plots_dir.unwrap_or_else(|| {
-                    Path::new("renders").join(safe_stem(
-                        &patch
-                            .file_stem()
-                            .map(|s| s.to_string_lossy().into_owned())
-                            .unwrap_or_default(),
-                    ))
-                })
-            });
+            let plots = plots.then(|| plots_dir.unwrap_or_else(|| default_dir(&stem_of(&patch))));
             match level_sweep {
                 Some(spec) => cmd_level_sweep(&patch, &sets, &spec, steps, &settings, json, csv),
                 None => cmd_measure(
@@ -657,6 +644,18 @@ fn analysis_settings(harmonics: usize, weighting: &str) -> Result<Settings, Fail
     })
 }
 
+/// The file stem of a patch path (`patch` when it has none).
+pub(crate) fn stem_of(path: &Path) -> String {
+    path.file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "patch".into())
+}
+
+/// The default output folder of a patch: `renders/<stem>/`.
+pub(crate) fn default_dir(stem: &str) -> PathBuf {
+    Path::new("renders").join(safe_stem(stem))
+}
+
 /// Keep only the characters allowed in file names.
 pub(crate) fn safe_stem(s: &str) -> String {
     let t: String = s
@@ -688,26 +687,86 @@ fn progress_bar(frames: usize, rate: f64) -> Option<indicatif::ProgressBar> {
     Some(bar)
 }
 
-pub(crate) fn run_patch(patch: &Patch, alias: bool, show_progress: bool) -> Result<Run, Failure> {
-    let bar = if show_progress {
+/// Run `f` with a progress callback that drives a bar on stderr when asked and the patch is
+/// long enough to need one.
+fn with_progress<T>(
+    patch: &Patch,
+    show: bool,
+    f: impl FnOnce(&mut dyn FnMut(f64)) -> Result<T, RenderError>,
+) -> Result<T, Failure> {
+    let bar = if show {
         progress_bar(patch.frames(), patch.rate)
     } else {
         None
     };
-    let opts = RenderOptions {
-        frames: None,
-        alias_probe: alias,
-    };
-    let run = render::render(patch, &opts, &mut |f| {
+    let r = f(&mut |x| {
         if let Some(b) = &bar {
-            b.set_position((f * 1000.0) as u64);
+            b.set_position((x * 1000.0) as u64);
         }
-    })
-    .map_err(render_error)?;
+    });
     if let Some(b) = bar {
         b.finish_and_clear();
     }
-    Ok(run)
+    r.map_err(render_error)
+}
+
+fn options(alias: bool) -> RenderOptions {
+    RenderOptions {
+        frames: None,
+        alias_probe: alias,
+    }
+}
+
+/// Render a patch keeping every sample.
+pub(crate) fn run_patch(patch: &Patch, alias: bool, show_progress: bool) -> Result<Run, Failure> {
+    with_progress(patch, show_progress, |p| {
+        render::render(patch, &options(alias), p)
+    })
+}
+
+/// Stream a patch through `sink`, with a progress bar when asked and the render is long.
+fn stream_patch(
+    patch: &Patch,
+    alias: bool,
+    show_progress: bool,
+    sink: &mut render::Sink,
+) -> Result<render::Streamed, Failure> {
+    with_progress(patch, show_progress, |p| {
+        render::render_streaming(patch, &options(alias), sink, p)
+    })
+}
+
+/// Stream a patch through `sink` (with the alias probe), render its idle channel when
+/// circuit noise is on, and measure: figures from the kept tails, levels over the whole
+/// record.
+fn measure_streamed(
+    patch: &Patch,
+    settings: &Settings,
+    output: Option<&str>,
+    show_progress: bool,
+    sink: &mut render::Sink,
+) -> Result<(render::Streamed, measure::Measurement), Failure> {
+    let streamed = stream_patch(patch, true, show_progress, sink)?;
+    let idle = if patch.noise {
+        Some(stream_patch(
+            &render::muted(patch),
+            false,
+            false,
+            &mut |_, _| Ok(()),
+        )?)
+    } else {
+        None
+    };
+    let mut m = measure::measure(
+        patch,
+        &streamed.run,
+        idle.as_ref().map(|s| &s.run),
+        settings,
+        output,
+        None,
+    );
+    measure::apply_full_levels(&mut m, patch, &streamed.levels);
+    Ok((streamed, m))
 }
 
 /// Render a patch into its folder; returns the folder. A `variant` render names its files
@@ -718,10 +777,7 @@ pub(crate) fn render_to(
     flags: &RenderFlags,
     variant: Option<&str>,
 ) -> Result<PathBuf, Failure> {
-    let dir = flags
-        .out
-        .clone()
-        .unwrap_or_else(|| Path::new("renders").join(safe_stem(stem)));
+    let dir = flags.out.clone().unwrap_or_else(|| default_dir(stem));
     let depth = match flags.depth.as_str() {
         "16" => Depth::Pcm16,
         "float" => Depth::Float32,
@@ -779,7 +835,7 @@ pub(crate) fn render_to(
         files.push(folder.create(name, spec).map_err(signal_error)?);
     }
     let mut scratch: Vec<f64> = Vec::new();
-    let streamed = stream_patch(patch, true, true, &mut |i, x| {
+    let (streamed, m) = measure_streamed(patch, &Settings::default(), None, true, &mut |i, x| {
         if gains[i] == 1.0 {
             files[i].write(x)
         } else {
@@ -792,26 +848,7 @@ pub(crate) fn render_to(
     for f in files {
         stats.push(f.finish().map_err(signal_error)?);
     }
-    let idle = if patch.noise {
-        Some(stream_patch(
-            &render::muted(patch),
-            false,
-            false,
-            &mut |_, _| Ok(()),
-        )?)
-    } else {
-        None
-    };
     let run = &streamed.run;
-    let mut m = measure::measure(
-        patch,
-        run,
-        idle.as_ref().map(|s| &s.run),
-        &Settings::default(),
-        None,
-        None,
-    );
-    measure::apply_full_levels(&mut m, patch, &streamed.levels);
 
     match variant {
         Some(v) => println!("{} (variant {v}) -> {}", patch.title, dir.display()),
@@ -859,7 +896,7 @@ pub(crate) fn render_to(
         .write_text(&figures_name, &measure::to_json(&m))
         .map_err(signal_error)?;
     if flags.plots && variant.is_none() {
-        let figs = report::plots(patch, &m, None).map_err(render_error)?;
+        let figs = report::plots(patch, None).map_err(render_error)?;
         for f in &figs {
             folder
                 .write_text(&f.file_name(), &f.svg)
@@ -884,33 +921,6 @@ fn check_length(patch: &Patch, long: bool) -> Result<(), Failure> {
     Ok(())
 }
 
-/// Stream a patch through `sink`, with a progress bar when asked and the render is long.
-fn stream_patch(
-    patch: &Patch,
-    alias: bool,
-    show_progress: bool,
-    sink: &mut render::Sink,
-) -> Result<render::Streamed, Failure> {
-    let bar = if show_progress {
-        progress_bar(patch.frames(), patch.rate)
-    } else {
-        None
-    };
-    let opts = RenderOptions {
-        frames: None,
-        alias_probe: alias,
-    };
-    let r = render::render_streaming(patch, &opts, sink, &mut |f| {
-        if let Some(b) = &bar {
-            b.set_position((f * 1000.0) as u64);
-        }
-    });
-    if let Some(b) = bar {
-        b.finish_and_clear();
-    }
-    r.map_err(render_error)
-}
-
 /// Longest stretch the listening page embeds, s.
 const REPORT_MAX_S: f64 = 60.0;
 
@@ -930,14 +940,10 @@ fn cmd_report(
     }
     let text = std::fs::read_to_string(path)
         .map_err(|e| Failure::bad_input(format!("{}: {e}", path.display())))?;
-    let stem = path
-        .file_stem()
-        .map(|s| s.to_string_lossy().into_owned())
-        .unwrap_or_else(|| "patch".into());
     let dir = flags
         .out
         .clone()
-        .unwrap_or_else(|| Path::new("renders").join(safe_stem(&stem)));
+        .unwrap_or_else(|| default_dir(&stem_of(path)));
     let mut folder = OutputDir::open(&dir, flags.force).map_err(signal_error)?;
     folder.check_writable("report.html").map_err(signal_error)?;
     let (patch, run, m, comparison) = match ab {
@@ -957,7 +963,7 @@ fn cmd_report(
             (c.pa, c.ra, c.ma, Some((c.results, a, b)))
         }
     };
-    let figs = report::plots(&patch, &m, None).map_err(render_error)?;
+    let figs = report::plots(&patch, None).map_err(render_error)?;
     let mut players: Vec<report::Player> = Vec::new();
     let mut sections = Vec::new();
     match &comparison {
@@ -1098,29 +1104,9 @@ fn cmd_measure(
             )));
         }
     }
-    let streamed = stream_patch(&patch, true, !json && !csv, &mut |_, _| Ok(()))?;
-    let idle = if patch.noise {
-        Some(stream_patch(
-            &render::muted(&patch),
-            false,
-            false,
-            &mut |_, _| Ok(()),
-        )?)
-    } else {
-        None
-    };
-    let run = &streamed.run;
-    let mut m = measure::measure(
-        &patch,
-        run,
-        idle.as_ref().map(|s| &s.run),
-        settings,
-        output,
-        None,
-    );
-    measure::apply_full_levels(&mut m, &patch, &streamed.levels);
+    let (_, m) = measure_streamed(&patch, settings, output, !json && !csv, &mut |_, _| Ok(()))?;
     if let Some(folder) = folder.as_mut() {
-        let figs = report::plots(&patch, &m, output).map_err(render_error)?;
+        let figs = report::plots(&patch, output).map_err(render_error)?;
         for f in &figs {
             folder
                 .check_writable(&f.file_name())

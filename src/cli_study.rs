@@ -18,7 +18,8 @@ use railsong::study::StudyError;
 use railsong::units::{self, fmt_eng};
 
 use crate::cli::{
-    failure_io, load, render_to, run_patch, safe_stem, signal_error, Failure, RenderFlags,
+    default_dir, failure_io, load, render_to, run_patch, signal_error, stem_of, Failure,
+    RenderFlags,
 };
 
 /// Crossfade length of the alternating A/B file, s.
@@ -29,12 +30,6 @@ fn study_error(e: StudyError) -> Failure {
         StudyError::Render(r) => crate::cli::render_error(r),
         other => Failure::bad_input(other),
     }
-}
-
-fn stem_of(path: &Path) -> String {
-    path.file_stem()
-        .map(|s| s.to_string_lossy().into_owned())
-        .unwrap_or_else(|| "patch".into())
 }
 
 fn depth_of(flags: &RenderFlags) -> Depth {
@@ -116,7 +111,7 @@ pub(crate) fn render_variants(
     let dir = flags
         .out
         .clone()
-        .unwrap_or_else(|| Path::new("renders").join(safe_stem(&stem_of(path))));
+        .unwrap_or_else(|| default_dir(&stem_of(path)));
     let flags = RenderFlags {
         out: Some(dir),
         depth: flags.depth.clone(),
@@ -155,8 +150,6 @@ pub(crate) struct Compared {
     pub ma: Measurement,
     /// Patch B.
     pub pb: Patch,
-    /// Figures of B.
-    pub mb: Measurement,
     /// One comparison per output.
     pub results: Vec<OutputComparison>,
     /// How B was matched.
@@ -228,7 +221,6 @@ pub(crate) fn compare_sides(
         ra,
         ma,
         pb,
-        mb,
         results,
         matching,
         layout,
@@ -241,12 +233,7 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     // Refuse early, before rendering, when the folder holds files railsong did not write.
     let pa = load_side(args.patch, args.a, args.sets)?;
     let dir = args.flags.out.clone().unwrap_or_else(|| {
-        Path::new("renders").join(safe_stem(&format!(
-            "{}-{}-vs-{}",
-            stem_of(args.patch),
-            args.a,
-            args.b
-        )))
+        default_dir(&format!("{}-{}-vs-{}", stem_of(args.patch), args.a, args.b))
     });
     let mut folder = OutputDir::open(&dir, args.flags.force).map_err(signal_error)?;
     let files = |o: &str| {
@@ -268,9 +255,7 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
 
     let Compared {
         ra,
-        ma,
         pb,
-        mb,
         results: compared,
         matching,
         layout,
@@ -327,8 +312,8 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         .write_text("compare.json", &text)
         .map_err(signal_error)?;
     if args.flags.plots {
-        for (side, p, m) in [("A", &pa, &ma), ("B", &pb, &mb)] {
-            let figs = railsong::report::plots(p, m, None).map_err(crate::cli::render_error)?;
+        for (side, p) in [("A", &pa), ("B", &pb)] {
+            let figs = railsong::report::plots(p, None).map_err(crate::cli::render_error)?;
             for f in figs {
                 folder
                     .write_text(&format!("{}-{side}-{}.svg", f.output, f.kind), &f.svg)
@@ -514,7 +499,7 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
         Some((dir, force)) => {
             let dir = dir
                 .clone()
-                .unwrap_or_else(|| Path::new("renders").join(safe_stem(&stem_of(args.patch))));
+                .unwrap_or_else(|| default_dir(&stem_of(args.patch)));
             Some(OutputDir::open(&dir, *force).map_err(signal_error)?)
         }
         None => None,
@@ -753,7 +738,7 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             .flags
             .out
             .clone()
-            .unwrap_or_else(|| Path::new("renders").join(safe_stem(&stem_of(args.patch))));
+            .unwrap_or_else(|| default_dir(&stem_of(args.patch)));
         println!(
             "tolerance run {i} (seed {seed}, run seed {}, resistors +/-{} %, capacitors +/-{} %)",
             tolerance::run_seed(seed, i),
@@ -783,7 +768,7 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             .flags
             .out
             .clone()
-            .unwrap_or_else(|| Path::new("renders").join(safe_stem(&stem_of(args.patch))));
+            .unwrap_or_else(|| default_dir(&stem_of(args.patch)));
         let mut folder = OutputDir::open(&dir, args.flags.force).map_err(signal_error)?;
         for (k, o) in patch.outputs.iter().enumerate() {
             let gains: Vec<f64> = rep.runs.iter().map(|r| r.outputs[k].gain_db).collect();

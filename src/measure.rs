@@ -397,23 +397,10 @@ pub fn apply_full_levels(
         let (Some(r), Some(Some(l))) = (m.outputs.get_mut(&o.name), levels.get(i)) else {
             continue;
         };
-        let f = &mut r.figures;
-        f.peak_v = Some(l.peak_v);
-        f.rms_v = Some(l.rms_v);
-        f.dc_v = Some(l.dc_v);
-        f.crest_db = l.crest_db;
-        let lv = crate::analysis::levels::v_to_dbu;
-        f.rms_dbu = (l.ac_rms_v > 0.0).then(|| lv(l.ac_rms_v));
-        f.rms_dbv = (l.ac_rms_v > 0.0).then(|| crate::analysis::levels::v_to_dbv(l.ac_rms_v));
-        let fs = patch.full_scale;
-        f.peak_dbfs = (l.peak_v > 0.0).then(|| crate::analysis::levels::peak_to_dbfs(l.peak_v, fs));
-        f.rms_dbfs =
-            (l.ac_rms_v > 0.0).then(|| crate::analysis::levels::rms_to_dbfs(l.ac_rms_v, fs));
-        let (p, n) = crate::analysis::headroom_db(l, &swing_at(patch, i));
-        f.headroom_pos_db = p;
-        f.headroom_neg_db = n;
+        let swing = swing_at(patch, i);
+        analysis::set_level_figures(&mut r.figures, l, Some(&swing), Some(patch.full_scale));
     }
-    m.settings.length_s = levels.first().map_or(m.settings.length_s, |_| {
-        patch.length.min(patch.frames() as f64 / patch.rate)
-    });
+    if !levels.is_empty() {
+        m.settings.length_s = patch.length.min(patch.frames() as f64 / patch.rate);
+    }
 }

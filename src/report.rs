@@ -200,11 +200,7 @@ pub const PLOT_MAX_S: f64 = 10.0;
 
 /// Every plot of every output (`only`: one output by name). Renders the patch once more with
 /// probes on every node (at most [`PLOT_MAX_S`] long).
-pub fn plots(
-    patch: &Patch,
-    m: &Measurement,
-    only: Option<&str>,
-) -> Result<Vec<Figure>, RenderError> {
+pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderError> {
     let mut short = patch.clone();
     short.length = short.length.min(PLOT_MAX_S);
     let patch = &short;
@@ -220,7 +216,6 @@ pub fn plots(
             continue;
         };
         let swing = measure::swing_at(patch, oi);
-        let fig = m.outputs.get(&o.name).map(|r| &r.figures);
         let test = measure::test_signal(patch, o.from);
         let mut push = |kind: &'static str, svg: Result<String, plot::PlotError>| {
             if let Ok(svg) = svg {
@@ -371,7 +366,6 @@ pub fn plots(
                 );
             }
         }
-        let _ = fig;
     }
     Ok(figs)
 }

@@ -262,6 +262,35 @@ pub struct OutputFigures {
     pub notes: Vec<String>,
 }
 
+/// Set the level figures of `fig` from `l`: peak, RMS, DC, crest factor, dBu, dBV, dBFS
+/// (when `full_scale_v` is a positive voltage) and headroom (when `swing` is given). A figure
+/// that does not apply becomes `None`. [`measure_output`] uses it on the analysed record; a
+/// caller that kept only part of a long record uses it with levels of the whole.
+pub fn set_level_figures(
+    fig: &mut OutputFigures,
+    l: &Levels,
+    swing: Option<&SwingLimits>,
+    full_scale_v: Option<f64>,
+) {
+    fig.peak_v = Some(l.peak_v);
+    fig.rms_v = Some(l.rms_v);
+    fig.dc_v = Some(l.dc_v);
+    fig.crest_db = l.crest_db;
+    let ac = (l.ac_rms_v > 0.0).then_some(l.ac_rms_v);
+    fig.rms_dbu = ac.map(levels::v_to_dbu);
+    fig.rms_dbv = ac.map(levels::v_to_dbv);
+    let fs = full_scale_v.filter(|v| v.is_finite() && *v > 0.0);
+    fig.peak_dbfs = fs
+        .filter(|_| l.peak_v > 0.0)
+        .map(|fs| levels::peak_to_dbfs(l.peak_v, fs));
+    fig.rms_dbfs = fs.and_then(|fs| ac.map(|a| levels::rms_to_dbfs(a, fs)));
+    if let Some(lim) = swing {
+        let (p, n) = headroom_db(l, lim);
+        fig.headroom_pos_db = p;
+        fig.headroom_neg_db = n;
+    }
+}
+
 /// Measure one output: levels always; THD, THD+N, SINAD, ENOB or IMD according to
 /// `ctx.test`; SNR when an idle render is given. Never panics: a figure that cannot be
 /// taken is `None` with a line in `notes`.
@@ -269,29 +298,7 @@ pub fn measure_output(samples: &[f64], rate: f64, ctx: &MeasureContext) -> Outpu
     let mut fig = OutputFigures::default();
     let s = &ctx.settings;
     match levels(samples) {
-        Ok(l) => {
-            fig.peak_v = Some(l.peak_v);
-            fig.rms_v = Some(l.rms_v);
-            fig.dc_v = Some(l.dc_v);
-            fig.crest_db = l.crest_db;
-            if l.ac_rms_v > 0.0 {
-                fig.rms_dbu = Some(levels::v_to_dbu(l.ac_rms_v));
-                fig.rms_dbv = Some(levels::v_to_dbv(l.ac_rms_v));
-            }
-            if let Some(fs) = ctx.full_scale_v.filter(|v| v.is_finite() && *v > 0.0) {
-                if l.peak_v > 0.0 {
-                    fig.peak_dbfs = Some(levels::peak_to_dbfs(l.peak_v, fs));
-                }
-                if l.ac_rms_v > 0.0 {
-                    fig.rms_dbfs = Some(levels::rms_to_dbfs(l.ac_rms_v, fs));
-                }
-            }
-            if let Some(lim) = &ctx.swing {
-                let (p, n) = headroom_db(&l, lim);
-                fig.headroom_pos_db = p;
-                fig.headroom_neg_db = n;
-            }
-        }
+        Ok(l) => set_level_figures(&mut fig, &l, ctx.swing.as_ref(), ctx.full_scale_v),
         Err(e) => fig.notes.push(format!("levels: {e}")),
     }
     let note = |fig: &mut OutputFigures, what: &str, e: AnalysisError| {

@@ -49,6 +49,17 @@ pub fn check_file_name(name: &str) -> Result<(), SignalError> {
     }
 }
 
+/// Record `name` in the folder's manifest.
+fn append_manifest(manifest: &Path, name: &str) -> Result<(), SignalError> {
+    let mut m = OpenOptions::new()
+        .create(true)
+        .append(true)
+        .open(manifest)
+        .map_err(io_at(manifest))?;
+    m.write_all(format!("{name}\n").as_bytes())
+        .map_err(io_at(manifest))
+}
+
 /// An output folder with an overwrite guard.
 #[derive(Debug)]
 pub struct OutputDir {
@@ -109,17 +120,9 @@ impl OutputDir {
     /// Start writing `name` (see [`check_file_name`]) atomically. Refuses an existing file
     /// railsong did not write unless the folder was opened with `force`.
     pub fn create(&mut self, name: &str, spec: WavSpec) -> Result<WavFile, SignalError> {
-        check_file_name(name)?;
+        self.check_writable(name)?;
         let target = self.dir.join(name);
-        let exists = fs::symlink_metadata(&target).is_ok();
-        if exists && !self.force && !self.written.contains(name) && !self.listed_now(name) {
-            return Err(SignalError::Foreign { path: target });
-        }
-        let temp = self.dir.join(format!(
-            ".{name}.tmp-{}-{}",
-            std::process::id(),
-            COUNTER.fetch_add(1, Ordering::Relaxed)
-        ));
+        let temp = self.temp_path(name);
         let file = OpenOptions::new()
             .write(true)
             .create_new(true)
@@ -154,6 +157,15 @@ impl OutputDir {
         Ok(())
     }
 
+    /// A unique temporary name in the folder for writing `name` (this process, a counter).
+    fn temp_path(&self, name: &str) -> PathBuf {
+        self.dir.join(format!(
+            ".{name}.tmp-{}-{}",
+            std::process::id(),
+            COUNTER.fetch_add(1, Ordering::Relaxed)
+        ))
+    }
+
     /// Whether the manifest on disk lists `name` now: another railsong process rendering into
     /// the same folder may have written the file since this folder was opened.
     fn listed_now(&self, name: &str) -> bool {
@@ -168,11 +180,7 @@ impl OutputDir {
     pub fn write_text(&mut self, name: &str, text: &str) -> Result<(), SignalError> {
         self.check_writable(name)?;
         let target = self.dir.join(name);
-        let temp = self.dir.join(format!(
-            ".{name}.tmp-{}-{}",
-            std::process::id(),
-            COUNTER.fetch_add(1, Ordering::Relaxed)
-        ));
+        let temp = self.temp_path(name);
         let result = (|| -> Result<(), SignalError> {
             let mut file = OpenOptions::new()
                 .write(true)
@@ -189,14 +197,7 @@ impl OutputDir {
             return result;
         }
         if self.written.insert(name.to_string()) {
-            let manifest = self.dir.join(MANIFEST_NAME);
-            let mut m = OpenOptions::new()
-                .create(true)
-                .append(true)
-                .open(&manifest)
-                .map_err(io_at(&manifest))?;
-            m.write_all(format!("{name}\n").as_bytes())
-                .map_err(io_at(&manifest))?;
+            append_manifest(&self.dir.join(MANIFEST_NAME), name)?;
         }
         Ok(())
     }
@@ -270,13 +271,7 @@ impl WavFile {
             }
         }
         if let Some((manifest, name)) = self.record.take() {
-            let mut m = OpenOptions::new()
-                .create(true)
-                .append(true)
-                .open(&manifest)
-                .map_err(io_at(&manifest))?;
-            m.write_all(format!("{name}\n").as_bytes())
-                .map_err(io_at(&manifest))?;
+            append_manifest(&manifest, &name)?;
         }
         Ok(stats)
     }
