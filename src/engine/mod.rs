@@ -165,6 +165,7 @@
 //! the sub-millisecond pre-roll): clip (drive at or past the start of the knee or the limit),
 //! slew (|Vd| > Vov), cm_out (V+ outside the input range), reversed (reversal factor < 0).
 
+pub mod fastmath;
 pub mod feed;
 pub mod halfband;
 pub mod noise;
