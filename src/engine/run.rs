@@ -160,7 +160,7 @@ const WEAK_W: f64 = 0.25;
 /// They are interpolated once per stage at the Chebyshev points of `[0, 1/4]` (values from
 /// the reference step's own formulas) with degree [`WEAK_DEG`] (interpolation error about
 /// `rho^-9`, `rho` > 90: below 1e-16 relative; Trefethen, "Approximation Theory and
-/// Approximation Practice", 2013, ch. 8) and evaluated as polynomials in `t = 8 w - 1`.
+/// Approximation Practice", 2013, ch. 8) and evaluated as polynomials in `w` (Estrin).
 /// Only for `lam = k b h >= 1` (a pole of `A1`, `A0` sits near `w = 6 lam`).
 #[derive(Debug, Clone)]
 struct WeakStep {
@@ -231,10 +231,23 @@ impl WeakStep {
             }
             out
         };
+        // p(t) with t = 8 w - 1, as monomial coefficients in w (Horner on coefficient rows)
+        let in_w = |c: [f64; WEAK_DEG + 1]| {
+            let mut r = [0.0; WEAK_DEG + 1];
+            for &ck in c.iter().rev() {
+                let mut next = [0.0; WEAK_DEG + 1];
+                for i in 0..=WEAK_DEG {
+                    next[i] = -r[i] + if i > 0 { 8.0 * r[i - 1] } else { 0.0 };
+                }
+                next[0] += ck;
+                r = next;
+            }
+            r
+        };
         Some(WeakStep {
-            e: mono(&vals[0]),
-            a1: mono(&vals[1]),
-            a0: mono(&vals[2]),
+            e: in_w(mono(&vals[0])),
+            a1: in_w(mono(&vals[1])),
+            a0: in_w(mono(&vals[2])),
             inv_vov: 1.0 / vov,
         })
     }
@@ -646,6 +659,8 @@ impl Engine {
                         &mut self.xbuf,
                         1.0 / self.plan.internal_rate,
                         self.weak[si].as_ref(),
+                        &mut self.pbuf,
+                        &mut self.qbuf,
                     );
                 } else {
                     // The plain reference: the full model at every sample.
@@ -1023,6 +1038,8 @@ fn hybrid_block(
     x: &mut [f64],
     h: f64,
     weak: Option<&WeakStep>,
+    vpa: &mut [f64],
+    mra: &mut [f64],
 ) {
     let b = x.len();
     let kh = std::f64::consts::TAU * sp.gbw * h;
@@ -1043,23 +1060,52 @@ fn hybrid_block(
     });
     let has_caps = sp.fb_cap.is_some() || sp.minus.iter().any(|m| m.cap.is_some());
     let consts = StepConsts::new(sp, kh);
+    // Without capacitors V+ and `mrest` do not depend on the state: computed for the whole
+    // block first (vectorised), read back in the serial loop.
+    if !has_caps {
+        vpa.fill(sp.plus_const);
+        if let Some(pi) = &sp.plus {
+            let src = &bufs[pi.node][hist - pi.delay..hist - pi.delay + b];
+            for (d, s) in vpa.iter_mut().zip(src) {
+                *d += pi.gain * s;
+            }
+        }
+        mra.fill(sp.minus_const);
+        for m in &sp.minus {
+            let src = &bufs[m.node][hist - m.delay..hist - m.delay + b];
+            let w = m.mu * m.gain;
+            for (d, s) in mra.iter_mut().zip(src) {
+                *d += w * s;
+            }
+        }
+        if let Some(nz) = noise {
+            for (d, n) in mra.iter_mut().zip(nz) {
+                *d -= n;
+            }
+        }
+    }
     let mut v = st.v;
     let mut pp = st.p_prev;
     let mut pp2 = st.p_prev2;
     for (t, xo) in x.iter_mut().enumerate().take(b) {
-        let vp = match &sp.plus {
-            Some(pi) => sp.plus_const + pi.gain * bufs[pi.node][hist - pi.delay + t],
-            None => sp.plus_const,
+        let (vp, mrest, nz) = if has_caps {
+            let vp = match &sp.plus {
+                Some(pi) => sp.plus_const + pi.gain * bufs[pi.node][hist - pi.delay + t],
+                None => sp.plus_const,
+            };
+            let mut mrest = sp.minus_const;
+            for (m, vc) in sp.minus.iter().zip(st.vc.iter()) {
+                let s = bufs[m.node][hist - m.delay + t];
+                mrest += m.mu * (m.gain * s - vc);
+            }
+            if let Some(fc) = &sp.fb_cap {
+                mrest -= fc.mu * st.vf;
+            }
+            (vp, mrest, noise.map_or(0.0, |n| n[t]))
+        } else {
+            // the noise is folded into mrest here (subtracted above)
+            (vpa[t], mra[t], 0.0)
         };
-        let mut mrest = sp.minus_const;
-        for (m, vc) in sp.minus.iter().zip(st.vc.iter()) {
-            let s = bufs[m.node][hist - m.delay + t];
-            mrest += m.mu * (m.gain * s - vc);
-        }
-        if let Some(fc) = &sp.fb_cap {
-            mrest -= fc.mu * st.vf;
-        }
-        let nz = noise.map_or(0.0, |n| n[t]);
         let in_range = lin_cm.is_none_or(|(cl, ch)| vp >= cl && vp <= ch);
         let mut linear = false;
         if in_range {
@@ -1094,8 +1140,8 @@ fn hybrid_block(
             let zr = (0.5 * (pn + pp) - sp.b * v) * weak.map_or(0.0, |w| w.inv_vov);
             let w2 = zr * zr;
             let xn = if let (Some(ws), true) = (weak, f == 1.0 && w2 < WEAK_W) {
-                let t = 8.0 * w2 - 1.0;
-                let (t2, t4) = (t * t, t * t * t * t);
+                let (t, t2) = (w2, w2 * w2);
+                let t4 = t2 * t2;
                 let ve = poly8(&ws.e, t, t2, t4) * v
                     + poly8(&ws.a1, t, t2, t4) * pn
                     + poly8(&ws.a0, t, t2, t4) * pp;
@@ -1253,7 +1299,7 @@ mod tests {
                 let pp = b * v0 + d + 0.01 * vov * (rng.uniform() - 0.5);
                 let p = 2.0 * (b * v0 + d) - pp;
                 let zr = (0.5 * (p + pp) - b * v0) * ws.inv_vov;
-                let t = 8.0 * zr * zr - 1.0;
+                let t = zr * zr;
                 let (t2, t4) = (t * t, t * t * t * t);
                 let a = poly8(&ws.e, t, t2, t4) * v0
                     + poly8(&ws.a1, t, t2, t4) * p
