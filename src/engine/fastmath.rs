@@ -19,7 +19,9 @@ pub fn exp(x: f64) -> f64 {
     if x < -700.0 {
         return 0.0;
     }
-    let k = (x * std::f64::consts::LOG2_E).round();
+    // round to nearest by the 1.5 * 2^52 shift (exact for |y| < 2^51; no library call)
+    let y = x * std::f64::consts::LOG2_E;
+    let k = (y + 6_755_399_441_055_744.0) - 6_755_399_441_055_744.0;
     let r = (x - k * LN2_HI) - k * LN2_LO;
     // Taylor coefficients 1/n!, n = 13 down to 0
     let mut p = 1.0 / 6_227_020_800.0;

@@ -54,7 +54,7 @@ pub use control::{Dc, Ramp, Steps};
 pub use files::{check_file_name, OutputDir, WavFile, MANIFEST_NAME};
 pub use gate::Gated;
 pub use noise::{PinkNoise, WhiteNoise, PINK_LOW_HZ};
-pub use periodic::{BandLimited, Multitone, Naive, Shape, Sine};
+pub use periodic::{BandLimited, Multitone, Naive, Shape, Sine, SineReference};
 pub use sweep::LogSweep;
 pub use wav_in::{load_wav, Playback, WavStream, MAX_RATE, MIN_RATE};
 pub use wav_out::{
