@@ -136,6 +136,7 @@ pub fn render(
     for (o, samples) in streamed.run.outputs.iter_mut().zip(full) {
         o.samples = samples;
     }
+    streamed.run.first_frame = 0;
     Ok(streamed.run)
 }
 
@@ -239,6 +240,20 @@ impl Tail {
         }
     }
 
+    /// Number of samples kept so far.
+    pub fn len(&self) -> usize {
+        if self.filled {
+            self.buf.len()
+        } else {
+            self.pos
+        }
+    }
+
+    /// Whether nothing was kept yet.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
     /// The kept samples, oldest first.
     pub fn into_vec(self) -> Vec<f64> {
         if !self.filled {
@@ -305,6 +320,7 @@ pub fn render_streaming(
         done += n;
         progress(done as f64 / frames as f64);
     }
+    let kept = tails.first().map_or(0, Tail::len);
     let outputs = plan
         .outputs
         .iter()
@@ -324,6 +340,7 @@ pub fn render_streaming(
             rate: plan.rate,
             oversample: plan.oversample,
             outputs,
+            first_frame: frames - kept,
             events: eng.events(),
             alias,
         },
