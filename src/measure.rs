@@ -260,8 +260,9 @@ pub struct References {
 
 /// The references of every figure railsong prints.
 pub const REFERENCES: References = References {
-    thd: "relative to the fundamental: rss of harmonics 2..10 below Nyquist over the fundamental \
-          (null when the third harmonic lies above Nyquist)",
+    thd: "relative to the fundamental: rss of harmonics 2..10 below Nyquist over the fundamental; \
+          when the third harmonic lies above the file's Nyquist frequency, taken on the \
+          engine's internal oversampled signal (see notes), else null",
     thdn: "AES17: rms of what remains without the fundamental, over the rms of the whole \
            signal, both in the band and weighting stated",
     sinad: "the whole signal over what remains without the fundamental, in the same band: \

@@ -448,7 +448,8 @@ fn thd_at(patch: &Patch, s: usize, oi: usize, a: f64) -> Option<f64> {
     }
     p.length = p.length.min(measure::settle_time(&p) + 0.45);
     let run = render::render(&p, &RenderOptions::default(), &mut |_| {}).ok()?;
-    let m = measure::measure(&p, &run, None, &Settings::default(), None, None);
+    let mut m = measure::measure(&p, &run, None, &Settings::default(), None, None);
+    render::complete_thd(&p, &mut m, &Settings::default(), None).ok()?;
     m.outputs
         .get(&p.outputs[oi].name)
         .and_then(|r| r.figures.thd_percent)
@@ -584,7 +585,7 @@ figure{{margin:1em 0}}figure svg{{max-width:100%;height:auto}}.caution{{color:#8
     // Figures table.
     let _ = writeln!(
         h,
-        "<h2>Figures</h2>\n<table id=\"figures\"><tr><th>output</th><th>peak V</th><th>rms V</th>\
+        "<h2>Figures</h2>\n<table id=\"figures\"><tr><th>output</th><th>peak V (circuit)</th><th>rms V (AC)</th>\
 <th>headroom + dB</th><th>headroom &minus; dB</th><th>THD %</th><th>THD+N dB</th><th>SINAD dB</th><th>events</th></tr>"
     );
     for (name, r) in &m.outputs {
@@ -617,9 +618,11 @@ figure{{margin:1em 0}}figure svg{{max-width:100%;height:auto}}.caution{{color:#8
     let _ = writeln!(
         h,
         "</table>\n<p>{} Hz &times;{} oversampling, {:.2} s rendered, calibration {} V = 0 dBFS; \
-THD over harmonics 2&ndash;10; THD+N band 20 Hz &ndash; 20 kHz (AES17 practice); \
+THD over harmonics 2&ndash;10 re the fundamental; THD+N and SINAD re the whole signal in \
+the band 20 Hz &ndash; 20 kHz (AES17: SINAD = &minus;THD+N); spectral captures start after \
+a settle time of {:.3} s; peak is the op-amp's own output, headroom against its swing; \
 0 dBu = 0.7746 V rms, 0 dBV = 1 V rms.</p>",
-        s.rate_hz, s.oversample, s.length_s, s.full_scale_v
+        s.rate_hz, s.oversample, s.length_s, s.full_scale_v, s.settle_s
     );
     // Plots.
     let _ = writeln!(h, "<h2>Plots</h2>");

@@ -175,6 +175,7 @@ pub(crate) fn measure_streamed(
         None,
     );
     measure::apply_full_levels(&mut m, patch, &streamed.levels);
+    render::complete_thd(patch, &mut m, settings, None).map_err(render_error)?;
     Ok((streamed, m))
 }
 

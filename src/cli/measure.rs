@@ -283,7 +283,9 @@ pub(crate) fn cmd_level_sweep(
         s.push(format!("sources.{src}.amp={v} {unit}"));
         let patch = load(path, &s)?;
         let run = run_patch(&patch, false, false)?;
-        Ok(measure::measure(&patch, &run, None, settings, None, tone))
+        let mut m = measure::measure(&patch, &run, None, settings, None, tone);
+        railsong::render::complete_thd(&patch, &mut m, settings, tone).map_err(render_error)?;
+        Ok(m)
     };
     let mut rows = Vec::new();
     for k in 0..steps {

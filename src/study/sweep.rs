@@ -322,7 +322,8 @@ pub fn run(
             let p =
                 patch::parse_str_variant(src.text, src.origin, src.base_dir, src.variant, &sets)?;
             let run = render::render(&p, &RenderOptions::default(), &mut |_| {})?;
-            let measurement = measure::measure(&p, &run, None, settings, None, None);
+            let mut measurement = measure::measure(&p, &run, None, settings, None, None);
+            render::complete_thd(&p, &mut measurement, settings, None)?;
             tick();
             Ok(Point {
                 value: v.clone(),
@@ -362,7 +363,8 @@ pub fn find_thd_crossing(
             let p =
                 patch::parse_str_variant(src.text, src.origin, src.base_dir, src.variant, &sets)?;
             let run = render::render(&p, &RenderOptions::default(), &mut |_| {})?;
-            let m = measure::measure(&p, &run, None, settings, Some(output), None);
+            let mut m = measure::measure(&p, &run, None, settings, Some(output), None);
+            render::complete_thd(&p, &mut m, settings, None)?;
             Ok(m.outputs.get(output).and_then(|r| r.figures.thd_percent))
         })();
         match r {
