@@ -204,14 +204,18 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                         railsong::plot::AxisSpec::linear(label, unit)
                     }
                 };
+                // the crossings found on the circuit, marked only where found
                 let crossings: Vec<railsong::plot::Crossing> = if f == "thd_percent" {
-                    at1.map(|x| railsong::plot::Crossing {
-                        x,
-                        y: 1.0,
-                        label: format!("1 % THD at {}", fmt_eng(x, "")),
-                    })
-                    .into_iter()
-                    .collect()
+                    [(at01, 0.1), (at1, 1.0)]
+                        .into_iter()
+                        .filter_map(|(at, y)| {
+                            at.map(|x| railsong::plot::Crossing {
+                                x,
+                                y,
+                                label: format!("{y} % THD at {}", fmt_eng(x, "")),
+                            })
+                        })
+                        .collect()
                 } else {
                     Vec::new()
                 };
