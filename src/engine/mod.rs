@@ -299,16 +299,26 @@ pub struct Run {
 }
 
 /// The alias figure ([`alias_probe`]) of every op-amp stage's part, at the patch's rate,
-/// rails and oversampling.
+/// rails and oversampling (probed once per distinct part).
 pub fn alias_figures(patch: &Patch) -> Vec<AliasFigure> {
+    let mut probed: Vec<(&crate::parts::OpAmp, f64)> = Vec::new();
     patch
         .stages
         .iter()
         .filter_map(|st| {
-            st.part.as_ref().map(|part| AliasFigure {
+            let part = st.part.as_ref()?;
+            let dbc = match probed.iter().find(|(p, _)| *p == part) {
+                Some((_, d)) => *d,
+                None => {
+                    let d = alias_probe(part, patch.rails, patch.rate, patch.oversample);
+                    probed.push((part, d));
+                    d
+                }
+            };
+            Some(AliasFigure {
                 stage: st.name.clone(),
                 part: part.name.clone(),
-                dbc: alias_probe(part, patch.rails, patch.rate, patch.oversample),
+                dbc,
             })
         })
         .collect()
