@@ -11,6 +11,7 @@ mod demo;
 mod measure;
 mod noise;
 mod parts;
+mod progress;
 mod render;
 mod report;
 mod sweep;
@@ -54,6 +55,10 @@ clips, slews, leaves its input range or reverses phase."
 struct Cli {
     #[command(subcommand)]
     command: Command,
+    /// No progress output on stderr (by default a bar on a terminal; on a pipe or log, a
+    /// line every few seconds once a run has taken 2 s).
+    #[arg(long, global = true)]
+    quiet: bool,
 }
 
 #[derive(Subcommand, Debug)]
@@ -246,6 +251,10 @@ enum Command {
         /// Overwrite plot files railsong did not write.
         #[arg(long)]
         force: bool,
+        /// Render every point at the patch's whole length (default for a stationary patch:
+        /// the settle time plus one capture, same figures, faster).
+        #[arg(long)]
+        full: bool,
     },
     /// Monte Carlo over every resistor and capacitor within its tolerance.
     Tolerance {
@@ -273,6 +282,10 @@ enum Command {
         /// Print the whole study as JSON.
         #[arg(long)]
         json: bool,
+        /// Render every run at the patch's whole length (default for a stationary patch: the
+        /// settle time plus one capture, same figures, faster).
+        #[arg(long)]
+        full: bool,
         #[command(flatten)]
         out: RenderFlags,
         /// Override a value by dotted path (repeatable).
@@ -325,6 +338,7 @@ pub fn run() -> Result<(), Failure> {
             return Err(Failure::bad_input(format!("{first} (see railsong --help)")));
         }
     };
+    progress::set_quiet(cli.quiet);
     match cli.command {
         Command::Check { patch, sets } => check::cmd_check(&patch, &sets),
         Command::Parts { patch, sets } => parts::cmd_parts(patch.as_deref(), &sets),
@@ -429,6 +443,7 @@ pub fn run() -> Result<(), Failure> {
             plots,
             out,
             force,
+            full,
         } => sweep::cmd_sweep(&sweep::SweepArgs {
             patch: &patch,
             set: &set,
@@ -443,6 +458,7 @@ pub fn run() -> Result<(), Failure> {
             csv,
             json,
             plots: plots.then_some((out, force)),
+            length: study_length(full),
         }),
         Command::Tolerance {
             patch,
@@ -453,6 +469,7 @@ pub fn run() -> Result<(), Failure> {
             seed,
             render_run,
             json,
+            full,
             out,
             sets,
         } => tolerance::cmd_tolerance(&tolerance::ToleranceArgs {
@@ -466,7 +483,16 @@ pub fn run() -> Result<(), Failure> {
             sets: &sets,
             flags: &out,
             json,
+            length: study_length(full),
         }),
+    }
+}
+
+fn study_length(full: bool) -> railsong::study::length::StudyLength {
+    if full {
+        railsong::study::length::StudyLength::Full
+    } else {
+        railsong::study::length::StudyLength::Short
     }
 }
 

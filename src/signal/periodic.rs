@@ -171,11 +171,11 @@ impl Rotor {
         let mut i = k;
         let mut o = 0;
         // leading partial round
-        while i % LANES != 0 && i < end {
+        while !i.is_multiple_of(LANES) && i < end {
             out[o] += s[i % LANES];
             i += 1;
             o += 1;
-            if i % LANES == 0 {
+            if i.is_multiple_of(LANES) {
                 rotate(&mut s, &mut c);
             }
         }
