@@ -48,7 +48,10 @@ fn piped_progress_lines_and_quiet() {
         .collect();
     println!("{took:.1} s\n{err}");
     if took > 3.0 {
-        assert!(!lines.is_empty(), "no progress line after {took:.1} s:\n{err}");
+        assert!(
+            !lines.is_empty(),
+            "no progress line after {took:.1} s:\n{err}"
+        );
     }
     for l in &lines {
         // railsong: rendering 30/120 s of audio, 2.0 s elapsed, ETA 6.0 s
@@ -59,5 +62,8 @@ fn piped_progress_lines_and_quiet() {
         assert!(l.contains(" elapsed, ETA "), "{l}");
     }
     let qerr = String::from_utf8_lossy(&quiet.stderr);
-    assert!(!qerr.contains("railsong: rendering"), "--quiet printed:\n{qerr}");
+    assert!(
+        !qerr.contains("railsong: rendering"),
+        "--quiet printed:\n{qerr}"
+    );
 }

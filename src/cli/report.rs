@@ -103,7 +103,25 @@ pub(crate) fn cmd_report(
             sections.push(report::comparison_section(results, a, b));
         }
     }
-    let html = report::page(&patch, &text, &m, &figs, &players, &sections);
+    // A light page: above report::EMBED_MAX_BYTES of audio the players link WAV files
+    // written beside the page (before it, so the page never points at a missing file).
+    let linked = report::linked_audio(&players);
+    if let Some(names) = &linked {
+        for (i, (name, p)) in names.iter().zip(&players).enumerate() {
+            let spec =
+                report::player_spec(m.settings.rate_hz, m.settings.full_scale_v, i as u64 + 1);
+            folder.write(name, spec, p.samples).map_err(signal_error)?;
+        }
+    }
+    let html = report::page(
+        &patch,
+        &text,
+        &m,
+        &figs,
+        &players,
+        linked.as_deref(),
+        &sections,
+    );
     folder
         .write_text("report.html", &html)
         .map_err(signal_error)?;
