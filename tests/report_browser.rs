@@ -176,7 +176,10 @@ fn a_long_report_links_its_audio_and_the_players_load() {
     let outputs = ["clean", "rails", "reversal"];
     for (i, o) in outputs.iter().enumerate() {
         let name = format!("listen-{}-{o}.wav", i + 1);
-        assert!(html.contains(&format!("src=\"{name}\"")), "no link to {name}");
+        assert!(
+            html.contains(&format!("src=\"{name}\"")),
+            "no link to {name}"
+        );
         // a complete 16-bit WAV of the whole 20 s (read back with hound, a general library)
         let r = hound::WavReader::open(dir.path().join(&name)).unwrap();
         assert_eq!(r.spec().bits_per_sample, 16);

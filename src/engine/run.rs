@@ -443,14 +443,19 @@ impl Engine {
             .collect();
         let out_base = vec![vec![0.0; b / plan.oversample]; plan.outputs.len()];
         let fs = plan.internal_rate;
-        let stream = |white: f64, flicker: f64, seed: u64| {
-            let s = NoiseStream::new(white, flicker, fs, seed, b);
+        // Issue 13: the 1/f part of each stage runs at a lower rate, at least
+        // FLICKER_MIN_RATE (held; see noise.rs), and the outputs' thermal noise is added
+        // after decimation at the base rate.
+        let kf = plan.oversample;
+        let hold = ((fs / super::noise::FLICKER_MIN_RATE).floor() as usize).max(1);
+        let stream = |white: f64, flicker: f64, seed: u64, rate: f64, block: usize| {
+            let s = NoiseStream::with_hold(white, flicker, rate, seed, block, hold);
             (plan.noise && !s.is_silent()).then_some(s)
         };
         let stage_noise: Vec<Option<NoiseStream>> = plan
             .stages
             .iter()
-            .map(|s| stream(s.noise_white, s.noise_flicker, s.noise_seed))
+            .map(|s| stream(s.noise_white, s.noise_flicker, s.noise_seed, fs, b))
             .collect();
         let nbuf = stage_noise
             .iter()
@@ -465,10 +470,10 @@ impl Engine {
         let out_noise: Vec<Option<NoiseStream>> = plan
             .outputs
             .iter()
-            .map(|o| stream(o.noise_density, 0.0, o.noise_seed))
+            .map(|o| stream(o.noise_density, 0.0, o.noise_seed, plan.rate, b / kf))
             .collect();
         let obuf = if out_noise.iter().any(Option::is_some) {
-            vec![0.0; b]
+            vec![0.0; b / kf]
         } else {
             Vec::new()
         };
@@ -714,16 +719,15 @@ impl Engine {
         let kf = self.plan.oversample;
         for (o, op) in self.plan.outputs.iter().enumerate() {
             let src = &self.bufs[op.node][hist - op.delay..hist - op.delay + b];
+            self.decims[o].process_scaled(src, op.gain, &mut self.out_base[o][..b / kf]);
             if let Some(ns) = &mut self.out_noise[o] {
-                // Thermal noise of the output's resistances, added at the internal rate
-                // (the decimator removes the excess band).
+                // Thermal noise of the output's resistances (white, independent of the
+                // circuit), added at the base rate after decimation with the density it has
+                // in band (issue 13: K times fewer draws than at the internal rate).
                 ns.fill(&mut self.obuf);
-                for (y, &x) in self.obuf.iter_mut().zip(src) {
-                    *y += op.gain * x;
+                for (y, n) in self.out_base[o][..b / kf].iter_mut().zip(&self.obuf) {
+                    *y += n;
                 }
-                self.decims[o].process(&self.obuf, &mut self.out_base[o][..b / kf]);
-            } else {
-                self.decims[o].process_scaled(src, op.gain, &mut self.out_base[o][..b / kf]);
             }
         }
         for buf in self.bufs.iter_mut().take(ns + self.plan.stages.len()) {
