@@ -741,23 +741,18 @@ fn full_block(
 #[inline(always)]
 fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], aa: bool) {
     let sh = sp.shaper;
-    let (lin_lo, lin_hi) = (sh.lo + sh.w, sh.hi - sh.w);
     let mut x1 = st.x1;
     let mut x2 = st.x2;
     let b = x.len();
     // Whole block strictly inside the linear region: the output is the drive, one sample
     // late (same values as the per-sample branch below).
     if b >= 2 {
-        let inside = |xm: f64, xc: f64, xp: f64| {
-            let a = 0.5 * (xp - xm).abs();
-            (xc - a > lin_lo) & (xc + a < lin_hi)
-        };
-        let mut all = inside(x2, x1, x[0]) & inside(x1, x[0], x[1]);
+        let mut all = sh.inside(x2, x1, x[0]) & sh.inside(x1, x[0], x[1]);
         out[0] = x1;
         out[1] = x[0];
         for (((o, &xm), &xc), &xp) in out[2..].iter_mut().zip(x).zip(&x[1..]).zip(&x[2..]) {
             *o = xc;
-            all &= inside(xm, xc, xp);
+            all &= sh.inside(xm, xc, xp);
         }
         if all {
             st.x2 = x[b - 2];
@@ -767,11 +762,10 @@ fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], 
     }
     let mut clip = 0u64;
     for (o, &xn) in out.iter_mut().zip(x) {
-        let a = 0.5 * (xn - x2).abs();
-        *o = if x1 - a >= lin_lo && x1 + a <= lin_hi {
+        *o = if sh.inside(x2, x1, xn) {
             x1
         } else if aa {
-            sh.smooth(x1, a)
+            sh.smooth(x2, x1, xn)
         } else {
             sh.apply(x1)
         };
