@@ -47,7 +47,7 @@ fn naive_clip_matches_the_known_figures() {
 
 // Targets (railsong design): below -80 dBc at the default K = 4 with a built-in profile, and
 // below -75 dBc with an ideal hard clip at K = 16; the quadratic local model must keep at
-// least the -88 dBc of the straight-line model it replaced. Measured: about -99.8 dBc
+// least the -88 dBc of the straight-line model it replaced. Measured: about -99.4 dBc
 // (jfet-general, K = 4), -100.1 dBc (ideal, K = 4), -147.7 dBc (ideal, K = 16); asserted
 // with margin.
 #[test]

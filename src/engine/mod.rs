@@ -84,10 +84,10 @@
 //! | K | ideal (hard clip) | jfet-general | naive clip (ideal) |
 //! |---|---|---|---|
 //! | 1 | -61.2 dBc | -61.1 dBc | -30.7 dBc |
-//! | 2 | -74.0 dBc | -74.0 dBc | -40.7 dBc |
-//! | 4 | -100.1 dBc | -99.8 dBc | -53.8 dBc |
-//! | 8 | -120.9 dBc | -122.8 dBc | -65.5 dBc |
-//! | 16 | -147.7 dBc | -145.2 dBc | -78.0 dBc |
+//! | 2 | -74.0 dBc | -73.9 dBc | -40.7 dBc |
+//! | 4 | -100.1 dBc | -99.4 dBc | -53.8 dBc |
+//! | 8 | -120.9 dBc | -122.5 dBc | -65.5 dBc |
+//! | 16 | -147.7 dBc | -140.5 dBc | -78.0 dBc |
 //!
 //! (With the straight-line model: -88.3 dBc at K = 4.) Crest clips (tests/engine_crest.rs):
 //! a twin tone whose crests pass one rail reads its third-order product within 1 dB of the
@@ -95,9 +95,9 @@
 //! 19/20 kHz from 10 % past it (under ten samples per cycle the quadratic does not resolve a
 //! shallower cap, and reads low); at K = 8 within 0.2 dB from 0.5 % past the rail.
 //!
-//! A part that *slews* on the probe (single-supply: 0.5 V/us against the probe's 0.74 V/us)
-//! aliases through its slew corners, which the clipper does not treat: -41 dBc at K = 4,
-//! -58 dBc at K = 16.
+//! A part that *slews* on the probe (single-supply: 0.35 V/us against the probe's 0.74 V/us)
+//! aliases through its slew corners, which the clipper does not treat: -31 dBc at K = 4,
+//! -46 dBc at K = 16.
 //!
 //! # Fast path
 //! Each stage first runs a block as the linear recursion and checks it: |Vd| below
