@@ -333,18 +333,28 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
         // THD against level for a single-tone output.
         if let (TestSignal::Tone(_), Some(s)) = (test, first_source(patch, o.from)) {
             if let Some(pts) = level_sweep(patch, s, oi) {
-                let thd_pts: Vec<(f64, f64)> = pts.iter().map(|(l, t)| (*l, t / 100.0)).collect();
-                let at = analysis::sweep::level_at_thd(&thd_pts, 0.01);
-                let crossings: Vec<Crossing> = at
-                    .map(|l| Crossing {
-                        x: l,
-                        y: 1.0,
-                        label: format!("1 % THD at {l:.2} Vpk"),
-                    })
+                // the crossings found on the circuit (extra renders near each), marked only
+                // where found
+                let crossings: Vec<Crossing> = [0.1, 1.0]
                     .into_iter()
+                    .filter_map(|th| {
+                        let (lo, hi) = analysis::sweep::bracket(&pts, th)?;
+                        let l = analysis::sweep::find_crossing(
+                            lo,
+                            hi,
+                            th,
+                            analysis::sweep::CROSSING_TOLERANCE,
+                            &mut |a| thd_at(patch, s, oi, a),
+                        )?;
+                        Some(Crossing {
+                            x: l,
+                            y: th,
+                            label: format!("{th} % THD at {l:.3} Vpk"),
+                        })
+                    })
                     .collect();
                 let title = format!("{}: THD against level of {}", o.name, patch.sources[s].name);
-                let caption = "harmonics 2-10, 0.5 s per point, coherent capture where possible";
+                let caption = "harmonics 2-10, settle time + 0.45 s per point, coherent capture where possible; crossings found on the circuit within 0.1 % in level";
                 let series = [SweepSeries {
                     name: "THD",
                     points: &pts,
@@ -413,33 +423,37 @@ fn small_signal_fit(x: &[f64], y: &[f64], span: f64) -> (f64, f64) {
     (g, (sy - g * sx) / n)
 }
 
-/// THD (%) of output `oi` at nine levels of source `s`, from a tenth to twice its level.
+/// THD (%) of output `oi` at nine levels of source `s`, from a tenth to twice its level
+/// (points where THD is not measured are left out).
 fn level_sweep(patch: &Patch, s: usize, oi: usize) -> Option<Vec<(f64, f64)>> {
     let amp = match &patch.sources[s].wave {
         Wave::Sine { amp, .. } => *amp,
         _ => return None,
     };
-    let mut pts = Vec::new();
-    for k in 0..9 {
-        let a = amp * 0.1 * 20f64.powf(k as f64 / 8.0);
-        let mut p = patch.clone();
-        if let Wave::Sine { amp, .. } = &mut p.sources[s].wave {
-            *amp = a;
-        }
-        p.length = p.length.min(0.5);
-        let run = render::render(&p, &RenderOptions::default(), &mut |_| {}).ok()?;
-        let m = measure::measure(&p, &run, None, &Settings::default(), None, None);
-        if let Some(t) = m
-            .outputs
-            .get(&p.outputs[oi].name)
-            .and_then(|r| r.figures.thd_percent)
-        {
-            if t > 0.0 {
-                pts.push((a, t));
-            }
-        }
-    }
+    let pts: Vec<(f64, f64)> = (0..9)
+        .filter_map(|k| {
+            let a = amp * 0.1 * 20f64.powf(k as f64 / 8.0);
+            thd_at(patch, s, oi, a).map(|t| (a, t))
+        })
+        .collect();
     (pts.len() >= 2).then_some(pts)
+}
+
+/// THD (%) of output `oi` with sine source `s` at peak level `a`: a render of the settle time
+/// plus 0.45 s (at most the patch length). `None` when THD is not measured (or is 0).
+fn thd_at(patch: &Patch, s: usize, oi: usize, a: f64) -> Option<f64> {
+    let mut p = patch.clone();
+    if let Wave::Sine { amp, .. } = &mut p.sources[s].wave {
+        *amp = a;
+    }
+    p.length = p.length.min(measure::settle_time(&p) + 0.45);
+    let run = render::render(&p, &RenderOptions::default(), &mut |_| {}).ok()?;
+    let mut m = measure::measure(&p, &run, None, &Settings::default(), None, None);
+    render::complete_thd(&p, &mut m, &Settings::default(), None).ok()?;
+    m.outputs
+        .get(&p.outputs[oi].name)
+        .and_then(|r| r.figures.thd_percent)
+        .filter(|t| *t > 0.0)
 }
 
 /// XML/HTML text escape.
@@ -571,7 +585,7 @@ figure{{margin:1em 0}}figure svg{{max-width:100%;height:auto}}.caution{{color:#8
     // Figures table.
     let _ = writeln!(
         h,
-        "<h2>Figures</h2>\n<table id=\"figures\"><tr><th>output</th><th>peak V</th><th>rms V</th>\
+        "<h2>Figures</h2>\n<table id=\"figures\"><tr><th>output</th><th>peak V (circuit)</th><th>rms V (AC)</th>\
 <th>headroom + dB</th><th>headroom &minus; dB</th><th>THD %</th><th>THD+N dB</th><th>SINAD dB</th><th>events</th></tr>"
     );
     for (name, r) in &m.outputs {
@@ -604,9 +618,11 @@ figure{{margin:1em 0}}figure svg{{max-width:100%;height:auto}}.caution{{color:#8
     let _ = writeln!(
         h,
         "</table>\n<p>{} Hz &times;{} oversampling, {:.2} s rendered, calibration {} V = 0 dBFS; \
-THD over harmonics 2&ndash;10; THD+N band 20 Hz &ndash; 20 kHz (AES17 practice); \
+THD over harmonics 2&ndash;10 re the fundamental; THD+N and SINAD re the whole signal in \
+the band 20 Hz &ndash; 20 kHz (AES17: SINAD = &minus;THD+N); spectral captures start after \
+a settle time of {:.3} s; peak is the op-amp's own output, headroom against its swing; \
 0 dBu = 0.7746 V rms, 0 dBV = 1 V rms.</p>",
-        s.rate_hz, s.oversample, s.length_s, s.full_scale_v
+        s.rate_hz, s.oversample, s.length_s, s.full_scale_v, s.settle_s
     );
     // Plots.
     let _ = writeln!(h, "<h2>Plots</h2>");

@@ -40,7 +40,9 @@ pub(crate) fn cmd_report(
     let (patch, run, m, comparison) = match ab {
         None => {
             let run = run_patch(&patch, true, true)?;
-            let m = measure::measure(&patch, &run, None, &Settings::default(), None, None);
+            let mut m = measure::measure(&patch, &run, None, &Settings::default(), None, None);
+            railsong::render::complete_thd(&patch, &mut m, &Settings::default(), None)
+                .map_err(render_error)?;
             (patch, run, m, None)
         }
         Some((a, b, segment)) => {

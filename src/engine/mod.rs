@@ -174,7 +174,11 @@
 //! # Events
 //! Per stage and step, accumulated as seconds over the internal steps processed (including
 //! the sub-millisecond pre-roll): clip (drive at or past the start of the knee or the limit),
-//! slew (|Vd| > Vov), cm_out (V+ outside the input range), reversed (reversal factor < 0).
+//! slew (|Vd| > Vov while the output is free to move: a step held at the swing or current
+//! limit, or latched by a reversal, is not slewing), cm_out (V+ outside the input range),
+//! reversed (reversal factor < 0). Also the time of the first clipped sample and the
+//! extremes of each op-amp's own output (after its clamp, at the internal rate, so without
+//! the decimator's band-limiting overshoot).
 
 pub mod feed;
 pub mod halfband;
@@ -241,12 +245,21 @@ pub struct StageEvents {
     pub stage: String,
     /// Time at or past the swing limit (or inside its knee).
     pub clip_s: f64,
-    /// Time slew-limited (|Vd| > Vov).
+    /// Time slew-limited: |Vd| > Vov while the output is free to move (not held at the
+    /// swing or current limit, not latched by a phase reversal).
     pub slew_s: f64,
     /// Time with V+ outside the input common-mode range.
     pub cm_out_s: f64,
     /// Time with the phase reversed.
     pub reversed_s: f64,
+    /// Time of the first clipped sample, s from t = 0 (negative: in the pre-roll); `None`
+    /// if the stage never clipped.
+    pub first_clip_s: Option<f64>,
+    /// Highest output of the op-amp itself (after the output clamp, at the internal rate),
+    /// V; `None` before any sample.
+    pub peak_pos_v: Option<f64>,
+    /// Lowest output of the op-amp itself, V.
+    pub peak_neg_v: Option<f64>,
 }
 
 /// Options of [`run`].
@@ -287,6 +300,9 @@ pub struct Run {
     pub oversample: usize,
     /// Outputs in patch order.
     pub outputs: Vec<OutputSignal>,
+    /// Frame (base rate, from t = 0) of the first sample kept in `outputs`: 0 when every
+    /// sample is kept, later when only a tail of a long render is.
+    pub first_frame: usize,
     /// Events per op-amp stage.
     pub events: Vec<StageEvents>,
     /// Alias figures (when requested).
@@ -337,6 +353,7 @@ pub fn run(patch: &Patch, opts: &RunOptions) -> Result<Run, EngineError> {
         rate: plan.rate,
         oversample: plan.oversample,
         outputs,
+        first_frame: 0,
         events: eng.events(),
         alias,
     })

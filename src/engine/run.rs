@@ -20,6 +20,11 @@ struct StageState {
     slew: u64,
     cm: u64,
     rev: u64,
+    /// Highest and lowest shaped output so far (the circuit's own peaks, internal rate).
+    out_max: f64,
+    out_min: f64,
+    /// Internal sample index (from the first pre-roll sample) of the first clipped sample.
+    first_clip: Option<u64>,
 }
 
 impl StageState {
@@ -36,6 +41,9 @@ impl StageState {
             slew: 0,
             cm: 0,
             rev: 0,
+            out_max: f64::NEG_INFINITY,
+            out_min: f64::INFINITY,
+            first_clip: None,
         }
     }
 
@@ -51,6 +59,9 @@ impl StageState {
         self.slew = o.slew;
         self.cm = o.cm;
         self.rev = o.rev;
+        self.out_max = o.out_max;
+        self.out_min = o.out_min;
+        self.first_clip = o.first_clip;
     }
 }
 
@@ -79,6 +90,8 @@ pub struct Engine {
     fast: bool,
     fast_blocks: u64,
     full_blocks: u64,
+    /// Internal blocks computed since the last reset.
+    blocks: u64,
 }
 
 impl std::fmt::Debug for Engine {
@@ -219,6 +232,7 @@ impl Engine {
             fast: true,
             fast_blocks: 0,
             full_blocks: 0,
+            blocks: 0,
             plan,
         };
         e.reset();
@@ -262,6 +276,9 @@ impl Engine {
             st.slew = 0;
             st.cm = 0;
             st.rev = 0;
+            st.out_max = f64::NEG_INFINITY;
+            st.out_min = f64::INFINITY;
+            st.first_clip = None;
         }
         for (d, o) in self.decims.iter_mut().zip(&self.plan.outputs) {
             d.reset(o.rest);
@@ -279,11 +296,13 @@ impl Engine {
         self.skip = self.plan.discard;
         self.fast_blocks = 0;
         self.full_blocks = 0;
+        self.blocks = 0;
     }
 
     /// Event durations per op-amp stage so far, seconds.
     pub fn events(&self) -> Vec<StageEvents> {
         let h = 1.0 / self.plan.internal_rate;
+        let preroll = self.plan.preroll as f64;
         self.plan
             .stages
             .iter()
@@ -294,6 +313,13 @@ impl Engine {
                 slew_s: st.slew as f64 * h,
                 cm_out_s: st.cm as f64 * h,
                 reversed_s: st.rev as f64 * h,
+                // the clip counted at buffer index j is the drive of index j - 1, which the
+                // stage computed from source samples `latency - 1` earlier
+                first_clip_s: st
+                    .first_clip
+                    .map(|j| (j as f64 - sp.latency as f64 - preroll) * h),
+                peak_pos_v: (st.out_max.is_finite()).then_some(st.out_max),
+                peak_neg_v: (st.out_min.is_finite()).then_some(st.out_min),
             })
             .collect()
     }
@@ -398,6 +424,7 @@ impl Engine {
                 &self.xbuf,
                 &mut own[hist..hist + b],
                 self.plan.antialias,
+                self.blocks * b as u64,
             );
             self.bufs[sp.node] = own;
         }
@@ -419,6 +446,7 @@ impl Engine {
         for buf in self.bufs.iter_mut().take(ns + self.plan.stages.len()) {
             buf.copy_within(b..b + hist, 0);
         }
+        self.blocks += 1;
         self.avail = b / kf;
         self.pos = self.skip.min(self.avail);
         self.skip -= self.pos;
@@ -716,7 +744,11 @@ fn full_block(
         let xn = if xn.is_finite() { xn } else { v };
         v = xn.clamp(sp.state_lo, sp.state_hi);
         *xo = xn;
-        if (f * (pn - sp.b * v)).abs() > sp.vov {
+        // Slewing: the drive is past the linear range and the output is free to move. Not
+        // while it is held at the swing (or current) limit, and not while latched by a phase
+        // reversal (f <= 0).
+        let held = xn <= sp.state_lo || xn >= sp.state_hi;
+        if f > 0.0 && !held && (f * (pn - sp.b * v)).abs() > sp.vov {
             st.slew += 1;
         }
         let vminus = mrest + sp.b * v;
@@ -739,7 +771,14 @@ fn full_block(
 
 /// Output clipper with one sample of lookahead: writes y[n-1] at position n.
 #[inline(always)]
-fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], aa: bool) {
+fn shape_block(
+    sp: &StagePlan,
+    st: &mut StageState,
+    x: &[f64],
+    out: &mut [f64],
+    aa: bool,
+    start: u64,
+) {
     let sh = sp.shaper;
     let mut x1 = st.x1;
     let mut x2 = st.x2;
@@ -757,11 +796,12 @@ fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], 
         if all {
             st.x2 = x[b - 2];
             st.x1 = x[b - 1];
+            track_peaks(st, out);
             return;
         }
     }
     let mut clip = 0u64;
-    for (o, &xn) in out.iter_mut().zip(x) {
+    for (t, (o, &xn)) in out.iter_mut().zip(x).enumerate() {
         *o = if sh.inside(x2, x1, xn) {
             x1
         } else if aa {
@@ -769,11 +809,32 @@ fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], 
         } else {
             sh.apply(x1)
         };
-        clip += u64::from(sh.clipping(x1));
+        let c = sh.clipping(x1);
+        if c && st.first_clip.is_none() {
+            st.first_clip = Some(start + t as u64);
+        }
+        clip += u64::from(c);
+        // The circuit's own extremes: the static clamp of the drive (the band-limited value
+        // may pass the limit by the kernel's smoothing; that is a property of the file).
+        let v = sh.apply(x1);
+        st.out_max = st.out_max.max(v);
+        st.out_min = st.out_min.min(v);
         x2 = x1;
         x1 = xn;
     }
     st.clip += clip;
     st.x1 = x1;
     st.x2 = x2;
+}
+
+/// Running extremes of a stage's shaped output (vectorises: two independent reductions).
+#[inline(always)]
+fn track_peaks(st: &mut StageState, out: &[f64]) {
+    let (mut hi, mut lo) = (st.out_max, st.out_min);
+    for &v in out {
+        hi = hi.max(v);
+        lo = lo.min(v);
+    }
+    st.out_max = hi;
+    st.out_min = lo;
 }
