@@ -325,6 +325,8 @@ neg = "-12 V"
 [parts.hard]
 based_on = "jfet-general"
 knee = "0 V"
+drop_pos = "1.5 V"
+drop_neg = "1.5 V"
 
 [sources.osc]
 wave = "sine"
