@@ -30,6 +30,8 @@ use crate::render::{self, RenderError, RenderOptions};
 pub struct Figure {
     /// Output it belongs to.
     pub output: String,
+    /// Side of an A/B comparison it belongs to (`"A"` or `"B"`), if any.
+    pub side: Option<&'static str>,
     /// Kind: `spectrum`, `waveform`, `transfer` or `thd-vs-level`.
     pub kind: &'static str,
     /// The SVG document.
@@ -37,9 +39,13 @@ pub struct Figure {
 }
 
 impl Figure {
-    /// File name for the figure (`NAME-KIND.svg`).
+    /// File name for the figure (`NAME-KIND.svg`, or `NAME-SIDE-KIND.svg` for a side of an
+    /// A/B comparison).
     pub fn file_name(&self) -> String {
-        format!("{}-{}.svg", self.output, self.kind)
+        match self.side {
+            Some(side) => format!("{}-{side}-{}.svg", self.output, self.kind),
+            None => format!("{}-{}.svg", self.output, self.kind),
+        }
     }
 }
 
@@ -201,6 +207,17 @@ pub const PLOT_MAX_S: f64 = 10.0;
 /// Every plot of every output (`only`: one output by name). Renders the patch once more with
 /// probes on every node (at most [`PLOT_MAX_S`] long).
 pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderError> {
+    side_plots(patch, only, None)
+}
+
+/// [`plots`] of one side of an A/B comparison: every title starts with `side` (and the
+/// variant's name, `label`), and the figures carry the side.
+pub fn side_plots(
+    patch: &Patch,
+    only: Option<&str>,
+    side: Option<(&'static str, &str)>,
+) -> Result<Vec<Figure>, RenderError> {
+    let prefix = side.map_or(String::new(), |(s, label)| format!("{s} ({label}): "));
     let mut short = patch.clone();
     short.length = short.length.min(PLOT_MAX_S);
     let patch = &short;
@@ -221,6 +238,7 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
             if let Ok(svg) = svg {
                 figs.push(Figure {
                     output: o.name.clone(),
+                    side: side.map(|(s, _)| s),
                     kind,
                     svg,
                 });
@@ -253,7 +271,7 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
         };
         if let Some(spec) = spec {
             if let Ok((f, l)) = plot::spectrum_db(&spec, DbScale::Dbv) {
-                let title = format!("{}: spectrum", o.name);
+                let title = format!("{prefix}{}: spectrum", o.name);
                 push(
                     "spectrum",
                     plot::spectrum_svg(&SpectrumPlot {
@@ -284,7 +302,11 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
         });
         let cm = cm_window(patch, o.from)
             .map(|(lo, hi, _, _)| (lo.max(patch.rails.neg), hi.min(patch.rails.pos)));
-        let title = format!("{}: waveform (from {})", o.name, patch.node_name(o.from));
+        let title = format!(
+            "{prefix}{}: waveform (from {})",
+            o.name,
+            patch.node_name(o.from)
+        );
         let caption = "event spans estimated from node voltages; durations in the figures come from the engine";
         push(
             "waveform",
@@ -310,7 +332,10 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
             if let Ok((x, y)) = transfer_run(patch, s, oi) {
                 let (gain, offset) =
                     small_signal_fit(&x, &y, patch.rails.pos.abs().max(patch.rails.neg.abs()));
-                let title = format!("{}: transfer curve from {}", o.name, patch.sources[s].name);
+                let title = format!(
+                    "{prefix}{}: transfer curve from {}",
+                    o.name, patch.sources[s].name
+                );
                 let caption = format!(
                     "slow ramp rail to rail on {}, other sources muted; dashed: linear gain {gain:.3} fitted near 0 V",
                     patch.sources[s].name
@@ -353,7 +378,10 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
                         })
                     })
                     .collect();
-                let title = format!("{}: THD against level of {}", o.name, patch.sources[s].name);
+                let title = format!(
+                    "{prefix}{}: THD against level of {}",
+                    o.name, patch.sources[s].name
+                );
                 let caption = "harmonics 2-10, settle time + 0.45 s per point, coherent capture where possible; crossings found on the circuit within 0.1 % in level";
                 let series = [SweepSeries {
                     name: "THD",
@@ -525,15 +553,30 @@ fn fmt_opt(v: Option<f64>, digits: usize) -> String {
     v.map_or("&ndash;".into(), |x| format!("{x:.digits$}"))
 }
 
-/// The listening page. `sections` are extra HTML blocks (e.g. an A/B comparison).
+/// One table of figures on the page: a render's measurement, labelled with its side of an
+/// A/B comparison (`"A (base)"`) or not.
+#[derive(Debug, Clone, Copy)]
+pub struct FigureTable<'a> {
+    /// `None` for a single render; `Some(("A", "base"))` for a side and its variant.
+    pub side: Option<(&'static str, &'a str)>,
+    /// The figures.
+    pub m: &'a Measurement,
+}
+
+/// The listening page: the figures of `main` (whose settings set the rate and calibration of
+/// the players) and of `other` (side B of a comparison); `sections` are extra HTML blocks
+/// (e.g. an A/B comparison).
 pub fn page(
     patch: &Patch,
     patch_text: &str,
-    m: &Measurement,
+    main: FigureTable,
+    other: Option<FigureTable>,
     figures: &[Figure],
     players: &[Player],
     sections: &[String],
 ) -> String {
+    let m = main.m;
+    let tables: Vec<FigureTable> = std::iter::once(main).chain(other).collect();
     let mut h = String::new();
     let title = escape(&patch.title);
     let _ = write!(
@@ -582,42 +625,31 @@ figure{{margin:1em 0}}figure svg{{max-width:100%;height:auto}}.caution{{color:#8
         h.push_str(s);
         h.push('\n');
     }
-    // Figures table.
-    let _ = writeln!(
-        h,
-        "<h2>Figures</h2>\n<table id=\"figures\"><tr><th>output</th><th>peak V (circuit)</th><th>rms V (AC)</th>\
-<th>headroom + dB</th><th>headroom &minus; dB</th><th>THD %</th><th>THD+N dB</th><th>SINAD dB</th><th>events</th></tr>"
-    );
-    for (name, r) in &m.outputs {
-        let f = &r.figures;
-        let ev: Vec<String> = r
-            .events
-            .iter()
-            .map(|(st, e)| {
-                format!(
-                    "{st}: clip {:.3} s, slew {:.3} s, out of range {:.3} s, reversed {:.3} s",
-                    e.clip_s, e.slew_s, e.cm_out_s, e.reversed_s
-                )
-            })
-            .collect();
+    // Figures tables.
+    for (ti, t) in tables.iter().enumerate() {
+        let (heading, side) = match t.side {
+            Some((sd, label)) => (format!("Figures: {sd} ({})", escape(label)), sd),
+            None => ("Figures".to_string(), ""),
+        };
+        let id = if ti == 0 {
+            "figures".to_string()
+        } else {
+            format!("figures-{}", side.to_lowercase())
+        };
         let _ = writeln!(
             h,
-            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td style=\"text-align:left\">{}</td></tr>",
-            escape(name),
-            fmt_opt(f.peak_v, 3),
-            fmt_opt(f.rms_v, 3),
-            fmt_opt(f.headroom_pos_db, 1),
-            fmt_opt(f.headroom_neg_db, 1),
-            fmt_opt(f.thd_percent, 4),
-            fmt_opt(f.thdn_db, 1),
-            fmt_opt(f.sinad_db, 1),
-            escape(&ev.join("; "))
+            "<h2>{heading}</h2>\n<table id=\"{id}\" data-side=\"{side}\"><tr><th>output</th><th>peak V (circuit)</th><th>rms V (AC)</th>\
+<th>headroom + dB</th><th>headroom &minus; dB</th><th>THD %</th><th>THD+N dB</th><th>SINAD dB</th><th>events</th></tr>"
         );
+        for (name, r) in &t.m.outputs {
+            figure_row(&mut h, name, r);
+        }
+        let _ = writeln!(h, "</table>");
     }
     let s = &m.settings;
     let _ = writeln!(
         h,
-        "</table>\n<p>{} Hz &times;{} oversampling, {:.2} s rendered, calibration {} V = 0 dBFS; \
+        "<p>{} Hz &times;{} oversampling, {:.2} s rendered, calibration {} V = 0 dBFS; \
 THD over harmonics 2&ndash;10 re the fundamental; THD+N and SINAD re the whole signal in \
 the band 20 Hz &ndash; 20 kHz (AES17: SINAD = &minus;THD+N); spectral captures start after \
 a settle time of {:.3} s; peak is the op-amp's own output, headroom against its swing; \
@@ -629,9 +661,11 @@ a settle time of {:.3} s; peak is the op-amp's own output, headroom against its 
     for f in figures {
         let _ = writeln!(
             h,
-            "<figure class=\"plot\" data-output=\"{}\" data-kind=\"{}\">{}</figure>",
+            "<figure class=\"plot\" data-output=\"{}\" data-kind=\"{}\"{}>{}</figure>",
             escape(&f.output),
             f.kind,
+            f.side
+                .map_or(String::new(), |sd| format!(" data-side=\"{sd}\"")),
             strip_xml_prolog(&f.svg)
         );
     }
@@ -652,6 +686,34 @@ count();setInterval(count,200);})();\n</script>\n",
     );
     h.push_str("</body></html>\n");
     h
+}
+
+/// One row of a figures table.
+fn figure_row(h: &mut String, name: &str, r: &crate::measure::OutputReport) {
+    let f = &r.figures;
+    let ev: Vec<String> = r
+        .events
+        .iter()
+        .map(|(st, e)| {
+            format!(
+                "{st}: clip {:.3} s, slew {:.3} s, out of range {:.3} s, reversed {:.3} s",
+                e.clip_s, e.slew_s, e.cm_out_s, e.reversed_s
+            )
+        })
+        .collect();
+    let _ = writeln!(
+        h,
+        "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td style=\"text-align:left\">{}</td></tr>",
+        escape(name),
+        fmt_opt(f.peak_v, 3),
+        fmt_opt(f.rms_v, 3),
+        fmt_opt(f.headroom_pos_db, 1),
+        fmt_opt(f.headroom_neg_db, 1),
+        fmt_opt(f.thd_percent, 4),
+        fmt_opt(f.thdn_db, 1),
+        fmt_opt(f.sinad_db, 1),
+        escape(&ev.join("; "))
+    );
 }
 
 fn strip_xml_prolog(svg: &str) -> &str {

@@ -178,6 +178,15 @@ fn comparison_page_has_the_four_players_and_the_differences() {
     }
     assert!(html.contains("class=\"comparison\""));
     assert!(html.contains("B clips for"));
+    // both sides' figures and plots, labelled A and B (issue 12)
+    assert!(html.contains("<h2>Figures: A (base)</h2>"), "A's figures");
+    assert!(html.contains("<h2>Figures: B (hot)</h2>"), "B's figures");
+    assert!(html.contains("id=\"figures-b\" data-side=\"B\""));
+    for side in ["A", "B"] {
+        let plots = html.matches(&format!("data-side=\"{side}\"><svg")).count();
+        assert!(plots >= 3, "{plots} plots of side {side}");
+    }
+    assert!(html.contains("A (base): main: spectrum") && html.contains("B (hot): main: spectrum"));
     let gain: f64 = html
         .split("gain <b>")
         .nth(1)

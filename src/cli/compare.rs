@@ -43,6 +43,8 @@ pub(crate) struct Compared {
     pub ma: Measurement,
     /// Patch B.
     pub pb: Patch,
+    /// Figures of B.
+    pub mb: Measurement,
     /// One comparison per output.
     pub results: Vec<OutputComparison>,
     /// How B was matched.
@@ -114,6 +116,7 @@ pub(crate) fn compare_sides(
         ra,
         ma,
         pb,
+        mb,
         results,
         matching,
         layout,
@@ -205,11 +208,12 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         .write_text("compare.json", &text)
         .map_err(signal_error)?;
     if args.flags.plots {
-        for (side, p) in [("A", &pa), ("B", &pb)] {
-            let figs = railsong::report::plots(p, None).map_err(render_error)?;
+        for (side, p, label) in [("A", &pa, args.a), ("B", &pb, args.b)] {
+            let figs =
+                railsong::report::side_plots(p, None, Some((side, label))).map_err(render_error)?;
             for f in figs {
                 folder
-                    .write_text(&format!("{}-{side}-{}.svg", f.output, f.kind), &f.svg)
+                    .write_text(&f.file_name(), &f.svg)
                     .map_err(signal_error)?;
             }
         }
@@ -244,10 +248,12 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             None => println!("  difference (A minus matched B) is silent: the two are identical"),
         }
         println!(
-            "  {}-AB.wav alternates in {} segments with {} equal-power crossfades:",
+            "  {}-AB.wav alternates in {} segments with {} crossfades for sides of correlation \
+             {:.3} (1: equal gain, 0: equal power):",
             c.output,
             fmt_eng(seg, "s"),
-            fmt_eng(FADE_S, "s")
+            fmt_eng(FADE_S, "s"),
+            c.crossfade_correlation
         );
         let key: Vec<String> = c
             .segments

@@ -37,13 +37,13 @@ pub(crate) fn cmd_report(
         .unwrap_or_else(|| default_dir(&stem_of(path)));
     let mut folder = OutputDir::open(&dir, flags.force).map_err(signal_error)?;
     folder.check_writable("report.html").map_err(signal_error)?;
-    let (patch, run, m, comparison) = match ab {
+    let (patch, run, m, comparison, side_b) = match ab {
         None => {
             let run = run_patch(&patch, true, true)?;
             let mut m = measure::measure(&patch, &run, None, &Settings::default(), None, None);
             railsong::render::complete_thd(&patch, &mut m, &Settings::default(), None)
                 .map_err(render_error)?;
-            (patch, run, m, None)
+            (patch, run, m, None, None)
         }
         Some((a, b, segment)) => {
             let seg = units::parse_time(segment)
@@ -53,10 +53,23 @@ pub(crate) fn cmd_report(
                 sets.push(format!("patch.length={} s", patch.length));
             }
             let c = compare_sides(path, a, b, &sets, seg, "rms", true)?;
-            (c.pa, c.ra, c.ma, Some((c.results, a, b)))
+            (
+                c.pa,
+                c.ra,
+                c.ma,
+                Some((c.results, a, b)),
+                Some((c.pb, c.mb)),
+            )
         }
     };
-    let figs = report::plots(&patch, None).map_err(render_error)?;
+    let figs = match (&comparison, &side_b) {
+        (Some((_, a, b)), Some((pb, _))) => {
+            let mut f = report::side_plots(&patch, None, Some(("A", a))).map_err(render_error)?;
+            f.extend(report::side_plots(pb, None, Some(("B", b))).map_err(render_error)?);
+            f
+        }
+        _ => report::plots(&patch, None).map_err(render_error)?,
+    };
     let mut players: Vec<report::Player> = Vec::new();
     let mut sections = Vec::new();
     match &comparison {
@@ -103,7 +116,20 @@ pub(crate) fn cmd_report(
             sections.push(report::comparison_section(results, a, b));
         }
     }
-    let html = report::page(&patch, &text, &m, &figs, &players, &sections);
+    let (main, other) = match (&comparison, &side_b) {
+        (Some((_, a, b)), Some((_, mb))) => (
+            report::FigureTable {
+                side: Some(("A", a)),
+                m: &m,
+            },
+            Some(report::FigureTable {
+                side: Some(("B", b)),
+                m: mb,
+            }),
+        ),
+        _ => (report::FigureTable { side: None, m: &m }, None),
+    };
+    let html = report::page(&patch, &text, main, other, &figs, &players, &sections);
     folder
         .write_text("report.html", &html)
         .map_err(signal_error)?;
