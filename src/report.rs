@@ -538,6 +538,8 @@ pub struct Player<'a> {
     pub note: String,
     /// Samples, volts.
     pub samples: &'a [f64],
+    /// Fade at the edges of the embedded file (the figures come from the unfaded signal).
+    pub fade: crate::signal::EdgeFade,
 }
 
 /// The comment lines at the top of a patch file (its title and job), without the `#`.
@@ -605,7 +607,7 @@ figure{{margin:1em 0}}figure svg{{max-width:100%;height:auto}}.caution{{color:#8
     let _ = writeln!(h, "<h2>Listen</h2>\n<div class=\"players\">");
     for (i, p) in players.iter().enumerate() {
         let wav = wav_bytes(
-            p.samples,
+            &p.fade.applied(p.samples),
             m.settings.rate_hz,
             m.settings.full_scale_v,
             i as u64 + 1,

@@ -128,6 +128,7 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         .map_err(|e| Failure::bad_input(format!("--segment {}: {e}", args.segment)))?;
     // Refuse early, before rendering, when the folder holds files railsong did not write.
     let pa = load_side(args.patch, args.a, args.sets)?;
+    let fade = args.flags.edge_fade(pa.frames(), pa.rate)?;
     let dir = args.flags.out.clone().unwrap_or_else(|| {
         default_dir(&format!("{}-{}-vs-{}", stem_of(args.patch), args.a, args.b))
     });
@@ -186,13 +187,10 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             (&fab, &c.alternating),
             (&fd, &c.difference),
         ] {
-            if g == 1.0 {
-                folder.write(name, spec, data)
-            } else {
-                let s: Vec<f64> = data.iter().map(|x| x * g).collect();
-                folder.write(name, spec, &s)
-            }
-            .map_err(signal_error)?;
+            // faded at the edges (the comparison's figures come from the unfaded renders)
+            let mut s: Vec<f64> = data.iter().map(|x| x * g).collect();
+            fade.apply(0, &mut s);
+            folder.write(name, spec, &s).map_err(signal_error)?;
         }
         results.push(c);
     }

@@ -303,6 +303,33 @@ pub(crate) struct RenderFlags {
     /// Allow renders longer than 10 minutes.
     #[arg(long)]
     pub(crate) long: bool,
+    /// Fade each written file in and out over this time so it does not click at its start
+    /// and end (0 switches it off); the figures come from the unfaded signal.
+    #[arg(long, value_name = "TIME", default_value = "5ms")]
+    pub(crate) fade: String,
+}
+
+impl RenderFlags {
+    /// The edge fade of a file of `frames` frames at `rate` Hz.
+    pub(crate) fn edge_fade(
+        &self,
+        frames: usize,
+        rate: f64,
+    ) -> Result<railsong::signal::EdgeFade, Failure> {
+        let t = railsong::units::parse_time(&self.fade).map_err(|e| {
+            Failure::bad_input(format!(
+                "--fade {}: {e}; expected a time of 0 or more, e.g. 5ms",
+                self.fade
+            ))
+        })?;
+        if !(t.is_finite() && t >= 0.0) {
+            return Err(Failure::bad_input(format!(
+                "--fade {}: expected a time of 0 or more, e.g. 5ms",
+                self.fade
+            )));
+        }
+        Ok(railsong::signal::EdgeFade::new(frames, rate, t))
+    }
 }
 
 /// Parse the command line and run the command.

@@ -29,6 +29,7 @@ pub(crate) fn cmd_report(
         );
         patch.length = REPORT_MAX_S;
     }
+    let fade = flags.edge_fade(patch.frames(), patch.rate)?;
     let text = std::fs::read_to_string(path)
         .map_err(|e| Failure::bad_input(format!("{}: {e}", path.display())))?;
     let dir = flags
@@ -84,6 +85,7 @@ pub(crate) fn cmd_report(
                         f.rms_v.map_or("-".into(), |v| fmt_eng(v, "V"))
                     ),
                     samples: &o.samples,
+                    fade,
                 });
             }
         }
@@ -93,16 +95,19 @@ pub(crate) fn cmd_report(
                     label: format!("{} A", o.name),
                     note: format!("A = {a}"),
                     samples: &o.samples,
+                    fade,
                 });
                 players.push(report::Player {
                     label: format!("{} B", o.name),
                     note: format!("B = {b}, matched: {:+.2} dB", c.gain_db),
                     samples: &c.b_matched,
+                    fade,
                 });
                 players.push(report::Player {
                     label: format!("{} A/B", o.name),
                     note: "alternating A, B, A, B ...".into(),
                     samples: &c.alternating,
+                    fade,
                 });
                 players.push(report::Player {
                     label: format!("{} difference", o.name),
@@ -111,6 +116,7 @@ pub(crate) fn cmd_report(
                         None => "A minus matched B: silent".into(),
                     },
                     samples: &c.difference,
+                    fade,
                 });
             }
             sections.push(report::comparison_section(results, a, b));

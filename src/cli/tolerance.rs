@@ -109,6 +109,7 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             force: args.flags.force,
             plots: false,
             long: args.flags.long,
+            fade: args.flags.fade.clone(),
         };
         return render_to(&p, &stem_of(args.patch), &flags, Some(&format!("run{i}"))).map(|_| ());
     }
