@@ -220,8 +220,8 @@ fn files_fade_at_their_edges_and_the_figures_do_not() {
     // unfaded, the file starts near -3 V (of 15 V full scale): not zero
     assert!(u[0].abs() > 0.1, "{}", u[0]);
     let len = 240; // 5 ms at 48 kHz
-    assert!((f[len / 2] as f64 - 0.5 * u[len / 2] as f64).abs() < 1e-6);
-    assert!((f[n - 1 - len / 2] as f64 - 0.5 * u[n - 1 - len / 2] as f64).abs() < 1e-6);
+    assert!((f[len / 2] - 0.5 * u[len / 2]).abs() < 1e-6);
+    assert!((f[n - 1 - len / 2] - 0.5 * u[n - 1 - len / 2]).abs() < 1e-6);
     assert_eq!(f[len..n - len], u[len..n - len]);
     let figures = |d: &Path| std::fs::read_to_string(d.join("figures.json")).unwrap();
     assert_eq!(figures(&faded), figures(&plain));
