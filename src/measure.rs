@@ -673,3 +673,81 @@ pub fn apply_full_levels(
         m.settings.length_s = patch.length.min(patch.frames() as f64 / patch.rate);
     }
 }
+
+/// A figure's name as a reader says it and its unit, from its JSON key: `thd_percent` ->
+/// ("THD", "%"), `thdn_db` -> ("THD+N", "dB"), `headroom_pos_db` -> ("headroom pos", "dB"),
+/// `peak_v` -> ("peak", "V"). Unknown keys keep their name, without a unit.
+pub fn figure_label(key: &str) -> (String, &'static str) {
+    const UNITS: [(&str, &str); 7] = [
+        ("_percent", "%"),
+        ("_dbfs", "dBFS"),
+        ("_dbc", "dBc"),
+        ("_db", "dB"),
+        ("_hz", "Hz"),
+        ("_v", "V"),
+        ("_s", "s"),
+    ];
+    let (stem, unit) = UNITS
+        .iter()
+        .find_map(|(suf, u)| key.strip_suffix(suf).map(|s| (s, *u)))
+        .unwrap_or((key, ""));
+    let words: Vec<String> = stem
+        .split('_')
+        .map(|w| match w {
+            "thd" => "THD".to_string(),
+            "thdn" => "THD+N".to_string(),
+            "sinad" => "SINAD".to_string(),
+            "snr" => "SNR".to_string(),
+            "imd" => "IMD".to_string(),
+            "enob" => "ENOB".to_string(),
+            "rms" => "RMS".to_string(),
+            "dc" => "DC".to_string(),
+            "pos" => "+".to_string(),
+            "neg" => "-".to_string(),
+            w => w.to_string(),
+        })
+        .collect();
+    (words.join(" "), unit)
+}
+
+/// The unit of the value a patch key path holds, from its last key: resistors, pots and
+/// loads in ohm, capacitors in F, frequencies in Hz, levels in V, times in s; `""` for a
+/// pot position or anything else.
+pub fn key_unit(path: &str) -> &'static str {
+    let last = path.rsplit('.').next().unwrap_or(path);
+    match last {
+        "pot" | "load" | "series" | "r" | "track" => "ohm",
+        k if k.starts_with("r_") => "ohm",
+        "c" => "F",
+        k if k.starts_with("c_") => "F",
+        "freq" | "from" | "to" => "Hz",
+        "amp" => "Vpk",
+        "offset" | "level" | "ref" | "pos" | "neg" => "V",
+        "rms" => "Vrms",
+        "start" | "stop" | "length" | "attack" | "decay" | "every" | "duration" => "s",
+        _ => "",
+    }
+}
+
+#[cfg(test)]
+mod label_tests {
+    use super::*;
+
+    // Names of the figures contract (README) read back as a designer says them [D].
+    #[test]
+    fn figure_and_key_labels() {
+        assert_eq!(figure_label("thd_percent"), ("THD".to_string(), "%"));
+        assert_eq!(figure_label("thdn_db"), ("THD+N".to_string(), "dB"));
+        assert_eq!(
+            figure_label("headroom_pos_db"),
+            ("headroom +".to_string(), "dB")
+        );
+        assert_eq!(figure_label("peak_v"), ("peak".to_string(), "V"));
+        assert_eq!(figure_label("mystery"), ("mystery".to_string(), ""));
+        assert_eq!(key_unit("stages.amp.r_fb"), "ohm");
+        assert_eq!(key_unit("stages.tone.feedback.c"), "F");
+        assert_eq!(key_unit("sources.lead.amp"), "Vpk");
+        assert_eq!(key_unit("sources.lead.freq"), "Hz");
+        assert_eq!(key_unit("stages.vol.at"), "");
+    }
+}
