@@ -194,6 +194,24 @@ fn waveform_window(v: &[f64], rate: f64, spans: &[EventSpan]) -> (f64, f64) {
     (t0, t0 + width)
 }
 
+/// The input node of the stage at `node` (a summer's first input that carries more than DC,
+/// else its first input); `None` for a source.
+fn stage_input(patch: &Patch, node: Node) -> Option<Node> {
+    let Node::Stage(i) = node else {
+        return None;
+    };
+    match &patch.stages[i].kind {
+        StageKind::InvertingSum { inputs, .. } => inputs
+            .iter()
+            .map(|inp| inp.from)
+            .find(|&n| first_source(patch, n).is_some())
+            .or_else(|| inputs.first().map(|inp| inp.from)),
+        StageKind::NonInverting { from, .. }
+        | StageKind::Follower { from }
+        | StageKind::Attenuator { from, .. } => Some(*from),
+    }
+}
+
 fn first_source(patch: &Patch, node: Node) -> Option<usize> {
     measure::upstream_sources(patch, node)
         .into_iter()
@@ -293,8 +311,9 @@ pub fn side_plots(
         // Waveform.
         let spans = event_spans(patch, &probes, o.from);
         let win = waveform_window(v, run.rate, &spans);
-        let input = first_source(patch, o.from).and_then(|s| {
-            node_signal(patch, &probes, Node::Source(s)).map(|x| Trace {
+        // the input trace is the driving stage's own input node
+        let input = stage_input(patch, o.from).and_then(|n| {
+            node_signal(patch, &probes, n).map(|x| Trace {
                 samples: x,
                 rate: run.rate,
                 start_s: 0.0,
@@ -303,9 +322,13 @@ pub fn side_plots(
         let cm = cm_window(patch, o.from)
             .map(|(lo, hi, _, _)| (lo.max(patch.rails.neg), hi.min(patch.rails.pos)));
         let title = format!(
-            "{prefix}{}: waveform (from {})",
+            "{prefix}{}: waveform (from {}{})",
             o.name,
-            patch.node_name(o.from)
+            patch.node_name(o.from),
+            stage_input(patch, o.from).map_or(String::new(), |n| format!(
+                "; light: its input {}",
+                patch.node_name(n)
+            ))
         );
         let caption = "event spans estimated from node voltages; durations in the figures come from the engine";
         push(
@@ -409,24 +432,37 @@ pub fn side_plots(
 }
 
 /// Run the patch with source `s` replaced by a rail-to-rail ramp over 1 s and every other
-/// source muted; returns (input, output) of output `oi`.
+/// source muted; returns (input, output) of output `oi`. The ramp starts a settle time
+/// earlier, further down, and the points of that lead-in are dropped: the curve starts once
+/// the circuit has followed the ramp from rest (no vertical line at the first sample).
 fn transfer_run(patch: &Patch, s: usize, oi: usize) -> Result<(Vec<f64>, Vec<f64>), RenderError> {
     let mut p = render::muted(patch);
     let span = patch.rails.pos.abs().max(patch.rails.neg.abs());
+    p.sources[s].offset = 0.0;
+    p.sources[s].start = 0.0;
+    p.sources[s].stop = None;
     p.sources[s].wave = Wave::Ramp {
         from: -span,
         to: span,
         duration: 1.0,
     };
-    p.sources[s].offset = 0.0;
-    p.sources[s].start = 0.0;
-    p.sources[s].stop = None;
     p.length = 1.0;
+    // at most a quarter second of lead-in (a slow coupling capacitor would not settle on a
+    // ramp anyway)
+    let settle = measure::settle_time(&p).min(0.25);
+    let slope = 2.0 * span; // V/s
+    let from = -span - slope * settle;
+    p.sources[s].wave = Wave::Ramp {
+        from,
+        to: span,
+        duration: 1.0 + settle,
+    };
+    p.length = 1.0 + settle;
     let run = render::render(&p, &RenderOptions::default(), &mut |_| {})?;
-    let y = run.outputs[oi].samples.clone();
-    let n = y.len();
-    let x = (0..n)
-        .map(|k| -span + 2.0 * span * (k as f64 / p.rate).min(1.0))
+    let skip = ((settle * p.rate).ceil() as usize).min(run.outputs[oi].samples.len());
+    let y = run.outputs[oi].samples[skip..].to_vec();
+    let x = (skip..skip + y.len())
+        .map(|k| (from + slope * k as f64 / p.rate).min(span))
         .collect();
     Ok((x, y))
 }
@@ -794,4 +830,81 @@ pub fn comparison_section(
         let _ = writeln!(h, "</ul></section>");
     }
     h
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A unity inverter (ideal part, +/-12 V rails) fed by `osc` through `pre`, a follower.
+    fn chain() -> Patch {
+        let text = r#"
+[patch]
+length = "0.2 s"
+noise = false
+
+[rails]
+pos = "12 V"
+neg = "-12 V"
+
+[sources.osc]
+wave = "sine"
+freq = "1 kHz"
+amp = "1 Vpk"
+
+[stages.pre]
+type = "non-inverting"
+part = "ideal"
+from = "osc"
+r_fb = "10k"
+r_g = "10k"
+
+[stages.inv]
+type = "inverting"
+part = "ideal"
+from = "pre"
+r_in = "10k"
+r_fb = "10k"
+
+[outputs.out]
+from = "inv"
+"#;
+        crate::patch::parse_str(text, "chain.toml", std::path::Path::new("."), &[]).unwrap()
+    }
+
+    // The transfer curve starts once the circuit follows the ramp: its first point already
+    // lies on the stage's transfer function, here -2 x through the gain-of-two stage and the
+    // unity inverter (op-amp textbook gains), clipped at the rails; no jump from rest at
+    // the first sample.
+    #[test]
+    fn transfer_curve_starts_settled() {
+        let p = chain();
+        let (x, y) = transfer_run(&p, 0, 0).unwrap();
+        assert!(
+            (x[0] + 12.0).abs() < 0.01,
+            "ramp from the lower rail: {}",
+            x[0]
+        );
+        for k in [0usize, 1, 10, x.len() / 2, x.len() - 1] {
+            let want = (-2.0 * x[k]).clamp(-12.0, 12.0);
+            assert!(
+                (y[k] - want).abs() < 0.05,
+                "point {k}: {} at {}",
+                y[k],
+                x[k]
+            );
+        }
+    }
+
+    // The waveform plot's light trace is the driving stage's own input (`pre`), not the
+    // source two stages up.
+    #[test]
+    fn waveform_input_is_the_stages_own_input() {
+        let p = chain();
+        assert_eq!(stage_input(&p, Node::Stage(1)), Some(Node::Stage(0)));
+        assert_eq!(stage_input(&p, Node::Stage(0)), Some(Node::Source(0)));
+        let figs = plots(&p, None).unwrap();
+        let w = figs.iter().find(|f| f.kind == "waveform").unwrap();
+        assert!(w.svg.contains("light: its input pre"), "{}", &w.svg[..400]);
+    }
 }
