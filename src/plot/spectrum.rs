@@ -299,7 +299,7 @@ pub fn spectrum_svg(p: &SpectrumPlot) -> Result<String, PlotError> {
             .iter()
             .copied()
             .fold(f64::NEG_INFINITY, f64::max);
-        if !(peak > floor + HARMONIC_ABOVE_FLOOR_DB) {
+        if peak.is_nan() || peak <= floor + HARMONIC_ABOVE_FLOOR_DB {
             hidden += 1;
             continue;
         }
