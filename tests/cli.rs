@@ -73,6 +73,21 @@ fn missing_file_and_bad_flags_exit_2() {
     assert_eq!(out.status.code(), Some(2));
     let out = railsong(&["frobnicate"]);
     assert_eq!(out.status.code(), Some(2));
+    // clap's detail survives, on one line: the missing argument is named, a misspelt
+    // command or flag gets its suggestion
+    let one_line = |args: &[&str], want: &[&str]| {
+        let out = railsong(args);
+        assert_eq!(out.status.code(), Some(2), "{args:?}");
+        let err = String::from_utf8_lossy(&out.stderr).to_string();
+        assert_eq!(err.trim_end().lines().count(), 1, "{err}");
+        for w in want {
+            assert!(err.contains(w), "{args:?}: {err} lacks {w}");
+        }
+    };
+    one_line(&["check"], &["<PATCH>"]);
+    one_line(&["compare", "patches/demo.toml", "--b", "x"], &["--a <NAME>"]);
+    one_line(&["rendr", "patches/demo.toml"], &["'rendr'", "did you mean", "'render'"]);
+    one_line(&["render", "patches/demo.toml", "--ouy", "x"], &["did you mean '--out'?"]);
 }
 
 // Common practice: four 10 Vpp inputs into a unity summer exceed +/-12 V rails.

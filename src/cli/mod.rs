@@ -332,6 +332,43 @@ impl RenderFlags {
     }
 }
 
+/// One line from a clap error that keeps its detail: the message, the arguments it names
+/// (a missing argument), and "did you mean" for a misspelt command or flag.
+fn clap_message(e: &clap::Error) -> String {
+    use clap::error::{ContextKind, ContextValue};
+    let text = e.to_string();
+    let mut parts: Vec<String> = Vec::new();
+    for line in text.lines() {
+        let l = line.trim();
+        if l.starts_with("Usage:") {
+            break;
+        }
+        if l.is_empty() || l.starts_with("tip:") || l.starts_with("For more information") {
+            continue;
+        }
+        parts.push(l.trim_start_matches("error: ").trim_end_matches(':').to_string());
+    }
+    let mut msg = match parts.split_first() {
+        Some((head, rest)) if !rest.is_empty() => format!("{head}: {}", rest.join(", ")),
+        Some((head, _)) => head.clone(),
+        None => "bad command line".to_string(),
+    };
+    let suggestions: Vec<String> = [ContextKind::SuggestedSubcommand, ContextKind::SuggestedArg]
+        .into_iter()
+        .filter_map(|k| e.get(k))
+        .flat_map(|v| match v {
+            ContextValue::String(s) => vec![s.clone()],
+            ContextValue::Strings(v) => v.clone(),
+            _ => Vec::new(),
+        })
+        .collect();
+    if !suggestions.is_empty() {
+        let list: Vec<String> = suggestions.iter().map(|s| format!("'{s}'")).collect();
+        msg.push_str(&format!(" (did you mean {}?)", list.join(" or ")));
+    }
+    msg
+}
+
 /// Parse the command line and run the command.
 pub fn run() -> Result<(), Failure> {
     let cli = match Cli::try_parse() {
@@ -342,14 +379,10 @@ pub fn run() -> Result<(), Failure> {
                 print!("{e}");
                 return Ok(());
             }
-            let text = e.to_string();
-            let first = text
-                .lines()
-                .find(|l| !l.trim().is_empty())
-                .unwrap_or("bad command line")
-                .trim_start_matches("error: ")
-                .to_string();
-            return Err(Failure::bad_input(format!("{first} (see railsong --help)")));
+            return Err(Failure::bad_input(format!(
+                "{} (see railsong --help)",
+                clap_message(&e)
+            )));
         }
     };
     match cli.command {
