@@ -202,3 +202,18 @@ fn measure_reports_idle_channel_noise_and_snr() {
     assert!(v["outputs"]["main"]["noise_rms_v"].is_null());
     assert!(v["outputs"]["main"]["snr_db"].is_null());
 }
+
+// `--tol 5` means 5 % (the flag takes percent), an impossible tolerance is refused with a
+// clear message, and `tolerance --help` says what `--plots` writes.
+#[test]
+fn tolerance_flags_read_percent_and_help_names_the_plot() {
+    let out = railsong(&["tolerance", "patches/clean-mix.toml", "--tol", "5", "--runs", "3"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(String::from_utf8_lossy(&out.stdout).contains("+/-5 %"));
+    let out = railsong(&["tolerance", "patches/clean-mix.toml", "--tol", "150"]);
+    assert_eq!(out.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(err.contains("--tol 150") && err.contains("below 100 %"), "{err}");
+    let out = railsong(&["tolerance", "--help"]);
+    assert!(String::from_utf8_lossy(&out.stdout).contains("<output>-tolerance-gain.svg"));
+}

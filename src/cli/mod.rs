@@ -248,16 +248,23 @@ enum Command {
         force: bool,
     },
     /// Monte Carlo over every resistor and capacitor within its tolerance.
+    #[command(
+        after_help = "With --plots, tolerance writes one SVG per output into --out (default \
+renders/<patch name>/): <output>-tolerance-gain.svg, a histogram of the output's gain change \
+(dB) over the runs. With --render-run N, --plots is ignored and run N is rendered like \
+`render` (WAV files and figures)."
+    )]
     Tolerance {
         /// The patch file.
         patch: PathBuf,
         /// Number of runs.
         #[arg(long, default_value_t = 200)]
         runs: usize,
-        /// Resistor tolerance, e.g. 1% (default: that of --series, else 1 %).
+        /// Resistor tolerance in percent, e.g. 1% or 5 (a bare number is percent; default:
+        /// that of --series, else 1 %).
         #[arg(long, value_name = "PERCENT")]
         tol: Option<String>,
-        /// Capacitor tolerance (default: the resistor tolerance).
+        /// Capacitor tolerance in percent (default: the resistor tolerance).
         #[arg(long, value_name = "PERCENT")]
         cap_tol: Option<String>,
         /// Take the resistor tolerance from a series: E12 10 %, E24 5 %, E48 2 %, E96 1 %,
