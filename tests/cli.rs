@@ -85,9 +85,18 @@ fn missing_file_and_bad_flags_exit_2() {
         }
     };
     one_line(&["check"], &["<PATCH>"]);
-    one_line(&["compare", "patches/demo.toml", "--b", "x"], &["--a <NAME>"]);
-    one_line(&["rendr", "patches/demo.toml"], &["'rendr'", "did you mean", "'render'"]);
-    one_line(&["render", "patches/demo.toml", "--ouy", "x"], &["did you mean '--out'?"]);
+    one_line(
+        &["compare", "patches/demo.toml", "--b", "x"],
+        &["--a <NAME>"],
+    );
+    one_line(
+        &["rendr", "patches/demo.toml"],
+        &["'rendr'", "did you mean", "'render'"],
+    );
+    one_line(
+        &["render", "patches/demo.toml", "--ouy", "x"],
+        &["did you mean '--out'?"],
+    );
 }
 
 // Common practice: four 10 Vpp inputs into a unity summer exceed +/-12 V rails.
@@ -207,13 +216,27 @@ fn measure_reports_idle_channel_noise_and_snr() {
 // clear message, and `tolerance --help` says what `--plots` writes.
 #[test]
 fn tolerance_flags_read_percent_and_help_names_the_plot() {
-    let out = railsong(&["tolerance", "patches/clean-mix.toml", "--tol", "5", "--runs", "3"]);
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let out = railsong(&[
+        "tolerance",
+        "patches/clean-mix.toml",
+        "--tol",
+        "5",
+        "--runs",
+        "3",
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     assert!(String::from_utf8_lossy(&out.stdout).contains("+/-5 %"));
     let out = railsong(&["tolerance", "patches/clean-mix.toml", "--tol", "150"]);
     assert_eq!(out.status.code(), Some(2));
     let err = String::from_utf8_lossy(&out.stderr);
-    assert!(err.contains("--tol 150") && err.contains("below 100 %"), "{err}");
+    assert!(
+        err.contains("--tol 150") && err.contains("below 100 %"),
+        "{err}"
+    );
     let out = railsong(&["tolerance", "--help"]);
     assert!(String::from_utf8_lossy(&out.stdout).contains("<output>-tolerance-gain.svg"));
 }

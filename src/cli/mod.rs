@@ -297,8 +297,9 @@ pub(crate) struct RenderFlags {
     /// Sample format of the WAV files: 16 (TPDF-dithered), 24 or float.
     #[arg(long, default_value = "24", value_parser = ["16", "24", "float"])]
     pub(crate) depth: String,
-    /// Scale each file so its RMS sits at this level in dBFS (peaks kept below -1 dBFS)
-    /// instead of the patch calibration; for listening, e.g. --listen -18.
+    /// Scale each file so its RMS sits at this level in dBFS, as the figures give it (a
+    /// full-scale sine is 0 dBFS; peaks kept below -1 dBFS) instead of the patch calibration;
+    /// for listening, e.g. --listen -18.
     #[arg(long, value_name = "DBFS", allow_negative_numbers = true)]
     pub(crate) listen: Option<f64>,
     /// Overwrite files in the folder that railsong did not write.
@@ -353,7 +354,11 @@ fn clap_message(e: &clap::Error) -> String {
         if l.is_empty() || l.starts_with("tip:") || l.starts_with("For more information") {
             continue;
         }
-        parts.push(l.trim_start_matches("error: ").trim_end_matches(':').to_string());
+        parts.push(
+            l.trim_start_matches("error: ")
+                .trim_end_matches(':')
+                .to_string(),
+        );
     }
     let mut msg = match parts.split_first() {
         Some((head, rest)) if !rest.is_empty() => format!("{head}: {}", rest.join(", ")),

@@ -45,8 +45,8 @@ pub(crate) fn tolerances(args: &ToleranceArgs, patch: &Patch) -> Result<Toleranc
     // The flags take percent: "5%" and a bare "5" both mean 5 % (a bare number is never a
     // fraction here: `--tol 5` must not become 500 %).
     let pct = |flag: &str, s: &str| -> Result<f64, Failure> {
-        let v = units::parse_percent(s)
-            .map_err(|e| Failure::bad_input(format!("{flag} {s}: {e}")))?;
+        let v =
+            units::parse_percent(s).map_err(|e| Failure::bad_input(format!("{flag} {s}: {e}")))?;
         let v = if s.trim_end().ends_with('%') {
             v
         } else {
