@@ -240,3 +240,28 @@ fn tolerance_flags_read_percent_and_help_names_the_plot() {
     let out = railsong(&["tolerance", "--help"]);
     assert!(String::from_utf8_lossy(&out.stdout).contains("<output>-tolerance-gain.svg"));
 }
+
+// Every `--set` example of the README's paragraph on overrides works on the demo patch.
+#[test]
+fn readme_set_examples_work_on_the_demo() {
+    let readme = std::fs::read_to_string("README.md").unwrap();
+    let para = readme
+        .split("\n\n")
+        .find(|p| p.contains("takes `--set PATH=VALUE`"))
+        .expect("the overrides paragraph");
+    let examples: Vec<String> = para
+        .split('`')
+        .filter_map(|s| s.strip_prefix("--set "))
+        .filter(|s| !s.starts_with("PATH"))
+        .map(|s| s.replace('"', ""))
+        .collect();
+    assert!(examples.len() >= 2, "{examples:?}");
+    for e in &examples {
+        let out = railsong(&["check", "patches/demo.toml", "--set", e]);
+        assert!(
+            out.status.success(),
+            "--set {e}: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+}
