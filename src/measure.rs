@@ -595,7 +595,7 @@ pub fn measure(
 }
 
 /// Columns of the CSV form, in order.
-pub const CSV_COLUMNS: [&str; 17] = [
+pub const CSV_COLUMNS: [&str; 23] = [
     "output",
     "fundamental_hz",
     "thd_percent",
@@ -613,16 +613,29 @@ pub const CSV_COLUMNS: [&str; 17] = [
     "headroom_neg_db",
     "imd_smpte_percent",
     "imd_ccif_percent",
+    "clip_s",
+    "slew_s",
+    "cm_out_s",
+    "reversed_s",
+    "first_clip_s",
+    "first_clip_stage",
 ];
 
 /// The CSV form: a header row and one row per output; empty cells where a figure does not
-/// apply.
+/// apply. The event columns (`clip_s`, `slew_s`, `cm_out_s`, `reversed_s`) are summed over the
+/// op-amp stages upstream of the output; `first_clip_s` and `first_clip_stage` name the first
+/// of them to clip.
 pub fn to_csv(m: &Measurement) -> String {
     let mut s = CSV_COLUMNS.join(",");
     s.push('\n');
     let cell = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x}"));
     for (name, o) in &m.outputs {
         let f = &o.figures;
+        let first = o
+            .events
+            .iter()
+            .filter_map(|(st, e)| e.first_clip_s.map(|t| (st.as_str(), t)))
+            .min_by(|a, b| a.1.total_cmp(&b.1));
         let row = [
             name.clone(),
             cell(f.fundamental_hz),
@@ -641,6 +654,14 @@ pub fn to_csv(m: &Measurement) -> String {
             cell(f.headroom_neg_db),
             cell(f.imd_smpte_percent),
             cell(f.imd_ccif_percent),
+            // events summed over the op-amp stages upstream of the output, and the first
+            // of them to clip
+            cell(Some(o.events.values().map(|e| e.clip_s).sum())),
+            cell(Some(o.events.values().map(|e| e.slew_s).sum())),
+            cell(Some(o.events.values().map(|e| e.cm_out_s).sum())),
+            cell(Some(o.events.values().map(|e| e.reversed_s).sum())),
+            cell(first.map(|(_, t)| t)),
+            first.map_or(String::new(), |(st, _)| st.to_string()),
         ];
         s.push_str(&row.join(","));
         s.push('\n');

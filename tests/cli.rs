@@ -265,3 +265,106 @@ fn readme_set_examples_work_on_the_demo() {
         );
     }
 }
+
+// `--variant` on check and measure picks the variant (here "hot": the mixer's feedback
+// resistor 330k instead of 100k, gain -Rf/Ri = -3.3, textbook), and `measure --csv` carries
+// the event columns: the hot mix clips, the base does not.
+#[test]
+fn variant_flag_and_csv_event_columns() {
+    let base = railsong(&["check", "patches/ab-feedback.toml"]);
+    let hot = railsong(&["check", "patches/ab-feedback.toml", "--variant", "hot"]);
+    assert!(base.status.success() && hot.status.success());
+    assert!(String::from_utf8_lossy(&base.stdout).contains("-1.000x2"));
+    assert!(String::from_utf8_lossy(&hot.stdout).contains("-3.300x2"));
+    let bad = railsong(&["check", "patches/ab-feedback.toml", "--variant", "cold"]);
+    assert_eq!(bad.status.code(), Some(2));
+    let csv = |variant: &str| {
+        let out = railsong(&[
+            "measure",
+            "patches/ab-feedback.toml",
+            "--variant",
+            variant,
+            "--set",
+            "patch.length=0.5 s",
+            "--csv",
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8_lossy(&out.stdout).to_string()
+    };
+    let cell = |text: &str, col: &str| -> String {
+        let mut lines = text.lines();
+        let head: Vec<&str> = lines.next().unwrap().split(',').collect();
+        let row: Vec<&str> = lines.next().unwrap().split(',').collect();
+        let i = head
+            .iter()
+            .position(|h| *h == col)
+            .unwrap_or_else(|| panic!("no {col}"));
+        row[i].to_string()
+    };
+    let (b, h) = (csv("base"), csv("hot"));
+    assert_eq!(cell(&b, "clip_s").parse::<f64>().unwrap(), 0.0);
+    assert!(cell(&h, "clip_s").parse::<f64>().unwrap() > 0.0);
+    assert_eq!(cell(&h, "first_clip_stage"), "mix");
+    assert!(cell(&h, "first_clip_s").parse::<f64>().unwrap() >= 0.0);
+    assert_eq!(cell(&b, "first_clip_s"), "");
+}
+
+// `measure --level-sweep --plots --plots-dir` writes the THD-against-level plot, with the
+// crossings found on the circuit marked.
+#[test]
+fn level_sweep_writes_its_plot() {
+    let dir = tempfile::tempdir().unwrap();
+    let patch = dir.path().join("amp.toml");
+    std::fs::write(
+        &patch,
+        r#"
+[patch]
+length = "0.3 s"
+noise = false
+
+[rails]
+pos = "12 V"
+neg = "-12 V"
+
+[sources.osc]
+wave = "sine"
+freq = "1 kHz"
+amp = "1 Vpk"
+
+[stages.amp]
+type = "inverting"
+part = "bipolar-lownoise"
+from = "osc"
+r_in = "10k"
+r_fb = "10k"
+
+[outputs.out]
+from = "amp"
+"#,
+    )
+    .unwrap();
+    let plots = dir.path().join("plots");
+    let out = railsong(&[
+        "measure",
+        patch.to_str().unwrap(),
+        "--level-sweep",
+        "osc=2Vpk..16Vpk",
+        "--steps",
+        "5",
+        "--plots",
+        "--plots-dir",
+        plots.to_str().unwrap(),
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let svg = std::fs::read_to_string(plots.join("out-level-sweep.svg")).unwrap();
+    assert!(svg.contains("class=\"crossing"), "crossings marked");
+    assert!(svg.contains("THD (%)"));
+}

@@ -5,10 +5,15 @@ use std::path::Path;
 use railsong::check::{self, WarningKind};
 use railsong::units::fmt_eng;
 
-use super::{load, Failure};
+use super::common::load_side;
+use super::Failure;
 
-pub(crate) fn cmd_check(path: &Path, sets: &[String]) -> Result<(), Failure> {
-    let patch = load(path, sets)?;
+pub(crate) fn cmd_check(
+    path: &Path,
+    variant: Option<&str>,
+    sets: &[String],
+) -> Result<(), Failure> {
+    let patch = load_side(path, variant.unwrap_or("base"), sets)?;
     let report = check::check(&patch);
     println!("{} ({})", patch.title, path.display());
     println!(

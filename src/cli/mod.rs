@@ -62,6 +62,9 @@ enum Command {
     Check {
         /// The patch file.
         patch: PathBuf,
+        /// Use this [variants.NAME] of the patch instead of the base.
+        #[arg(long, value_name = "NAME")]
+        variant: Option<String>,
         /// Override a value by dotted path, e.g. --set stages.sum.feedback.r=47k (repeatable).
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
@@ -89,6 +92,9 @@ enum Command {
     Measure {
         /// The patch file.
         patch: PathBuf,
+        /// Use this [variants.NAME] of the patch instead of the base.
+        #[arg(long, value_name = "NAME")]
+        variant: Option<String>,
         /// Only this output.
         #[arg(long, value_name = "NAME")]
         output: Option<String>,
@@ -132,6 +138,9 @@ enum Command {
     Report {
         /// The patch file.
         patch: PathBuf,
+        /// Use this [variants.NAME] of the patch instead of the base.
+        #[arg(long, value_name = "NAME", conflicts_with_all = ["a", "b"])]
+        variant: Option<String>,
         /// Compare: side A (`base` or a [variants.NAME]); needs --b.
         #[arg(long, value_name = "NAME", requires = "b")]
         a: Option<String>,
@@ -398,7 +407,11 @@ pub fn run() -> Result<(), Failure> {
         }
     };
     match cli.command {
-        Command::Check { patch, sets } => check::cmd_check(&patch, &sets),
+        Command::Check {
+            patch,
+            variant,
+            sets,
+        } => check::cmd_check(&patch, variant.as_deref(), &sets),
         Command::Parts { patch, sets } => parts::cmd_parts(patch.as_deref(), &sets),
         Command::Render {
             patch,
@@ -414,6 +427,7 @@ pub fn run() -> Result<(), Failure> {
         Command::Demo { out } => demo::cmd_demo(&out),
         Command::Report {
             patch,
+            variant,
             a,
             b,
             segment,
@@ -423,6 +437,7 @@ pub fn run() -> Result<(), Failure> {
             let ab = a.zip(b);
             report::cmd_report(
                 &patch,
+                variant.as_deref(),
                 &out,
                 &sets,
                 ab.as_ref()
@@ -437,6 +452,7 @@ pub fn run() -> Result<(), Failure> {
         } => noise::cmd_noise(&patch, &sets, output.as_deref(), json),
         Command::Measure {
             patch,
+            variant,
             output,
             json,
             csv,
@@ -453,11 +469,19 @@ pub fn run() -> Result<(), Failure> {
             let settings = analysis_settings(harmonics, &weighting)?;
             let plots = plots.then(|| plots_dir.unwrap_or_else(|| default_dir(&stem_of(&patch))));
             match level_sweep {
-                Some(spec) => {
-                    measure::cmd_level_sweep(&patch, &sets, &spec, steps, &settings, json, csv)
-                }
+                Some(spec) => measure::cmd_level_sweep(
+                    &patch,
+                    variant.as_deref(),
+                    &sets,
+                    &spec,
+                    steps,
+                    &settings,
+                    (json, csv),
+                    plots.map(|d| (d, force)),
+                ),
                 None => measure::cmd_measure(
                     &patch,
+                    variant.as_deref(),
                     &sets,
                     output.as_deref(),
                     (json, csv, long),

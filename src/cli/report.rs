@@ -8,20 +8,22 @@ use railsong::report;
 use railsong::signal::OutputDir;
 use railsong::units::{self, fmt_eng};
 
+use super::common::load_side;
 use super::common::{default_dir, render_error, run_patch, signal_error, stem_of};
 use super::compare::compare_sides;
-use super::{load, Failure, RenderFlags};
+use super::{Failure, RenderFlags};
 
 /// Longest stretch the listening page embeds, s.
 pub(crate) const REPORT_MAX_S: f64 = 60.0;
 
 pub(crate) fn cmd_report(
     path: &Path,
+    variant: Option<&str>,
     flags: &RenderFlags,
     sets: &[String],
     ab: Option<(&str, &str, &str)>,
 ) -> Result<(), Failure> {
-    let mut patch = load(path, sets)?;
+    let mut patch = load_side(path, variant.unwrap_or("base"), sets)?;
     if patch.length > REPORT_MAX_S {
         println!(
             "the page plays and measures the first {REPORT_MAX_S} s of this {} patch",
