@@ -167,7 +167,10 @@
 //! limit, or latched by a reversal, is not slewing), cm_out (V+ outside the input range),
 //! reversed (reversal factor < 0). Also the time of the first clipped sample and the
 //! extremes of each op-amp's own output (after its clamp, at the internal rate, so without
-//! the decimator's band-limiting overshoot).
+//! the decimator's band-limiting overshoot). The extremes are reduced in the clipper's
+//! "whole block inside" pass (eight compare-and-select lanes, so it stays vectorised);
+//! measured with the engine bench (clean mix, noise off, 10 alternating runs, medians by CPU
+//! time) they cost about 9 % of the fast path (1009 -> 920 times real time).
 
 pub mod feed;
 pub mod halfband;

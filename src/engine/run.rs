@@ -791,17 +791,47 @@ fn shape_block(
             let a = 0.5 * (xp - xm).abs();
             (xc - a > lin_lo) & (xc + a < lin_hi)
         };
-        let mut all = inside(x2, x1, x[0]) & inside(x1, x[0], x[1]);
+        let first = inside(x2, x1, x[0]) & inside(x1, x[0], x[1]);
         out[0] = x1;
         out[1] = x[0];
-        for (((o, &xm), &xc), &xp) in out[2..].iter_mut().zip(x).zip(&x[1..]).zip(&x[2..]) {
-            *o = xc;
-            all &= inside(xm, xc, xp);
+        out[2..].copy_from_slice(&x[1..b - 1]);
+        // One pass of eight independent lanes (compare-and-select, which vectorises): the
+        // extremes of xc - a and xc + a decide "inside", those of xc are the output's peaks.
+        let n = b - 2;
+        let (xm, xc, xp) = (&x[..n], &x[1..n + 1], &x[2..]);
+        let mut r = [[f64::INFINITY; 8], [f64::NEG_INFINITY; 8]];
+        let mut pk = [[x1.min(x[0]); 8], [x1.max(x[0]); 8]];
+        let lanes = |r: &mut [[f64; 8]; 2], pk: &mut [[f64; 8]; 2], j: usize, m, c: f64, p| {
+            let a = 0.5 * f64::abs(p - m);
+            let (d, u) = (c - a, c + a);
+            r[0][j] = if d < r[0][j] { d } else { r[0][j] };
+            r[1][j] = if u > r[1][j] { u } else { r[1][j] };
+            pk[0][j] = if c < pk[0][j] { c } else { pk[0][j] };
+            pk[1][j] = if c > pk[1][j] { c } else { pk[1][j] };
+        };
+        let (cm, cc, cp) = (xm.chunks_exact(8), xc.chunks_exact(8), xp.chunks_exact(8));
+        let rest = cm.remainder().len();
+        for ((m4, c4), p4) in cm.zip(cc).zip(cp) {
+            for j in 0..8 {
+                lanes(&mut r, &mut pk, j, m4[j], c4[j], p4[j]);
+            }
         }
-        if all {
+        for k in n - rest..n {
+            lanes(&mut r, &mut pk, k % 8, xm[k], xc[k], xp[k]);
+        }
+        let lo8 = |v: &[f64; 8]| {
+            v.iter()
+                .fold(f64::INFINITY, |a, &b| if b < a { b } else { a })
+        };
+        let hi8 = |v: &[f64; 8]| {
+            v.iter()
+                .fold(f64::NEG_INFINITY, |a, &b| if b > a { b } else { a })
+        };
+        if first && lo8(&r[0]) > lin_lo && hi8(&r[1]) < lin_hi {
             st.x2 = x[b - 2];
             st.x1 = x[b - 1];
-            track_peaks(st, out);
+            st.out_min = st.out_min.min(lo8(&pk[0]));
+            st.out_max = st.out_max.max(hi8(&pk[1]));
             return;
         }
     }
@@ -829,14 +859,30 @@ fn shape_block(
     track_peaks(st, out);
 }
 
-/// Running extremes of a stage's shaped output (vectorises: two independent reductions).
+/// Running extremes of a stage's shaped output. Eight independent lanes with plain
+/// compare-and-select (not `f64::max`, whose NaN rule keeps the compiler from vectorising),
+/// so the reduction runs in vector registers; the output is finite (the step falls back to
+/// the previous value otherwise).
 #[inline(always)]
 fn track_peaks(st: &mut StageState, out: &[f64]) {
-    let (mut hi, mut lo) = (st.out_max, st.out_min);
-    for &v in out {
-        hi = hi.max(v);
-        lo = lo.min(v);
+    let mut hi = [st.out_max; 8];
+    let mut lo = [st.out_min; 8];
+    let chunks = out.chunks_exact(8);
+    let rest = chunks.remainder();
+    for c in chunks {
+        for k in 0..8 {
+            hi[k] = if c[k] > hi[k] { c[k] } else { hi[k] };
+            lo[k] = if c[k] < lo[k] { c[k] } else { lo[k] };
+        }
     }
-    st.out_max = hi;
-    st.out_min = lo;
+    for (k, &v) in rest.iter().enumerate() {
+        hi[k] = if v > hi[k] { v } else { hi[k] };
+        lo[k] = if v < lo[k] { v } else { lo[k] };
+    }
+    st.out_max = hi
+        .iter()
+        .fold(f64::NEG_INFINITY, |a, &b| if b > a { b } else { a });
+    st.out_min = lo
+        .iter()
+        .fold(f64::INFINITY, |a, &b| if b < a { b } else { a });
 }
