@@ -312,7 +312,7 @@ fn harmonics_above_nyquist_give_null_with_a_note_never_zero() {
 }
 
 /// An inverter with a general JFET-input part made hard-cornered (knee 0) on +/-12 V: it
-/// swings to 10.5 V either way (1.5 V output drop) and slews at 13 V/us.
+/// swings to 10.5 V either way (1.5 V output drop, stated here) and slews at 13 V/us.
 const HARD: &str = r#"
 [patch]
 noise = false
@@ -327,6 +327,7 @@ based_on = "jfet-general"
 knee = "0 V"
 drop_pos = "1.5 V"
 drop_neg = "1.5 V"
+slew = "13 V/us"
 
 [sources.osc]
 wave = "sine"
@@ -492,4 +493,68 @@ from = "other"
     let m = measure::measure(&p, &run, None, &Default::default(), Some("a"), None);
     assert_eq!(m.settings.alias_dbc.len(), 1);
     assert!(m.settings.alias_probe.contains("fixed probe"));
+}
+
+#[test]
+fn streamed_render_skips_the_same_settle_time_as_a_full_one() {
+    // A streamed render keeps only the last TAIL_MAX samples; its capture must still start
+    // at the settle time of the record, not of the tail. At 8 kHz a 34 s render keeps the
+    // last 32.8 s, and a 10 uF coupling capacitor into 10k (tau 0.1 s) settles in 1.4 s,
+    // which ends inside the tail: both renders must analyse the very same samples.
+    let p = load(
+        INVERTER,
+        &[
+            "patch.rate=8 kHz",
+            "patch.length=34 s",
+            "stages.amp.c_in=10u",
+            "stages.amp.part=jfet-general",
+        ],
+    );
+    let settings = railsong::analysis::Settings::default();
+    let full = measure_of(&p);
+    let streamed = render::render_streaming(
+        &p,
+        &RenderOptions::default(),
+        &mut |_, _| Ok(()),
+        &mut |_| {},
+    )
+    .unwrap();
+    let frames = p.frames();
+    assert_eq!(streamed.run.first_frame, frames - render::TAIL_MAX);
+    assert!((measure::settle_time(&p) * p.rate) as usize > streamed.run.first_frame);
+    let m = measure::measure(&p, &streamed.run, None, &settings, None, None);
+    let (a, b) = (&full.outputs["out"].figures, &m.outputs["out"].figures);
+    assert_eq!(a.fft_len, b.fft_len);
+    assert_eq!(a.thd_percent, b.thd_percent);
+    assert_eq!(a.thdn_db, b.thdn_db);
+}
+
+#[test]
+fn render_summary_names_the_first_clip_and_the_alias_figure_once() {
+    // The render summary says which stage clips first and when (the closed form of the
+    // clipping test above: 0.1 s + asin(1/2) / (2 pi 997 Hz) = 100.08 ms), and prints the
+    // alias figure once for the part, saying it is a fixed probe.
+    let dir = tempfile::tempdir().unwrap();
+    let patch = dir.path().join("hard.toml");
+    std::fs::write(&patch, HARD).unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_railsong"))
+        .arg("render")
+        .arg(&patch)
+        .arg("--out")
+        .arg(dir.path().join("out"))
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(text.contains("first clip: stage amp at 100.1 ms"), "{text}");
+    assert_eq!(
+        text.matches("alias figure of part hard").count(),
+        1,
+        "{text}"
+    );
+    assert!(text.contains("fixed probe"), "{text}");
 }

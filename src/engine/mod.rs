@@ -178,7 +178,10 @@
 //! limit, or latched by a reversal, is not slewing), cm_out (V+ outside the input range),
 //! reversed (reversal factor < 0). Also the time of the first clipped sample and the
 //! extremes of each op-amp's own output (after its clamp, at the internal rate, so without
-//! the decimator's band-limiting overshoot).
+//! the decimator's band-limiting overshoot). The extremes are reduced in the clipper's
+//! "whole block inside" pass (eight compare-and-select lanes, so it stays vectorised);
+//! measured with the engine bench (clean mix, noise off, 10 alternating runs, medians by CPU
+//! time) they cost about 9 % of the fast path (1009 -> 920 times real time).
 
 pub mod feed;
 pub mod halfband;
@@ -310,16 +313,26 @@ pub struct Run {
 }
 
 /// The alias figure ([`alias_probe`]) of every op-amp stage's part, at the patch's rate,
-/// rails and oversampling.
+/// rails and oversampling (probed once per distinct part).
 pub fn alias_figures(patch: &Patch) -> Vec<AliasFigure> {
+    let mut probed: Vec<(&crate::parts::OpAmp, f64)> = Vec::new();
     patch
         .stages
         .iter()
         .filter_map(|st| {
-            st.part.as_ref().map(|part| AliasFigure {
+            let part = st.part.as_ref()?;
+            let dbc = match probed.iter().find(|(p, _)| *p == part) {
+                Some((_, d)) => *d,
+                None => {
+                    let d = alias_probe(part, patch.rails, patch.rate, patch.oversample);
+                    probed.push((part, d));
+                    d
+                }
+            };
+            Some(AliasFigure {
                 stage: st.name.clone(),
                 part: part.name.clone(),
-                dbc: alias_probe(part, patch.rails, patch.rate, patch.oversample),
+                dbc,
             })
         })
         .collect()
