@@ -528,3 +528,33 @@ fn streamed_render_skips_the_same_settle_time_as_a_full_one() {
     assert_eq!(a.thd_percent, b.thd_percent);
     assert_eq!(a.thdn_db, b.thdn_db);
 }
+
+#[test]
+fn render_summary_names_the_first_clip_and_the_alias_figure_once() {
+    // The render summary says which stage clips first and when (the closed form of the
+    // clipping test above: 0.1 s + asin(1/2) / (2 pi 997 Hz) = 100.08 ms), and prints the
+    // alias figure once for the part, saying it is a fixed probe.
+    let dir = tempfile::tempdir().unwrap();
+    let patch = dir.path().join("hard.toml");
+    std::fs::write(&patch, HARD).unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_railsong"))
+        .arg("render")
+        .arg(&patch)
+        .arg("--out")
+        .arg(dir.path().join("out"))
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(text.contains("first clip: stage amp at 100.1 ms"), "{text}");
+    assert_eq!(
+        text.matches("alias figure of part hard").count(),
+        1,
+        "{text}"
+    );
+    assert!(text.contains("fixed probe"), "{text}");
+}

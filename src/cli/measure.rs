@@ -11,20 +11,21 @@ use railsong::signal::OutputDir;
 use railsong::units::{self, fmt_eng, Level};
 
 use super::common::{
-    check_length, file_peak_note, measure_streamed, print_alias, print_events, render_error,
-    run_patch, signal_error,
+    check_length, file_peak_note, load_side, measure_streamed, print_alias, print_events,
+    render_error, run_patch, signal_error,
 };
-use super::{load, Failure};
+use super::Failure;
 
 pub(crate) fn cmd_measure(
     path: &Path,
+    variant: Option<&str>,
     sets: &[String],
     output: Option<&str>,
     (json, csv, long): (bool, bool, bool),
     settings: &Settings,
     plots: Option<(PathBuf, bool)>,
 ) -> Result<(), Failure> {
-    let patch = load(path, sets)?;
+    let patch = load_side(path, variant.unwrap_or("base"), sets)?;
     check_length(&patch, long)?;
     let mut folder = match &plots {
         Some((dir, force)) => Some(OutputDir::open(dir, *force).map_err(signal_error)?),
@@ -227,22 +228,29 @@ pub(crate) fn parse_sweep_spec(spec: &str) -> Result<(String, String, String), F
     ))
 }
 
+#[allow(clippy::too_many_arguments)]
 pub(crate) fn cmd_level_sweep(
     path: &Path,
+    variant: Option<&str>,
     sets: &[String],
     spec: &str,
     steps: usize,
     settings: &Settings,
-    json: bool,
-    csv: bool,
+    (json, csv): (bool, bool),
+    plots: Option<(PathBuf, bool)>,
 ) -> Result<(), Failure> {
+    let side = variant.unwrap_or("base");
     let (src, from, to) = parse_sweep_spec(spec)?;
     if steps < 2 {
         return Err(Failure::bad_input(format!(
             "--steps {steps}: expected 2 or more"
         )));
     }
-    let base = load(path, sets)?;
+    let base = load_side(path, side, sets)?;
+    let mut folder = match &plots {
+        Some((dir, force)) => Some(OutputDir::open(dir, *force).map_err(signal_error)?),
+        None => None,
+    };
     if !base.sources.iter().any(|s| s.name == src) {
         return Err(Failure::bad_input(format!(
             "--level-sweep: no source '{src}' in {}",
@@ -281,7 +289,7 @@ pub(crate) fn cmd_level_sweep(
     let at_level = |v: f64| -> Result<measure::Measurement, Failure> {
         let mut s = sets.to_vec();
         s.push(format!("sources.{src}.amp={v} {unit}"));
-        let patch = load(path, &s)?;
+        let patch = load_side(path, side, &s)?;
         let run = run_patch(&patch, false, false)?;
         let mut m = measure::measure(&patch, &run, None, settings, None, tone);
         railsong::render::complete_thd(&patch, &mut m, settings, tone).map_err(render_error)?;
@@ -323,6 +331,54 @@ pub(crate) fn cmd_level_sweep(
         };
         let at1 = found(0.01);
         let at01 = found(0.001);
+        if let Some(folder) = folder.as_mut() {
+            let pts: Vec<(f64, f64)> = thd_pts
+                .iter()
+                .map(|&(v, t)| (v, 100.0 * t))
+                .filter(|&(_, t)| t > 0.0)
+                .collect();
+            // the crossings found on the circuit, marked only where found
+            let crossings: Vec<railsong::plot::Crossing> = [(at01, 0.1), (at1, 1.0)]
+                .into_iter()
+                .filter_map(|(at, y)| {
+                    at.map(|x| railsong::plot::Crossing {
+                        x,
+                        y,
+                        label: format!("{y} % THD at {}", fmt_eng(x, unit)),
+                    })
+                })
+                .collect();
+            let title = format!("{name}: THD against level of {src}");
+            let caption = format!(
+                "{} points; crossings found on the circuit within 0.1 % in level",
+                pts.len()
+            );
+            let series = [railsong::plot::SweepSeries {
+                name: "THD",
+                points: &pts,
+            }];
+            if pts.len() >= 2 {
+                let svg = railsong::plot::sweep_svg(&railsong::plot::SweepPlot {
+                    title: &title,
+                    caption: &caption,
+                    x: railsong::plot::AxisSpec::log(&format!("Level of {src}"), unit),
+                    y: railsong::plot::AxisSpec::log("THD", "%"),
+                    series: &series,
+                    crossings: &crossings,
+                    threshold: Some(railsong::plot::Threshold {
+                        y: 1.0,
+                        label: "1 % THD".into(),
+                    }),
+                });
+                if let Ok(svg) = svg {
+                    let file = format!("{name}-level-sweep.svg");
+                    folder.write_text(&file, &svg).map_err(signal_error)?;
+                    if !json && !csv {
+                        println!("plot written to {}", folder.path().join(&file).display());
+                    }
+                }
+            }
+        }
         let unmeasured = rows
             .iter()
             .filter(|(_, m)| {

@@ -80,13 +80,19 @@ pub(crate) fn render_to(
         };
         files.push(folder.create(name, spec).map_err(signal_error)?);
     }
+    // The files fade in and out at their edges; the figures see the unfaded signal.
+    let fade = flags.edge_fade(patch.frames(), patch.rate)?;
+    let mut written = vec![0usize; files.len()];
     let mut scratch: Vec<f64> = Vec::new();
     let (streamed, m) = measure_streamed(patch, &Settings::default(), None, true, &mut |i, x| {
-        if gains[i] == 1.0 {
+        let start = written[i];
+        written[i] += x.len();
+        if gains[i] == 1.0 && !fade.touches(start, x.len()) {
             files[i].write(x)
         } else {
             scratch.clear();
             scratch.extend(x.iter().map(|v| v * gains[i]));
+            fade.apply(start, &mut scratch);
             files[i].write(&scratch)
         }
     })?;
@@ -203,6 +209,7 @@ pub(crate) fn render_variants(
         force: flags.force,
         plots: false,
         long: flags.long,
+        fade: flags.fade.clone(),
     };
     for v in &names {
         let p = railsong::patch::load_variant(path, Some(v), sets).map_err(Failure::bad_input)?;

@@ -3,6 +3,7 @@
 use std::path::{Path, PathBuf};
 
 use railsong::analysis::Settings;
+use railsong::measure;
 use railsong::parts::eseries::Series;
 use railsong::signal::OutputDir;
 use railsong::study::length::StudyLength;
@@ -210,13 +211,19 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                 if pts.len() < 2 || (log_x && pts.iter().any(|p| p.0 <= 0.0)) {
                     continue;
                 }
+                // axes named by what they show, with units and engineering ticks ("100k")
                 let axis = |log: bool, label: &str, unit: &str| {
-                    if log {
+                    let mut a = if log {
                         railsong::plot::AxisSpec::log(label, unit)
                     } else {
                         railsong::plot::AxisSpec::linear(label, unit)
+                    };
+                    if !matches!(unit, "%" | "dB" | "dBFS" | "dBc") {
+                        a.format = railsong::plot::TickFormat::Si;
                     }
+                    a
                 };
+                let (y_label, y_unit) = measure::figure_label(f);
                 // the crossings found on the circuit, marked only where found
                 let crossings: Vec<railsong::plot::Crossing> = if f == "thd_percent" {
                     [(at01, 0.1), (at1, 1.0)]
@@ -225,14 +232,17 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                             at.map(|x| railsong::plot::Crossing {
                                 x,
                                 y,
-                                label: format!("{y} % THD at {}", fmt_eng(x, "")),
+                                label: format!(
+                                    "{y} % THD at {}",
+                                    fmt_eng(x, measure::key_unit(&path))
+                                ),
                             })
                         })
                         .collect()
                 } else {
                     Vec::new()
                 };
-                let title = format!("{}: {f} against {path}", o.name);
+                let title = format!("{}: {y_label} against {path}", o.name);
                 let caption = format!("{} points; each a full render and measurement", pts.len());
                 let series = [railsong::plot::SweepSeries {
                     name: f,
@@ -241,8 +251,8 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                 let svg = railsong::plot::sweep_svg(&railsong::plot::SweepPlot {
                     title: &title,
                     caption: &caption,
-                    x: axis(log_x, &path, ""),
-                    y: axis(log_y, f, ""),
+                    x: axis(log_x, &path, measure::key_unit(&path)),
+                    y: axis(log_y, &y_label, y_unit),
                     series: &series,
                     crossings: &crossings,
                     threshold: (f == "thd_percent").then(|| railsong::plot::Threshold {
