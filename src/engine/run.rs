@@ -1192,7 +1192,10 @@ fn hybrid_block(
             let xn = if xn.is_finite() { xn } else { v };
             v = xn.clamp(slo, shi);
             *xo = xn;
-            if (f * (pn - sp.b * v)).abs() > sp.vov {
+            // Slewing, counted as in `full_block`: not while held at the swing (or current)
+            // limit, nor while latched by a phase reversal (f <= 0).
+            let held = xn <= slo || xn >= shi;
+            if f > 0.0 && !held && (f * (pn - sp.b * v)).abs() > sp.vov {
                 st.slew += 1;
             }
             pp2 = pp;
