@@ -646,6 +646,7 @@ pub struct FigureTable<'a> {
 /// the players) and of `other` (side B of a comparison); `sections` are extra HTML blocks
 /// (e.g. an A/B comparison). `linked` ([`linked_audio`]): the file names of the players'
 /// WAVs beside the page, or `None` to embed them as `data:` URIs.
+#[allow(clippy::too_many_arguments)]
 pub fn page(
     patch: &Patch,
     patch_text: &str,

@@ -3,7 +3,7 @@
 //! done/total, elapsed time and the estimated time left. `--quiet` silences both.
 //!
 //! Workers only add to an atomic counter (no lock in their loop); a separate thread reads it
-//! and prints.
+//! and draws the bar or prints the lines.
 
 use std::io::{IsTerminal, Write};
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
@@ -60,7 +60,12 @@ pub(crate) fn line(what: &str, unit: &str, done: u64, total: u64, elapsed: Durat
 
 enum Show {
     None,
-    Bar(indicatif::ProgressBar),
+    /// A bar, and the thread that copies the counter into it (workers never touch the bar).
+    Bar(
+        indicatif::ProgressBar,
+        Arc<AtomicBool>,
+        Option<JoinHandle<()>>,
+    ),
     Lines {
         stop: Arc<AtomicBool>,
         thread: Option<JoinHandle<()>>,
@@ -90,7 +95,18 @@ impl Progress {
                     ))
                     .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
                 );
-                Show::Bar(b)
+                let stop = Arc::new(AtomicBool::new(false));
+                let (d, st, bar) = (done.clone(), stop.clone(), b.clone());
+                let thread = std::thread::Builder::new()
+                    .name("progress".into())
+                    .spawn(move || {
+                        while !st.load(Ordering::Relaxed) {
+                            bar.set_position(d.load(Ordering::Relaxed));
+                            std::thread::sleep(Duration::from_millis(100));
+                        }
+                    })
+                    .ok();
+                Show::Bar(b, stop, thread)
             } else {
                 Show::None
             }
@@ -127,18 +143,12 @@ impl Progress {
     /// Add `n` units done (lock-free).
     pub(crate) fn inc(&self, n: u64) {
         self.done.fetch_add(n, Ordering::Relaxed);
-        if let Show::Bar(b) = &self.show {
-            b.inc(n);
-        }
     }
 
     /// Set the fraction done (0..=1).
     pub(crate) fn set_fraction(&self, x: f64) {
         let d = (x.clamp(0.0, 1.0) * self.total as f64) as u64;
         self.done.store(d, Ordering::Relaxed);
-        if let Show::Bar(b) = &self.show {
-            b.set_position(d);
-        }
     }
 
     /// End: clear the bar, stop the printer.
@@ -148,7 +158,13 @@ impl Progress {
 
     fn stop(&mut self) {
         match &mut self.show {
-            Show::Bar(b) => b.finish_and_clear(),
+            Show::Bar(b, stop, thread) => {
+                stop.store(true, Ordering::Relaxed);
+                if let Some(t) = thread.take() {
+                    let _ = t.join();
+                }
+                b.finish_and_clear();
+            }
             Show::Lines { stop, thread } => {
                 stop.store(true, Ordering::Relaxed);
                 if let Some(t) = thread.take() {
