@@ -10,8 +10,8 @@ use super::{load, Failure};
 pub(crate) fn cmd_check(path: &Path, sets: &[String]) -> Result<(), Failure> {
     let patch = load(path, sets)?;
     let report = check::check(&patch);
-    println!("{} ({})", patch.title, path.display());
-    println!(
+    say!("{} ({})", patch.title, path.display());
+    say!(
         "  rails {} / {}, {} x{}, {} long, {} source(s), {} stage(s), {} output(s)",
         fmt_eng(patch.rails.pos, "V"),
         fmt_eng(patch.rails.neg, "V"),
@@ -22,14 +22,14 @@ pub(crate) fn cmd_check(path: &Path, sets: &[String]) -> Result<(), Failure> {
         patch.stages.len(),
         patch.outputs.len()
     );
-    println!();
-    println!("  stage                 type            part               gain      NG     bandwidth  worst-case span        swing");
+    say!();
+    say!("  stage                 type            part               gain      NG     bandwidth  worst-case span        swing");
     for s in &report.stages {
         let gain = match s.gains.as_slice() {
             [g] => format!("{g:+.3}"),
             gs => format!("{:+.3}x{}", gs[0], gs.len()),
         };
-        println!(
+        say!(
             "  {:<21} {:<15} {:<18} {:<9} {:<6} {:<10} {:<22} {}",
             s.name,
             s.kind,
@@ -45,13 +45,13 @@ pub(crate) fn cmd_check(path: &Path, sets: &[String]) -> Result<(), Failure> {
             )),
         );
     }
-    println!();
+    say!();
     if report.warnings.is_empty() {
-        println!("  no warnings");
+        say!("  no warnings");
     } else {
-        println!("  {} warning(s):", report.warnings.len());
+        say!("  {} warning(s):", report.warnings.len());
         for w in &report.warnings {
-            println!("  [{}] {}: {}", tag(w.kind), w.key, w.message);
+            say!("  [{}] {}: {}", tag(w.kind), w.key, w.message);
         }
     }
     Ok(())
@@ -66,5 +66,6 @@ pub(crate) fn tag(kind: WarningKind) -> &'static str {
         WarningKind::NonStandard => "value",
         WarningKind::Bandwidth => "bandwidth",
         WarningKind::Slew => "slew",
+        WarningKind::FileSize => "file size",
     }
 }

@@ -7,7 +7,7 @@ use railsong::engine::Run;
 use railsong::measure;
 use railsong::model::Patch;
 use railsong::render::{self, RenderError, RenderOptions};
-use railsong::signal::{Depth, SignalError};
+use railsong::signal::{Depth, OutputDir, SignalError};
 use railsong::study::StudyError;
 use railsong::units::fmt_eng;
 
@@ -34,6 +34,20 @@ pub(crate) fn signal_error(e: SignalError) -> Failure {
         SignalError::Io { .. } | SignalError::Stream(_) => failure_io(e),
         other => Failure::bad_input(other),
     }
+}
+
+/// Open and lock an output folder; when another railsong run holds it, say so on stderr and
+/// wait for it.
+pub(crate) fn open_folder(dir: &Path, force: bool) -> Result<OutputDir, Failure> {
+    OutputDir::open_with(dir, force, &mut |d| {
+        use std::io::Write;
+        let _ = writeln!(
+            std::io::stderr(),
+            "railsong: {} is busy (another railsong run is writing into it); waiting for it to finish",
+            d.display()
+        );
+    })
+    .map_err(signal_error)
 }
 
 pub(crate) fn analysis_settings(harmonics: usize, weighting: &str) -> Result<Settings, Failure> {
@@ -193,7 +207,10 @@ pub(crate) fn check_length(patch: &Patch, long: bool) -> Result<(), Failure> {
 }
 
 pub(crate) fn db_or_dash(v: Option<f64>, what: &str) -> String {
-    v.map_or(format!("- {what}"), |d| format!("{d:+.1} dB {what}"))
+    match v {
+        Some(d) if d.is_finite() => format!("{d:+.1} dB {what}"),
+        _ => format!("- {what}"),
+    }
 }
 
 pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::EventSeconds>) {
@@ -209,7 +226,7 @@ pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::
                 parts.push(format!("{label} {}", fmt_eng(s, "s")));
             }
         }
-        println!(
+        say!(
             "      {stage}: {}",
             if parts.is_empty() {
                 "clean".to_string()

@@ -7,7 +7,7 @@ use railsong::engine::Run;
 use railsong::measure;
 use railsong::measure::Measurement;
 use railsong::model::Patch;
-use railsong::signal::{self, OutputDir, WavSpec};
+use railsong::signal::{self, WavSpec};
 use railsong::study::compare::{self, Alternation, OutputComparison};
 use railsong::units::{self, fmt_eng};
 
@@ -128,7 +128,7 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     let dir = args.flags.out.clone().unwrap_or_else(|| {
         default_dir(&format!("{}-{}-vs-{}", stem_of(args.patch), args.a, args.b))
     });
-    let mut folder = OutputDir::open(&dir, args.flags.force).map_err(signal_error)?;
+    let mut folder = super::common::open_folder(&dir, args.flags.force)?;
     let files = |o: &str| {
         [
             format!("{o}-A.wav"),
@@ -162,6 +162,17 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         args.matching,
         !args.json,
     )?;
+    // The plots first, so that their names are checked before any file is written.
+    let mut plots = Vec::new();
+    if args.flags.plots {
+        for (side, p) in [("A", &pa), ("B", &pb)] {
+            for f in railsong::report::plots(p, None).map_err(render_error)? {
+                let name = format!("{}-{side}-{}.svg", f.output, f.kind);
+                folder.check_writable(&name).map_err(signal_error)?;
+                plots.push((name, f.svg));
+            }
+        }
+    }
     let mut results: Vec<OutputComparison> = Vec::new();
     for (oa, c) in ra.outputs.iter().zip(compared) {
         let spec = WavSpec {
@@ -204,21 +215,14 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     folder
         .write_text("compare.json", &text)
         .map_err(signal_error)?;
-    if args.flags.plots {
-        for (side, p) in [("A", &pa), ("B", &pb)] {
-            let figs = railsong::report::plots(p, None).map_err(render_error)?;
-            for f in figs {
-                folder
-                    .write_text(&format!("{}-{side}-{}.svg", f.output, f.kind), &f.svg)
-                    .map_err(signal_error)?;
-            }
-        }
+    for (name, svg) in &plots {
+        folder.write_text(name, svg).map_err(signal_error)?;
     }
     if args.json {
-        println!("{text}");
+        say!("{text}");
         return Ok(());
     }
-    println!(
+    say!(
         "{}: A = {}, B = {} -> {}",
         pa.title,
         args.a,
@@ -226,9 +230,9 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         dir.display()
     );
     for c in &results {
-        println!();
-        println!("output {}", c.output);
-        println!(
+        say!();
+        say!("output {}", c.output);
+        say!(
             "  B matched to A by {}: gain {:+.2} dB",
             match c.matched_by {
                 compare::Matching::Rms => "RMS of the whole output",
@@ -237,13 +241,13 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             c.gain_db
         );
         match c.difference_below_db {
-            Some(d) => println!(
+            Some(d) => say!(
                 "  difference (A minus matched B) sits {d:.1} dB below the signal ({:.1} dBFS)",
                 c.difference_dbfs.unwrap_or(f64::NEG_INFINITY)
             ),
-            None => println!("  difference (A minus matched B) is silent: the two are identical"),
+            None => say!("  difference (A minus matched B) is silent: the two are identical"),
         }
-        println!(
+        say!(
             "  {}-AB.wav alternates in {} segments with {} equal-power crossfades:",
             c.output,
             fmt_eng(seg, "s"),
@@ -255,12 +259,12 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             .map(|s| format!("{} {:.2}-{:.2} s", s.side.label(), s.start_s, s.end_s))
             .collect();
         for line in key.chunks(6) {
-            println!("    {}", line.join(", "));
+            say!("    {}", line.join(", "));
         }
-        println!("  {:<16} {:>12} {:>12} {:>12}", "figure", "A", "B", "B - A");
+        say!("  {:<16} {:>12} {:>12} {:>12}", "figure", "A", "B", "B - A");
         for r in &c.figures {
             let v = |x: Option<f64>| x.map_or("-".to_string(), |x| format!("{x:.4}"));
-            println!(
+            say!(
                 "  {:<16} {:>12} {:>12} {:>12}  {}",
                 r.figure,
                 v(r.a),
@@ -270,10 +274,10 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             );
         }
         if c.changes.is_empty() {
-            println!("  no figure moved beyond its threshold");
+            say!("  no figure moved beyond its threshold");
         }
         for s in &c.changes {
-            println!("  - {s}");
+            say!("  - {s}");
         }
     }
     Ok(())

@@ -4,6 +4,9 @@ use std::path::{Path, PathBuf};
 
 use clap::{Parser, Subcommand};
 
+#[macro_use]
+pub(crate) mod out;
+
 mod check;
 mod common;
 mod compare;
@@ -312,7 +315,7 @@ pub fn run() -> Result<(), Failure> {
         Err(e) => {
             use clap::error::ErrorKind;
             if matches!(e.kind(), ErrorKind::DisplayHelp | ErrorKind::DisplayVersion) {
-                print!("{e}");
+                say_raw!("{e}");
                 return Ok(());
             }
             let text = e.to_string();

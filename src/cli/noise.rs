@@ -30,13 +30,13 @@ pub(crate) fn cmd_noise(
         )));
     }
     if json {
-        println!(
+        say!(
             "{}",
             serde_json::to_string_pretty(&picked).map_err(failure_io)?
         );
         return Ok(());
     }
-    println!(
+    say!(
         "{}: noise budget over 20 Hz - 20 kHz at {:.1} C (analytic, from the network's noise gains)",
         patch.title,
         patch.temperature - railsong::units::ZERO_CELSIUS
@@ -47,14 +47,14 @@ pub(crate) fn cmd_noise(
     idle.length = idle.length.max(2.0);
     let sim = stream_patch(&idle, false, false, &mut |_, _| Ok(()))?;
     for b in picked {
-        println!();
-        print!("{}", railsong::noise::format_budget(b));
+        say!();
+        say_raw!("{}", railsong::noise::format_budget(b));
         let k = patch.outputs.iter().position(|o| o.name == b.output);
         let simulated = k
             .and_then(|k| sim.run.outputs.get(k))
             .map(|o| measure::noise_figures(&o.samples, sim.run.rate));
         if let Some(n) = simulated.and_then(|n| n.noise_rms_v) {
-            println!(
+            say!(
                 "simulated: {:.4} uV rms over 20 Hz - 20 kHz from a {} idle render ({:+.2} dB against the budget)",
                 n * 1e6,
                 fmt_eng(idle.length, "s"),

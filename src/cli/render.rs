@@ -6,7 +6,7 @@ use railsong::analysis::Settings;
 use railsong::measure;
 use railsong::model::Patch;
 use railsong::report;
-use railsong::signal::{self, Depth, OutputDir, WavSpec};
+use railsong::signal::{self, Depth, WavSpec};
 use railsong::units::fmt_eng;
 
 use super::common::{
@@ -44,15 +44,31 @@ pub(crate) fn render_to(
         })
         .collect();
     let figures_name = format!("figures{suffix}.json");
-    let mut folder = OutputDir::open(&dir, flags.force).map_err(signal_error)?;
-    for n in names
-        .iter()
-        .map(String::as_str)
-        .chain([figures_name.as_str()])
-    {
-        folder.check_writable(n).map_err(signal_error)?;
-    }
+    let spec_of = |o: &railsong::model::Output| WavSpec {
+        rate: patch.rate.round() as u32,
+        channels: 1,
+        depth,
+        full_scale: patch.full_scale,
+        dither_seed: signal::source_seed(patch.seed, &o.name),
+    };
+    // Limits before work: a file a WAV cannot hold is refused before anything is written.
     check_length(patch, flags.long)?;
+    for (o, name) in patch.outputs.iter().zip(&names) {
+        signal::check_fits(name, &spec_of(o), patch.frames() as u64)
+            .map_err(|e| Failure::bad_input(format!("outputs.{}: {e}", o.name)))?;
+    }
+    let mut folder = super::common::open_folder(&dir, flags.force)?;
+    // The plots are computed first so that every file name (and the overwrite guard) is
+    // checked before any file is written.
+    let figs = if flags.plots && variant.is_none() {
+        report::plots(patch, None).map_err(render_error)?
+    } else {
+        Vec::new()
+    };
+    let mut all: Vec<String> = names.clone();
+    all.push(figures_name.clone());
+    all.extend(figs.iter().map(|f| f.file_name()));
+    folder.check_all(&all).map_err(signal_error)?;
     // Listening gains need each output's RMS and peak first: one extra pass without files.
     let gains: Vec<f64> = match flags.listen {
         Some(target) => {
@@ -71,14 +87,7 @@ pub(crate) fn render_to(
     };
     let mut files = Vec::new();
     for (o, name) in patch.outputs.iter().zip(&names) {
-        let spec = WavSpec {
-            rate: patch.rate.round() as u32,
-            channels: 1,
-            depth,
-            full_scale: patch.full_scale,
-            dither_seed: signal::source_seed(patch.seed, &o.name),
-        };
-        files.push(folder.create(name, spec).map_err(signal_error)?);
+        files.push(folder.create(name, spec_of(o)).map_err(signal_error)?);
     }
     let mut scratch: Vec<f64> = Vec::new();
     let (streamed, m) = measure_streamed(patch, &Settings::default(), None, true, &mut |i, x| {
@@ -97,10 +106,10 @@ pub(crate) fn render_to(
     let run = &streamed.run;
 
     match variant {
-        Some(v) => println!("{} (variant {v}) -> {}", patch.title, dir.display()),
-        None => println!("{} -> {}", patch.title, dir.display()),
+        Some(v) => say!("{} (variant {v}) -> {}", patch.title, dir.display()),
+        None => say!("{} -> {}", patch.title, dir.display()),
     }
-    println!(
+    say!(
         "  calibration: {} = 0 dBFS peak{}",
         fmt_eng(patch.full_scale, "V"),
         if flags.listen.is_some() {
@@ -116,7 +125,7 @@ pub(crate) fn render_to(
             String::new()
         };
         let f = &m.outputs[&o.name].figures;
-        println!(
+        say!(
             "  {}: peak {}  rms {}  headroom {} / {}{}{}",
             name,
             f.peak_v.map_or("-".into(), |v| fmt_eng(v, "V")),
@@ -133,7 +142,7 @@ pub(crate) fn render_to(
         print_events(&m.outputs[&o.name].events);
     }
     for a in &run.alias {
-        println!(
+        say!(
             "  alias figure of '{}' in {} at x{}: {:.1} dBc (5 kHz tone 7 dB past the swing)",
             a.part, a.stage, run.oversample, a.dbc
         );
@@ -142,13 +151,12 @@ pub(crate) fn render_to(
         .write_text(&figures_name, &measure::to_json(&m))
         .map_err(signal_error)?;
     if flags.plots && variant.is_none() {
-        let figs = report::plots(patch, None).map_err(render_error)?;
         for f in &figs {
             folder
                 .write_text(&f.file_name(), &f.svg)
                 .map_err(signal_error)?;
         }
-        println!("  {} plot(s) written", figs.len());
+        say!("  {} plot(s) written", figs.len());
     }
     Ok(dir)
 }
