@@ -20,13 +20,9 @@ pub(crate) fn write(args: std::fmt::Arguments, newline: bool) {
         return;
     }
     let mut o = std::io::stdout().lock();
-    let r = o.write_fmt(args).and_then(|()| {
-        if newline {
-            o.write_all(b"\n")
-        } else {
-            Ok(())
-        }
-    });
+    let r = o
+        .write_fmt(args)
+        .and_then(|()| if newline { o.write_all(b"\n") } else { Ok(()) });
     if let Err(e) = r {
         CLOSED.store(true, Ordering::Relaxed);
         if e.kind() != std::io::ErrorKind::BrokenPipe {

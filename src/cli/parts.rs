@@ -25,9 +25,7 @@ pub(crate) fn cmd_parts(path: Option<&Path>, sets: &[String]) -> Result<(), Fail
             }
         }
     }
-    say!(
-        "op-amp profiles (built-in figures are typical of their class, not of any one product)"
-    );
+    say!("op-amp profiles (built-in figures are typical of their class, not of any one product)");
     say!();
     for (p, origin) in &parts {
         say!("{} ({origin}): {}", p.name, p.about);

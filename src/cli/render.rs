@@ -144,7 +144,10 @@ pub(crate) fn render_to(
     for a in &run.alias {
         say!(
             "  alias figure of '{}' in {} at x{}: {:.1} dBc (5 kHz tone 7 dB past the swing)",
-            a.part, a.stage, run.oversample, a.dbc
+            a.part,
+            a.stage,
+            run.oversample,
+            a.dbc
         );
     }
     folder

@@ -128,7 +128,11 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
             let names: Vec<String> = base
                 .outputs
                 .iter()
-                .flat_map(|o| figures.iter().map(move |f| format!("{}-sweep-{f}.svg", o.name)))
+                .flat_map(|o| {
+                    figures
+                        .iter()
+                        .map(move |f| format!("{}-sweep-{f}.svg", o.name))
+                })
                 .collect();
             folder.check_all(&names).map_err(signal_error)?;
             Some(folder)

@@ -23,10 +23,18 @@ fn live() -> std::sync::MutexGuard<'static, Vec<PathBuf>> {
     LIVE.lock().unwrap_or_else(|p| p.into_inner())
 }
 
-/// Remember `path` as a temporary to remove if the process is stopped by a signal.
-pub(crate) fn register(path: &Path) {
+/// Create the temporary `path` with `create` and remember it, both under the registry's
+/// lock: the watcher (which holds that lock from the moment it starts removing until the
+/// process ends) never misses a file created while it works.
+pub(crate) fn create(
+    path: &Path,
+    create: impl FnOnce() -> std::io::Result<std::fs::File>,
+) -> std::io::Result<std::fs::File> {
     INSTALL.call_once(install);
-    live().push(path.to_path_buf());
+    let mut l = live();
+    let f = create()?;
+    l.push(path.to_path_buf());
+    Ok(f)
 }
 
 /// Forget `path` (renamed into place or already removed).
@@ -87,7 +95,9 @@ fn watch(read_fd: libc::c_int) {
             return;
         }
     }
-    for p in live().drain(..) {
+    // The lock is held until the process ends: no temporary is created after this point.
+    let mut l = live();
+    for p in l.drain(..) {
         let _ = std::fs::remove_file(p);
     }
     let sig = libc::c_int::from(b);
@@ -98,5 +108,6 @@ fn watch(read_fd: libc::c_int) {
         libc::raise(sig);
     }
     // A signal whose default action does not end the process (none of the three): leave.
+    drop(l);
     std::process::exit(128 + sig);
 }

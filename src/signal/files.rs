@@ -99,8 +99,7 @@ fn parse_manifest(text: &str) -> Entries {
         if f.len() != 4 || f[0].starts_with('#') || check_file_name(f[0]).is_err() {
             continue;
         }
-        let (Ok(size), Ok(ino), Ok(mtime_ns)) = (f[1].parse(), f[2].parse(), f[3].parse())
-        else {
+        let (Ok(size), Ok(ino), Ok(mtime_ns)) = (f[1].parse(), f[2].parse(), f[3].parse()) else {
             continue;
         };
         out.entry(f[0].to_string()).or_default().push(Stamp {
@@ -149,13 +148,20 @@ static LOCKS: Mutex<Vec<((u64, u64), Weak<File>)>> = Mutex::new(Vec::new());
 /// Take (or share, within this process) the exclusive lock on `dir`. `on_busy` is called
 /// once before waiting when another process holds it. Returns the lock and whether this
 /// call took it (rather than sharing one this process already held).
-fn lock_folder(dir: &Path, on_busy: &mut dyn FnMut(&Path)) -> Result<(Arc<File>, bool), SignalError> {
+fn lock_folder(
+    dir: &Path,
+    on_busy: &mut dyn FnMut(&Path),
+) -> Result<(Arc<File>, bool), SignalError> {
     let handle = File::open(dir).map_err(io_at(dir))?;
     let meta = handle.metadata().map_err(io_at(dir))?;
     let key = (meta.dev(), meta.ino());
     let mut locks = LOCKS.lock().unwrap_or_else(|p| p.into_inner());
     locks.retain(|(_, w)| w.strong_count() > 0);
-    if let Some(held) = locks.iter().find(|(k, _)| *k == key).and_then(|(_, w)| w.upgrade()) {
+    if let Some(held) = locks
+        .iter()
+        .find(|(k, _)| *k == key)
+        .and_then(|(_, w)| w.upgrade())
+    {
         return Ok((held, false));
     }
     match handle.try_lock() {
@@ -189,11 +195,11 @@ fn create_temp(dir: &Path, name: &str) -> Result<(PathBuf, File), SignalError> {
             std::process::id(),
             COUNTER.fetch_add(1, Ordering::Relaxed)
         ));
-        cleanup::register(&temp);
-        match OpenOptions::new().write(true).create_new(true).open(&temp) {
+        match cleanup::create(&temp, || {
+            OpenOptions::new().write(true).create_new(true).open(&temp)
+        }) {
             Ok(f) => return Ok((temp, f)),
             Err(e) => {
-                cleanup::unregister(&temp);
                 if e.kind() != std::io::ErrorKind::AlreadyExists {
                     return Err(io_at(&temp)(e));
                 }
@@ -364,7 +370,9 @@ impl OutputDir {
 
     /// [`OutputDir::check_writable`] for every name, before any is written.
     pub fn check_all<S: AsRef<str>>(&self, names: &[S]) -> Result<(), SignalError> {
-        names.iter().try_for_each(|n| self.check_writable(n.as_ref()))
+        names
+            .iter()
+            .try_for_each(|n| self.check_writable(n.as_ref()))
     }
 
     /// Write a text file (JSON, CSV, SVG, HTML) atomically, under the same guard as WAVs.
@@ -476,5 +484,55 @@ impl Drop for WavFile {
         if !self.temp.as_os_str().is_empty() {
             remove_temp(&self.temp);
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The two states a crash or a full disk can leave around the rename that puts a file in
+    /// place: the new entry recorded but the file not renamed yet, and the file renamed but
+    /// its entry not settled yet. In both, every file in the folder is still railsong's.
+    #[test]
+    fn a_crash_around_the_rename_leaves_every_file_recognised() {
+        let tmp = tempfile::tempdir().unwrap();
+        let mut dir = OutputDir::open(tmp.path(), false).unwrap();
+        dir.write_text("a.json", "1").unwrap();
+        let (temp, mut f) = create_temp(tmp.path(), "a.json").unwrap();
+        f.write_all(b"22").unwrap();
+        f.sync_all().unwrap();
+        let stamp = Stamp::of(&f.metadata().unwrap());
+        drop(f);
+        dir.record_pending("a.json", stamp).unwrap();
+        // Stopped here: the old file is still recognised.
+        let again = OutputDir::open(tmp.path(), false).unwrap();
+        assert!(again.wrote("a.json"));
+        again.check_writable("a.json").unwrap();
+        // Renamed, stopped before the entry settled: the new file is recognised.
+        fs::rename(&temp, tmp.path().join("a.json")).unwrap();
+        remove_temp(&temp);
+        assert!(again.wrote("a.json"));
+        assert_eq!(fs::read_to_string(tmp.path().join("a.json")).unwrap(), "22");
+        // A file changed behind railsong's back is not.
+        fs::write(tmp.path().join("a.json"), "333").unwrap();
+        assert!(!again.wrote("a.json"));
+        assert!(again.check_writable("a.json").is_err());
+    }
+
+    #[test]
+    fn manifest_lines_round_trip_and_old_lines_are_not_trusted() {
+        let mut e = Entries::new();
+        e.insert(
+            "x.wav".into(),
+            vec![Stamp {
+                size: 44,
+                ino: 7,
+                mtime_ns: 1_700_000_000_123_456_789,
+            }],
+        );
+        assert_eq!(parse_manifest(&manifest_text(&e)), e);
+        // A name alone (earlier versions) or a damaged line is ignored.
+        assert!(parse_manifest("x.wav\nx.wav 1 2\n../y.wav 1 2 3\nz.wav a b c\n").is_empty());
     }
 }

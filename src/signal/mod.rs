@@ -59,7 +59,8 @@ pub use periodic::{BandLimited, Multitone, Naive, Shape, Sine};
 pub use sweep::LogSweep;
 pub use wav_in::{file_stamp, load_wav, Playback, WavStream, MAX_RATE, MIN_RATE};
 pub use wav_out::{
-    check_fits, file_size, listen_gain, listen_gain_from, max_frames, Depth, WavSpec, WavWriter, WriteStats, LISTEN_PEAK_DBFS,
+    check_fits, file_size, listen_gain, listen_gain_from, max_frames, Depth, WavSpec, WavWriter,
+    WriteStats, LISTEN_PEAK_DBFS,
 };
 
 /// A block-based signal generator.

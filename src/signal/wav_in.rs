@@ -242,17 +242,24 @@ pub fn load_wav(
     let mut mono = vec![0.0f64; c.n_frames];
     let channels = c.channels;
     // A frame that the end of the file cuts (when the declared size lies) is dropped.
-    decode(path, &mut reader, &c, full_scale, usize::MAX, &mut |i, v| {
-        let ch = i % channels;
-        let Some(m) = mono.get_mut(i / channels) else {
-            return;
-        };
-        match channel {
-            Some(k) if k == ch => *m = v,
-            Some(_) => {}
-            None => *m += v / channels as f64,
-        }
-    })?;
+    decode(
+        path,
+        &mut reader,
+        &c,
+        full_scale,
+        usize::MAX,
+        &mut |i, v| {
+            let ch = i % channels;
+            let Some(m) = mono.get_mut(i / channels) else {
+                return;
+            };
+            match channel {
+                Some(k) if k == ch => *m = v,
+                Some(_) => {}
+                None => *m += v / channels as f64,
+            }
+        },
+    )?;
     let data = if (c.rate - target_rate).abs() > 1e-9 * target_rate {
         resample(path, &mono, c.rate, target_rate)?
     } else {
