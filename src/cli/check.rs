@@ -9,6 +9,14 @@ use super::{load, Failure};
 
 pub(crate) fn cmd_check(path: &Path, sets: &[String]) -> Result<(), Failure> {
     let patch = load(path, sets)?;
+    // WAV inputs as render will read them: whatever render refuses, check refuses too.
+    let k = patch.oversample.max(1);
+    for s in &patch.sources {
+        if matches!(s.wave, railsong::model::Wave::File { .. }) {
+            railsong::signal::file_stream(s, patch.rate * k as f64, (patch.frames() + 1) * k)
+                .map_err(|e| Failure::bad_input(format!("sources.{}.path: {e}", s.name)))?;
+        }
+    }
     let report = check::check(&patch);
     say!("{} ({})", patch.title, path.display());
     say!(

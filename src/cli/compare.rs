@@ -145,6 +145,17 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     folder
         .check_writable("compare.json")
         .map_err(signal_error)?;
+    for o in &pa.outputs {
+        let spec = WavSpec {
+            rate: pa.rate.round() as u32,
+            channels: 1,
+            depth: depth_of(args.flags),
+            full_scale: pa.full_scale,
+            dither_seed: 0,
+        };
+        signal::check_fits(&format!("{}-A.wav", o.name), &spec, pa.frames() as u64)
+            .map_err(|e| Failure::bad_input(format!("outputs.{}: {e}", o.name)))?;
+    }
 
     let Compared {
         ra,

@@ -339,6 +339,7 @@ pub fn run() -> Result<(), Failure> {
         } => {
             let p = load(&patch, &sets)?;
             render::check_variants(&patch, &variants)?;
+            render::preflight(&patch, &p, &sets, &variants, &out)?;
             render::render_to(&p, &stem_of(&patch), &out, None)?;
             render::render_variants(&patch, &sets, &variants, &out)
         }

@@ -30,20 +30,7 @@ pub(crate) fn render_to(
         _ => Depth::Pcm24,
     };
     // Check every file name (and the overwrite guard) before spending time on the render.
-    let suffix = variant.map_or(String::new(), |v| format!("-{v}"));
-    let names: Vec<String> = patch
-        .outputs
-        .iter()
-        .map(|o| {
-            let stem = o
-                .file
-                .clone()
-                .map(|f| f.strip_suffix(".wav").map(str::to_string).unwrap_or(f))
-                .unwrap_or_else(|| o.name.clone());
-            format!("{stem}{suffix}.wav")
-        })
-        .collect();
-    let figures_name = format!("figures{suffix}.json");
+    let (names, figures_name) = file_names(patch, variant);
     let spec_of = |o: &railsong::model::Output| WavSpec {
         rate: patch.rate.round() as u32,
         channels: 1,
@@ -162,6 +149,71 @@ pub(crate) fn render_to(
         say!("  {} plot(s) written", figs.len());
     }
     Ok(dir)
+}
+
+/// The WAV file of each output and the figures file of a render (of `variant`).
+fn file_names(patch: &Patch, variant: Option<&str>) -> (Vec<String>, String) {
+    let suffix = variant.map_or(String::new(), |v| format!("-{v}"));
+    let names = patch
+        .outputs
+        .iter()
+        .map(|o| {
+            let stem = o
+                .file
+                .clone()
+                .map(|f| f.strip_suffix(".wav").map(str::to_string).unwrap_or(f))
+                .unwrap_or_else(|| o.name.clone());
+            format!("{stem}{suffix}.wav")
+        })
+        .collect();
+    (names, format!("figures{suffix}.json"))
+}
+
+/// Before the base render: the size limit and the overwrite guard for every file of the
+/// base and of every variant `render` will write, so that a refusal comes before the first
+/// file is written.
+pub(crate) fn preflight(
+    path: &Path,
+    base: &Patch,
+    sets: &[String],
+    chosen: &[String],
+    flags: &RenderFlags,
+) -> Result<(), Failure> {
+    let variants = if chosen.is_empty() {
+        variant_names(path)?
+    } else {
+        chosen.to_vec()
+    };
+    let mut sides: Vec<(Patch, Option<&str>)> = vec![(base.clone(), None)];
+    for v in &variants {
+        let p = railsong::patch::load_variant(path, Some(v), sets).map_err(Failure::bad_input)?;
+        sides.push((p, Some(v.as_str())));
+    }
+    let depth = super::common::depth_of(flags);
+    let mut all = Vec::new();
+    for (p, v) in &sides {
+        check_length(p, flags.long)?;
+        let (names, figures) = file_names(p, *v);
+        for (o, name) in p.outputs.iter().zip(&names) {
+            let spec = WavSpec {
+                rate: p.rate.round() as u32,
+                channels: 1,
+                depth,
+                full_scale: p.full_scale,
+                dither_seed: 0,
+            };
+            signal::check_fits(name, &spec, p.frames() as u64)
+                .map_err(|e| Failure::bad_input(format!("outputs.{}: {e}", o.name)))?;
+        }
+        all.extend(names);
+        all.push(figures);
+    }
+    let dir = flags
+        .out
+        .clone()
+        .unwrap_or_else(|| default_dir(&stem_of(path)));
+    let folder = super::common::open_folder(&dir, flags.force)?;
+    folder.check_all(&all).map_err(signal_error)
 }
 
 /// Check the names given to `render --variant` before anything is rendered.

@@ -142,8 +142,11 @@ fn check_manifest(manifest: &Path) -> Result<(), SignalError> {
     }
 }
 
-/// Folder locks held by this process, by (device, inode) of the folder.
-static LOCKS: Mutex<Vec<((u64, u64), Weak<File>)>> = Mutex::new(Vec::new());
+/// A folder lock held by this process: (device, inode) of the folder, and the lock.
+type HeldLock = ((u64, u64), Weak<File>);
+
+/// Folder locks held by this process.
+static LOCKS: Mutex<Vec<HeldLock>> = Mutex::new(Vec::new());
 
 /// Take (or share, within this process) the exclusive lock on `dir`. `on_busy` is called
 /// once before waiting when another process holds it. Returns the lock and whether this
