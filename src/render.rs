@@ -323,7 +323,9 @@ pub fn render_streaming(
         }
         Ok(())
     };
-    let feeds = feeds_for(patch, &plan, frames)?;
+    // A file that changed while it was being checked is reported as changed, not as the
+    // damage the change caused.
+    let feeds = feeds_for(patch, &plan, frames).map_err(|e| unchanged().err().unwrap_or(e))?;
     let mut eng = Engine::with_feeds(&plan, feeds);
     let chunk = ((patch.rate * 0.25) as usize).max(1);
     let nout = plan.outputs.len();

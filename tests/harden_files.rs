@@ -593,3 +593,40 @@ fn a_part_that_cannot_swing_into_a_tiny_load_renders_inside_its_window() {
         assert!((v - 1.0).abs() < 0.01, "{v}");
     }
 }
+
+#[test]
+fn check_refuses_what_render_would_refuse_in_wav_inputs() {
+    let tmp = tempfile::tempdir().unwrap();
+    let p = file_patch(tmp.path(), "missing.wav", "0.1 s", "");
+    let c = bad(
+        &railsong(&["check", p.to_str().unwrap()]),
+        &["sources.clip.path", "missing.wav"],
+    );
+    let out = tmp.path().join("out");
+    let r = bad(&render(&p, &out, &[]), &["sources.clip.path"]);
+    assert_eq!(c, r, "check and render give the same message");
+}
+
+#[test]
+fn a_foreign_variant_file_is_refused_before_the_base_render_writes() {
+    let tmp = tempfile::tempdir().unwrap();
+    let p = tmp.path().join("v.toml");
+    std::fs::write(
+        &p,
+        format!(
+            "{}\n[variants.hot]\n\"sources.osc.amp\" = \"2 V\"\n",
+            SMALL.replace("AMP", "1 V")
+        ),
+    )
+    .unwrap();
+    let out = tmp.path().join("out");
+    std::fs::create_dir(&out).unwrap();
+    std::fs::write(out.join("out-hot.wav"), b"not railsong's").unwrap();
+    bad(&render(&p, &out, &[]), &["out-hot.wav", "--force"]);
+    assert_eq!(
+        names_in(&out),
+        ["out-hot.wav".to_string()].into_iter().collect()
+    );
+    ok(&render(&p, &out, &["--force"]));
+    assert!(out.join("out.wav").exists() && out.join("figures-hot.json").exists());
+}
