@@ -525,6 +525,20 @@ fn an_input_changed_during_a_render_fails_clearly() {
     let out = tmp.path().join("out");
     let mut child = spawn_render(&p, &out);
     wait_for_temp(&out, &mut child);
+    // Wait until samples reach a temporary: the render is past its start and reading.
+    let t0 = Instant::now();
+    while !std::fs::read_dir(&out).unwrap().any(|e| {
+        let e = e.unwrap();
+        e.file_name().to_string_lossy().contains(".tmp-")
+            && e.metadata().is_ok_and(|m| m.len() > 64 << 10)
+    }) {
+        assert!(
+            child.try_wait().unwrap().is_none(),
+            "the render ended first"
+        );
+        assert!(t0.elapsed() < Duration::from_secs(60), "no samples written");
+        std::thread::sleep(Duration::from_millis(20));
+    }
     // Another program rewrites the input while it plays.
     float_wav(&input, 48_000, 24_000, |_| 0.0);
     let o = child.wait_with_output().unwrap();
