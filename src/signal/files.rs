@@ -151,6 +151,11 @@ static LOCKS: Mutex<Vec<HeldLock>> = Mutex::new(Vec::new());
 /// Take (or share, within this process) the exclusive lock on `dir`. `on_busy` is called
 /// once before waiting when another process holds it. Returns the lock and whether this
 /// call took it (rather than sharing one this process already held).
+///
+/// While another process holds the folder this polls (every 50 ms) rather than blocking in
+/// `flock`: a blocked call would hold the registry, and two threads of this process waiting
+/// for one folder would then wait for each other (each `open` of the folder is a separate
+/// lock to `flock`). Polling lets the second thread share what the first one took.
 fn lock_folder(
     dir: &Path,
     on_busy: &mut dyn FnMut(&Path),
@@ -158,31 +163,46 @@ fn lock_folder(
     let handle = File::open(dir).map_err(io_at(dir))?;
     let meta = handle.metadata().map_err(io_at(dir))?;
     let key = (meta.dev(), meta.ino());
-    let mut locks = LOCKS.lock().unwrap_or_else(|p| p.into_inner());
-    locks.retain(|(_, w)| w.strong_count() > 0);
-    if let Some(held) = locks
-        .iter()
-        .find(|(k, _)| *k == key)
-        .and_then(|(_, w)| w.upgrade())
-    {
-        return Ok((held, false));
-    }
-    match handle.try_lock() {
-        Ok(()) => {}
-        Err(std::fs::TryLockError::WouldBlock) => {
-            on_busy(dir);
-            handle.lock().map_err(io_at(dir))?;
+    let mut announced = false;
+    loop {
+        {
+            let mut locks = LOCKS.lock().unwrap_or_else(|p| p.into_inner());
+            locks.retain(|(_, w)| w.strong_count() > 0);
+            if let Some(held) = locks
+                .iter()
+                .find(|(k, _)| *k == key)
+                .and_then(|(_, w)| w.upgrade())
+            {
+                return Ok((held, false));
+            }
+            match handle.try_lock() {
+                Ok(()) => {
+                    let lock = Arc::new(handle);
+                    locks.push((key, Arc::downgrade(&lock)));
+                    return Ok((lock, true));
+                }
+                Err(std::fs::TryLockError::WouldBlock) => {}
+                Err(std::fs::TryLockError::Error(e)) => return Err(io_at(dir)(e)),
+            }
         }
-        Err(std::fs::TryLockError::Error(e)) => return Err(io_at(dir)(e)),
+        if !announced {
+            on_busy(dir);
+            announced = true;
+        }
+        std::thread::sleep(std::time::Duration::from_millis(50));
     }
-    let lock = Arc::new(handle);
-    locks.push((key, Arc::downgrade(&lock)));
-    Ok((lock, true))
 }
 
-/// Whether `name` is a temporary of [`OutputDir`] (`.NAME.tmp-...`).
+/// Whether `name` is a temporary of [`OutputDir`]: `.NAME.tmp-TAG` where `NAME` is a file
+/// name railsong writes (or the manifest's) and `TAG` hex digits and dashes. Nothing else is
+/// ever removed as stale.
 fn is_temp_name(name: &str) -> bool {
-    name.starts_with('.') && name.contains(".tmp-")
+    let Some((target, tag)) = name.strip_prefix('.').and_then(|n| n.rsplit_once(".tmp-")) else {
+        return false;
+    };
+    !tag.is_empty()
+        && tag.bytes().all(|b| b.is_ascii_hexdigit() || b == b'-')
+        && (check_file_name(target).is_ok() || target == MANIFEST_NAME.trim_start_matches('.'))
 }
 
 /// A unique temporary path in `dir` for writing `name`, created exclusively: the process,
@@ -521,6 +541,27 @@ mod tests {
         fs::write(tmp.path().join("a.json"), "333").unwrap();
         assert!(!again.wrote("a.json"));
         assert!(again.check_writable("a.json").is_err());
+    }
+
+    #[test]
+    fn only_railsong_temporaries_count_as_stale() {
+        for t in [
+            ".out.wav.tmp-12-0",
+            ".figures.json.tmp-4d2-18c2a9f3e1b-7",
+            ".railsong-written.tmp-1-2-3",
+        ] {
+            assert!(is_temp_name(t), "{t}");
+        }
+        for t in [
+            "out.wav.tmp-12-0",
+            ".notes.txt.tmp-1",
+            ".out.wav.tmp-",
+            ".out.wav.tmp-backup",
+            ".my draft.wav.tmp-1",
+            ".x.tmp",
+        ] {
+            assert!(!is_temp_name(t), "{t}");
+        }
     }
 
     #[test]
