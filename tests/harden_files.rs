@@ -342,7 +342,10 @@ fn a_render_no_wav_file_can_hold_is_refused_before_anything_is_written() {
     let out = tmp.path().join("out");
     let t0 = Instant::now();
     let o = render(&p, &out, &["--long"]);
-    bad(&o, &["outputs.out", "out.wav", "4 GiB", "--depth 16"]);
+    bad(
+        &o,
+        &["long.toml", "outputs.out", "out.wav", "4 GiB", "--depth 16"],
+    );
     assert!(!out.exists(), "{:?}", names_in(&out));
     // Refused up front: far from the minutes a 2000 s render takes (a loose bound, not a
     // speed target).

@@ -191,8 +191,10 @@ pub(crate) fn preflight(
     }
     let depth = super::common::depth_of(flags);
     let mut all = Vec::new();
+    let file = path.display();
     for (p, v) in &sides {
-        check_length(p, flags.long)?;
+        check_length(p, flags.long)
+            .map_err(|e| Failure::bad_input(format!("{file}: {}", e.message)))?;
         let (names, figures) = file_names(p, *v);
         for (o, name) in p.outputs.iter().zip(&names) {
             let spec = WavSpec {
@@ -203,7 +205,7 @@ pub(crate) fn preflight(
                 dither_seed: 0,
             };
             signal::check_fits(name, &spec, p.frames() as u64)
-                .map_err(|e| Failure::bad_input(format!("outputs.{}: {e}", o.name)))?;
+                .map_err(|e| Failure::bad_input(format!("{file}: outputs.{}: {e}", o.name)))?;
         }
         all.extend(names);
         all.push(figures);
