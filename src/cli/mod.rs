@@ -339,7 +339,8 @@ pub fn run() -> Result<(), Failure> {
         } => {
             let p = load(&patch, &sets)?;
             render::check_variants(&patch, &variants)?;
-            render::preflight(&patch, &p, &sets, &variants, &out)?;
+            // Held to the end: the folder stays locked for the base and every variant.
+            let _folder = render::preflight(&patch, &p, &sets, &variants, &out)?;
             render::render_to(&p, &stem_of(&patch), &out, None)?;
             render::render_variants(&patch, &sets, &variants, &out)
         }

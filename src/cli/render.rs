@@ -6,7 +6,7 @@ use railsong::analysis::Settings;
 use railsong::measure;
 use railsong::model::Patch;
 use railsong::report;
-use railsong::signal::{self, Depth, WavSpec};
+use railsong::signal::{self, Depth, OutputDir, WavSpec};
 use railsong::units::fmt_eng;
 
 use super::common::{
@@ -171,14 +171,15 @@ fn file_names(patch: &Patch, variant: Option<&str>) -> (Vec<String>, String) {
 
 /// Before the base render: the size limit and the overwrite guard for every file of the
 /// base and of every variant `render` will write, so that a refusal comes before the first
-/// file is written.
+/// file is written. Returns the opened folder: holding it keeps the folder locked for the
+/// whole command, variants included (the later opens in this process share the lock).
 pub(crate) fn preflight(
     path: &Path,
     base: &Patch,
     sets: &[String],
     chosen: &[String],
     flags: &RenderFlags,
-) -> Result<(), Failure> {
+) -> Result<OutputDir, Failure> {
     let variants = if chosen.is_empty() {
         variant_names(path)?
     } else {
@@ -215,7 +216,8 @@ pub(crate) fn preflight(
         .clone()
         .unwrap_or_else(|| default_dir(&stem_of(path)));
     let folder = super::common::open_folder(&dir, flags.force)?;
-    folder.check_all(&all).map_err(signal_error)
+    folder.check_all(&all).map_err(signal_error)?;
+    Ok(folder)
 }
 
 /// Check the names given to `render --variant` before anything is rendered.
