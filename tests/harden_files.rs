@@ -647,3 +647,47 @@ fn a_foreign_variant_file_is_refused_before_the_base_render_writes() {
     ok(&render(&p, &out, &["--force"]));
     assert!(out.join("out.wav").exists() && out.join("figures-hot.json").exists());
 }
+
+#[test]
+fn two_renders_at_once_never_leave_a_mix_of_both_runs() {
+    // Two patches that differ in level (1 V and 2 V in, gain 22k / 10k = 2.2: textbook
+    // inverting gain) render into one folder at the same time, again and again. The lock
+    // runs them one after the other: every file in the folder comes from one run, the last.
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("out");
+    let two = |amp: &str, name: &str| {
+        let p = tmp.path().join(name);
+        std::fs::write(
+            &p,
+            SMALL.replace("AMP", amp).replace("0.1 s", "0.3 s")
+                + "[outputs.direct]\nfrom = \"osc\"\n",
+        )
+        .unwrap();
+        p
+    };
+    let (pa, pb) = (two("1 V", "a.toml"), two("2 V", "b.toml"));
+    // Default full scale: 1.25 x the larger rail (12 V).
+    let wav_peak = |name: &str| -> f64 {
+        let r = hound::WavReader::open(out.join(name)).unwrap();
+        r.into_samples::<i32>()
+            .map(|s| f64::from(s.unwrap()).abs() / 8_388_608.0 * 15.0)
+            .fold(0.0, f64::max)
+    };
+    for _ in 0..6 {
+        let (a, b) = (spawn_render(&pa, &out), spawn_render(&pb, &out));
+        for c in [a, b] {
+            ok(&c.wait_with_output().unwrap());
+        }
+        let fig: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(out.join("figures.json")).unwrap())
+                .unwrap();
+        let level = fig["outputs"]["direct"]["peak_v"].as_f64().unwrap();
+        assert!(
+            (level - 1.0).abs() < 0.05 || (level - 2.0).abs() < 0.05,
+            "{level}"
+        );
+        assert!((wav_peak("direct.wav") - level).abs() < 0.05, "direct.wav");
+        assert!((wav_peak("out.wav") - 2.2 * level).abs() < 0.1, "out.wav");
+        assert!(temps_in(&out).is_empty());
+    }
+}
