@@ -182,6 +182,16 @@ fn lock_folder(
                     return Ok((lock, true));
                 }
                 Err(std::fs::TryLockError::WouldBlock) => {}
+                // A file system without locks (some network mounts): write unlocked, as
+                // before locks existed, and leave temporaries alone (they may be live).
+                Err(std::fs::TryLockError::Error(e))
+                    if e.kind() == std::io::ErrorKind::Unsupported
+                        || e.raw_os_error() == Some(libc::ENOLCK) =>
+                {
+                    let lock = Arc::new(handle);
+                    locks.push((key, Arc::downgrade(&lock)));
+                    return Ok((lock, false));
+                }
                 Err(std::fs::TryLockError::Error(e)) => return Err(io_at(dir)(e)),
             }
         }
