@@ -691,3 +691,21 @@ fn two_renders_at_once_never_leave_a_mix_of_both_runs() {
         assert!(temps_in(&out).is_empty());
     }
 }
+
+#[test]
+fn long_patches_cost_no_more_work_than_the_command_needs() {
+    let tmp = tempfile::tempdir().unwrap();
+    let p = tmp.path().join("hour.toml");
+    std::fs::write(&p, SMALL.replace("AMP", "1 V").replace("0.1 s", "3600 s")).unwrap();
+    // noise: the simulated figure comes from an idle render capped at 10 s (the figure is
+    // taken from the kept tail), not from an hour of audio.
+    let o = railsong(&["noise", p.to_str().unwrap()]);
+    ok(&o);
+    let text = String::from_utf8_lossy(&o.stdout).to_string();
+    assert!(text.contains("from a 10 s idle render"), "{text}");
+    // tolerance renders the whole patch for every run: the 10-minute limit holds there too.
+    bad(
+        &railsong(&["tolerance", p.to_str().unwrap(), "--runs", "2"]),
+        &["patch.length", "--long"],
+    );
+}

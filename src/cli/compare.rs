@@ -125,6 +125,8 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         .map_err(|e| Failure::bad_input(format!("--segment {}: {e}", args.segment)))?;
     // Refuse early, before rendering, when the folder holds files railsong did not write.
     let pa = load_side(args.patch, args.a, args.sets)?;
+    // Both sides are held in memory whole: the length limit holds here as in render.
+    super::common::check_length(&pa, args.flags.long)?;
     let dir = args.flags.out.clone().unwrap_or_else(|| {
         default_dir(&format!("{}-{}-vs-{}", stem_of(args.patch), args.a, args.b))
     });

@@ -9,6 +9,10 @@ use railsong::units::fmt_eng;
 use super::common::{failure_io, stream_patch};
 use super::{load, Failure};
 
+/// Longest idle render behind the simulated noise figure, s (the figure is taken from the
+/// last `render::TAIL_MAX` samples: 5.46 s at 48 kHz).
+const NOISE_SIM_MAX_S: f64 = 10.0;
+
 pub(crate) fn cmd_noise(
     path: &Path,
     sets: &[String],
@@ -44,7 +48,9 @@ pub(crate) fn cmd_noise(
     // The simulated counterpart: the idle render (sources muted) with circuit noise on.
     let mut idle = render::muted(&patch);
     idle.noise = true;
-    idle.length = idle.length.max(2.0);
+    // Long enough for the figure (measured on the kept tail, at most render::TAIL_MAX
+    // samples), never longer: a 3600 s patch must not cost an hour of idle render here.
+    idle.length = idle.length.clamp(2.0, NOISE_SIM_MAX_S);
     let sim = stream_patch(&idle, false, false, &mut |_, _| Ok(()))?;
     for b in picked {
         say!();

@@ -81,6 +81,8 @@ pub(crate) fn fmt_spread(s: &Option<Spread>, scale: f64, digits: usize) -> Strin
 /// `railsong tolerance`.
 pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
     let patch = load(args.patch, args.sets)?;
+    // Every run renders the whole patch: the length limit holds here as in render.
+    super::common::check_length(&patch, args.flags.long)?;
     let tol = tolerances(args, &patch)?;
     let seed = args.seed.unwrap_or(patch.seed);
     if let Some(i) = args.render_run {
