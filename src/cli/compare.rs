@@ -43,6 +43,8 @@ pub(crate) struct Compared {
     pub ma: Measurement,
     /// Patch B.
     pub pb: Patch,
+    /// Figures of B.
+    pub mb: Measurement,
     /// One comparison per output.
     pub results: Vec<OutputComparison>,
     /// How B was matched.
@@ -114,6 +116,7 @@ pub(crate) fn compare_sides(
         ra,
         ma,
         pb,
+        mb,
         results,
         matching,
         layout,
@@ -127,6 +130,7 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     let pa = load_side(args.patch, args.a, args.sets)?;
     // Both sides are held in memory whole: the length limit holds here as in render.
     super::common::check_length(&pa, args.flags.long)?;
+    let fade = args.flags.edge_fade(pa.frames(), pa.rate)?;
     let dir = args.flags.out.clone().unwrap_or_else(|| {
         default_dir(&format!("{}-{}-vs-{}", stem_of(args.patch), args.a, args.b))
     });
@@ -178,11 +182,14 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     // The plots first, so that their names are checked before any file is written.
     let mut plots = Vec::new();
     if args.flags.plots {
-        for (side, p) in [("A", &pa), ("B", &pb)] {
-            for f in railsong::report::plots(p, None).map_err(render_error)? {
-                let name = format!("{}-{side}-{}.svg", f.output, f.kind);
-                folder.check_writable(&name).map_err(signal_error)?;
-                plots.push((name, f.svg));
+        for (side, p, label) in [("A", &pa, args.a), ("B", &pb, args.b)] {
+            for f in
+                railsong::report::side_plots(p, None, Some((side, label))).map_err(render_error)?
+            {
+                folder
+                    .check_writable(&f.file_name())
+                    .map_err(signal_error)?;
+                plots.push(f);
             }
         }
     }
@@ -207,13 +214,10 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             (&fab, &c.alternating),
             (&fd, &c.difference),
         ] {
-            if g == 1.0 {
-                folder.write(name, spec, data)
-            } else {
-                let s: Vec<f64> = data.iter().map(|x| x * g).collect();
-                folder.write(name, spec, &s)
-            }
-            .map_err(signal_error)?;
+            // faded at the edges (the comparison's figures come from the unfaded renders)
+            let mut s: Vec<f64> = data.iter().map(|x| x * g).collect();
+            fade.apply(0, &mut s);
+            folder.write(name, spec, &s).map_err(signal_error)?;
         }
         results.push(c);
     }
@@ -228,8 +232,10 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     folder
         .write_text("compare.json", &text)
         .map_err(signal_error)?;
-    for (name, svg) in &plots {
-        folder.write_text(name, svg).map_err(signal_error)?;
+    for f in &plots {
+        folder
+            .write_text(&f.file_name(), &f.svg)
+            .map_err(signal_error)?;
     }
     if args.json {
         say!("{text}");
@@ -261,10 +267,12 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             None => say!("  difference (A minus matched B) is silent: the two are identical"),
         }
         say!(
-            "  {}-AB.wav alternates in {} segments with {} equal-power crossfades:",
+            "  {}-AB.wav alternates in {} segments with {} crossfades for sides of correlation \
+             {:.3} (1: equal gain, 0: equal power):",
             c.output,
             fmt_eng(seg, "s"),
-            fmt_eng(FADE_S, "s")
+            fmt_eng(FADE_S, "s"),
+            c.crossfade_correlation
         );
         let key: Vec<String> = c
             .segments
