@@ -314,6 +314,15 @@ pub fn check(patch: &Patch) -> Report {
                 gains.push(ratio);
                 ("attenuator", span_of(*from, &spans).gain(ratio, 0.0))
             }
+            StageKind::Network(_) => (
+                "network",
+                Span {
+                    lo: neg,
+                    hi: pos,
+                    dc: 0.0,
+                    slope: 0.0,
+                },
+            ),
         };
 
         let mut out_span = span;
@@ -486,6 +495,17 @@ pub fn static_loads(patch: &Patch) -> Vec<Option<f64>> {
                 }
             }
             StageKind::Follower { .. } => {}
+            StageKind::Network(net) => {
+                for p in &net.parts {
+                    if let crate::model::NetPartKind::R(r) = p.kind {
+                        for e in p.ends {
+                            if let crate::model::NetNode::Ext(Node::Stage(j)) = e {
+                                g[j] += 1.0 / r;
+                            }
+                        }
+                    }
+                }
+            }
         }
     }
     for out in &patch.outputs {
@@ -532,6 +552,7 @@ mod tests {
             start: 0.0,
             stop: None,
             envelope: None,
+            r: 0.0,
         }
     }
 

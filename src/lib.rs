@@ -12,6 +12,7 @@
 
 pub mod analysis;
 pub mod check;
+pub mod circuit;
 pub mod engine;
 pub mod measure;
 pub mod model;

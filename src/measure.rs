@@ -8,7 +8,7 @@ use serde::Serialize;
 
 use crate::analysis::{self, MeasureContext, OutputFigures, Settings, SwingLimits, TestSignal};
 use crate::engine::{Run, StageEvents};
-use crate::model::{Node, Patch, StageKind, Wave};
+use crate::model::{Node, Patch, Wave};
 
 /// Event durations of one stage, seconds (the JSON `events` entry).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
@@ -138,12 +138,7 @@ pub fn upstream(patch: &Patch, node: Node) -> Vec<usize> {
             continue;
         }
         mark[i] = true;
-        match &patch.stages[i].kind {
-            StageKind::InvertingSum { inputs, .. } => todo.extend(inputs.iter().map(|x| x.from)),
-            StageKind::NonInverting { from, .. }
-            | StageKind::Follower { from }
-            | StageKind::Attenuator { from, .. } => todo.push(*from),
-        }
+        todo.extend(patch.stages[i].kind.reads());
     }
     (0..patch.stages.len()).filter(|i| mark[*i]).collect()
 }
@@ -160,12 +155,11 @@ pub fn upstream_sources(patch: &Patch, node: Node) -> Vec<usize> {
     };
     visit(node);
     for i in upstream(patch, node) {
-        match &patch.stages[i].kind {
-            StageKind::InvertingSum { inputs, .. } => inputs.iter().for_each(|x| visit(x.from)),
-            StageKind::NonInverting { from, .. }
-            | StageKind::Follower { from }
-            | StageKind::Attenuator { from, .. } => visit(*from),
-        }
+        patch.stages[i]
+            .kind
+            .reads()
+            .into_iter()
+            .for_each(&mut visit);
     }
     out.sort();
     out

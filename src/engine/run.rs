@@ -2,9 +2,10 @@
 
 use super::feed::{SourceFeed, ToneFeed};
 use super::halfband::Decimator;
+use super::network::{net_block, NetRun};
 use super::noise::NoiseStream;
-use super::plan::{Plan, StagePlan, FAST_VD};
-use super::StageEvents;
+use super::plan::{Plan, StagePlan, StageStep, FAST_VD};
+use super::{EngineError, StageEvents};
 
 /// Per-stage running state.
 #[derive(Debug, Clone)]
@@ -79,6 +80,12 @@ pub struct Engine {
     fast: bool,
     fast_blocks: u64,
     full_blocks: u64,
+    /// Running state of every network stage.
+    nets: Vec<NetRun>,
+    /// Internal samples processed since the start (for the time of a failed step).
+    steps: u64,
+    /// The first failure of a network step.
+    failure: Option<EngineError>,
 }
 
 impl std::fmt::Debug for Engine {
@@ -157,7 +164,7 @@ impl Engine {
                 None => all.push(Box::new(ToneFeed::new(s, plan.internal_rate, plan.preroll))),
             }
         }
-        let nb = plan.sources.len() + plan.stages.len();
+        let nb = plan.buffers;
         let b = plan.block;
         let hist = plan.history;
         let bufs = vec![vec![0.0; hist + b]; nb];
@@ -219,6 +226,9 @@ impl Engine {
             fast: true,
             fast_blocks: 0,
             full_blocks: 0,
+            nets: plan.networks.iter().map(|n| NetRun::new(n, b)).collect(),
+            steps: 0,
+            failure: None,
             plan,
         };
         e.reset();
@@ -238,6 +248,12 @@ impl Engine {
     /// Number of (stage, block) pairs run by the fast path and by the full model.
     pub fn path_counts(&self) -> (u64, u64) {
         (self.fast_blocks, self.full_blocks)
+    }
+
+    /// The first step of a network stage that failed (the render after it holds the last
+    /// value), if any.
+    pub fn failure(&self) -> Option<&EngineError> {
+        self.failure.as_ref()
     }
 
     /// Back to the start: reproduces a render bit for bit. Does not allocate.
@@ -263,6 +279,15 @@ impl Engine {
             st.cm = 0;
             st.rev = 0;
         }
+        for (np, nr) in self.plan.networks.iter().zip(self.nets.iter_mut()) {
+            nr.reset(np);
+            self.bufs[np.node][..hist].fill(np.rest_out);
+            for &(n, b) in &np.exports {
+                self.bufs[b][..hist].fill(np.rest.vn[n]);
+            }
+        }
+        self.steps = 0;
+        self.failure = None;
         for (d, o) in self.decims.iter_mut().zip(&self.plan.outputs) {
             d.reset(o.rest);
         }
@@ -281,10 +306,12 @@ impl Engine {
         self.full_blocks = 0;
     }
 
-    /// Event durations per op-amp stage so far, seconds.
+    /// Event durations per op-amp stage (and per op-amp of every network, by its name) so
+    /// far, seconds.
     pub fn events(&self) -> Vec<StageEvents> {
         let h = 1.0 / self.plan.internal_rate;
-        self.plan
+        let mut v: Vec<StageEvents> = self
+            .plan
             .stages
             .iter()
             .zip(&self.states)
@@ -295,7 +322,19 @@ impl Engine {
                 cm_out_s: st.cm as f64 * h,
                 reversed_s: st.rev as f64 * h,
             })
-            .collect()
+            .collect();
+        for (np, nr) in self.plan.networks.iter().zip(&self.nets) {
+            for (a, ev) in np.circuit.circuit.amps.iter().zip(&nr.state.events) {
+                v.push(StageEvents {
+                    stage: a.name.clone(),
+                    clip_s: ev.clip as f64 * h,
+                    slew_s: ev.slew as f64 * h,
+                    cm_out_s: ev.cm as f64 * h,
+                    reversed_s: ev.rev as f64 * h,
+                });
+            }
+        }
+        v
     }
 
     /// Fill the next base-rate frames of every output. All slices should have the same
@@ -354,7 +393,45 @@ impl Engine {
                 s.fill(nb);
             }
         }
-        for si in 0..self.plan.stages.len() {
+        let h = 1.0 / self.plan.internal_rate;
+        let t0 = (self.steps as f64 - self.plan.preroll as f64) * h;
+        for step in 0..self.plan.order.len() {
+            let si = match self.plan.order[step] {
+                StageStep::Op(si) => si,
+                StageStep::Net(ni) => {
+                    let np = &self.plan.networks[ni];
+                    let mut own = std::mem::take(&mut self.bufs[np.node]);
+                    let nr = &mut self.nets[ni];
+                    let r = net_block(
+                        np,
+                        nr,
+                        &self.bufs,
+                        hist,
+                        &mut own[hist..hist + b],
+                        self.fast,
+                        self.plan.antialias,
+                        t0,
+                        h,
+                    );
+                    self.bufs[np.node] = own;
+                    for (k, &(_, eb)) in np.exports.iter().enumerate() {
+                        let dst = &mut self.bufs[eb][hist..hist + b];
+                        for (o, &x) in dst.iter_mut().zip(&nr.ex_vals[k]) {
+                            *o = nr.ex_prev[k];
+                            nr.ex_prev[k] = x;
+                        }
+                    }
+                    if let Err(e) = r {
+                        if self.failure.is_none() {
+                            self.failure = Some(EngineError::Circuit {
+                                stage: np.name.clone(),
+                                message: e.to_string(),
+                            });
+                        }
+                    }
+                    continue;
+                }
+            };
             let sp = &self.plan.stages[si];
             let noise = self.stage_noise[si]
                 .as_ref()
@@ -416,9 +493,11 @@ impl Engine {
                 self.decims[o].process_scaled(src, op.gain, &mut self.out_base[o][..b / kf]);
             }
         }
-        for buf in self.bufs.iter_mut().take(ns + self.plan.stages.len()) {
+        for buf in self.bufs.iter_mut() {
             buf.copy_within(b..b + hist, 0);
         }
+        self.steps += b as u64;
+        let _ = ns;
         self.avail = b / kf;
         self.pos = self.skip.min(self.avail);
         self.skip -= self.pos;
