@@ -677,7 +677,7 @@ mod tests {
     }
 
     // Full-power bandwidth f = SR / (2 pi Vp) (textbook): 10 V peak at 1 kHz needs 62.8 mV/us,
-    // far below 0.5 V/us; at 10 kHz with gain 10 it needs 6.3 V/us.
+    // far below 0.35 V/us; at 10 kHz with gain 10 it needs 6.3 V/us.
     #[test]
     fn slew_warning_follows_full_power_bandwidth() {
         let mut s = sine("a", 1.0);

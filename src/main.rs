@@ -2,7 +2,6 @@
 //! Everything of substance lives in the library; this file only wires it to the terminal.
 
 mod cli;
-mod cli_study;
 
 use std::process::ExitCode;
 

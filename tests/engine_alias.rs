@@ -46,7 +46,7 @@ fn naive_clip_matches_the_known_figures() {
 }
 
 // Targets (railsong design): below -80 dBc at the default K = 4 with a built-in profile, and
-// below -75 dBc with an ideal hard clip at K = 16. Measured: about -88.7 dBc (jfet-general,
+// below -75 dBc with an ideal hard clip at K = 16. Measured: about -88.6 dBc (jfet-general,
 // K = 4), -88.3 dBc (ideal, K = 4), -127.7 dBc (ideal, K = 16); asserted with margin.
 #[test]
 fn band_limited_clip_meets_the_targets() {

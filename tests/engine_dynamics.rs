@@ -106,8 +106,10 @@ fn phase_reversal_below_the_input_range() {
     };
     let (y, ev) = run_dc(-7.9);
     let last = y[y.len() - 1];
-    // follower gain 1 with the profile's 3 mV offset at V+ [S: profile figure]
-    assert!((last - (-7.9 + 3e-3)).abs() < 1e-3, "{last}");
+    // follower gain 1 with the profile's offset at V+ (textbook follower; offset from the
+    // profile)
+    let vos = part("jfet-general").vos;
+    assert!((last - (-7.9 + vos)).abs() < 1e-3, "{last}");
     assert_eq!(ev.reversed_s, 0.0);
     let (y, ev) = run_dc(-8.1);
     let last = y[y.len() - 1];
@@ -116,7 +118,8 @@ fn phase_reversal_below_the_input_range() {
 }
 
 // An input past the range of a part without reversal clips at the range edge: a follower
-// with the bipolar profile (range 2 V inside each rail) at -11 V input stays at about -10 V.
+// with the bipolar profile (range `cm_low` inside the negative rail) at -11 V input stays at
+// the range edge plus the profile's offset.
 #[test]
 fn input_range_clips_without_reversal() {
     let mut b = Pb::new(48_000.0, 4, 0.01);
@@ -125,11 +128,14 @@ fn input_range_clips_without_reversal() {
     b.out("out", f, 0.0, None);
     let r = run(&b.p, &RunOptions::default()).unwrap();
     let last = *r.outputs[0].samples.last().unwrap();
-    assert!((last - (-10.0 + 0.5e-3)).abs() < 1e-3, "{last}");
+    let p = part("bipolar-lownoise");
+    let edge = -12.0 + p.cm_low.unwrap();
+    assert!((last - (edge + p.vos)).abs() < 1e-3, "{last}");
     assert!(r.events[0].cm_out_s > 0.009);
 }
 
-// Output current limit [S: Ohm's law]: 25 mA into a 100 ohm load limits the swing to 2.5 V.
+// Output current limit [S: Ohm's law]: the profile's Isc into a 100 ohm load limits the
+// swing to Isc * 100 ohm.
 #[test]
 fn current_limit_shrinks_the_swing() {
     let mut b = Pb::new(48_000.0, 4, 0.02);
@@ -137,10 +143,14 @@ fn current_limit_shrinks_the_swing() {
     let f = b.follower("buf", &part("jfet-general"), s);
     b.out("out", f, 0.0, Some(100.0));
     let plan = compile(&b.p).unwrap();
-    assert!((plan.stages[0].shaper.hi - 25e-3 / (1.0 / 100.0)).abs() < 1e-12);
+    let limit = part("jfet-general").isc.unwrap() * 100.0;
+    assert!((plan.stages[0].shaper.hi - limit).abs() < 1e-12);
     let y = render(&b.p).remove(0);
     let mx = y.iter().cloned().fold(f64::MIN, f64::max);
-    assert!(mx < 2.5 * 1.05 && mx > 2.3, "{mx}");
+    assert!(
+        mx < limit * 1.05 && mx > limit * 0.92,
+        "{mx} against {limit}"
+    );
 }
 
 fn random_patch(

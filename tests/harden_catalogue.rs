@@ -6,8 +6,8 @@
 //! empty.
 //!
 //! WAV layout (RIFF chunks, the `fmt ` fields, format tags 1 = PCM, 2 = ADPCM, 3 = IEEE
-//! float, 0xFFFE = extensible): the Microsoft/IBM Multimedia Programming Interface and Data
-//! Specifications 1.0 (1991), and RFC 2361 for the format tags.
+//! float, 0xFFFE = extensible): the *Multimedia Programming Interface and Data
+//! Specifications* 1.0 (1991), and RFC 2361 for the format tags.
 
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};

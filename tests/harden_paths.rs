@@ -2,8 +2,8 @@
 //! (`[A-Za-z0-9_-]`), nothing is written outside the chosen folder, WAV inputs are only read,
 //! and two renders into one folder at once both finish with complete files.
 //!
-//! WAV header fields checked below: Microsoft/IBM Multimedia Programming Interface and Data
-//! Specifications 1.0 (1991), RIFF WAVE chunk layout.
+//! WAV header fields checked below: *Multimedia Programming Interface and Data
+//! Specifications* 1.0 (1991), RIFF WAVE chunk layout.
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};

@@ -58,7 +58,7 @@ const PIECES: &[&str] = &[
     "file = \"../x\"\n",
     "[parts.a]\n",
     "based_on = \"a\"\n",
-    "slew = \"13 V/us\"\n",
+    "slew = \"10 V/us\"\n",
     "[variants.v]\n",
     "\"stages.a.r_in\" = \"1k\"\n",
     "= \n",

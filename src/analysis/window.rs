@@ -15,7 +15,7 @@
 //! | [`Window::Rectangular`] | 1 | -13 dB | (none: `a0 = 1`) |
 //! | [`Window::BlackmanHarris4`] | 4 | about -92 dB | F. J. Harris, "On the use of windows for harmonic analysis with the discrete Fourier transform", Proc. IEEE 66(1), 1978 (minimum 4-term) |
 //! | [`Window::BlackmanHarris7`] | 7 | about -180 dB | minimum-sidelobe 7-term cosine sum as tabulated by H.-H. Albrecht, "A family of cosine-sum windows for high-resolution measurements", IEEE ICASSP 2001; the same window is recommended for SNR/THD work by O. M. Solomon Jr., IEEE Trans. Instrum. Meas. 43(2), 1994 |
-//! | [`Window::FlatTop`] | 5 | about -90 dB | G. D'Antona and A. Ferrero, *Digital Signal Processing for Measurement Systems*, Springer 2006 (5-term flat-top for amplitude accuracy) |
+//! | [`Window::FlatTop`] | 5 | about -90 dB | G. D'Antona and A. Ferrero, *Digital Signal Processing for Measurement Systems*, 2006 (5-term flat-top for amplitude accuracy) |
 
 use serde::{Deserialize, Serialize};
 

@@ -80,13 +80,13 @@
 //! |---|---|---|---|
 //! | 1 | -50.0 dBc | -50.0 dBc | -30.7 dBc |
 //! | 2 | -72.9 dBc | -73.0 dBc | -40.7 dBc |
-//! | 4 | -88.3 dBc | -88.7 dBc | -53.8 dBc |
-//! | 8 | -109.4 dBc | -111.1 dBc | -65.5 dBc |
-//! | 16 | -127.7 dBc | -136.5 dBc | -78.0 dBc |
+//! | 4 | -88.3 dBc | -88.6 dBc | -53.8 dBc |
+//! | 8 | -109.4 dBc | -110.5 dBc | -65.5 dBc |
+//! | 16 | -127.7 dBc | -134.7 dBc | -78.0 dBc |
 //!
-//! A part that *slews* on the probe (single-supply: 0.5 V/us against the probe's 0.74 V/us)
-//! aliases through its slew corners, which the clipper does not treat: -41 dBc at K = 4,
-//! -58 dBc at K = 16.
+//! A part that *slews* on the probe (single-supply: 0.35 V/us against the probe's 0.74 V/us)
+//! aliases through its slew corners, which the clipper does not treat: -31 dBc at K = 4,
+//! -46 dBc at K = 16.
 //!
 //! # Fast path
 //! Each stage first runs a block as the linear recursion and checks it: |Vd| below

@@ -87,63 +87,63 @@ pub fn builtin(name: &str) -> Option<OpAmp> {
             name: name.into(),
             about: "JFET-input general purpose; input range stops ~4 V above V-, phase reversal"
                 .into(),
-            gbw: 3e6,
-            slew: 13e6,
-            a0: Some(2e5),
-            drop_pos: 1.5,
-            drop_neg: 1.5,
+            gbw: 4.5e6,
+            slew: 9e6,
+            a0: Some(1.3e5),
+            drop_pos: 1.8,
+            drop_neg: 1.8,
             knee: 0.3,
             // common practice: about 4 V above the negative rail for JFET-input parts
             cm_low: Some(4.0),
-            cm_high: Some(0.5),
+            cm_high: Some(0.3),
             reversal: true,
-            vos: 3e-3,
-            ib: 30e-12,
-            en: 18e-9,
-            en_corner: 100.0,
-            inoise: 0.01e-12,
-            isc: Some(25e-3),
-            supply_max: 36.0,
+            vos: 2e-3,
+            ib: 60e-12,
+            en: 24e-9,
+            en_corner: 250.0,
+            inoise: 0.015e-12,
+            isc: Some(18e-3),
+            supply_max: 40.0,
         },
         "bipolar-lownoise" => OpAmp {
             name: name.into(),
             about: "bipolar low-noise audio part: quiet, fast, higher bias current".into(),
-            gbw: 10e6,
-            slew: 7e6,
-            a0: Some(1e6),
-            drop_pos: 1.3,
-            drop_neg: 1.3,
+            gbw: 15e6,
+            slew: 10e6,
+            a0: Some(4e5),
+            drop_pos: 1.6,
+            drop_neg: 1.6,
             knee: 0.3,
-            cm_low: Some(2.0),
-            cm_high: Some(2.0),
+            cm_low: Some(2.2),
+            cm_high: Some(2.2),
             reversal: false,
-            vos: 0.5e-3,
-            ib: 200e-9,
-            en: 4.5e-9,
-            en_corner: 10.0,
-            inoise: 0.7e-12,
-            isc: Some(35e-3),
-            supply_max: 36.0,
+            vos: 0.3e-3,
+            ib: 400e-9,
+            en: 3.2e-9,
+            en_corner: 6.0,
+            inoise: 1.1e-12,
+            isc: Some(45e-3),
+            supply_max: 44.0,
         },
         "single-supply" => OpAmp {
             name: name.into(),
             about: "slow single-supply part: input range and output reach the negative rail".into(),
-            gbw: 1e6,
-            slew: 0.5e6,
-            a0: Some(1e5),
-            drop_pos: 1.5,
+            gbw: 0.7e6,
+            slew: 0.35e6,
+            a0: Some(6e4),
+            drop_pos: 1.2,
             drop_neg: 0.02,
             knee: 0.2,
             cm_low: Some(-0.3),
-            cm_high: Some(1.5),
+            cm_high: Some(1.2),
             reversal: false,
-            vos: 2e-3,
-            ib: 20e-9,
-            en: 40e-9,
-            en_corner: 200.0,
-            inoise: 0.1e-12,
-            isc: Some(20e-3),
-            supply_max: 32.0,
+            vos: 3e-3,
+            ib: 50e-9,
+            en: 30e-9,
+            en_corner: 300.0,
+            inoise: 0.15e-12,
+            isc: Some(15e-3),
+            supply_max: 25.0,
         },
         "rail-to-rail-cmos" => OpAmp {
             name: name.into(),
@@ -183,5 +183,59 @@ mod tests {
             assert!(p.drop_pos >= 0.0 && p.drop_neg >= 0.0 && p.knee >= 0.0);
         }
         assert!(builtin("no-such-part").is_none());
+    }
+
+    /// `lo <= x <= hi`, with the figure named in the failure.
+    fn within(name: &str, what: &str, x: f64, lo: f64, hi: f64) {
+        assert!(
+            (lo..=hi).contains(&x),
+            "{name}: {what} = {x:e} outside its class range {lo:e} ..= {hi:e}"
+        );
+    }
+
+    // Class ranges, from memory of general-purpose op-amp families (common practice; no one
+    // product): the built-in figures must stay typical of their class while the exact values
+    // stay our own.
+    #[test]
+    fn every_builtin_profile_stays_inside_its_class() {
+        let j = builtin("jfet-general").unwrap();
+        within("jfet-general", "gbw", j.gbw, 2e6, 8e6);
+        within("jfet-general", "slew", j.slew, 5e6, 25e6);
+        within("jfet-general", "en", j.en, 10e-9, 40e-9);
+        within("jfet-general", "ib", j.ib, 1e-12, 1e-9);
+        // common practice: the input range stops about 4 V above V-, and the output
+        // reverses phase beyond it
+        within("jfet-general", "cm_low", j.cm_low.unwrap(), 3.0, 5.0);
+        assert!(j.reversal);
+
+        let b = builtin("bipolar-lownoise").unwrap();
+        within("bipolar-lownoise", "gbw", b.gbw, 5e6, 50e6);
+        within("bipolar-lownoise", "slew", b.slew, 3e6, 20e6);
+        within("bipolar-lownoise", "en", b.en, 1e-9, 6e-9);
+        within("bipolar-lownoise", "ib", b.ib, 10e-9, 2e-6);
+        within("bipolar-lownoise", "in", b.inoise, 0.3e-12, 3e-12);
+        assert!(!b.reversal);
+
+        let s = builtin("single-supply").unwrap();
+        within("single-supply", "gbw", s.gbw, 0.3e6, 2e6);
+        within("single-supply", "slew", s.slew, 0.1e6, 1e6);
+        // the class: input range includes V-, output reaches (nearly) V-
+        within("single-supply", "cm_low", s.cm_low.unwrap(), -0.5, 0.0);
+        within("single-supply", "drop_neg", s.drop_neg, 0.0, 0.1);
+
+        let c = builtin("rail-to-rail-cmos").unwrap();
+        within("rail-to-rail-cmos", "drop_pos", c.drop_pos, 0.0, 0.1);
+        within("rail-to-rail-cmos", "drop_neg", c.drop_neg, 0.0, 0.1);
+        within("rail-to-rail-cmos", "cm_low", c.cm_low.unwrap(), -0.5, 0.0);
+        within(
+            "rail-to-rail-cmos",
+            "cm_high",
+            c.cm_high.unwrap(),
+            -0.5,
+            0.0,
+        );
+        // the class: a low maximum supply
+        within("rail-to-rail-cmos", "supply_max", c.supply_max, 4.0, 7.0);
+        within("rail-to-rail-cmos", "ib", c.ib, 0.0, 10e-12);
     }
 }

@@ -1,8 +1,8 @@
 //! WAV output: calibrated, dithered (16-bit), clipped-and-counted, streaming, to any
 //! `Write + Seek`.
 //!
-//! Layout (RIFF/WAVE as in the Microsoft/IBM Multimedia Programming Interface and Data
-//! Specifications 1.0, 1991): `RIFF` size `WAVE`, a `fmt ` chunk, for float a `fact` chunk,
+//! Layout (RIFF/WAVE as in the *Multimedia Programming Interface and Data
+//! Specifications* 1.0, 1991): `RIFF` size `WAVE`, a `fmt ` chunk, for float a `fact` chunk,
 //! then `data`. PCM uses format tag 1 (WAVE_FORMAT_PCM, 16-byte `fmt `) at every depth and
 //! channel count, the form most readers accept; float uses tag 3 (WAVE_FORMAT_IEEE_FLOAT,
 //! 18-byte `fmt ` with `cbSize = 0`, plus `fact`). Sizes are written as placeholders and

@@ -1,0 +1,70 @@
+//! `railsong check`: validate a patch and print its static warnings.
+
+use std::path::Path;
+
+use railsong::check::{self, WarningKind};
+use railsong::units::fmt_eng;
+
+use super::{load, Failure};
+
+pub(crate) fn cmd_check(path: &Path, sets: &[String]) -> Result<(), Failure> {
+    let patch = load(path, sets)?;
+    let report = check::check(&patch);
+    println!("{} ({})", patch.title, path.display());
+    println!(
+        "  rails {} / {}, {} x{}, {} long, {} source(s), {} stage(s), {} output(s)",
+        fmt_eng(patch.rails.pos, "V"),
+        fmt_eng(patch.rails.neg, "V"),
+        fmt_eng(patch.rate, "Hz"),
+        patch.oversample,
+        fmt_eng(patch.length, "s"),
+        patch.sources.len(),
+        patch.stages.len(),
+        patch.outputs.len()
+    );
+    println!();
+    println!("  stage                 type            part               gain      NG     bandwidth  worst-case span        swing");
+    for s in &report.stages {
+        let gain = match s.gains.as_slice() {
+            [g] => format!("{g:+.3}"),
+            gs => format!("{:+.3}x{}", gs[0], gs.len()),
+        };
+        println!(
+            "  {:<21} {:<15} {:<18} {:<9} {:<6} {:<10} {:<22} {}",
+            s.name,
+            s.kind,
+            s.part.as_deref().unwrap_or("-"),
+            gain,
+            s.noise_gain.map_or("-".into(), |g| format!("{g:.2}")),
+            s.bandwidth.map_or("-".into(), |b| fmt_eng(b, "Hz")),
+            format!("{} .. {}", fmt_eng(s.span.lo, "V"), fmt_eng(s.span.hi, "V")),
+            s.swing.map_or("-".into(), |(lo, hi)| format!(
+                "{} .. {}",
+                fmt_eng(lo, "V"),
+                fmt_eng(hi, "V")
+            )),
+        );
+    }
+    println!();
+    if report.warnings.is_empty() {
+        println!("  no warnings");
+    } else {
+        println!("  {} warning(s):", report.warnings.len());
+        for w in &report.warnings {
+            println!("  [{}] {}: {}", tag(w.kind), w.key, w.message);
+        }
+    }
+    Ok(())
+}
+
+pub(crate) fn tag(kind: WarningKind) -> &'static str {
+    match kind {
+        WarningKind::Clipping => "clip",
+        WarningKind::CommonMode => "input range",
+        WarningKind::Supply => "supply",
+        WarningKind::Current => "current",
+        WarningKind::NonStandard => "value",
+        WarningKind::Bandwidth => "bandwidth",
+        WarningKind::Slew => "slew",
+    }
+}

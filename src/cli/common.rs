@@ -1,0 +1,267 @@
+//! Helpers shared by the commands: error mapping, folders, progress, render and measure steps.
+
+use std::path::{Path, PathBuf};
+
+use railsong::analysis::{Harmonics, Settings, Weighting};
+use railsong::engine::Run;
+use railsong::measure;
+use railsong::model::Patch;
+use railsong::render::{self, RenderError, RenderOptions};
+use railsong::signal::{Depth, SignalError};
+use railsong::study::StudyError;
+use railsong::units::fmt_eng;
+
+use super::{load, Failure, RenderFlags, EXIT_FAILURE};
+
+pub(crate) fn failure_io(e: impl std::fmt::Display) -> Failure {
+    Failure {
+        code: EXIT_FAILURE,
+        message: e.to_string(),
+    }
+}
+
+pub(crate) fn render_error(e: RenderError) -> Failure {
+    match e {
+        // Writing failed (disk full, permissions): not the user's input.
+        RenderError::Signal(s) => signal_error(s),
+        // The patch or an input file: bad input.
+        other => Failure::bad_input(other),
+    }
+}
+
+pub(crate) fn signal_error(e: SignalError) -> Failure {
+    match e {
+        SignalError::Io { .. } | SignalError::Stream(_) => failure_io(e),
+        other => Failure::bad_input(other),
+    }
+}
+
+pub(crate) fn analysis_settings(harmonics: usize, weighting: &str) -> Result<Settings, Failure> {
+    if harmonics < 2 {
+        return Err(Failure::bad_input(format!(
+            "--harmonics {harmonics}: expected 2 or more"
+        )));
+    }
+    Ok(Settings {
+        harmonics: Harmonics::UpTo(harmonics),
+        weighting: if weighting == "a" {
+            Weighting::A
+        } else {
+            Weighting::Flat
+        },
+        ..Settings::default()
+    })
+}
+
+/// The file stem of a patch path (`patch` when it has none).
+pub(crate) fn stem_of(path: &Path) -> String {
+    path.file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "patch".into())
+}
+
+/// The default output folder of a patch: `renders/<stem>/`.
+pub(crate) fn default_dir(stem: &str) -> PathBuf {
+    Path::new("renders").join(safe_stem(stem))
+}
+
+/// Keep only the characters allowed in file names.
+pub(crate) fn safe_stem(s: &str) -> String {
+    let t: String = s
+        .chars()
+        .map(|c| {
+            if c.is_ascii_alphanumeric() || c == '_' || c == '-' {
+                c
+            } else {
+                '-'
+            }
+        })
+        .collect();
+    if t.is_empty() {
+        "patch".into()
+    } else {
+        t
+    }
+}
+
+pub(crate) fn progress_bar(frames: usize, rate: f64) -> Option<indicatif::ProgressBar> {
+    if (frames as f64) < 2.0 * rate {
+        return None;
+    }
+    let bar = indicatif::ProgressBar::new(1000);
+    bar.set_style(
+        indicatif::ProgressStyle::with_template("rendering {bar:40} {percent:>3}% {eta}")
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    Some(bar)
+}
+
+/// Run `f` with a progress callback that drives a bar on stderr when asked and the patch is
+/// long enough to need one.
+pub(crate) fn with_progress<T>(
+    patch: &Patch,
+    show: bool,
+    f: impl FnOnce(&mut dyn FnMut(f64)) -> Result<T, RenderError>,
+) -> Result<T, Failure> {
+    let bar = if show {
+        progress_bar(patch.frames(), patch.rate)
+    } else {
+        None
+    };
+    let r = f(&mut |x| {
+        if let Some(b) = &bar {
+            b.set_position((x * 1000.0) as u64);
+        }
+    });
+    if let Some(b) = bar {
+        b.finish_and_clear();
+    }
+    r.map_err(render_error)
+}
+
+pub(crate) fn options(alias: bool) -> RenderOptions {
+    RenderOptions {
+        frames: None,
+        alias_probe: alias,
+    }
+}
+
+/// Render a patch keeping every sample.
+pub(crate) fn run_patch(patch: &Patch, alias: bool, show_progress: bool) -> Result<Run, Failure> {
+    with_progress(patch, show_progress, |p| {
+        render::render(patch, &options(alias), p)
+    })
+}
+
+/// Stream a patch through `sink`, with a progress bar when asked and the render is long.
+pub(crate) fn stream_patch(
+    patch: &Patch,
+    alias: bool,
+    show_progress: bool,
+    sink: &mut render::Sink,
+) -> Result<render::Streamed, Failure> {
+    with_progress(patch, show_progress, |p| {
+        render::render_streaming(patch, &options(alias), sink, p)
+    })
+}
+
+/// Stream a patch through `sink` (with the alias probe), render its idle channel when
+/// circuit noise is on, and measure: figures from the kept tails, levels over the whole
+/// record.
+pub(crate) fn measure_streamed(
+    patch: &Patch,
+    settings: &Settings,
+    output: Option<&str>,
+    show_progress: bool,
+    sink: &mut render::Sink,
+) -> Result<(render::Streamed, measure::Measurement), Failure> {
+    let streamed = stream_patch(patch, true, show_progress, sink)?;
+    let idle = if patch.noise {
+        Some(stream_patch(
+            &render::muted(patch),
+            false,
+            false,
+            &mut |_, _| Ok(()),
+        )?)
+    } else {
+        None
+    };
+    let mut m = measure::measure(
+        patch,
+        &streamed.run,
+        idle.as_ref().map(|s| &s.run),
+        settings,
+        output,
+        None,
+    );
+    measure::apply_full_levels(&mut m, patch, &streamed.levels);
+    Ok((streamed, m))
+}
+
+/// Longest render without `--long`, s.
+pub(crate) const LONG_RENDER_S: f64 = 600.0;
+
+pub(crate) fn check_length(patch: &Patch, long: bool) -> Result<(), Failure> {
+    if patch.length > LONG_RENDER_S && !long {
+        return Err(Failure::bad_input(format!(
+            "patch.length = {} is longer than {} minutes: pass --long to render it (memory stays flat, but it takes a while)",
+            fmt_eng(patch.length, "s"),
+            LONG_RENDER_S / 60.0
+        )));
+    }
+    Ok(())
+}
+
+pub(crate) fn db_or_dash(v: Option<f64>, what: &str) -> String {
+    v.map_or(format!("- {what}"), |d| format!("{d:+.1} dB {what}"))
+}
+
+pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::EventSeconds>) {
+    for (stage, e) in events {
+        let mut parts = Vec::new();
+        for (label, s) in [
+            ("clipping", e.clip_s),
+            ("slew-limited", e.slew_s),
+            ("outside input range", e.cm_out_s),
+            ("phase reversed", e.reversed_s),
+        ] {
+            if s > 0.0 {
+                parts.push(format!("{label} {}", fmt_eng(s, "s")));
+            }
+        }
+        println!(
+            "      {stage}: {}",
+            if parts.is_empty() {
+                "clean".to_string()
+            } else {
+                parts.join(", ")
+            }
+        );
+    }
+}
+
+pub(crate) fn study_error(e: StudyError) -> Failure {
+    match e {
+        StudyError::Render(r) => render_error(r),
+        other => Failure::bad_input(other),
+    }
+}
+
+pub(crate) fn depth_of(flags: &RenderFlags) -> Depth {
+    match flags.depth.as_str() {
+        "16" => Depth::Pcm16,
+        "float" => Depth::Float32,
+        _ => Depth::Pcm24,
+    }
+}
+
+pub(crate) fn bar(n: usize, what: &str) -> indicatif::ProgressBar {
+    // The stderr target draws nothing when stderr is not a terminal.
+    let b = indicatif::ProgressBar::with_draw_target(
+        Some(n as u64),
+        indicatif::ProgressDrawTarget::stderr(),
+    );
+    b.set_style(
+        indicatif::ProgressStyle::with_template(&format!(
+            "{what} {{bar:40}} {{pos}}/{{len}} {{eta}}"
+        ))
+        .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    b
+}
+
+pub(crate) fn variant_names(path: &Path) -> Result<Vec<String>, Failure> {
+    Ok(railsong::patch::load_variants(path)
+        .map_err(Failure::bad_input)?
+        .into_iter()
+        .map(|v| v.name)
+        .collect())
+}
+
+pub(crate) fn load_side(path: &Path, name: &str, sets: &[String]) -> Result<Patch, Failure> {
+    if name == "base" {
+        load(path, sets)
+    } else {
+        railsong::patch::load_variant(path, Some(name), sets).map_err(Failure::bad_input)
+    }
+}

@@ -1,0 +1,66 @@
+//! `railsong noise`: the analytic noise budget beside a simulated idle render.
+
+use std::path::Path;
+
+use railsong::measure;
+use railsong::render::{self};
+use railsong::units::fmt_eng;
+
+use super::common::{failure_io, stream_patch};
+use super::{load, Failure};
+
+pub(crate) fn cmd_noise(
+    path: &Path,
+    sets: &[String],
+    output: Option<&str>,
+    json: bool,
+) -> Result<(), Failure> {
+    let patch = load(path, sets)?;
+    let budgets = railsong::noise::try_budget(&patch, railsong::noise::DEFAULT_BAND)
+        .map_err(Failure::bad_input)?;
+    let picked: Vec<_> = budgets
+        .iter()
+        .filter(|b| output.is_none_or(|n| n == b.output))
+        .collect();
+    if picked.is_empty() {
+        return Err(Failure::bad_input(format!(
+            "--output {}: no such output in {}",
+            output.unwrap_or(""),
+            path.display()
+        )));
+    }
+    if json {
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&picked).map_err(failure_io)?
+        );
+        return Ok(());
+    }
+    println!(
+        "{}: noise budget over 20 Hz - 20 kHz at {:.1} C (analytic, from the network's noise gains)",
+        patch.title,
+        patch.temperature - railsong::units::ZERO_CELSIUS
+    );
+    // The simulated counterpart: the idle render (sources muted) with circuit noise on.
+    let mut idle = render::muted(&patch);
+    idle.noise = true;
+    idle.length = idle.length.max(2.0);
+    let sim = stream_patch(&idle, false, false, &mut |_, _| Ok(()))?;
+    for b in picked {
+        println!();
+        print!("{}", railsong::noise::format_budget(b));
+        let k = patch.outputs.iter().position(|o| o.name == b.output);
+        let simulated = k
+            .and_then(|k| sim.run.outputs.get(k))
+            .map(|o| measure::noise_figures(&o.samples, sim.run.rate));
+        if let Some(n) = simulated.and_then(|n| n.noise_rms_v) {
+            println!(
+                "simulated: {:.4} uV rms over 20 Hz - 20 kHz from a {} idle render ({:+.2} dB against the budget)",
+                n * 1e6,
+                fmt_eng(idle.length, "s"),
+                20.0 * (n / b.total_rms).log10()
+            );
+        }
+    }
+    Ok(())
+}

@@ -1,0 +1,123 @@
+//! `railsong report`: the self-contained listening page.
+
+use std::path::Path;
+
+use railsong::analysis::Settings;
+use railsong::measure;
+use railsong::report;
+use railsong::signal::OutputDir;
+use railsong::units::{self, fmt_eng};
+
+use super::common::{default_dir, render_error, run_patch, signal_error, stem_of};
+use super::compare::compare_sides;
+use super::{load, Failure, RenderFlags};
+
+/// Longest stretch the listening page embeds, s.
+pub(crate) const REPORT_MAX_S: f64 = 60.0;
+
+pub(crate) fn cmd_report(
+    path: &Path,
+    flags: &RenderFlags,
+    sets: &[String],
+    ab: Option<(&str, &str, &str)>,
+) -> Result<(), Failure> {
+    let mut patch = load(path, sets)?;
+    if patch.length > REPORT_MAX_S {
+        println!(
+            "the page plays and measures the first {REPORT_MAX_S} s of this {} patch",
+            fmt_eng(patch.length, "s")
+        );
+        patch.length = REPORT_MAX_S;
+    }
+    let text = std::fs::read_to_string(path)
+        .map_err(|e| Failure::bad_input(format!("{}: {e}", path.display())))?;
+    let dir = flags
+        .out
+        .clone()
+        .unwrap_or_else(|| default_dir(&stem_of(path)));
+    let mut folder = OutputDir::open(&dir, flags.force).map_err(signal_error)?;
+    folder.check_writable("report.html").map_err(signal_error)?;
+    let (patch, run, m, comparison) = match ab {
+        None => {
+            let run = run_patch(&patch, true, true)?;
+            let m = measure::measure(&patch, &run, None, &Settings::default(), None, None);
+            (patch, run, m, None)
+        }
+        Some((a, b, segment)) => {
+            let seg = units::parse_time(segment)
+                .map_err(|e| Failure::bad_input(format!("--segment {segment}: {e}")))?;
+            let mut sets = sets.to_vec();
+            if patch.length < REPORT_MAX_S {
+                sets.push(format!("patch.length={} s", patch.length));
+            }
+            let c = compare_sides(path, a, b, &sets, seg, "rms", true)?;
+            (c.pa, c.ra, c.ma, Some((c.results, a, b)))
+        }
+    };
+    let figs = report::plots(&patch, None).map_err(render_error)?;
+    let mut players: Vec<report::Player> = Vec::new();
+    let mut sections = Vec::new();
+    match &comparison {
+        None => {
+            for o in &run.outputs {
+                let f = &m.outputs[&o.name].figures;
+                players.push(report::Player {
+                    label: o.name.clone(),
+                    note: format!(
+                        "peak {}, rms {}",
+                        f.peak_v.map_or("-".into(), |v| fmt_eng(v, "V")),
+                        f.rms_v.map_or("-".into(), |v| fmt_eng(v, "V"))
+                    ),
+                    samples: &o.samples,
+                });
+            }
+        }
+        Some((results, a, b)) => {
+            for (o, c) in run.outputs.iter().zip(results) {
+                players.push(report::Player {
+                    label: format!("{} A", o.name),
+                    note: format!("A = {a}"),
+                    samples: &o.samples,
+                });
+                players.push(report::Player {
+                    label: format!("{} B", o.name),
+                    note: format!("B = {b}, matched: {:+.2} dB", c.gain_db),
+                    samples: &c.b_matched,
+                });
+                players.push(report::Player {
+                    label: format!("{} A/B", o.name),
+                    note: "alternating A, B, A, B ...".into(),
+                    samples: &c.alternating,
+                });
+                players.push(report::Player {
+                    label: format!("{} difference", o.name),
+                    note: match c.difference_below_db {
+                        Some(d) => format!("A minus matched B, {d:.1} dB below the signal"),
+                        None => "A minus matched B: silent".into(),
+                    },
+                    samples: &c.difference,
+                });
+            }
+            sections.push(report::comparison_section(results, a, b));
+        }
+    }
+    let html = report::page(&patch, &text, &m, &figs, &players, &sections);
+    folder
+        .write_text("report.html", &html)
+        .map_err(signal_error)?;
+    if flags.plots {
+        for f in &figs {
+            folder
+                .write_text(&f.file_name(), &f.svg)
+                .map_err(signal_error)?;
+        }
+    }
+    println!(
+        "{}: report with {} plot(s) and {} player(s) -> {}",
+        patch.title,
+        figs.len(),
+        players.len(),
+        dir.join("report.html").display()
+    );
+    Ok(())
+}
