@@ -390,3 +390,75 @@ out = \"y\"\n[outputs.out]\nfrom = \"sum\"\n",
         "expected the output near the positive swing, got {mean}"
     );
 }
+
+// A knob turns every pot on it; a reversed gang turns the other way (ganged pan pot, linear
+// law: L = 1 - x, R = x, common practice). `--set knobs.NAME` moves them all, and a part's
+// value is set by its path.
+#[test]
+fn knobs_turn_ganged_pots_and_set_moves_them() {
+    let text = format!(
+        "{HEAD}{}[knobs]\npan = 0.5\n\
+[stages.left]\ntype = \"network\"\namps = []\n\
+parts = [{{ pot = \"10k\", ends = [\"gnd\", \"osc\"], wiper = \"w\", at = \"pan\", reverse = true }}, {{ r = \"1G\", ends = [\"w\", \"gnd\"] }}]\nout = \"w\"\n\
+[stages.right]\ntype = \"network\"\namps = []\n\
+parts = [{{ pot = \"10k\", ends = [\"gnd\", \"osc\"], wiper = \"w\", at = \"pan\" }}, {{ r = \"1G\", ends = [\"w\", \"gnd\"] }}]\nout = \"w\"\n\
+[outputs.l]\nfrom = \"left\"\n[outputs.r]\nfrom = \"right\"\n",
+        sine("osc", 1000.0, 1.0)
+    );
+    for x in [0.2, 0.5, 0.9] {
+        let p = railsong::patch::parse_str(
+            &text,
+            "pan.toml",
+            std::path::Path::new("."),
+            &[format!("knobs.pan={x}")],
+        )
+        .unwrap();
+        let r = railsong::engine::run(&p, &railsong::engine::RunOptions::default()).unwrap();
+        let gl = gain(&r.outputs[0].samples, 1000.0, 1.0);
+        let gr = gain(&r.outputs[1].samples, 1000.0, 1.0);
+        // divider ratio of a linear pot (the 1G load changes it by about 1e-5)
+        assert!((gl.0 - (1.0 - x)).abs() < 1e-4, "left {gl:?} at {x}");
+        assert!((gr.0 - x).abs() < 1e-4, "right {gr:?} at {x}");
+    }
+    let p = railsong::patch::parse_str(
+        &text,
+        "pan.toml",
+        std::path::Path::new("."),
+        &["stages.left.parts[0].pot=20k".into()],
+    )
+    .unwrap();
+    let railsong::model::StageKind::Network(n) = &p.stages[0].kind else {
+        panic!()
+    };
+    let railsong::model::NetPartKind::Pot { setting, .. } = &n.parts[0].kind else {
+        panic!()
+    };
+    assert_eq!(setting.track, 20e3);
+}
+
+// The compiled plan is plain data: a state-variable loop is one group of three op-amps, a
+// chain of two inverters two groups, and the printout names them.
+#[test]
+fn the_plan_groups_loops_and_chains() {
+    let text = format!(
+        "{HEAD}{}[stages.two]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"gnd\", minus = \"m1\", out = \"o1\" }}, {{ part = \"ideal\", plus = \"gnd\", minus = \"m2\", out = \"o2\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"osc\", \"m1\"] }}, {{ r = \"10k\", ends = [\"m1\", \"o1\"] }}, \
+{{ r = \"10k\", ends = [\"o1\", \"m2\"] }}, {{ r = \"10k\", ends = [\"m2\", \"o2\"] }}]\nout = \"o2\"\n\
+[outputs.out]\nfrom = \"two\"\n",
+        sine("osc", 1000.0, 1.0)
+    );
+    let plan = railsong::engine::compile(&patch(&text)).unwrap();
+    let net = &plan.networks[0];
+    assert_eq!(net.circuit.groups.len(), 2);
+    let shown = net.circuit.to_string();
+    assert!(shown.contains("group 0") && shown.contains("group 1"), "{shown}");
+    assert!(shown.contains("linear fast path"), "{shown}");
+    // unity inverters with an ideal part: each loop factor is 1/2 (Millman) [S]
+    for g in &net.circuit.groups {
+        assert!((g.amps[0].b - 0.5).abs() < 1e-12);
+    }
+    let y = render(&text);
+    let g = gain(&y[0], 1000.0, 1.0);
+    assert!((g.0 - 1.0).abs() < 1e-4, "two inversions: {g:?}");
+}
