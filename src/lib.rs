@@ -22,6 +22,7 @@ pub mod patch;
 pub mod plot;
 pub mod render;
 pub mod report;
+pub mod response;
 mod rng;
 pub mod signal;
 pub mod study;

@@ -452,7 +452,10 @@ parts = [{{ r = \"10k\", ends = [\"osc\", \"m1\"] }}, {{ r = \"10k\", ends = [\"
     let net = &plan.networks[0];
     assert_eq!(net.circuit.groups.len(), 2);
     let shown = net.circuit.to_string();
-    assert!(shown.contains("group 0") && shown.contains("group 1"), "{shown}");
+    assert!(
+        shown.contains("group 0") && shown.contains("group 1"),
+        "{shown}"
+    );
     assert!(shown.contains("linear fast path"), "{shown}");
     // unity inverters with an ideal part: each loop factor is 1/2 (Millman) [S]
     for g in &net.circuit.groups {
