@@ -125,9 +125,10 @@ pub fn network_circuit(patch: &Patch, stage: usize, tap: Tap, out_load: f64) -> 
         .collect();
     let out = locals[net.out];
     let mut out_amp = None;
+    let amp_outs: Vec<usize> = net.amps.iter().map(|a| locals[a.out]).collect();
     for (k, (a, (plus, minus))) in net.amps.iter().zip(pins).enumerate() {
         let o = locals[a.out];
-        let mut load = c.resistive_g(o);
+        let mut load = c.load_conductance(o, &amp_outs);
         if o == out {
             load += out_load;
             out_amp = Some(k);

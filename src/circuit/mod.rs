@@ -305,15 +305,62 @@ impl Circuit {
         !matches!(self.nodes[n].kind, NodeKind::Free) || self.amps.iter().any(|a| a.out == n)
     }
 
-    /// Static resistive conductance at a node (resistors only, to anywhere), S.
-    pub fn resistive_g(&self, n: usize) -> f64 {
-        self.elems
-            .iter()
-            .filter(|e| e.a == n || e.b == n)
-            .map(|e| match e.kind {
-                ElemKind::R(r) if r > 0.0 => 1.0 / r,
-                _ => 0.0,
-            })
-            .sum()
+    /// Static resistive load on node `n`: the conductance into the resistors around it with
+    /// every node in `driven` (and every fixed or input node) at 0 V, capacitors and diodes
+    /// open (a diode's series resistance leads nowhere), S.
+    pub fn load_conductance(&self, n: usize, driven: &[usize]) -> f64 {
+        let held = |k: usize| {
+            k == n || driven.contains(&k) || !matches!(self.nodes[k].kind, NodeKind::Free)
+        };
+        let free: Vec<usize> = (0..self.nodes.len()).filter(|&k| !held(k)).collect();
+        let m = free.len();
+        let col = |k: usize| free.iter().position(|&x| x == k);
+        let mut a = vec![0.0; m * m];
+        let mut b = vec![0.0; m];
+        let mut direct = 0.0;
+        for (i, row) in a.chunks_mut(m.max(1)).enumerate().take(m) {
+            // a tiny leak to ground keeps a floating island defined (it then sits at 0 V)
+            row[i] += 1e-15;
+        }
+        for e in &self.elems {
+            let ElemKind::R(r) = e.kind else { continue };
+            if r <= 0.0 {
+                continue;
+            }
+            let g = 1.0 / r;
+            for (x, y) in [(e.a, e.b), (e.b, e.a)] {
+                if let Some(i) = col(x) {
+                    a[i * m + i] += g;
+                    match col(y) {
+                        Some(j) => a[i * m + j] -= g,
+                        None if y == n => b[i] += g,
+                        None => {}
+                    }
+                }
+            }
+            if e.a == n || e.b == n {
+                direct += g;
+            }
+        }
+        if m > 0 {
+            let mut perm = vec![0; m];
+            let mut tmp = vec![0.0; m];
+            if !linalg::lu_factor(&mut a, m, &mut perm) {
+                return direct;
+            }
+            linalg::lu_solve(&a, m, &perm, &mut b, &mut tmp);
+        }
+        // current out of n: sum over resistors at n of g (1 - v_other)
+        let mut i_out = 0.0;
+        for e in &self.elems {
+            let ElemKind::R(r) = e.kind else { continue };
+            if r <= 0.0 || (e.a != n && e.b != n) {
+                continue;
+            }
+            let other = if e.a == n { e.b } else { e.a };
+            let v = col(other).map_or(0.0, |j| b[j]);
+            i_out += (1.0 - v) / r;
+        }
+        i_out.max(0.0)
     }
 }

@@ -270,6 +270,21 @@ fn rest_group(
     for (i, &n) in gp.nodes.iter().enumerate() {
         st.y[i] = vn[n];
     }
+    // start every op-amp inside its linear region (at 0 V, or mid-swing when 0 V is outside
+    // it, as on a single supply), so the first linearisation closes every loop
+    for (j, ac) in gp.amps.iter().enumerate() {
+        let sh = &c.amps[ac.amp].shaper;
+        let (l, h) = (sh.lo + sh.w, sh.hi - sh.w);
+        let v = if (l..=h).contains(&0.0) {
+            0.0
+        } else {
+            0.5 * (sh.lo + sh.hi)
+        };
+        st.y[nn + j] = v;
+        if let Some(i) = gp.col[c.amps[ac.amp].out] {
+            st.y[i] = v;
+        }
+    }
     st.pins.fill(None);
     st.vj.fill(0.0);
     let mut converged = false;

@@ -26,6 +26,7 @@ pub(crate) fn cmd_check(path: &Path, sets: &[String]) -> Result<(), Failure> {
     println!("  stage                 type            part               gain      NG     bandwidth  worst-case span        swing");
     for s in &report.stages {
         let gain = match s.gains.as_slice() {
+            [] => "-".to_string(),
             [g] => format!("{g:+.3}"),
             gs => format!("{:+.3}x{}", gs[0], gs.len()),
         };
