@@ -282,14 +282,23 @@ pub fn measure(
             settings: *settings,
         };
         let figures = analysis::measure_output(&sig.samples, run.rate, &ctx);
+        // op-amp stages by their name, every op-amp of a network by its own name
         let events = upstream(patch, o.from)
             .into_iter()
-            .filter(|s| patch.stages[*s].part.is_some())
-            .filter_map(|s| {
-                let name = &patch.stages[s].name;
+            .flat_map(|s| {
+                let st = &patch.stages[s];
+                match &st.kind {
+                    crate::model::StageKind::Network(n) => {
+                        n.amps.iter().map(|a| a.name.clone()).collect::<Vec<_>>()
+                    }
+                    _ if st.part.is_some() => vec![st.name.clone()],
+                    _ => Vec::new(),
+                }
+            })
+            .filter_map(|name| {
                 run.events
                     .iter()
-                    .find(|e| &e.stage == name)
+                    .find(|e| e.stage == name)
                     .map(|e| (name.clone(), EventSeconds::from(e)))
             })
             .collect();

@@ -250,6 +250,14 @@ impl Engine {
         (self.fast_blocks, self.full_blocks)
     }
 
+    /// Number of (group, internal step) pairs of the network stages run by the linear fast
+    /// path and by the nonlinear step.
+    pub fn network_step_counts(&self) -> (u64, u64) {
+        self.nets.iter().fold((0, 0), |(a, b), n| {
+            (a + n.state.counts.0, b + n.state.counts.1)
+        })
+    }
+
     /// The first step of a network stage that failed (the render after it holds the last
     /// value), if any.
     pub fn failure(&self) -> Option<&EngineError> {
