@@ -6,32 +6,167 @@ use std::collections::BTreeMap;
 
 use serde::Serialize;
 
-use crate::analysis::{self, MeasureContext, OutputFigures, Settings, SwingLimits, TestSignal};
+use crate::analysis::{
+    self, Levels, MeasureContext, OutputFigures, Settings, SwingLimits, TestSignal,
+};
 use crate::engine::{Run, StageEvents};
-use crate::model::{Node, Patch, Wave};
 
-/// Event durations of one stage, seconds (the JSON `events` entry).
+use crate::model::{Node, Patch, StageKind, Wave};
+
+/// Events and the op-amp's own extremes of one stage (the JSON `events` entry).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct EventSeconds {
-    /// At or past the output swing limit.
+    /// At or past the output swing limit, s.
     pub clip_s: f64,
-    /// Slew-limited.
+    /// Slewing (the output free to move and slew-limited; not held at a limit nor latched
+    /// by a reversal), s.
     pub slew_s: f64,
-    /// Input outside the common-mode range.
+    /// Input outside the common-mode range, s.
     pub cm_out_s: f64,
-    /// Output phase reversed.
+    /// Output phase reversed, s.
     pub reversed_s: f64,
+    /// When the stage first clipped, s from t = 0 (`null`: never).
+    pub first_clip_s: Option<f64>,
+    /// Highest output of the op-amp itself (after its clamp, before any output divider), V.
+    pub peak_pos_v: Option<f64>,
+    /// Lowest output of the op-amp itself, V.
+    pub peak_neg_v: Option<f64>,
+    /// Headroom of that output to the stage's own positive swing limit, dB.
+    pub headroom_pos_db: Option<f64>,
+    /// Headroom to the stage's own negative swing limit, dB.
+    pub headroom_neg_db: Option<f64>,
 }
 
-impl From<&StageEvents> for EventSeconds {
-    fn from(e: &StageEvents) -> Self {
+impl EventSeconds {
+    /// The events of a stage, with headroom against its swing limits when known.
+    pub fn new(e: &StageEvents, swing: Option<&SwingLimits>) -> Self {
+        let (hp, hn) = match (swing, e.peak_pos_v, e.peak_neg_v) {
+            (Some(lim), Some(hi), Some(lo)) => analysis::headroom_db(&peak_levels(hi, lo), lim),
+            _ => (None, None),
+        };
         EventSeconds {
             clip_s: e.clip_s,
             slew_s: e.slew_s,
             cm_out_s: e.cm_out_s,
             reversed_s: e.reversed_s,
+            first_clip_s: e.first_clip_s,
+            peak_pos_v: e.peak_pos_v,
+            peak_neg_v: e.peak_neg_v,
+            headroom_pos_db: hp,
+            headroom_neg_db: hn,
         }
     }
+}
+
+impl From<&StageEvents> for EventSeconds {
+    fn from(e: &StageEvents) -> Self {
+        EventSeconds::new(e, None)
+    }
+}
+
+/// Levels holding only the extremes `hi` and `lo` (for headroom).
+fn peak_levels(hi: f64, lo: f64) -> Levels {
+    Levels {
+        peak_v: hi.abs().max(lo.abs()),
+        peak_pos_v: hi,
+        peak_neg_v: lo,
+        rms_v: 0.0,
+        ac_rms_v: 0.0,
+        dc_v: 0.0,
+        crest_db: None,
+    }
+}
+
+/// Shortest settle time before a capture, s.
+pub const SETTLE_MIN_S: f64 = 0.05;
+
+/// Settle margin, in time constants: `exp(-14)` is 8.3e-7, -122 dB, below the numerical
+/// floor a linear stage's THD+N reaches.
+pub const SETTLE_TIME_CONSTANTS: f64 = 14.0;
+
+/// The slowest time constant of the circuit, s: every coupling capacitor with the resistance
+/// it charges through (its input resistor plus, from a pot, the largest Thevenin resistance
+/// of the track, a quarter of it), every capacitor across a feedback resistor with that
+/// resistor, and every op-amp's closed-loop pole `noise gain / (2 pi GBW)`.
+pub fn slowest_time_constant(patch: &Patch) -> f64 {
+    let source_r = |n: Node| match n {
+        Node::Stage(j) => match &patch.stages[j].kind {
+            StageKind::Attenuator { pot, .. } => pot / 4.0,
+            _ => 0.0,
+        },
+        Node::Source(_) => 0.0,
+    };
+    let mut tau: f64 = 0.0;
+    for st in &patch.stages {
+        let (ng, caps) = match &st.kind {
+            StageKind::InvertingSum {
+                inputs, feedback, ..
+            } => {
+                let g: f64 = inputs.iter().map(|x| 1.0 / x.r).sum();
+                let mut caps: Vec<f64> = inputs
+                    .iter()
+                    .filter_map(|x| x.c.map(|c| c * (x.r + source_r(x.from))))
+                    .collect();
+                caps.extend(feedback.c.map(|c| c * feedback.r));
+                (1.0 + feedback.r * g, caps)
+            }
+            StageKind::NonInverting {
+                r_fb, c_fb, r_g, ..
+            } => (
+                1.0 + r_fb / r_g,
+                c_fb.map(|c| c * r_fb).into_iter().collect(),
+            ),
+            StageKind::Follower { .. } => (1.0, Vec::new()),
+            StageKind::Attenuator { .. } => (0.0, Vec::new()),
+            // a network: every RC product of its parts and each op-amp's own pole at unity
+            // noise gain (a conservative settle estimate without solving it)
+            StageKind::Network(n) => {
+                let rs: Vec<f64> = n
+                    .parts
+                    .iter()
+                    .filter_map(|p| match &p.kind {
+                        crate::model::NetPartKind::R(r) => Some(*r),
+                        crate::model::NetPartKind::Pot { setting, .. } => Some(setting.track),
+                        _ => None,
+                    })
+                    .collect();
+                let rmax = rs.iter().copied().fold(0.0, f64::max);
+                let caps = n
+                    .parts
+                    .iter()
+                    .filter_map(|p| match p.kind {
+                        crate::model::NetPartKind::C(c) => Some(c * rmax),
+                        _ => None,
+                    })
+                    .collect();
+                for a in &n.amps {
+                    tau = tau.max(1.0 / (std::f64::consts::TAU * a.part.gbw));
+                }
+                (0.0, caps)
+            }
+        };
+        if let Some(part) = &st.part {
+            tau = tau.max(ng / (std::f64::consts::TAU * part.gbw));
+        }
+        for c in caps {
+            tau = tau.max(c);
+        }
+    }
+    tau
+}
+
+/// Settle time of a patch, s: where a capture may start without the switch-on. The latest
+/// source switch-on within the record plus [`SETTLE_TIME_CONSTANTS`] of the slowest time
+/// constant ([`slowest_time_constant`]), at least [`SETTLE_MIN_S`] after it. Pure and cheap:
+/// a study that renders only settle time plus one capture calls it too.
+pub fn settle_time(patch: &Patch) -> f64 {
+    let on = patch
+        .sources
+        .iter()
+        .map(|s| s.start)
+        .filter(|t| t.is_finite() && *t < patch.length)
+        .fold(0.0f64, f64::max);
+    on + (SETTLE_TIME_CONSTANTS * slowest_time_constant(patch)).max(SETTLE_MIN_S)
 }
 
 /// SNR reference level: 10 Vpp, a full modular audio swing (common practice), as the RMS of
@@ -115,8 +250,115 @@ pub struct RunSettings {
     pub noise: bool,
     /// Reference of `snr_ref_db`, V rms (a 10 Vpp sine).
     pub snr_reference_v_rms: f64,
-    /// Alias figure (dBc) of each op-amp stage's part at this oversampling, when measured.
+    /// Start of every spectral capture, s: the circuit's settle time ([`settle_time`]).
+    pub settle_s: f64,
+    /// What each figure refers to.
+    pub references: References,
+    /// Alias figure (dBc) of each part used by a stage that feeds the measured outputs, at
+    /// this rate and oversampling, when measured (see `alias_probe`).
     pub alias_dbc: BTreeMap<String, f64>,
+    /// What the alias figure is.
+    pub alias_probe: &'static str,
+}
+
+/// What each figure refers to (the JSON `settings.references`, also in the README).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct References {
+    /// THD.
+    pub thd: &'static str,
+    /// THD+N.
+    pub thdn: &'static str,
+    /// SINAD.
+    pub sinad: &'static str,
+    /// ENOB.
+    pub enob: &'static str,
+    /// rms_v and the dB levels.
+    pub rms: &'static str,
+    /// dc_v.
+    pub dc: &'static str,
+    /// peak_v and headroom.
+    pub peak: &'static str,
+    /// file_peak_v, peak_dbfs.
+    pub file_peak: &'static str,
+    /// Spectral captures.
+    pub capture: &'static str,
+}
+
+/// The references of every figure railsong prints.
+pub const REFERENCES: References = References {
+    thd: "relative to the fundamental: rss of harmonics 2..10 below Nyquist over the fundamental; \
+          when the third harmonic lies above the file's Nyquist frequency, taken on the \
+          engine's internal oversampled signal (see notes), else null",
+    thdn: "AES17: rms of what remains without the fundamental, over the rms of the whole \
+           signal, both in the band and weighting stated",
+    sinad: "the whole signal over what remains without the fundamental, in the same band: \
+            -THD+N in dB, never negative",
+    enob: "(SINAD - 1.76) / 6.02",
+    rms: "AC: rms about the mean (DC excluded); rms_dbu, rms_dbv and rms_dbfs likewise",
+    dc: "mean of the record",
+    peak: "the circuit: the op-amp's own output after its swing clamp, through the output \
+           divider; headroom against the stage's swing limits",
+    file_peak: "the rendered file: band-limited, so it may overshoot the circuit's peak",
+    capture: "spectral figures skip the settle time (14 slowest time constants of the \
+              circuit after the last source switch-on, at least 50 ms) and take a coherent \
+              capture from what follows; levels cover the whole record",
+};
+
+/// What the alias figure is.
+pub const ALIAS_PROBE: &str = "a fixed probe of the part, not measured on this render: a 5 kHz \
+    sine 7 dB past the swing through a unity inverter at this rate, rails and oversampling; \
+    in-band alias power re the fundamental";
+
+/// Alias figure of one part, for the stages that use it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AliasLine {
+    /// Part name.
+    pub part: String,
+    /// Stages using it that feed the chosen outputs, in patch order.
+    pub stages: Vec<String>,
+    /// The figure, dBc.
+    pub dbc: f64,
+}
+
+/// The alias figures of a run, once per part, only for parts of stages upstream of the
+/// chosen outputs (`output`: one by name; `None`: all).
+pub fn alias_lines(patch: &Patch, run: &Run, output: Option<&str>) -> Vec<AliasLine> {
+    let mut feeding = vec![false; patch.stages.len()];
+    for o in &patch.outputs {
+        if output.is_some_and(|n| n != o.name) {
+            continue;
+        }
+        for i in upstream(patch, o.from) {
+            feeding[i] = true;
+        }
+    }
+    let mut out: Vec<AliasLine> = Vec::new();
+    for (i, st) in patch.stages.iter().enumerate() {
+        if !feeding[i] {
+            continue;
+        }
+        let Some(a) = run.alias.iter().find(|a| a.stage == st.name) else {
+            continue;
+        };
+        match out.iter_mut().find(|l| l.part == a.part) {
+            Some(l) => l.stages.push(st.name.clone()),
+            None => out.push(AliasLine {
+                part: a.part.clone(),
+                stages: vec![st.name.clone()],
+                dbc: a.dbc,
+            }),
+        }
+    }
+    out
+}
+
+/// The stage upstream of the measured outputs that clips first, and when (s from t = 0).
+pub fn first_clip(m: &Measurement) -> Option<(String, f64)> {
+    m.outputs
+        .values()
+        .flat_map(|o| o.events.iter())
+        .filter_map(|(name, e)| e.first_clip_s.map(|t| (name.clone(), t)))
+        .min_by(|a, b| a.1.total_cmp(&b.1))
 }
 
 /// The whole measurement: `{"outputs": {...}, "settings": {...}}`.
@@ -226,29 +468,66 @@ fn silent(w: &Wave) -> bool {
     }
 }
 
-/// Swing limits seen at an output: the driving op-amp's limits (or the rails, for a source
-/// or passive node), narrowed by its output current limit into its static load
-/// ([`crate::check::static_loads`]), scaled by the output's series/load divider.
+/// Swing limits of an op-amp stage's own output: its part's limits narrowed by its output
+/// current limit into its static load ([`crate::check::static_loads`]). `None` for a passive
+/// stage.
+pub fn stage_swing(patch: &Patch, stage: usize) -> Option<SwingLimits> {
+    let part = patch.stages[stage].part.as_ref()?;
+    let (mut lo, mut hi) = crate::check::swing_limits(part, patch.rails.pos, patch.rails.neg);
+    if let (Some(isc), Some(load)) = (part.isc, crate::check::static_loads(patch)[stage]) {
+        lo = lo.max(-isc * load);
+        hi = hi.min(isc * load);
+    }
+    Some(SwingLimits {
+        pos: hi,
+        neg: lo,
+        centre: 0.0,
+    })
+}
+
+/// The output's series/load divider (1 for an open output).
+fn output_divider(patch: &Patch, out: usize) -> f64 {
+    let o = &patch.outputs[out];
+    o.load.map_or(1.0, |l| l / (l + o.series))
+}
+
+/// Swing limits seen at an output: the driving op-amp's limits ([`stage_swing`]; the rails
+/// for a source or passive node), scaled by the output's series/load divider.
 pub fn swing_at(patch: &Patch, out: usize) -> SwingLimits {
     let o = &patch.outputs[out];
-    let (mut lo, mut hi) = (patch.rails.neg, patch.rails.pos);
-    if let Node::Stage(i) = o.from {
-        if let Some(part) = &patch.stages[i].part {
-            let (l, h) = crate::check::swing_limits(part, patch.rails.pos, patch.rails.neg);
-            lo = l;
-            hi = h;
-            if let (Some(isc), Some(load)) = (part.isc, crate::check::static_loads(patch)[i]) {
-                lo = lo.max(-isc * load);
-                hi = hi.min(isc * load);
-            }
+    let (lo, hi) = match o.from {
+        Node::Stage(i) => {
+            stage_swing(patch, i).map_or((patch.rails.neg, patch.rails.pos), |s| (s.neg, s.pos))
         }
-    }
-    let d = o.load.map_or(1.0, |l| l / (l + o.series));
+        Node::Source(_) => (patch.rails.neg, patch.rails.pos),
+    };
+    let d = output_divider(patch, out);
     SwingLimits {
         pos: hi * d,
         neg: lo * d,
         centre: 0.0,
     }
+}
+
+/// Replace an output's `peak_v` and headroom with the circuit's own values when an op-amp
+/// drives it: its output's extremes after its clamp, through the output divider (the file's
+/// band-limited peak, which may overshoot, stays in `file_peak_v`).
+fn apply_circuit_peaks(r: &mut OutputReport, patch: &Patch, out: usize) {
+    let Node::Stage(i) = patch.outputs[out].from else {
+        return;
+    };
+    let Some(e) = r.events.get(&patch.stages[i].name) else {
+        return;
+    };
+    let (Some(hi), Some(lo)) = (e.peak_pos_v, e.peak_neg_v) else {
+        return;
+    };
+    let d = output_divider(patch, out);
+    let l = peak_levels(hi * d, lo * d);
+    r.figures.peak_v = Some(l.peak_v);
+    let (p, n) = analysis::headroom_db(&l, &swing_at(patch, out));
+    r.figures.headroom_pos_db = p;
+    r.figures.headroom_neg_db = n;
 }
 
 /// Measure every output of a run. `idle` is a render of the same patch with its sources
@@ -263,6 +542,9 @@ pub fn measure(
     test: Option<TestSignal>,
 ) -> Measurement {
     let mut map = BTreeMap::new();
+    let settle_s = settle_time(patch);
+    let settle_frames = (settle_s * run.rate).round() as usize;
+    let skip_in = |r: &Run| settle_frames.saturating_sub(r.first_frame);
     for (i, o) in patch.outputs.iter().enumerate() {
         if outputs.is_some_and(|n| n != o.name) {
             continue;
@@ -280,6 +562,8 @@ pub fn measure(
             snr_reference_v: None,
             test: test.unwrap_or_else(|| test_signal(patch, o.from)),
             settings: *settings,
+            skip: skip_in(run),
+            idle_skip: idle.map_or(0, skip_in),
         };
         let figures = analysis::measure_output(&sig.samples, run.rate, &ctx);
         // op-amp stages by their name, every op-amp of a network by its own name
@@ -288,33 +572,39 @@ pub fn measure(
             .flat_map(|s| {
                 let st = &patch.stages[s];
                 match &st.kind {
-                    crate::model::StageKind::Network(n) => {
-                        n.amps.iter().map(|a| a.name.clone()).collect::<Vec<_>>()
-                    }
-                    _ if st.part.is_some() => vec![st.name.clone()],
+                    StageKind::Network(n) => n
+                        .amps
+                        .iter()
+                        .map(|a| (a.name.clone(), None))
+                        .collect::<Vec<_>>(),
+                    _ if st.part.is_some() => vec![(st.name.clone(), Some(s))],
                     _ => Vec::new(),
                 }
             })
-            .filter_map(|name| {
+            .filter_map(|(name, s)| {
+                let swing = s.and_then(|s| stage_swing(patch, s));
                 run.events
                     .iter()
                     .find(|e| e.stage == name)
-                    .map(|e| (name.clone(), EventSeconds::from(e)))
+                    .map(|e| (name.clone(), EventSeconds::new(e, swing.as_ref())))
             })
             .collect();
         let noise = idle_samples
-            .map(|x| noise_figures(x, run.rate))
+            .map(|x| noise_figures(&x[ctx.idle_skip.min(x.len())..], run.rate))
             .unwrap_or_default();
-        map.insert(
-            o.name.clone(),
-            OutputReport {
-                figures,
-                noise,
-                from: patch.node_name(o.from).to_string(),
-                events,
-            },
-        );
+        let mut report = OutputReport {
+            figures,
+            noise,
+            from: patch.node_name(o.from).to_string(),
+            events,
+        };
+        apply_circuit_peaks(&mut report, patch, i);
+        map.insert(o.name.clone(), report);
     }
+    let alias_dbc = alias_lines(patch, run, outputs)
+        .into_iter()
+        .map(|l| (l.part, l.dbc))
+        .collect();
     Measurement {
         outputs: map,
         settings: RunSettings {
@@ -326,13 +616,16 @@ pub fn measure(
             analysis: *settings,
             noise: patch.noise,
             snr_reference_v_rms: SNR_REFERENCE_V_RMS,
-            alias_dbc: run.alias.iter().map(|a| (a.stage.clone(), a.dbc)).collect(),
+            settle_s,
+            references: REFERENCES,
+            alias_dbc,
+            alias_probe: ALIAS_PROBE,
         },
     }
 }
 
 /// Columns of the CSV form, in order.
-pub const CSV_COLUMNS: [&str; 16] = [
+pub const CSV_COLUMNS: [&str; 23] = [
     "output",
     "fundamental_hz",
     "thd_percent",
@@ -342,6 +635,7 @@ pub const CSV_COLUMNS: [&str; 16] = [
     "enob",
     "snr_db",
     "peak_v",
+    "file_peak_v",
     "rms_v",
     "dc_v",
     "crest_db",
@@ -349,16 +643,29 @@ pub const CSV_COLUMNS: [&str; 16] = [
     "headroom_neg_db",
     "imd_smpte_percent",
     "imd_ccif_percent",
+    "clip_s",
+    "slew_s",
+    "cm_out_s",
+    "reversed_s",
+    "first_clip_s",
+    "first_clip_stage",
 ];
 
 /// The CSV form: a header row and one row per output; empty cells where a figure does not
-/// apply.
+/// apply. The event columns (`clip_s`, `slew_s`, `cm_out_s`, `reversed_s`) are summed over the
+/// op-amp stages upstream of the output; `first_clip_s` and `first_clip_stage` name the first
+/// of them to clip.
 pub fn to_csv(m: &Measurement) -> String {
     let mut s = CSV_COLUMNS.join(",");
     s.push('\n');
     let cell = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x}"));
     for (name, o) in &m.outputs {
         let f = &o.figures;
+        let first = o
+            .events
+            .iter()
+            .filter_map(|(st, e)| e.first_clip_s.map(|t| (st.as_str(), t)))
+            .min_by(|a, b| a.1.total_cmp(&b.1));
         let row = [
             name.clone(),
             cell(f.fundamental_hz),
@@ -369,6 +676,7 @@ pub fn to_csv(m: &Measurement) -> String {
             cell(f.enob),
             cell(f.snr_db),
             cell(f.peak_v),
+            cell(f.file_peak_v),
             cell(f.rms_v),
             cell(f.dc_v),
             cell(f.crest_db),
@@ -376,6 +684,14 @@ pub fn to_csv(m: &Measurement) -> String {
             cell(f.headroom_neg_db),
             cell(f.imd_smpte_percent),
             cell(f.imd_ccif_percent),
+            // events summed over the op-amp stages upstream of the output, and the first
+            // of them to clip
+            cell(Some(o.events.values().map(|e| e.clip_s).sum())),
+            cell(Some(o.events.values().map(|e| e.slew_s).sum())),
+            cell(Some(o.events.values().map(|e| e.cm_out_s).sum())),
+            cell(Some(o.events.values().map(|e| e.reversed_s).sum())),
+            cell(first.map(|(_, t)| t)),
+            first.map_or(String::new(), |(st, _)| st.to_string()),
         ];
         s.push_str(&row.join(","));
         s.push('\n');
@@ -402,8 +718,87 @@ pub fn apply_full_levels(
         };
         let swing = swing_at(patch, i);
         analysis::set_level_figures(&mut r.figures, l, Some(&swing), Some(patch.full_scale));
+        apply_circuit_peaks(r, patch, i);
     }
     if !levels.is_empty() {
         m.settings.length_s = patch.length.min(patch.frames() as f64 / patch.rate);
+    }
+}
+
+/// A figure's name as a reader says it and its unit, from its JSON key: `thd_percent` ->
+/// ("THD", "%"), `thdn_db` -> ("THD+N", "dB"), `headroom_pos_db` -> ("headroom pos", "dB"),
+/// `peak_v` -> ("peak", "V"). Unknown keys keep their name, without a unit.
+pub fn figure_label(key: &str) -> (String, &'static str) {
+    const UNITS: [(&str, &str); 7] = [
+        ("_percent", "%"),
+        ("_dbfs", "dBFS"),
+        ("_dbc", "dBc"),
+        ("_db", "dB"),
+        ("_hz", "Hz"),
+        ("_v", "V"),
+        ("_s", "s"),
+    ];
+    let (stem, unit) = UNITS
+        .iter()
+        .find_map(|(suf, u)| key.strip_suffix(suf).map(|s| (s, *u)))
+        .unwrap_or((key, ""));
+    let words: Vec<String> = stem
+        .split('_')
+        .map(|w| match w {
+            "thd" => "THD".to_string(),
+            "thdn" => "THD+N".to_string(),
+            "sinad" => "SINAD".to_string(),
+            "snr" => "SNR".to_string(),
+            "imd" => "IMD".to_string(),
+            "enob" => "ENOB".to_string(),
+            "rms" => "RMS".to_string(),
+            "dc" => "DC".to_string(),
+            "pos" => "+".to_string(),
+            "neg" => "-".to_string(),
+            w => w.to_string(),
+        })
+        .collect();
+    (words.join(" "), unit)
+}
+
+/// The unit of the value a patch key path holds, from its last key: resistors, pots and
+/// loads in ohm, capacitors in F, frequencies in Hz, levels in V, times in s; `""` for a
+/// pot position or anything else.
+pub fn key_unit(path: &str) -> &'static str {
+    let last = path.rsplit('.').next().unwrap_or(path);
+    match last {
+        "pot" | "load" | "series" | "r" | "track" => "ohm",
+        k if k.starts_with("r_") => "ohm",
+        "c" => "F",
+        k if k.starts_with("c_") => "F",
+        "freq" | "from" | "to" => "Hz",
+        "amp" => "Vpk",
+        "offset" | "level" | "ref" | "pos" | "neg" => "V",
+        "rms" => "Vrms",
+        "start" | "stop" | "length" | "attack" | "decay" | "every" | "duration" => "s",
+        _ => "",
+    }
+}
+
+#[cfg(test)]
+mod label_tests {
+    use super::*;
+
+    // Names of the figures contract (README) read back as a designer says them [D].
+    #[test]
+    fn figure_and_key_labels() {
+        assert_eq!(figure_label("thd_percent"), ("THD".to_string(), "%"));
+        assert_eq!(figure_label("thdn_db"), ("THD+N".to_string(), "dB"));
+        assert_eq!(
+            figure_label("headroom_pos_db"),
+            ("headroom +".to_string(), "dB")
+        );
+        assert_eq!(figure_label("peak_v"), ("peak".to_string(), "V"));
+        assert_eq!(figure_label("mystery"), ("mystery".to_string(), ""));
+        assert_eq!(key_unit("stages.amp.r_fb"), "ohm");
+        assert_eq!(key_unit("stages.tone.feedback.c"), "F");
+        assert_eq!(key_unit("sources.lead.amp"), "Vpk");
+        assert_eq!(key_unit("sources.lead.freq"), "Hz");
+        assert_eq!(key_unit("stages.vol.at"), "");
     }
 }

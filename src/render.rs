@@ -5,7 +5,9 @@
 //! nothing: writing renders is the caller's job (through [`crate::signal::OutputDir`]), so a
 //! failed render never leaves a file behind.
 
+use crate::analysis::{self, Settings, TestSignal};
 use crate::engine::{self, Engine, EngineError, Plan, Run, SourceFeed};
+use crate::measure::{self, Measurement};
 use crate::model::{Patch, Wave};
 use crate::signal::{self, Generator, SignalError};
 
@@ -136,6 +138,7 @@ pub fn render(
     for (o, samples) in streamed.run.outputs.iter_mut().zip(full) {
         o.samples = samples;
     }
+    streamed.run.first_frame = 0;
     Ok(streamed.run)
 }
 
@@ -239,6 +242,20 @@ impl Tail {
         }
     }
 
+    /// Number of samples kept so far.
+    pub fn len(&self) -> usize {
+        if self.filled {
+            self.buf.len()
+        } else {
+            self.pos
+        }
+    }
+
+    /// Whether nothing was kept yet.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
     /// The kept samples, oldest first.
     pub fn into_vec(self) -> Vec<f64> {
         if !self.filled {
@@ -308,6 +325,7 @@ pub fn render_streaming(
         done += n;
         progress(done as f64 / frames as f64);
     }
+    let kept = tails.first().map_or(0, Tail::len);
     let outputs = plan
         .outputs
         .iter()
@@ -327,10 +345,92 @@ pub fn render_streaming(
             rate: plan.rate,
             oversample: plan.oversample,
             outputs,
+            first_frame: frames - kept,
             events: eng.events(),
             alias,
         },
         levels: acc.iter().map(LevelAccumulator::levels).collect(),
         frames,
     })
+}
+
+/// Capture taken after the settle time by [`complete_thd`], s.
+pub const INTERNAL_CAPTURE_S: f64 = 0.25;
+
+/// THD where the file cannot hold it: for every output of `m` whose THD is missing because
+/// its third harmonic lies above the file's Nyquist frequency, measure THD on the engine's
+/// internal signal. The patch is rendered at the internal rate (`rate * K` with
+/// oversampling 1: the same steps of the same model, without the decimator) for its settle
+/// time plus [`INTERNAL_CAPTURE_S`], and THD is taken on what follows the settle time, with
+/// the harmonics below the internal Nyquist frequency; a note states that band. Nothing is
+/// done at K = 1 (the internal signal is the file's), and an output stays `null` when even
+/// the internal rate is too low. `test` overrides the test signal as in
+/// [`measure::measure`].
+pub fn complete_thd(
+    patch: &Patch,
+    m: &mut Measurement,
+    settings: &Settings,
+    test: Option<TestSignal>,
+) -> Result<(), RenderError> {
+    let missing: Vec<(usize, f64)> = patch
+        .outputs
+        .iter()
+        .enumerate()
+        .filter_map(|(i, o)| {
+            let f = &m.outputs.get(&o.name)?.figures;
+            let above = f.thd_percent.is_none()
+                && f.notes
+                    .iter()
+                    .any(|n| n.starts_with("thd:") && n.contains("above Nyquist"));
+            match test.unwrap_or_else(|| measure::test_signal(patch, o.from)) {
+                TestSignal::Tone(f0) if above => Some((i, f0)),
+                _ => None,
+            }
+        })
+        .collect();
+    if missing.is_empty() || patch.oversample < 2 {
+        return Ok(());
+    }
+    let mut p = patch.clone();
+    p.rate = patch.rate * patch.oversample as f64;
+    p.oversample = 1;
+    let settle = measure::settle_time(&p);
+    let frames = ((settle + INTERNAL_CAPTURE_S).min(p.length) * p.rate).round() as usize;
+    let run = render(
+        &p,
+        &RenderOptions {
+            frames: Some(frames),
+            alias_probe: false,
+        },
+        &mut |_| {},
+    )?;
+    let skip = (settle * p.rate).round() as usize;
+    for (i, f0) in missing {
+        let name = &patch.outputs[i].name;
+        let Some(fig) = m.outputs.get_mut(name).map(|r| &mut r.figures) else {
+            continue;
+        };
+        let Some(sig) = run.outputs.iter().find(|s| &s.name == name) else {
+            continue;
+        };
+        let (x, _) = analysis::settled(&sig.samples, skip, p.rate, "internal capture");
+        let Ok(t) = analysis::thd(x, p.rate, Some(f0), settings) else {
+            continue;
+        };
+        fig.notes.retain(|n| !n.starts_with("thd:"));
+        fig.notes.push(format!(
+            "thd: the file's Nyquist frequency ({} Hz) is below the third harmonic, so THD was \
+             measured on the engine's internal signal at {} Hz: harmonics 2..{} (up to {} Hz)",
+            patch.rate / 2.0,
+            p.rate,
+            t.harmonics.last().map_or(1, |h| h.order),
+            p.rate / 2.0
+        ));
+        fig.fundamental_hz = Some(t.fundamental_hz);
+        fig.thd_percent = Some(t.thd_percent);
+        fig.thd_db = Some(t.thd_db);
+        fig.thd_harmonics = Some(t.harmonics.len());
+        fig.harmonics_dbc = t.harmonics.iter().map(|h| h.dbc).collect();
+    }
+    Ok(())
 }

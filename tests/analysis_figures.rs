@@ -102,8 +102,9 @@ fn thdn_of_sine_plus_white_noise_reads_the_noise() {
         assert!((r.signal_rms_v / expect_sig - 1.0).abs() < 1e-3);
         assert!((r.thdn_db - db(expect_res / expect_sig)).abs() < 0.2);
         assert!((r.thdn_percent - 100.0 * r.thdn_ratio).abs() < 1e-12);
-        // IEEE 1057 SINAD from the same residual
-        assert!((r.sinad_db - db((r.fundamental_v / 2f64.sqrt()) / r.residual_rms_v)).abs() < 1e-9);
+        // AES17 reference: SINAD is the whole in-band signal over the residual, -THD+N
+        assert!((r.sinad_db - db(r.signal_rms_v / r.residual_rms_v)).abs() < 1e-9);
+        assert!((r.sinad_db + r.thdn_db).abs() < 1e-9);
     }
 }
 

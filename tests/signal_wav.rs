@@ -650,14 +650,18 @@ fn file_name_filter() {
 
 #[test]
 fn listening_gain_hits_target_with_peak_guard() {
-    // A sine of peak A has RMS A / sqrt(2) (closed form).
+    // A sine of peak A has RMS A / sqrt(2) (closed form); dBFS as the figures give it
+    // (AES17: a full-scale sine is 0 dBFS, RMS in dBFS = 20 log10(sqrt 2 rms / fs)), so a
+    // sine brought to -20 dBFS has its peak at -20 dBFS.
     let fs = 10.0;
     let x: Vec<f64> = (0..48_000)
         .map(|i| (2.0 * PI * 1000.0 * i as f64 / 48_000.0).sin())
         .collect();
     let g = listen_gain(&x, -20.0, fs);
-    let rms_db = 20.0 * (g / 2f64.sqrt() / fs).log10();
+    let rms_db = 20.0 * (2f64.sqrt() * g / 2f64.sqrt() / fs).log10();
     assert!((rms_db + 20.0).abs() < 1e-9, "{rms_db}");
+    let peak_db = 20.0 * (g / fs).log10();
+    assert!((peak_db + 20.0).abs() < 1e-9, "{peak_db}");
     // A sparse click train: crest factor 20 log10(sqrt(1000)) = 30 dB, so -20 dBFS RMS would
     // put the peak at +10 dBFS; the guard holds it at -1 dBFS.
     let mut clicks = vec![0.0; 48_000];

@@ -283,6 +283,17 @@ pub fn thd_from_spectrum(
         }
         Harmonics::Nyquist => (nyq / fundamental_hz).floor() as usize,
     };
+    // With the third harmonic above Nyquist the record shows at most the second, which a
+    // symmetric nonlinearity (clipping, slewing) does not make: a sum of what is left would
+    // read near 0 for a badly distorted tone. Not measured, rather than wrong.
+    let asks_h3 = last >= 3 || harmonics == Harmonics::Nyquist;
+    if alias == AliasRule::StopAtNyquist && asks_h3 && 3.0 * fundamental_hz > nyq {
+        return Err(AnalysisError::AboveNyquist {
+            order: if 2.0 * fundamental_hz > nyq { 2 } else { 3 },
+            fundamental_hz,
+            nyquist: nyq,
+        });
+    }
     // Beyond N orders the folded positions only repeat: examine at most N orders.
     let last = last.min(spec.fft_len.max(2));
     let lobe = spec.window.lobe_half_width() as f64 * spec.bin_hz;
@@ -388,9 +399,12 @@ pub struct ThdnResult {
     pub thdn_percent: f64,
     /// THD+N in dB.
     pub thdn_db: f64,
-    /// SINAD = 20 log10((fundamental_v / sqrt 2) / residual_rms), dB (IEEE Std 1057).
+    /// SINAD = 20 log10(signal_rms / residual_rms) = -THD+N in dB: the whole signal in the
+    /// band over what remains without the fundamental (AES17 reference). At least 0 dB
+    /// (the fitted fundamental is removed from the signal, so the residual is at most the
+    /// whole).
     pub sinad_db: f64,
-    /// ENOB = (SINAD - 1.76) / 6.02, bits (IEEE Std 1057).
+    /// ENOB = (SINAD - 1.76) / 6.02, bits (IEEE Std 1057 form, from the SINAD above).
     pub enob: f64,
     /// Window of the residual spectrum.
     pub window: Window,
@@ -409,7 +423,8 @@ pub struct ThdnResult {
 /// residual is band-limited in the frequency domain: the mean square of the residual
 /// spectrum's bins inside the band (each weighted if asked). The whole signal's rms is taken
 /// through the same band and weighting. SINAD and ENOB use the same residual, so for the
-/// IEEE Std 1057 figure of a converter set [`Bandwidth::Full`].
+/// IEEE Std 1057 figure of a converter set [`Bandwidth::Full`]. Both THD+N and SINAD refer to
+/// the whole signal in the band (AES17), so `sinad_db = -thdn_db` exactly.
 pub fn thdn(
     samples: &[f64],
     rate: f64,
@@ -447,8 +462,11 @@ pub fn thdn(
     if sig <= 0.0 {
         return Err(AnalysisError::NoTone { what: "samples" });
     }
-    let ratio = res / sig;
-    let sinad = db((fit.amplitude / std::f64::consts::SQRT_2) / res);
+    // The fitted fundamental is a least-squares projection, so the residual never exceeds
+    // the whole signal; a windowed band limit can leave a rounding-sized excess, held at 1.
+    let ratio = (res / sig).min(1.0);
+    // AES17: THD+N is the residual over the whole signal in band; SINAD is its inverse.
+    let sinad = -db(ratio);
     Ok(ThdnResult {
         fundamental_hz: fit.freq,
         fundamental_v: fit.amplitude,

@@ -24,7 +24,10 @@
 //! # Figures ([`distortion`], [`levels`](mod@levels))
 //! - **THD** (`THD_F`) = `sqrt(sum_{h=2..N} A_h^2) / A_1`, `N` = 10 by default or every
 //!   harmonic below Nyquist; harmonics above Nyquist are not counted by default
-//!   ([`AliasRule`]). Also each harmonic in dBc.
+//!   ([`AliasRule`]). When even the third harmonic lies above Nyquist the record cannot
+//!   show the distortion (a slewing or clipping tone puts nearly all of it in odd
+//!   harmonics), so THD is not given ([`AnalysisError::AboveNyquist`], JSON `null` with a
+//!   note), never 0. Also each harmonic in dBc.
 //! - **THD+N** = rms of the residual after a least-squares sine fit (IEEE Std 1057: three
 //!   parameters at a known frequency, four iterating on frequency otherwise), band-limited in
 //!   the frequency domain to 20 Hz - 20 kHz by default (AES17 practice; the bins of the
@@ -32,8 +35,12 @@
 //!   the AES17 low-pass mask, flat within 0.1 dB to 20 kHz and more than 60 dB down from
 //!   24 kHz, to within the window's lobe width), optionally A- or C-weighted per bin, over the
 //!   rms of the whole signal through the same band and weighting.
-//! - **SINAD** = `20 log10((A_1 / sqrt 2) / residual rms)`, **ENOB** = `(SINAD - 1.76) / 6.02`
-//!   (IEEE Std 1057), over the same band (use the full band for a converter's figure).
+//! - **SINAD** = `20 log10(whole signal rms / residual rms)` over the same band and weighting,
+//!   so `SINAD = -THD+N` in dB and is never negative (AES17 reference: both figures refer to
+//!   the whole signal in band); **ENOB** = `(SINAD - 1.76) / 6.02` (IEEE Std 1057 form; use
+//!   the full band for a converter's figure).
+//! - **THD** refers to the fundamental (`THD_F`), so it can exceed 0 dB for a wave that is
+//!   mostly harmonics; THD+N and SINAD cannot.
 //! - **SNR** = signal rms (band-limited, or a stated reference) over the rms of an idle
 //!   render (sources muted), same band and weighting.
 //! - **IMD**: SMPTE RP120 (rss of `fH +/- fL`, `fH +/- 2 fL` over the `fH` amplitude) and twin
@@ -143,6 +150,20 @@ pub enum AnalysisError {
         /// Which fit.
         what: &'static str,
     },
+    /// The harmonics that THD needs lie above Nyquist, where the record cannot hold them.
+    #[error(
+        "harmonic {order} of {fundamental_hz} Hz ({} Hz) lies above Nyquist ({nyquist} Hz), \
+         so THD is not measured at this rate (it is not 0: raise patch.rate to see it)",
+        *order as f64 * fundamental_hz
+    )]
+    AboveNyquist {
+        /// The first harmonic missing.
+        order: usize,
+        /// Fundamental, Hz.
+        fundamental_hz: f64,
+        /// Nyquist at the rate in use, Hz.
+        nyquist: f64,
+    },
     /// The FFT library refused its buffers (cannot happen with planned lengths).
     #[error("analysis: FFT failed: {0}")]
     Fft(String),
@@ -190,6 +211,40 @@ pub struct MeasureContext<'a> {
     pub test: TestSignal,
     /// Analysis settings.
     pub settings: Settings,
+    /// Samples at the start of `samples` that spectral figures skip (the switch-on; levels
+    /// still cover every sample). When fewer than [`MIN_CAPTURE_S`] remain, the last
+    /// [`MIN_CAPTURE_S`] are taken instead and `notes` says so.
+    pub skip: usize,
+    /// The same for `idle`.
+    pub idle_skip: usize,
+}
+
+/// Shortest capture taken after a settle time, s: when less is left, the capture reaches
+/// back into the settle time (and a note says so).
+pub const MIN_CAPTURE_S: f64 = 0.1;
+
+/// The part of a record spectral figures analyse: everything after `skip` samples, or, when
+/// that is shorter than [`MIN_CAPTURE_S`], the last `MIN_CAPTURE_S` of the record with a
+/// note saying how much of it lies inside the settle time.
+pub fn settled<'a>(
+    samples: &'a [f64],
+    skip: usize,
+    rate: f64,
+    what: &str,
+) -> (&'a [f64], Option<String>) {
+    let min = (MIN_CAPTURE_S * rate).ceil() as usize;
+    let left = samples.len().saturating_sub(skip);
+    if skip == 0 || left >= min {
+        return (&samples[skip.min(samples.len())..], None);
+    }
+    let take = min.min(samples.len());
+    let note = format!(
+        "{what}: only {:.1} ms of the record lies after the settle time; the capture takes the \
+         last {:.1} ms, which may include the switch-on (render a longer patch)",
+        1e3 * left as f64 / rate,
+        1e3 * take as f64 / rate
+    );
+    (&samples[samples.len() - take..], Some(note))
 }
 
 /// The figures of one output. `None` (JSON `null`) when a figure does not apply.
@@ -213,13 +268,17 @@ pub struct OutputFigures {
     pub enob: Option<f64>,
     /// SNR against the idle render, dB.
     pub snr_db: Option<f64>,
-    /// Peak |x|, V.
+    /// Peak |x|, V: the circuit's own peak where the caller knows it (`measure`: the
+    /// op-amp's output after its clamp), else the record's.
     pub peak_v: Option<f64>,
-    /// RMS (including DC), V.
+    /// Peak |x| of the record (the rendered file, band-limited: it may overshoot the
+    /// circuit's peak), V.
+    pub file_peak_v: Option<f64>,
+    /// AC RMS (about the mean, DC excluded: DC is `dc_v`), V.
     pub rms_v: Option<f64>,
     /// Mean, V.
     pub dc_v: Option<f64>,
-    /// Crest factor, dB.
+    /// Crest factor, peak over the RMS including DC, dB.
     pub crest_db: Option<f64>,
     /// Headroom to the positive swing limit, dB.
     pub headroom_pos_db: Option<f64>,
@@ -273,7 +332,8 @@ pub fn set_level_figures(
     full_scale_v: Option<f64>,
 ) {
     fig.peak_v = Some(l.peak_v);
-    fig.rms_v = Some(l.rms_v);
+    fig.file_peak_v = Some(l.peak_v);
+    fig.rms_v = Some(l.ac_rms_v);
     fig.dc_v = Some(l.dc_v);
     fig.crest_db = l.crest_db;
     let ac = (l.ac_rms_v > 0.0).then_some(l.ac_rms_v);
@@ -304,6 +364,12 @@ pub fn measure_output(samples: &[f64], rate: f64, ctx: &MeasureContext) -> Outpu
     let note = |fig: &mut OutputFigures, what: &str, e: AnalysisError| {
         fig.notes.push(format!("{what}: {e}"));
     };
+    // Spectral figures start after the settle time.
+    let (samples, settle_note) = settled(samples, ctx.skip, rate, "capture");
+    fig.notes.extend(settle_note);
+    let idle = ctx
+        .idle
+        .map(|x| settled(x, ctx.idle_skip, rate, "idle capture").0);
     match ctx.test {
         TestSignal::Detect | TestSignal::Tone(_) => {
             let known = match ctx.test {
@@ -359,7 +425,7 @@ pub fn measure_output(samples: &[f64], rate: f64, ctx: &MeasureContext) -> Outpu
         },
         TestSignal::None => {}
     }
-    if let Some(idle) = ctx.idle {
+    if let Some(idle) = idle {
         match snr(samples, idle, rate, ctx.snr_reference_v, s) {
             Ok(r) => {
                 fig.snr_db = Some(r.snr_db);

@@ -5,10 +5,15 @@ use std::path::Path;
 use railsong::check::{self, WarningKind};
 use railsong::units::fmt_eng;
 
-use super::{load, Failure};
+use super::common::load_side;
+use super::Failure;
 
-pub(crate) fn cmd_check(path: &Path, sets: &[String]) -> Result<(), Failure> {
-    let patch = load(path, sets)?;
+pub(crate) fn cmd_check(
+    path: &Path,
+    variant: Option<&str>,
+    sets: &[String],
+) -> Result<(), Failure> {
+    let patch = load_side(path, variant.unwrap_or("base"), sets)?;
     let report = check::check(&patch);
     println!("{} ({})", patch.title, path.display());
     println!(
@@ -23,7 +28,7 @@ pub(crate) fn cmd_check(path: &Path, sets: &[String]) -> Result<(), Failure> {
         patch.outputs.len()
     );
     println!();
-    println!("  stage                 type            part               gain      NG     bandwidth  worst-case span        swing");
+    println!("  stage                 type            part               gain      NG     band (-3 dB)          worst-case span        swing");
     for s in &report.stages {
         let gain = match s.gains.as_slice() {
             [] => "-".to_string(),
@@ -31,13 +36,13 @@ pub(crate) fn cmd_check(path: &Path, sets: &[String]) -> Result<(), Failure> {
             gs => format!("{:+.3}x{}", gs[0], gs.len()),
         };
         println!(
-            "  {:<21} {:<15} {:<18} {:<9} {:<6} {:<10} {:<22} {}",
+            "  {:<21} {:<15} {:<18} {:<9} {:<6} {:<21} {:<22} {}",
             s.name,
             s.kind,
             s.part.as_deref().unwrap_or("-"),
             gain,
             s.noise_gain.map_or("-".into(), |g| format!("{g:.2}")),
-            s.bandwidth.map_or("-".into(), |b| fmt_eng(b, "Hz")),
+            band(s.low_corner, s.bandwidth),
             format!("{} .. {}", fmt_eng(s.span.lo, "V"), fmt_eng(s.span.hi, "V")),
             s.swing.map_or("-".into(), |(lo, hi)| format!(
                 "{} .. {}",
@@ -56,6 +61,23 @@ pub(crate) fn cmd_check(path: &Path, sets: &[String]) -> Result<(), Failure> {
         }
     }
     Ok(())
+}
+
+/// The stage's band: `LOW .. HIGH`, or the upper -3 dB point alone for a DC-coupled stage.
+fn band(low: Option<f64>, high: Option<f64>) -> String {
+    let hi = |h: f64| {
+        if h.is_finite() {
+            fmt_eng(h, "Hz")
+        } else {
+            "-".to_string()
+        }
+    };
+    match (low, high) {
+        (Some(l), Some(h)) => format!("{} .. {}", fmt_eng(l, "Hz"), hi(h)),
+        (Some(l), None) => format!("from {}", fmt_eng(l, "Hz")),
+        (None, Some(h)) => hi(h),
+        (None, None) => "-".into(),
+    }
 }
 
 pub(crate) fn tag(kind: WarningKind) -> &'static str {

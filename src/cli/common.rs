@@ -175,6 +175,7 @@ pub(crate) fn measure_streamed(
         None,
     );
     measure::apply_full_levels(&mut m, patch, &streamed.levels);
+    render::complete_thd(patch, &mut m, settings, None).map_err(render_error)?;
     Ok((streamed, m))
 }
 
@@ -201,13 +202,16 @@ pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::
         let mut parts = Vec::new();
         for (label, s) in [
             ("clipping", e.clip_s),
-            ("slew-limited", e.slew_s),
+            ("slewing", e.slew_s),
             ("outside input range", e.cm_out_s),
             ("phase reversed", e.reversed_s),
         ] {
             if s > 0.0 {
                 parts.push(format!("{label} {}", fmt_eng(s, "s")));
             }
+        }
+        if let Some(t) = e.first_clip_s {
+            parts.push(format!("first clip at {}", fmt_eng(t.max(0.0), "s")));
         }
         println!(
             "      {stage}: {}",
@@ -263,5 +267,29 @@ pub(crate) fn load_side(path: &Path, name: &str, sets: &[String]) -> Result<Patc
         load(path, sets)
     } else {
         railsong::patch::load_variant(path, Some(name), sets).map_err(Failure::bad_input)
+    }
+}
+
+/// `" (file X)"` when the file's band-limited peak differs from the circuit's by more than
+/// 0.1 %, else nothing.
+pub(crate) fn file_peak_note(f: &railsong::analysis::OutputFigures) -> String {
+    match (f.peak_v, f.file_peak_v) {
+        (Some(c), Some(p)) if (p - c).abs() > 1e-3 * c.abs().max(1e-9) => {
+            format!(" (file {})", fmt_eng(p, "V"))
+        }
+        _ => String::new(),
+    }
+}
+
+/// The alias figure, once per part, for the stages that feed the chosen outputs.
+pub(crate) fn print_alias(lines: &[measure::AliasLine], oversample: usize) {
+    for l in lines {
+        println!(
+            "  alias figure of part {} (stage{} {}) at x{oversample}: {:.1} dBc, a fixed probe of the part (5 kHz sine 7 dB past the swing through a unity inverter), not measured on this render",
+            l.part,
+            if l.stages.len() > 1 { "s" } else { "" },
+            l.stages.join(", "),
+            l.dbc
+        );
     }
 }

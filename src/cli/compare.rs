@@ -43,6 +43,8 @@ pub(crate) struct Compared {
     pub ma: Measurement,
     /// Patch B.
     pub pb: Patch,
+    /// Figures of B.
+    pub mb: Measurement,
     /// One comparison per output.
     pub results: Vec<OutputComparison>,
     /// How B was matched.
@@ -114,6 +116,7 @@ pub(crate) fn compare_sides(
         ra,
         ma,
         pb,
+        mb,
         results,
         matching,
         layout,
@@ -125,6 +128,7 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         .map_err(|e| Failure::bad_input(format!("--segment {}: {e}", args.segment)))?;
     // Refuse early, before rendering, when the folder holds files railsong did not write.
     let pa = load_side(args.patch, args.a, args.sets)?;
+    let fade = args.flags.edge_fade(pa.frames(), pa.rate)?;
     let dir = args.flags.out.clone().unwrap_or_else(|| {
         default_dir(&format!("{}-{}-vs-{}", stem_of(args.patch), args.a, args.b))
     });
@@ -183,13 +187,10 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             (&fab, &c.alternating),
             (&fd, &c.difference),
         ] {
-            if g == 1.0 {
-                folder.write(name, spec, data)
-            } else {
-                let s: Vec<f64> = data.iter().map(|x| x * g).collect();
-                folder.write(name, spec, &s)
-            }
-            .map_err(signal_error)?;
+            // faded at the edges (the comparison's figures come from the unfaded renders)
+            let mut s: Vec<f64> = data.iter().map(|x| x * g).collect();
+            fade.apply(0, &mut s);
+            folder.write(name, spec, &s).map_err(signal_error)?;
         }
         results.push(c);
     }
@@ -205,11 +206,12 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         .write_text("compare.json", &text)
         .map_err(signal_error)?;
     if args.flags.plots {
-        for (side, p) in [("A", &pa), ("B", &pb)] {
-            let figs = railsong::report::plots(p, None).map_err(render_error)?;
+        for (side, p, label) in [("A", &pa, args.a), ("B", &pb, args.b)] {
+            let figs =
+                railsong::report::side_plots(p, None, Some((side, label))).map_err(render_error)?;
             for f in figs {
                 folder
-                    .write_text(&format!("{}-{side}-{}.svg", f.output, f.kind), &f.svg)
+                    .write_text(&f.file_name(), &f.svg)
                     .map_err(signal_error)?;
             }
         }
@@ -244,10 +246,12 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             None => println!("  difference (A minus matched B) is silent: the two are identical"),
         }
         println!(
-            "  {}-AB.wav alternates in {} segments with {} equal-power crossfades:",
+            "  {}-AB.wav alternates in {} segments with {} crossfades for sides of correlation \
+             {:.3} (1: equal gain, 0: equal power):",
             c.output,
             fmt_eng(seg, "s"),
-            fmt_eng(FADE_S, "s")
+            fmt_eng(FADE_S, "s"),
+            c.crossfade_correlation
         );
         let key: Vec<String> = c
             .segments

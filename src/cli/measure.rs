@@ -2,7 +2,7 @@
 
 use std::path::{Path, PathBuf};
 
-use railsong::analysis::sweep::level_at_thd;
+use railsong::analysis::sweep;
 use railsong::analysis::{Settings, TestSignal};
 use railsong::measure;
 use railsong::model::{Patch, Wave};
@@ -11,19 +11,21 @@ use railsong::signal::OutputDir;
 use railsong::units::{self, fmt_eng, Level};
 
 use super::common::{
-    check_length, measure_streamed, print_events, render_error, run_patch, signal_error,
+    check_length, file_peak_note, load_side, measure_streamed, print_alias, print_events,
+    render_error, run_patch, signal_error,
 };
-use super::{load, Failure};
+use super::Failure;
 
 pub(crate) fn cmd_measure(
     path: &Path,
+    variant: Option<&str>,
     sets: &[String],
     output: Option<&str>,
     (json, csv, long): (bool, bool, bool),
     settings: &Settings,
     plots: Option<(PathBuf, bool)>,
 ) -> Result<(), Failure> {
-    let patch = load(path, sets)?;
+    let patch = load_side(path, variant.unwrap_or("base"), sets)?;
     check_length(&patch, long)?;
     let mut folder = match &plots {
         Some((dir, force)) => Some(OutputDir::open(dir, *force).map_err(signal_error)?),
@@ -84,8 +86,9 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
         println!();
         println!("output {} (from {})", o.name, r.from);
         println!(
-            "  level       peak {}  rms {}  dc {}  crest {}  ({} / {} / {})",
+            "  level       peak {}{}  rms {} (AC)  dc {}  crest {}  ({} / {} / {})",
             opt(f.peak_v, " V", 3),
+            file_peak_note(f),
             opt(f.rms_v, " V", 3),
             opt(f.dc_v.map(|d| d * 1e3), " mV", 2),
             opt(f.crest_db, " dB", 1),
@@ -98,7 +101,7 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
             opt(f.headroom_pos_db, " dB", 1),
             opt(f.headroom_neg_db, " dB", 1)
         );
-        if f.thd_percent.is_some() {
+        if f.thd_percent.is_some() || f.thdn_db.is_some() {
             println!(
                 "  distortion  fundamental {}  THD {} ({})  THD+N {}  SINAD {}  ENOB {}",
                 opt(f.fundamental_hz, " Hz", 2),
@@ -120,7 +123,9 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
                     }
                 })
                 .collect();
-            println!("  harmonics   {} (dBc)", h.join("  "));
+            if !h.is_empty() {
+                println!("  harmonics   {} (dBc)", h.join("  "));
+            }
         }
         if f.imd_smpte_percent.is_some() {
             println!(
@@ -182,9 +187,26 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
         fmt_eng(s.full_scale_v, "V"),
         if s.noise { "on" } else { "off" }
     );
-    for (stage, dbc) in &s.alias_dbc {
-        println!("  alias figure at this oversampling, {stage}: {dbc:.1} dBc");
-    }
+    println!(
+        "  spectral captures start at {} (settle time); THD re the fundamental, THD+N and SINAD re the whole signal in band (SINAD = -THD+N), rms is AC",
+        fmt_eng(s.settle_s, "s")
+    );
+    let lines: Vec<measure::AliasLine> = s
+        .alias_dbc
+        .iter()
+        .map(|(part, dbc)| measure::AliasLine {
+            part: part.clone(),
+            stages: patch
+                .stages
+                .iter()
+                .filter(|st| st.part.as_ref().is_some_and(|p| &p.name == part))
+                .filter(|st| m.outputs.values().any(|o| o.events.contains_key(&st.name)))
+                .map(|st| st.name.clone())
+                .collect(),
+            dbc: *dbc,
+        })
+        .collect();
+    print_alias(&lines, s.oversample);
 }
 
 /// Parse `SOURCE=FROM..TO`.
@@ -206,22 +228,29 @@ pub(crate) fn parse_sweep_spec(spec: &str) -> Result<(String, String, String), F
     ))
 }
 
+#[allow(clippy::too_many_arguments)]
 pub(crate) fn cmd_level_sweep(
     path: &Path,
+    variant: Option<&str>,
     sets: &[String],
     spec: &str,
     steps: usize,
     settings: &Settings,
-    json: bool,
-    csv: bool,
+    (json, csv): (bool, bool),
+    plots: Option<(PathBuf, bool)>,
 ) -> Result<(), Failure> {
+    let side = variant.unwrap_or("base");
     let (src, from, to) = parse_sweep_spec(spec)?;
     if steps < 2 {
         return Err(Failure::bad_input(format!(
             "--steps {steps}: expected 2 or more"
         )));
     }
-    let base = load(path, sets)?;
+    let base = load_side(path, side, sets)?;
+    let mut folder = match &plots {
+        Some((dir, force)) => Some(OutputDir::open(dir, *force).map_err(signal_error)?),
+        None => None,
+    };
     if !base.sources.iter().any(|s| s.name == src) {
         return Err(Failure::bad_input(format!(
             "--level-sweep: no source '{src}' in {}",
@@ -257,16 +286,27 @@ pub(crate) fn cmd_level_sweep(
             "--level-sweep: source '{src}' is not a periodic wave (sine, square, triangle, saw or pulse), so THD has no fundamental"
         )));
     }
+    let at_level = |v: f64| -> Result<measure::Measurement, Failure> {
+        let mut s = sets.to_vec();
+        s.push(format!("sources.{src}.amp={v} {unit}"));
+        let patch = load_side(path, side, &s)?;
+        let run = run_patch(&patch, false, false)?;
+        let mut m = measure::measure(&patch, &run, None, settings, None, tone);
+        railsong::render::complete_thd(&patch, &mut m, settings, tone).map_err(render_error)?;
+        Ok(m)
+    };
     let mut rows = Vec::new();
     for k in 0..steps {
         let v = va * (vb / va).powf(k as f64 / (steps - 1) as f64);
-        let mut s = sets.to_vec();
-        s.push(format!("sources.{src}.amp={v} {unit}"));
-        let patch = load(path, &s)?;
-        let run = run_patch(&patch, false, false)?;
-        let m = measure::measure(&patch, &run, None, settings, None, tone);
-        rows.push((v, m));
+        rows.push((v, at_level(v)?));
     }
+    // THD (ratio) of one output at a level, for the bisection (errors end it: None)
+    let thd_of = |name: &str, v: f64| {
+        at_level(v)
+            .ok()
+            .and_then(|m| m.outputs.get(name).and_then(|r| r.figures.thd_percent))
+            .map(|t| t / 100.0)
+    };
     // one table per output
     let outputs: Vec<String> = base.outputs.iter().map(|o| o.name.clone()).collect();
     let mut json_out = serde_json::Map::new();
@@ -282,8 +322,73 @@ pub(crate) fn cmd_level_sweep(
             .iter()
             .filter_map(|(v, t, _)| t.map(|t| (*v, t / 100.0)))
             .collect();
-        let at1 = level_at_thd(&thd_pts, 0.01);
-        let at01 = level_at_thd(&thd_pts, 0.001);
+        // found on the circuit: renders inside the bracketing points, within 0.1 % in level
+        let found = |th: f64| {
+            let (lo, hi) = sweep::bracket(&thd_pts, th)?;
+            sweep::find_crossing(lo, hi, th, sweep::CROSSING_TOLERANCE, &mut |v| {
+                thd_of(name, v)
+            })
+        };
+        let at1 = found(0.01);
+        let at01 = found(0.001);
+        if let Some(folder) = folder.as_mut() {
+            let pts: Vec<(f64, f64)> = thd_pts
+                .iter()
+                .map(|&(v, t)| (v, 100.0 * t))
+                .filter(|&(_, t)| t > 0.0)
+                .collect();
+            // the crossings found on the circuit, marked only where found
+            let crossings: Vec<railsong::plot::Crossing> = [(at01, 0.1), (at1, 1.0)]
+                .into_iter()
+                .filter_map(|(at, y)| {
+                    at.map(|x| railsong::plot::Crossing {
+                        x,
+                        y,
+                        label: format!("{y} % THD at {}", fmt_eng(x, unit)),
+                    })
+                })
+                .collect();
+            let title = format!("{name}: THD against level of {src}");
+            let caption = format!(
+                "{} points; crossings found on the circuit within 0.1 % in level",
+                pts.len()
+            );
+            let series = [railsong::plot::SweepSeries {
+                name: "THD",
+                points: &pts,
+            }];
+            if pts.len() >= 2 {
+                let svg = railsong::plot::sweep_svg(&railsong::plot::SweepPlot {
+                    title: &title,
+                    caption: &caption,
+                    x: railsong::plot::AxisSpec::log(&format!("Level of {src}"), unit),
+                    y: railsong::plot::AxisSpec::log("THD", "%"),
+                    series: &series,
+                    crossings: &crossings,
+                    threshold: Some(railsong::plot::Threshold {
+                        y: 1.0,
+                        label: "1 % THD".into(),
+                    }),
+                });
+                if let Ok(svg) = svg {
+                    let file = format!("{name}-level-sweep.svg");
+                    folder.write_text(&file, &svg).map_err(signal_error)?;
+                    if !json && !csv {
+                        println!("plot written to {}", folder.path().join(&file).display());
+                    }
+                }
+            }
+        }
+        let unmeasured = rows
+            .iter()
+            .filter(|(_, m)| {
+                m.outputs[name]
+                    .figures
+                    .notes
+                    .iter()
+                    .any(|n| n.starts_with("thd:"))
+            })
+            .count();
         if json {
             json_out.insert(
                 name.clone(),
@@ -294,6 +399,8 @@ pub(crate) fn cmd_level_sweep(
                         "level": v, "thd_percent": t, "thdn_db": n})).collect::<Vec<_>>(),
                     "level_at_1_percent": at1,
                     "level_at_0_1_percent": at01,
+                    "crossings": "found on the circuit by bisection within 0.1 % in level; null where THD does not cross",
+                    "points_thd_not_measured": unmeasured,
                 }),
             );
         } else if csv {
@@ -321,9 +428,17 @@ pub(crate) fn cmd_level_sweep(
                     n.map_or("-".into(), |x| format!("{x:.1}"))
                 );
             }
-            let say = |x: Option<f64>, th: &str| match x {
-                Some(l) => println!("  THD reaches {th} at {l:.4} {unit}"),
+            let say = |x: Option<f64>, th: &str| {
+                match x {
+                Some(l) => println!(
+                    "  THD reaches {th} at {l:.4} {unit} (found on the circuit within 0.1 %)"
+                ),
+                None if unmeasured > 0 => println!(
+                    "  THD does not cross {th} where it was measured (not measured at {unmeasured} of {} levels; see measure's notes)",
+                    rows.len()
+                ),
                 None => println!("  THD does not cross {th} in this range"),
+            }
             };
             say(at01, "0.1 %");
             say(at1, "1 %");

@@ -10,8 +10,8 @@ use railsong::signal::{self, Depth, OutputDir, WavSpec};
 use railsong::units::fmt_eng;
 
 use super::common::{
-    check_length, db_or_dash, default_dir, measure_streamed, print_events, render_error,
-    signal_error, stem_of, stream_patch, variant_names,
+    check_length, db_or_dash, default_dir, file_peak_note, measure_streamed, print_alias,
+    print_events, render_error, signal_error, stem_of, stream_patch, variant_names,
 };
 use super::{Failure, RenderFlags};
 
@@ -80,13 +80,19 @@ pub(crate) fn render_to(
         };
         files.push(folder.create(name, spec).map_err(signal_error)?);
     }
+    // The files fade in and out at their edges; the figures see the unfaded signal.
+    let fade = flags.edge_fade(patch.frames(), patch.rate)?;
+    let mut written = vec![0usize; files.len()];
     let mut scratch: Vec<f64> = Vec::new();
     let (streamed, m) = measure_streamed(patch, &Settings::default(), None, true, &mut |i, x| {
-        if gains[i] == 1.0 {
+        let start = written[i];
+        written[i] += x.len();
+        if gains[i] == 1.0 && !fade.touches(start, x.len()) {
             files[i].write(x)
         } else {
             scratch.clear();
             scratch.extend(x.iter().map(|v| v * gains[i]));
+            fade.apply(start, &mut scratch);
             files[i].write(&scratch)
         }
     })?;
@@ -117,9 +123,10 @@ pub(crate) fn render_to(
         };
         let f = &m.outputs[&o.name].figures;
         println!(
-            "  {}: peak {}  rms {}  headroom {} / {}{}{}",
+            "  {}: peak {}{}  rms {} (AC)  headroom {} / {}{}{}",
             name,
             f.peak_v.map_or("-".into(), |v| fmt_eng(v, "V")),
+            file_peak_note(f),
             f.rms_v.map_or("-".into(), |v| fmt_eng(v, "V")),
             db_or_dash(f.headroom_pos_db, "to +swing"),
             db_or_dash(f.headroom_neg_db, "to -swing"),
@@ -132,12 +139,13 @@ pub(crate) fn render_to(
         );
         print_events(&m.outputs[&o.name].events);
     }
-    for a in &run.alias {
+    if let Some((stage, t)) = measure::first_clip(&m) {
         println!(
-            "  alias figure of '{}' in {} at x{}: {:.1} dBc (5 kHz tone 7 dB past the swing)",
-            a.part, a.stage, run.oversample, a.dbc
+            "  first clip: stage {stage} at {}",
+            fmt_eng(t.max(0.0), "s")
         );
     }
+    print_alias(&measure::alias_lines(patch, run, None), run.oversample);
     folder
         .write_text(&figures_name, &measure::to_json(&m))
         .map_err(signal_error)?;
@@ -201,6 +209,7 @@ pub(crate) fn render_variants(
         force: flags.force,
         plots: false,
         long: flags.long,
+        fade: flags.fade.clone(),
     };
     for v in &names {
         let p = railsong::patch::load_variant(path, Some(v), sets).map_err(Failure::bad_input)?;

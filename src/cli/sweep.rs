@@ -3,6 +3,7 @@
 use std::path::{Path, PathBuf};
 
 use railsong::analysis::Settings;
+use railsong::measure;
 use railsong::parts::eseries::Series;
 use railsong::signal::OutputDir;
 use railsong::study::sweep::{self, PatchText, Spacing, Value};
@@ -153,8 +154,38 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                     .map(|t| (p.value.x, t))
             })
             .collect();
-        let at1 = sweep::crossing(&thd, 1.0);
-        let at01 = sweep::crossing(&thd, 0.1);
+        // the crossings found on the circuit (extra renders inside the bracketing points)
+        let xunit = sweep::parse_quantity(&values[0].text)
+            .map(|q| q.1)
+            .unwrap_or_default();
+        let found = |th: f64| {
+            sweep::find_thd_crossing(
+                &src,
+                args.with,
+                &path,
+                &xunit,
+                &thd,
+                th,
+                railsong::analysis::sweep::CROSSING_TOLERANCE,
+                &Settings::default(),
+                &o.name,
+            )
+            .map_err(study_error)
+        };
+        let at1 = found(1.0)?;
+        let at01 = found(0.1)?;
+        // points where THD applied (a tone) but could not be measured (e.g. harmonics
+        // above Nyquist): a sweep must not claim THD stays low there
+        let unmeasured = pts
+            .iter()
+            .filter(|p| {
+                p.measurement.outputs[&o.name]
+                    .figures
+                    .notes
+                    .iter()
+                    .any(|n| n.starts_with("thd:"))
+            })
+            .count();
         if let Some(folder) = folder.as_mut() {
             let log_x = args.log || args.series.is_some();
             for (k, f) in figures.iter().enumerate() {
@@ -167,25 +198,38 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                 if pts.len() < 2 || (log_x && pts.iter().any(|p| p.0 <= 0.0)) {
                     continue;
                 }
+                // axes named by what they show, with units and engineering ticks ("100k")
                 let axis = |log: bool, label: &str, unit: &str| {
-                    if log {
+                    let mut a = if log {
                         railsong::plot::AxisSpec::log(label, unit)
                     } else {
                         railsong::plot::AxisSpec::linear(label, unit)
+                    };
+                    if !matches!(unit, "%" | "dB" | "dBFS" | "dBc") {
+                        a.format = railsong::plot::TickFormat::Si;
                     }
+                    a
                 };
+                let (y_label, y_unit) = measure::figure_label(f);
+                // the crossings found on the circuit, marked only where found
                 let crossings: Vec<railsong::plot::Crossing> = if f == "thd_percent" {
-                    at1.map(|x| railsong::plot::Crossing {
-                        x,
-                        y: 1.0,
-                        label: format!("1 % THD at {}", fmt_eng(x, "")),
-                    })
-                    .into_iter()
-                    .collect()
+                    [(at01, 0.1), (at1, 1.0)]
+                        .into_iter()
+                        .filter_map(|(at, y)| {
+                            at.map(|x| railsong::plot::Crossing {
+                                x,
+                                y,
+                                label: format!(
+                                    "{y} % THD at {}",
+                                    fmt_eng(x, measure::key_unit(&path))
+                                ),
+                            })
+                        })
+                        .collect()
                 } else {
                     Vec::new()
                 };
-                let title = format!("{}: {f} against {path}", o.name);
+                let title = format!("{}: {y_label} against {path}", o.name);
                 let caption = format!("{} points; each a full render and measurement", pts.len());
                 let series = [railsong::plot::SweepSeries {
                     name: f,
@@ -194,8 +238,8 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                 let svg = railsong::plot::sweep_svg(&railsong::plot::SweepPlot {
                     title: &title,
                     caption: &caption,
-                    x: axis(log_x, &path, ""),
-                    y: axis(log_y, f, ""),
+                    x: axis(log_x, &path, measure::key_unit(&path)),
+                    y: axis(log_y, &y_label, y_unit),
                     series: &series,
                     crossings: &crossings,
                     threshold: (f == "thd_percent").then(|| railsong::plot::Threshold {
@@ -254,16 +298,19 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                     .unwrap_or_default();
                 println!("  {:>14}  {}", fmt_eng(v.x, &unit), cells.join(""));
             }
-            if !thd.is_empty() {
-                let xunit = sweep::parse_quantity(&values[0].text)
-                    .map(|q| q.1)
-                    .unwrap_or_default();
-                let say = |x: Option<f64>, th: &str| match x {
+            if !thd.is_empty() || unmeasured > 0 {
+                let say = |x: Option<f64>, th: &str| {
+                    match x {
                     Some(l) => println!(
-                        "  THD reaches {th} at {} ({path} = {l:.6})",
+                        "  THD reaches {th} at {} ({path} = {l:.6}; found on the circuit within 0.1 %)",
                         fmt_eng(l, &xunit)
                     ),
+                    None if unmeasured > 0 => println!(
+                        "  THD does not cross {th} where it was measured (not measured at {unmeasured} of {} points; see measure's notes)",
+                        pts.len()
+                    ),
                     None => println!("  THD does not cross {th} in this range"),
+                }
                 };
                 say(at01, "0.1 %");
                 say(at1, "1 %");

@@ -42,8 +42,22 @@ pub(crate) fn series_tolerance(s: Series) -> f64 {
 /// `[patch] tolerance`, else 1 %; capacitors: `--cap-tol`, else `[patch] cap_tolerance`, else
 /// the resistor tolerance. Per-stage keys in the patch override both for their stage.
 pub(crate) fn tolerances(args: &ToleranceArgs, patch: &Patch) -> Result<Tolerances, Failure> {
-    let pct = |flag: &str, s: &str| {
-        units::parse_percent(s).map_err(|e| Failure::bad_input(format!("{flag} {s}: {e}")))
+    // The flags take percent: "5%" and a bare "5" both mean 5 % (a bare number is never a
+    // fraction here: `--tol 5` must not become 500 %).
+    let pct = |flag: &str, s: &str| -> Result<f64, Failure> {
+        let v =
+            units::parse_percent(s).map_err(|e| Failure::bad_input(format!("{flag} {s}: {e}")))?;
+        let v = if s.trim_end().ends_with('%') {
+            v
+        } else {
+            v / 100.0
+        };
+        if !(v.is_finite() && (0.0..1.0).contains(&v)) {
+            return Err(Failure::bad_input(format!(
+                "{flag} {s}: expected a tolerance from 0 % to below 100 %, e.g. 1% or 5"
+            )));
+        }
+        Ok(v)
     };
     let resistor = match (args.tol, args.series) {
         (Some(t), _) => pct("--tol", t)?,
@@ -109,6 +123,7 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             force: args.flags.force,
             plots: false,
             long: args.flags.long,
+            fade: args.flags.fade.clone(),
         };
         return render_to(&p, &stem_of(args.patch), &flags, Some(&format!("run{i}"))).map(|_| ());
     }

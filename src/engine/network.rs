@@ -119,14 +119,12 @@ pub(crate) fn net_block(
     match np.out_amp {
         Some(a) => {
             let sh = np.circuit.circuit.amps[a].shaper;
-            let (lin_lo, lin_hi) = (sh.lo + sh.w, sh.hi - sh.w);
             for (o, &xn) in own.iter_mut().zip(&nr.drive) {
-                let x1 = nr.x1;
-                let a = 0.5 * (xn - nr.x2).abs();
-                *o = if x1 - a >= lin_lo && x1 + a <= lin_hi {
+                let (x2, x1) = (nr.x2, nr.x1);
+                *o = if sh.inside(x2, x1, xn) {
                     x1
                 } else if antialias {
-                    sh.smooth(x1, a)
+                    sh.smooth(x2, x1, xn)
                 } else {
                     sh.apply(x1)
                 };

@@ -21,6 +21,11 @@ struct StageState {
     slew: u64,
     cm: u64,
     rev: u64,
+    /// Highest and lowest shaped output so far (the circuit's own peaks, internal rate).
+    out_max: f64,
+    out_min: f64,
+    /// Internal sample index (from the first pre-roll sample) of the first clipped sample.
+    first_clip: Option<u64>,
 }
 
 impl StageState {
@@ -37,6 +42,9 @@ impl StageState {
             slew: 0,
             cm: 0,
             rev: 0,
+            out_max: f64::NEG_INFINITY,
+            out_min: f64::INFINITY,
+            first_clip: None,
         }
     }
 
@@ -52,6 +60,9 @@ impl StageState {
         self.slew = o.slew;
         self.cm = o.cm;
         self.rev = o.rev;
+        self.out_max = o.out_max;
+        self.out_min = o.out_min;
+        self.first_clip = o.first_clip;
     }
 }
 
@@ -86,6 +97,8 @@ pub struct Engine {
     steps: u64,
     /// The first failure of a network step.
     failure: Option<EngineError>,
+    /// Internal blocks computed since the last reset.
+    blocks: u64,
 }
 
 impl std::fmt::Debug for Engine {
@@ -229,6 +242,7 @@ impl Engine {
             nets: plan.networks.iter().map(|n| NetRun::new(n, b)).collect(),
             steps: 0,
             failure: None,
+            blocks: 0,
             plan,
         };
         e.reset();
@@ -286,6 +300,9 @@ impl Engine {
             st.slew = 0;
             st.cm = 0;
             st.rev = 0;
+            st.out_max = f64::NEG_INFINITY;
+            st.out_min = f64::INFINITY;
+            st.first_clip = None;
         }
         for (np, nr) in self.plan.networks.iter().zip(self.nets.iter_mut()) {
             nr.reset(np);
@@ -312,12 +329,14 @@ impl Engine {
         self.skip = self.plan.discard;
         self.fast_blocks = 0;
         self.full_blocks = 0;
+        self.blocks = 0;
     }
 
     /// Event durations per op-amp stage (and per op-amp of every network, by its name) so
     /// far, seconds.
     pub fn events(&self) -> Vec<StageEvents> {
         let h = 1.0 / self.plan.internal_rate;
+        let preroll = self.plan.preroll as f64;
         let mut v: Vec<StageEvents> = self
             .plan
             .stages
@@ -329,6 +348,13 @@ impl Engine {
                 slew_s: st.slew as f64 * h,
                 cm_out_s: st.cm as f64 * h,
                 reversed_s: st.rev as f64 * h,
+                // the clip counted at buffer index j is the drive of index j - 1, which the
+                // stage computed from source samples `latency - 1` earlier
+                first_clip_s: st
+                    .first_clip
+                    .map(|j| (j as f64 - sp.latency as f64 - preroll) * h),
+                peak_pos_v: (st.out_max.is_finite()).then_some(st.out_max),
+                peak_neg_v: (st.out_min.is_finite()).then_some(st.out_min),
             })
             .collect();
         for (np, nr) in self.plan.networks.iter().zip(&self.nets) {
@@ -339,6 +365,10 @@ impl Engine {
                     slew_s: ev.slew as f64 * h,
                     cm_out_s: ev.cm as f64 * h,
                     reversed_s: ev.rev as f64 * h,
+                    // not tracked for network op-amps yet
+                    first_clip_s: None,
+                    peak_pos_v: None,
+                    peak_neg_v: None,
                 });
             }
         }
@@ -390,7 +420,6 @@ impl Engine {
     fn block_impl(&mut self) {
         let b = self.plan.block;
         let hist = self.plan.history;
-        let ns = self.plan.sources.len();
         for (i, f) in self.feeds.iter_mut().enumerate() {
             f.fill(&mut self.bufs[i][hist..hist + b]);
         }
@@ -483,6 +512,7 @@ impl Engine {
                 &self.xbuf,
                 &mut own[hist..hist + b],
                 self.plan.antialias,
+                self.blocks * b as u64,
             );
             self.bufs[sp.node] = own;
         }
@@ -505,7 +535,7 @@ impl Engine {
             buf.copy_within(b..b + hist, 0);
         }
         self.steps += b as u64;
-        let _ = ns;
+        self.blocks += 1;
         self.avail = b / kf;
         self.pos = self.skip.min(self.avail);
         self.skip -= self.pos;
@@ -803,7 +833,11 @@ fn full_block(
         let xn = if xn.is_finite() { xn } else { v };
         v = xn.clamp(sp.state_lo, sp.state_hi);
         *xo = xn;
-        if (f * (pn - sp.b * v)).abs() > sp.vov {
+        // Slewing: the drive is past the linear range and the output is free to move. Not
+        // while it is held at the swing (or current) limit, and not while latched by a phase
+        // reversal (f <= 0).
+        let held = xn <= sp.state_lo || xn >= sp.state_hi;
+        if f > 0.0 && !held && (f * (pn - sp.b * v)).abs() > sp.vov {
             st.slew += 1;
         }
         let vminus = mrest + sp.b * v;
@@ -826,7 +860,14 @@ fn full_block(
 
 /// Output clipper with one sample of lookahead: writes y[n-1] at position n.
 #[inline(always)]
-fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], aa: bool) {
+fn shape_block(
+    sp: &StagePlan,
+    st: &mut StageState,
+    x: &[f64],
+    out: &mut [f64],
+    aa: bool,
+    start: u64,
+) {
     let sh = sp.shaper;
     let (lin_lo, lin_hi) = (sh.lo + sh.w, sh.hi - sh.w);
     let mut x1 = st.x1;
@@ -835,34 +876,74 @@ fn shape_block(sp: &StagePlan, st: &mut StageState, x: &[f64], out: &mut [f64], 
     // Whole block strictly inside the linear region: the output is the drive, one sample
     // late (same values as the per-sample branch below).
     if b >= 2 {
-        let inside = |xm: f64, xc: f64, xp: f64| {
-            let a = 0.5 * (xp - xm).abs();
-            (xc - a > lin_lo) & (xc + a < lin_hi)
-        };
-        let mut all = inside(x2, x1, x[0]) & inside(x1, x[0], x[1]);
+        let first = sh.inside(x2, x1, x[0]) & sh.inside(x1, x[0], x[1]);
         out[0] = x1;
         out[1] = x[0];
-        for (((o, &xm), &xc), &xp) in out[2..].iter_mut().zip(x).zip(&x[1..]).zip(&x[2..]) {
-            *o = xc;
-            all &= inside(xm, xc, xp);
+        out[2..].copy_from_slice(&x[1..b - 1]);
+        // One pass of eight independent lanes (compare-and-select, which vectorises): the
+        // extremes of the local quadratic's bounds decide "inside" (as `Shaper::inside`: the
+        // three samples widened by |q| / 4), those of xc are the output's peaks.
+        let n = b - 2;
+        let (xm, xc, xp) = (&x[..n], &x[1..n + 1], &x[2..]);
+        let mut r = [[f64::INFINITY; 8], [f64::NEG_INFINITY; 8]];
+        let mut pk = [[x1.min(x[0]); 8], [x1.max(x[0]); 8]];
+        let lanes = |r: &mut [[f64; 8]; 2], pk: &mut [[f64; 8]; 2], j: usize, m, c: f64, p| {
+            let a = 0.25 * f64::abs(0.5 * (m + p) - c);
+            let lo3 = if m < c { m } else { c };
+            let lo3 = if p < lo3 { p } else { lo3 };
+            let hi3 = if m > c { m } else { c };
+            let hi3 = if p > hi3 { p } else { hi3 };
+            let (d, u) = (lo3 - a, hi3 + a);
+            r[0][j] = if d < r[0][j] { d } else { r[0][j] };
+            r[1][j] = if u > r[1][j] { u } else { r[1][j] };
+            pk[0][j] = if c < pk[0][j] { c } else { pk[0][j] };
+            pk[1][j] = if c > pk[1][j] { c } else { pk[1][j] };
+        };
+        let (cm, cc, cp) = (xm.chunks_exact(8), xc.chunks_exact(8), xp.chunks_exact(8));
+        let rest = cm.remainder().len();
+        for ((m4, c4), p4) in cm.zip(cc).zip(cp) {
+            for j in 0..8 {
+                lanes(&mut r, &mut pk, j, m4[j], c4[j], p4[j]);
+            }
         }
-        if all {
+        for k in n - rest..n {
+            lanes(&mut r, &mut pk, k % 8, xm[k], xc[k], xp[k]);
+        }
+        let lo8 = |v: &[f64; 8]| {
+            v.iter()
+                .fold(f64::INFINITY, |a, &b| if b < a { b } else { a })
+        };
+        let hi8 = |v: &[f64; 8]| {
+            v.iter()
+                .fold(f64::NEG_INFINITY, |a, &b| if b > a { b } else { a })
+        };
+        if first && lo8(&r[0]) > lin_lo && hi8(&r[1]) < lin_hi {
             st.x2 = x[b - 2];
             st.x1 = x[b - 1];
+            st.out_min = st.out_min.min(lo8(&pk[0]));
+            st.out_max = st.out_max.max(hi8(&pk[1]));
             return;
         }
     }
     let mut clip = 0u64;
-    for (o, &xn) in out.iter_mut().zip(x) {
-        let a = 0.5 * (xn - x2).abs();
-        *o = if x1 - a >= lin_lo && x1 + a <= lin_hi {
+    for (t, (o, &xn)) in out.iter_mut().zip(x).enumerate() {
+        *o = if sh.inside(x2, x1, xn) {
             x1
         } else if aa {
-            sh.smooth(x1, a)
+            sh.smooth(x2, x1, xn)
         } else {
             sh.apply(x1)
         };
-        clip += u64::from(sh.clipping(x1));
+        let c = sh.clipping(x1);
+        if c && st.first_clip.is_none() {
+            st.first_clip = Some(start + t as u64);
+        }
+        clip += u64::from(c);
+        // The circuit's own extremes: the static clamp of the drive (the band-limited value
+        // may pass the limit by the kernel's smoothing; that is a property of the file).
+        let v = sh.apply(x1);
+        st.out_max = st.out_max.max(v);
+        st.out_min = st.out_min.min(v);
         x2 = x1;
         x1 = xn;
     }

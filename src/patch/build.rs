@@ -494,6 +494,10 @@ fn duration(t: &Tab, key: &str) -> R<f64> {
 }
 
 fn source(t: &Tab, name: &str, rate: f64, base_dir: &Path) -> R<Source> {
+    if !t.has("wave") {
+        // a misspelt key may be the missing one: report it first
+        t.check_keys(&schema::all_source_keys(), &[], "to a source")?;
+    }
     let wave = t.word("wave", schema::WAVES)?.ok_or_else(|| {
         t.err_here(Problem::Missing {
             key: "wave".into(),
@@ -922,6 +926,10 @@ const FEEDBACK_EXAMPLE: &str =
     "a table like { r = \"100k\" } or { pot = \"100k\", taper = \"log\", at = 0.5 }";
 
 fn stage(t: &Tab, name: &str, env: &StageEnv) -> R<Stage> {
+    if !t.has("type") {
+        // a misspelt key may be the missing one ('tpye'): report it first
+        t.check_keys(&schema::all_stage_keys(), &[], "to a stage")?;
+    }
     let kind = t.word("type", schema::STAGE_TYPES)?.ok_or_else(|| {
         t.err_here(Problem::Missing {
             key: "type".into(),

@@ -35,9 +35,10 @@
 //! [`load_wav`] reads PCM 8/16/24/32-bit and 32-bit float (plain or WAVE_FORMAT_EXTENSIBLE),
 //! picks or mixes channels, converts to volts and resamples. [`WavWriter`] writes calibrated,
 //! dithered, clipped-and-counted PCM or float to any `Write + Seek`; [`OutputDir`] adds atomic
-//! writes and an overwrite guard on top.
+//! writes and an overwrite guard on top. [`EdgeFade`] fades a file in and out at its edges.
 
 mod control;
+pub mod fade;
 mod files;
 mod gate;
 mod noise;
@@ -51,6 +52,7 @@ use std::path::PathBuf;
 use crate::model::{Source, Wave};
 
 pub use control::{Dc, Ramp, Steps};
+pub use fade::{EdgeFade, DEFAULT_FADE_S};
 pub use files::{check_file_name, OutputDir, WavFile, MANIFEST_NAME};
 pub use gate::Gated;
 pub use noise::{PinkNoise, WhiteNoise, PINK_LOW_HZ};

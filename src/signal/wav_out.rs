@@ -240,8 +240,8 @@ fn header(spec: &WavSpec, data: u32, frames: u32) -> Vec<u8> {
 pub const LISTEN_PEAK_DBFS: f64 = -1.0;
 
 /// Gain (a factor on volts) for a comfortable listening copy: it brings the RMS of `samples`
-/// to `target_rms_dbfs`, where RMS in dBFS is `20 log10(rms / full_scale)` (full scale as a
-/// constant level, so a full-scale sine reads -3.01 dB), but never lets the peak exceed
+/// to `target_rms_dbfs`, in the convention of the figures (AES17: a full-scale sine reads
+/// 0 dBFS, so RMS in dBFS is `20 log10(sqrt 2 rms / full_scale)`), but never lets the peak exceed
 /// [`LISTEN_PEAK_DBFS`] (-1 dBFS): when the two disagree the peak guard wins and the copy is
 /// quieter than asked (a crest factor above `LISTEN_PEAK_DBFS - target` dB). Empty, silent or
 /// non-finite input, or an unusable `full_scale`, gives 1.
@@ -267,7 +267,8 @@ pub fn listen_gain_from(rms: f64, peak: f64, target_rms_dbfs: f64, full_scale: f
     if !(rms.is_finite() && rms > 0.0 && peak.is_finite() && peak > 0.0) {
         return 1.0;
     }
-    let want = full_scale * 10f64.powf(target_rms_dbfs / 20.0) / rms;
+    // AES17: the RMS of a sine at `target` dBFS is its peak over sqrt 2
+    let want = full_scale * 10f64.powf(target_rms_dbfs / 20.0) / (std::f64::consts::SQRT_2 * rms);
     let guard = full_scale * 10f64.powf(LISTEN_PEAK_DBFS / 20.0) / peak;
     want.min(guard)
 }

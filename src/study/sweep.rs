@@ -322,7 +322,8 @@ pub fn run(
             let p =
                 patch::parse_str_variant(src.text, src.origin, src.base_dir, src.variant, &sets)?;
             let run = render::render(&p, &RenderOptions::default(), &mut |_| {})?;
-            let measurement = measure::measure(&p, &run, None, settings, None, None);
+            let mut measurement = measure::measure(&p, &run, None, settings, None, None);
+            render::complete_thd(&p, &mut measurement, settings, None)?;
             tick();
             Ok(Point {
                 value: v.clone(),
@@ -330,6 +331,55 @@ pub fn run(
             })
         })
         .collect()
+}
+
+/// Where THD (`thd_percent`) of output `output` reaches `threshold` (%) as `path` varies,
+/// found on the circuit: the first upward crossing between the sweep's `points` (value,
+/// THD %) brackets it, then [`crate::analysis::sweep::find_crossing`] renders and measures
+/// the patch at values inside the bracket (each a `PATH=VALUE` override with `unit`, the
+/// sweep's own unit) until the value is known within `rel_tol` (0.1 %:
+/// [`crate::analysis::sweep::CROSSING_TOLERANCE`]). `Ok(None)` when the sweep does not
+/// cross, or THD cannot be measured inside the bracket.
+#[allow(clippy::too_many_arguments)]
+pub fn find_thd_crossing(
+    src: &PatchText,
+    fixed: &[String],
+    path: &str,
+    unit: &str,
+    points: &[(f64, f64)],
+    threshold: f64,
+    rel_tol: f64,
+    settings: &Settings,
+    output: &str,
+) -> Result<Option<f64>, StudyError> {
+    let Some((lo, hi)) = crate::analysis::sweep::bracket(points, threshold) else {
+        return Ok(None);
+    };
+    let mut failed: Option<StudyError> = None;
+    let mut eval = |x: f64| -> Option<f64> {
+        let r = (|| -> Result<Option<f64>, StudyError> {
+            let mut sets = fixed.to_vec();
+            sets.push(format!("{path}={}", value(x, unit).text));
+            let p =
+                patch::parse_str_variant(src.text, src.origin, src.base_dir, src.variant, &sets)?;
+            let run = render::render(&p, &RenderOptions::default(), &mut |_| {})?;
+            let mut m = measure::measure(&p, &run, None, settings, Some(output), None);
+            render::complete_thd(&p, &mut m, settings, None)?;
+            Ok(m.outputs.get(output).and_then(|r| r.figures.thd_percent))
+        })();
+        match r {
+            Ok(t) => t,
+            Err(e) => {
+                failed = Some(e);
+                None
+            }
+        }
+    };
+    let at = crate::analysis::sweep::find_crossing(lo, hi, threshold, rel_tol, &mut eval);
+    match failed {
+        Some(e) => Err(e),
+        None => Ok(at),
+    }
 }
 
 /// Where a figure crosses `threshold` between points, interpolated on log scales of both
