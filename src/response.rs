@@ -87,6 +87,7 @@ struct Whole {
     c: Circuit,
     src: Vec<usize>,
     out: Vec<usize>,
+    stage: Vec<usize>,
 }
 
 fn dc_level(w: &Wave, offset: f64) -> f64 {
@@ -275,7 +276,12 @@ fn build(patch: &Patch) -> Whole {
         };
         out.push(n);
     }
-    Whole { c, src, out }
+    Whole {
+        c,
+        src,
+        out,
+        stage: stage_node,
+    }
 }
 
 fn unreachable_part() -> crate::parts::OpAmp {
@@ -342,41 +348,57 @@ fn csolve(a: &mut [Complex64], b: &mut [Complex64], n: usize) -> bool {
     true
 }
 
-/// The response from source `source` (index into `patch.sources`) to every output at the
-/// given frequencies.
-pub fn response(patch: &Patch, source: usize, freqs: &[f64]) -> Result<Response, ResponseError> {
-    let w = build(patch);
-    let c = &w.c;
-    // rest operating point (diodes' small-signal conductances)
-    let h = 1.0 / (patch.rate * patch.oversample as f64);
-    let plan = crate::circuit::plan::compile(c.clone(), h)
-        .map_err(|e| ResponseError::Circuit(e.to_string()))?;
-    let mut rest = CircuitState::new(&plan);
-    for (k, s) in patch.sources.iter().enumerate() {
-        rest.vn[w.src[k]] = dc_level(&s.wave, s.offset);
+/// The patch as one circuit, ready for complex solves: its rest (DC) state found once.
+struct Solver {
+    w: Whole,
+    rest: CircuitState,
+    col: Vec<usize>,
+    amp_out: Vec<bool>,
+    n: usize,
+}
+
+impl Solver {
+    fn new(patch: &Patch) -> Result<Solver, ResponseError> {
+        let w = build(patch);
+        let c = &w.c;
+        let h = 1.0 / (patch.rate * patch.oversample as f64);
+        let plan = crate::circuit::plan::compile(c.clone(), h)
+            .map_err(|e| ResponseError::Circuit(e.to_string()))?;
+        let mut rest = CircuitState::new(&plan);
+        for (k, s) in patch.sources.iter().enumerate() {
+            rest.vn[w.src[k]] = dc_level(&s.wave, s.offset);
+        }
+        rest.rest(&plan)
+            .map_err(|e| ResponseError::Circuit(e.to_string()))?;
+        let free: Vec<usize> = (0..c.nodes.len())
+            .filter(|&i| matches!(c.nodes[i].kind, NodeKind::Free))
+            .collect();
+        let mut col = vec![usize::MAX; c.nodes.len()];
+        for (k, &n) in free.iter().enumerate() {
+            col[n] = k;
+        }
+        let amp_out = (0..c.nodes.len())
+            .map(|n| c.amps.iter().any(|a| a.out == n))
+            .collect();
+        Ok(Solver {
+            n: free.len(),
+            w,
+            rest,
+            col,
+            amp_out,
+        })
     }
-    rest.rest(&plan)
-        .map_err(|e| ResponseError::Circuit(e.to_string()))?;
-    // unknowns: free nodes
-    let free: Vec<usize> = (0..c.nodes.len())
-        .filter(|&i| matches!(c.nodes[i].kind, NodeKind::Free))
-        .collect();
-    let mut col = vec![usize::MAX; c.nodes.len()];
-    for (k, &n) in free.iter().enumerate() {
-        col[n] = k;
-    }
-    let is_amp_out: Vec<Option<usize>> = (0..c.nodes.len())
-        .map(|n| c.amps.iter().position(|a| a.out == n))
-        .collect();
-    let n = free.len();
-    let mut curves: Vec<Vec<Point>> = vec![Vec::with_capacity(freqs.len()); w.out.len()];
-    let zero = Complex64::new(0.0, 0.0);
-    for &hz in freqs {
+
+    /// Every node's complex value at `hz` for a unit signal at `source` (0 Hz: DC gains).
+    fn solve(&self, source: usize, hz: f64) -> Result<Vec<Complex64>, ResponseError> {
+        let (c, col, n) = (&self.w.c, &self.col, self.n);
+        let zero = Complex64::new(0.0, 0.0);
+        let src = self.w.src[source];
         let s = Complex64::new(0.0, std::f64::consts::TAU * hz);
         let mut a = vec![zero; n * n];
         let mut b = vec![zero; n];
         let known = |node: usize| -> Complex64 {
-            if node == w.src[source] {
+            if node == src {
                 Complex64::new(1.0, 0.0)
             } else {
                 zero
@@ -385,7 +407,7 @@ pub fn response(patch: &Patch, source: usize, freqs: &[f64]) -> Result<Response,
         let stamp =
             |a: &mut Vec<Complex64>, b: &mut Vec<Complex64>, x: usize, y: usize, g: Complex64| {
                 for (p, q) in [(x, y), (y, x)] {
-                    if col[p] == usize::MAX || is_amp_out[p].is_some() {
+                    if col[p] == usize::MAX || self.amp_out[p] {
                         continue;
                     }
                     let r = col[p];
@@ -402,7 +424,7 @@ pub fn response(patch: &Patch, source: usize, freqs: &[f64]) -> Result<Response,
                 ElemKind::R(r) => Complex64::new(1.0 / r, 0.0),
                 ElemKind::C(x) => s * x,
                 ElemKind::Junction { is, nvt } => {
-                    let v = (rest.vn[e.a] - rest.vn[e.b]).min(200.0 * nvt);
+                    let v = (self.rest.vn[e.a] - self.rest.vn[e.b]).min(200.0 * nvt);
                     Complex64::new(is / nvt * (v / nvt).exp() + crate::circuit::GMIN, 0.0)
                 }
             };
@@ -424,16 +446,30 @@ pub fn response(patch: &Patch, source: usize, freqs: &[f64]) -> Result<Response,
         if !csolve(&mut a, &mut b, n) {
             return Err(ResponseError::Singular { hz });
         }
-        for (k, &o) in w.out.iter().enumerate() {
-            let v = if col[o] != usize::MAX {
-                b[col[o]]
-            } else {
-                known(o)
-            };
+        Ok((0..c.nodes.len())
+            .map(|k| {
+                if col[k] != usize::MAX {
+                    b[col[k]]
+                } else {
+                    known(k)
+                }
+            })
+            .collect())
+    }
+}
+
+/// The response from source `source` (index into `patch.sources`) to every output at the
+/// given frequencies.
+pub fn response(patch: &Patch, source: usize, freqs: &[f64]) -> Result<Response, ResponseError> {
+    let sv = Solver::new(patch)?;
+    let mut curves: Vec<Vec<Point>> = vec![Vec::with_capacity(freqs.len()); sv.w.out.len()];
+    for &hz in freqs {
+        let v = sv.solve(source, hz)?;
+        for (k, &o) in sv.w.out.iter().enumerate() {
             curves[k].push(Point {
                 hz,
-                gain_db: 20.0 * v.norm().max(1e-300).log10(),
-                phase_deg: v.arg().to_degrees(),
+                gain_db: 20.0 * v[o].norm().max(1e-300).log10(),
+                phase_deg: v[o].arg().to_degrees(),
             });
         }
     }
@@ -448,6 +484,21 @@ pub fn response(patch: &Patch, source: usize, freqs: &[f64]) -> Result<Response,
         );
     }
     Ok(Response { outputs })
+}
+
+/// Static (DC, small-signal) gain from every source to every stage's output:
+/// `gains[stage][source]`.
+pub fn dc_gains(patch: &Patch) -> Result<Vec<Vec<f64>>, ResponseError> {
+    let sv = Solver::new(patch)?;
+    let per_source: Vec<Vec<Complex64>> = (0..patch.sources.len())
+        .map(|s| sv.solve(s, 0.0))
+        .collect::<Result<_, _>>()?;
+    Ok(sv
+        .w
+        .stage
+        .iter()
+        .map(|&node| per_source.iter().map(|v| v[node].re).collect())
+        .collect())
 }
 
 /// Frequencies where the gain crosses 3 dB below its largest value on the grid (log

@@ -543,3 +543,28 @@ fn example_network_patches_render() {
     }
     assert!(n >= 10, "{n} example patches");
 }
+
+// `check` reads a network's static gain from each source off the same circuit (0 Hz solve):
+// the difference amplifier's +R2/R1 from the hot input and -R2/R1 from the cold one [S]
+// (CHECKS.md), with the worst-case span their sum.
+#[test]
+fn check_reads_static_gains_of_a_network() {
+    let text = format!(
+        "{HEAD}{}{}[stages.d]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"p\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"hot\", \"p\"] }}, {{ r = \"47k\", ends = [\"p\", \"gnd\"] }}, \
+{{ r = \"10k\", ends = [\"cold\", \"m\"] }}, {{ r = \"47k\", ends = [\"m\", \"y\"] }}]\n\
+out = \"y\"\n[outputs.out]\nfrom = \"d\"\n",
+        sine("hot", 1000.0, 1.0),
+        sine("cold", 1000.0, 0.5)
+    );
+    let r = railsong::check::check(&patch(&text));
+    let g = &r.stages[0].gains;
+    assert_eq!(g.len(), 2);
+    assert!(
+        (g[0] - 4.7).abs() < 1e-6 && (g[1] + 4.7).abs() < 1e-6,
+        "{g:?}"
+    );
+    let span = r.stages[0].span;
+    assert!((span.hi - 4.7 * 1.5).abs() < 1e-6, "{span:?}");
+}
