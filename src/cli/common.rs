@@ -7,7 +7,7 @@ use railsong::engine::Run;
 use railsong::measure;
 use railsong::model::Patch;
 use railsong::render::{self, RenderError, RenderOptions};
-use railsong::signal::{Depth, SignalError};
+use railsong::signal::{Depth, OutputDir, SignalError};
 use railsong::study::StudyError;
 use railsong::units::fmt_eng;
 
@@ -34,6 +34,20 @@ pub(crate) fn signal_error(e: SignalError) -> Failure {
         SignalError::Io { .. } | SignalError::Stream(_) => failure_io(e),
         other => Failure::bad_input(other),
     }
+}
+
+/// Open and lock an output folder; when another railsong run holds it, say so on stderr and
+/// wait for it.
+pub(crate) fn open_folder(dir: &Path, force: bool) -> Result<OutputDir, Failure> {
+    OutputDir::open_with(dir, force, &mut |d| {
+        use std::io::Write;
+        let _ = writeln!(
+            std::io::stderr(),
+            "railsong: {} is busy (another railsong run is writing into it); waiting for it to finish",
+            d.display()
+        );
+    })
+    .map_err(signal_error)
 }
 
 pub(crate) fn analysis_settings(harmonics: usize, weighting: &str) -> Result<Settings, Failure> {
@@ -194,7 +208,10 @@ pub(crate) fn check_length(patch: &Patch, long: bool) -> Result<(), Failure> {
 }
 
 pub(crate) fn db_or_dash(v: Option<f64>, what: &str) -> String {
-    v.map_or(format!("- {what}"), |d| format!("{d:+.1} dB {what}"))
+    match v {
+        Some(d) if d.is_finite() => format!("{d:+.1} dB {what}"),
+        _ => format!("- {what}"),
+    }
 }
 
 pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::EventSeconds>) {
@@ -213,7 +230,7 @@ pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::
         if let Some(t) = e.first_clip_s {
             parts.push(format!("first clip at {}", fmt_eng(t.max(0.0), "s")));
         }
-        println!(
+        say!(
             "      {stage}: {}",
             if parts.is_empty() {
                 "clean".to_string()
@@ -284,7 +301,7 @@ pub(crate) fn file_peak_note(f: &railsong::analysis::OutputFigures) -> String {
 /// The alias figure, once per part, for the stages that feed the chosen outputs.
 pub(crate) fn print_alias(lines: &[measure::AliasLine], oversample: usize) {
     for l in lines {
-        println!(
+        say!(
             "  alias figure of part {} (stage{} {}) at x{oversample}: {:.1} dBc, a fixed probe of the part (5 kHz sine 7 dB past the swing through a unity inverter), not measured on this render",
             l.part,
             if l.stages.len() > 1 { "s" } else { "" },

@@ -4,6 +4,9 @@ use std::path::{Path, PathBuf};
 
 use clap::{Parser, Subcommand};
 
+#[macro_use]
+pub(crate) mod out;
+
 mod check;
 mod common;
 mod compare;
@@ -434,7 +437,7 @@ pub fn run() -> Result<(), Failure> {
         Err(e) => {
             use clap::error::ErrorKind;
             if matches!(e.kind(), ErrorKind::DisplayHelp | ErrorKind::DisplayVersion) {
-                print!("{e}");
+                say_raw!("{e}");
                 return Ok(());
             }
             return Err(Failure::bad_input(format!(
@@ -458,6 +461,8 @@ pub fn run() -> Result<(), Failure> {
         } => {
             let p = load(&patch, &sets)?;
             render::check_variants(&patch, &variants)?;
+            // Held to the end: the folder stays locked for the base and every variant.
+            let _folder = render::preflight(&patch, &p, &sets, &variants, &out)?;
             render::render_to(&p, &stem_of(&patch), &out, None)?;
             render::render_variants(&patch, &sets, &variants, &out)
         }

@@ -344,6 +344,8 @@ pub fn alias_figures(patch: &Patch) -> Vec<AliasFigure> {
                 dbc,
             })
         })
+        // A part whose swing window is closed (no room to swing) gives no figure, not NaN.
+        .filter(|a| a.dbc.is_finite())
         .collect()
 }
 

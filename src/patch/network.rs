@@ -110,7 +110,7 @@ pub(crate) fn build_diodes(root: &Tab) -> R<HashMap<String, Diode>> {
         };
         d.name = name.clone();
         d.about = format!("based on {base}");
-        if let Some(x) = tab.q_opt("is", Quantity::Current, Bounds::above(0.0, 1.0))? {
+        if let Some(x) = tab.q_opt("is", Quantity::Current, Bounds::closed(1e-24, 1.0))? {
             d.is = x;
         }
         if let Some(x) = tab.q_opt("n", Quantity::Ratio, Bounds::closed(0.5, 10.0))? {
