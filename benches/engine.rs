@@ -25,6 +25,7 @@ fn patch(amp: f64, noise: bool) -> Patch {
             start: 0.0,
             stop: None,
             envelope: None,
+            r: 0.0,
         })
         .collect();
     let inputs = (0..4)

@@ -228,6 +228,15 @@ pub fn check(patch: &Patch) -> Report {
         Node::Stage(i) => th[i],
     };
 
+    let net_gains = if patch
+        .stages
+        .iter()
+        .any(|s| matches!(s.kind, StageKind::Network(_)))
+    {
+        crate::response::dc_gains(patch)
+    } else {
+        Ok(Vec::new())
+    };
     for (si, stage) in patch.stages.iter().enumerate() {
         let key = format!("stages.{}", stage.name);
         let mut gains = Vec::new();
@@ -360,6 +369,41 @@ pub fn check(patch: &Patch) -> Report {
                 };
                 gains.push(ratio);
                 ("attenuator", span_of(*from, &spans).gain(ratio, 0.0))
+            }
+            StageKind::Network(_) => {
+                // static gain from each source (the whole patch solved as one circuit at
+                // 0 Hz; capacitors open, op-amps with their DC gain); the span is the sum of
+                // each source's span through its gain
+                let mut total = Span {
+                    lo: 0.0,
+                    hi: 0.0,
+                    dc: 0.0,
+                    slope: 0.0,
+                };
+                match &net_gains {
+                    Ok(g) => {
+                        for (k, &gk) in g[si].iter().enumerate() {
+                            if gk.abs() < 1e-9 {
+                                continue;
+                            }
+                            gains.push(gk);
+                            let t = src_spans[k].gain(gk, 0.0);
+                            total.lo += t.lo;
+                            total.hi += t.hi;
+                            total.dc += t.dc;
+                            total.slope += t.slope;
+                        }
+                    }
+                    Err(_) => {
+                        total = Span {
+                            lo: neg,
+                            hi: pos,
+                            dc: 0.0,
+                            slope: 0.0,
+                        }
+                    }
+                }
+                ("network", total)
             }
         };
 
@@ -581,6 +625,17 @@ pub fn static_loads(patch: &Patch) -> Vec<Option<f64>> {
                 }
             }
             StageKind::Follower { .. } => {}
+            StageKind::Network(net) => {
+                for p in &net.parts {
+                    if let crate::model::NetPartKind::R(r) = p.kind {
+                        for e in p.ends {
+                            if let crate::model::NetNode::Ext(Node::Stage(j)) = e {
+                                g[j] += 1.0 / r;
+                            }
+                        }
+                    }
+                }
+            }
         }
     }
     for out in &patch.outputs {
@@ -627,6 +682,7 @@ mod tests {
             start: 0.0,
             stop: None,
             envelope: None,
+            r: 0.0,
         }
     }
 

@@ -12,6 +12,7 @@
 
 pub mod analysis;
 pub mod check;
+pub mod circuit;
 pub mod engine;
 pub mod measure;
 pub mod model;
@@ -21,6 +22,7 @@ pub mod patch;
 pub mod plot;
 pub mod render;
 pub mod report;
+pub mod response;
 mod rng;
 pub mod signal;
 pub mod study;

@@ -118,6 +118,32 @@ pub fn slowest_time_constant(patch: &Patch) -> f64 {
             ),
             StageKind::Follower { .. } => (1.0, Vec::new()),
             StageKind::Attenuator { .. } => (0.0, Vec::new()),
+            // a network: every RC product of its parts and each op-amp's own pole at unity
+            // noise gain (a conservative settle estimate without solving it)
+            StageKind::Network(n) => {
+                let rs: Vec<f64> = n
+                    .parts
+                    .iter()
+                    .filter_map(|p| match &p.kind {
+                        crate::model::NetPartKind::R(r) => Some(*r),
+                        crate::model::NetPartKind::Pot { setting, .. } => Some(setting.track),
+                        _ => None,
+                    })
+                    .collect();
+                let rmax = rs.iter().copied().fold(0.0, f64::max);
+                let caps = n
+                    .parts
+                    .iter()
+                    .filter_map(|p| match p.kind {
+                        crate::model::NetPartKind::C(c) => Some(c * rmax),
+                        _ => None,
+                    })
+                    .collect();
+                for a in &n.amps {
+                    tau = tau.max(1.0 / (std::f64::consts::TAU * a.part.gbw));
+                }
+                (0.0, caps)
+            }
         };
         if let Some(part) = &st.part {
             tau = tau.max(ng / (std::f64::consts::TAU * part.gbw));
@@ -354,12 +380,7 @@ pub fn upstream(patch: &Patch, node: Node) -> Vec<usize> {
             continue;
         }
         mark[i] = true;
-        match &patch.stages[i].kind {
-            StageKind::InvertingSum { inputs, .. } => todo.extend(inputs.iter().map(|x| x.from)),
-            StageKind::NonInverting { from, .. }
-            | StageKind::Follower { from }
-            | StageKind::Attenuator { from, .. } => todo.push(*from),
-        }
+        todo.extend(patch.stages[i].kind.reads());
     }
     (0..patch.stages.len()).filter(|i| mark[*i]).collect()
 }
@@ -376,12 +397,11 @@ pub fn upstream_sources(patch: &Patch, node: Node) -> Vec<usize> {
     };
     visit(node);
     for i in upstream(patch, node) {
-        match &patch.stages[i].kind {
-            StageKind::InvertingSum { inputs, .. } => inputs.iter().for_each(|x| visit(x.from)),
-            StageKind::NonInverting { from, .. }
-            | StageKind::Follower { from }
-            | StageKind::Attenuator { from, .. } => visit(*from),
-        }
+        patch.stages[i]
+            .kind
+            .reads()
+            .into_iter()
+            .for_each(&mut visit);
     }
     out.sort();
     out
@@ -546,17 +566,27 @@ pub fn measure(
             idle_skip: idle.map_or(0, skip_in),
         };
         let figures = analysis::measure_output(&sig.samples, run.rate, &ctx);
+        // op-amp stages by their name, every op-amp of a network by its own name
         let events = upstream(patch, o.from)
             .into_iter()
-            .filter(|s| patch.stages[*s].part.is_some())
-            .filter_map(|s| {
-                let name = &patch.stages[s].name;
-                run.events.iter().find(|e| &e.stage == name).map(|e| {
-                    (
-                        name.clone(),
-                        EventSeconds::new(e, stage_swing(patch, s).as_ref()),
-                    )
-                })
+            .flat_map(|s| {
+                let st = &patch.stages[s];
+                match &st.kind {
+                    StageKind::Network(n) => n
+                        .amps
+                        .iter()
+                        .map(|a| (a.name.clone(), None))
+                        .collect::<Vec<_>>(),
+                    _ if st.part.is_some() => vec![(st.name.clone(), Some(s))],
+                    _ => Vec::new(),
+                }
+            })
+            .filter_map(|(name, s)| {
+                let swing = s.and_then(|s| stage_swing(patch, s));
+                run.events
+                    .iter()
+                    .find(|e| e.stage == name)
+                    .map(|e| (name.clone(), EventSeconds::new(e, swing.as_ref())))
             })
             .collect();
         let noise = idle_samples

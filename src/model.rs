@@ -13,7 +13,7 @@
 //! - every resistance is finite and `> 0`, every capacitance finite and `> 0` when present;
 //! - op-amp stages carry `Some(part)`, passive stages `None`.
 
-use crate::parts::OpAmp;
+use crate::parts::{Diode, OpAmp};
 
 /// A complete, validated patch.
 #[derive(Debug, Clone, PartialEq)]
@@ -78,7 +78,7 @@ pub enum Node {
     Stage(usize),
 }
 
-/// A signal source (an ideal voltage source: zero output impedance).
+/// A signal source: a voltage source with an optional output resistance.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Source {
     /// Name from the patch (`[sources.NAME]`).
@@ -93,6 +93,9 @@ pub struct Source {
     pub stop: Option<f64>,
     /// Optional gating envelope.
     pub envelope: Option<Envelope>,
+    /// Output resistance, ohm (0: an ideal source). Whatever reads the source sees it in
+    /// series.
+    pub r: f64,
 }
 
 /// Source waveforms. Levels are peak volts unless stated (the patch layer converts Vpp, Vrms,
@@ -292,6 +295,150 @@ pub enum StageKind {
         /// Wiper position, 0 (ground end) to 1 (top).
         at: f64,
     },
+    /// Any circuit of resistors, capacitors, pots and diodes around one or more op-amps.
+    Network(Network),
+}
+
+impl StageKind {
+    /// Every patch node this stage reads (sources and other stages, each once).
+    pub fn reads(&self) -> Vec<Node> {
+        let mut v: Vec<Node> = match self {
+            StageKind::InvertingSum { inputs, .. } => inputs.iter().map(|i| i.from).collect(),
+            StageKind::NonInverting { from, .. }
+            | StageKind::Follower { from }
+            | StageKind::Attenuator { from, .. } => vec![*from],
+            StageKind::Network(n) => n.reads(),
+        };
+        let mut seen = Vec::new();
+        v.retain(|n| {
+            if seen.contains(n) {
+                false
+            } else {
+                seen.push(*n);
+                true
+            }
+        });
+        v
+    }
+}
+
+/// A network stage: named local nodes, two-terminal parts between nodes, op-amps bound to
+/// nodes. `gnd` is 0 V, `pos` and `neg` the rails; a source's or another stage's name is the
+/// node it drives; `stage.node` is another network's inner node.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Network {
+    /// Local node names ([`NetNode::Local`] indexes this).
+    pub nodes: Vec<String>,
+    /// The op-amps.
+    pub amps: Vec<NetAmp>,
+    /// The parts, in patch order (`parts[i]`).
+    pub parts: Vec<NetPart>,
+    /// The local node the stage's output is (what readers of the stage's name see).
+    pub out: usize,
+}
+
+impl Network {
+    /// Every patch node the network reads.
+    pub fn reads(&self) -> Vec<Node> {
+        let mut v = Vec::new();
+        let mut add = |n: &NetNode| match n {
+            NetNode::Ext(x) => v.push(*x),
+            NetNode::Inner(s, _) => v.push(Node::Stage(*s)),
+            _ => {}
+        };
+        for a in &self.amps {
+            add(&a.plus);
+            add(&a.minus);
+        }
+        for p in &self.parts {
+            add(&p.ends[0]);
+            add(&p.ends[1]);
+            if let NetPartKind::Pot { wiper, .. } = &p.kind {
+                add(wiper);
+            }
+        }
+        v
+    }
+
+    /// Whether a local node is driven by an op-amp output.
+    pub fn amp_driven(&self, local: usize) -> bool {
+        self.amps.iter().any(|a| a.out == local)
+    }
+}
+
+/// A node as a network sees it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum NetNode {
+    /// 0 V.
+    Gnd,
+    /// The positive rail.
+    Pos,
+    /// The negative rail.
+    Neg,
+    /// A node of this network (index into [`Network::nodes`]).
+    Local(usize),
+    /// A source or another stage's output.
+    Ext(Node),
+    /// Another network stage's inner node: (stage index, its local node index).
+    Inner(usize, usize),
+}
+
+/// One op-amp of a network.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NetAmp {
+    /// Name for events, plots and reports (default `<stage>.amp<i>`).
+    pub name: String,
+    /// Profile.
+    pub part: OpAmp,
+    /// Non-inverting input.
+    pub plus: NetNode,
+    /// Inverting input.
+    pub minus: NetNode,
+    /// Output: a local node this op-amp drives.
+    pub out: usize,
+    /// Its supply (default the patch rails).
+    pub rails: Rails,
+}
+
+/// One part of a network.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NetPart {
+    /// The two ends (anode, cathode for a diode; for a pot, the track's ends: `at` = 0 puts
+    /// the wiper at `ends[0]`, 1 at `ends[1]`).
+    pub ends: [NetNode; 2],
+    /// What it is.
+    pub kind: NetPartKind,
+    /// Tolerance for tolerance studies (fraction), if stated.
+    pub tolerance: Option<f64>,
+}
+
+/// Kinds of network parts.
+#[derive(Debug, Clone, PartialEq)]
+pub enum NetPartKind {
+    /// Resistor, ohm.
+    R(f64),
+    /// Capacitor, F.
+    C(f64),
+    /// Potentiometer: the track between the ends, the wiper a node.
+    Pot {
+        /// Track, taper and position (`at` resolved from the knob when there is one).
+        setting: PotSetting,
+        /// The wiper node.
+        wiper: NetNode,
+        /// The knob that turns it, if any.
+        knob: Option<KnobRef>,
+    },
+    /// Diode from `ends[0]` (anode) to `ends[1]` (cathode).
+    Diode(Diode),
+}
+
+/// A pot's binding to a `[knobs]` entry.
+#[derive(Debug, Clone, PartialEq)]
+pub struct KnobRef {
+    /// Knob name.
+    pub name: String,
+    /// Track turned the other way on the same shaft (`at = 1 - knob`).
+    pub reverse: bool,
 }
 
 /// One input of an inverting summer.

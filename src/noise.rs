@@ -552,6 +552,13 @@ impl Netlist {
                         0.0
                     };
                 }
+                StageKind::Network(_) => {
+                    notes.push(format!(
+                        "{key}: network stages are not in the analytic budget yet (the \
+                         rendered noise figures still include every resistor and op-amp of \
+                         the shorthand stages)"
+                    ));
+                }
             }
             if let (Some(p), Some(ng)) = (part, ng_flat) {
                 let bw = p.gbw / ng;

@@ -356,6 +356,9 @@ pub fn render_streaming(
             let mut refs: Vec<&mut [f64]> = bufs.iter_mut().map(|b| &mut b[..n]).collect();
             eng.process(&mut refs);
         }
+        if let Some(e) = eng.failure() {
+            return Err(e.clone().into());
+        }
         unchanged()?;
         for (i, b) in bufs.iter().enumerate() {
             acc[i].push(&b[..n]);

@@ -209,6 +209,11 @@ fn stage_input(patch: &Patch, node: Node) -> Option<Node> {
         StageKind::NonInverting { from, .. }
         | StageKind::Follower { from }
         | StageKind::Attenuator { from, .. } => Some(*from),
+        StageKind::Network(_) => patch.stages[i]
+            .kind
+            .reads()
+            .into_iter()
+            .find(|&n| first_source(patch, n).is_some()),
     }
 }
 

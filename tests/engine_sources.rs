@@ -20,6 +20,7 @@ fn follower_of(
         start,
         stop,
         envelope: env,
+        r: 0.0,
     });
     let f = b.follower("buf", &part("ideal"), Node::Source(0));
     b.out("out", f, 0.0, None);

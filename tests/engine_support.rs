@@ -60,6 +60,7 @@ impl Pb {
             start: 0.0,
             stop: None,
             envelope: None,
+            r: 0.0,
         });
         Node::Source(self.p.sources.len() - 1)
     }

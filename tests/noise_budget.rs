@@ -43,6 +43,7 @@ fn sine(name: &str) -> Source {
         start: 0.0,
         stop: None,
         envelope: None,
+        r: 0.0,
     }
 }
 

@@ -119,6 +119,7 @@ fn recurrent_envelope_decay_matches_exp() {
             decay,
             every: None,
         }),
+        r: 0.0,
     };
     let mut g = generator(&src, rate, 1).unwrap();
     let n = (5.0 * rate) as usize;

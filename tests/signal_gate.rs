@@ -20,6 +20,7 @@ fn dc(level: f64) -> Source {
         start: 0.0,
         stop: None,
         envelope: None,
+        r: 0.0,
     }
 }
 
@@ -52,6 +53,7 @@ fn waveform_clock_starts_at_start() {
         start: 0.005,
         stop: None,
         envelope: None,
+        r: 0.0,
     };
     let x = render(&src, 1000.0, 12);
     assert_eq!(&x[..5], &[0.0; 5]);
@@ -68,6 +70,7 @@ fn waveform_clock_starts_at_start() {
         start: 0.0105,
         stop: None,
         envelope: None,
+        r: 0.0,
     };
     let y = render(&s, 48_000.0, 600);
     let on = (0.0105f64 * 48_000.0).round() as usize;

@@ -24,6 +24,7 @@ fn source(wave: Wave) -> Source {
         start: 0.0,
         stop: None,
         envelope: None,
+        r: 0.0,
     }
 }
 

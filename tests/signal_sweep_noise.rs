@@ -15,6 +15,7 @@ fn source(name: &str, wave: Wave) -> Source {
         start: 0.0,
         stop: None,
         envelope: None,
+        r: 0.0,
     }
 }
 

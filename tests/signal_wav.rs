@@ -323,6 +323,7 @@ fn loop_pad_and_truncate() {
         start: 2.0 / 48_000.0,
         stop: None,
         envelope: None,
+        r: 0.0,
     };
     let mut g = file_source(&src, 48_000.0, 25).unwrap();
     let mut out = vec![0.0; 14];

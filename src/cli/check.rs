@@ -39,6 +39,7 @@ pub(crate) fn cmd_check(
     say!("  stage                 type            part               gain      NG     band (-3 dB)          worst-case span        swing");
     for s in &report.stages {
         let gain = match s.gains.as_slice() {
+            [] => "-".to_string(),
             [g] => format!("{g:+.3}"),
             gs => format!("{:+.3}x{}", gs[0], gs.len()),
         };

@@ -17,6 +17,7 @@ mod parts;
 mod progress;
 mod render;
 mod report;
+mod response;
 mod sweep;
 mod tolerance;
 
@@ -175,6 +176,42 @@ enum Command {
         /// Print JSON instead of the tables.
         #[arg(long)]
         json: bool,
+        /// Override a value by dotted path (repeatable).
+        #[arg(long = "set", value_name = "PATH=VALUE")]
+        sets: Vec<String>,
+    },
+    /// Small-signal frequency response from a source to each output (gain and phase on a
+    /// log frequency grid).
+    Response {
+        /// The patch file.
+        patch: PathBuf,
+        /// The source driven (default: the only source).
+        #[arg(long, value_name = "NAME")]
+        source: Option<String>,
+        /// Lowest frequency.
+        #[arg(long, default_value = "10Hz")]
+        from: String,
+        /// Highest frequency.
+        #[arg(long, default_value = "40kHz")]
+        to: String,
+        /// Number of frequencies (log spaced).
+        #[arg(long, default_value_t = 200)]
+        points: usize,
+        /// Print JSON.
+        #[arg(long)]
+        json: bool,
+        /// Print CSV.
+        #[arg(long)]
+        csv: bool,
+        /// Also write gain and phase plots (SVG, -3 dB points marked) into --plots-dir.
+        #[arg(long)]
+        plots: bool,
+        /// Folder for --plots (default: renders/<patch name>/).
+        #[arg(long, value_name = "DIR")]
+        plots_dir: Option<PathBuf>,
+        /// Overwrite files railsong did not write.
+        #[arg(long)]
+        force: bool,
         /// Override a value by dotted path (repeatable).
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
@@ -469,6 +506,37 @@ pub fn run() -> Result<(), Failure> {
             json,
             sets,
         } => noise::cmd_noise(&patch, &sets, output.as_deref(), json),
+        Command::Response {
+            patch,
+            source,
+            from,
+            to,
+            points,
+            json,
+            csv,
+            plots,
+            plots_dir,
+            force,
+            sets,
+        } => {
+            let dir = plots.then(|| {
+                (
+                    plots_dir.unwrap_or_else(|| default_dir(&stem_of(&patch))),
+                    force,
+                )
+            });
+            response::cmd_response(&response::ResponseArgs {
+                patch: &patch,
+                source: source.as_deref(),
+                from: &from,
+                to: &to,
+                points,
+                json,
+                csv,
+                plots: dir,
+                sets: &sets,
+            })
+        }
         Command::Measure {
             patch,
             variant,

@@ -199,6 +199,7 @@
 pub mod fastmath;
 pub mod feed;
 pub mod halfband;
+pub mod network;
 pub mod noise;
 pub mod plan;
 pub mod probe;
@@ -244,6 +245,14 @@ pub enum EngineError {
     BadNode {
         /// Who refers to it.
         consumer: String,
+    },
+    /// A network stage's circuit could not be compiled or solved.
+    #[error("stages.{stage}: {message}")]
+    Circuit {
+        /// Stage name.
+        stage: String,
+        /// What went wrong.
+        message: String,
     },
     /// A value out of range.
     #[error("{what}: expected {expected}")]
@@ -363,6 +372,9 @@ pub fn run(patch: &Patch, opts: &RunOptions) -> Result<Run, EngineError> {
     {
         let mut refs: Vec<&mut [f64]> = bufs.iter_mut().map(|b| b.as_mut_slice()).collect();
         eng.process(&mut refs);
+    }
+    if let Some(e) = eng.failure() {
+        return Err(e.clone());
     }
     let outputs = plan
         .outputs

@@ -1,9 +1,12 @@
 //! Compilation of a validated [`Patch`] into a flat [`Plan`].
 
 use super::halfband;
+use super::network::{NetInput, NetPlan};
 use super::shaper::Shaper;
 use super::EngineError;
-use crate::model::{Envelope, Node, Patch, StageKind, Wave};
+use crate::circuit::build::{network_circuit, InputRef};
+use crate::circuit::step::CircuitState;
+use crate::model::{Envelope, NetNode, Node, Patch, StageKind, Wave};
 use crate::parts::taper;
 
 /// Internal samples per processing block.
@@ -32,6 +35,12 @@ pub struct Plan {
     pub sources: Vec<SourcePlan>,
     /// Op-amp stages in processing order.
     pub stages: Vec<StagePlan>,
+    /// Network stages.
+    pub networks: Vec<NetPlan>,
+    /// Processing order of the op-amp and network stages.
+    pub order: Vec<StageStep>,
+    /// Number of buffers (sources, op-amp and network stage outputs, exported inner nodes).
+    pub buffers: usize,
     /// Passive stages (folded into the inputs that read them).
     pub passives: Vec<PassivePlan>,
     /// Outputs in patch order.
@@ -57,6 +66,15 @@ pub struct Plan {
     pub noise: bool,
     /// Circuit temperature, K (thermal noise).
     pub temperature: f64,
+}
+
+/// One step of the processing order.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum StageStep {
+    /// An op-amp stage (index into [`Plan::stages`]).
+    Op(usize),
+    /// A network stage (index into [`Plan::networks`]).
+    Net(usize),
 }
 
 /// A planned source.
@@ -300,10 +318,14 @@ impl Ctx<'_> {
 
     fn tap(&self, consumer: Consumer, node: Node) -> Tap {
         if let Some(base) = self.base_of(node) {
+            let rth = match node {
+                Node::Source(s) => self.patch.sources[s].r.max(0.0),
+                Node::Stage(_) => 0.0,
+            };
             return Tap {
                 base,
                 gain: 1.0,
-                rth: 0.0,
+                rth,
             };
         }
         let Node::Stage(a) = node else {
@@ -344,6 +366,109 @@ impl Ctx<'_> {
             rth,
         }
     }
+}
+
+/// Static load the rest of the patch puts on stage `i`'s output (to about 0 V), S.
+fn stage_load(ctx: &Ctx, i: usize) -> f64 {
+    let mut load_g = 0.0;
+    for (c, g) in &ctx.loads[i] {
+        load_g += match c {
+            Consumer::Input(j, _) => match ctx.patch.stages[*j].kind {
+                StageKind::Attenuator { .. } => {
+                    if ctx.att_rin[*j] > 0.0 {
+                        1.0 / ctx.att_rin[*j]
+                    } else {
+                        0.0
+                    }
+                }
+                _ => *g,
+            },
+            Consumer::Output(_) => *g,
+        };
+    }
+    load_g
+}
+
+/// Compile network stage `i` into buffer `buf`.
+#[allow(clippy::too_many_arguments)]
+fn compile_network(
+    ctx: &Ctx,
+    i: usize,
+    buf: usize,
+    h: f64,
+    export_buf: &[((usize, usize), usize)],
+    node_lat: &mut [usize],
+    rest_node: &mut [f64],
+    history: &mut usize,
+) -> Result<NetPlan, EngineError> {
+    let patch = ctx.patch;
+    let name = patch.stages[i].name.clone();
+    let tap = |n: Node| {
+        let t = ctx.tap(Consumer::Input(i, usize::MAX), n);
+        (t.gain, t.rth)
+    };
+    let nc = network_circuit(patch, i, &tap, stage_load(ctx, i));
+    let circ_err = |e: crate::circuit::plan::CircuitError| EngineError::Circuit {
+        stage: name.clone(),
+        message: e.to_string(),
+    };
+    let plan = crate::circuit::plan::compile(nc.circuit, h).map_err(circ_err)?;
+    let mut inputs = Vec::new();
+    let mut lat_in = 0;
+    for &(cnode, r, gain) in &nc.inputs {
+        let b = match r {
+            InputRef::Node(n) => ctx.tap(Consumer::Input(i, usize::MAX), n).base,
+            InputRef::Inner(s, l) => export_buf
+                .iter()
+                .find(|(k, _)| *k == (s, l))
+                .map_or(0, |(_, b)| *b),
+        };
+        lat_in = lat_in.max(node_lat[b]);
+        inputs.push(NetInput {
+            cnode,
+            buf: b,
+            delay: 0,
+            gain,
+        });
+    }
+    let lat = 1 + lat_in;
+    for inp in &mut inputs {
+        inp.delay = lat - 1 - node_lat[inp.buf];
+        *history = (*history).max(inp.delay);
+    }
+    node_lat[buf] = lat;
+    let mut rest = CircuitState::new(&plan);
+    for inp in &inputs {
+        rest.vn[inp.cnode] = inp.gain * rest_node[inp.buf];
+    }
+    rest.rest(&plan).map_err(circ_err)?;
+    let rest_out = match nc.out_amp {
+        Some(a) => plan.circuit.amps[a].shaper.apply(rest.amp_state(&plan, a)),
+        None => rest.vn[nc.out],
+    };
+    rest_node[buf] = rest_out;
+    let mut exports = Vec::new();
+    for &((s, l), b) in export_buf {
+        if s == i {
+            if let Some(&cn) = nc.locals.get(l) {
+                exports.push((cn, b));
+                node_lat[b] = lat;
+                rest_node[b] = rest.vn[cn];
+            }
+        }
+    }
+    Ok(NetPlan {
+        name,
+        node: buf,
+        latency: lat,
+        inputs,
+        out: nc.out,
+        out_amp: nc.out_amp,
+        exports,
+        rest,
+        rest_out,
+        circuit: plan,
+    })
 }
 
 /// First-order-hold coefficients of the exact exponential step with rate `lam = k h c`:
@@ -467,6 +592,11 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                 }
             }
             StageKind::Follower { from } => check_node(patch, *from, i, &who)?,
+            StageKind::Network(net) => {
+                for n in net.reads() {
+                    check_node(patch, n, i, &who)?;
+                }
+            }
             StageKind::Attenuator { from, pot, .. } => {
                 check_node(patch, *from, i, &who)?;
                 positive(*pot, || format!("{who} pot"))?;
@@ -474,6 +604,9 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
         }
         if matches!(st.kind, StageKind::Attenuator { .. }) {
             stage_buf.push(None);
+        } else if matches!(st.kind, StageKind::Network(_)) {
+            stage_buf.push(Some(next));
+            next += 1;
         } else {
             if st.part.is_none() {
                 return Err(EngineError::MissingPart {
@@ -553,6 +686,32 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
         att_rin,
     };
 
+    // Inner nodes other networks read get buffers of their own.
+    let mut export_buf: Vec<((usize, usize), usize)> = Vec::new();
+    for st in &patch.stages {
+        if let StageKind::Network(net) = &st.kind {
+            let mut refs: Vec<NetNode> = Vec::new();
+            for a in &net.amps {
+                refs.push(a.plus);
+                refs.push(a.minus);
+            }
+            for p in &net.parts {
+                refs.extend_from_slice(&p.ends);
+                if let crate::model::NetPartKind::Pot { wiper, .. } = &p.kind {
+                    refs.push(*wiper);
+                }
+            }
+            for r in refs {
+                if let NetNode::Inner(s, l) = r {
+                    if !export_buf.iter().any(|(k, _)| *k == (s, l)) {
+                        export_buf.push(((s, l), next));
+                        next += 1;
+                    }
+                }
+            }
+        }
+    }
+
     // Latencies of base nodes.
     let nb = next;
     let mut node_lat = vec![0usize; nb];
@@ -563,7 +722,24 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
         rest_node[i] = s.rest;
     }
     let mut history = 1;
+    let mut networks = Vec::new();
+    let mut order = Vec::new();
     for (i, st) in patch.stages.iter().enumerate() {
+        if let (StageKind::Network(_), Some(buf)) = (&st.kind, ctx.stage_buf[i]) {
+            let np = compile_network(
+                &ctx,
+                i,
+                buf,
+                h,
+                &export_buf,
+                &mut node_lat,
+                &mut rest_node,
+                &mut history,
+            )?;
+            order.push(StageStep::Net(networks.len()));
+            networks.push(np);
+            continue;
+        }
         let Some(buf) = ctx.stage_buf[i] else {
             if let StageKind::Attenuator {
                 pot, taper: t, at, ..
@@ -745,7 +921,7 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                 beta_dc = 1.0;
                 vp_rest = plus_const + t.gain * rest_node[t.base];
             }
-            StageKind::Attenuator { .. } => unreachable!("handled above"),
+            StageKind::Attenuator { .. } | StageKind::Network(_) => unreachable!("handled above"),
         }
 
         // Static load and swing.
@@ -838,6 +1014,7 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
             history = history.max(p.delay);
         }
         let (e, a1, a0) = foh(kgain * h * (b + eps));
+        order.push(StageStep::Op(stages.len()));
         stages.push(StagePlan {
             name: st.name.clone(),
             part: part.name.clone(),
@@ -931,6 +1108,9 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
         block: BLOCK,
         sources,
         stages,
+        networks,
+        order,
+        buffers: nb,
         passives,
         outputs,
         filter_lengths,

@@ -82,6 +82,7 @@ pub fn probe_patch(part: &OpAmp, rails: Rails, rate: f64, oversample: usize) -> 
             start: 0.0,
             stop: None,
             envelope: None,
+            r: 0.0,
         }],
         stages: vec![Stage {
             name: "inverter".into(),

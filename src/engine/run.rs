@@ -2,9 +2,10 @@
 
 use super::feed::{SourceFeed, ToneFeed};
 use super::halfband::Decimator;
+use super::network::{net_block, NetRun};
 use super::noise::NoiseStream;
-use super::plan::{Plan, StagePlan, FAST_VD};
-use super::StageEvents;
+use super::plan::{Plan, StagePlan, StageStep, FAST_VD};
+use super::{EngineError, StageEvents};
 
 /// Per-stage running state.
 #[derive(Debug, Clone)]
@@ -92,6 +93,12 @@ pub struct Engine {
     full_blocks: u64,
     /// Per stage: the weakly nonlinear step's polynomials ([`WeakStep`]), when they apply.
     weak: Vec<Option<WeakStep>>,
+    /// Running state of every network stage.
+    nets: Vec<NetRun>,
+    /// Internal samples processed since the start (for the time of a failed step).
+    steps: u64,
+    /// The first failure of a network step.
+    failure: Option<EngineError>,
     /// Internal blocks computed since the last reset.
     blocks: u64,
 }
@@ -430,7 +437,7 @@ impl Engine {
                 None => all.push(Box::new(ToneFeed::new(s, plan.internal_rate, plan.preroll))),
             }
         }
-        let nb = plan.sources.len() + plan.stages.len();
+        let nb = plan.buffers;
         let b = plan.block;
         let hist = plan.history;
         let bufs = vec![vec![0.0; hist + b]; nb];
@@ -502,6 +509,9 @@ impl Engine {
                 .iter()
                 .map(|sp| WeakStep::new(sp, 1.0 / plan.internal_rate))
                 .collect(),
+            nets: plan.networks.iter().map(|n| NetRun::new(n, b)).collect(),
+            steps: 0,
+            failure: None,
             blocks: 0,
             plan,
         };
@@ -522,6 +532,20 @@ impl Engine {
     /// Number of (stage, block) pairs run by the fast path and by the full model.
     pub fn path_counts(&self) -> (u64, u64) {
         (self.fast_blocks, self.full_blocks)
+    }
+
+    /// Number of (group, internal step) pairs of the network stages run by the linear fast
+    /// path and by the nonlinear step.
+    pub fn network_step_counts(&self) -> (u64, u64) {
+        self.nets.iter().fold((0, 0), |(a, b), n| {
+            (a + n.state.counts.0, b + n.state.counts.1)
+        })
+    }
+
+    /// The first step of a network stage that failed (the render after it holds the last
+    /// value), if any.
+    pub fn failure(&self) -> Option<&EngineError> {
+        self.failure.as_ref()
     }
 
     /// Back to the start: reproduces a render bit for bit. Does not allocate.
@@ -550,6 +574,15 @@ impl Engine {
             st.out_min = f64::INFINITY;
             st.first_clip = None;
         }
+        for (np, nr) in self.plan.networks.iter().zip(self.nets.iter_mut()) {
+            nr.reset(np);
+            self.bufs[np.node][..hist].fill(np.rest_out);
+            for &(n, b) in &np.exports {
+                self.bufs[b][..hist].fill(np.rest.vn[n]);
+            }
+        }
+        self.steps = 0;
+        self.failure = None;
         for (d, o) in self.decims.iter_mut().zip(&self.plan.outputs) {
             d.reset(o.rest);
         }
@@ -569,11 +602,13 @@ impl Engine {
         self.blocks = 0;
     }
 
-    /// Event durations per op-amp stage so far, seconds.
+    /// Event durations per op-amp stage (and per op-amp of every network, by its name) so
+    /// far, seconds.
     pub fn events(&self) -> Vec<StageEvents> {
         let h = 1.0 / self.plan.internal_rate;
         let preroll = self.plan.preroll as f64;
-        self.plan
+        let mut v: Vec<StageEvents> = self
+            .plan
             .stages
             .iter()
             .zip(&self.states)
@@ -591,7 +626,23 @@ impl Engine {
                 peak_pos_v: (st.out_max.is_finite()).then_some(st.out_max),
                 peak_neg_v: (st.out_min.is_finite()).then_some(st.out_min),
             })
-            .collect()
+            .collect();
+        for (np, nr) in self.plan.networks.iter().zip(&self.nets) {
+            for (a, ev) in np.circuit.circuit.amps.iter().zip(&nr.state.events) {
+                v.push(StageEvents {
+                    stage: a.name.clone(),
+                    clip_s: ev.clip as f64 * h,
+                    slew_s: ev.slew as f64 * h,
+                    cm_out_s: ev.cm as f64 * h,
+                    reversed_s: ev.rev as f64 * h,
+                    // not tracked for network op-amps yet
+                    first_clip_s: None,
+                    peak_pos_v: None,
+                    peak_neg_v: None,
+                });
+            }
+        }
+        v
     }
 
     /// Fill the next base-rate frames of every output. All slices should have the same
@@ -639,7 +690,6 @@ impl Engine {
     fn block_impl(&mut self) {
         let b = self.plan.block;
         let hist = self.plan.history;
-        let ns = self.plan.sources.len();
         for (i, f) in self.feeds.iter_mut().enumerate() {
             f.fill(&mut self.bufs[i][hist..hist + b]);
         }
@@ -650,7 +700,45 @@ impl Engine {
                 s.fill(nb);
             }
         }
-        for si in 0..self.plan.stages.len() {
+        let h = 1.0 / self.plan.internal_rate;
+        let t0 = (self.steps as f64 - self.plan.preroll as f64) * h;
+        for step in 0..self.plan.order.len() {
+            let si = match self.plan.order[step] {
+                StageStep::Op(si) => si,
+                StageStep::Net(ni) => {
+                    let np = &self.plan.networks[ni];
+                    let mut own = std::mem::take(&mut self.bufs[np.node]);
+                    let nr = &mut self.nets[ni];
+                    let r = net_block(
+                        np,
+                        nr,
+                        &self.bufs,
+                        hist,
+                        &mut own[hist..hist + b],
+                        self.fast,
+                        self.plan.antialias,
+                        t0,
+                        h,
+                    );
+                    self.bufs[np.node] = own;
+                    for (k, &(_, eb)) in np.exports.iter().enumerate() {
+                        let dst = &mut self.bufs[eb][hist..hist + b];
+                        for (o, &x) in dst.iter_mut().zip(&nr.ex_vals[k]) {
+                            *o = nr.ex_prev[k];
+                            nr.ex_prev[k] = x;
+                        }
+                    }
+                    if let Err(e) = r {
+                        if self.failure.is_none() {
+                            self.failure = Some(EngineError::Circuit {
+                                stage: np.name.clone(),
+                                message: e.to_string(),
+                            });
+                        }
+                    }
+                    continue;
+                }
+            };
             let sp = &self.plan.stages[si];
             let noise = self.stage_noise[si]
                 .as_ref()
@@ -730,9 +818,10 @@ impl Engine {
                 }
             }
         }
-        for buf in self.bufs.iter_mut().take(ns + self.plan.stages.len()) {
+        for buf in self.bufs.iter_mut() {
             buf.copy_within(b..b + hist, 0);
         }
+        self.steps += b as u64;
         self.blocks += 1;
         self.avail = b / kf;
         self.pos = self.skip.min(self.avail);

@@ -8,16 +8,16 @@ use super::error::{suggest, PatchError, Problem};
 use super::read::{bounded, check, quantity, valid_name, Bounds, Ctx, Tab, R};
 use super::schema;
 use crate::model::{
-    Envelope, Feedback, Node, Output, Patch, PotSetting, Rails, Source, Stage, StageKind, SumInput,
-    Taper, Tone, Wave, POT_END_R,
+    Envelope, Feedback, NetNode, NetPartKind, Node, Output, Patch, PotSetting, Rails, Source,
+    Stage, StageKind, SumInput, Taper, Tone, Wave, POT_END_R,
 };
 use crate::parts::{self, taper::LOG_MID_DEFAULT, OpAmp};
 use crate::units::{Level, Quantity};
 
 /// Resistances: 1 mohm to 1 Gohm.
-const R_RANGE: Bounds = Bounds::closed(1e-3, 1e9);
+pub(crate) const R_RANGE: Bounds = Bounds::closed(1e-3, 1e9);
 /// Capacitances: 1 fF to 10 F.
-const C_RANGE: Bounds = Bounds::closed(1e-15, 10.0);
+pub(crate) const C_RANGE: Bounds = Bounds::closed(1e-15, 10.0);
 /// Times (start, stop, durations): up to an hour.
 const MAX_TIME: f64 = 3600.0;
 /// Source voltages (levels, offsets, amplitudes): within +/- 1 kV.
@@ -124,6 +124,8 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
     };
 
     let parts = build_parts(&root)?;
+    let diodes = super::network::build_diodes(&root)?;
+    let knobs = super::network::build_knobs(&root)?;
 
     // Names of sources and stages share one namespace (`from` refers to either).
     let src_tab = root.table_opt("sources")?;
@@ -191,15 +193,49 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
         parts: &parts,
         rails,
     };
+    let net_env = super::network::NetEnv {
+        nodes: &names.nodes,
+        stage_names: &names.stages,
+        parts: &parts,
+        diodes: &diodes,
+        knobs: &knobs,
+        rails,
+    };
+    let mut knobs_used = vec![false; knobs.len()];
+    let mut pending = Vec::new();
     let mut stages = Vec::with_capacity(stg_list.len());
     for (name, t) in &stg_list {
         let tab = Tab::new(ctx, format!("stages.{name}"), t);
-        stages.push(stage(&tab, name, &env)?);
+        if matches!(t.get("type"), Some(toml::Value::String(s)) if s == "network") {
+            tab.check_keys(
+                schema::stage_keys("network"),
+                &schema::all_stage_keys(),
+                "to type = \"network\"",
+            )?;
+            let net = super::network::network(&tab, name, &net_env, &mut knobs_used, &mut pending)?;
+            stages.push(Stage {
+                name: name.to_string(),
+                part: None,
+                kind: StageKind::Network(net),
+            });
+        } else {
+            stages.push(stage(&tab, name, &env)?);
+        }
         let r = tab.q_opt("tolerance", Quantity::Percent, tol_bounds)?;
         let c = tab.q_opt("cap_tolerance", Quantity::Percent, tol_bounds)?;
         if r.is_some() || c.is_some() {
             tolerances.stages.push((name.to_string(), r, c));
         }
+    }
+    resolve_inner(ctx, &mut stages, &pending)?;
+    if let Some(k) = knobs_used.iter().position(|u| !u) {
+        return Err(ctx.err(
+            &format!("knobs.{}", knobs[k].0),
+            Problem::Other(format!(
+                "no pot uses the knob '{}': set a pot's at = \"{}\", or remove the knob",
+                knobs[k].0, knobs[k].0
+            )),
+        ));
     }
     let stages = topo_order(ctx, stages)?;
     let stage_pos: HashMap<&str, usize> = stages
@@ -721,6 +757,18 @@ fn source(t: &Tab, name: &str, rate: f64, base_dir: &Path) -> R<Source> {
             }))
         }
     };
+    let r = match t.get("r") {
+        None => 0.0,
+        Some(v) => {
+            let p = t.key_path("r");
+            let x = quantity(t.ctx, &p, v, Quantity::Resistance)?;
+            if x == 0.0 {
+                0.0
+            } else {
+                check(t.ctx, &p, v, Quantity::Resistance, x, R_RANGE)?
+            }
+        }
+    };
     Ok(Source {
         name: name.to_string(),
         wave: w,
@@ -728,6 +776,7 @@ fn source(t: &Tab, name: &str, rate: f64, base_dir: &Path) -> R<Source> {
         start,
         stop,
         envelope,
+        r,
     })
 }
 
@@ -785,6 +834,11 @@ struct StageEnv<'a> {
     names: &'a Names<'a>,
     parts: &'a HashMap<String, OpAmp>,
     rails: Rails,
+}
+
+/// The op-amp named by a table's `part` key.
+pub(crate) fn part_of(t: &Tab, parts: &HashMap<String, OpAmp>) -> R<OpAmp> {
+    part(t, parts)
 }
 
 fn part(t: &Tab, parts: &HashMap<String, OpAmp>) -> R<OpAmp> {
@@ -1079,11 +1133,78 @@ fn stage(t: &Tab, name: &str, env: &StageEnv) -> R<Stage> {
 
 /// Every node a stage reads.
 fn inputs_of(kind: &StageKind) -> Vec<Node> {
-    match kind {
-        StageKind::InvertingSum { inputs, .. } => inputs.iter().map(|i| i.from).collect(),
-        StageKind::NonInverting { from, .. }
-        | StageKind::Follower { from }
-        | StageKind::Attenuator { from, .. } => vec![*from],
+    kind.reads()
+}
+
+/// Resolve `stage.node` references once every network is built: the stage must be a
+/// network, the node one of its op-amp outputs (reading a passive node would load it).
+fn resolve_inner(ctx: &Ctx, stages: &mut [Stage], pending: &[super::network::Pending]) -> R<()> {
+    let mut resolved: Vec<usize> = Vec::with_capacity(pending.len());
+    for p in pending {
+        let other = &stages[p.stage];
+        let StageKind::Network(net) = &other.kind else {
+            return Err(ctx.err(
+                &p.path,
+                Problem::Other(format!(
+                    "'{}.{}': stages.{} is not a network stage (stage.node reads a network's \
+                     inner node)",
+                    other.name, p.node, other.name
+                )),
+            ));
+        };
+        let Some(k) = net.nodes.iter().position(|n| *n == p.node) else {
+            return Err(ctx.err(
+                &p.path,
+                Problem::UnknownName {
+                    what: format!("node of stages.{}", other.name),
+                    name: p.node.clone(),
+                    suggestion: suggest(&p.node, net.nodes.iter().map(String::as_str)),
+                    valid_list: format!("its nodes are {}", net.nodes.join(", ")),
+                },
+            ));
+        };
+        if !net.amp_driven(k) {
+            return Err(ctx.err(
+                &p.path,
+                Problem::Other(format!(
+                    "'{}.{}' is a passive node of stages.{}: reading it from another stage \
+                     would load it; put this part inside that network, or read one of its \
+                     op-amp outputs",
+                    other.name, p.node, other.name
+                )),
+            ));
+        }
+        resolved.push(k);
+    }
+    let fix = |n: &mut NetNode| {
+        if let NetNode::Inner(_, idx) = n {
+            *idx = resolved[*idx];
+        }
+    };
+    for st in stages.iter_mut() {
+        if let StageKind::Network(net) = &mut st.kind {
+            for a in &mut net.amps {
+                fix(&mut a.plus);
+                fix(&mut a.minus);
+            }
+            for p in &mut net.parts {
+                fix(&mut p.ends[0]);
+                fix(&mut p.ends[1]);
+                if let NetPartKind::Pot { wiper, .. } = &mut p.kind {
+                    fix(wiper);
+                }
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Remap a network node's stage indices after ordering.
+fn net_node_remap(n: &mut NetNode, pos: &[usize]) {
+    match n {
+        NetNode::Ext(x) => remap_node(x, pos),
+        NetNode::Inner(s, _) => *s = pos[*s],
+        _ => {}
     }
 }
 
@@ -1103,6 +1224,19 @@ fn remap(kind: &mut StageKind, pos: &[usize]) {
         StageKind::NonInverting { from, .. }
         | StageKind::Follower { from }
         | StageKind::Attenuator { from, .. } => remap_node(from, pos),
+        StageKind::Network(net) => {
+            for a in &mut net.amps {
+                net_node_remap(&mut a.plus, pos);
+                net_node_remap(&mut a.minus, pos);
+            }
+            for p in &mut net.parts {
+                net_node_remap(&mut p.ends[0], pos);
+                net_node_remap(&mut p.ends[1], pos);
+                if let NetPartKind::Pot { wiper, .. } = &mut p.kind {
+                    net_node_remap(wiper, pos);
+                }
+            }
+        }
     }
 }
 

@@ -141,7 +141,7 @@ pub enum Problem {
         name: String,
     },
     /// Stages feeding each other in a loop.
-    #[error("cycle through stages {}", .cycle.join(" -> "))]
+    #[error("cycle through stages {} (a feedback loop must sit inside one network stage: put the loop in a type = \"network\" stage)", .cycle.join(" -> "))]
     Cycle {
         /// The names around the loop, the first repeated at the end.
         cycle: Vec<String>,

@@ -44,6 +44,7 @@
 mod build;
 mod error;
 mod lines;
+mod network;
 mod read;
 mod schema;
 mod set;

@@ -3,7 +3,7 @@
 
 /// Top-level sections.
 pub(crate) const TOP: &[&str] = &[
-    "patch", "rails", "sources", "stages", "outputs", "parts", "variants",
+    "patch", "rails", "sources", "stages", "outputs", "parts", "variants", "diodes", "knobs",
 ];
 
 /// `[patch]`.
@@ -41,7 +41,7 @@ pub(crate) const WAVES: &[&str] = &[
 
 /// Keys every source may have.
 pub(crate) const SOURCE_COMMON: &[&str] = &[
-    "wave", "offset", "start", "stop", "attack", "decay", "every",
+    "wave", "offset", "start", "stop", "attack", "decay", "every", "r",
 ];
 
 /// Keys of one wave kind, beside [`SOURCE_COMMON`].
@@ -84,6 +84,7 @@ pub(crate) const STAGE_TYPES: &[&str] = &[
     "non-inverting",
     "follower",
     "attenuator",
+    "network",
 ];
 
 /// Keys of one stage type (including `type`).
@@ -124,6 +125,7 @@ pub(crate) fn stage_keys(kind: &str) -> &'static [&'static str] {
         ],
         "follower" => &["type", "part", "from"],
         "attenuator" => &["type", "from", "pot", "taper", "at", "mid", "tolerance"],
+        "network" => &["type", "amps", "parts", "out", "tolerance", "cap_tolerance"],
         _ => &[],
     }
 }
@@ -149,6 +151,27 @@ pub(crate) const FEEDBACK: &[&str] = &["r", "c", "pot", "taper", "at", "mid"];
 
 /// Taper names.
 pub(crate) const TAPERS: &[&str] = &["linear", "log", "antilog"];
+
+/// `amps = [{ ... }]` entries of a network.
+pub(crate) const NET_AMP: &[&str] = &["part", "plus", "minus", "out", "name", "pos", "neg"];
+
+/// `parts = [{ ... }]` entries of a network.
+pub(crate) const NET_PART: &[&str] = &[
+    "r",
+    "c",
+    "pot",
+    "diode",
+    "ends",
+    "taper",
+    "at",
+    "mid",
+    "wiper",
+    "reverse",
+    "tolerance",
+];
+
+/// `[diodes.NAME]`.
+pub(crate) const DIODE: &[&str] = &["based_on", "is", "n", "rs", "cj"];
 
 /// `[outputs.NAME]`.
 pub(crate) const OUTPUT: &[&str] = &["from", "series", "load", "file"];
@@ -198,6 +221,9 @@ pub(crate) fn keys_at(segments: &[String]) -> Keys {
         ["stages", _] => Keys::Listed(all_stage_keys()),
         ["stages", _, "inputs", _] => Keys::Listed(INPUT.to_vec()),
         ["stages", _, "feedback"] => Keys::Listed(FEEDBACK.to_vec()),
+        ["stages", _, "amps", _] => Keys::Listed(NET_AMP.to_vec()),
+        ["stages", _, "parts", _] => Keys::Listed(NET_PART.to_vec()),
+        ["diodes", _] => Keys::Listed(DIODE.to_vec()),
         ["outputs", _] => Keys::Listed(OUTPUT.to_vec()),
         ["parts", _] => Keys::Listed(PART.to_vec()),
         ["variants", _, ..] => Keys::Any,

@@ -130,6 +130,22 @@ pub fn perturb(patch: &Patch, tol: &Tolerances, seed: u64) -> Patch {
             }
             StageKind::Attenuator { pot, .. } => *pot = r(*pot, &mut g),
             StageKind::Follower { .. } => {}
+            StageKind::Network(net) => {
+                for p in &mut net.parts {
+                    let own_tol = p.tolerance;
+                    let scale = |x: f64, t: f64, g: &mut SplitMix64| {
+                        x * (1.0 + own_tol.unwrap_or(t) * g.symmetric())
+                    };
+                    match &mut p.kind {
+                        crate::model::NetPartKind::R(x) => *x = scale(*x, tr, &mut g),
+                        crate::model::NetPartKind::C(x) => *x = scale(*x, tc, &mut g),
+                        crate::model::NetPartKind::Pot { setting, .. } => {
+                            setting.track = scale(setting.track, tr, &mut g)
+                        }
+                        crate::model::NetPartKind::Diode(_) => {}
+                    }
+                }
+            }
         }
     }
     for o in &mut p.outputs {

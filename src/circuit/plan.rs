@@ -1,0 +1,556 @@
+//! The compiled circuit: per group, the unknowns, the op-amps' loop factors and step
+//! coefficients, and the linear fast path's matrices. Plain data, printable.
+
+use super::linalg::{lu_factor, lu_solve};
+use super::partition;
+use super::{Circuit, ElemKind, NodeKind};
+
+/// An op-amp whose loop factor `b = -dVd/dv` is at or below this takes the explicit slew
+/// step (positive feedback, a comparator).
+pub const BMIN: f64 = 1e-9;
+/// Fast-path guard: largest |Vd| / Vov for which the linear step is accepted.
+pub const FAST_VD: f64 = crate::engine::plan::FAST_VD;
+/// Largest error a diode's "off" model (a constant `-is`) may make at the diode's port on
+/// the fast path, V.
+pub const DIODE_TOL: f64 = 1e-8;
+
+/// Errors from compiling a circuit.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum CircuitError {
+    /// The group's equations are singular (a node without a DC path, or an op-amp pin that
+    /// nothing drives).
+    #[error("the circuit around {what} has no unique solution (a floating node or pin?)")]
+    Singular {
+        /// Nodes or op-amps involved.
+        what: String,
+    },
+    /// A step did not converge.
+    #[error("the nonlinear step did not converge at t = {time_s:.6} s (in the group of {what})")]
+    NoConvergence {
+        /// Nodes or op-amps of the group.
+        what: String,
+        /// Time of the step, s.
+        time_s: f64,
+    },
+}
+
+/// Step coefficients of one op-amp in its group.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AmpCoef {
+    /// Index into [`Circuit::amps`].
+    pub amp: usize,
+    /// Loop factor `b = -dVd/dv` through the group (capacitors as their companions).
+    pub b: f64,
+    /// Whether the op-amp takes the explicit slew step (`b <= BMIN`).
+    pub explicit: bool,
+    /// `2 pi GBW h`.
+    pub kh: f64,
+    /// Linear step: `e` of `v[n+1] = e v[n] + a1p p[n+1] + a0p p[n]`.
+    pub e: f64,
+    /// Linear step coefficient of `p[n+1]`.
+    pub a1p: f64,
+    /// Linear step coefficient of `p[n]`.
+    pub a0p: f64,
+}
+
+/// The linear fast path of a group: `y = y0 + ay_in x + ay_z z`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FastPath {
+    /// Unknowns from the known node values (row-major, `ny x nk`).
+    pub ay_in: Vec<f64>,
+    /// Unknowns from the state (row-major, `ny x nz`).
+    pub ay_z: Vec<f64>,
+    /// Constant part (rails, offsets, bias currents, diode reverse currents).
+    pub y0: Vec<f64>,
+    /// Largest junction voltage of each diode for which its "off" model holds, V.
+    pub vth: Vec<f64>,
+}
+
+/// One compiled group.
+#[derive(Debug, Clone, PartialEq)]
+pub struct GroupPlan {
+    /// Unknown nodes: `y[i]` is node `nodes[i]` (block nodes, then op-amp outputs).
+    pub nodes: Vec<usize>,
+    /// Number of block (KCL) nodes at the start of `nodes`.
+    pub n_kcl: usize,
+    /// Op-amps: `y[nodes.len() + j]` is the state of `amps[j]`.
+    pub amps: Vec<AmpCoef>,
+    /// Elements of the group's blocks.
+    pub elems: Vec<usize>,
+    /// Capacitors: (element, companion conductance `2C/h`); `z[i]` is the history `J`.
+    pub caps: Vec<(usize, f64)>,
+    /// Diode junctions (elements).
+    pub junctions: Vec<usize>,
+    /// Non-fixed nodes read as known values (inputs, other groups' nodes).
+    pub known: Vec<usize>,
+    /// Column of every circuit node in `y`, if it is an unknown here.
+    pub col: Vec<Option<usize>>,
+    /// The linear fast path (none when an op-amp is explicit).
+    pub fast: Option<FastPath>,
+}
+
+impl GroupPlan {
+    /// Number of unknowns.
+    pub fn ny(&self) -> usize {
+        self.nodes.len() + self.amps.len()
+    }
+
+    /// State length: histories of capacitors, then each op-amp's `v`, then its `p`.
+    pub fn nz(&self) -> usize {
+        self.caps.len() + 2 * self.amps.len()
+    }
+
+    /// Names of the group's op-amps, or of its nodes when it has none (for messages).
+    pub fn describe(&self, c: &Circuit) -> String {
+        if self.amps.is_empty() {
+            self.nodes
+                .iter()
+                .map(|&n| c.nodes[n].name.clone())
+                .collect::<Vec<_>>()
+                .join(", ")
+        } else {
+            self.amps
+                .iter()
+                .map(|a| c.amps[a.amp].name.clone())
+                .collect::<Vec<_>>()
+                .join(", ")
+        }
+    }
+}
+
+/// A compiled circuit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CircuitPlan {
+    /// The circuit.
+    pub circuit: Circuit,
+    /// Time step, s.
+    pub h: f64,
+    /// Groups in solving order.
+    pub groups: Vec<GroupPlan>,
+}
+
+/// How one op-amp's row reads in an assembly.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub(crate) enum AmpRow {
+    /// `v (1 - k b) - k (P - M) = r + k vos` (P replaced by `plus_fixed` when clamped).
+    Step {
+        /// Weight of `p[n+1]`.
+        k: f64,
+        /// The loop factor that splits `p = Vd + b v`.
+        b: f64,
+        /// History part.
+        r: f64,
+        /// V+ clamped to the common-mode range.
+        plus_fixed: Option<f64>,
+    },
+    /// `v = value`.
+    Pin(f64),
+    /// DC: `eps v - (P - M) = vos`.
+    Dc {
+        /// V+ clamped to the common-mode range.
+        plus_fixed: Option<f64>,
+    },
+}
+
+/// The linearisation of one assembly.
+pub(crate) struct Lin<'a> {
+    pub rows: &'a [AmpRow],
+    /// Output rows `o = s v + c`.
+    pub outs: &'a [(f64, f64)],
+    /// Junctions `i = g v + ieq` (GMIN added by the assembly).
+    pub junc: &'a [(f64, f64)],
+    /// Capacitor histories (`None`: DC, capacitors open).
+    pub caps: Option<&'a [f64]>,
+    /// Include constants (offsets, bias currents).
+    pub consts: bool,
+}
+
+/// Value of a node: the unknown, else the node array.
+#[inline]
+pub(crate) fn val(gp: &GroupPlan, vn: &[f64], y: &[f64], n: usize) -> f64 {
+    match gp.col[n] {
+        Some(i) => y[i],
+        None => vn[n],
+    }
+}
+
+/// Assemble `m y = rhs` for a group.
+pub(crate) fn assemble(
+    c: &Circuit,
+    gp: &GroupPlan,
+    lin: &Lin,
+    vn: &[f64],
+    m: &mut [f64],
+    rhs: &mut [f64],
+) {
+    let ny = gp.ny();
+    let nn = gp.nodes.len();
+    m[..ny * ny].fill(0.0);
+    rhs[..ny].fill(0.0);
+    let kcl = |n: usize| gp.col[n].filter(|&i| i < gp.n_kcl);
+    let stamp = |m: &mut [f64], rhs: &mut [f64], a: usize, b: usize, g: f64| {
+        for (x, o) in [(a, b), (b, a)] {
+            if let Some(r) = kcl(x) {
+                m[r * ny + r] += g;
+                match gp.col[o] {
+                    Some(ci) => m[r * ny + ci] -= g,
+                    None => rhs[r] += g * vn[o],
+                }
+            }
+        }
+    };
+    let mut ci = 0;
+    let mut ji = 0;
+    for &ei in &gp.elems {
+        let e = &c.elems[ei];
+        match e.kind {
+            ElemKind::R(r) => stamp(m, rhs, e.a, e.b, 1.0 / r),
+            ElemKind::C(_) => {
+                let (_, gc) = gp.caps[ci];
+                if let Some(js) = lin.caps {
+                    stamp(m, rhs, e.a, e.b, gc);
+                    let j = js[ci];
+                    if let Some(r) = kcl(e.a) {
+                        rhs[r] += j;
+                    }
+                    if let Some(r) = kcl(e.b) {
+                        rhs[r] -= j;
+                    }
+                }
+                ci += 1;
+            }
+            ElemKind::Junction { .. } => {
+                let (g, ieq) = lin.junc[ji];
+                stamp(m, rhs, e.a, e.b, g + super::GMIN);
+                if let Some(r) = kcl(e.a) {
+                    rhs[r] -= ieq;
+                }
+                if let Some(r) = kcl(e.b) {
+                    rhs[r] += ieq;
+                }
+                ji += 1;
+            }
+        }
+    }
+    if lin.consts {
+        for a in &c.amps {
+            for pin in [a.plus, a.minus] {
+                if let Some(r) = kcl(pin) {
+                    rhs[r] -= a.ib;
+                }
+            }
+        }
+    }
+    for (j, ac) in gp.amps.iter().enumerate() {
+        let a = &c.amps[ac.amp];
+        let rv = nn + j;
+        // output row: o - s v = c
+        if let Some(ro) = gp.col[a.out] {
+            let (s, cc) = lin.outs[j];
+            m[ro * ny + ro] += 1.0;
+            m[ro * ny + rv] -= s;
+            rhs[ro] += cc;
+        }
+        let vos = if lin.consts { a.vos } else { 0.0 };
+        let (kv, kd, r, plus_fixed) = match lin.rows[j] {
+            AmpRow::Pin(x) => {
+                m[rv * ny + rv] = 1.0;
+                rhs[rv] = x;
+                continue;
+            }
+            AmpRow::Step {
+                k,
+                b,
+                r,
+                plus_fixed,
+            } => (1.0 - k * b, k, r + k * vos, plus_fixed),
+            AmpRow::Dc { plus_fixed } => (a.eps, 1.0, vos, plus_fixed),
+        };
+        m[rv * ny + rv] += kv;
+        rhs[rv] += r;
+        // - kd (P - M)
+        match plus_fixed {
+            Some(x) => rhs[rv] += kd * x,
+            None => match gp.col[a.plus] {
+                Some(i) => m[rv * ny + i] -= kd,
+                None => rhs[rv] += kd * vn[a.plus],
+            },
+        }
+        match gp.col[a.minus] {
+            Some(i) => m[rv * ny + i] += kd,
+            None => rhs[rv] -= kd * vn[a.minus],
+        }
+    }
+}
+
+/// Compile a circuit at time step `h`.
+pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
+    let c = &circuit;
+    let nnodes = c.nodes.len();
+    let mut groups = Vec::new();
+    for g in partition::groups(c) {
+        let n_kcl = g.nodes.len() - g.amps.len();
+        let mut col = vec![None; nnodes];
+        for (i, &n) in g.nodes.iter().enumerate() {
+            col[n] = Some(i);
+        }
+        let mut caps = Vec::new();
+        let mut junctions = Vec::new();
+        let mut known = Vec::new();
+        let note_known = |n: usize, known: &mut Vec<usize>| {
+            if col[n].is_none()
+                && !matches!(c.nodes[n].kind, NodeKind::Fixed(_))
+                && !known.contains(&n)
+            {
+                known.push(n);
+            }
+        };
+        for &ei in &g.elems {
+            let e = &c.elems[ei];
+            match e.kind {
+                ElemKind::C(cap) => caps.push((ei, 2.0 * cap / h)),
+                ElemKind::Junction { .. } => junctions.push(ei),
+                ElemKind::R(_) => {}
+            }
+            note_known(e.a, &mut known);
+            note_known(e.b, &mut known);
+        }
+        for &a in &g.amps {
+            note_known(c.amps[a].plus, &mut known);
+            note_known(c.amps[a].minus, &mut known);
+        }
+        let mut gp = GroupPlan {
+            nodes: g.nodes.clone(),
+            n_kcl,
+            amps: g
+                .amps
+                .iter()
+                .map(|&a| AmpCoef {
+                    amp: a,
+                    b: 0.0,
+                    explicit: false,
+                    kh: std::f64::consts::TAU * c.amps[a].gbw * h,
+                    e: 0.0,
+                    a1p: 0.0,
+                    a0p: 0.0,
+                })
+                .collect(),
+            elems: g.elems.clone(),
+            caps,
+            junctions,
+            known,
+            col,
+            fast: None,
+        };
+        let ny = gp.ny();
+        let na = gp.amps.len();
+        let mut m = vec![0.0; ny * ny];
+        let mut rhs = vec![0.0; ny];
+        let mut perm = vec![0; ny];
+        let mut tmp = vec![0.0; ny];
+        let zeros_vn = vec![0.0; nnodes];
+        let zj = vec![0.0; gp.caps.len()];
+        let outs = vec![(1.0, 0.0); na];
+        let junc0 = vec![(0.0, 0.0); gp.junctions.len()];
+        let singular = |gp: &GroupPlan| CircuitError::Singular {
+            what: gp.describe(c),
+        };
+        // loop factors
+        let mut bs = vec![0.0; na];
+        for (j, b) in bs.iter_mut().enumerate() {
+            let rows: Vec<AmpRow> = (0..na)
+                .map(|q| AmpRow::Pin(if q == j { 1.0 } else { 0.0 }))
+                .collect();
+            let lin = Lin {
+                rows: &rows,
+                outs: &outs,
+                junc: &junc0,
+                caps: Some(&zj),
+                consts: false,
+            };
+            assemble(c, &gp, &lin, &zeros_vn, &mut m, &mut rhs);
+            if !lu_factor(&mut m, ny, &mut perm) {
+                return Err(singular(&gp));
+            }
+            lu_solve(&m, ny, &perm, &mut rhs, &mut tmp);
+            let a = &c.amps[gp.amps[j].amp];
+            let vd = val(&gp, &zeros_vn, &rhs, a.plus) - val(&gp, &zeros_vn, &rhs, a.minus);
+            *b = -vd;
+        }
+        for (ac, &b) in gp.amps.iter_mut().zip(&bs) {
+            let eps = c.amps[ac.amp].eps;
+            ac.b = b;
+            ac.explicit = b <= BMIN;
+            if !ac.explicit {
+                let (e, a1, a0) = crate::engine::plan::foh(ac.kh * (b + eps));
+                ac.e = e;
+                ac.a1p = a1 / (b + eps);
+                ac.a0p = a0 / (b + eps);
+            }
+        }
+        // the fast path
+        if gp.amps.iter().all(|a| !a.explicit) {
+            let nk = gp.known.len();
+            let nz = gp.nz();
+            let nc = gp.caps.len();
+            let rows_lin = |r: &dyn Fn(usize) -> f64| -> Vec<AmpRow> {
+                (0..na)
+                    .map(|j| AmpRow::Step {
+                        k: gp.amps[j].a1p,
+                        b: gp.amps[j].b,
+                        r: r(j),
+                        plus_fixed: None,
+                    })
+                    .collect()
+            };
+            let junc_off: Vec<(f64, f64)> = gp
+                .junctions
+                .iter()
+                .map(|&ei| match c.elems[ei].kind {
+                    ElemKind::Junction { is, .. } => (0.0, -is),
+                    _ => (0.0, 0.0),
+                })
+                .collect();
+            // factor once
+            let rows0 = rows_lin(&|_| 0.0);
+            let lin0 = Lin {
+                rows: &rows0,
+                outs: &outs,
+                junc: &junc0,
+                caps: Some(&zj),
+                consts: false,
+            };
+            let mut lu = vec![0.0; ny * ny];
+            assemble(c, &gp, &lin0, &zeros_vn, &mut lu, &mut rhs);
+            if !lu_factor(&mut lu, ny, &mut perm) {
+                return Err(singular(&gp));
+            }
+            let mut ay_in = vec![0.0; ny * nk];
+            let mut ay_z = vec![0.0; ny * nz];
+            let mut vn1 = zeros_vn.clone();
+            for k in 0..nk {
+                vn1[gp.known[k]] = 1.0;
+                assemble(c, &gp, &lin0, &vn1, &mut m, &mut rhs);
+                vn1[gp.known[k]] = 0.0;
+                lu_solve(&lu, ny, &perm, &mut rhs, &mut tmp);
+                for i in 0..ny {
+                    ay_in[i * nk + k] = rhs[i];
+                }
+            }
+            let mut zj1 = zj.clone();
+            for q in 0..nz {
+                let rows = if q < nc {
+                    zj1[q] = 1.0;
+                    rows0.clone()
+                } else if q < nc + na {
+                    let jj = q - nc;
+                    rows_lin(&|j| if j == jj { gp.amps[j].e } else { 0.0 })
+                } else {
+                    let jj = q - nc - na;
+                    rows_lin(&|j| if j == jj { gp.amps[j].a0p } else { 0.0 })
+                };
+                let lin = Lin {
+                    rows: &rows,
+                    outs: &outs,
+                    junc: &junc0,
+                    caps: Some(&zj1),
+                    consts: false,
+                };
+                assemble(c, &gp, &lin, &zeros_vn, &mut m, &mut rhs);
+                if q < nc {
+                    zj1[q] = 0.0;
+                }
+                lu_solve(&lu, ny, &perm, &mut rhs, &mut tmp);
+                for i in 0..ny {
+                    ay_z[i * nz + q] = rhs[i];
+                }
+            }
+            // constants: fixed nodes, offsets, bias, reverse currents
+            let mut vnc = zeros_vn.clone();
+            for (i, nd) in c.nodes.iter().enumerate() {
+                if let NodeKind::Fixed(v) = nd.kind {
+                    vnc[i] = v;
+                }
+            }
+            let linc = Lin {
+                rows: &rows0,
+                outs: &outs,
+                junc: &junc_off,
+                caps: Some(&zj),
+                consts: true,
+            };
+            assemble(c, &gp, &linc, &vnc, &mut m, &mut rhs);
+            lu_solve(&lu, ny, &perm, &mut rhs, &mut tmp);
+            let y0 = rhs.clone();
+            // each junction's port resistance: a unit current into its anode, out of its
+            // cathode
+            let mut vth = Vec::new();
+            for &ei in &gp.junctions {
+                let e = &c.elems[ei];
+                let ElemKind::Junction { is, nvt } = e.kind else {
+                    continue;
+                };
+                let mut r = vec![0.0; ny];
+                if let Some(i) = gp.col[e.a].filter(|&i| i < n_kcl) {
+                    r[i] += 1.0;
+                }
+                if let Some(i) = gp.col[e.b].filter(|&i| i < n_kcl) {
+                    r[i] -= 1.0;
+                }
+                lu_solve(&lu, ny, &perm, &mut r, &mut tmp);
+                let va = gp.col[e.a].map_or(0.0, |i| r[i]);
+                let vb = gp.col[e.b].map_or(0.0, |i| r[i]);
+                let rport = (va - vb).abs().max(1e-3);
+                vth.push(nvt * (DIODE_TOL / (is * rport)).ln());
+            }
+            gp.fast = Some(FastPath {
+                ay_in,
+                ay_z,
+                y0,
+                vth,
+            });
+        }
+        groups.push(gp);
+    }
+    Ok(CircuitPlan { circuit, h, groups })
+}
+
+impl std::fmt::Display for CircuitPlan {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        let c = &self.circuit;
+        let name = |n: usize| c.nodes[n].name.clone();
+        for (gi, g) in self.groups.iter().enumerate() {
+            let nodes: Vec<String> = g.nodes.iter().map(|&n| name(n)).collect();
+            let known: Vec<String> = g.known.iter().map(|&n| name(n)).collect();
+            writeln!(
+                f,
+                "    group {gi}: unknowns [{}], reads [{}], {} capacitor(s), {} diode(s), {}",
+                nodes.join(", "),
+                known.join(", "),
+                g.caps.len(),
+                g.junctions.len(),
+                if g.fast.is_some() {
+                    "linear fast path"
+                } else {
+                    "nonlinear step only"
+                }
+            )?;
+            for a in &g.amps {
+                let amp = &c.amps[a.amp];
+                writeln!(
+                    f,
+                    "      amp `{}` ({}): + {}, - {}, out {}; loop factor b {:.6}{}, recursion e {:.3e}",
+                    amp.name,
+                    amp.part,
+                    name(amp.plus),
+                    name(amp.minus),
+                    name(amp.out),
+                    a.b,
+                    if a.explicit { " (explicit step)" } else { "" },
+                    a.e
+                )?;
+            }
+        }
+        Ok(())
+    }
+}

@@ -1,0 +1,718 @@
+//! The per-step solver of a compiled circuit: the rest (DC) state, the linear fast path and
+//! the bounded nonlinear step.
+
+use super::linalg::{lu_factor, lu_solve};
+use super::plan::{assemble, val, AmpRow, CircuitError, CircuitPlan, GroupPlan, Lin, FAST_VD};
+use super::{Circuit, ElemKind, NodeKind, CM_DELTA};
+
+/// Most iterations of one nonlinear step (or of the rest state) before giving up.
+pub const MAX_ITER: usize = 200;
+/// Largest change of an op-amp's state from one iteration to the next within a step, V
+/// (damps the iteration when a diode switches inside a fast loop).
+pub const V_STEP: f64 = 0.5;
+
+/// Event counters of one op-amp, in steps.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct AmpEvents {
+    /// At or past the start of the knee or the limit.
+    pub clip: u64,
+    /// |Vd| > Vov.
+    pub slew: u64,
+    /// V+ outside the common-mode range.
+    pub cm: u64,
+    /// Phase reversed.
+    pub rev: u64,
+}
+
+/// Running state of one group, with its scratch buffers (sized once).
+#[derive(Debug, Clone, PartialEq)]
+pub struct GroupState {
+    /// Capacitor histories, op-amp states `v`, op-amp `p` (see [`GroupPlan::nz`]).
+    pub z: Vec<f64>,
+    /// Last solution.
+    pub y: Vec<f64>,
+    m: Vec<f64>,
+    rhs: Vec<f64>,
+    tmp: Vec<f64>,
+    ynew: Vec<f64>,
+    perm: Vec<usize>,
+    rows: Vec<AmpRow>,
+    outs: Vec<(f64, f64)>,
+    junc: Vec<(f64, f64)>,
+    vj: Vec<f64>,
+    pins: Vec<Option<f64>>,
+    prev_pin: Vec<bool>,
+    damped: Vec<bool>,
+    fs: Vec<f64>,
+    /// Loop factors at the current linearisation (diodes conducting change them).
+    bdyn: Vec<f64>,
+    sens_m: Vec<f64>,
+    sens_rows: Vec<AmpRow>,
+    sens_outs: Vec<(f64, f64)>,
+    sens_junc: Vec<(f64, f64)>,
+    zvn: Vec<f64>,
+    zj: Vec<f64>,
+}
+
+impl GroupState {
+    fn new(gp: &GroupPlan, nnodes: usize) -> GroupState {
+        let ny = gp.ny();
+        let na = gp.amps.len();
+        GroupState {
+            z: vec![0.0; gp.nz()],
+            y: vec![0.0; ny],
+            m: vec![0.0; ny * ny],
+            rhs: vec![0.0; ny],
+            tmp: vec![0.0; ny],
+            ynew: vec![0.0; ny],
+            perm: vec![0; ny],
+            rows: vec![AmpRow::Pin(0.0); na],
+            outs: vec![(1.0, 0.0); na],
+            junc: vec![(0.0, 0.0); gp.junctions.len()],
+            vj: vec![0.0; gp.junctions.len()],
+            pins: vec![None; na],
+            prev_pin: vec![false; na],
+            damped: vec![false; na],
+            fs: vec![1.0; na],
+            bdyn: gp.amps.iter().map(|a| a.b).collect(),
+            sens_m: vec![0.0; ny * ny],
+            sens_rows: vec![AmpRow::Pin(0.0); na],
+            sens_outs: vec![(1.0, 0.0); na],
+            sens_junc: vec![(0.0, 0.0); gp.junctions.len()],
+            zvn: vec![0.0; nnodes],
+            zj: vec![0.0; gp.caps.len()],
+        }
+    }
+
+    /// Copy another state of the same group (no allocation).
+    pub fn restore_from(&mut self, o: &GroupState) {
+        self.z.copy_from_slice(&o.z);
+        self.y.copy_from_slice(&o.y);
+    }
+}
+
+/// Running state of a circuit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CircuitState {
+    /// Every node's voltage at the current step.
+    pub vn: Vec<f64>,
+    /// Per group.
+    pub groups: Vec<GroupState>,
+    /// Event counters per op-amp (circuit order).
+    pub events: Vec<AmpEvents>,
+    /// Steps taken by the fast path and by the nonlinear step.
+    pub counts: (u64, u64),
+}
+
+/// `ln(sinh(z))` for `z > 0`, without overflow.
+#[inline]
+fn ln_sinh(z: f64) -> f64 {
+    if z > 1.0 {
+        z - std::f64::consts::LN_2 + (-(-2.0 * z).exp()).ln_1p()
+    } else {
+        z.sinh().ln()
+    }
+}
+
+/// The engine's effective slew factor: for `dz/dt = -lam/h tanh z` from `z0`,
+/// `phi = ln(z0 / z1) / lam` with `sinh z1 = sinh z0 exp(-lam)`.
+#[inline]
+fn phi_eff(z0: f64, lam: f64) -> f64 {
+    if z0 < 1e-4 || lam <= 0.0 {
+        return 1.0;
+    }
+    let l1 = ln_sinh(z0) - lam;
+    let ln_z1 = if l1 < -20.0 {
+        l1
+    } else if l1 > 20.0 {
+        (l1 + std::f64::consts::LN_2).ln()
+    } else {
+        l1.exp().asinh().ln()
+    };
+    ((z0.ln() - ln_z1) / lam).clamp(0.0, 1.0)
+}
+
+/// Junction step limiting (the classic logarithmic damping of a diode's Newton step).
+#[inline]
+fn limit_junction(vnew: f64, vold: f64, nvt: f64, vcrit: f64) -> f64 {
+    if vnew > vcrit && (vnew - vold).abs() > 2.0 * nvt {
+        if vold > 0.0 {
+            let arg = 1.0 + (vnew - vold) / nvt;
+            if arg > 0.0 {
+                vold + nvt * arg.ln()
+            } else {
+                vcrit
+            }
+        } else {
+            nvt * (vnew / nvt).ln()
+        }
+    } else {
+        vnew
+    }
+}
+
+/// Shockley current and conductance at `v` (exponent capped far above any real current).
+#[inline]
+fn junction(is: f64, nvt: f64, v: f64) -> (f64, f64) {
+    let x = (v / nvt).min(200.0);
+    let ex = x.exp();
+    (is * (ex - 1.0), is * ex / nvt)
+}
+
+/// Output row `o = s v + c` of the static clipper at `v` (its tangent).
+#[inline]
+fn out_row(sh: &crate::engine::shaper::Shaper, v: f64) -> (f64, f64) {
+    if v >= sh.lo + sh.w && v <= sh.hi - sh.w {
+        return (1.0, 0.0);
+    }
+    let d = 1e-6;
+    let s = (sh.apply(v + d) - sh.apply(v - d)) / (2.0 * d);
+    (s, sh.apply(v) - s * v)
+}
+
+fn junction_params(c: &Circuit, ei: usize) -> (f64, f64) {
+    match c.elems[ei].kind {
+        ElemKind::Junction { is, nvt } => (is, nvt),
+        _ => (1e-14, 0.025),
+    }
+}
+
+impl CircuitState {
+    /// A state sized for `plan` (all zero; see [`CircuitState::rest`]).
+    pub fn new(plan: &CircuitPlan) -> CircuitState {
+        let c = &plan.circuit;
+        let mut vn = vec![0.0; c.nodes.len()];
+        for (i, n) in c.nodes.iter().enumerate() {
+            if let NodeKind::Fixed(v) = n.kind {
+                vn[i] = v;
+            }
+        }
+        CircuitState {
+            vn,
+            groups: plan
+                .groups
+                .iter()
+                .map(|g| GroupState::new(g, c.nodes.len()))
+                .collect(),
+            events: vec![AmpEvents::default(); c.amps.len()],
+            counts: (0, 0),
+        }
+    }
+
+    /// The rest (DC) state for the input values already in `vn`: capacitors open, op-amps
+    /// at equilibrium (held at their swing where the loop cannot reach it), diodes by
+    /// their Shockley law.
+    pub fn rest(&mut self, plan: &CircuitPlan) -> Result<(), CircuitError> {
+        let c = &plan.circuit;
+        for (gp, st) in plan.groups.iter().zip(self.groups.iter_mut()) {
+            rest_group(c, gp, &mut self.vn, st)?;
+        }
+        Ok(())
+    }
+
+    /// One step of every group; `time_s` names the step in an error.
+    #[inline]
+    pub fn step(
+        &mut self,
+        plan: &CircuitPlan,
+        fast: bool,
+        time_s: f64,
+    ) -> Result<(), CircuitError> {
+        let c = &plan.circuit;
+        for (gp, st) in plan.groups.iter().zip(self.groups.iter_mut()) {
+            let done = fast
+                && gp
+                    .fast
+                    .as_ref()
+                    .is_some_and(|fp| fast_step(c, gp, fp, &mut self.vn, st));
+            if done {
+                self.counts.0 += 1;
+            } else {
+                self.counts.1 += 1;
+                full_step(c, gp, plan.h, &mut self.vn, st, &mut self.events, time_s)?;
+            }
+        }
+        Ok(())
+    }
+
+    /// The state `v` of op-amp `amp` (its output before the clipper).
+    pub fn amp_state(&self, plan: &CircuitPlan, amp: usize) -> f64 {
+        for (gp, st) in plan.groups.iter().zip(&self.groups) {
+            if let Some(j) = gp.amps.iter().position(|a| a.amp == amp) {
+                return st.z[gp.caps.len() + j];
+            }
+        }
+        0.0
+    }
+
+    /// Copy another state of the same plan (no allocation).
+    pub fn restore_from(&mut self, o: &CircuitState) {
+        self.vn.copy_from_slice(&o.vn);
+        for (a, b) in self.groups.iter_mut().zip(&o.groups) {
+            a.restore_from(b);
+        }
+        self.events.copy_from_slice(&o.events);
+        self.counts = o.counts;
+    }
+}
+
+fn rest_group(
+    c: &Circuit,
+    gp: &GroupPlan,
+    vn: &mut [f64],
+    st: &mut GroupState,
+) -> Result<(), CircuitError> {
+    let ny = gp.ny();
+    let nn = gp.nodes.len();
+    let nc = gp.caps.len();
+    let na = gp.amps.len();
+    st.y.fill(0.0);
+    for (i, &n) in gp.nodes.iter().enumerate() {
+        st.y[i] = vn[n];
+    }
+    // start every op-amp inside its linear region (at 0 V, or mid-swing when 0 V is outside
+    // it, as on a single supply), so the first linearisation closes every loop
+    for (j, ac) in gp.amps.iter().enumerate() {
+        let sh = &c.amps[ac.amp].shaper;
+        let (l, h) = (sh.lo + sh.w, sh.hi - sh.w);
+        let v = if (l..=h).contains(&0.0) {
+            0.0
+        } else {
+            0.5 * (sh.lo + sh.hi)
+        };
+        st.y[nn + j] = v;
+        if let Some(i) = gp.col[c.amps[ac.amp].out] {
+            st.y[i] = v;
+        }
+    }
+    st.pins.fill(None);
+    st.vj.fill(0.0);
+    let mut converged = false;
+    for _ in 0..MAX_ITER {
+        for (j, ac) in gp.amps.iter().enumerate() {
+            let a = &c.amps[ac.amp];
+            let v = st.y[nn + j];
+            st.outs[j] = out_row(&a.shaper, v);
+            if ac.explicit && st.pins[j].is_none() {
+                // no negative feedback: the output sits at the rail its input points to
+                let vd = val(gp, vn, &st.y, a.plus) - val(gp, vn, &st.y, a.minus) + a.vos;
+                st.rows[j] = AmpRow::Pin(if vd >= 0.0 { a.shaper.hi } else { a.shaper.lo });
+                continue;
+            }
+            st.rows[j] = match st.pins[j] {
+                Some(x) => AmpRow::Pin(x),
+                None => {
+                    let vp = val(gp, vn, &st.y, a.plus);
+                    let plus_fixed = match a.cm {
+                        Some((cl, ch)) if !a.reversal && (vp < cl || vp > ch) => {
+                            Some(vp.clamp(cl, ch.max(cl)))
+                        }
+                        _ => None,
+                    };
+                    AmpRow::Dc { plus_fixed }
+                }
+            };
+        }
+        for (q, &ei) in gp.junctions.iter().enumerate() {
+            let (is, nvt) = junction_params(c, ei);
+            let (i, g) = junction(is, nvt, st.vj[q]);
+            st.junc[q] = (g, i - g * st.vj[q]);
+        }
+        let lin = Lin {
+            rows: &st.rows,
+            outs: &st.outs,
+            junc: &st.junc,
+            caps: None,
+            consts: true,
+        };
+        assemble(c, gp, &lin, vn, &mut st.m, &mut st.rhs);
+        if !lu_factor(&mut st.m, ny, &mut st.perm) {
+            return Err(CircuitError::Singular {
+                what: gp.describe(c),
+            });
+        }
+        lu_solve(&st.m, ny, &st.perm, &mut st.rhs, &mut st.tmp);
+        st.ynew.copy_from_slice(&st.rhs);
+        let mut changed = false;
+        for (j, ac) in gp.amps.iter().enumerate() {
+            let a = &c.amps[ac.amp];
+            let v = st.ynew[nn + j];
+            if st.pins[j].is_none() && !ac.explicit && (v < a.shaper.lo || v > a.shaper.hi) {
+                st.pins[j] = Some(v.clamp(a.shaper.lo, a.shaper.hi));
+                changed = true;
+            }
+            if ac.explicit {
+                let vd = val(gp, vn, &st.ynew, a.plus) - val(gp, vn, &st.ynew, a.minus) + a.vos;
+                let want = if vd >= 0.0 { a.shaper.hi } else { a.shaper.lo };
+                if (want - v).abs() > 1e-12 && st.pins[j].is_none() {
+                    changed = true;
+                }
+            }
+        }
+        let mut jconv = true;
+        for (q, &ei) in gp.junctions.iter().enumerate() {
+            let e = &c.elems[ei];
+            let (is, nvt) = junction_params(c, ei);
+            let v = val(gp, vn, &st.ynew, e.a) - val(gp, vn, &st.ynew, e.b);
+            let vcrit = nvt * (nvt / (std::f64::consts::SQRT_2 * is)).ln();
+            let vl = limit_junction(v, st.vj[q], nvt, vcrit);
+            if (vl - st.vj[q]).abs() > 1e-9 || vl != v {
+                jconv = false;
+            }
+            st.vj[q] = vl;
+        }
+        let mut dy: f64 = 0.0;
+        for (a, b) in st.y.iter().zip(&st.ynew) {
+            dy = dy.max((a - b).abs() / (1.0 + b.abs()));
+        }
+        st.y.copy_from_slice(&st.ynew);
+        if !changed && jconv && dy < 1e-10 {
+            converged = true;
+            break;
+        }
+    }
+    if !converged {
+        return Err(CircuitError::NoConvergence {
+            what: gp.describe(c),
+            time_s: 0.0,
+        });
+    }
+    for (i, &n) in gp.nodes.iter().enumerate() {
+        vn[n] = st.y[i];
+    }
+    for (q, &(ei, gc)) in gp.caps.iter().enumerate() {
+        let e = &c.elems[ei];
+        st.z[q] = gc * (vn[e.a] - vn[e.b]);
+    }
+    for (j, ac) in gp.amps.iter().enumerate() {
+        let a = &c.amps[ac.amp];
+        let v = st.y[nn + j];
+        let vd = vn[a.plus] - vn[a.minus] + a.vos;
+        st.z[nc + j] = v;
+        st.z[nc + na + j] = vd + ac.b * v;
+    }
+    Ok(())
+}
+
+/// The linear step; false (nothing changed) when something came near a limit.
+#[inline]
+fn fast_step(
+    c: &Circuit,
+    gp: &GroupPlan,
+    fp: &super::plan::FastPath,
+    vn: &mut [f64],
+    st: &mut GroupState,
+) -> bool {
+    let ny = gp.ny();
+    let nk = gp.known.len();
+    let nz = gp.nz();
+    for i in 0..ny {
+        let mut s = fp.y0[i];
+        let ri = &fp.ay_in[i * nk..(i + 1) * nk];
+        for (w, &n) in ri.iter().zip(&gp.known) {
+            s += w * vn[n];
+        }
+        let rz = &fp.ay_z[i * nz..(i + 1) * nz];
+        for (w, z) in rz.iter().zip(&st.z) {
+            s += w * z;
+        }
+        st.ynew[i] = s;
+    }
+    let nn = gp.nodes.len();
+    let y = &st.ynew;
+    for (j, ac) in gp.amps.iter().enumerate() {
+        let a = &c.amps[ac.amp];
+        let v = y[nn + j];
+        let vp = val(gp, vn, y, a.plus);
+        let vd = vp - val(gp, vn, y, a.minus) + a.vos;
+        let sh = &a.shaper;
+        let mut ok = vd.abs() <= FAST_VD * a.vov && v >= sh.lo + sh.w && v <= sh.hi - sh.w;
+        if let Some((cl, ch)) = a.cm {
+            let margin = if a.reversal { 20.0 * CM_DELTA } else { 0.0 };
+            ok &= vp >= cl + margin && vp <= ch - margin;
+        }
+        if !ok || !v.is_finite() {
+            return false;
+        }
+    }
+    for (q, &ei) in gp.junctions.iter().enumerate() {
+        let e = &c.elems[ei];
+        if val(gp, vn, y, e.a) - val(gp, vn, y, e.b) > fp.vth[q] {
+            return false;
+        }
+    }
+    commit(c, gp, vn, st);
+    true
+}
+
+/// Write the solution in `st.ynew` to the node array and advance the state.
+#[inline]
+fn commit(c: &Circuit, gp: &GroupPlan, vn: &mut [f64], st: &mut GroupState) {
+    let nn = gp.nodes.len();
+    let nc = gp.caps.len();
+    let na = gp.amps.len();
+    st.y.copy_from_slice(&st.ynew);
+    for (i, &n) in gp.nodes.iter().enumerate() {
+        vn[n] = st.y[i];
+    }
+    for (q, &(ei, gc)) in gp.caps.iter().enumerate() {
+        let e = &c.elems[ei];
+        st.z[q] = 2.0 * gc * (vn[e.a] - vn[e.b]) - st.z[q];
+    }
+    for (j, ac) in gp.amps.iter().enumerate() {
+        let a = &c.amps[ac.amp];
+        let v = st.y[nn + j];
+        let vp = match a.cm {
+            Some((cl, ch)) if !a.reversal => vn[a.plus].clamp(cl, ch.max(cl)),
+            _ => vn[a.plus],
+        };
+        let vd = vp - vn[a.minus] + a.vos;
+        st.z[nc + j] = v;
+        st.z[nc + na + j] = vd + ac.b * v;
+    }
+}
+
+/// Each op-amp's loop factor `-dVd/dv` at the current linearisation of the diodes, into
+/// `st.bdyn`.
+fn loop_factors(c: &Circuit, gp: &GroupPlan, st: &mut GroupState) -> Result<(), CircuitError> {
+    let ny = gp.ny();
+    let nn = gp.nodes.len();
+    for (d, s) in st.sens_junc.iter_mut().zip(&st.junc) {
+        *d = (s.0, 0.0);
+    }
+    // through the network as if every output were linear (a clipped output is the state
+    // clamp's business, not a broken loop)
+    st.sens_outs.fill((1.0, 0.0));
+    st.sens_rows.fill(AmpRow::Pin(0.0));
+    let lin = Lin {
+        rows: &st.sens_rows,
+        outs: &st.sens_outs,
+        junc: &st.sens_junc,
+        caps: Some(&st.zj),
+        consts: false,
+    };
+    assemble(c, gp, &lin, &st.zvn, &mut st.sens_m, &mut st.rhs);
+    if !lu_factor(&mut st.sens_m, ny, &mut st.perm) {
+        return Err(CircuitError::Singular {
+            what: gp.describe(c),
+        });
+    }
+    for (j, ac) in gp.amps.iter().enumerate() {
+        st.rhs.fill(0.0);
+        st.rhs[nn + j] = 1.0;
+        lu_solve(&st.sens_m, ny, &st.perm, &mut st.rhs, &mut st.tmp);
+        let a = &c.amps[ac.amp];
+        let vd = val(gp, &st.zvn, &st.rhs, a.plus) - val(gp, &st.zvn, &st.rhs, a.minus);
+        st.bdyn[j] = -vd;
+    }
+    Ok(())
+}
+
+/// The nonlinear step of one group.
+#[allow(clippy::too_many_arguments)]
+fn full_step(
+    c: &Circuit,
+    gp: &GroupPlan,
+    h: f64,
+    vn: &mut [f64],
+    st: &mut GroupState,
+    events: &mut [AmpEvents],
+    time_s: f64,
+) -> Result<(), CircuitError> {
+    let ny = gp.ny();
+    let nn = gp.nodes.len();
+    let nc = gp.caps.len();
+    let na = gp.amps.len();
+    let delta_inv = 1.0 / CM_DELTA;
+    // the reversal factor from the previous values, fixed for the step
+    for (j, ac) in gp.amps.iter().enumerate() {
+        let a = &c.amps[ac.amp];
+        let mut f = 1.0;
+        if let (Some((cl, ch)), true) = (a.cm, a.reversal) {
+            let vp = vn[a.plus];
+            f = (((vp - cl).min(ch - vp)) * delta_inv).tanh();
+        }
+        st.fs[j] = f;
+        st.prev_pin[j] = false;
+    }
+    for (q, &ei) in gp.junctions.iter().enumerate() {
+        let e = &c.elems[ei];
+        st.vj[q] = val(gp, vn, &st.y, e.a) - val(gp, vn, &st.y, e.b);
+    }
+    let mut converged = false;
+    for _ in 0..MAX_ITER {
+        for (q, &ei) in gp.junctions.iter().enumerate() {
+            let (is, nvt) = junction_params(c, ei);
+            let (i, g) = junction(is, nvt, st.vj[q]);
+            st.junc[q] = (g, i - g * st.vj[q]);
+        }
+        for (j, ac) in gp.amps.iter().enumerate() {
+            let a = &c.amps[ac.amp];
+            st.outs[j] = out_row(&a.shaper, st.y[nn + j]);
+            st.bdyn[j] = ac.b;
+        }
+        if !gp.junctions.is_empty() && na > 0 {
+            loop_factors(c, gp, st)?;
+        }
+        // each op-amp's row: explicit (no negative loop) or the exact step
+        for (j, ac) in gp.amps.iter().enumerate() {
+            let a = &c.amps[ac.amp];
+            let vg = st.y[nn + j];
+            let v0 = st.z[nc + j];
+            let bd = st.bdyn[j];
+            // the stored p uses the compiled loop factor: re-split it with this one
+            let p0 = st.z[nc + na + j] - ac.b * v0 + bd * v0;
+            let f = st.fs[j];
+            st.pins[j] = None;
+            if ac.explicit || bd * f <= super::plan::BMIN {
+                let vd = f * (p0 - bd * v0);
+                let k = std::f64::consts::TAU * a.gbw;
+                let v1 = v0 + h * (a.slew * (vd / a.vov).tanh() - k * a.eps * v0);
+                let v1 = if v1.is_finite() { v1 } else { v0 };
+                let x = v1.clamp(a.state_lo, a.state_hi);
+                st.pins[j] = Some(x);
+                st.rows[j] = AmpRow::Pin(x);
+                continue;
+            }
+            let vp = val(gp, vn, &st.y, a.plus);
+            let plus_fixed = match a.cm {
+                Some((cl, ch)) if !a.reversal && (vp < cl || vp > ch) => {
+                    Some(vp.clamp(cl, ch.max(cl)))
+                }
+                _ => None,
+            };
+            let pe = plus_fixed.unwrap_or(vp);
+            let pg = pe - val(gp, vn, &st.y, a.minus) + a.vos + bd * vg;
+            let z0 = (f * (0.5 * (pg + p0) - bd * v0) / a.vov).abs();
+            let phi = phi_eff(z0, ac.kh * f * bd);
+            let g = f * phi;
+            let cc = g * bd + a.eps;
+            let (e, a1, a0) = crate::engine::plan::foh(ac.kh * cc);
+            let inv = g / cc;
+            st.rows[j] = AmpRow::Step {
+                k: inv * a1,
+                b: bd,
+                r: e * v0 + inv * a0 * p0,
+                plus_fixed,
+            };
+        }
+        // solve; an op-amp past its slew bound or state limit is held there and the
+        // group solved again (at most once per op-amp); a state that would move by more
+        // than V_STEP from this iteration's guess is held at that distance (damping)
+        st.damped.fill(false);
+        for _ in 0..=na {
+            let lin = Lin {
+                rows: &st.rows,
+                outs: &st.outs,
+                junc: &st.junc,
+                caps: Some(&st.z[..nc]),
+                consts: true,
+            };
+            assemble(c, gp, &lin, vn, &mut st.m, &mut st.rhs);
+            if !lu_factor(&mut st.m, ny, &mut st.perm) {
+                return Err(CircuitError::Singular {
+                    what: gp.describe(c),
+                });
+            }
+            lu_solve(&st.m, ny, &st.perm, &mut st.rhs, &mut st.tmp);
+            st.ynew.copy_from_slice(&st.rhs);
+            if st.ynew.iter().any(|x| !x.is_finite()) {
+                return Err(CircuitError::NoConvergence {
+                    what: gp.describe(c),
+                    time_s,
+                });
+            }
+            let mut new_pin = false;
+            for (j, ac) in gp.amps.iter().enumerate() {
+                if st.pins[j].is_some() {
+                    continue;
+                }
+                let a = &c.amps[ac.amp];
+                let v0 = st.z[nc + j];
+                let v = st.ynew[nn + j];
+                let dmax = ac.kh * (a.vov + a.eps * v0.abs());
+                let mut pin = None;
+                if (v - v0).abs() > dmax * (1.0 + 1e-9) {
+                    pin = Some(v0 + (v - v0).clamp(-dmax, dmax));
+                }
+                let vv = pin.unwrap_or(v);
+                if vv < a.state_lo || vv > a.state_hi {
+                    pin = Some(vv.clamp(a.state_lo, a.state_hi));
+                }
+                let vg = st.y[nn + j];
+                let target = pin.unwrap_or(v);
+                if (target - vg).abs() > V_STEP {
+                    pin = Some(vg + (target - vg).clamp(-V_STEP, V_STEP));
+                    st.damped[j] = true;
+                }
+                if let Some(x) = pin {
+                    st.pins[j] = Some(x);
+                    st.rows[j] = AmpRow::Pin(x);
+                    new_pin = true;
+                }
+            }
+            if !new_pin {
+                break;
+            }
+        }
+        let mut same_pins = true;
+        for (j, p) in st.pins.iter().enumerate() {
+            let now = p.is_some() && !st.damped[j];
+            if now != st.prev_pin[j] {
+                same_pins = false;
+            }
+            st.prev_pin[j] = now;
+        }
+        let mut jconv = true;
+        for (q, &ei) in gp.junctions.iter().enumerate() {
+            let e = &c.elems[ei];
+            let (is, nvt) = junction_params(c, ei);
+            let v = val(gp, vn, &st.ynew, e.a) - val(gp, vn, &st.ynew, e.b);
+            let vcrit = nvt * (nvt / (std::f64::consts::SQRT_2 * is)).ln();
+            let vl = limit_junction(v, st.vj[q], nvt, vcrit);
+            if (vl - st.vj[q]).abs() > 1e-9 * (1.0 + vl.abs()) || vl != v {
+                jconv = false;
+            }
+            st.vj[q] = vl;
+        }
+        let mut dy: f64 = 0.0;
+        for (a, b) in st.y.iter().zip(&st.ynew) {
+            dy = dy.max((a - b).abs() / (1.0 + b.abs()));
+        }
+        st.y.copy_from_slice(&st.ynew);
+        if same_pins && jconv && dy < 1e-10 {
+            converged = true;
+            break;
+        }
+    }
+    if !converged {
+        return Err(CircuitError::NoConvergence {
+            what: gp.describe(c),
+            time_s,
+        });
+    }
+    commit(c, gp, vn, st);
+    for (j, ac) in gp.amps.iter().enumerate() {
+        let a = &c.amps[ac.amp];
+        let ev = &mut events[ac.amp];
+        let v = st.z[nc + j];
+        let p = st.z[nc + na + j];
+        let f = st.fs[j];
+        if (f * (p - ac.b * v)).abs() > a.vov {
+            ev.slew += 1;
+        }
+        if let Some((cl, ch)) = a.cm {
+            let vp = vn[a.plus];
+            if vp < cl || vp > ch {
+                ev.cm += 1;
+            }
+        }
+        if f < 0.0 {
+            ev.rev += 1;
+        }
+        if a.shaper.clipping(v) {
+            ev.clip += 1;
+        }
+    }
+    Ok(())
+}

@@ -1,0 +1,146 @@
+//! Network stages in the engine: the compiled circuit of each network, its inputs and
+//! outputs as engine buffers, and its block processing.
+
+use crate::circuit::plan::CircuitPlan;
+use crate::circuit::step::CircuitState;
+
+/// One input node of a network, read from an engine buffer.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NetInput {
+    /// Circuit node it sets.
+    pub cnode: usize,
+    /// Buffer read.
+    pub buf: usize,
+    /// Delay applied to that buffer, internal samples.
+    pub delay: usize,
+    /// Gain of the tap (a pot's wiper), 1 for a direct connection.
+    pub gain: f64,
+}
+
+/// A compiled network stage.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NetPlan {
+    /// Stage name.
+    pub name: String,
+    /// Buffer of the stage's output.
+    pub node: usize,
+    /// Latency of that buffer relative to source time, internal samples (one: the clipper's
+    /// lookahead, or a plain one-sample delay for a passive output).
+    pub latency: usize,
+    /// Inputs.
+    pub inputs: Vec<NetInput>,
+    /// The compiled circuit.
+    pub circuit: CircuitPlan,
+    /// Circuit node of the output.
+    pub out: usize,
+    /// The op-amp driving the output (its band-limited clipper makes the output).
+    pub out_amp: Option<usize>,
+    /// Inner nodes other stages read: (circuit node, buffer).
+    pub exports: Vec<(usize, usize)>,
+    /// Rest state.
+    pub rest: CircuitState,
+    /// Rest value of the output, V.
+    pub rest_out: f64,
+}
+
+/// Running state of one network stage.
+#[derive(Debug, Clone)]
+pub(crate) struct NetRun {
+    pub state: CircuitState,
+    pub x1: f64,
+    pub x2: f64,
+    pub drive: Vec<f64>,
+    pub ex_prev: Vec<f64>,
+    pub ex_vals: Vec<Vec<f64>>,
+}
+
+impl NetRun {
+    pub(crate) fn new(np: &NetPlan, block: usize) -> NetRun {
+        let mut r = NetRun {
+            state: np.rest.clone(),
+            x1: 0.0,
+            x2: 0.0,
+            drive: vec![0.0; block],
+            ex_prev: vec![0.0; np.exports.len()],
+            ex_vals: vec![vec![0.0; block]; np.exports.len()],
+        };
+        r.reset(np);
+        r
+    }
+
+    pub(crate) fn reset(&mut self, np: &NetPlan) {
+        self.state.restore_from(&np.rest);
+        let x = match np.out_amp {
+            Some(a) => self.state.amp_state(&np.circuit, a),
+            None => self.state.vn[np.out],
+        };
+        self.x1 = x;
+        self.x2 = x;
+        for (p, &(n, _)) in self.ex_prev.iter_mut().zip(&np.exports) {
+            *p = np.rest.vn[n];
+        }
+    }
+}
+
+/// Run one block of a network stage: inputs from `bufs`, the output into `own` (one
+/// sample late), the exported nodes' values (not yet delayed) into `nr.ex_vals`. Returns the error of a step that failed (the
+/// rest of the block holds the last value).
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn net_block(
+    np: &NetPlan,
+    nr: &mut NetRun,
+    bufs: &[Vec<f64>],
+    hist: usize,
+    own: &mut [f64],
+    fast: bool,
+    antialias: bool,
+    t0: f64,
+    h: f64,
+) -> Result<(), crate::circuit::plan::CircuitError> {
+    let b = own.len();
+    let mut err = None;
+    for t in 0..b {
+        if err.is_none() {
+            for inp in &np.inputs {
+                nr.state.vn[inp.cnode] = inp.gain * bufs[inp.buf][hist - inp.delay + t];
+            }
+            if let Err(e) = nr.state.step(&np.circuit, fast, t0 + t as f64 * h) {
+                err = Some(e);
+            }
+        }
+        nr.drive[t] = match np.out_amp {
+            Some(a) => nr.state.amp_state(&np.circuit, a),
+            None => nr.state.vn[np.out],
+        };
+        for (k, &(n, _)) in np.exports.iter().enumerate() {
+            nr.ex_vals[k][t] = nr.state.vn[n];
+        }
+    }
+    match np.out_amp {
+        Some(a) => {
+            let sh = np.circuit.circuit.amps[a].shaper;
+            for (o, &xn) in own.iter_mut().zip(&nr.drive) {
+                let (x2, x1) = (nr.x2, nr.x1);
+                *o = if sh.inside(x2, x1, xn) {
+                    x1
+                } else if antialias {
+                    sh.smooth(x2, x1, xn)
+                } else {
+                    sh.apply(x1)
+                };
+                nr.x2 = x1;
+                nr.x1 = xn;
+            }
+        }
+        None => {
+            for (o, &xn) in own.iter_mut().zip(&nr.drive) {
+                *o = nr.x1;
+                nr.x1 = xn;
+            }
+        }
+    }
+    match err {
+        Some(e) => Err(e),
+        None => Ok(()),
+    }
+}

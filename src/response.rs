@@ -1,0 +1,522 @@
+//! Small-signal frequency response of a patch, from one source to each output: every stage
+//! expanded into one circuit ([`crate::circuit`]), solved as a complex nodal system at each
+//! frequency, each op-amp with its single-pole open loop `A(s) = A0 / (1 + s A0 / (2 pi GBW))`
+//! (`2 pi GBW / s` without a finite `a0`), each diode as its small-signal conductance at the
+//! patch's rest (DC) operating point.
+//!
+//! One circuit for the whole patch, so whatever reads a node loads it, as in the engine's
+//! networks (the shorthand stages' engine treats a pot's loads by their Thevenin view: the
+//! same currents).
+
+use std::collections::BTreeMap;
+
+use rustfft::num_complex::Complex64;
+use serde::Serialize;
+
+use crate::circuit::build::{network_circuit, InputRef};
+use crate::circuit::step::CircuitState;
+use crate::circuit::{Amp, Circuit, ElemKind, NodeKind};
+use crate::model::{Node, Patch, StageKind, Wave};
+use crate::parts::taper;
+
+/// Errors of a response computation.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum ResponseError {
+    /// A bad frequency grid.
+    #[error("{0}")]
+    Grid(String),
+    /// The circuit has no unique solution at a frequency.
+    #[error("the circuit has no unique solution at {hz} Hz")]
+    Singular {
+        /// The frequency.
+        hz: f64,
+    },
+    /// The rest (DC) operating point could not be found.
+    #[error("{0}")]
+    Circuit(String),
+}
+
+/// One point of a response.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct Point {
+    /// Frequency, Hz.
+    pub hz: f64,
+    /// Gain, dB.
+    pub gain_db: f64,
+    /// Phase, degrees (-180 to 180).
+    pub phase_deg: f64,
+}
+
+/// The response at one output.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct OutputResponse {
+    /// The source driven.
+    pub source: String,
+    /// Points on the grid.
+    pub points: Vec<Point>,
+}
+
+/// `{"outputs": {"<out>": {"source": ..., "points": [...]}}}`.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Response {
+    /// Per output name.
+    pub outputs: BTreeMap<String, OutputResponse>,
+}
+
+/// `points` frequencies from `from` to `to`, evenly spaced in log frequency.
+pub fn log_grid(from: f64, to: f64, points: usize) -> Result<Vec<f64>, ResponseError> {
+    if !(from.is_finite() && to.is_finite() && from > 0.0 && to > from) {
+        return Err(ResponseError::Grid(format!(
+            "expected 0 < --from < --to, got {from} Hz and {to} Hz"
+        )));
+    }
+    if !(2..=100_000).contains(&points) {
+        return Err(ResponseError::Grid(format!(
+            "--points: expected 2 to 100000, got {points}"
+        )));
+    }
+    let (a, b) = (from.ln(), to.ln());
+    Ok((0..points)
+        .map(|i| (a + (b - a) * i as f64 / (points - 1) as f64).exp())
+        .collect())
+}
+
+/// The patch as one circuit: (circuit, the input node of every source, the node of every
+/// stage's output, the node of every output).
+struct Whole {
+    c: Circuit,
+    src: Vec<usize>,
+    out: Vec<usize>,
+    stage: Vec<usize>,
+}
+
+fn dc_level(w: &Wave, offset: f64) -> f64 {
+    match w {
+        Wave::Dc { level } => level + offset,
+        _ => offset,
+    }
+}
+
+fn build(patch: &Patch) -> Whole {
+    let mut c = Circuit::new();
+    let gnd = c.node("gnd", NodeKind::Fixed(0.0));
+    let mut src = Vec::new();
+    let mut node_of_source = Vec::new();
+    for s in &patch.sources {
+        let i = c.input(&s.name);
+        src.push(i);
+        if s.r > 0.0 {
+            let n = c.node(&format!("{}.out", s.name), NodeKind::Free);
+            c.r(i, n, s.r, &format!("sources.{}.r", s.name));
+            node_of_source.push(n);
+        } else {
+            node_of_source.push(i);
+        }
+    }
+    let mut stage_node: Vec<usize> = Vec::with_capacity(patch.stages.len());
+    let node = |n: Node, stage_node: &Vec<usize>| match n {
+        Node::Source(i) => node_of_source[i],
+        Node::Stage(i) => stage_node[i],
+    };
+    for (i, st) in patch.stages.iter().enumerate() {
+        // op-amp stages always carry a part (a model invariant); the ideal profile stands in
+        // rather than a panic
+        let part = st
+            .part
+            .clone()
+            .or_else(|| crate::parts::builtin("ideal"))
+            .unwrap_or_else(unreachable_part);
+        let amp = |_: &Circuit| Amp::new(&st.name, &part, patch.rails, 0.0);
+        let y = match &st.kind {
+            StageKind::InvertingSum {
+                inputs,
+                feedback,
+                reference,
+                ..
+            } => {
+                let m = c.node(&format!("{}.minus", st.name), NodeKind::Free);
+                let y = c.node(&st.name, NodeKind::Free);
+                let r = c.node(&format!("{}.ref", st.name), NodeKind::Fixed(*reference));
+                for (k, inp) in inputs.iter().enumerate() {
+                    let from = node(inp.from, &stage_node);
+                    match inp.c {
+                        Some(cap) => {
+                            let mid = c.node(&format!("{}.inputs[{k}].c", st.name), NodeKind::Free);
+                            c.c(from, mid, cap, "c");
+                            c.r(mid, m, inp.r, "r");
+                        }
+                        None => c.r(from, m, inp.r, "r"),
+                    }
+                }
+                c.r(m, y, feedback.r, "feedback.r");
+                if let Some(cap) = feedback.c {
+                    c.c(m, y, cap, "feedback.c");
+                }
+                let a = amp(&c);
+                c.amp(a, r, m, y);
+                y
+            }
+            StageKind::NonInverting {
+                from,
+                r_fb,
+                c_fb,
+                r_g,
+                reference,
+            } => {
+                let m = c.node(&format!("{}.minus", st.name), NodeKind::Free);
+                let y = c.node(&st.name, NodeKind::Free);
+                let r = c.node(&format!("{}.ref", st.name), NodeKind::Fixed(*reference));
+                c.r(y, m, *r_fb, "r_fb");
+                if let Some(cap) = c_fb {
+                    c.c(y, m, *cap, "c_fb");
+                }
+                c.r(m, r, *r_g, "r_g");
+                let p = node(*from, &stage_node);
+                let a = amp(&c);
+                c.amp(a, p, m, y);
+                y
+            }
+            StageKind::Follower { from } => {
+                let y = c.node(&st.name, NodeKind::Free);
+                let p = node(*from, &stage_node);
+                let a = amp(&c);
+                c.amp(a, p, y, y);
+                y
+            }
+            StageKind::Attenuator {
+                from,
+                pot,
+                taper: t,
+                at,
+            } => {
+                let frac = taper::fraction(*t, *at);
+                let w = c.node(&st.name, NodeKind::Free);
+                let top = node(*from, &stage_node);
+                c.r(
+                    top,
+                    w,
+                    (pot * (1.0 - frac)).max(crate::model::POT_END_R),
+                    "pot upper",
+                );
+                c.r(
+                    w,
+                    gnd,
+                    (pot * frac).max(crate::model::POT_END_R),
+                    "pot lower",
+                );
+                w
+            }
+            StageKind::Network(_) => {
+                let direct = |_: Node| (1.0, 0.0);
+                let nc = network_circuit(patch, i, &direct, 0.0);
+                // merge: fixed nodes by value, inputs onto the patch nodes they read, free
+                // nodes as new nodes
+                let mut map = vec![0usize; nc.circuit.nodes.len()];
+                for (k, n) in nc.circuit.nodes.iter().enumerate() {
+                    map[k] = match n.kind {
+                        NodeKind::Fixed(v) => c.node(&n.name, NodeKind::Fixed(v)),
+                        NodeKind::Free => {
+                            c.node(&format!("{}.{}", st.name, n.name), NodeKind::Free)
+                        }
+                        NodeKind::Input(_) => usize::MAX,
+                    };
+                }
+                for &(cn, r, _) in &nc.inputs {
+                    map[cn] = match r {
+                        InputRef::Node(n) => node(n, &stage_node),
+                        InputRef::Inner(s, l) => {
+                            let StageKind::Network(net) = &patch.stages[s].kind else {
+                                continue;
+                            };
+                            let name = format!("{}.{}", patch.stages[s].name, net.nodes[l]);
+                            c.nodes.iter().position(|x| x.name == name).unwrap_or(gnd)
+                        }
+                    };
+                }
+                for e in &nc.circuit.elems {
+                    let (a, b) = (map[e.a], map[e.b]);
+                    match e.kind {
+                        ElemKind::R(r) => c.r(a, b, r, &e.label),
+                        ElemKind::C(x) => c.c(a, b, x, &e.label),
+                        ElemKind::Junction { .. } => {
+                            c.elems.push(crate::circuit::Elem {
+                                kind: e.kind,
+                                a,
+                                b,
+                                label: e.label.clone(),
+                            });
+                        }
+                    }
+                }
+                for a in &nc.circuit.amps {
+                    let (p, m, o) = (map[a.plus], map[a.minus], map[a.out]);
+                    c.amp(a.clone(), p, m, o);
+                }
+                map[nc.out]
+            }
+        };
+        stage_node.push(y);
+    }
+    let mut out = Vec::new();
+    for o in &patch.outputs {
+        let n = node(o.from, &stage_node);
+        let n = match o.load {
+            Some(l) => {
+                let t = if o.series > 0.0 {
+                    let t = c.node(&format!("outputs.{}", o.name), NodeKind::Free);
+                    c.r(n, t, o.series, "series");
+                    t
+                } else {
+                    n
+                };
+                c.r(t, gnd, l, "load");
+                t
+            }
+            None => n,
+        };
+        out.push(n);
+    }
+    Whole {
+        c,
+        src,
+        out,
+        stage: stage_node,
+    }
+}
+
+fn unreachable_part() -> crate::parts::OpAmp {
+    crate::parts::OpAmp {
+        name: "ideal".into(),
+        about: String::new(),
+        gbw: 1e12,
+        slew: 1e12,
+        a0: None,
+        drop_pos: 0.0,
+        drop_neg: 0.0,
+        knee: 0.0,
+        cm_low: None,
+        cm_high: None,
+        reversal: false,
+        vos: 0.0,
+        ib: 0.0,
+        en: 0.0,
+        en_corner: 0.0,
+        inoise: 0.0,
+        isc: None,
+        supply_max: f64::INFINITY,
+    }
+}
+
+/// Solve `a x = b` in place (complex, partial pivoting); false when singular.
+fn csolve(a: &mut [Complex64], b: &mut [Complex64], n: usize) -> bool {
+    for k in 0..n {
+        let mut piv = k;
+        for i in k + 1..n {
+            if a[i * n + k].norm() > a[piv * n + k].norm() {
+                piv = i;
+            }
+        }
+        let d = a[piv * n + k];
+        if !(d.norm() > 0.0 && d.norm().is_finite()) {
+            return false;
+        }
+        if piv != k {
+            for j in 0..n {
+                a.swap(k * n + j, piv * n + j);
+            }
+            b.swap(k, piv);
+        }
+        for i in k + 1..n {
+            let f = a[i * n + k] / a[k * n + k];
+            if f != Complex64::new(0.0, 0.0) {
+                for j in k..n {
+                    let t = a[k * n + j];
+                    a[i * n + j] -= f * t;
+                }
+                let t = b[k];
+                b[i] -= f * t;
+            }
+        }
+    }
+    for i in (0..n).rev() {
+        let mut s = b[i];
+        for j in i + 1..n {
+            s -= a[i * n + j] * b[j];
+        }
+        b[i] = s / a[i * n + i];
+    }
+    true
+}
+
+/// The patch as one circuit, ready for complex solves: its rest (DC) state found once.
+struct Solver {
+    w: Whole,
+    rest: CircuitState,
+    col: Vec<usize>,
+    amp_out: Vec<bool>,
+    n: usize,
+}
+
+impl Solver {
+    fn new(patch: &Patch) -> Result<Solver, ResponseError> {
+        let w = build(patch);
+        let c = &w.c;
+        let h = 1.0 / (patch.rate * patch.oversample as f64);
+        let plan = crate::circuit::plan::compile(c.clone(), h)
+            .map_err(|e| ResponseError::Circuit(e.to_string()))?;
+        let mut rest = CircuitState::new(&plan);
+        for (k, s) in patch.sources.iter().enumerate() {
+            rest.vn[w.src[k]] = dc_level(&s.wave, s.offset);
+        }
+        rest.rest(&plan)
+            .map_err(|e| ResponseError::Circuit(e.to_string()))?;
+        let free: Vec<usize> = (0..c.nodes.len())
+            .filter(|&i| matches!(c.nodes[i].kind, NodeKind::Free))
+            .collect();
+        let mut col = vec![usize::MAX; c.nodes.len()];
+        for (k, &n) in free.iter().enumerate() {
+            col[n] = k;
+        }
+        let amp_out = (0..c.nodes.len())
+            .map(|n| c.amps.iter().any(|a| a.out == n))
+            .collect();
+        Ok(Solver {
+            n: free.len(),
+            w,
+            rest,
+            col,
+            amp_out,
+        })
+    }
+
+    /// Every node's complex value at `hz` for a unit signal at `source` (0 Hz: DC gains).
+    fn solve(&self, source: usize, hz: f64) -> Result<Vec<Complex64>, ResponseError> {
+        let (c, col, n) = (&self.w.c, &self.col, self.n);
+        let zero = Complex64::new(0.0, 0.0);
+        let src = self.w.src[source];
+        let s = Complex64::new(0.0, std::f64::consts::TAU * hz);
+        let mut a = vec![zero; n * n];
+        let mut b = vec![zero; n];
+        let known = |node: usize| -> Complex64 {
+            if node == src {
+                Complex64::new(1.0, 0.0)
+            } else {
+                zero
+            }
+        };
+        let stamp =
+            |a: &mut Vec<Complex64>, b: &mut Vec<Complex64>, x: usize, y: usize, g: Complex64| {
+                for (p, q) in [(x, y), (y, x)] {
+                    if col[p] == usize::MAX || self.amp_out[p] {
+                        continue;
+                    }
+                    let r = col[p];
+                    a[r * n + r] += g;
+                    if col[q] != usize::MAX {
+                        a[r * n + col[q]] -= g;
+                    } else {
+                        b[r] += g * known(q);
+                    }
+                }
+            };
+        for e in &c.elems {
+            let g = match e.kind {
+                ElemKind::R(r) => Complex64::new(1.0 / r, 0.0),
+                ElemKind::C(x) => s * x,
+                ElemKind::Junction { is, nvt } => {
+                    let v = (self.rest.vn[e.a] - self.rest.vn[e.b]).min(200.0 * nvt);
+                    Complex64::new(is / nvt * (v / nvt).exp() + crate::circuit::GMIN, 0.0)
+                }
+            };
+            stamp(&mut a, &mut b, e.a, e.b, g);
+        }
+        for amp in &c.amps {
+            let r = col[amp.out];
+            // o / A(s) - (P - M) = 0, 1/A(s) = s / (2 pi GBW) + 1 / A0
+            let inv_a = s / (std::f64::consts::TAU * amp.gbw) + amp.eps;
+            a[r * n + r] += inv_a;
+            for (pin, sign) in [(amp.plus, -1.0), (amp.minus, 1.0)] {
+                if col[pin] != usize::MAX {
+                    a[r * n + col[pin]] += sign;
+                } else {
+                    b[r] -= known(pin) * sign;
+                }
+            }
+        }
+        if !csolve(&mut a, &mut b, n) {
+            return Err(ResponseError::Singular { hz });
+        }
+        Ok((0..c.nodes.len())
+            .map(|k| {
+                if col[k] != usize::MAX {
+                    b[col[k]]
+                } else {
+                    known(k)
+                }
+            })
+            .collect())
+    }
+}
+
+/// The response from source `source` (index into `patch.sources`) to every output at the
+/// given frequencies.
+pub fn response(patch: &Patch, source: usize, freqs: &[f64]) -> Result<Response, ResponseError> {
+    let sv = Solver::new(patch)?;
+    let mut curves: Vec<Vec<Point>> = vec![Vec::with_capacity(freqs.len()); sv.w.out.len()];
+    for &hz in freqs {
+        let v = sv.solve(source, hz)?;
+        for (k, &o) in sv.w.out.iter().enumerate() {
+            curves[k].push(Point {
+                hz,
+                gain_db: 20.0 * v[o].norm().max(1e-300).log10(),
+                phase_deg: v[o].arg().to_degrees(),
+            });
+        }
+    }
+    let mut outputs = BTreeMap::new();
+    for (k, o) in patch.outputs.iter().enumerate() {
+        outputs.insert(
+            o.name.clone(),
+            OutputResponse {
+                source: patch.sources[source].name.clone(),
+                points: std::mem::take(&mut curves[k]),
+            },
+        );
+    }
+    Ok(Response { outputs })
+}
+
+/// Static (DC, small-signal) gain from every source to every stage's output:
+/// `gains[stage][source]`.
+pub fn dc_gains(patch: &Patch) -> Result<Vec<Vec<f64>>, ResponseError> {
+    let sv = Solver::new(patch)?;
+    let per_source: Vec<Vec<Complex64>> = (0..patch.sources.len())
+        .map(|s| sv.solve(s, 0.0))
+        .collect::<Result<_, _>>()?;
+    Ok(sv
+        .w
+        .stage
+        .iter()
+        .map(|&node| per_source.iter().map(|v| v[node].re).collect())
+        .collect())
+}
+
+/// Frequencies where the gain crosses 3 dB below its largest value on the grid (log
+/// interpolation between grid points).
+pub fn minus_3db(points: &[Point]) -> Vec<f64> {
+    let Some(peak) = points.iter().map(|p| p.gain_db).reduce(f64::max) else {
+        return Vec::new();
+    };
+    let level = peak - 3.0;
+    let mut out = Vec::new();
+    for w in points.windows(2) {
+        let (a, b) = (w[0].gain_db - level, w[1].gain_db - level);
+        if a == 0.0 {
+            out.push(w[0].hz);
+        } else if a * b < 0.0 {
+            let t = a / (a - b);
+            out.push((w[0].hz.ln() + t * (w[1].hz.ln() - w[0].hz.ln())).exp());
+        }
+    }
+    out
+}
