@@ -802,7 +802,6 @@ fn shape_block(
         // the three middle samples widened by `reach7`), those of the middle samples are the
         // output's peaks.
         let n = b - H;
-        let cols: [&[f64]; WINDOW] = std::array::from_fn(|i| &x[i..i + n]);
         let mut r = [[f64::INFINITY; 8], [f64::NEG_INFINITY; 8]];
         let head = &e[LOOKAHEAD..H + LOOKAHEAD];
         let mut pk = [
@@ -822,16 +821,17 @@ fn shape_block(
             pk[0][j] = if c < pk[0][j] { c } else { pk[0][j] };
             pk[1][j] = if c > pk[1][j] { c } else { pk[1][j] };
         };
-        let full = n - n % 8;
-        for k0 in (0..full).step_by(8) {
+        // whole groups of eight windows, each group a fixed-size slice (no bounds checks)
+        for blk in x.windows(8 + H).step_by(8) {
+            let blk: &[f64; 8 + H] = blk.try_into().expect("group length");
             for j in 0..8 {
-                let w: [f64; WINDOW] = std::array::from_fn(|i| cols[i][k0 + j]);
+                let w: [f64; WINDOW] = std::array::from_fn(|i| blk[i + j]);
                 lanes(&mut r, &mut pk, j, w);
             }
         }
-        for k in full..n {
-            let w: [f64; WINDOW] = std::array::from_fn(|i| cols[i][k]);
-            lanes(&mut r, &mut pk, k % 8, w);
+        for (k, w) in x.windows(WINDOW).enumerate().skip(n - n % 8) {
+            let w: &[f64; WINDOW] = w.try_into().expect("window length");
+            lanes(&mut r, &mut pk, k % 8, *w);
         }
         let lo8 = |v: &[f64; 8]| {
             v.iter()

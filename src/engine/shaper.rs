@@ -571,7 +571,7 @@ mod tests {
     /// central-difference expansion used by the clamp) [S: Lagrange interpolation].
     fn lagrange(x: &[f64; WINDOW], t: f64) -> f64 {
         let mut acc = 0.0;
-        for i in 0..WINDOW {
+        for (i, &xi) in x.iter().enumerate() {
             let ti = i as f64 - 3.0;
             let mut l = 1.0;
             for j in 0..WINDOW {
@@ -580,7 +580,7 @@ mod tests {
                     l *= (t - tj) / (ti - tj);
                 }
             }
-            acc += l * x[i];
+            acc += l * xi;
         }
         acc
     }
