@@ -128,9 +128,11 @@
 //! arithmetic in wider vectors (no fused multiply-add), so results do not depend on it.
 //!
 //! Measured (`cargo bench --bench engine`, four-input summer plus restoring inverter,
-//! jfet-general, K = 4, one core of a shared 2-core machine): clean mix about 8e2 times real
-//! time at 48 kHz by CPU time (4.0e7 samples/s), a mix that clips all the time about 27 times
-//! real time (the full model in every block).
+//! jfet-general, K = 4, one core of a shared 2-core machine): clean mix about 6.3e2 times
+//! real time at 48 kHz by CPU time (3.0e7 samples/s), a mix that clips all the time about 23
+//! times real time (the full model in every block). The seven-sample clamp cost that: with
+//! the three-sample one the same build measured 1006 and 28 times real time (medians of five
+//! alternating runs).
 //!
 //! # Noise
 //! With `patch.noise` on (the default for renders) the engine adds circuit noise, each source
