@@ -50,6 +50,8 @@ pub enum WarningKind {
     Bandwidth,
     /// Peak slope above the slew rate.
     Slew,
+    /// A rendered file at the default depth would not fit in a WAV file (4 GiB).
+    FileSize,
 }
 
 /// One static warning.
@@ -368,9 +370,12 @@ pub fn check(patch: &Patch) -> Report {
         if let Some(part) = &stage.part {
             let (mut lo, mut hi) = swing_limits(part, pos, neg);
             if let (Some(isc), Some(load)) = (part.isc, loads[si]) {
+                // The current limit narrows the window; when it leaves none (a part that
+                // cannot swing below its drop into a tiny load), the window closes at the
+                // nearer swing limit, as in the engine.
                 let vmax = isc * load;
-                lo = lo.max(-vmax);
-                hi = hi.min(vmax);
+                hi = hi.min(vmax).max(lo);
+                lo = lo.max(-vmax).min(hi);
                 let peak = span.hi.max(-span.lo);
                 if peak > vmax {
                     warnings.push(Warning {
@@ -514,6 +519,21 @@ pub fn check(patch: &Patch) -> Report {
                 out.series,
             );
         }
+    }
+    // The patch accepts any length a 16-bit file holds; the default 24-bit render needs less.
+    let spec = crate::signal::WavSpec {
+        rate: patch.rate.round() as u32,
+        channels: 1,
+        depth: crate::signal::Depth::Pcm24,
+        full_scale: patch.full_scale,
+        dither_seed: 0,
+    };
+    if let Err(e) = crate::signal::check_fits("every output", &spec, patch.frames() as u64) {
+        warnings.push(Warning {
+            kind: WarningKind::FileSize,
+            key: "patch.length".into(),
+            message: format!("{e}; render with --depth 16"),
+        });
     }
     Report { stages, warnings }
 }

@@ -14,9 +14,17 @@ pub(crate) fn cmd_check(
     sets: &[String],
 ) -> Result<(), Failure> {
     let patch = load_side(path, variant.unwrap_or("base"), sets)?;
+    // WAV inputs as render will read them: whatever render refuses, check refuses too.
+    let k = patch.oversample.max(1);
+    for s in &patch.sources {
+        if matches!(s.wave, railsong::model::Wave::File { .. }) {
+            railsong::signal::file_stream(s, patch.rate * k as f64, (patch.frames() + 1) * k)
+                .map_err(|e| Failure::bad_input(format!("sources.{}.path: {e}", s.name)))?;
+        }
+    }
     let report = check::check(&patch);
-    println!("{} ({})", patch.title, path.display());
-    println!(
+    say!("{} ({})", patch.title, path.display());
+    say!(
         "  rails {} / {}, {} x{}, {} long, {} source(s), {} stage(s), {} output(s)",
         fmt_eng(patch.rails.pos, "V"),
         fmt_eng(patch.rails.neg, "V"),
@@ -27,14 +35,14 @@ pub(crate) fn cmd_check(
         patch.stages.len(),
         patch.outputs.len()
     );
-    println!();
-    println!("  stage                 type            part               gain      NG     band (-3 dB)          worst-case span        swing");
+    say!();
+    say!("  stage                 type            part               gain      NG     band (-3 dB)          worst-case span        swing");
     for s in &report.stages {
         let gain = match s.gains.as_slice() {
             [g] => format!("{g:+.3}"),
             gs => format!("{:+.3}x{}", gs[0], gs.len()),
         };
-        println!(
+        say!(
             "  {:<21} {:<15} {:<18} {:<9} {:<6} {:<21} {:<22} {}",
             s.name,
             s.kind,
@@ -50,13 +58,13 @@ pub(crate) fn cmd_check(
             )),
         );
     }
-    println!();
+    say!();
     if report.warnings.is_empty() {
-        println!("  no warnings");
+        say!("  no warnings");
     } else {
-        println!("  {} warning(s):", report.warnings.len());
+        say!("  {} warning(s):", report.warnings.len());
         for w in &report.warnings {
-            println!("  [{}] {}: {}", tag(w.kind), w.key, w.message);
+            say!("  [{}] {}: {}", tag(w.kind), w.key, w.message);
         }
     }
     Ok(())
@@ -88,5 +96,6 @@ pub(crate) fn tag(kind: WarningKind) -> &'static str {
         WarningKind::NonStandard => "value",
         WarningKind::Bandwidth => "bandwidth",
         WarningKind::Slew => "slew",
+        WarningKind::FileSize => "file size",
     }
 }

@@ -7,7 +7,7 @@ use railsong::engine::Run;
 use railsong::measure;
 use railsong::model::Patch;
 use railsong::render::{self, RenderError, RenderOptions};
-use railsong::signal::{Depth, SignalError};
+use railsong::signal::{Depth, OutputDir, SignalError};
 use railsong::study::StudyError;
 use railsong::units::fmt_eng;
 
@@ -34,6 +34,20 @@ pub(crate) fn signal_error(e: SignalError) -> Failure {
         SignalError::Io { .. } | SignalError::Stream(_) => failure_io(e),
         other => Failure::bad_input(other),
     }
+}
+
+/// Open and lock an output folder; when another railsong run holds it, say so on stderr and
+/// wait for it.
+pub(crate) fn open_folder(dir: &Path, force: bool) -> Result<OutputDir, Failure> {
+    OutputDir::open_with(dir, force, &mut |d| {
+        use std::io::Write;
+        let _ = writeln!(
+            std::io::stderr(),
+            "railsong: {} is busy (another railsong run is writing into it); waiting for it to finish",
+            d.display()
+        );
+    })
+    .map_err(signal_error)
 }
 
 pub(crate) fn analysis_settings(harmonics: usize, weighting: &str) -> Result<Settings, Failure> {
@@ -84,38 +98,22 @@ pub(crate) fn safe_stem(s: &str) -> String {
     }
 }
 
-pub(crate) fn progress_bar(frames: usize, rate: f64) -> Option<indicatif::ProgressBar> {
-    if (frames as f64) < 2.0 * rate {
-        return None;
-    }
-    let bar = indicatif::ProgressBar::new(1000);
-    bar.set_style(
-        indicatif::ProgressStyle::with_template("rendering {bar:40} {percent:>3}% {eta}")
-            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
-    );
-    Some(bar)
-}
-
-/// Run `f` with a progress callback that drives a bar on stderr when asked and the patch is
-/// long enough to need one.
+/// Run `f` with a progress callback: a bar on a terminal when asked and the patch is at least
+/// 2 s long, lines on a piped stderr once the render has taken 2 s ([`super::progress`]),
+/// nothing with `--quiet`.
 pub(crate) fn with_progress<T>(
     patch: &Patch,
     show: bool,
     f: impl FnOnce(&mut dyn FnMut(f64)) -> Result<T, RenderError>,
 ) -> Result<T, Failure> {
-    let bar = if show {
-        progress_bar(patch.frames(), patch.rate)
-    } else {
-        None
-    };
-    let r = f(&mut |x| {
-        if let Some(b) = &bar {
-            b.set_position((x * 1000.0) as u64);
-        }
-    });
-    if let Some(b) = bar {
-        b.finish_and_clear();
+    if !show {
+        return f(&mut |_| {}).map_err(render_error);
     }
+    let bar = (patch.frames() as f64) >= 2.0 * patch.rate;
+    let seconds = (patch.frames() as f64 / patch.rate).round() as u64;
+    let p = super::progress::Progress::new(seconds.max(1), "rendering", "s of audio", bar);
+    let r = f(&mut |x| p.set_fraction(x));
+    p.finish();
     r.map_err(render_error)
 }
 
@@ -194,7 +192,10 @@ pub(crate) fn check_length(patch: &Patch, long: bool) -> Result<(), Failure> {
 }
 
 pub(crate) fn db_or_dash(v: Option<f64>, what: &str) -> String {
-    v.map_or(format!("- {what}"), |d| format!("{d:+.1} dB {what}"))
+    match v {
+        Some(d) if d.is_finite() => format!("{d:+.1} dB {what}"),
+        _ => format!("- {what}"),
+    }
 }
 
 pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::EventSeconds>) {
@@ -213,7 +214,7 @@ pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::
         if let Some(t) = e.first_clip_s {
             parts.push(format!("first clip at {}", fmt_eng(t.max(0.0), "s")));
         }
-        println!(
+        say!(
             "      {stage}: {}",
             if parts.is_empty() {
                 "clean".to_string()
@@ -237,21 +238,6 @@ pub(crate) fn depth_of(flags: &RenderFlags) -> Depth {
         "float" => Depth::Float32,
         _ => Depth::Pcm24,
     }
-}
-
-pub(crate) fn bar(n: usize, what: &str) -> indicatif::ProgressBar {
-    // The stderr target draws nothing when stderr is not a terminal.
-    let b = indicatif::ProgressBar::with_draw_target(
-        Some(n as u64),
-        indicatif::ProgressDrawTarget::stderr(),
-    );
-    b.set_style(
-        indicatif::ProgressStyle::with_template(&format!(
-            "{what} {{bar:40}} {{pos}}/{{len}} {{eta}}"
-        ))
-        .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
-    );
-    b
 }
 
 pub(crate) fn variant_names(path: &Path) -> Result<Vec<String>, Failure> {
@@ -284,7 +270,7 @@ pub(crate) fn file_peak_note(f: &railsong::analysis::OutputFigures) -> String {
 /// The alias figure, once per part, for the stages that feed the chosen outputs.
 pub(crate) fn print_alias(lines: &[measure::AliasLine], oversample: usize) {
     for l in lines {
-        println!(
+        say!(
             "  alias figure of part {} (stage{} {}) at x{oversample}: {:.1} dBc, a fixed probe of the part (5 kHz sine 7 dB past the swing through a unity inverter), not measured on this render",
             l.part,
             if l.stages.len() > 1 { "s" } else { "" },

@@ -7,7 +7,6 @@ use railsong::analysis::{Settings, TestSignal};
 use railsong::measure;
 use railsong::model::{Patch, Wave};
 use railsong::report;
-use railsong::signal::OutputDir;
 use railsong::units::{self, fmt_eng, Level};
 
 use super::common::{
@@ -28,7 +27,7 @@ pub(crate) fn cmd_measure(
     let patch = load_side(path, variant.unwrap_or("base"), sets)?;
     check_length(&patch, long)?;
     let mut folder = match &plots {
-        Some((dir, force)) => Some(OutputDir::open(dir, *force).map_err(signal_error)?),
+        Some((dir, force)) => Some(super::common::open_folder(dir, *force)?),
         None => None,
     };
     if let Some(name) = output {
@@ -55,7 +54,7 @@ pub(crate) fn cmd_measure(
                 .map_err(signal_error)?;
         }
         if !json && !csv {
-            println!(
+            say!(
                 "{} plot(s) written to {}",
                 figs.len(),
                 folder.path().display()
@@ -63,9 +62,9 @@ pub(crate) fn cmd_measure(
         }
     }
     if json {
-        println!("{}", measure::to_json(&m));
+        say!("{}", measure::to_json(&m));
     } else if csv {
-        print!("{}", measure::to_csv(&m));
+        say_raw!("{}", measure::to_csv(&m));
     } else {
         print_table(&patch, &m);
     }
@@ -73,19 +72,22 @@ pub(crate) fn cmd_measure(
 }
 
 pub(crate) fn opt(v: Option<f64>, unit: &str, digits: usize) -> String {
-    v.map_or("-".into(), |x| format!("{x:.digits$}{unit}"))
+    match v {
+        Some(x) if x.is_finite() => format!("{x:.digits$}{unit}"),
+        _ => "-".into(),
+    }
 }
 
 pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
-    println!("{}", patch.title);
+    say!("{}", patch.title);
     for o in &patch.outputs {
         let Some(r) = m.outputs.get(&o.name) else {
             continue;
         };
         let f = &r.figures;
-        println!();
-        println!("output {} (from {})", o.name, r.from);
-        println!(
+        say!();
+        say!("output {} (from {})", o.name, r.from);
+        say!(
             "  level       peak {}{}  rms {} (AC)  dc {}  crest {}  ({} / {} / {})",
             opt(f.peak_v, " V", 3),
             file_peak_note(f),
@@ -96,13 +98,13 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
             opt(f.rms_dbv, " dBV", 1),
             opt(f.rms_dbfs, " dBFS", 1),
         );
-        println!(
+        say!(
             "  headroom    {} to the positive swing, {} to the negative",
             opt(f.headroom_pos_db, " dB", 1),
             opt(f.headroom_neg_db, " dB", 1)
         );
         if f.thd_percent.is_some() || f.thdn_db.is_some() {
-            println!(
+            say!(
                 "  distortion  fundamental {}  THD {} ({})  THD+N {}  SINAD {}  ENOB {}",
                 opt(f.fundamental_hz, " Hz", 2),
                 opt(f.thd_percent, " %", 4),
@@ -124,18 +126,18 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
                 })
                 .collect();
             if !h.is_empty() {
-                println!("  harmonics   {} (dBc)", h.join("  "));
+                say!("  harmonics   {} (dBc)", h.join("  "));
             }
         }
         if f.imd_smpte_percent.is_some() {
-            println!(
+            say!(
                 "  IMD         SMPTE RP120 {} ({})",
                 opt(f.imd_smpte_percent, " %", 4),
                 opt(f.imd_smpte_db, " dB", 1)
             );
         }
         if f.imd_ccif_percent.is_some() {
-            println!(
+            say!(
                 "  IMD         twin tone d2 {} ({}), 2f1-f2 {}, 2f2-f1 {}",
                 opt(f.imd_ccif_percent, " %", 4),
                 opt(f.imd_ccif_db, " dB", 1),
@@ -145,14 +147,14 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
         }
         let n = &r.noise;
         if n.noise_rms_v.is_some() {
-            println!(
+            say!(
                 "  noise       {} ({}), A-weighted {} ({}); idle channel, 20 Hz - 20 kHz",
                 opt(n.noise_rms_v.map(|v| v * 1e6), " uV rms", 2),
                 opt(n.noise_dbu, " dBu", 1),
                 opt(n.noise_a_rms_v.map(|v| v * 1e6), " uV rms", 2),
                 opt(n.noise_a_dbu, " dBu", 1),
             );
-            println!(
+            say!(
                 "  SNR         {} re 10 Vpp ({} A-weighted){}",
                 opt(n.snr_ref_db, " dB", 1),
                 opt(n.snr_ref_a_db, " dB", 1),
@@ -160,15 +162,15 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
                     .map_or(String::new(), |d| format!(", {d:.1} dB re this signal"))
             );
         }
-        println!("  events");
+        say!("  events");
         print_events(&r.events);
         for n in &f.notes {
-            println!("  note        {n}");
+            say!("  note        {n}");
         }
         if f.window.is_none() {
             continue;
         }
-        println!(
+        say!(
             "  taken with  window {}, FFT {}, band {}, weighting {}",
             f.window.as_deref().unwrap_or("-"),
             f.fft_len.map_or("-".into(), |n| n.to_string()),
@@ -178,8 +180,8 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
         );
     }
     let s = &m.settings;
-    println!();
-    println!(
+    say!();
+    say!(
         "settings: {} x{}, {} rendered, calibration {} = 0 dBFS, circuit noise {}",
         fmt_eng(s.rate_hz, "Hz"),
         s.oversample,
@@ -187,7 +189,7 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
         fmt_eng(s.full_scale_v, "V"),
         if s.noise { "on" } else { "off" }
     );
-    println!(
+    say!(
         "  spectral captures start at {} (settle time); THD re the fundamental, THD+N and SINAD re the whole signal in band (SINAD = -THD+N), rms is AC",
         fmt_eng(s.settle_s, "s")
     );
@@ -248,7 +250,7 @@ pub(crate) fn cmd_level_sweep(
     }
     let base = load_side(path, side, sets)?;
     let mut folder = match &plots {
-        Some((dir, force)) => Some(OutputDir::open(dir, *force).map_err(signal_error)?),
+        Some((dir, force)) => Some(super::common::open_folder(dir, *force)?),
         None => None,
     };
     if !base.sources.iter().any(|s| s.name == src) {
@@ -374,7 +376,7 @@ pub(crate) fn cmd_level_sweep(
                     let file = format!("{name}-level-sweep.svg");
                     folder.write_text(&file, &svg).map_err(signal_error)?;
                     if !json && !csv {
-                        println!("plot written to {}", folder.path().join(&file).display());
+                        say!("plot written to {}", folder.path().join(&file).display());
                     }
                 }
             }
@@ -404,24 +406,24 @@ pub(crate) fn cmd_level_sweep(
                 }),
             );
         } else if csv {
-            println!("output,level_{},thd_percent,thdn_db", unit.replace(' ', ""));
+            say!("output,level_{},thd_percent,thdn_db", unit.replace(' ', ""));
             for (v, t, n) in &pts {
-                println!(
+                say!(
                     "{name},{v},{},{}",
                     t.map_or(String::new(), |x| x.to_string()),
                     n.map_or(String::new(), |x| x.to_string())
                 );
             }
         } else {
-            println!("output {name}: level sweep of source {src}");
-            println!(
+            say!("output {name}: level sweep of source {src}");
+            say!(
                 "  {:>12}  {:>12}  {:>10}",
                 format!("level {unit}"),
                 "THD %",
                 "THD+N dB"
             );
             for (v, t, n) in &pts {
-                println!(
+                say!(
                     "  {:>12.4}  {:>12}  {:>10}",
                     v,
                     t.map_or("-".into(), |x| format!("{x:.5}")),
@@ -430,23 +432,23 @@ pub(crate) fn cmd_level_sweep(
             }
             let say = |x: Option<f64>, th: &str| {
                 match x {
-                Some(l) => println!(
+                Some(l) => say!(
                     "  THD reaches {th} at {l:.4} {unit} (found on the circuit within 0.1 %)"
                 ),
-                None if unmeasured > 0 => println!(
+                None if unmeasured > 0 => say!(
                     "  THD does not cross {th} where it was measured (not measured at {unmeasured} of {} levels; see measure's notes)",
                     rows.len()
                 ),
-                None => println!("  THD does not cross {th} in this range"),
+                None => say!("  THD does not cross {th} in this range"),
             }
             };
             say(at01, "0.1 %");
             say(at1, "1 %");
-            println!();
+            say!();
         }
     }
     if json {
-        println!(
+        say!(
             "{}",
             serde_json::to_string_pretty(&serde_json::Value::Object(json_out)).unwrap_or_default()
         );

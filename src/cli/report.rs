@@ -5,7 +5,6 @@ use std::path::Path;
 use railsong::analysis::Settings;
 use railsong::measure;
 use railsong::report;
-use railsong::signal::OutputDir;
 use railsong::units::{self, fmt_eng};
 
 use super::common::load_side;
@@ -25,20 +24,19 @@ pub(crate) fn cmd_report(
 ) -> Result<(), Failure> {
     let mut patch = load_side(path, variant.unwrap_or("base"), sets)?;
     if patch.length > REPORT_MAX_S {
-        println!(
+        say!(
             "the page plays and measures the first {REPORT_MAX_S} s of this {} patch",
             fmt_eng(patch.length, "s")
         );
         patch.length = REPORT_MAX_S;
     }
     let fade = flags.edge_fade(patch.frames(), patch.rate)?;
-    let text = std::fs::read_to_string(path)
-        .map_err(|e| Failure::bad_input(format!("{}: {e}", path.display())))?;
+    let text = railsong::patch::read_text(path).map_err(Failure::bad_input)?;
     let dir = flags
         .out
         .clone()
         .unwrap_or_else(|| default_dir(&stem_of(path)));
-    let mut folder = OutputDir::open(&dir, flags.force).map_err(signal_error)?;
+    let mut folder = super::common::open_folder(&dir, flags.force)?;
     folder.check_writable("report.html").map_err(signal_error)?;
     let (patch, run, m, comparison, side_b) = match ab {
         None => {
@@ -124,6 +122,24 @@ pub(crate) fn cmd_report(
             sections.push(report::comparison_section(results, a, b));
         }
     }
+    // A light page: above report::EMBED_MAX_BYTES of audio the players link WAV files
+    // written beside the page (before it, so the page never points at a missing file). Every
+    // file name is checked before anything is written.
+    let linked = report::linked_audio(&players);
+    let mut names: Vec<String> = linked.clone().unwrap_or_default();
+    if flags.plots {
+        names.extend(figs.iter().map(|f| f.file_name()));
+    }
+    folder.check_all(&names).map_err(signal_error)?;
+    if let Some(names) = &linked {
+        for (i, (name, p)) in names.iter().zip(&players).enumerate() {
+            let spec =
+                report::player_spec(m.settings.rate_hz, m.settings.full_scale_v, i as u64 + 1);
+            folder
+                .write(name, spec, &p.fade.applied(p.samples))
+                .map_err(signal_error)?;
+        }
+    }
     let (main, other) = match (&comparison, &side_b) {
         (Some((_, a, b)), Some((_, mb))) => (
             report::FigureTable {
@@ -137,7 +153,16 @@ pub(crate) fn cmd_report(
         ),
         _ => (report::FigureTable { side: None, m: &m }, None),
     };
-    let html = report::page(&patch, &text, main, other, &figs, &players, &sections);
+    let html = report::page(
+        &patch,
+        &text,
+        main,
+        other,
+        &figs,
+        &players,
+        linked.as_deref(),
+        &sections,
+    );
     folder
         .write_text("report.html", &html)
         .map_err(signal_error)?;
@@ -148,7 +173,7 @@ pub(crate) fn cmd_report(
                 .map_err(signal_error)?;
         }
     }
-    println!(
+    say!(
         "{}: report with {} plot(s) and {} player(s) -> {}",
         patch.title,
         figs.len(),

@@ -5,11 +5,12 @@ use std::path::{Path, PathBuf};
 use railsong::analysis::Settings;
 use railsong::measure;
 use railsong::parts::eseries::Series;
-use railsong::signal::OutputDir;
+use railsong::study::length::StudyLength;
 use railsong::study::sweep::{self, PatchText, Spacing, Value};
 use railsong::units::fmt_eng;
 
-use super::common::{bar, default_dir, failure_io, signal_error, stem_of, study_error};
+use super::common::{default_dir, failure_io, signal_error, stem_of, study_error};
+use super::progress::Progress;
 use super::Failure;
 
 /// Options of `sweep`.
@@ -28,6 +29,8 @@ pub(crate) struct SweepArgs<'a> {
     pub json: bool,
     /// Write plots: (folder, force).
     pub plots: Option<(Option<PathBuf>, bool)>,
+    /// Settle time plus one capture per point, or the whole length (`--full`).
+    pub length: StudyLength,
 }
 
 pub(crate) fn split_range<'s>(flag: &str, s: &'s str) -> Result<(&'s str, &'s str), Failure> {
@@ -99,8 +102,7 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
     sweep::check_figures(&figures).map_err(study_error)?;
     // Load once up front: a bad patch, variant or path is reported before any point runs.
     let origin = args.patch.display().to_string();
-    let text = std::fs::read_to_string(args.patch)
-        .map_err(|e| Failure::bad_input(format!("{origin}: cannot read: {e}")))?;
+    let text = railsong::patch::read_text(args.patch).map_err(Failure::bad_input)?;
     let base_dir = match args.patch.parent() {
         Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
         _ => PathBuf::from("."),
@@ -115,24 +117,44 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
     first.push(format!("{path}={}", values[0].text));
     let base = railsong::patch::parse_str_variant(&text, &origin, &base_dir, args.variant, &first)
         .map_err(Failure::bad_input)?;
-    let pb = bar(values.len(), "sweeping");
+    let pb = Progress::new(values.len() as u64, "sweep", "points", true);
     let tick = || pb.inc(1);
-    let pts = sweep::run(&src, args.with, &path, &values, &Settings::default(), &tick)
-        .map_err(study_error)?;
-    pb.finish_and_clear();
+    let pts = sweep::run(
+        &src,
+        args.with,
+        &path,
+        &values,
+        &Settings::default(),
+        args.length,
+        &tick,
+    )
+    .map_err(study_error)?;
+    pb.finish();
 
     let mut folder = match &args.plots {
         Some((dir, force)) => {
             let dir = dir
                 .clone()
                 .unwrap_or_else(|| default_dir(&stem_of(args.patch)));
-            Some(OutputDir::open(&dir, *force).map_err(signal_error)?)
+            let folder = super::common::open_folder(&dir, *force)?;
+            // Every plot name is checked before the first is written.
+            let names: Vec<String> = base
+                .outputs
+                .iter()
+                .flat_map(|o| {
+                    figures
+                        .iter()
+                        .map(move |f| format!("{}-sweep-{f}.svg", o.name))
+                })
+                .collect();
+            folder.check_all(&names).map_err(signal_error)?;
+            Some(folder)
         }
         None => None,
     };
     let mut json_out = serde_json::Map::new();
     if args.csv {
-        println!("output,path,value,{}", figures.join(","));
+        say!("output,path,value,{}", figures.join(","));
     }
     for o in &base.outputs {
         let rows: Vec<(&Value, Vec<Option<f64>>)> = pts
@@ -169,6 +191,7 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                 railsong::analysis::sweep::CROSSING_TOLERANCE,
                 &Settings::default(),
                 &o.name,
+                args.length,
             )
             .map_err(study_error)
         };
@@ -282,12 +305,12 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                     .iter()
                     .map(|x| x.map_or(String::new(), |x| x.to_string()))
                     .collect();
-                println!("{},{path},{},{}", o.name, v.x, cells.join(","));
+                say!("{},{path},{},{}", o.name, v.x, cells.join(","));
             }
         } else {
-            println!("output {}: sweep of {path}", o.name);
+            say!("output {}: sweep of {path}", o.name);
             let head: Vec<String> = figures.iter().map(|f| format!("{f:>16}")).collect();
-            println!("  {:>14}  {}", "value", head.join(""));
+            say!("  {:>14}  {}", "value", head.join(""));
             for (v, fs) in &rows {
                 let cells: Vec<String> = fs
                     .iter()
@@ -296,30 +319,30 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                 let unit = sweep::parse_quantity(&v.text)
                     .map(|q| q.1)
                     .unwrap_or_default();
-                println!("  {:>14}  {}", fmt_eng(v.x, &unit), cells.join(""));
+                say!("  {:>14}  {}", fmt_eng(v.x, &unit), cells.join(""));
             }
             if !thd.is_empty() || unmeasured > 0 {
                 let say = |x: Option<f64>, th: &str| {
                     match x {
-                    Some(l) => println!(
+                    Some(l) => say!(
                         "  THD reaches {th} at {} ({path} = {l:.6}; found on the circuit within 0.1 %)",
                         fmt_eng(l, &xunit)
                     ),
-                    None if unmeasured > 0 => println!(
+                    None if unmeasured > 0 => say!(
                         "  THD does not cross {th} where it was measured (not measured at {unmeasured} of {} points; see measure's notes)",
                         pts.len()
                     ),
-                    None => println!("  THD does not cross {th} in this range"),
+                    None => say!("  THD does not cross {th} in this range"),
                 }
                 };
                 say(at01, "0.1 %");
                 say(at1, "1 %");
             }
-            println!();
+            say!();
         }
     }
     if args.json {
-        println!(
+        say!(
             "{}",
             serde_json::to_string_pretty(&serde_json::Value::Object(json_out))
                 .map_err(failure_io)?

@@ -5,11 +5,12 @@ use std::path::Path;
 use railsong::analysis::Settings;
 use railsong::model::Patch;
 use railsong::parts::eseries::Series;
-use railsong::signal::OutputDir;
+use railsong::study::length::StudyLength;
 use railsong::study::tolerance::{self, Spread, Tolerances};
 use railsong::units;
 
-use super::common::{bar, default_dir, failure_io, signal_error, stem_of, study_error};
+use super::common::{default_dir, failure_io, signal_error, stem_of, study_error};
+use super::progress::Progress;
 use super::render::render_to;
 use super::{load, Failure, RenderFlags};
 
@@ -25,6 +26,8 @@ pub(crate) struct ToleranceArgs<'a> {
     pub sets: &'a [String],
     pub flags: &'a RenderFlags,
     pub json: bool,
+    /// Settle time plus one capture per run, or the whole length (`--full`).
+    pub length: StudyLength,
 }
 
 pub(crate) fn series_tolerance(s: Series) -> f64 {
@@ -96,6 +99,8 @@ pub(crate) fn fmt_spread(s: &Option<Spread>, scale: f64, digits: usize) -> Strin
 /// `railsong tolerance`.
 pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
     let patch = load(args.patch, args.sets)?;
+    // Every run renders the whole patch: the length limit holds here as in render.
+    super::common::check_length(&patch, args.flags.long)?;
     let tol = tolerances(args, &patch)?;
     let seed = args.seed.unwrap_or(patch.seed);
     if let Some(i) = args.render_run {
@@ -110,7 +115,7 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             .out
             .clone()
             .unwrap_or_else(|| default_dir(&stem_of(args.patch)));
-        println!(
+        say!(
             "tolerance run {i} (seed {seed}, run seed {}, resistors +/-{} %, capacitors +/-{} %)",
             tolerance::run_seed(seed, i),
             tol.resistor * 100.0,
@@ -130,18 +135,32 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
     if args.runs == 0 {
         return Err(Failure::bad_input("--runs 0: expected 1 or more"));
     }
-    let pb = bar(args.runs, "tolerance runs");
+    let pb = Progress::new(args.runs as u64, "tolerance", "runs", true);
     let tick = || pb.inc(1);
-    let rep = tolerance::study(&patch, &tol, args.runs, seed, &Settings::default(), &tick)
-        .map_err(study_error)?;
-    pb.finish_and_clear();
+    let rep = tolerance::study(
+        &patch,
+        &tol,
+        args.runs,
+        seed,
+        &Settings::default(),
+        args.length,
+        &tick,
+    )
+    .map_err(study_error)?;
+    pb.finish();
     if args.flags.plots {
         let dir = args
             .flags
             .out
             .clone()
             .unwrap_or_else(|| default_dir(&stem_of(args.patch)));
-        let mut folder = OutputDir::open(&dir, args.flags.force).map_err(signal_error)?;
+        let mut folder = super::common::open_folder(&dir, args.flags.force)?;
+        let names: Vec<String> = patch
+            .outputs
+            .iter()
+            .map(|o| format!("{}-tolerance-gain.svg", o.name))
+            .collect();
+        folder.check_all(&names).map_err(signal_error)?;
         for (k, o) in patch.outputs.iter().enumerate() {
             let gains: Vec<f64> = rep.runs.iter().map(|r| r.outputs[k].gain_db).collect();
             let title = format!("{}: gain spread over {} runs", o.name, rep.runs.len());
@@ -166,43 +185,43 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
         }
     }
     if args.json {
-        println!(
+        say!(
             "{}",
             serde_json::to_string_pretty(&rep).map_err(failure_io)?
         );
         return Ok(());
     }
-    println!(
+    say!(
         "{}: {} runs, resistors uniform within +/-{} %, capacitors within +/-{} %, seed {seed}",
         patch.title,
         args.runs,
         tol.resistor * 100.0,
         tol.capacitor * 100.0
     );
-    println!("  spreads are min / 5th pct / median / 95th pct / max");
+    say!("  spreads are min / 5th pct / median / 95th pct / max");
     for o in &rep.outputs {
-        println!();
-        println!("output {}", o.output);
-        println!(
+        say!();
+        say!("output {}", o.output);
+        say!(
             "  gain over nominal (output RMS)  {} dB",
             fmt_spread(&o.gain_db, 1.0, 3)
         );
         if o.thd_percent.is_some() {
-            println!(
+            say!(
                 "  THD at the patch level         {} %",
                 fmt_spread(&o.thd_percent, 1.0, 4)
             );
         }
-        println!(
+        say!(
             "  DC offset                      {} mV",
             fmt_spread(&o.dc_v, 1e3, 3)
         );
     }
     if !rep.channels.is_empty() {
-        println!();
-        println!("mixer channels: small-signal gain -Rf / (Ri + Rs) of each input path, from the perturbed values (closed form)");
+        say!();
+        say!("mixer channels: small-signal gain -Rf / (Ri + Rs) of each input path, from the perturbed values (closed form)");
         for c in &rep.channels {
-            println!(
+            say!(
                 "  {}[{}] from {} (nominal {:+.4}): {} %",
                 c.nominal.stage,
                 c.nominal.input,
@@ -212,7 +231,7 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             );
         }
         for m in &rep.mismatch {
-            println!(
+            say!(
                 "  {}: mismatch between channels (largest over smallest |gain|) {} dB",
                 m.stage,
                 fmt_spread(&m.mismatch_db, 1.0, 3)
@@ -226,8 +245,8 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
                 .iter()
                 .map(|o| o.gain_db)
                 .fold(0.0f64, |a, b| if b.abs() > a.abs() { b } else { a });
-        println!();
-        println!(
+        say!();
+        say!(
             "worst run: {w} (run seed {}), gain {worst:+.3} dB; render it with",
             r.seed
         );
@@ -241,7 +260,7 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             cmd.push_str(&format!(" --set {s}"));
         }
         cmd.push_str(&format!(" --render-run {w}"));
-        println!("{cmd}");
+        say!("{cmd}");
     }
     Ok(())
 }
