@@ -46,10 +46,10 @@ fn naive_clip_matches_the_known_figures() {
 }
 
 // Targets (railsong design): below -80 dBc at the default K = 4 with a built-in profile, and
-// below -75 dBc with an ideal hard clip at K = 16; the quadratic local model must keep at
-// least the -88 dBc of the straight-line model it replaced. Measured: about -99.4 dBc
-// (jfet-general, K = 4), -100.1 dBc (ideal, K = 4), -147.7 dBc (ideal, K = 16); asserted
-// with margin.
+// below -75 dBc with an ideal hard clip at K = 16; the local model of the drive must keep at
+// least the -88 dBc of the straight-line model it replaced. Measured (degree-6 model): about
+// -101.5 dBc (jfet-general, K = 4), -102.4 dBc (ideal, K = 4), -149.1 dBc (ideal, K = 16);
+// asserted with margin.
 #[test]
 fn band_limited_clip_meets_the_targets() {
     let j4 = alias_probe(&part("jfet-general"), RAILS, 48_000.0, 4);

@@ -223,8 +223,11 @@ fn plan_is_inspectable() {
     assert_eq!(plan.stages[1].name, "second");
     assert!((plan.stages[0].b - 0.5).abs() < 1e-15);
     assert!((plan.stages[1].b - (1.0 / 20e3) / (1.0 / 10e3 + 1.0 / 20e3)).abs() < 1e-15);
-    assert_eq!(plan.stages[1].latency, 2);
-    assert_eq!(plan.latency, 2);
+    // each op-amp stage delays by the clamp's lookahead; two stages in series [D]
+    let la = railsong::engine::shaper::LOOKAHEAD;
+    assert_eq!(plan.stages[0].latency, la);
+    assert_eq!(plan.stages[1].latency, 2 * la);
+    assert_eq!(plan.latency, 2 * la);
     assert_eq!(plan.filter_lengths.len(), 2);
     // output index n is time n / rate: the pre-roll plus the latency fill whole frames
     assert_eq!(

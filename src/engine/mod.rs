@@ -5,8 +5,8 @@
 //! Sources are generated at the internal rate `K * rate` (K = `patch.oversample`) by
 //! [`SourceFeed`]s; op-amp stages run in topological order over blocks of [`plan::BLOCK`]
 //! internal samples, stage by stage; outputs are decimated to the base rate by linear-phase
-//! half-band FIR cascades ([`halfband`]). Every delay in the pipeline (one sample per op-amp
-//! stage for the clipper's lookahead, the decimator's group delay) is compensated: sources
+//! half-band FIR cascades ([`halfband`]). Every delay in the pipeline ([`shaper::LOOKAHEAD`]
+//! samples per op-amp stage for the clipper's lookahead, the decimator's group delay) is compensated: sources
 //! start a short pre-roll before t = 0 and the first [`Plan::discard`] frames are dropped,
 //! so output sample `n` is time `n / rate`. During the pre-roll a source that is on from
 //! t = 0 holds its DC component, and every capacitor starts at its steady state for those
@@ -65,35 +65,48 @@
 //!
 //! # Anti-aliasing of the output clamp (choice and measurements)
 //! The clamp is a static clipper after the linear/slew solve, evaluated band-limited
-//! ([`shaper`]): around each sample the drive is the quadratic through it and its two
-//! neighbours (one sample of lookahead), and the clipper's residual `f(x) - x` along that
-//! curve is averaged against a triangle kernel one sample wide each side, exactly (piecewise
-//! Gauss-Legendre between the crossings of the limits). For a straight drive across a hard
+//! ([`shaper`]): around each sample the drive is the polynomial of degree 6 through it and
+//! its three neighbours on each side ([`shaper::LOOKAHEAD`] = 3 samples of lookahead), and the
+//! clipper's residual `f(x) - x` along that curve is averaged against a triangle kernel one
+//! sample wide each side, exactly (piecewise Gauss-Legendre between the crossings of the
+//! limits, found on the monotone pieces of the curve). For a straight drive across a hard
 //! corner this is the two-point polyBLAMP correction; the soft knee is handled by the same
 //! integral. Where the drive stays in the linear region around a sample the output is the
 //! drive itself, bit for bit, and no correction is applied unless the local drive really
-//! crosses a limit: a crest that stays below the rail between samples is left alone (a
-//! straight line through a crest's neighbours, the first version, crossed the rail by volts
-//! at K = 4 and read a twin tone's crest clip 8 to 25 dB high). Held past a limit, the output
-//! is the limit minus the kernel's smoothing of the clipped part (a few millivolts at audio
-//! frequencies), bounded to the limits widened by [`shaper::GIBBS`] of the span. The
-//! lookahead costs one internal sample of latency per op-amp stage, compensated on every
-//! path. Measured with [`alias_probe`] (5001 Hz coherent sine 7 dB past the swing at 48 kHz,
-//! unity inverter, +/-12 V), total in-band alias power:
+//! crosses a limit: a crest that stays below the rail between samples is left alone. Held
+//! past a limit, the output is the limit minus the kernel's smoothing of the clipped part (a
+//! few millivolts at audio frequencies), bounded to the limits widened by
+//! [`shaper::GIBBS`] of the span. The lookahead costs three internal samples of latency per
+//! op-amp stage, compensated on every path. Measured with [`alias_probe`] (5001 Hz coherent
+//! sine 7 dB past the swing at 48 kHz, unity inverter, +/-12 V), total in-band alias power:
 //!
 //! | K | ideal (hard clip) | jfet-general | naive clip (ideal) |
 //! |---|---|---|---|
-//! | 1 | -61.2 dBc | -61.1 dBc | -30.7 dBc |
-//! | 2 | -74.0 dBc | -73.9 dBc | -40.7 dBc |
-//! | 4 | -100.1 dBc | -99.4 dBc | -53.8 dBc |
-//! | 8 | -120.9 dBc | -122.5 dBc | -65.5 dBc |
-//! | 16 | -147.7 dBc | -140.5 dBc | -78.0 dBc |
+//! | 1 | -69.1 dBc | -68.8 dBc | -30.7 dBc |
+//! | 2 | -76.8 dBc | -76.8 dBc | -40.7 dBc |
+//! | 4 | -102.4 dBc | -101.5 dBc | -53.8 dBc |
+//! | 8 | -122.4 dBc | -123.8 dBc | -65.5 dBc |
+//! | 16 | -149.1 dBc | -140.5 dBc | -78.0 dBc |
 //!
-//! (With the straight-line model: -88.3 dBc at K = 4.) Crest clips (tests/engine_crest.rs):
-//! a twin tone whose crests pass one rail reads its third-order product within 1 dB of the
-//! densely sampled clipped waveform at K = 4 up to 13/14 kHz from 2 % past the rail, and at
-//! 19/20 kHz from 10 % past it (under ten samples per cycle the quadratic does not resolve a
-//! shallower cap, and reads low); at K = 8 within 0.2 dB from 0.5 % past the rail.
+//! Why degree 6 (history): a straight line through a crest's neighbours (the first version)
+//! crossed the rail by volts at K = 4, read a twin tone's crest clip 8 to 25 dB high and gave
+//! -88.3 dBc at K = 4; the quadratic through three samples that replaced it (one sample of
+//! lookahead, -100.1 dBc at K = 4) did not resolve a shallow crest under ten samples per
+//! cycle: a 19/20 kHz twin tone at K = 4 read 1.2 dB low 5 % past the rail and 26 dB low at
+//! 0.5 %. At that tone (0.64 rad per sample) the interpolated crest of a sine sitting half
+//! way between samples is low by 3.8e-3 of its amplitude through three samples, 3.1e-4
+//! through five and 2.7e-5 through seven; with five, 0.5 % past the rail still read 1.6 dB
+//! low. Crest clips (tests/engine_crest.rs), third-order product of a twin tone whose crests
+//! pass one rail against the densely sampled clipped waveform:
+//!
+//! | tones, K | 0.5 % | 1 % | 2 % | 5 % | 10 % | 30 % past the rail |
+//! |---|---|---|---|---|---|---|
+//! | 19/20 kHz, 4 | -0.70 | -0.06 | -0.18 | -0.37 | -0.26 | -0.25 dB |
+//! | 19/20 kHz, 8 | -0.28 | +0.31 | +0.13 | -0.12 | -0.05 | -0.06 dB |
+//! | 13/14 kHz, 4 | +0.35 | | -0.05 | -0.08 | -0.11 | -0.11 dB |
+//!
+//! (5/6 kHz at K = 4: -0.01 dB from 2 % to 30 %.) The -0.25 dB at 19/20 kHz is the kernel's
+//! own in-band droop at the product's 18 kHz, `sinc^2(18 / 192)`.
 //!
 //! A part that *slews* on the probe (single-supply: 0.35 V/us against the probe's 0.74 V/us)
 //! aliases through its slew corners, which the clipper does not treat: -31 dBc at K = 4,
@@ -122,10 +135,13 @@
 //! arithmetic in wider vectors (no fused multiply-add), so results do not depend on it.
 //!
 //! Measured (`cargo bench --bench engine`, four-input summer plus restoring inverter,
-//! jfet-general, K = 4, one core of a shared 2-core machine): clean mix about 1000 times real
-//! time at 48 kHz by CPU time (4.8e7 samples/s), a mix that clips all the time about 65 times
-//! real time (31 before the per-sample shortcut; most of its samples are weakly nonlinear,
-//! the clipped ones need the serial full step).
+//! jfet-general, K = 4, one core of a shared 2-core machine), three-sample clamp: clean mix
+//! about 1000 times real time at 48 kHz by CPU time (4.8e7 samples/s), a mix that clips all
+//! the time about 65 times real time (31 before the per-sample shortcut; most of its samples
+//! are weakly nonlinear, the clipped ones need the serial full step). The seven-sample clamp
+//! (crest accuracy) costs about 37 % on the clean mix and 18 % on the clipping one (medians
+//! of five alternating runs against the three-sample build); the README has the figures of
+//! the current build.
 //!
 //! # Noise
 //! With `patch.noise` on (the default for renders) the engine adds circuit noise, each source

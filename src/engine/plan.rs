@@ -2,7 +2,7 @@
 
 use super::halfband;
 use super::network::{NetInput, NetPlan};
-use super::shaper::Shaper;
+use super::shaper::{Shaper, LOOKAHEAD};
 use super::EngineError;
 use crate::circuit::build::{network_circuit, InputRef};
 use crate::circuit::step::CircuitState;
@@ -49,8 +49,8 @@ pub struct Plan {
     pub filter_lengths: Vec<usize>,
     /// Decimator group delay, internal samples.
     pub decimator_delay: usize,
-    /// Largest node latency among the outputs (one sample per op-amp stage in the path, for
-    /// the clipper's lookahead), internal samples.
+    /// Largest node latency among the outputs ([`super::shaper::LOOKAHEAD`] samples per
+    /// op-amp stage in the path, for the clipper's lookahead), internal samples.
     pub latency: usize,
     /// Internal samples generated before t = 0.
     pub preroll: usize,
@@ -1003,14 +1003,14 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
         let rest_p = vp_eff - mrest;
         rest_node[buf] = shaper.apply(rest_v);
 
-        let lat = 1 + taps.iter().map(|&t| node_lat[t]).max().unwrap_or(0);
+        let lat = LOOKAHEAD + taps.iter().map(|&t| node_lat[t]).max().unwrap_or(0);
         node_lat[buf] = lat;
         for m in &mut minus {
-            m.delay = lat - 1 - node_lat[m.node];
+            m.delay = lat - LOOKAHEAD - node_lat[m.node];
             history = history.max(m.delay);
         }
         if let Some(p) = &mut plus {
-            p.delay = lat - 1 - node_lat[p.node];
+            p.delay = lat - LOOKAHEAD - node_lat[p.node];
             history = history.max(p.delay);
         }
         let (e, a1, a0) = foh(kgain * h * (b + eps));

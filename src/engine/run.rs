@@ -5,6 +5,7 @@ use super::halfband::Decimator;
 use super::network::{net_block, NetRun};
 use super::noise::NoiseStream;
 use super::plan::{Plan, StagePlan, StageStep, FAST_VD};
+use super::shaper::{reach7, LOOKAHEAD, WINDOW};
 use super::{EngineError, StageEvents};
 
 /// Per-stage running state.
@@ -15,8 +16,9 @@ struct StageState {
     p_prev2: f64,
     vc: Vec<f64>,
     vf: f64,
-    x1: f64,
-    x2: f64,
+    /// The last `WINDOW - 1` drive samples, oldest first (the clamp's window less its
+    /// newest sample).
+    xh: [f64; WINDOW - 1],
     clip: u64,
     slew: u64,
     cm: u64,
@@ -36,8 +38,7 @@ impl StageState {
             p_prev2: sp.rest_p,
             vc: sp.rest_vc.clone(),
             vf: sp.rest_vf,
-            x1: sp.rest_v,
-            x2: sp.rest_v,
+            xh: [sp.rest_v; WINDOW - 1],
             clip: 0,
             slew: 0,
             cm: 0,
@@ -54,8 +55,7 @@ impl StageState {
         self.p_prev2 = o.p_prev2;
         self.vc.copy_from_slice(&o.vc);
         self.vf = o.vf;
-        self.x1 = o.x1;
-        self.x2 = o.x2;
+        self.xh = o.xh;
         self.clip = o.clip;
         self.slew = o.slew;
         self.cm = o.cm;
@@ -564,8 +564,7 @@ impl Engine {
             st.p_prev2 = sp.rest_p;
             st.vc.copy_from_slice(&sp.rest_vc);
             st.vf = sp.rest_vf;
-            st.x1 = sp.rest_v;
-            st.x2 = sp.rest_v;
+            st.xh = [sp.rest_v; WINDOW - 1];
             st.clip = 0;
             st.slew = 0;
             st.cm = 0;
@@ -618,8 +617,8 @@ impl Engine {
                 slew_s: st.slew as f64 * h,
                 cm_out_s: st.cm as f64 * h,
                 reversed_s: st.rev as f64 * h,
-                // the clip counted at buffer index j is the drive of index j - 1, which the
-                // stage computed from source samples `latency - 1` earlier
+                // the clip counted at buffer index j is the drive of index j - lookahead,
+                // which the stage computed from source samples `latency - lookahead` earlier
                 first_clip_s: st
                     .first_clip
                     .map(|j| (j as f64 - sp.latency as f64 - preroll) * h),
@@ -1313,7 +1312,8 @@ fn hybrid_block(
     st.p_prev2 = pp2;
 }
 
-/// Output clipper with one sample of lookahead: writes y[n-1] at position n.
+/// Output clipper with [`LOOKAHEAD`] samples of lookahead: writes y[n - LOOKAHEAD] at
+/// position n.
 #[inline(always)]
 fn shape_block(
     sp: &StagePlan,
@@ -1323,27 +1323,38 @@ fn shape_block(
     aa: bool,
     start: u64,
 ) {
+    const H: usize = WINDOW - 1;
     let sh = sp.shaper;
     let (lin_lo, lin_hi) = (sh.lo + sh.w, sh.hi - sh.w);
-    let mut x1 = st.x1;
-    let mut x2 = st.x2;
+    let mut h = st.xh;
     let b = x.len();
-    // Whole block strictly inside the linear region: the output is the drive, one sample
-    // late (same values as the per-sample branch below).
-    if b >= 2 {
-        let first = sh.inside(x2, x1, x[0]) & sh.inside(x1, x[0], x[1]);
-        out[0] = x1;
-        out[1] = x[0];
-        out[2..].copy_from_slice(&x[1..b - 1]);
+    // Whole block strictly inside the linear region: the output is the drive, LOOKAHEAD
+    // samples late (same values as the per-sample branch below).
+    if b >= 2 * H {
+        // the windows that reach into the previous block
+        let mut e = [0.0; 2 * H];
+        e[..H].copy_from_slice(&h);
+        e[H..].copy_from_slice(&x[..H]);
+        let first = (0..H).all(|j| {
+            let win: &[f64; WINDOW] = e[j..j + WINDOW].try_into().expect("window length");
+            sh.inside7(win)
+        });
+        out[..LOOKAHEAD].copy_from_slice(&h[LOOKAHEAD..]);
+        out[LOOKAHEAD..].copy_from_slice(&x[..b - LOOKAHEAD]);
         // One pass of eight independent lanes (compare-and-select, which vectorises): the
-        // extremes of the local quadratic's bounds decide "inside" (as `Shaper::inside`: the
-        // three samples widened by |q| / 4), those of xc are the output's peaks.
-        let n = b - 2;
-        let (xm, xc, xp) = (&x[..n], &x[1..n + 1], &x[2..]);
+        // extremes of the local polynomial's bounds decide "inside" (as `Shaper::inside7`:
+        // the three middle samples widened by `reach7`), those of the middle samples are the
+        // output's peaks.
+        let n = b - H;
         let mut r = [[f64::INFINITY; 8], [f64::NEG_INFINITY; 8]];
-        let mut pk = [[x1.min(x[0]); 8], [x1.max(x[0]); 8]];
-        let lanes = |r: &mut [[f64; 8]; 2], pk: &mut [[f64; 8]; 2], j: usize, m, c: f64, p| {
-            let a = 0.25 * f64::abs(0.5 * (m + p) - c);
+        let head = &e[LOOKAHEAD..H + LOOKAHEAD];
+        let mut pk = [
+            [head.iter().fold(f64::INFINITY, |a, &v| a.min(v)); 8],
+            [head.iter().fold(f64::NEG_INFINITY, |a, &v| a.max(v)); 8],
+        ];
+        let lanes = |r: &mut [[f64; 8]; 2], pk: &mut [[f64; 8]; 2], j: usize, w: [f64; WINDOW]| {
+            let a = reach7(&w);
+            let (m, c, p) = (w[2], w[3], w[4]);
             let lo3 = if m < c { m } else { c };
             let lo3 = if p < lo3 { p } else { lo3 };
             let hi3 = if m > c { m } else { c };
@@ -1354,15 +1365,17 @@ fn shape_block(
             pk[0][j] = if c < pk[0][j] { c } else { pk[0][j] };
             pk[1][j] = if c > pk[1][j] { c } else { pk[1][j] };
         };
-        let (cm, cc, cp) = (xm.chunks_exact(8), xc.chunks_exact(8), xp.chunks_exact(8));
-        let rest = cm.remainder().len();
-        for ((m4, c4), p4) in cm.zip(cc).zip(cp) {
+        // whole groups of eight windows, each group a fixed-size slice (no bounds checks)
+        for blk in x.windows(8 + H).step_by(8) {
+            let blk: &[f64; 8 + H] = blk.try_into().expect("group length");
             for j in 0..8 {
-                lanes(&mut r, &mut pk, j, m4[j], c4[j], p4[j]);
+                let w: [f64; WINDOW] = std::array::from_fn(|i| blk[i + j]);
+                lanes(&mut r, &mut pk, j, w);
             }
         }
-        for k in n - rest..n {
-            lanes(&mut r, &mut pk, k % 8, xm[k], xc[k], xp[k]);
+        for (k, w) in x.windows(WINDOW).enumerate().skip(n - n % 8) {
+            let w: &[f64; WINDOW] = w.try_into().expect("window length");
+            lanes(&mut r, &mut pk, k % 8, *w);
         }
         let lo8 = |v: &[f64; 8]| {
             v.iter()
@@ -1373,8 +1386,7 @@ fn shape_block(
                 .fold(f64::NEG_INFINITY, |a, &b| if b > a { b } else { a })
         };
         if first && lo8(&r[0]) > lin_lo && hi8(&r[1]) < lin_hi {
-            st.x2 = x[b - 2];
-            st.x1 = x[b - 1];
+            st.xh.copy_from_slice(&x[b - H..]);
             st.out_min = st.out_min.min(lo8(&pk[0]));
             st.out_max = st.out_max.max(hi8(&pk[1]));
             return;
@@ -1382,29 +1394,30 @@ fn shape_block(
     }
     let mut clip = 0u64;
     for (t, (o, &xn)) in out.iter_mut().zip(x).enumerate() {
-        *o = if sh.inside(x2, x1, xn) {
-            x1
+        let win: [f64; WINDOW] = std::array::from_fn(|i| if i < H { h[i] } else { xn });
+        let xc = h[LOOKAHEAD];
+        *o = if sh.inside7(&win) {
+            xc
         } else if aa {
-            sh.smooth(x2, x1, xn)
+            sh.smooth7(&win)
         } else {
-            sh.apply(x1)
+            sh.apply(xc)
         };
-        let c = sh.clipping(x1);
+        let c = sh.clipping(xc);
         if c && st.first_clip.is_none() {
             st.first_clip = Some(start + t as u64);
         }
         clip += u64::from(c);
         // The circuit's own extremes: the static clamp of the drive (the band-limited value
         // may pass the limit by the kernel's smoothing; that is a property of the file).
-        let v = sh.apply(x1);
+        let v = sh.apply(xc);
         st.out_max = st.out_max.max(v);
         st.out_min = st.out_min.min(v);
-        x2 = x1;
-        x1 = xn;
+        h.copy_within(1.., 0);
+        h[H - 1] = xn;
     }
     st.clip += clip;
-    st.x1 = x1;
-    st.x2 = x2;
+    st.xh = h;
 }
 
 #[cfg(test)]
