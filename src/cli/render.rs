@@ -81,7 +81,7 @@ pub(crate) fn render_to(
         files.push(folder.create(name, spec).map_err(signal_error)?);
     }
     let mut scratch: Vec<f64> = Vec::new();
-    let (streamed, m) = measure_streamed(patch, &Settings::default(), None, true, &mut |i, x| {
+    let (_, m) = measure_streamed(patch, &Settings::default(), None, true, &mut |i, x| {
         if gains[i] == 1.0 {
             files[i].write(x)
         } else {
@@ -94,7 +94,6 @@ pub(crate) fn render_to(
     for f in files {
         stats.push(f.finish().map_err(signal_error)?);
     }
-    let run = &streamed.run;
 
     match variant {
         Some(v) => println!("{} (variant {v}) -> {}", patch.title, dir.display()),
@@ -139,7 +138,7 @@ pub(crate) fn render_to(
             fmt_eng(t.max(0.0), "s")
         );
     }
-    print_alias(&measure::alias_lines(patch, run, None), run.oversample);
+    print_alias(&m, patch);
     folder
         .write_text(&figures_name, &measure::to_json(&m))
         .map_err(signal_error)?;
