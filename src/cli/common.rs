@@ -303,14 +303,21 @@ pub(crate) fn print_alias(m: &measure::Measurement, patch: &Patch) {
             .iter()
             .filter_map(|s| s.dbc.map(|d| format!("{} {d:.1}", s.stage)))
             .collect();
+        let how = if a.method == Some("coherent") {
+            format!(
+                "dBc in band, measured on this patch (its stages re-run at full level with the tone at {}, coherent capture, power off the harmonics 20 Hz - 20 kHz re the fundamental)",
+                fmt_eng(a.tone_hz.unwrap_or(0.0), "Hz")
+            )
+        } else {
+            "dB in band, measured on this patch (a stretch after the settle time against the same stretch with stages stepping 4 times finer: the in-band difference re the signal, smooth linear differences taken out, an upper bound; floor about -85 dB)".to_string()
+        };
         println!(
-            "  alias of {} at x{k}: {dbc:.1} dBc in band, measured on this patch (its stages re-run at full level with the tone at {}, coherent capture, power off the harmonics 20 Hz - 20 kHz re the fundamental){}",
+            "  alias of {} at x{k}: {dbc:.1} {how}{}",
             o.name,
-            fmt_eng(a.tone_hz.unwrap_or(0.0), "Hz"),
             if stages.is_empty() {
                 String::new()
             } else {
-                format!("; stages (dBc): {}", stages.join(", "))
+                format!("; stages (dB): {}", stages.join(", "))
             }
         );
         if a.above_limit {
@@ -324,7 +331,7 @@ pub(crate) fn print_alias(m: &measure::Measurement, patch: &Patch) {
                 "already at the highest patch.oversample (16)".to_string()
             };
             println!(
-                "  warning: {} holds {dbc:.1} dBc of alias, above {:.0} dBc{stage}: {advice}",
+                "  warning: {} holds {dbc:.1} dB of alias, above {:.0} dB{stage}: {advice}",
                 o.name,
                 railsong::alias::WARN_DBC
             );
