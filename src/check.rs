@@ -6,14 +6,26 @@
 //! propagated through the ideal gain formulas of each stage:
 //! - inverting summer: `Vout = ref - sum(Rf / (Ri + Rs_i) * (Vi - ref))` (op-amp textbooks),
 //!   with `Rs_i` the Thevenin resistance of the node driving input `i`; an input with a
-//!   coupling capacitor passes only the AC part of its span;
+//!   coupling capacitor passes only the AC part of its span, around the reference (the
+//!   capacitor settles at the source's DC level less the reference, so the DC level of the
+//!   source never reaches the output);
 //! - non-inverting: `Vout = ref + (1 + Rf/Rg) (Vin - ref)`; follower: `Vout = Vin`;
 //! - attenuator: the unloaded divider `Rb / (Rs + Rtrack)` (downstream loading is left to the
 //!   engine, which models it).
 //!
+//! Gains are mid-band gains. The band of each active stage: its upper -3 dB point from the
+//! op-amp's loop (`GBW / NG`, NG the noise gain) together with a capacitor across the
+//! feedback resistor (inverting: a pole at `1 / (2 pi Rf Cf)`; non-inverting: the gain
+//! `1 + Zf / Rg` falls from `1 + Rf / Rg` towards 1, a pole at `1 / (2 pi Rf Cf)` and a zero at
+//! `1 / (2 pi (Rf || Rg) Cf)`), found on the product of the two magnitude responses; its
+//! lower -3 dB point from coupling capacitors (`1 / (2 pi (Ri + Rs_i) Ci)` into the virtual
+//! ground; the highest of a summer's coupled inputs). First-order RC networks, textbook.
+//!
 //! Noise sources count as +/-4 sigma. WAV file sources count as +/- their full scale.
 //! A stage's span is clipped to its swing limits before it feeds the next stage, as the circuit
 //! would. The warnings are advisory: `check` still succeeds when it finds some.
+
+use std::f64::consts::TAU;
 
 use crate::model::{Node, Patch, StageKind, Wave};
 use crate::parts::eseries::Series;
@@ -38,6 +50,8 @@ pub enum WarningKind {
     Bandwidth,
     /// Peak slope above the slew rate.
     Slew,
+    /// A rendered file at the default depth would not fit in a WAV file (4 GiB).
+    FileSize,
 }
 
 /// One static warning.
@@ -99,8 +113,13 @@ pub struct StageSummary {
     pub gains: Vec<f64>,
     /// Noise gain `1 + Rf / (R1 || R2 || ...)` (active stages).
     pub noise_gain: Option<f64>,
-    /// Closed-loop -3 dB bandwidth `GBW / NG`, Hz (active stages).
+    /// Upper -3 dB point, Hz (active stages): the loop's `GBW / NG` with any feedback
+    /// capacitor's roll-off.
     pub bandwidth: Option<f64>,
+    /// The loop's own -3 dB point `GBW / NG`, Hz (active stages).
+    pub loop_bandwidth: Option<f64>,
+    /// Lower -3 dB point from coupling capacitors, Hz (`None`: DC-coupled).
+    pub low_corner: Option<f64>,
     /// Worst-case output span before clipping.
     pub span: Span,
     /// Output swing limits `(low, high)`, V (active stages), after any current limit.
@@ -215,6 +234,9 @@ pub fn check(patch: &Patch) -> Report {
         let mut noise_gain = None;
         let mut rth = 0.0;
         let mut cm_span: Option<Span> = None;
+        let mut low_corner: Option<f64> = None;
+        // |H(j w)|^2 of the feedback network relative to its mid-band gain
+        let mut network: Option<Box<dyn Fn(f64) -> f64>> = None;
         let (kind, span) = match &stage.kind {
             StageKind::InvertingSum {
                 inputs,
@@ -235,8 +257,21 @@ pub fn check(patch: &Patch) -> Report {
                     let g = -feedback.r / r;
                     gains.push(g);
                     let s = span_of(inp.from, &spans);
-                    let s = if inp.c.is_some() { s.ac() } else { s };
-                    let t = s.gain(g, *reference);
+                    let t = match inp.c {
+                        // AC only, around the reference: the capacitor holds the DC
+                        Some(c) => {
+                            let fc = 1.0 / (std::f64::consts::TAU * r * c);
+                            low_corner = Some(low_corner.map_or(fc, |l: f64| l.max(fc)));
+                            let a = s.ac().gain(g, 0.0);
+                            Span {
+                                lo: reference + a.lo,
+                                hi: reference + a.hi,
+                                dc: *reference,
+                                slope: a.slope,
+                            }
+                        }
+                        None => s.gain(g, *reference),
+                    };
                     total.lo += t.lo - reference;
                     total.hi += t.hi - reference;
                     total.dc += t.dc - reference;
@@ -257,6 +292,10 @@ pub fn check(patch: &Patch) -> Report {
                     standard_value(&mut warnings, &fkey, feedback.r);
                 }
                 noise_gain = Some(1.0 + feedback.r * g_par);
+                if let Some(c) = feedback.c {
+                    let tau = feedback.r * c;
+                    network = Some(Box::new(move |w: f64| 1.0 / (1.0 + (w * tau).powi(2))));
+                }
                 cm_span = Some(Span {
                     lo: *reference,
                     hi: *reference,
@@ -275,11 +314,19 @@ pub fn check(patch: &Patch) -> Report {
             StageKind::NonInverting {
                 from,
                 r_fb,
+                c_fb,
                 r_g,
                 reference,
-                ..
             } => {
                 let g = 1.0 + r_fb / r_g;
+                if let Some(c) = c_fb {
+                    // 1 + Zf / Rg = G (1 + j w tz) / (1 + j w tp), relative to G
+                    let tp = r_fb * c;
+                    let tz = r_fb * r_g / (r_fb + r_g) * c;
+                    network = Some(Box::new(move |w: f64| {
+                        (1.0 + (w * tz).powi(2)) / (1.0 + (w * tp).powi(2))
+                    }));
+                }
                 gains.push(g);
                 noise_gain = Some(g);
                 standard_value(&mut warnings, &format!("{key}.r_fb"), *r_fb);
@@ -319,12 +366,16 @@ pub fn check(patch: &Patch) -> Report {
         let mut out_span = span;
         let mut swing = None;
         let mut bandwidth = None;
+        let mut loop_bandwidth = None;
         if let Some(part) = &stage.part {
             let (mut lo, mut hi) = swing_limits(part, pos, neg);
             if let (Some(isc), Some(load)) = (part.isc, loads[si]) {
+                // The current limit narrows the window; when it leaves none (a part that
+                // cannot swing below its drop into a tiny load), the window closes at the
+                // nearer swing limit, as in the engine.
                 let vmax = isc * load;
-                lo = lo.max(-vmax);
-                hi = hi.min(vmax);
+                hi = hi.min(vmax).max(lo);
+                lo = lo.max(-vmax).min(hi);
                 let peak = span.hi.max(-span.lo);
                 if peak > vmax {
                     warnings.push(Warning {
@@ -343,7 +394,11 @@ pub fn check(patch: &Patch) -> Report {
             }
             swing = Some((lo, hi));
             if span.hi > hi || span.lo < lo {
-                let over = (span.hi / hi.max(1e-12)).max(span.lo / lo.min(-1e-12));
+                // how far past the swing, measured from the swing's centre (single-supply
+                // swings do not straddle 0 V)
+                let mid = 0.5 * (lo + hi);
+                let half = (0.5 * (hi - lo)).max(1e-12);
+                let over = (span.hi - mid).max(mid - span.lo) / half;
                 warnings.push(Warning {
                     kind: WarningKind::Clipping,
                     key: key.clone(),
@@ -404,7 +459,11 @@ pub fn check(patch: &Patch) -> Report {
             }
             if let Some(ng) = noise_gain {
                 let bw = part.gbw / ng;
-                bandwidth = Some(bw);
+                loop_bandwidth = Some(bw);
+                bandwidth = Some(match &network {
+                    Some(h2) => upper_corner(&|w: f64| h2(w) / (1.0 + (w / (TAU * bw)).powi(2))),
+                    None => bw,
+                });
                 if bw < 20e3 {
                     warnings.push(Warning {
                         kind: WarningKind::Bandwidth,
@@ -439,6 +498,8 @@ pub fn check(patch: &Patch) -> Report {
             gains,
             noise_gain,
             bandwidth,
+            loop_bandwidth,
+            low_corner,
             span,
             swing,
             load: if stage.part.is_some() {
@@ -459,7 +520,41 @@ pub fn check(patch: &Patch) -> Report {
             );
         }
     }
+    // The patch accepts any length a 16-bit file holds; the default 24-bit render needs less.
+    let spec = crate::signal::WavSpec {
+        rate: patch.rate.round() as u32,
+        channels: 1,
+        depth: crate::signal::Depth::Pcm24,
+        full_scale: patch.full_scale,
+        dither_seed: 0,
+    };
+    if let Err(e) = crate::signal::check_fits("every output", &spec, patch.frames() as u64) {
+        warnings.push(Warning {
+            kind: WarningKind::FileSize,
+            key: "patch.length".into(),
+            message: format!("{e}; render with --depth 16"),
+        });
+    }
     Report { stages, warnings }
+}
+
+/// The frequency where a low-pass magnitude response `h2(w)` (`|H(j w)|^2` relative to its
+/// value at DC, `w` in rad/s, falling with frequency) first reaches 1/2 (-3 dB), Hz: bisection
+/// on a log scale between 1 mHz and 1 PHz (`f64::INFINITY` when it never does).
+fn upper_corner(h2: &dyn Fn(f64) -> f64) -> f64 {
+    let (mut lo, mut hi) = (1e-3f64.ln(), 1e15f64.ln());
+    if h2(TAU * hi.exp()) > 0.5 {
+        return f64::INFINITY;
+    }
+    for _ in 0..200 {
+        let mid = 0.5 * (lo + hi);
+        if h2(TAU * mid.exp()) > 0.5 {
+            lo = mid;
+        } else {
+            hi = mid;
+        }
+    }
+    (0.5 * (lo + hi)).exp()
 }
 
 /// Static resistive load on each stage's output (to roughly 0 V): its own feedback network,
@@ -678,5 +773,101 @@ mod tests {
             .warnings
             .iter()
             .any(|w| w.kind == WarningKind::Slew));
+    }
+
+    fn inverting(part: &str, c_in: Option<f64>, rf: f64, cf: Option<f64>, reference: f64) -> Stage {
+        Stage {
+            name: "inv".into(),
+            part: builtin(part),
+            kind: StageKind::InvertingSum {
+                inputs: vec![SumInput {
+                    from: Node::Source(0),
+                    r: 10e3,
+                    c: c_in,
+                }],
+                feedback: Feedback {
+                    r: rf,
+                    c: cf,
+                    pot: None,
+                },
+                reference,
+                single: true,
+            },
+        }
+    }
+
+    // A capacitor across the feedback resistor: -Rf/Ri / (1 + j w Rf Cf), a pole at
+    // 1 / (2 pi Rf Cf) = 1.59 kHz for 100k || 1n (first-order RC, textbook), cascaded with the
+    // loop's own pole GBW / NG; the -3 dB point of two poles solves
+    // (1 + (f/f1)^2)(1 + (f/f2)^2) = 2, a quadratic in f^2 [D]. The gain listed stays the
+    // mid-band -Rf/Ri.
+    #[test]
+    fn feedback_capacitor_sets_the_bandwidth() {
+        let p = patch(
+            vec![sine("s", 0.1)],
+            vec![inverting("jfet-general", None, 100e3, Some(1e-9), 0.0)],
+        );
+        let st = &check(&p).stages[0];
+        let f1 = 1.0 / (TAU * 100e3 * 1e-9);
+        let f2 = builtin("jfet-general").unwrap().gbw / 11.0;
+        let (a, b) = (1.0 / (f1 * f1 * f2 * f2), 1.0 / (f1 * f1) + 1.0 / (f2 * f2));
+        let want = ((-b + (b * b + 4.0 * a).sqrt()) / (2.0 * a)).sqrt();
+        let got = st.bandwidth.unwrap();
+        assert!((got / want - 1.0).abs() < 1e-6, "{got} vs {want}");
+        assert!((got - 1591.5).abs() < 2.0, "{got}");
+        assert!((st.loop_bandwidth.unwrap() - f2).abs() < 1e-6);
+        assert_eq!(st.gains, vec![-10.0]);
+        assert_eq!(st.low_corner, None);
+    }
+
+    // Non-inverting with Cf across Rf: 1 + Zf/Rg = G (1 + j w tz) / (1 + j w tp), tp = Rf Cf,
+    // tz = (Rf || Rg) Cf; |H/G|^2 = 1/2 at w^2 = 1 / (tp^2 - 2 tz^2) (algebra on the
+    // first-order network, textbook) [D]. Ideal part: the loop adds nothing.
+    #[test]
+    fn non_inverting_feedback_capacitor_closed_form() {
+        let st = Stage {
+            name: "ni".into(),
+            part: builtin("ideal"),
+            kind: StageKind::NonInverting {
+                from: Node::Source(0),
+                r_fb: 90e3,
+                c_fb: Some(1e-9),
+                r_g: 10e3,
+                reference: 0.0,
+            },
+        };
+        let p = patch(vec![sine("s", 0.1)], vec![st]);
+        let got = check(&p).stages[0].bandwidth.unwrap();
+        let (tp, tz): (f64, f64) = (90e3 * 1e-9, 9e3 * 1e-9);
+        let want = (1.0 / (tp * tp - 2.0 * tz * tz)).sqrt() / TAU;
+        assert!((got / want - 1.0).abs() < 1e-6, "{got} vs {want}");
+    }
+
+    // A capacitor-coupled input on a single supply: the capacitor holds the source's DC
+    // (0 V) against the reference (4.5 V), so the output swings around the reference and
+    // does not clip (10 x 0.3 Vpk = 3 Vpk around 4.5 V inside 0.05 .. 8.95 V); the same input
+    // DC-coupled would sit 45 V away. Its corner is 1 / (2 pi R C) = 15.9 Hz for 10k and
+    // 1 uF (first-order RC into a virtual ground, textbook) [D].
+    #[test]
+    fn coupled_input_settles_at_the_reference() {
+        let mut p = patch(
+            vec![sine("s", 0.3)],
+            vec![inverting("rail-to-rail-cmos", Some(1e-6), 100e3, None, 4.5)],
+        );
+        p.rails = Rails { pos: 9.0, neg: 0.0 };
+        let r = check(&p);
+        assert!(
+            !r.warnings.iter().any(|w| w.kind == WarningKind::Clipping),
+            "{:?}",
+            r.warnings
+        );
+        let st = &r.stages[0];
+        assert!((st.span.lo - 1.5).abs() < 1e-9 && (st.span.hi - 7.5).abs() < 1e-9);
+        let fc = 1.0 / (TAU * 10e3 * 1e-6);
+        assert!((st.low_corner.unwrap() - fc).abs() < 1e-9);
+        // DC-coupled: the reference sees the source's 0 V: clipping, by the right amount
+        p.stages = vec![inverting("rail-to-rail-cmos", None, 100e3, None, 4.5)];
+        let r = check(&p);
+        assert!(r.warnings.iter().any(|w| w.kind == WarningKind::Clipping));
     }
 }

@@ -545,7 +545,7 @@ pub fn measure(
 }
 
 /// Columns of the CSV form, in order.
-pub const CSV_COLUMNS: [&str; 17] = [
+pub const CSV_COLUMNS: [&str; 23] = [
     "output",
     "fundamental_hz",
     "thd_percent",
@@ -563,16 +563,29 @@ pub const CSV_COLUMNS: [&str; 17] = [
     "headroom_neg_db",
     "imd_smpte_percent",
     "imd_ccif_percent",
+    "clip_s",
+    "slew_s",
+    "cm_out_s",
+    "reversed_s",
+    "first_clip_s",
+    "first_clip_stage",
 ];
 
 /// The CSV form: a header row and one row per output; empty cells where a figure does not
-/// apply.
+/// apply. The event columns (`clip_s`, `slew_s`, `cm_out_s`, `reversed_s`) are summed over the
+/// op-amp stages upstream of the output; `first_clip_s` and `first_clip_stage` name the first
+/// of them to clip.
 pub fn to_csv(m: &Measurement) -> String {
     let mut s = CSV_COLUMNS.join(",");
     s.push('\n');
     let cell = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x}"));
     for (name, o) in &m.outputs {
         let f = &o.figures;
+        let first = o
+            .events
+            .iter()
+            .filter_map(|(st, e)| e.first_clip_s.map(|t| (st.as_str(), t)))
+            .min_by(|a, b| a.1.total_cmp(&b.1));
         let row = [
             name.clone(),
             cell(f.fundamental_hz),
@@ -591,6 +604,14 @@ pub fn to_csv(m: &Measurement) -> String {
             cell(f.headroom_neg_db),
             cell(f.imd_smpte_percent),
             cell(f.imd_ccif_percent),
+            // events summed over the op-amp stages upstream of the output, and the first
+            // of them to clip
+            cell(Some(o.events.values().map(|e| e.clip_s).sum())),
+            cell(Some(o.events.values().map(|e| e.slew_s).sum())),
+            cell(Some(o.events.values().map(|e| e.cm_out_s).sum())),
+            cell(Some(o.events.values().map(|e| e.reversed_s).sum())),
+            cell(first.map(|(_, t)| t)),
+            first.map_or(String::new(), |(st, _)| st.to_string()),
         ];
         s.push_str(&row.join(","));
         s.push('\n');
@@ -621,5 +642,83 @@ pub fn apply_full_levels(
     }
     if !levels.is_empty() {
         m.settings.length_s = patch.length.min(patch.frames() as f64 / patch.rate);
+    }
+}
+
+/// A figure's name as a reader says it and its unit, from its JSON key: `thd_percent` ->
+/// ("THD", "%"), `thdn_db` -> ("THD+N", "dB"), `headroom_pos_db` -> ("headroom pos", "dB"),
+/// `peak_v` -> ("peak", "V"). Unknown keys keep their name, without a unit.
+pub fn figure_label(key: &str) -> (String, &'static str) {
+    const UNITS: [(&str, &str); 7] = [
+        ("_percent", "%"),
+        ("_dbfs", "dBFS"),
+        ("_dbc", "dBc"),
+        ("_db", "dB"),
+        ("_hz", "Hz"),
+        ("_v", "V"),
+        ("_s", "s"),
+    ];
+    let (stem, unit) = UNITS
+        .iter()
+        .find_map(|(suf, u)| key.strip_suffix(suf).map(|s| (s, *u)))
+        .unwrap_or((key, ""));
+    let words: Vec<String> = stem
+        .split('_')
+        .map(|w| match w {
+            "thd" => "THD".to_string(),
+            "thdn" => "THD+N".to_string(),
+            "sinad" => "SINAD".to_string(),
+            "snr" => "SNR".to_string(),
+            "imd" => "IMD".to_string(),
+            "enob" => "ENOB".to_string(),
+            "rms" => "RMS".to_string(),
+            "dc" => "DC".to_string(),
+            "pos" => "+".to_string(),
+            "neg" => "-".to_string(),
+            w => w.to_string(),
+        })
+        .collect();
+    (words.join(" "), unit)
+}
+
+/// The unit of the value a patch key path holds, from its last key: resistors, pots and
+/// loads in ohm, capacitors in F, frequencies in Hz, levels in V, times in s; `""` for a
+/// pot position or anything else.
+pub fn key_unit(path: &str) -> &'static str {
+    let last = path.rsplit('.').next().unwrap_or(path);
+    match last {
+        "pot" | "load" | "series" | "r" | "track" => "ohm",
+        k if k.starts_with("r_") => "ohm",
+        "c" => "F",
+        k if k.starts_with("c_") => "F",
+        "freq" | "from" | "to" => "Hz",
+        "amp" => "Vpk",
+        "offset" | "level" | "ref" | "pos" | "neg" => "V",
+        "rms" => "Vrms",
+        "start" | "stop" | "length" | "attack" | "decay" | "every" | "duration" => "s",
+        _ => "",
+    }
+}
+
+#[cfg(test)]
+mod label_tests {
+    use super::*;
+
+    // Names of the figures contract (README) read back as a designer says them [D].
+    #[test]
+    fn figure_and_key_labels() {
+        assert_eq!(figure_label("thd_percent"), ("THD".to_string(), "%"));
+        assert_eq!(figure_label("thdn_db"), ("THD+N".to_string(), "dB"));
+        assert_eq!(
+            figure_label("headroom_pos_db"),
+            ("headroom +".to_string(), "dB")
+        );
+        assert_eq!(figure_label("peak_v"), ("peak".to_string(), "V"));
+        assert_eq!(figure_label("mystery"), ("mystery".to_string(), ""));
+        assert_eq!(key_unit("stages.amp.r_fb"), "ohm");
+        assert_eq!(key_unit("stages.tone.feedback.c"), "F");
+        assert_eq!(key_unit("sources.lead.amp"), "Vpk");
+        assert_eq!(key_unit("sources.lead.freq"), "Hz");
+        assert_eq!(key_unit("stages.vol.at"), "");
     }
 }

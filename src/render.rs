@@ -67,7 +67,20 @@ impl SourceFeed for GeneratorFeed {
 
 /// One feed per source of `patch`, at the plan's internal rate.
 pub fn feeds(patch: &Patch, plan: &Plan) -> Result<Vec<Box<dyn SourceFeed>>, RenderError> {
+    feeds_for(patch, plan, patch.frames())
+}
+
+/// [`feeds`] for a render of `frames` frames at the base rate (a WAV input is checked only as
+/// far as such a render plays it).
+fn feeds_for(
+    patch: &Patch,
+    plan: &Plan,
+    frames: usize,
+) -> Result<Vec<Box<dyn SourceFeed>>, RenderError> {
     let fs = plan.internal_rate;
+    let internal = frames
+        .saturating_add(1)
+        .saturating_mul(plan.oversample.max(1));
     patch
         .sources
         .iter()
@@ -75,7 +88,7 @@ pub fn feeds(patch: &Patch, plan: &Plan) -> Result<Vec<Box<dyn SourceFeed>>, Ren
         .map(|(src, sp)| {
             let gen = match &src.wave {
                 Wave::File { .. } => {
-                    signal::file_stream(src, fs).map_err(|e| RenderError::Source {
+                    signal::file_stream(src, fs, internal).map_err(|e| RenderError::Source {
                         key: format!("sources.{}.path", src.name),
                         source: e,
                     })?
@@ -299,9 +312,38 @@ pub fn render_streaming(
     progress: &mut dyn FnMut(f64),
 ) -> Result<Streamed, RenderError> {
     let plan = engine::compile(&for_compile(patch))?;
-    let feeds = feeds(patch, &plan)?;
-    let mut eng = Engine::with_feeds(&plan, feeds);
     let frames = opts.frames.unwrap_or_else(|| patch.frames());
+    // WAV inputs as they are before they are read: a change during the render is an error,
+    // not silent or garbled audio.
+    let inputs: Vec<(String, &std::path::Path, _)> = patch
+        .sources
+        .iter()
+        .filter_map(|s| match &s.wave {
+            Wave::File { path, .. } => Some((
+                format!("sources.{}.path", s.name),
+                path.as_path(),
+                signal::file_stamp(path),
+            )),
+            _ => None,
+        })
+        .collect();
+    let unchanged = || -> Result<(), RenderError> {
+        for (key, path, stamp) in &inputs {
+            if signal::file_stamp(path) != *stamp {
+                return Err(RenderError::Source {
+                    key: key.clone(),
+                    source: SignalError::Changed {
+                        path: path.to_path_buf(),
+                    },
+                });
+            }
+        }
+        Ok(())
+    };
+    // A file that changed while it was being checked is reported as changed, not as the
+    // damage the change caused.
+    let feeds = feeds_for(patch, &plan, frames).map_err(|e| unchanged().err().unwrap_or(e))?;
+    let mut eng = Engine::with_feeds(&plan, feeds);
     let chunk = ((patch.rate * 0.25) as usize).max(1);
     let nout = plan.outputs.len();
     let mut bufs: Vec<Vec<f64>> = vec![vec![0.0; chunk]; nout];
@@ -314,6 +356,7 @@ pub fn render_streaming(
             let mut refs: Vec<&mut [f64]> = bufs.iter_mut().map(|b| &mut b[..n]).collect();
             eng.process(&mut refs);
         }
+        unchanged()?;
         for (i, b) in bufs.iter().enumerate() {
             acc[i].push(&b[..n]);
             tails[i].push(&b[..n]);

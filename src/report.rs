@@ -30,6 +30,8 @@ use crate::render::{self, RenderError, RenderOptions};
 pub struct Figure {
     /// Output it belongs to.
     pub output: String,
+    /// Side of an A/B comparison it belongs to (`"A"` or `"B"`), if any.
+    pub side: Option<&'static str>,
     /// Kind: `spectrum`, `waveform`, `transfer` or `thd-vs-level`.
     pub kind: &'static str,
     /// The SVG document.
@@ -37,9 +39,13 @@ pub struct Figure {
 }
 
 impl Figure {
-    /// File name for the figure (`NAME-KIND.svg`).
+    /// File name for the figure (`NAME-KIND.svg`, or `NAME-SIDE-KIND.svg` for a side of an
+    /// A/B comparison).
     pub fn file_name(&self) -> String {
-        format!("{}-{}.svg", self.output, self.kind)
+        match self.side {
+            Some(side) => format!("{}-{side}-{}.svg", self.output, self.kind),
+            None => format!("{}-{}.svg", self.output, self.kind),
+        }
     }
 }
 
@@ -188,6 +194,24 @@ fn waveform_window(v: &[f64], rate: f64, spans: &[EventSpan]) -> (f64, f64) {
     (t0, t0 + width)
 }
 
+/// The input node of the stage at `node` (a summer's first input that carries more than DC,
+/// else its first input); `None` for a source.
+fn stage_input(patch: &Patch, node: Node) -> Option<Node> {
+    let Node::Stage(i) = node else {
+        return None;
+    };
+    match &patch.stages[i].kind {
+        StageKind::InvertingSum { inputs, .. } => inputs
+            .iter()
+            .map(|inp| inp.from)
+            .find(|&n| first_source(patch, n).is_some())
+            .or_else(|| inputs.first().map(|inp| inp.from)),
+        StageKind::NonInverting { from, .. }
+        | StageKind::Follower { from }
+        | StageKind::Attenuator { from, .. } => Some(*from),
+    }
+}
+
 fn first_source(patch: &Patch, node: Node) -> Option<usize> {
     measure::upstream_sources(patch, node)
         .into_iter()
@@ -201,6 +225,17 @@ pub const PLOT_MAX_S: f64 = 10.0;
 /// Every plot of every output (`only`: one output by name). Renders the patch once more with
 /// probes on every node (at most [`PLOT_MAX_S`] long).
 pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderError> {
+    side_plots(patch, only, None)
+}
+
+/// [`plots`] of one side of an A/B comparison: every title starts with `side` (and the
+/// variant's name, `label`), and the figures carry the side.
+pub fn side_plots(
+    patch: &Patch,
+    only: Option<&str>,
+    side: Option<(&'static str, &str)>,
+) -> Result<Vec<Figure>, RenderError> {
+    let prefix = side.map_or(String::new(), |(s, label)| format!("{s} ({label}): "));
     let mut short = patch.clone();
     short.length = short.length.min(PLOT_MAX_S);
     let patch = &short;
@@ -221,6 +256,7 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
             if let Ok(svg) = svg {
                 figs.push(Figure {
                     output: o.name.clone(),
+                    side: side.map(|(s, _)| s),
                     kind,
                     svg,
                 });
@@ -253,7 +289,7 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
         };
         if let Some(spec) = spec {
             if let Ok((f, l)) = plot::spectrum_db(&spec, DbScale::Dbv) {
-                let title = format!("{}: spectrum", o.name);
+                let title = format!("{prefix}{}: spectrum", o.name);
                 push(
                     "spectrum",
                     plot::spectrum_svg(&SpectrumPlot {
@@ -275,8 +311,9 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
         // Waveform.
         let spans = event_spans(patch, &probes, o.from);
         let win = waveform_window(v, run.rate, &spans);
-        let input = first_source(patch, o.from).and_then(|s| {
-            node_signal(patch, &probes, Node::Source(s)).map(|x| Trace {
+        // the input trace is the driving stage's own input node
+        let input = stage_input(patch, o.from).and_then(|n| {
+            node_signal(patch, &probes, n).map(|x| Trace {
                 samples: x,
                 rate: run.rate,
                 start_s: 0.0,
@@ -284,7 +321,15 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
         });
         let cm = cm_window(patch, o.from)
             .map(|(lo, hi, _, _)| (lo.max(patch.rails.neg), hi.min(patch.rails.pos)));
-        let title = format!("{}: waveform (from {})", o.name, patch.node_name(o.from));
+        let title = format!(
+            "{prefix}{}: waveform (from {}{})",
+            o.name,
+            patch.node_name(o.from),
+            stage_input(patch, o.from).map_or(String::new(), |n| format!(
+                "; light: its input {}",
+                patch.node_name(n)
+            ))
+        );
         let caption = "event spans estimated from node voltages; durations in the figures come from the engine";
         push(
             "waveform",
@@ -310,7 +355,10 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
             if let Ok((x, y)) = transfer_run(patch, s, oi) {
                 let (gain, offset) =
                     small_signal_fit(&x, &y, patch.rails.pos.abs().max(patch.rails.neg.abs()));
-                let title = format!("{}: transfer curve from {}", o.name, patch.sources[s].name);
+                let title = format!(
+                    "{prefix}{}: transfer curve from {}",
+                    o.name, patch.sources[s].name
+                );
                 let caption = format!(
                     "slow ramp rail to rail on {}, other sources muted; dashed: linear gain {gain:.3} fitted near 0 V",
                     patch.sources[s].name
@@ -353,7 +401,10 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
                         })
                     })
                     .collect();
-                let title = format!("{}: THD against level of {}", o.name, patch.sources[s].name);
+                let title = format!(
+                    "{prefix}{}: THD against level of {}",
+                    o.name, patch.sources[s].name
+                );
                 let caption = "harmonics 2-10, settle time + 0.45 s per point, coherent capture where possible; crossings found on the circuit within 0.1 % in level";
                 let series = [SweepSeries {
                     name: "THD",
@@ -381,24 +432,37 @@ pub fn plots(patch: &Patch, only: Option<&str>) -> Result<Vec<Figure>, RenderErr
 }
 
 /// Run the patch with source `s` replaced by a rail-to-rail ramp over 1 s and every other
-/// source muted; returns (input, output) of output `oi`.
+/// source muted; returns (input, output) of output `oi`. The ramp starts a settle time
+/// earlier, further down, and the points of that lead-in are dropped: the curve starts once
+/// the circuit has followed the ramp from rest (no vertical line at the first sample).
 fn transfer_run(patch: &Patch, s: usize, oi: usize) -> Result<(Vec<f64>, Vec<f64>), RenderError> {
     let mut p = render::muted(patch);
     let span = patch.rails.pos.abs().max(patch.rails.neg.abs());
+    p.sources[s].offset = 0.0;
+    p.sources[s].start = 0.0;
+    p.sources[s].stop = None;
     p.sources[s].wave = Wave::Ramp {
         from: -span,
         to: span,
         duration: 1.0,
     };
-    p.sources[s].offset = 0.0;
-    p.sources[s].start = 0.0;
-    p.sources[s].stop = None;
     p.length = 1.0;
+    // at most a quarter second of lead-in (a slow coupling capacitor would not settle on a
+    // ramp anyway)
+    let settle = measure::settle_time(&p).min(0.25);
+    let slope = 2.0 * span; // V/s
+    let from = -span - slope * settle;
+    p.sources[s].wave = Wave::Ramp {
+        from,
+        to: span,
+        duration: 1.0 + settle,
+    };
+    p.length = 1.0 + settle;
     let run = render::render(&p, &RenderOptions::default(), &mut |_| {})?;
-    let y = run.outputs[oi].samples.clone();
-    let n = y.len();
-    let x = (0..n)
-        .map(|k| -span + 2.0 * span * (k as f64 / p.rate).min(1.0))
+    let skip = ((settle * p.rate).ceil() as usize).min(run.outputs[oi].samples.len());
+    let y = run.outputs[oi].samples[skip..].to_vec();
+    let x = (skip..skip + y.len())
+        .map(|k| (from + slope * k as f64 / p.rate).min(span))
         .collect();
     Ok((x, y))
 }
@@ -510,6 +574,8 @@ pub struct Player<'a> {
     pub note: String,
     /// Samples, volts.
     pub samples: &'a [f64],
+    /// Fade at the edges of the embedded file (the figures come from the unfaded signal).
+    pub fade: crate::signal::EdgeFade,
 }
 
 /// The comment lines at the top of a patch file (its title and job), without the `#`.
@@ -525,15 +591,30 @@ fn fmt_opt(v: Option<f64>, digits: usize) -> String {
     v.map_or("&ndash;".into(), |x| format!("{x:.digits$}"))
 }
 
-/// The listening page. `sections` are extra HTML blocks (e.g. an A/B comparison).
+/// One table of figures on the page: a render's measurement, labelled with its side of an
+/// A/B comparison (`"A (base)"`) or not.
+#[derive(Debug, Clone, Copy)]
+pub struct FigureTable<'a> {
+    /// `None` for a single render; `Some(("A", "base"))` for a side and its variant.
+    pub side: Option<(&'static str, &'a str)>,
+    /// The figures.
+    pub m: &'a Measurement,
+}
+
+/// The listening page: the figures of `main` (whose settings set the rate and calibration of
+/// the players) and of `other` (side B of a comparison); `sections` are extra HTML blocks
+/// (e.g. an A/B comparison).
 pub fn page(
     patch: &Patch,
     patch_text: &str,
-    m: &Measurement,
+    main: FigureTable,
+    other: Option<FigureTable>,
     figures: &[Figure],
     players: &[Player],
     sections: &[String],
 ) -> String {
+    let m = main.m;
+    let tables: Vec<FigureTable> = std::iter::once(main).chain(other).collect();
     let mut h = String::new();
     let title = escape(&patch.title);
     let _ = write!(
@@ -562,7 +643,7 @@ figure{{margin:1em 0}}figure svg{{max-width:100%;height:auto}}.caution{{color:#8
     let _ = writeln!(h, "<h2>Listen</h2>\n<div class=\"players\">");
     for (i, p) in players.iter().enumerate() {
         let wav = wav_bytes(
-            p.samples,
+            &p.fade.applied(p.samples),
             m.settings.rate_hz,
             m.settings.full_scale_v,
             i as u64 + 1,
@@ -582,42 +663,31 @@ figure{{margin:1em 0}}figure svg{{max-width:100%;height:auto}}.caution{{color:#8
         h.push_str(s);
         h.push('\n');
     }
-    // Figures table.
-    let _ = writeln!(
-        h,
-        "<h2>Figures</h2>\n<table id=\"figures\"><tr><th>output</th><th>peak V (circuit)</th><th>rms V (AC)</th>\
-<th>headroom + dB</th><th>headroom &minus; dB</th><th>THD %</th><th>THD+N dB</th><th>SINAD dB</th><th>events</th></tr>"
-    );
-    for (name, r) in &m.outputs {
-        let f = &r.figures;
-        let ev: Vec<String> = r
-            .events
-            .iter()
-            .map(|(st, e)| {
-                format!(
-                    "{st}: clip {:.3} s, slew {:.3} s, out of range {:.3} s, reversed {:.3} s",
-                    e.clip_s, e.slew_s, e.cm_out_s, e.reversed_s
-                )
-            })
-            .collect();
+    // Figures tables.
+    for (ti, t) in tables.iter().enumerate() {
+        let (heading, side) = match t.side {
+            Some((sd, label)) => (format!("Figures: {sd} ({})", escape(label)), sd),
+            None => ("Figures".to_string(), ""),
+        };
+        let id = if ti == 0 {
+            "figures".to_string()
+        } else {
+            format!("figures-{}", side.to_lowercase())
+        };
         let _ = writeln!(
             h,
-            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td style=\"text-align:left\">{}</td></tr>",
-            escape(name),
-            fmt_opt(f.peak_v, 3),
-            fmt_opt(f.rms_v, 3),
-            fmt_opt(f.headroom_pos_db, 1),
-            fmt_opt(f.headroom_neg_db, 1),
-            fmt_opt(f.thd_percent, 4),
-            fmt_opt(f.thdn_db, 1),
-            fmt_opt(f.sinad_db, 1),
-            escape(&ev.join("; "))
+            "<h2>{heading}</h2>\n<table id=\"{id}\" data-side=\"{side}\"><tr><th>output</th><th>peak V (circuit)</th><th>rms V (AC)</th>\
+<th>headroom + dB</th><th>headroom &minus; dB</th><th>THD %</th><th>THD+N dB</th><th>SINAD dB</th><th>events</th></tr>"
         );
+        for (name, r) in &t.m.outputs {
+            figure_row(&mut h, name, r);
+        }
+        let _ = writeln!(h, "</table>");
     }
     let s = &m.settings;
     let _ = writeln!(
         h,
-        "</table>\n<p>{} Hz &times;{} oversampling, {:.2} s rendered, calibration {} V = 0 dBFS; \
+        "<p>{} Hz &times;{} oversampling, {:.2} s rendered, calibration {} V = 0 dBFS; \
 THD over harmonics 2&ndash;10 re the fundamental; THD+N and SINAD re the whole signal in \
 the band 20 Hz &ndash; 20 kHz (AES17: SINAD = &minus;THD+N); spectral captures start after \
 a settle time of {:.3} s; peak is the op-amp's own output, headroom against its swing; \
@@ -629,9 +699,11 @@ a settle time of {:.3} s; peak is the op-amp's own output, headroom against its 
     for f in figures {
         let _ = writeln!(
             h,
-            "<figure class=\"plot\" data-output=\"{}\" data-kind=\"{}\">{}</figure>",
+            "<figure class=\"plot\" data-output=\"{}\" data-kind=\"{}\"{}>{}</figure>",
             escape(&f.output),
             f.kind,
+            f.side
+                .map_or(String::new(), |sd| format!(" data-side=\"{sd}\"")),
             strip_xml_prolog(&f.svg)
         );
     }
@@ -652,6 +724,34 @@ count();setInterval(count,200);})();\n</script>\n",
     );
     h.push_str("</body></html>\n");
     h
+}
+
+/// One row of a figures table.
+fn figure_row(h: &mut String, name: &str, r: &crate::measure::OutputReport) {
+    let f = &r.figures;
+    let ev: Vec<String> = r
+        .events
+        .iter()
+        .map(|(st, e)| {
+            format!(
+                "{st}: clip {:.3} s, slew {:.3} s, out of range {:.3} s, reversed {:.3} s",
+                e.clip_s, e.slew_s, e.cm_out_s, e.reversed_s
+            )
+        })
+        .collect();
+    let _ = writeln!(
+        h,
+        "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td style=\"text-align:left\">{}</td></tr>",
+        escape(name),
+        fmt_opt(f.peak_v, 3),
+        fmt_opt(f.rms_v, 3),
+        fmt_opt(f.headroom_pos_db, 1),
+        fmt_opt(f.headroom_neg_db, 1),
+        fmt_opt(f.thd_percent, 4),
+        fmt_opt(f.thdn_db, 1),
+        fmt_opt(f.sinad_db, 1),
+        escape(&ev.join("; "))
+    );
 }
 
 fn strip_xml_prolog(svg: &str) -> &str {
@@ -730,4 +830,81 @@ pub fn comparison_section(
         let _ = writeln!(h, "</ul></section>");
     }
     h
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A unity inverter (ideal part, +/-12 V rails) fed by `osc` through `pre`, a follower.
+    fn chain() -> Patch {
+        let text = r#"
+[patch]
+length = "0.2 s"
+noise = false
+
+[rails]
+pos = "12 V"
+neg = "-12 V"
+
+[sources.osc]
+wave = "sine"
+freq = "1 kHz"
+amp = "1 Vpk"
+
+[stages.pre]
+type = "non-inverting"
+part = "ideal"
+from = "osc"
+r_fb = "10k"
+r_g = "10k"
+
+[stages.inv]
+type = "inverting"
+part = "ideal"
+from = "pre"
+r_in = "10k"
+r_fb = "10k"
+
+[outputs.out]
+from = "inv"
+"#;
+        crate::patch::parse_str(text, "chain.toml", std::path::Path::new("."), &[]).unwrap()
+    }
+
+    // The transfer curve starts once the circuit follows the ramp: its first point already
+    // lies on the stage's transfer function, here -2 x through the gain-of-two stage and the
+    // unity inverter (op-amp textbook gains), clipped at the rails; no jump from rest at
+    // the first sample.
+    #[test]
+    fn transfer_curve_starts_settled() {
+        let p = chain();
+        let (x, y) = transfer_run(&p, 0, 0).unwrap();
+        assert!(
+            (x[0] + 12.0).abs() < 0.01,
+            "ramp from the lower rail: {}",
+            x[0]
+        );
+        for k in [0usize, 1, 10, x.len() / 2, x.len() - 1] {
+            let want = (-2.0 * x[k]).clamp(-12.0, 12.0);
+            assert!(
+                (y[k] - want).abs() < 0.05,
+                "point {k}: {} at {}",
+                y[k],
+                x[k]
+            );
+        }
+    }
+
+    // The waveform plot's light trace is the driving stage's own input (`pre`), not the
+    // source two stages up.
+    #[test]
+    fn waveform_input_is_the_stages_own_input() {
+        let p = chain();
+        assert_eq!(stage_input(&p, Node::Stage(1)), Some(Node::Stage(0)));
+        assert_eq!(stage_input(&p, Node::Stage(0)), Some(Node::Source(0)));
+        let figs = plots(&p, None).unwrap();
+        let w = figs.iter().find(|f| f.kind == "waveform").unwrap();
+        assert!(w.svg.contains("light: its input pre"), "{}", &w.svg[..400]);
+    }
 }

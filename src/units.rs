@@ -711,13 +711,17 @@ pub fn fmt_resistance(r: f64) -> String {
 
 /// A value with an SI prefix and unit, four significant figures at most:
 /// `fmt_eng(3.3e6, "Hz")` = `"3.3 MHz"`, `fmt_eng(2e-5, "s")` = `"20 us"` (`u` for micro).
-/// Prefixes run from f to T; values outside that span keep the nearest prefix.
+/// Prefixes run from f to T; values outside that span (below 1 f or from 1000 T on) are
+/// written in scientific notation (`"1.0e-300 Hz"`), never as a long run of digits.
 pub fn fmt_eng(value: f64, unit: &str) -> String {
     if !value.is_finite() {
         return format!("{value} {unit}").trim_end().to_string();
     }
     if value == 0.0 {
         return format!("0 {unit}").trim_end().to_string();
+    }
+    if !(1e-15..1e15).contains(&round_sig(value, 4).abs()) {
+        return format!("{value:.3e} {unit}").trim_end().to_string();
     }
     const PREFIXES: [&str; 10] = ["f", "p", "n", "u", "m", "", "k", "M", "G", "T"];
     let v = round_sig(value, 4);

@@ -73,6 +73,30 @@ fn missing_file_and_bad_flags_exit_2() {
     assert_eq!(out.status.code(), Some(2));
     let out = railsong(&["frobnicate"]);
     assert_eq!(out.status.code(), Some(2));
+    // clap's detail survives, on one line: the missing argument is named, a misspelt
+    // command or flag gets its suggestion
+    let one_line = |args: &[&str], want: &[&str]| {
+        let out = railsong(args);
+        assert_eq!(out.status.code(), Some(2), "{args:?}");
+        let err = String::from_utf8_lossy(&out.stderr).to_string();
+        assert_eq!(err.trim_end().lines().count(), 1, "{err}");
+        for w in want {
+            assert!(err.contains(w), "{args:?}: {err} lacks {w}");
+        }
+    };
+    one_line(&["check"], &["<PATCH>"]);
+    one_line(
+        &["compare", "patches/demo.toml", "--b", "x"],
+        &["--a <NAME>"],
+    );
+    one_line(
+        &["rendr", "patches/demo.toml"],
+        &["'rendr'", "did you mean", "'render'"],
+    );
+    one_line(
+        &["render", "patches/demo.toml", "--ouy", "x"],
+        &["did you mean '--out'?"],
+    );
 }
 
 // Common practice: four 10 Vpp inputs into a unity summer exceed +/-12 V rails.
@@ -186,4 +210,161 @@ fn measure_reports_idle_channel_noise_and_snr() {
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert!(v["outputs"]["main"]["noise_rms_v"].is_null());
     assert!(v["outputs"]["main"]["snr_db"].is_null());
+}
+
+// `--tol 5` means 5 % (the flag takes percent), an impossible tolerance is refused with a
+// clear message, and `tolerance --help` says what `--plots` writes.
+#[test]
+fn tolerance_flags_read_percent_and_help_names_the_plot() {
+    let out = railsong(&[
+        "tolerance",
+        "patches/clean-mix.toml",
+        "--tol",
+        "5",
+        "--runs",
+        "3",
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(String::from_utf8_lossy(&out.stdout).contains("+/-5 %"));
+    let out = railsong(&["tolerance", "patches/clean-mix.toml", "--tol", "150"]);
+    assert_eq!(out.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        err.contains("--tol 150") && err.contains("below 100 %"),
+        "{err}"
+    );
+    let out = railsong(&["tolerance", "--help"]);
+    assert!(String::from_utf8_lossy(&out.stdout).contains("<output>-tolerance-gain.svg"));
+}
+
+// Every `--set` example of the README's paragraph on overrides works on the demo patch.
+#[test]
+fn readme_set_examples_work_on_the_demo() {
+    let readme = std::fs::read_to_string("README.md").unwrap();
+    let para = readme
+        .split("\n\n")
+        .find(|p| p.contains("takes `--set PATH=VALUE`"))
+        .expect("the overrides paragraph");
+    let examples: Vec<String> = para
+        .split('`')
+        .filter_map(|s| s.strip_prefix("--set "))
+        .filter(|s| !s.starts_with("PATH"))
+        .map(|s| s.replace('"', ""))
+        .collect();
+    assert!(examples.len() >= 2, "{examples:?}");
+    for e in &examples {
+        let out = railsong(&["check", "patches/demo.toml", "--set", e]);
+        assert!(
+            out.status.success(),
+            "--set {e}: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+}
+
+// `--variant` on check and measure picks the variant (here "hot": the mixer's feedback
+// resistor 330k instead of 100k, gain -Rf/Ri = -3.3, textbook), and `measure --csv` carries
+// the event columns: the hot mix clips, the base does not.
+#[test]
+fn variant_flag_and_csv_event_columns() {
+    let base = railsong(&["check", "patches/ab-feedback.toml"]);
+    let hot = railsong(&["check", "patches/ab-feedback.toml", "--variant", "hot"]);
+    assert!(base.status.success() && hot.status.success());
+    assert!(String::from_utf8_lossy(&base.stdout).contains("-1.000x2"));
+    assert!(String::from_utf8_lossy(&hot.stdout).contains("-3.300x2"));
+    let bad = railsong(&["check", "patches/ab-feedback.toml", "--variant", "cold"]);
+    assert_eq!(bad.status.code(), Some(2));
+    let csv = |variant: &str| {
+        let out = railsong(&[
+            "measure",
+            "patches/ab-feedback.toml",
+            "--variant",
+            variant,
+            "--set",
+            "patch.length=0.5 s",
+            "--csv",
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8_lossy(&out.stdout).to_string()
+    };
+    let cell = |text: &str, col: &str| -> String {
+        let mut lines = text.lines();
+        let head: Vec<&str> = lines.next().unwrap().split(',').collect();
+        let row: Vec<&str> = lines.next().unwrap().split(',').collect();
+        let i = head
+            .iter()
+            .position(|h| *h == col)
+            .unwrap_or_else(|| panic!("no {col}"));
+        row[i].to_string()
+    };
+    let (b, h) = (csv("base"), csv("hot"));
+    assert_eq!(cell(&b, "clip_s").parse::<f64>().unwrap(), 0.0);
+    assert!(cell(&h, "clip_s").parse::<f64>().unwrap() > 0.0);
+    assert_eq!(cell(&h, "first_clip_stage"), "mix");
+    assert!(cell(&h, "first_clip_s").parse::<f64>().unwrap() >= 0.0);
+    assert_eq!(cell(&b, "first_clip_s"), "");
+}
+
+// `measure --level-sweep --plots --plots-dir` writes the THD-against-level plot, with the
+// crossings found on the circuit marked.
+#[test]
+fn level_sweep_writes_its_plot() {
+    let dir = tempfile::tempdir().unwrap();
+    let patch = dir.path().join("amp.toml");
+    std::fs::write(
+        &patch,
+        r#"
+[patch]
+length = "0.3 s"
+noise = false
+
+[rails]
+pos = "12 V"
+neg = "-12 V"
+
+[sources.osc]
+wave = "sine"
+freq = "1 kHz"
+amp = "1 Vpk"
+
+[stages.amp]
+type = "inverting"
+part = "bipolar-lownoise"
+from = "osc"
+r_in = "10k"
+r_fb = "10k"
+
+[outputs.out]
+from = "amp"
+"#,
+    )
+    .unwrap();
+    let plots = dir.path().join("plots");
+    let out = railsong(&[
+        "measure",
+        patch.to_str().unwrap(),
+        "--level-sweep",
+        "osc=2Vpk..16Vpk",
+        "--steps",
+        "5",
+        "--plots",
+        "--plots-dir",
+        plots.to_str().unwrap(),
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let svg = std::fs::read_to_string(plots.join("out-level-sweep.svg")).unwrap();
+    assert!(svg.contains("class=\"crossing"), "crossings marked");
+    assert!(svg.contains("THD (%)"));
 }

@@ -46,18 +46,20 @@ fn naive_clip_matches_the_known_figures() {
 }
 
 // Targets (railsong design): below -80 dBc at the default K = 4 with a built-in profile, and
-// below -75 dBc with an ideal hard clip at K = 16. Measured: about -88.6 dBc (jfet-general,
-// K = 4), -88.3 dBc (ideal, K = 4), -127.7 dBc (ideal, K = 16); asserted with margin.
+// below -75 dBc with an ideal hard clip at K = 16; the quadratic local model must keep at
+// least the -88 dBc of the straight-line model it replaced. Measured: about -99.4 dBc
+// (jfet-general, K = 4), -100.1 dBc (ideal, K = 4), -147.7 dBc (ideal, K = 16); asserted
+// with margin.
 #[test]
 fn band_limited_clip_meets_the_targets() {
     let j4 = alias_probe(&part("jfet-general"), RAILS, 48_000.0, 4);
-    assert!(j4 < -85.0, "jfet-general K=4: {j4}");
+    assert!(j4 < -95.0, "jfet-general K=4: {j4}");
     let b4 = alias_probe(&part("bipolar-lownoise"), RAILS, 48_000.0, 4);
-    assert!(b4 < -85.0, "bipolar-lownoise K=4: {b4}");
+    assert!(b4 < -95.0, "bipolar-lownoise K=4: {b4}");
     let i4 = alias_probe(&part("ideal"), RAILS, 48_000.0, 4);
-    assert!(i4 < -85.0, "ideal K=4: {i4}");
+    assert!(i4 < -95.0, "ideal K=4: {i4}");
     let i16 = alias_probe(&part("ideal"), RAILS, 48_000.0, 16);
-    assert!(i16 < -120.0, "ideal K=16: {i16}");
+    assert!(i16 < -140.0, "ideal K=16: {i16}");
     // and it is a real improvement over the naive clip at the same K
     let n4 = alias_probe_with(&part("ideal"), RAILS, 48_000.0, 4, false);
     assert!(i4 < n4 - 30.0, "{i4} vs naive {n4}");

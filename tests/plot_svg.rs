@@ -139,7 +139,7 @@ fn square_spectrum_plot(hide: Option<f64>) -> (String, Vec<HarmonicMark>, Spectr
 }
 
 #[test]
-fn spectrum_square_wave_marks_h2_to_h5() {
+fn spectrum_square_wave_marks_the_odd_harmonics() {
     let (svg, _, _) = square_spectrum_plot(None);
     let root = parse(&svg).unwrap();
     common_checks(
@@ -157,21 +157,73 @@ fn spectrum_square_wave_marks_h2_to_h5() {
         .iter()
         .map(|h| h.num("data-order") as usize)
         .collect();
-    // Harmonics 2..=5 asked of the analysis, every one marked, nothing else.
-    assert_eq!(orders, vec![2, 3, 4, 5]);
+    // Harmonics 2..=5 asked of the analysis; the even ones of a square wave are zero (only
+    // rounding residue, at the noise floor), so only H3 and H5 stand above the floor and
+    // are marked (issue 12: labels only above the noise floor).
+    assert_eq!(orders, vec![3, 5]);
+    assert_eq!(root.one("harmonics-hidden").num("data-count"), 2.0);
     for h in root.by_class("harmonic") {
         let n = h.num("data-order");
         let text = h.all_text();
         assert!(text.starts_with(&format!("H{n} ")), "{text}");
-        if n as usize % 2 == 1 {
-            // Square wave: b_n / b_1 = 1/n for odd n (Fourier series), so 20 log10(1/n) dBc.
-            let expect = 20.0 * (1.0 / n).log10();
-            assert!((h.num("data-dbc") - expect).abs() < 1e-9);
-            assert_eq!(text, format!("H{n} {expect:.1} dBc"));
-        } else {
-            // Even harmonics of a square wave are zero: only rounding residue remains.
-            assert!(h.num("data-dbc") < -200.0);
-        }
+        // Square wave: b_n / b_1 = 1/n for odd n (Fourier series), so 20 log10(1/n) dBc.
+        let expect = 20.0 * (1.0 / n).log10();
+        assert!((h.num("data-dbc") - expect).abs() < 1e-9);
+        assert_eq!(text, format!("H{n} {expect:.1} dBc"));
+    }
+}
+
+// A sawtooth has every harmonic at 1/n of the fundamental (Fourier series, any signals
+// text): H2..H10 of 1 kHz all stand above the floor and are marked, but on a log axis the
+// upper ones crowd together; a label is drawn only where it clears the previous one, so no
+// two labels overlap (each is a vertical line of text about 11 px wide).
+#[test]
+fn harmonic_labels_do_not_overlap() {
+    let rate = 48_000.0;
+    let x: Vec<f64> = (0..48_000)
+        .map(|i| {
+            let p = 2.0 * PI * 1000.0 * i as f64 / rate;
+            (1..=15).map(|k| (k as f64 * p).sin() / k as f64).sum()
+        })
+        .collect();
+    let spec = Spectrum::compute(&x, rate, Window::Rectangular).unwrap();
+    let thd = thd_from_spectrum(
+        &spec,
+        1000.0,
+        Harmonics::UpTo(10),
+        AliasRule::StopAtNyquist,
+        true,
+    )
+    .unwrap();
+    let marks = HarmonicMark::from_levels(&thd.harmonics);
+    let (f, l) = spectrum_db(&spec, DbScale::Dbv).unwrap();
+    let svg = spectrum_svg(&SpectrumPlot {
+        title: "Sawtooth, 1 kHz",
+        caption: "",
+        freq_hz: &f,
+        level_db: &l,
+        unit: "dBV",
+        band_hz: Some((20.0, 24_000.0)),
+        harmonics: &marks,
+        ..SpectrumPlot::default()
+    })
+    .unwrap();
+    let root = parse(&svg).unwrap();
+    let hs = root.by_class("harmonic");
+    assert_eq!(hs.len(), 9, "H2..H10 all above the floor");
+    let labelled: Vec<f64> = hs
+        .iter()
+        .filter(|h| h.attr("data-labelled") == Some("true"))
+        .map(|h| h.first("circle").unwrap().num("cx"))
+        .collect();
+    assert!(labelled.len() < hs.len(), "some crowded labels left out");
+    assert!(labelled.len() >= 4);
+    for w in labelled.windows(2) {
+        assert!(w[1] - w[0] >= 11.0, "labels {w:?} overlap");
+    }
+    for h in &hs {
+        let has_text = !h.all_text().is_empty();
+        assert_eq!(has_text, h.attr("data-labelled") == Some("true"));
     }
 }
 

@@ -154,3 +154,84 @@ fn measure_json_has_every_key_for_every_patch() {
     }
     assert!(n >= 5);
 }
+
+/// A 1 kHz sine with a 1 V offset through a unity inverter: starts and ends away from 0 V.
+const EDGES: &str = r#"
+[patch]
+length = "0.2 s"
+noise = false
+
+[rails]
+pos = "12 V"
+neg = "-12 V"
+
+[sources.osc]
+wave = "sine"
+freq = "1 kHz"
+amp = "2 Vpk"
+phase = "90 deg"
+offset = "1 V"
+
+[stages.amp]
+type = "inverting"
+part = "bipolar-lownoise"
+from = "osc"
+r_in = "10k"
+r_fb = "10k"
+
+[outputs.out]
+from = "amp"
+"#;
+
+// File edges (issue 12): with the default 5 ms fade the first and last samples of the file
+// are exactly zero, the fade is a raised cosine (sin^2(pi k / 2 L), common practice: half
+// way through it the file is at half the unfaded value), the middle of the file is untouched,
+// and figures.json is the same as with the fade switched off (figures come from the unfaded
+// signal). `--fade 0` writes the unfaded file; a bad length exits 2.
+#[test]
+fn files_fade_at_their_edges_and_the_figures_do_not() {
+    let dir = tempfile::tempdir().unwrap();
+    let patch = dir.path().join("edges.toml");
+    std::fs::write(&patch, EDGES).unwrap();
+    let p = patch.to_str().unwrap();
+    let faded = dir.path().join("faded");
+    let plain = dir.path().join("plain");
+    for (out, fade) in [(&faded, None), (&plain, Some("0"))] {
+        let mut args = vec![
+            "render",
+            p,
+            "--out",
+            out.to_str().unwrap(),
+            "--depth",
+            "float",
+        ];
+        if let Some(f) = fade {
+            args.extend(["--fade", f]);
+        }
+        let o = railsong(&args);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    }
+    let (_, f) = read_wav(&faded.join("out.wav"));
+    let (_, u) = read_wav(&plain.join("out.wav"));
+    assert_eq!(f.len(), u.len());
+    let n = f.len();
+    assert_eq!(f[0], 0.0);
+    assert_eq!(f[n - 1], 0.0);
+    // unfaded, the file starts near -3 V (of 15 V full scale): not zero
+    assert!(u[0].abs() > 0.1, "{}", u[0]);
+    let len = 240; // 5 ms at 48 kHz
+    assert!((f[len / 2] - 0.5 * u[len / 2]).abs() < 1e-6);
+    assert!((f[n - 1 - len / 2] - 0.5 * u[n - 1 - len / 2]).abs() < 1e-6);
+    assert_eq!(f[len..n - len], u[len..n - len]);
+    let figures = |d: &Path| std::fs::read_to_string(d.join("figures.json")).unwrap();
+    assert_eq!(figures(&faded), figures(&plain));
+    let bad = railsong(&[
+        "render",
+        p,
+        "--out",
+        dir.path().join("bad").to_str().unwrap(),
+        "--fade=-1ms",
+    ]);
+    assert_eq!(bad.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&bad.stderr).contains("--fade"));
+}

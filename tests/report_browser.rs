@@ -178,6 +178,15 @@ fn comparison_page_has_the_four_players_and_the_differences() {
     }
     assert!(html.contains("class=\"comparison\""));
     assert!(html.contains("B clips for"));
+    // both sides' figures and plots, labelled A and B (issue 12)
+    assert!(html.contains("<h2>Figures: A (base)</h2>"), "A's figures");
+    assert!(html.contains("<h2>Figures: B (hot)</h2>"), "B's figures");
+    assert!(html.contains("id=\"figures-b\" data-side=\"B\""));
+    for side in ["A", "B"] {
+        let plots = html.matches(&format!("data-side=\"{side}\"><svg")).count();
+        assert!(plots >= 3, "{plots} plots of side {side}");
+    }
+    assert!(html.contains("A (base): main: spectrum") && html.contains("B (hot): main: spectrum"));
     let gain: f64 = html
         .split("gain <b>")
         .nth(1)
@@ -245,4 +254,69 @@ fn sweep_and_tolerance_plots_are_valid_svg_with_their_marks() {
         .map(|e| e.num("data-count"))
         .sum();
     assert_eq!(counted, 40.0);
+}
+
+// Sweep plots name their axes by figure and key, with units, and tick resistor values in
+// engineering notation ("100k", not "100000"; common practice of engineering notation).
+#[test]
+fn sweep_plot_axes_are_named_with_units_and_engineering_ticks() {
+    let dir = tempfile::tempdir().unwrap();
+    let patch = dir.path().join("gain.toml");
+    std::fs::write(
+        &patch,
+        r#"
+[patch]
+length = "0.3 s"
+noise = false
+
+[rails]
+pos = "12 V"
+neg = "-12 V"
+
+[sources.osc]
+wave = "sine"
+freq = "1 kHz"
+amp = "0.1 Vpk"
+
+[stages.amp]
+type = "inverting"
+part = "bipolar-lownoise"
+from = "osc"
+r_in = "10k"
+r_fb = "10k"
+
+[outputs.out]
+from = "amp"
+"#,
+    )
+    .unwrap();
+    let d = dir.path().join("plots");
+    let out = railsong(&[
+        "sweep",
+        patch.to_str().unwrap(),
+        "--set",
+        "stages.amp.r_fb=10k..1M",
+        "--steps",
+        "3",
+        "--log",
+        "--figure",
+        "thd_percent,peak_v",
+        "--plots",
+        "--out",
+        d.to_str().unwrap(),
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let svg = std::fs::read_to_string(d.join("out-sweep-peak_v.svg")).unwrap();
+    plot_xml::parse(&svg).unwrap();
+    assert!(svg.contains(">peak (V)<"), "y axis named with its unit");
+    assert!(
+        svg.contains(">stages.amp.r_fb (ohm)<"),
+        "x axis named with its unit"
+    );
+    assert!(svg.contains(">100k<"), "engineering ticks");
+    assert!(!svg.contains(">100000<"));
 }

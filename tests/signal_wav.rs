@@ -586,8 +586,15 @@ fn overwrite_guard_refuses_foreign_files_unless_forced() {
     );
     // A new name is fine and gets recorded; rewriting it later needs no force.
     out.write("new.wav", sp, &[0.0; 10]).unwrap();
-    let manifest = fs::read_to_string(dir.path().join(MANIFEST_NAME)).unwrap();
-    assert_eq!(manifest.lines().collect::<Vec<_>>(), vec!["new.wav"]);
+    let listed = |dir: &std::path::Path| -> Vec<String> {
+        fs::read_to_string(dir.join(MANIFEST_NAME))
+            .unwrap()
+            .lines()
+            .filter(|l| !l.starts_with('#'))
+            .map(|l| l.split_whitespace().next().unwrap().to_string())
+            .collect()
+    };
+    assert_eq!(listed(dir.path()), vec!["new.wav"]);
     let mut again = OutputDir::open(dir.path(), false).unwrap();
     assert!(again.wrote("new.wav"));
     again.write("new.wav", sp, &[0.5; 10]).unwrap();
@@ -599,11 +606,10 @@ fn overwrite_guard_refuses_foreign_files_unless_forced() {
     assert!(OutputDir::open(dir.path(), false)
         .unwrap()
         .wrote("mine.wav"));
-    let manifest = fs::read_to_string(dir.path().join(MANIFEST_NAME)).unwrap();
     assert_eq!(
-        manifest.lines().count(),
-        2,
-        "each name listed once: {manifest}"
+        listed(dir.path()),
+        vec!["mine.wav", "new.wav"],
+        "each name listed once"
     );
 }
 
@@ -649,14 +655,18 @@ fn file_name_filter() {
 
 #[test]
 fn listening_gain_hits_target_with_peak_guard() {
-    // A sine of peak A has RMS A / sqrt(2) (closed form).
+    // A sine of peak A has RMS A / sqrt(2) (closed form); dBFS as the figures give it
+    // (AES17: a full-scale sine is 0 dBFS, RMS in dBFS = 20 log10(sqrt 2 rms / fs)), so a
+    // sine brought to -20 dBFS has its peak at -20 dBFS.
     let fs = 10.0;
     let x: Vec<f64> = (0..48_000)
         .map(|i| (2.0 * PI * 1000.0 * i as f64 / 48_000.0).sin())
         .collect();
     let g = listen_gain(&x, -20.0, fs);
-    let rms_db = 20.0 * (g / 2f64.sqrt() / fs).log10();
+    let rms_db = 20.0 * (2f64.sqrt() * g / 2f64.sqrt() / fs).log10();
     assert!((rms_db + 20.0).abs() < 1e-9, "{rms_db}");
+    let peak_db = 20.0 * (g / fs).log10();
+    assert!((peak_db + 20.0).abs() < 1e-9, "{peak_db}");
     // A sparse click train: crest factor 20 log10(sqrt(1000)) = 30 dB, so -20 dBFS RMS would
     // put the peak at +10 dBFS; the guard holds it at -1 dBFS.
     let mut clicks = vec![0.0; 48_000];

@@ -4,7 +4,7 @@
 use std::path::Path;
 use std::process::Command;
 
-use railsong::study::compare::{crossfade_gains, Alternation, Side};
+use railsong::study::compare::{correlation, crossfade_gains, Alternation, Side};
 
 const BIN: &str = env!("CARGO_BIN_EXE_railsong");
 
@@ -43,6 +43,9 @@ from = "amp"
 
 [variants.double]
 "stages.amp.r_fb" = "20k"
+
+[variants.shifted]
+"stages.amp.c_fb" = "10n"
 "#;
 
 fn write_patch(dir: &Path) -> std::path::PathBuf {
@@ -127,10 +130,12 @@ fn doubled_feedback_is_matched_by_minus_6_db() {
     assert!(below > 40.0, "difference only {below} dB below");
 }
 
-// Equal-power crossfade (common practice): g_out = cos(pi u / 2), g_in = sin(pi u / 2), so
-// g_out^2 + g_in^2 = 1 at every sample (sin^2 + cos^2 = 1). Boundaries at k * segment.
+// The crossfade law for sides of equal RMS and correlation rho keeps the mix's mean square:
+// E[(g a + h b)^2] = (g^2 + h^2 + 2 rho g h) E[a^2] = E[a^2] at every sample (expansion of
+// the square [D]); at rho = 1 that is equal gain, g + h = 1, at rho = 0 equal power,
+// g^2 + h^2 = 1 (common practice). Boundaries at k * segment.
 #[test]
-fn alternation_layout_and_equal_power() {
+fn alternation_layout_and_crossfade_law() {
     let rate = 48_000.0;
     let frames = 5 * 48_000 + 1234;
     let seg_s = 1.0;
@@ -147,12 +152,15 @@ fn alternation_layout_and_equal_power() {
     }
     assert_eq!(segs[5].end, frames);
 
+    // constant sides of opposite sign: correlation -1, held to 0 (equal power)
     let a = vec![1.0; frames];
     let b = vec![-2.0; frames];
-    let mix = alt.render(&a, &b).unwrap();
+    assert!((correlation(&a, &b) + 1.0).abs() < 1e-12);
+    let (mix, rho) = alt.render(&a, &b).unwrap();
+    assert_eq!(rho, 0.0);
     let mut fade_samples = 0;
     for (n, &m) in mix.iter().enumerate() {
-        let (ga, gb) = alt.gains(n);
+        let (ga, gb) = alt.gains(n, rho);
         assert!((ga * ga + gb * gb - 1.0).abs() < 1e-12, "n {n}: {ga} {gb}");
         assert!((m - (ga - 2.0 * gb)).abs() < 1e-12);
         if alt.in_fade(n) {
@@ -161,10 +169,8 @@ fn alternation_layout_and_equal_power() {
             let k = (n + fade / 2) / 48_000;
             let start = k * 48_000 - fade / 2;
             let u = ((n - start) as f64 + 0.5) / fade as f64;
-            let (out, inn) = (
-                (std::f64::consts::FRAC_PI_2 * u).cos(),
-                (std::f64::consts::FRAC_PI_2 * u).sin(),
-            );
+            let d = ((1.0 - u) * (1.0 - u) + u * u).sqrt();
+            let (out, inn) = ((1.0 - u) / d, u / d);
             let (g_prev, g_next) = if k % 2 == 1 { (ga, gb) } else { (gb, ga) };
             assert!((g_prev - out).abs() < 1e-12 && (g_next - inn).abs() < 1e-12);
         } else {
@@ -177,11 +183,79 @@ fn alternation_layout_and_equal_power() {
     assert_eq!(fade_samples, 5 * fade);
     // symmetric about each boundary: the two samples either side swap their gains
     let bnd = 48_000;
-    let (a1, b1) = alt.gains(bnd - 1);
-    let (a2, b2) = alt.gains(bnd);
+    let (a1, b1) = alt.gains(bnd - 1, 0.3);
+    let (a2, b2) = alt.gains(bnd, 0.3);
     assert!((a1 - b2).abs() < 1e-12 && (b1 - a2).abs() < 1e-12);
-    let (o, i) = crossfade_gains(0.5);
-    assert!((o - i).abs() < 1e-15 && (o * o + i * i - 1.0).abs() < 1e-15);
+    // the law at every correlation
+    for rho in [0.0, 0.3, 0.7, 1.0] {
+        for i in 0..=20 {
+            let u = i as f64 / 20.0;
+            let (g, h) = crossfade_gains(u, rho);
+            assert!((g * g + h * h + 2.0 * rho * g * h - 1.0).abs() < 1e-12);
+        }
+    }
+    let (o, i) = crossfade_gains(0.5, 1.0);
+    assert!((o - 0.5).abs() < 1e-15 && (i - 0.5).abs() < 1e-15);
+}
+
+/// Peak |x| of a WAV file, in the file's own units (integer codes or floats).
+fn wav_peak(path: &Path) -> f64 {
+    let mut r = hound::WavReader::open(path).unwrap();
+    match r.spec().sample_format {
+        hound::SampleFormat::Float => r
+            .samples::<f32>()
+            .fold(0.0f64, |m, v| m.max(f64::from(v.unwrap()).abs())),
+        hound::SampleFormat::Int => r
+            .samples::<i32>()
+            .fold(0.0f64, |m, v| m.max(f64::from(v.unwrap()).abs())),
+    }
+}
+
+// The alternating file must not change level at a switch (issue 12): its peak exceeds the
+// larger side's by at most 0.1 dB. B here is the stage with a capacitor across its feedback
+// resistor (corner 1.59 kHz: at 1 kHz its output lags A's by atan(1 / 1.59) = 32 degrees
+// and is 1.5 dB lower; first-order low-pass, textbook), so the sides are correlated but not
+// identical. With an equal-power fade two correlated sides add up to sqrt(2) (+3 dB) at the
+// middle of a fade.
+#[test]
+fn alternating_file_keeps_the_level_at_a_switch() {
+    let dir = tempfile::tempdir().unwrap();
+    let patch = write_patch(dir.path());
+    let out = dir.path().join("ab");
+    let st = Command::new(BIN)
+        .args(["compare"])
+        .arg(&patch)
+        .args([
+            "--a",
+            "base",
+            "--b",
+            "shifted",
+            "--segment",
+            "0.1s",
+            "--out",
+        ])
+        .arg(&out)
+        .output()
+        .unwrap();
+    assert!(
+        st.status.success(),
+        "{}",
+        String::from_utf8_lossy(&st.stderr)
+    );
+    let pa = wav_peak(&out.join("out-A.wav"));
+    let pb = wav_peak(&out.join("out-B-matched.wav"));
+    let pab = wav_peak(&out.join("out-AB.wav"));
+    let over = 20.0 * (pab / pa.max(pb)).log10();
+    assert!(
+        over <= 0.1,
+        "alternating peak {pab} V vs sides {pa} / {pb} V: {over:+.3} dB"
+    );
+    // and the correlation that chose the law is reported: cos 32 degrees, about 0.85
+    let j: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("compare.json")).unwrap()).unwrap();
+    let rho = j["outputs"][0]["crossfade_correlation"].as_f64().unwrap();
+    let want = (1.0f64 / (1.0 + (1.0 / 1.5915f64).powi(2))).sqrt();
+    assert!((rho - want).abs() < 0.02, "{rho} vs {want}");
 }
 
 // `render` writes every variant beside the base, the variant's name in each file name.

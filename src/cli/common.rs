@@ -7,7 +7,7 @@ use railsong::engine::Run;
 use railsong::measure;
 use railsong::model::Patch;
 use railsong::render::{self, RenderError, RenderOptions};
-use railsong::signal::{Depth, SignalError};
+use railsong::signal::{Depth, OutputDir, SignalError};
 use railsong::study::StudyError;
 use railsong::units::fmt_eng;
 
@@ -34,6 +34,20 @@ pub(crate) fn signal_error(e: SignalError) -> Failure {
         SignalError::Io { .. } | SignalError::Stream(_) => failure_io(e),
         other => Failure::bad_input(other),
     }
+}
+
+/// Open and lock an output folder; when another railsong run holds it, say so on stderr and
+/// wait for it.
+pub(crate) fn open_folder(dir: &Path, force: bool) -> Result<OutputDir, Failure> {
+    OutputDir::open_with(dir, force, &mut |d| {
+        use std::io::Write;
+        let _ = writeln!(
+            std::io::stderr(),
+            "railsong: {} is busy (another railsong run is writing into it); waiting for it to finish",
+            d.display()
+        );
+    })
+    .map_err(signal_error)
 }
 
 pub(crate) fn analysis_settings(harmonics: usize, weighting: &str) -> Result<Settings, Failure> {
@@ -195,7 +209,10 @@ pub(crate) fn check_length(patch: &Patch, long: bool) -> Result<(), Failure> {
 }
 
 pub(crate) fn db_or_dash(v: Option<f64>, what: &str) -> String {
-    v.map_or(format!("- {what}"), |d| format!("{d:+.1} dB {what}"))
+    match v {
+        Some(d) if d.is_finite() => format!("{d:+.1} dB {what}"),
+        _ => format!("- {what}"),
+    }
 }
 
 pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::EventSeconds>) {
@@ -214,7 +231,7 @@ pub(crate) fn print_events(events: &std::collections::BTreeMap<String, measure::
         if let Some(t) = e.first_clip_s {
             parts.push(format!("first clip at {}", fmt_eng(t.max(0.0), "s")));
         }
-        println!(
+        say!(
             "      {stage}: {}",
             if parts.is_empty() {
                 "clean".to_string()
@@ -291,7 +308,7 @@ pub(crate) fn print_alias(m: &measure::Measurement, patch: &Patch) {
             continue;
         };
         let Some(dbc) = a.dbc else {
-            println!(
+            say!(
                 "  alias of {}: {}",
                 o.name,
                 a.note.as_deref().unwrap_or("not estimated")
@@ -311,7 +328,7 @@ pub(crate) fn print_alias(m: &measure::Measurement, patch: &Patch) {
         } else {
             "dB in band, measured on this patch (a stretch after the settle time against the same stretch with stages stepping 4 times finer: the in-band difference re the signal, smooth linear differences taken out, an upper bound; floor about -85 dB)".to_string()
         };
-        println!(
+        say!(
             "  alias of {} at x{k}: {dbc:.1} {how}{}",
             o.name,
             if stages.is_empty() {
@@ -330,7 +347,7 @@ pub(crate) fn print_alias(m: &measure::Measurement, patch: &Patch) {
             } else {
                 "already at the highest patch.oversample (16)".to_string()
             };
-            println!(
+            say!(
                 "  warning: {} holds {dbc:.1} dB of alias, above {:.0} dB{stage}: {advice}",
                 o.name,
                 railsong::alias::WARN_DBC

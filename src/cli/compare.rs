@@ -7,7 +7,7 @@ use railsong::engine::Run;
 use railsong::measure;
 use railsong::measure::Measurement;
 use railsong::model::Patch;
-use railsong::signal::{self, OutputDir, WavSpec};
+use railsong::signal::{self, WavSpec};
 use railsong::study::compare::{self, Alternation, OutputComparison};
 use railsong::units::{self, fmt_eng};
 
@@ -43,6 +43,8 @@ pub(crate) struct Compared {
     pub ma: Measurement,
     /// Patch B.
     pub pb: Patch,
+    /// Figures of B.
+    pub mb: Measurement,
     /// One comparison per output.
     pub results: Vec<OutputComparison>,
     /// How B was matched.
@@ -114,6 +116,7 @@ pub(crate) fn compare_sides(
         ra,
         ma,
         pb,
+        mb,
         results,
         matching,
         layout,
@@ -125,10 +128,13 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         .map_err(|e| Failure::bad_input(format!("--segment {}: {e}", args.segment)))?;
     // Refuse early, before rendering, when the folder holds files railsong did not write.
     let pa = load_side(args.patch, args.a, args.sets)?;
+    // Both sides are held in memory whole: the length limit holds here as in render.
+    super::common::check_length(&pa, args.flags.long)?;
+    let fade = args.flags.edge_fade(pa.frames(), pa.rate)?;
     let dir = args.flags.out.clone().unwrap_or_else(|| {
         default_dir(&format!("{}-{}-vs-{}", stem_of(args.patch), args.a, args.b))
     });
-    let mut folder = OutputDir::open(&dir, args.flags.force).map_err(signal_error)?;
+    let mut folder = super::common::open_folder(&dir, args.flags.force)?;
     let files = |o: &str| {
         [
             format!("{o}-A.wav"),
@@ -145,6 +151,17 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     folder
         .check_writable("compare.json")
         .map_err(signal_error)?;
+    for o in &pa.outputs {
+        let spec = WavSpec {
+            rate: pa.rate.round() as u32,
+            channels: 1,
+            depth: depth_of(args.flags),
+            full_scale: pa.full_scale,
+            dither_seed: 0,
+        };
+        signal::check_fits(&format!("{}-A.wav", o.name), &spec, pa.frames() as u64)
+            .map_err(|e| Failure::bad_input(format!("outputs.{}: {e}", o.name)))?;
+    }
 
     let Compared {
         ra,
@@ -162,6 +179,20 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         args.matching,
         !args.json,
     )?;
+    // The plots first, so that their names are checked before any file is written.
+    let mut plots = Vec::new();
+    if args.flags.plots {
+        for (side, p, label) in [("A", &pa, args.a), ("B", &pb, args.b)] {
+            for f in
+                railsong::report::side_plots(p, None, Some((side, label))).map_err(render_error)?
+            {
+                folder
+                    .check_writable(&f.file_name())
+                    .map_err(signal_error)?;
+                plots.push(f);
+            }
+        }
+    }
     let mut results: Vec<OutputComparison> = Vec::new();
     for (oa, c) in ra.outputs.iter().zip(compared) {
         let spec = WavSpec {
@@ -183,13 +214,10 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             (&fab, &c.alternating),
             (&fd, &c.difference),
         ] {
-            if g == 1.0 {
-                folder.write(name, spec, data)
-            } else {
-                let s: Vec<f64> = data.iter().map(|x| x * g).collect();
-                folder.write(name, spec, &s)
-            }
-            .map_err(signal_error)?;
+            // faded at the edges (the comparison's figures come from the unfaded renders)
+            let mut s: Vec<f64> = data.iter().map(|x| x * g).collect();
+            fade.apply(0, &mut s);
+            folder.write(name, spec, &s).map_err(signal_error)?;
         }
         results.push(c);
     }
@@ -204,21 +232,16 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
     folder
         .write_text("compare.json", &text)
         .map_err(signal_error)?;
-    if args.flags.plots {
-        for (side, p) in [("A", &pa), ("B", &pb)] {
-            let figs = railsong::report::plots(p, None).map_err(render_error)?;
-            for f in figs {
-                folder
-                    .write_text(&format!("{}-{side}-{}.svg", f.output, f.kind), &f.svg)
-                    .map_err(signal_error)?;
-            }
-        }
+    for f in &plots {
+        folder
+            .write_text(&f.file_name(), &f.svg)
+            .map_err(signal_error)?;
     }
     if args.json {
-        println!("{text}");
+        say!("{text}");
         return Ok(());
     }
-    println!(
+    say!(
         "{}: A = {}, B = {} -> {}",
         pa.title,
         args.a,
@@ -226,9 +249,9 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
         dir.display()
     );
     for c in &results {
-        println!();
-        println!("output {}", c.output);
-        println!(
+        say!();
+        say!("output {}", c.output);
+        say!(
             "  B matched to A by {}: gain {:+.2} dB",
             match c.matched_by {
                 compare::Matching::Rms => "RMS of the whole output",
@@ -237,17 +260,19 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             c.gain_db
         );
         match c.difference_below_db {
-            Some(d) => println!(
+            Some(d) => say!(
                 "  difference (A minus matched B) sits {d:.1} dB below the signal ({:.1} dBFS)",
                 c.difference_dbfs.unwrap_or(f64::NEG_INFINITY)
             ),
-            None => println!("  difference (A minus matched B) is silent: the two are identical"),
+            None => say!("  difference (A minus matched B) is silent: the two are identical"),
         }
-        println!(
-            "  {}-AB.wav alternates in {} segments with {} equal-power crossfades:",
+        say!(
+            "  {}-AB.wav alternates in {} segments with {} crossfades for sides of correlation \
+             {:.3} (1: equal gain, 0: equal power):",
             c.output,
             fmt_eng(seg, "s"),
-            fmt_eng(FADE_S, "s")
+            fmt_eng(FADE_S, "s"),
+            c.crossfade_correlation
         );
         let key: Vec<String> = c
             .segments
@@ -255,12 +280,12 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             .map(|s| format!("{} {:.2}-{:.2} s", s.side.label(), s.start_s, s.end_s))
             .collect();
         for line in key.chunks(6) {
-            println!("    {}", line.join(", "));
+            say!("    {}", line.join(", "));
         }
-        println!("  {:<16} {:>12} {:>12} {:>12}", "figure", "A", "B", "B - A");
+        say!("  {:<16} {:>12} {:>12} {:>12}", "figure", "A", "B", "B - A");
         for r in &c.figures {
             let v = |x: Option<f64>| x.map_or("-".to_string(), |x| format!("{x:.4}"));
-            println!(
+            say!(
                 "  {:<16} {:>12} {:>12} {:>12}  {}",
                 r.figure,
                 v(r.a),
@@ -270,10 +295,10 @@ pub(crate) fn cmd_compare(args: &CompareArgs) -> Result<(), Failure> {
             );
         }
         if c.changes.is_empty() {
-            println!("  no figure moved beyond its threshold");
+            say!("  no figure moved beyond its threshold");
         }
         for s in &c.changes {
-            println!("  - {s}");
+            say!("  - {s}");
         }
     }
     Ok(())

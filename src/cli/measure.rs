@@ -7,27 +7,27 @@ use railsong::analysis::{Settings, TestSignal};
 use railsong::measure;
 use railsong::model::{Patch, Wave};
 use railsong::report;
-use railsong::signal::OutputDir;
 use railsong::units::{self, fmt_eng, Level};
 
 use super::common::{
-    check_length, file_peak_note, measure_streamed, print_alias, print_events, render_error,
-    run_patch, signal_error,
+    check_length, file_peak_note, load_side, measure_streamed, print_alias, print_events,
+    render_error, run_patch, signal_error,
 };
-use super::{load, Failure};
+use super::Failure;
 
 pub(crate) fn cmd_measure(
     path: &Path,
+    variant: Option<&str>,
     sets: &[String],
     output: Option<&str>,
     (json, csv, long): (bool, bool, bool),
     settings: &Settings,
     plots: Option<(PathBuf, bool)>,
 ) -> Result<(), Failure> {
-    let patch = load(path, sets)?;
+    let patch = load_side(path, variant.unwrap_or("base"), sets)?;
     check_length(&patch, long)?;
     let mut folder = match &plots {
-        Some((dir, force)) => Some(OutputDir::open(dir, *force).map_err(signal_error)?),
+        Some((dir, force)) => Some(super::common::open_folder(dir, *force)?),
         None => None,
     };
     if let Some(name) = output {
@@ -54,7 +54,7 @@ pub(crate) fn cmd_measure(
                 .map_err(signal_error)?;
         }
         if !json && !csv {
-            println!(
+            say!(
                 "{} plot(s) written to {}",
                 figs.len(),
                 folder.path().display()
@@ -62,9 +62,9 @@ pub(crate) fn cmd_measure(
         }
     }
     if json {
-        println!("{}", measure::to_json(&m));
+        say!("{}", measure::to_json(&m));
     } else if csv {
-        print!("{}", measure::to_csv(&m));
+        say_raw!("{}", measure::to_csv(&m));
     } else {
         print_table(&patch, &m);
     }
@@ -72,19 +72,22 @@ pub(crate) fn cmd_measure(
 }
 
 pub(crate) fn opt(v: Option<f64>, unit: &str, digits: usize) -> String {
-    v.map_or("-".into(), |x| format!("{x:.digits$}{unit}"))
+    match v {
+        Some(x) if x.is_finite() => format!("{x:.digits$}{unit}"),
+        _ => "-".into(),
+    }
 }
 
 pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
-    println!("{}", patch.title);
+    say!("{}", patch.title);
     for o in &patch.outputs {
         let Some(r) = m.outputs.get(&o.name) else {
             continue;
         };
         let f = &r.figures;
-        println!();
-        println!("output {} (from {})", o.name, r.from);
-        println!(
+        say!();
+        say!("output {} (from {})", o.name, r.from);
+        say!(
             "  level       peak {}{}  rms {} (AC)  dc {}  crest {}  ({} / {} / {})",
             opt(f.peak_v, " V", 3),
             file_peak_note(f),
@@ -95,13 +98,13 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
             opt(f.rms_dbv, " dBV", 1),
             opt(f.rms_dbfs, " dBFS", 1),
         );
-        println!(
+        say!(
             "  headroom    {} to the positive swing, {} to the negative",
             opt(f.headroom_pos_db, " dB", 1),
             opt(f.headroom_neg_db, " dB", 1)
         );
         if f.thd_percent.is_some() || f.thdn_db.is_some() {
-            println!(
+            say!(
                 "  distortion  fundamental {}  THD {} ({})  THD+N {}  SINAD {}  ENOB {}",
                 opt(f.fundamental_hz, " Hz", 2),
                 opt(f.thd_percent, " %", 4),
@@ -123,18 +126,18 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
                 })
                 .collect();
             if !h.is_empty() {
-                println!("  harmonics   {} (dBc)", h.join("  "));
+                say!("  harmonics   {} (dBc)", h.join("  "));
             }
         }
         if f.imd_smpte_percent.is_some() {
-            println!(
+            say!(
                 "  IMD         SMPTE RP120 {} ({})",
                 opt(f.imd_smpte_percent, " %", 4),
                 opt(f.imd_smpte_db, " dB", 1)
             );
         }
         if f.imd_ccif_percent.is_some() {
-            println!(
+            say!(
                 "  IMD         twin tone d2 {} ({}), 2f1-f2 {}, 2f2-f1 {}",
                 opt(f.imd_ccif_percent, " %", 4),
                 opt(f.imd_ccif_db, " dB", 1),
@@ -144,14 +147,14 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
         }
         let n = &r.noise;
         if n.noise_rms_v.is_some() {
-            println!(
+            say!(
                 "  noise       {} ({}), A-weighted {} ({}); idle channel, 20 Hz - 20 kHz",
                 opt(n.noise_rms_v.map(|v| v * 1e6), " uV rms", 2),
                 opt(n.noise_dbu, " dBu", 1),
                 opt(n.noise_a_rms_v.map(|v| v * 1e6), " uV rms", 2),
                 opt(n.noise_a_dbu, " dBu", 1),
             );
-            println!(
+            say!(
                 "  SNR         {} re 10 Vpp ({} A-weighted){}",
                 opt(n.snr_ref_db, " dB", 1),
                 opt(n.snr_ref_a_db, " dB", 1),
@@ -159,15 +162,15 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
                     .map_or(String::new(), |d| format!(", {d:.1} dB re this signal"))
             );
         }
-        println!("  events");
+        say!("  events");
         print_events(&r.events);
         for n in &f.notes {
-            println!("  note        {n}");
+            say!("  note        {n}");
         }
         if f.window.is_none() {
             continue;
         }
-        println!(
+        say!(
             "  taken with  window {}, FFT {}, band {}, weighting {}",
             f.window.as_deref().unwrap_or("-"),
             f.fft_len.map_or("-".into(), |n| n.to_string()),
@@ -177,8 +180,8 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
         );
     }
     let s = &m.settings;
-    println!();
-    println!(
+    say!();
+    say!(
         "settings: {} x{}, {} rendered, calibration {} = 0 dBFS, circuit noise {}",
         fmt_eng(s.rate_hz, "Hz"),
         s.oversample,
@@ -186,7 +189,7 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
         fmt_eng(s.full_scale_v, "V"),
         if s.noise { "on" } else { "off" }
     );
-    println!(
+    say!(
         "  spectral captures start at {} (settle time); THD re the fundamental, THD+N and SINAD re the whole signal in band (SINAD = -THD+N), rms is AC",
         fmt_eng(s.settle_s, "s")
     );
@@ -212,22 +215,29 @@ pub(crate) fn parse_sweep_spec(spec: &str) -> Result<(String, String, String), F
     ))
 }
 
+#[allow(clippy::too_many_arguments)]
 pub(crate) fn cmd_level_sweep(
     path: &Path,
+    variant: Option<&str>,
     sets: &[String],
     spec: &str,
     steps: usize,
     settings: &Settings,
-    json: bool,
-    csv: bool,
+    (json, csv): (bool, bool),
+    plots: Option<(PathBuf, bool)>,
 ) -> Result<(), Failure> {
+    let side = variant.unwrap_or("base");
     let (src, from, to) = parse_sweep_spec(spec)?;
     if steps < 2 {
         return Err(Failure::bad_input(format!(
             "--steps {steps}: expected 2 or more"
         )));
     }
-    let base = load(path, sets)?;
+    let base = load_side(path, side, sets)?;
+    let mut folder = match &plots {
+        Some((dir, force)) => Some(super::common::open_folder(dir, *force)?),
+        None => None,
+    };
     if !base.sources.iter().any(|s| s.name == src) {
         return Err(Failure::bad_input(format!(
             "--level-sweep: no source '{src}' in {}",
@@ -266,7 +276,7 @@ pub(crate) fn cmd_level_sweep(
     let at_level = |v: f64| -> Result<measure::Measurement, Failure> {
         let mut s = sets.to_vec();
         s.push(format!("sources.{src}.amp={v} {unit}"));
-        let patch = load(path, &s)?;
+        let patch = load_side(path, side, &s)?;
         let run = run_patch(&patch, false, false)?;
         let mut m = measure::measure(&patch, &run, None, settings, None, tone);
         railsong::render::complete_thd(&patch, &mut m, settings, tone).map_err(render_error)?;
@@ -308,6 +318,54 @@ pub(crate) fn cmd_level_sweep(
         };
         let at1 = found(0.01);
         let at01 = found(0.001);
+        if let Some(folder) = folder.as_mut() {
+            let pts: Vec<(f64, f64)> = thd_pts
+                .iter()
+                .map(|&(v, t)| (v, 100.0 * t))
+                .filter(|&(_, t)| t > 0.0)
+                .collect();
+            // the crossings found on the circuit, marked only where found
+            let crossings: Vec<railsong::plot::Crossing> = [(at01, 0.1), (at1, 1.0)]
+                .into_iter()
+                .filter_map(|(at, y)| {
+                    at.map(|x| railsong::plot::Crossing {
+                        x,
+                        y,
+                        label: format!("{y} % THD at {}", fmt_eng(x, unit)),
+                    })
+                })
+                .collect();
+            let title = format!("{name}: THD against level of {src}");
+            let caption = format!(
+                "{} points; crossings found on the circuit within 0.1 % in level",
+                pts.len()
+            );
+            let series = [railsong::plot::SweepSeries {
+                name: "THD",
+                points: &pts,
+            }];
+            if pts.len() >= 2 {
+                let svg = railsong::plot::sweep_svg(&railsong::plot::SweepPlot {
+                    title: &title,
+                    caption: &caption,
+                    x: railsong::plot::AxisSpec::log(&format!("Level of {src}"), unit),
+                    y: railsong::plot::AxisSpec::log("THD", "%"),
+                    series: &series,
+                    crossings: &crossings,
+                    threshold: Some(railsong::plot::Threshold {
+                        y: 1.0,
+                        label: "1 % THD".into(),
+                    }),
+                });
+                if let Ok(svg) = svg {
+                    let file = format!("{name}-level-sweep.svg");
+                    folder.write_text(&file, &svg).map_err(signal_error)?;
+                    if !json && !csv {
+                        say!("plot written to {}", folder.path().join(&file).display());
+                    }
+                }
+            }
+        }
         let unmeasured = rows
             .iter()
             .filter(|(_, m)| {
@@ -333,24 +391,24 @@ pub(crate) fn cmd_level_sweep(
                 }),
             );
         } else if csv {
-            println!("output,level_{},thd_percent,thdn_db", unit.replace(' ', ""));
+            say!("output,level_{},thd_percent,thdn_db", unit.replace(' ', ""));
             for (v, t, n) in &pts {
-                println!(
+                say!(
                     "{name},{v},{},{}",
                     t.map_or(String::new(), |x| x.to_string()),
                     n.map_or(String::new(), |x| x.to_string())
                 );
             }
         } else {
-            println!("output {name}: level sweep of source {src}");
-            println!(
+            say!("output {name}: level sweep of source {src}");
+            say!(
                 "  {:>12}  {:>12}  {:>10}",
                 format!("level {unit}"),
                 "THD %",
                 "THD+N dB"
             );
             for (v, t, n) in &pts {
-                println!(
+                say!(
                     "  {:>12.4}  {:>12}  {:>10}",
                     v,
                     t.map_or("-".into(), |x| format!("{x:.5}")),
@@ -359,23 +417,23 @@ pub(crate) fn cmd_level_sweep(
             }
             let say = |x: Option<f64>, th: &str| {
                 match x {
-                Some(l) => println!(
+                Some(l) => say!(
                     "  THD reaches {th} at {l:.4} {unit} (found on the circuit within 0.1 %)"
                 ),
-                None if unmeasured > 0 => println!(
+                None if unmeasured > 0 => say!(
                     "  THD does not cross {th} where it was measured (not measured at {unmeasured} of {} levels; see measure's notes)",
                     rows.len()
                 ),
-                None => println!("  THD does not cross {th} in this range"),
+                None => say!("  THD does not cross {th} in this range"),
             }
             };
             say(at01, "0.1 %");
             say(at1, "1 %");
-            println!();
+            say!();
         }
     }
     if json {
-        println!(
+        say!(
             "{}",
             serde_json::to_string_pretty(&serde_json::Value::Object(json_out)).unwrap_or_default()
         );

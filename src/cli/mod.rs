@@ -4,6 +4,9 @@ use std::path::{Path, PathBuf};
 
 use clap::{Parser, Subcommand};
 
+#[macro_use]
+pub(crate) mod out;
+
 mod check;
 mod common;
 mod compare;
@@ -62,6 +65,9 @@ enum Command {
     Check {
         /// The patch file.
         patch: PathBuf,
+        /// Use this [variants.NAME] of the patch instead of the base.
+        #[arg(long, value_name = "NAME")]
+        variant: Option<String>,
         /// Override a value by dotted path, e.g. --set stages.sum.feedback.r=47k (repeatable).
         #[arg(long = "set", value_name = "PATH=VALUE")]
         sets: Vec<String>,
@@ -89,6 +95,9 @@ enum Command {
     Measure {
         /// The patch file.
         patch: PathBuf,
+        /// Use this [variants.NAME] of the patch instead of the base.
+        #[arg(long, value_name = "NAME")]
+        variant: Option<String>,
         /// Only this output.
         #[arg(long, value_name = "NAME")]
         output: Option<String>,
@@ -132,6 +141,9 @@ enum Command {
     Report {
         /// The patch file.
         patch: PathBuf,
+        /// Use this [variants.NAME] of the patch instead of the base.
+        #[arg(long, value_name = "NAME", conflicts_with_all = ["a", "b"])]
+        variant: Option<String>,
         /// Compare: side A (`base` or a [variants.NAME]); needs --b.
         #[arg(long, value_name = "NAME", requires = "b")]
         a: Option<String>,
@@ -248,16 +260,23 @@ enum Command {
         force: bool,
     },
     /// Monte Carlo over every resistor and capacitor within its tolerance.
+    #[command(
+        after_help = "With --plots, tolerance writes one SVG per output into --out (default \
+renders/<patch name>/): <output>-tolerance-gain.svg, a histogram of the output's gain change \
+(dB) over the runs. With --render-run N, --plots is ignored and run N is rendered like \
+`render` (WAV files and figures)."
+    )]
     Tolerance {
         /// The patch file.
         patch: PathBuf,
         /// Number of runs.
         #[arg(long, default_value_t = 200)]
         runs: usize,
-        /// Resistor tolerance, e.g. 1% (default: that of --series, else 1 %).
+        /// Resistor tolerance in percent, e.g. 1% or 5 (a bare number is percent; default:
+        /// that of --series, else 1 %).
         #[arg(long, value_name = "PERCENT")]
         tol: Option<String>,
-        /// Capacitor tolerance (default: the resistor tolerance).
+        /// Capacitor tolerance in percent (default: the resistor tolerance).
         #[arg(long, value_name = "PERCENT")]
         cap_tol: Option<String>,
         /// Take the resistor tolerance from a series: E12 10 %, E24 5 %, E48 2 %, E96 1 %,
@@ -290,8 +309,9 @@ pub(crate) struct RenderFlags {
     /// Sample format of the WAV files: 16 (TPDF-dithered), 24 or float.
     #[arg(long, default_value = "24", value_parser = ["16", "24", "float"])]
     pub(crate) depth: String,
-    /// Scale each file so its RMS sits at this level in dBFS (peaks kept below -1 dBFS)
-    /// instead of the patch calibration; for listening, e.g. --listen -18.
+    /// Scale each file so its RMS sits at this level in dBFS, as the figures give it (a
+    /// full-scale sine is 0 dBFS; peaks kept below -1 dBFS) instead of the patch calibration;
+    /// for listening, e.g. --listen -18.
     #[arg(long, value_name = "DBFS", allow_negative_numbers = true)]
     pub(crate) listen: Option<f64>,
     /// Overwrite files in the folder that railsong did not write.
@@ -303,6 +323,74 @@ pub(crate) struct RenderFlags {
     /// Allow renders longer than 10 minutes.
     #[arg(long)]
     pub(crate) long: bool,
+    /// Fade each written file in and out over this time so it does not click at its start
+    /// and end (0 switches it off); the figures come from the unfaded signal.
+    #[arg(long, value_name = "TIME", default_value = "5ms")]
+    pub(crate) fade: String,
+}
+
+impl RenderFlags {
+    /// The edge fade of a file of `frames` frames at `rate` Hz.
+    pub(crate) fn edge_fade(
+        &self,
+        frames: usize,
+        rate: f64,
+    ) -> Result<railsong::signal::EdgeFade, Failure> {
+        let t = railsong::units::parse_time(&self.fade).map_err(|e| {
+            Failure::bad_input(format!(
+                "--fade {}: {e}; expected a time of 0 or more, e.g. 5ms",
+                self.fade
+            ))
+        })?;
+        if !(t.is_finite() && t >= 0.0) {
+            return Err(Failure::bad_input(format!(
+                "--fade {}: expected a time of 0 or more, e.g. 5ms",
+                self.fade
+            )));
+        }
+        Ok(railsong::signal::EdgeFade::new(frames, rate, t))
+    }
+}
+
+/// One line from a clap error that keeps its detail: the message, the arguments it names
+/// (a missing argument), and "did you mean" for a misspelt command or flag.
+fn clap_message(e: &clap::Error) -> String {
+    use clap::error::{ContextKind, ContextValue};
+    let text = e.to_string();
+    let mut parts: Vec<String> = Vec::new();
+    for line in text.lines() {
+        let l = line.trim();
+        if l.starts_with("Usage:") {
+            break;
+        }
+        if l.is_empty() || l.starts_with("tip:") || l.starts_with("For more information") {
+            continue;
+        }
+        parts.push(
+            l.trim_start_matches("error: ")
+                .trim_end_matches(':')
+                .to_string(),
+        );
+    }
+    let mut msg = match parts.split_first() {
+        Some((head, rest)) if !rest.is_empty() => format!("{head}: {}", rest.join(", ")),
+        Some((head, _)) => head.clone(),
+        None => "bad command line".to_string(),
+    };
+    let suggestions: Vec<String> = [ContextKind::SuggestedSubcommand, ContextKind::SuggestedArg]
+        .into_iter()
+        .filter_map(|k| e.get(k))
+        .flat_map(|v| match v {
+            ContextValue::String(s) => vec![s.clone()],
+            ContextValue::Strings(v) => v.clone(),
+            _ => Vec::new(),
+        })
+        .collect();
+    if !suggestions.is_empty() {
+        let list: Vec<String> = suggestions.iter().map(|s| format!("'{s}'")).collect();
+        msg.push_str(&format!(" (did you mean {}?)", list.join(" or ")));
+    }
+    msg
 }
 
 /// Parse the command line and run the command.
@@ -312,21 +400,21 @@ pub fn run() -> Result<(), Failure> {
         Err(e) => {
             use clap::error::ErrorKind;
             if matches!(e.kind(), ErrorKind::DisplayHelp | ErrorKind::DisplayVersion) {
-                print!("{e}");
+                say_raw!("{e}");
                 return Ok(());
             }
-            let text = e.to_string();
-            let first = text
-                .lines()
-                .find(|l| !l.trim().is_empty())
-                .unwrap_or("bad command line")
-                .trim_start_matches("error: ")
-                .to_string();
-            return Err(Failure::bad_input(format!("{first} (see railsong --help)")));
+            return Err(Failure::bad_input(format!(
+                "{} (see railsong --help)",
+                clap_message(&e)
+            )));
         }
     };
     match cli.command {
-        Command::Check { patch, sets } => check::cmd_check(&patch, &sets),
+        Command::Check {
+            patch,
+            variant,
+            sets,
+        } => check::cmd_check(&patch, variant.as_deref(), &sets),
         Command::Parts { patch, sets } => parts::cmd_parts(patch.as_deref(), &sets),
         Command::Render {
             patch,
@@ -336,12 +424,15 @@ pub fn run() -> Result<(), Failure> {
         } => {
             let p = load(&patch, &sets)?;
             render::check_variants(&patch, &variants)?;
+            // Held to the end: the folder stays locked for the base and every variant.
+            let _folder = render::preflight(&patch, &p, &sets, &variants, &out)?;
             render::render_to(&p, &stem_of(&patch), &out, None)?;
             render::render_variants(&patch, &sets, &variants, &out)
         }
         Command::Demo { out } => demo::cmd_demo(&out),
         Command::Report {
             patch,
+            variant,
             a,
             b,
             segment,
@@ -351,6 +442,7 @@ pub fn run() -> Result<(), Failure> {
             let ab = a.zip(b);
             report::cmd_report(
                 &patch,
+                variant.as_deref(),
                 &out,
                 &sets,
                 ab.as_ref()
@@ -365,6 +457,7 @@ pub fn run() -> Result<(), Failure> {
         } => noise::cmd_noise(&patch, &sets, output.as_deref(), json),
         Command::Measure {
             patch,
+            variant,
             output,
             json,
             csv,
@@ -381,11 +474,19 @@ pub fn run() -> Result<(), Failure> {
             let settings = analysis_settings(harmonics, &weighting)?;
             let plots = plots.then(|| plots_dir.unwrap_or_else(|| default_dir(&stem_of(&patch))));
             match level_sweep {
-                Some(spec) => {
-                    measure::cmd_level_sweep(&patch, &sets, &spec, steps, &settings, json, csv)
-                }
+                Some(spec) => measure::cmd_level_sweep(
+                    &patch,
+                    variant.as_deref(),
+                    &sets,
+                    &spec,
+                    steps,
+                    &settings,
+                    (json, csv),
+                    plots.map(|d| (d, force)),
+                ),
                 None => measure::cmd_measure(
                     &patch,
+                    variant.as_deref(),
                     &sets,
                     output.as_deref(),
                     (json, csv, long),

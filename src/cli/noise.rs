@@ -9,6 +9,10 @@ use railsong::units::fmt_eng;
 use super::common::{failure_io, stream_patch};
 use super::{load, Failure};
 
+/// Longest idle render behind the simulated noise figure, s (the figure is taken from the
+/// last `render::TAIL_MAX` samples: 5.46 s at 48 kHz).
+const NOISE_SIM_MAX_S: f64 = 10.0;
+
 pub(crate) fn cmd_noise(
     path: &Path,
     sets: &[String],
@@ -30,13 +34,13 @@ pub(crate) fn cmd_noise(
         )));
     }
     if json {
-        println!(
+        say!(
             "{}",
             serde_json::to_string_pretty(&picked).map_err(failure_io)?
         );
         return Ok(());
     }
-    println!(
+    say!(
         "{}: noise budget over 20 Hz - 20 kHz at {:.1} C (analytic, from the network's noise gains)",
         patch.title,
         patch.temperature - railsong::units::ZERO_CELSIUS
@@ -44,17 +48,19 @@ pub(crate) fn cmd_noise(
     // The simulated counterpart: the idle render (sources muted) with circuit noise on.
     let mut idle = render::muted(&patch);
     idle.noise = true;
-    idle.length = idle.length.max(2.0);
+    // Long enough for the figure (measured on the kept tail, at most render::TAIL_MAX
+    // samples), never longer: a 3600 s patch must not cost an hour of idle render here.
+    idle.length = idle.length.clamp(2.0, NOISE_SIM_MAX_S);
     let sim = stream_patch(&idle, false, false, &mut |_, _| Ok(()))?;
     for b in picked {
-        println!();
-        print!("{}", railsong::noise::format_budget(b));
+        say!();
+        say_raw!("{}", railsong::noise::format_budget(b));
         let k = patch.outputs.iter().position(|o| o.name == b.output);
         let simulated = k
             .and_then(|k| sim.run.outputs.get(k))
             .map(|o| measure::noise_figures(&o.samples, sim.run.rate));
         if let Some(n) = simulated.and_then(|n| n.noise_rms_v) {
-            println!(
+            say!(
                 "simulated: {:.4} uV rms over 20 Hz - 20 kHz from a {} idle render ({:+.2} dB against the budget)",
                 n * 1e6,
                 fmt_eng(idle.length, "s"),

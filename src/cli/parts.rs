@@ -25,12 +25,10 @@ pub(crate) fn cmd_parts(path: Option<&Path>, sets: &[String]) -> Result<(), Fail
             }
         }
     }
-    println!(
-        "op-amp profiles (built-in figures are typical of their class, not of any one product)"
-    );
-    println!();
+    say!("op-amp profiles (built-in figures are typical of their class, not of any one product)");
+    say!();
     for (p, origin) in &parts {
-        println!("{} ({origin}): {}", p.name, p.about);
+        say!("{} ({origin}): {}", p.name, p.about);
         let lim = |v: Option<f64>, side: &str| {
             v.map_or("no limit".to_string(), |d| {
                 if d >= 0.0 {
@@ -40,7 +38,7 @@ pub(crate) fn cmd_parts(path: Option<&Path>, sets: &[String]) -> Result<(), Fail
                 }
             })
         };
-        println!(
+        say!(
             "    GBW {}  slew {}/us  A0 {}  swing short of rails +{} / -{}  knee {}",
             fmt_eng(p.gbw, "Hz"),
             fmt_eng(p.slew * 1e-6, "V"),
@@ -49,7 +47,7 @@ pub(crate) fn cmd_parts(path: Option<&Path>, sets: &[String]) -> Result<(), Fail
             fmt_eng(p.drop_neg, "V"),
             fmt_eng(p.knee, "V"),
         );
-        println!(
+        say!(
             "    input range: {} / {}{}",
             lim(p.cm_low, "V-"),
             lim(p.cm_high, "V+"),
@@ -59,7 +57,7 @@ pub(crate) fn cmd_parts(path: Option<&Path>, sets: &[String]) -> Result<(), Fail
                 ""
             }
         );
-        println!(
+        say!(
             "    Vos {}  Ib {}  en {}/rtHz (1/f corner {})  in {}/rtHz  Isc {}  max supply {}",
             fmt_eng(p.vos, "V"),
             fmt_eng(p.ib, "A"),

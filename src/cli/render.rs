@@ -30,29 +30,32 @@ pub(crate) fn render_to(
         _ => Depth::Pcm24,
     };
     // Check every file name (and the overwrite guard) before spending time on the render.
-    let suffix = variant.map_or(String::new(), |v| format!("-{v}"));
-    let names: Vec<String> = patch
-        .outputs
-        .iter()
-        .map(|o| {
-            let stem = o
-                .file
-                .clone()
-                .map(|f| f.strip_suffix(".wav").map(str::to_string).unwrap_or(f))
-                .unwrap_or_else(|| o.name.clone());
-            format!("{stem}{suffix}.wav")
-        })
-        .collect();
-    let figures_name = format!("figures{suffix}.json");
-    let mut folder = OutputDir::open(&dir, flags.force).map_err(signal_error)?;
-    for n in names
-        .iter()
-        .map(String::as_str)
-        .chain([figures_name.as_str()])
-    {
-        folder.check_writable(n).map_err(signal_error)?;
-    }
+    let (names, figures_name) = file_names(patch, variant);
+    let spec_of = |o: &railsong::model::Output| WavSpec {
+        rate: patch.rate.round() as u32,
+        channels: 1,
+        depth,
+        full_scale: patch.full_scale,
+        dither_seed: signal::source_seed(patch.seed, &o.name),
+    };
+    // Limits before work: a file a WAV cannot hold is refused before anything is written.
     check_length(patch, flags.long)?;
+    for (o, name) in patch.outputs.iter().zip(&names) {
+        signal::check_fits(name, &spec_of(o), patch.frames() as u64)
+            .map_err(|e| Failure::bad_input(format!("outputs.{}: {e}", o.name)))?;
+    }
+    let mut folder = super::common::open_folder(&dir, flags.force)?;
+    // The plots are computed first so that every file name (and the overwrite guard) is
+    // checked before any file is written.
+    let figs = if flags.plots && variant.is_none() {
+        report::plots(patch, None).map_err(render_error)?
+    } else {
+        Vec::new()
+    };
+    let mut all: Vec<String> = names.clone();
+    all.push(figures_name.clone());
+    all.extend(figs.iter().map(|f| f.file_name()));
+    folder.check_all(&all).map_err(signal_error)?;
     // Listening gains need each output's RMS and peak first: one extra pass without files.
     let gains: Vec<f64> = match flags.listen {
         Some(target) => {
@@ -71,22 +74,21 @@ pub(crate) fn render_to(
     };
     let mut files = Vec::new();
     for (o, name) in patch.outputs.iter().zip(&names) {
-        let spec = WavSpec {
-            rate: patch.rate.round() as u32,
-            channels: 1,
-            depth,
-            full_scale: patch.full_scale,
-            dither_seed: signal::source_seed(patch.seed, &o.name),
-        };
-        files.push(folder.create(name, spec).map_err(signal_error)?);
+        files.push(folder.create(name, spec_of(o)).map_err(signal_error)?);
     }
+    // The files fade in and out at their edges; the figures see the unfaded signal.
+    let fade = flags.edge_fade(patch.frames(), patch.rate)?;
+    let mut written = vec![0usize; files.len()];
     let mut scratch: Vec<f64> = Vec::new();
     let (_, m) = measure_streamed(patch, &Settings::default(), None, true, &mut |i, x| {
-        if gains[i] == 1.0 {
+        let start = written[i];
+        written[i] += x.len();
+        if gains[i] == 1.0 && !fade.touches(start, x.len()) {
             files[i].write(x)
         } else {
             scratch.clear();
             scratch.extend(x.iter().map(|v| v * gains[i]));
+            fade.apply(start, &mut scratch);
             files[i].write(&scratch)
         }
     })?;
@@ -96,10 +98,10 @@ pub(crate) fn render_to(
     }
 
     match variant {
-        Some(v) => println!("{} (variant {v}) -> {}", patch.title, dir.display()),
-        None => println!("{} -> {}", patch.title, dir.display()),
+        Some(v) => say!("{} (variant {v}) -> {}", patch.title, dir.display()),
+        None => say!("{} -> {}", patch.title, dir.display()),
     }
-    println!(
+    say!(
         "  calibration: {} = 0 dBFS peak{}",
         fmt_eng(patch.full_scale, "V"),
         if flags.listen.is_some() {
@@ -115,7 +117,7 @@ pub(crate) fn render_to(
             String::new()
         };
         let f = &m.outputs[&o.name].figures;
-        println!(
+        say!(
             "  {}: peak {}{}  rms {} (AC)  headroom {} / {}{}{}",
             name,
             f.peak_v.map_or("-".into(), |v| fmt_eng(v, "V")),
@@ -133,7 +135,7 @@ pub(crate) fn render_to(
         print_events(&m.outputs[&o.name].events);
     }
     if let Some((stage, t)) = measure::first_clip(&m) {
-        println!(
+        say!(
             "  first clip: stage {stage} at {}",
             fmt_eng(t.max(0.0), "s")
         );
@@ -143,15 +145,83 @@ pub(crate) fn render_to(
         .write_text(&figures_name, &measure::to_json(&m))
         .map_err(signal_error)?;
     if flags.plots && variant.is_none() {
-        let figs = report::plots(patch, None).map_err(render_error)?;
         for f in &figs {
             folder
                 .write_text(&f.file_name(), &f.svg)
                 .map_err(signal_error)?;
         }
-        println!("  {} plot(s) written", figs.len());
+        say!("  {} plot(s) written", figs.len());
     }
     Ok(dir)
+}
+
+/// The WAV file of each output and the figures file of a render (of `variant`).
+fn file_names(patch: &Patch, variant: Option<&str>) -> (Vec<String>, String) {
+    let suffix = variant.map_or(String::new(), |v| format!("-{v}"));
+    let names = patch
+        .outputs
+        .iter()
+        .map(|o| {
+            let stem = o
+                .file
+                .clone()
+                .map(|f| f.strip_suffix(".wav").map(str::to_string).unwrap_or(f))
+                .unwrap_or_else(|| o.name.clone());
+            format!("{stem}{suffix}.wav")
+        })
+        .collect();
+    (names, format!("figures{suffix}.json"))
+}
+
+/// Before the base render: the size limit and the overwrite guard for every file of the
+/// base and of every variant `render` will write, so that a refusal comes before the first
+/// file is written. Returns the opened folder: holding it keeps the folder locked for the
+/// whole command, variants included (the later opens in this process share the lock).
+pub(crate) fn preflight(
+    path: &Path,
+    base: &Patch,
+    sets: &[String],
+    chosen: &[String],
+    flags: &RenderFlags,
+) -> Result<OutputDir, Failure> {
+    let variants = if chosen.is_empty() {
+        variant_names(path)?
+    } else {
+        chosen.to_vec()
+    };
+    let mut sides: Vec<(Patch, Option<&str>)> = vec![(base.clone(), None)];
+    for v in &variants {
+        let p = railsong::patch::load_variant(path, Some(v), sets).map_err(Failure::bad_input)?;
+        sides.push((p, Some(v.as_str())));
+    }
+    let depth = super::common::depth_of(flags);
+    let mut all = Vec::new();
+    let file = path.display();
+    for (p, v) in &sides {
+        check_length(p, flags.long)
+            .map_err(|e| Failure::bad_input(format!("{file}: {}", e.message)))?;
+        let (names, figures) = file_names(p, *v);
+        for (o, name) in p.outputs.iter().zip(&names) {
+            let spec = WavSpec {
+                rate: p.rate.round() as u32,
+                channels: 1,
+                depth,
+                full_scale: p.full_scale,
+                dither_seed: 0,
+            };
+            signal::check_fits(name, &spec, p.frames() as u64)
+                .map_err(|e| Failure::bad_input(format!("{file}: outputs.{}: {e}", o.name)))?;
+        }
+        all.extend(names);
+        all.push(figures);
+    }
+    let dir = flags
+        .out
+        .clone()
+        .unwrap_or_else(|| default_dir(&stem_of(path)));
+    let folder = super::common::open_folder(&dir, flags.force)?;
+    folder.check_all(&all).map_err(signal_error)?;
+    Ok(folder)
 }
 
 /// Check the names given to `render --variant` before anything is rendered.
@@ -202,6 +272,7 @@ pub(crate) fn render_variants(
         force: flags.force,
         plots: false,
         long: flags.long,
+        fade: flags.fade.clone(),
     };
     for v in &names {
         let p = railsong::patch::load_variant(path, Some(v), sets).map_err(Failure::bad_input)?;

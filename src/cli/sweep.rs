@@ -3,8 +3,8 @@
 use std::path::{Path, PathBuf};
 
 use railsong::analysis::Settings;
+use railsong::measure;
 use railsong::parts::eseries::Series;
-use railsong::signal::OutputDir;
 use railsong::study::sweep::{self, PatchText, Spacing, Value};
 use railsong::units::fmt_eng;
 
@@ -98,8 +98,7 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
     sweep::check_figures(&figures).map_err(study_error)?;
     // Load once up front: a bad patch, variant or path is reported before any point runs.
     let origin = args.patch.display().to_string();
-    let text = std::fs::read_to_string(args.patch)
-        .map_err(|e| Failure::bad_input(format!("{origin}: cannot read: {e}")))?;
+    let text = railsong::patch::read_text(args.patch).map_err(Failure::bad_input)?;
     let base_dir = match args.patch.parent() {
         Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
         _ => PathBuf::from("."),
@@ -125,13 +124,25 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
             let dir = dir
                 .clone()
                 .unwrap_or_else(|| default_dir(&stem_of(args.patch)));
-            Some(OutputDir::open(&dir, *force).map_err(signal_error)?)
+            let folder = super::common::open_folder(&dir, *force)?;
+            // Every plot name is checked before the first is written.
+            let names: Vec<String> = base
+                .outputs
+                .iter()
+                .flat_map(|o| {
+                    figures
+                        .iter()
+                        .map(move |f| format!("{}-sweep-{f}.svg", o.name))
+                })
+                .collect();
+            folder.check_all(&names).map_err(signal_error)?;
+            Some(folder)
         }
         None => None,
     };
     let mut json_out = serde_json::Map::new();
     if args.csv {
-        println!("output,path,value,{}", figures.join(","));
+        say!("output,path,value,{}", figures.join(","));
     }
     for o in &base.outputs {
         let rows: Vec<(&Value, Vec<Option<f64>>)> = pts
@@ -197,13 +208,19 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                 if pts.len() < 2 || (log_x && pts.iter().any(|p| p.0 <= 0.0)) {
                     continue;
                 }
+                // axes named by what they show, with units and engineering ticks ("100k")
                 let axis = |log: bool, label: &str, unit: &str| {
-                    if log {
+                    let mut a = if log {
                         railsong::plot::AxisSpec::log(label, unit)
                     } else {
                         railsong::plot::AxisSpec::linear(label, unit)
+                    };
+                    if !matches!(unit, "%" | "dB" | "dBFS" | "dBc") {
+                        a.format = railsong::plot::TickFormat::Si;
                     }
+                    a
                 };
+                let (y_label, y_unit) = measure::figure_label(f);
                 // the crossings found on the circuit, marked only where found
                 let crossings: Vec<railsong::plot::Crossing> = if f == "thd_percent" {
                     [(at01, 0.1), (at1, 1.0)]
@@ -212,14 +229,17 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                             at.map(|x| railsong::plot::Crossing {
                                 x,
                                 y,
-                                label: format!("{y} % THD at {}", fmt_eng(x, "")),
+                                label: format!(
+                                    "{y} % THD at {}",
+                                    fmt_eng(x, measure::key_unit(&path))
+                                ),
                             })
                         })
                         .collect()
                 } else {
                     Vec::new()
                 };
-                let title = format!("{}: {f} against {path}", o.name);
+                let title = format!("{}: {y_label} against {path}", o.name);
                 let caption = format!("{} points; each a full render and measurement", pts.len());
                 let series = [railsong::plot::SweepSeries {
                     name: f,
@@ -228,8 +248,8 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                 let svg = railsong::plot::sweep_svg(&railsong::plot::SweepPlot {
                     title: &title,
                     caption: &caption,
-                    x: axis(log_x, &path, ""),
-                    y: axis(log_y, f, ""),
+                    x: axis(log_x, &path, measure::key_unit(&path)),
+                    y: axis(log_y, &y_label, y_unit),
                     series: &series,
                     crossings: &crossings,
                     threshold: (f == "thd_percent").then(|| railsong::plot::Threshold {
@@ -272,12 +292,12 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                     .iter()
                     .map(|x| x.map_or(String::new(), |x| x.to_string()))
                     .collect();
-                println!("{},{path},{},{}", o.name, v.x, cells.join(","));
+                say!("{},{path},{},{}", o.name, v.x, cells.join(","));
             }
         } else {
-            println!("output {}: sweep of {path}", o.name);
+            say!("output {}: sweep of {path}", o.name);
             let head: Vec<String> = figures.iter().map(|f| format!("{f:>16}")).collect();
-            println!("  {:>14}  {}", "value", head.join(""));
+            say!("  {:>14}  {}", "value", head.join(""));
             for (v, fs) in &rows {
                 let cells: Vec<String> = fs
                     .iter()
@@ -286,30 +306,30 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                 let unit = sweep::parse_quantity(&v.text)
                     .map(|q| q.1)
                     .unwrap_or_default();
-                println!("  {:>14}  {}", fmt_eng(v.x, &unit), cells.join(""));
+                say!("  {:>14}  {}", fmt_eng(v.x, &unit), cells.join(""));
             }
             if !thd.is_empty() || unmeasured > 0 {
                 let say = |x: Option<f64>, th: &str| {
                     match x {
-                    Some(l) => println!(
+                    Some(l) => say!(
                         "  THD reaches {th} at {} ({path} = {l:.6}; found on the circuit within 0.1 %)",
                         fmt_eng(l, &xunit)
                     ),
-                    None if unmeasured > 0 => println!(
+                    None if unmeasured > 0 => say!(
                         "  THD does not cross {th} where it was measured (not measured at {unmeasured} of {} points; see measure's notes)",
                         pts.len()
                     ),
-                    None => println!("  THD does not cross {th} in this range"),
+                    None => say!("  THD does not cross {th} in this range"),
                 }
                 };
                 say(at01, "0.1 %");
                 say(at1, "1 %");
             }
-            println!();
+            say!();
         }
     }
     if args.json {
-        println!(
+        say!(
             "{}",
             serde_json::to_string_pretty(&serde_json::Value::Object(json_out))
                 .map_err(failure_io)?

@@ -5,7 +5,6 @@ use std::path::Path;
 use railsong::analysis::Settings;
 use railsong::model::Patch;
 use railsong::parts::eseries::Series;
-use railsong::signal::OutputDir;
 use railsong::study::tolerance::{self, Spread, Tolerances};
 use railsong::units;
 
@@ -42,8 +41,22 @@ pub(crate) fn series_tolerance(s: Series) -> f64 {
 /// `[patch] tolerance`, else 1 %; capacitors: `--cap-tol`, else `[patch] cap_tolerance`, else
 /// the resistor tolerance. Per-stage keys in the patch override both for their stage.
 pub(crate) fn tolerances(args: &ToleranceArgs, patch: &Patch) -> Result<Tolerances, Failure> {
-    let pct = |flag: &str, s: &str| {
-        units::parse_percent(s).map_err(|e| Failure::bad_input(format!("{flag} {s}: {e}")))
+    // The flags take percent: "5%" and a bare "5" both mean 5 % (a bare number is never a
+    // fraction here: `--tol 5` must not become 500 %).
+    let pct = |flag: &str, s: &str| -> Result<f64, Failure> {
+        let v =
+            units::parse_percent(s).map_err(|e| Failure::bad_input(format!("{flag} {s}: {e}")))?;
+        let v = if s.trim_end().ends_with('%') {
+            v
+        } else {
+            v / 100.0
+        };
+        if !(v.is_finite() && (0.0..1.0).contains(&v)) {
+            return Err(Failure::bad_input(format!(
+                "{flag} {s}: expected a tolerance from 0 % to below 100 %, e.g. 1% or 5"
+            )));
+        }
+        Ok(v)
     };
     let resistor = match (args.tol, args.series) {
         (Some(t), _) => pct("--tol", t)?,
@@ -82,6 +95,8 @@ pub(crate) fn fmt_spread(s: &Option<Spread>, scale: f64, digits: usize) -> Strin
 /// `railsong tolerance`.
 pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
     let patch = load(args.patch, args.sets)?;
+    // Every run renders the whole patch: the length limit holds here as in render.
+    super::common::check_length(&patch, args.flags.long)?;
     let tol = tolerances(args, &patch)?;
     let seed = args.seed.unwrap_or(patch.seed);
     if let Some(i) = args.render_run {
@@ -96,7 +111,7 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             .out
             .clone()
             .unwrap_or_else(|| default_dir(&stem_of(args.patch)));
-        println!(
+        say!(
             "tolerance run {i} (seed {seed}, run seed {}, resistors +/-{} %, capacitors +/-{} %)",
             tolerance::run_seed(seed, i),
             tol.resistor * 100.0,
@@ -109,6 +124,7 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             force: args.flags.force,
             plots: false,
             long: args.flags.long,
+            fade: args.flags.fade.clone(),
         };
         return render_to(&p, &stem_of(args.patch), &flags, Some(&format!("run{i}"))).map(|_| ());
     }
@@ -126,7 +142,13 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             .out
             .clone()
             .unwrap_or_else(|| default_dir(&stem_of(args.patch)));
-        let mut folder = OutputDir::open(&dir, args.flags.force).map_err(signal_error)?;
+        let mut folder = super::common::open_folder(&dir, args.flags.force)?;
+        let names: Vec<String> = patch
+            .outputs
+            .iter()
+            .map(|o| format!("{}-tolerance-gain.svg", o.name))
+            .collect();
+        folder.check_all(&names).map_err(signal_error)?;
         for (k, o) in patch.outputs.iter().enumerate() {
             let gains: Vec<f64> = rep.runs.iter().map(|r| r.outputs[k].gain_db).collect();
             let title = format!("{}: gain spread over {} runs", o.name, rep.runs.len());
@@ -151,43 +173,43 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
         }
     }
     if args.json {
-        println!(
+        say!(
             "{}",
             serde_json::to_string_pretty(&rep).map_err(failure_io)?
         );
         return Ok(());
     }
-    println!(
+    say!(
         "{}: {} runs, resistors uniform within +/-{} %, capacitors within +/-{} %, seed {seed}",
         patch.title,
         args.runs,
         tol.resistor * 100.0,
         tol.capacitor * 100.0
     );
-    println!("  spreads are min / 5th pct / median / 95th pct / max");
+    say!("  spreads are min / 5th pct / median / 95th pct / max");
     for o in &rep.outputs {
-        println!();
-        println!("output {}", o.output);
-        println!(
+        say!();
+        say!("output {}", o.output);
+        say!(
             "  gain over nominal (output RMS)  {} dB",
             fmt_spread(&o.gain_db, 1.0, 3)
         );
         if o.thd_percent.is_some() {
-            println!(
+            say!(
                 "  THD at the patch level         {} %",
                 fmt_spread(&o.thd_percent, 1.0, 4)
             );
         }
-        println!(
+        say!(
             "  DC offset                      {} mV",
             fmt_spread(&o.dc_v, 1e3, 3)
         );
     }
     if !rep.channels.is_empty() {
-        println!();
-        println!("mixer channels: small-signal gain -Rf / (Ri + Rs) of each input path, from the perturbed values (closed form)");
+        say!();
+        say!("mixer channels: small-signal gain -Rf / (Ri + Rs) of each input path, from the perturbed values (closed form)");
         for c in &rep.channels {
-            println!(
+            say!(
                 "  {}[{}] from {} (nominal {:+.4}): {} %",
                 c.nominal.stage,
                 c.nominal.input,
@@ -197,7 +219,7 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             );
         }
         for m in &rep.mismatch {
-            println!(
+            say!(
                 "  {}: mismatch between channels (largest over smallest |gain|) {} dB",
                 m.stage,
                 fmt_spread(&m.mismatch_db, 1.0, 3)
@@ -211,8 +233,8 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
                 .iter()
                 .map(|o| o.gain_db)
                 .fold(0.0f64, |a, b| if b.abs() > a.abs() { b } else { a });
-        println!();
-        println!(
+        say!();
+        say!(
             "worst run: {w} (run seed {}), gain {worst:+.3} dB; render it with",
             r.seed
         );
@@ -226,7 +248,7 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
             cmd.push_str(&format!(" --set {s}"));
         }
         cmd.push_str(&format!(" --render-run {w}"));
-        println!("{cmd}");
+        say!("{cmd}");
     }
     Ok(())
 }

@@ -787,23 +787,24 @@ fn shape_block(
     // Whole block strictly inside the linear region: the output is the drive, one sample
     // late (same values as the per-sample branch below).
     if b >= 2 {
-        let inside = |xm: f64, xc: f64, xp: f64| {
-            let a = 0.5 * (xp - xm).abs();
-            (xc - a > lin_lo) & (xc + a < lin_hi)
-        };
-        let first = inside(x2, x1, x[0]) & inside(x1, x[0], x[1]);
+        let first = sh.inside(x2, x1, x[0]) & sh.inside(x1, x[0], x[1]);
         out[0] = x1;
         out[1] = x[0];
         out[2..].copy_from_slice(&x[1..b - 1]);
         // One pass of eight independent lanes (compare-and-select, which vectorises): the
-        // extremes of xc - a and xc + a decide "inside", those of xc are the output's peaks.
+        // extremes of the local quadratic's bounds decide "inside" (as `Shaper::inside`: the
+        // three samples widened by |q| / 4), those of xc are the output's peaks.
         let n = b - 2;
         let (xm, xc, xp) = (&x[..n], &x[1..n + 1], &x[2..]);
         let mut r = [[f64::INFINITY; 8], [f64::NEG_INFINITY; 8]];
         let mut pk = [[x1.min(x[0]); 8], [x1.max(x[0]); 8]];
         let lanes = |r: &mut [[f64; 8]; 2], pk: &mut [[f64; 8]; 2], j: usize, m, c: f64, p| {
-            let a = 0.5 * f64::abs(p - m);
-            let (d, u) = (c - a, c + a);
+            let a = 0.25 * f64::abs(0.5 * (m + p) - c);
+            let lo3 = if m < c { m } else { c };
+            let lo3 = if p < lo3 { p } else { lo3 };
+            let hi3 = if m > c { m } else { c };
+            let hi3 = if p > hi3 { p } else { hi3 };
+            let (d, u) = (lo3 - a, hi3 + a);
             r[0][j] = if d < r[0][j] { d } else { r[0][j] };
             r[1][j] = if u > r[1][j] { u } else { r[1][j] };
             pk[0][j] = if c < pk[0][j] { c } else { pk[0][j] };
@@ -837,11 +838,10 @@ fn shape_block(
     }
     let mut clip = 0u64;
     for (t, (o, &xn)) in out.iter_mut().zip(x).enumerate() {
-        let a = 0.5 * (xn - x2).abs();
-        *o = if x1 - a >= lin_lo && x1 + a <= lin_hi {
+        *o = if sh.inside(x2, x1, xn) {
             x1
         } else if aa {
-            sh.smooth(x1, a)
+            sh.smooth(x2, x1, xn)
         } else {
             sh.apply(x1)
         };
@@ -850,39 +850,15 @@ fn shape_block(
             st.first_clip = Some(start + t as u64);
         }
         clip += u64::from(c);
+        // The circuit's own extremes: the static clamp of the drive (the band-limited value
+        // may pass the limit by the kernel's smoothing; that is a property of the file).
+        let v = sh.apply(x1);
+        st.out_max = st.out_max.max(v);
+        st.out_min = st.out_min.min(v);
         x2 = x1;
         x1 = xn;
     }
     st.clip += clip;
     st.x1 = x1;
     st.x2 = x2;
-    track_peaks(st, out);
-}
-
-/// Running extremes of a stage's shaped output. Eight independent lanes with plain
-/// compare-and-select (not `f64::max`, whose NaN rule keeps the compiler from vectorising),
-/// so the reduction runs in vector registers; the output is finite (the step falls back to
-/// the previous value otherwise).
-#[inline(always)]
-fn track_peaks(st: &mut StageState, out: &[f64]) {
-    let mut hi = [st.out_max; 8];
-    let mut lo = [st.out_min; 8];
-    let chunks = out.chunks_exact(8);
-    let rest = chunks.remainder();
-    for c in chunks {
-        for k in 0..8 {
-            hi[k] = if c[k] > hi[k] { c[k] } else { hi[k] };
-            lo[k] = if c[k] < lo[k] { c[k] } else { lo[k] };
-        }
-    }
-    for (k, &v) in rest.iter().enumerate() {
-        hi[k] = if v > hi[k] { v } else { hi[k] };
-        lo[k] = if v < lo[k] { v } else { lo[k] };
-    }
-    st.out_max = hi
-        .iter()
-        .fold(f64::NEG_INFINITY, |a, &b| if b > a { b } else { a });
-    st.out_min = lo
-        .iter()
-        .fold(f64::INFINITY, |a, &b| if b < a { b } else { a });
 }

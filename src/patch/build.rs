@@ -24,6 +24,16 @@ const MAX_TIME: f64 = 3600.0;
 const MAX_V: f64 = 1000.0;
 /// Rails: each within +/- 100 V.
 const MAX_RAIL: f64 = 100.0;
+/// Durations (`decay`, `duration`, `hold`): at least 1 us.
+const MIN_DURATION: f64 = 1e-6;
+/// Most tones in one multitone source (each costs a sine per sample at the internal rate).
+pub const MAX_TONES: usize = 1000;
+/// Longest output name and output file stem: the longest name railsong derives from one
+/// (`NAME-tolerance-gain.svg`, `NAME-sweep-FIGURE.svg`, `STEM-VARIANT.wav`) must still pass
+/// the 100-character file-name filter.
+pub const MAX_OUTPUT_NAME: usize = 64;
+/// Longest variant name (it is appended to output file stems).
+pub const MAX_VARIANT_NAME: usize = 32;
 
 /// Build and check the patch. `stem` is the default title.
 pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -> R<Patch> {
@@ -46,8 +56,26 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
         .q_opt("rate", Quantity::Frequency, Bounds::closed(8e3, 768e3))?
         .unwrap_or(48e3);
     let length = ptab
-        .q_opt("length", Quantity::Time, Bounds::above(0.0, MAX_TIME))?
+        .q_opt("length", Quantity::Time, Bounds::closed(1e-3, MAX_TIME))?
         .unwrap_or(2.0);
+    // No render of a length no WAV file can hold (16-bit, the smallest, at this rate) could
+    // ever finish: refuse it here rather than after writing 4 GiB.
+    let spec16 = crate::signal::WavSpec {
+        rate: rate.round() as u32,
+        channels: 1,
+        depth: crate::signal::Depth::Pcm16,
+        full_scale: 1.0,
+        dither_seed: 0,
+    };
+    let frames = (length * rate).round() as u64;
+    if let Err(e) = crate::signal::check_fits("every output", &spec16, frames) {
+        let key = if ptab.get("length").is_some() {
+            "length"
+        } else {
+            "rate"
+        };
+        return Err(ptab.err(key, Problem::Other(e.to_string())));
+    }
     let oversample = match ptab.int_opt("oversample")? {
         None => 4,
         Some(k) if [1, 2, 4, 8, 16].contains(&k) => k as usize,
@@ -80,7 +108,7 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
         .q_opt(
             "temperature",
             Quantity::Temperature,
-            Bounds::above(0.0, 1000.0),
+            Bounds::closed(1.0, 1000.0),
         )?
         .unwrap_or(25.0 + crate::units::ZERO_CELSIUS);
     let full_scale = match ptab.get("full_scale") {
@@ -141,6 +169,21 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
     for (name, t) in &src_list {
         let tab = Tab::new(ctx, format!("sources.{name}"), t);
         sources.push(source(&tab, name, rate, base_dir)?);
+        // A retrigger period under one sample cannot be rendered (the generator refuses it).
+        if let Some(every) = sources.last().and_then(|s| s.envelope.as_ref()?.every) {
+            if every * rate < 1.0 {
+                return Err(tab.err(
+                    "every",
+                    Problem::OutOfRange {
+                        expected: format!(
+                            "a retrigger period of at least one sample ({} at patch.rate)",
+                            crate::units::fmt_eng(1.0 / rate, "s")
+                        ),
+                        got: super::read::raw(&tab.t["every"]),
+                    },
+                ));
+            }
+        }
     }
 
     let env = StageEnv {
@@ -257,7 +300,7 @@ fn full_scale(ctx: &Ctx, path: &str, v: &toml::Value) -> R<f64> {
         v,
         Quantity::Voltage,
         x,
-        Bounds::above(0.0, MAX_V),
+        Bounds::closed(1e-3, MAX_V),
     )
 }
 
@@ -340,6 +383,11 @@ fn build_parts(root: &Tab) -> R<HashMap<String, OpAmp>> {
     Ok(done)
 }
 
+/// Gain-bandwidth products: 100 Hz to 1 THz.
+const GBW_RANGE: Bounds = Bounds::closed(100.0, 1e12);
+/// Slew rates: 1 kV/s (0.001 V/us) to 10^12 V/s.
+const SLEW_RANGE: Bounds = Bounds::closed(1e3, 1e12);
+
 /// Apply a part table's fields over its base.
 fn part_fields(t: &Tab, name: &str, base: OpAmp) -> R<OpAmp> {
     t.check_keys(schema::PART, &[], "")?;
@@ -350,10 +398,10 @@ fn part_fields(t: &Tab, name: &str, base: OpAmp) -> R<OpAmp> {
         Some(a) => a.to_string(),
         None => format!("based on {based_on}"),
     };
-    if let Some(x) = t.q_opt("gbw", Quantity::Frequency, Bounds::above(0.0, 1e12))? {
+    if let Some(x) = t.q_opt("gbw", Quantity::Frequency, GBW_RANGE)? {
         p.gbw = x;
     }
-    if let Some(x) = t.q_opt("slew", Quantity::SlewRate, Bounds::above(0.0, 1e12))? {
+    if let Some(x) = t.q_opt("slew", Quantity::SlewRate, SLEW_RANGE)? {
         p.slew = x;
     }
     if let Some(x) = t.q_or_none("a0", Quantity::Ratio, Bounds::closed(1.0, 1e12))? {
@@ -394,10 +442,10 @@ fn part_fields(t: &Tab, name: &str, base: OpAmp) -> R<OpAmp> {
     if let Some(x) = t.q_opt("in", Quantity::CurrentNoise, Bounds::closed(0.0, 1e-9))? {
         p.inoise = x;
     }
-    if let Some(x) = t.q_or_none("isc", Quantity::Current, Bounds::above(0.0, 100.0))? {
+    if let Some(x) = t.q_or_none("isc", Quantity::Current, Bounds::closed(1e-6, 100.0))? {
         p.isc = x;
     }
-    if let Some(x) = t.q_or_none("supply_max", Quantity::Voltage, Bounds::above(0.0, 1000.0))? {
+    if let Some(x) = t.q_or_none("supply_max", Quantity::Voltage, Bounds::closed(1.0, 1000.0))? {
         p.supply_max = x.unwrap_or(f64::INFINITY);
     }
     Ok(p)
@@ -454,10 +502,14 @@ fn volts(t: &Tab, key: &str) -> R<Option<f64>> {
 }
 
 fn duration(t: &Tab, key: &str) -> R<f64> {
-    t.q_req(key, Quantity::Time, Bounds::above(0.0, MAX_TIME))
+    t.q_req(key, Quantity::Time, Bounds::closed(MIN_DURATION, MAX_TIME))
 }
 
 fn source(t: &Tab, name: &str, rate: f64, base_dir: &Path) -> R<Source> {
+    if !t.has("wave") {
+        // a misspelt key may be the missing one: report it first
+        t.check_keys(&schema::all_source_keys(), &[], "to a source")?;
+    }
     let wave = t.word("wave", schema::WAVES)?.ok_or_else(|| {
         t.err_here(Problem::Missing {
             key: "wave".into(),
@@ -512,6 +564,16 @@ fn source(t: &Tab, name: &str, rate: f64, base_dir: &Path) -> R<Source> {
             )?;
             if a.is_empty() {
                 return Err(t.err("tones", Problem::Other("needs at least one tone".into())));
+            }
+            if a.len() > MAX_TONES {
+                return Err(t.err(
+                    "tones",
+                    Problem::Other(format!(
+                        "{} tones: expected at most {MAX_TONES} (each tone costs a sine per \
+                         sample); use a noise source for a dense spectrum",
+                        a.len()
+                    )),
+                ));
             }
             let mut tones = Vec::with_capacity(a.len());
             for tt in t.tables_in("tones", a, "{ freq = \"1 kHz\", amp = \"1 Vpk\" }")? {
@@ -642,8 +704,9 @@ fn source(t: &Tab, name: &str, rate: f64, base_dir: &Path) -> R<Source> {
         }
     }
     let attack = t.q_opt("attack", Quantity::Time, time)?;
-    let decay = t.q_opt("decay", Quantity::Time, Bounds::above(0.0, MAX_TIME))?;
-    let every = t.q_opt("every", Quantity::Time, Bounds::above(0.0, MAX_TIME))?;
+    let dur = Bounds::closed(MIN_DURATION, MAX_TIME);
+    let decay = t.q_opt("decay", Quantity::Time, dur)?;
+    let every = t.q_opt("every", Quantity::Time, dur)?;
     let envelope = match (attack, decay, every) {
         (None, None, None) => None,
         (a, Some(d), e) => Some(Envelope {
@@ -760,6 +823,29 @@ fn part(t: &Tab, parts: &HashMap<String, OpAmp>) -> R<OpAmp> {
     ))
 }
 
+/// A part whose swing drops leave no room between the rails (the low limit `neg + drop_neg`
+/// at or above the high limit `pos - drop_pos`) has no output at all: refuse it.
+fn swing_room(t: &Tab, p: &OpAmp, rails: Rails) -> R<()> {
+    let (lo, hi) = (rails.neg + p.drop_neg, rails.pos - p.drop_pos);
+    if lo < hi {
+        return Ok(());
+    }
+    let fmt = |v: f64| crate::units::fmt_eng(v, "V");
+    Err(t.err(
+        "part",
+        Problem::Other(format!(
+            "part '{}' leaves no output swing on these rails: drop_pos {} and drop_neg {} add \
+             up to {}, not less than the {} between the rails; expected drops that leave the \
+             output room to move",
+            p.name,
+            fmt(p.drop_pos),
+            fmt(p.drop_neg),
+            fmt(p.drop_pos + p.drop_neg),
+            fmt(rails.pos - rails.neg)
+        )),
+    ))
+}
+
 fn res(t: &Tab, key: &str) -> R<f64> {
     t.q_req(key, Quantity::Resistance, R_RANGE)
 }
@@ -868,6 +954,10 @@ const FEEDBACK_EXAMPLE: &str =
     "a table like { r = \"100k\" } or { pot = \"100k\", taper = \"log\", at = 0.5 }";
 
 fn stage(t: &Tab, name: &str, env: &StageEnv) -> R<Stage> {
+    if !t.has("type") {
+        // a misspelt key may be the missing one ('tpye'): report it first
+        t.check_keys(&schema::all_stage_keys(), &[], "to a stage")?;
+    }
     let kind = t.word("type", schema::STAGE_TYPES)?.ok_or_else(|| {
         t.err_here(Problem::Missing {
             key: "type".into(),
@@ -882,7 +972,9 @@ fn stage(t: &Tab, name: &str, env: &StageEnv) -> R<Stage> {
     let part = if kind == "attenuator" {
         None
     } else {
-        Some(part(t, env.parts)?)
+        let p = part(t, env.parts)?;
+        swing_room(t, &p, env.rails)?;
+        Some(p)
     };
     let names = env.names;
     let k = match kind {
@@ -1136,6 +1228,16 @@ fn build_outputs(root: &Tab, names: &Names, stage_pos: &HashMap<&str, usize>) ->
     let mut outs: Vec<Output> = Vec::with_capacity(ot.t.len());
     for (name, v) in ot.t {
         let t = entity(&ot, name, v, "an [outputs.NAME] table like from = \"amp\"")?;
+        if name.len() > MAX_OUTPUT_NAME {
+            return Err(ot.err(
+                name,
+                Problem::Other(format!(
+                    "an output name is at most {MAX_OUTPUT_NAME} characters (files are named \
+                     after it), got {}",
+                    name.len()
+                )),
+            ));
+        }
         let tab = Tab::new(root.ctx, format!("outputs.{name}"), t);
         tab.check_keys(schema::OUTPUT, &[], "")?;
         let from = match names.node(&tab, "from")? {
@@ -1203,11 +1305,11 @@ fn build_outputs(root: &Tab, names: &Names, stage_pos: &HashMap<&str, usize>) ->
                 // The renderer appends ".wav" unless the name ends with it; the stem goes
                 // through the same strict filter as names ([A-Za-z0-9_-], at most 100).
                 let stem = f.strip_suffix(".wav").unwrap_or(f);
-                if !valid_name(stem) || stem.len() > 100 {
+                if !valid_name(stem) || stem.len() > MAX_OUTPUT_NAME {
                     return Err(tab.err(
                         "file",
                         Problem::Other(format!(
-                            "expected a file name of letters, digits, '_' and '-' (at most 100), optionally ending in .wav, like \"{name}.wav\", got '{f}'"
+                            "expected a file name of letters, digits, '_' and '-' (at most {MAX_OUTPUT_NAME}), optionally ending in .wav, like \"{}.wav\", got '{f}'", &name[..name.len().min(MAX_OUTPUT_NAME)]
                         )),
                     ));
                 }

@@ -72,15 +72,70 @@ pub fn load_variant(
     sets: &[String],
 ) -> Result<Patch, PatchError> {
     let file = path.display().to_string();
-    let text = std::fs::read_to_string(path).map_err(|source| PatchError::Read {
-        file: file.clone(),
-        source,
-    })?;
+    let text = read_text_as(path, &file)?;
     let base_dir = match path.parent() {
         Some(p) if !p.as_os_str().is_empty() => p,
         _ => Path::new("."),
     };
     parse_str_variant(&text, &file, base_dir, variant, sets)
+}
+
+/// Largest patch file read, bytes (16 MiB: far beyond any hand-written patch).
+pub const MAX_PATCH_BYTES: u64 = 16 << 20;
+
+/// Read a patch file: a regular file of at most [`MAX_PATCH_BYTES`], UTF-8.
+pub fn read_text(path: &Path) -> Result<String, PatchError> {
+    read_text_as(path, &path.display().to_string())
+}
+
+fn read_text_as(path: &Path, file: &str) -> Result<String, PatchError> {
+    use std::io::Read;
+    use std::os::unix::fs::FileTypeExt;
+    let err = |source| PatchError::Read {
+        file: file.to_string(),
+        source,
+    };
+    let meta = std::fs::metadata(path).map_err(err)?;
+    let t = meta.file_type();
+    if !t.is_file() {
+        let what = if t.is_dir() {
+            "a folder"
+        } else if t.is_fifo() {
+            "a FIFO (named pipe)"
+        } else if t.is_char_device() || t.is_block_device() {
+            "a device"
+        } else {
+            "not a regular file"
+        };
+        return Err(err(std::io::Error::other(format!(
+            "it is {what}; expected a patch file (a regular TOML file)"
+        ))));
+    }
+    let too_big = || {
+        err(std::io::Error::other(format!(
+            "it is larger than {} MiB; expected a patch file of at most that size",
+            MAX_PATCH_BYTES >> 20
+        )))
+    };
+    if meta.len() > MAX_PATCH_BYTES {
+        return Err(too_big());
+    }
+    let mut bytes = Vec::new();
+    std::fs::File::open(path)
+        .and_then(|f| f.take(MAX_PATCH_BYTES + 1).read_to_end(&mut bytes))
+        .map_err(err)?;
+    if bytes.len() as u64 > MAX_PATCH_BYTES {
+        return Err(too_big());
+    }
+    String::from_utf8(bytes).map_err(|e| {
+        err(std::io::Error::new(
+            std::io::ErrorKind::InvalidData,
+            format!(
+                "byte {} is not valid UTF-8; expected a UTF-8 text file",
+                e.utf8_error().valid_up_to()
+            ),
+        ))
+    })
 }
 
 /// Parse and validate patch text. `origin` names the text in messages (usually the file path;
@@ -204,6 +259,22 @@ fn apply_sets(
                 )),
             }));
         };
+        let head = path.trim().split(['.', '[']).next().unwrap_or("").trim();
+        if head == "variants" || head == "\"variants\"" {
+            // The file's variants are read before overrides apply: a --set there would be
+            // silently ignored, while the same in the file is checked. Refuse it.
+            return Err(wrap(PatchError::Invalid {
+                file: String::new(),
+                line: None,
+                from_set: false,
+                path: String::new(),
+                problem: Box::new(Problem::Other(
+                    "variants cannot be changed with --set; edit [variants.NAME] in the file, \
+                     or pick one with --variant"
+                        .into(),
+                )),
+            }));
+        }
         let canon = set::apply_canonical(doc, path, parse_set_value(value)).map_err(wrap)?;
         done.push(canon);
     }
@@ -262,6 +333,17 @@ fn variants_at(
         if !read::valid_name(name) {
             return Err(ctx.err(&here, Problem::BadName { name: name.clone() }));
         }
+        if name.len() > build::MAX_VARIANT_NAME {
+            return Err(ctx.err(
+                &here,
+                Problem::Other(format!(
+                    "a variant name is at most {} characters (it is appended to file names), \
+                     got {}",
+                    build::MAX_VARIANT_NAME,
+                    name.len()
+                )),
+            ));
+        }
         let toml::Value::Table(t) = body else {
             return Err(ctx.err(
                 &here,
@@ -310,10 +392,7 @@ pub fn apply_variant(doc: &mut toml::Table, variant: &Variant) -> Result<(), Pat
 /// Read a patch file's variants without validating the patch (for listing them).
 pub fn load_variants(path: &Path) -> Result<Vec<Variant>, PatchError> {
     let file = path.display().to_string();
-    let text = std::fs::read_to_string(path).map_err(|source| PatchError::Read {
-        file: file.clone(),
-        source,
-    })?;
+    let text = read_text_as(path, &file)?;
     let doc = parse_toml(&text, &file)?;
     variants_at(&doc, &file, &LineIndex::new(&text))
 }

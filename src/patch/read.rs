@@ -93,15 +93,6 @@ impl Bounds {
             hi_open: true,
         }
     }
-    /// `lo < x <= hi`.
-    pub(crate) const fn above(lo: f64, hi: f64) -> Bounds {
-        Bounds {
-            lo,
-            hi,
-            lo_open: true,
-            hi_open: false,
-        }
-    }
     fn contains(&self, x: f64) -> bool {
         let lo_ok = if self.lo_open {
             x > self.lo
@@ -188,7 +179,10 @@ pub(crate) fn bounded(ctx: &Ctx, path: &str, v: &toml::Value, q: Quantity, b: Bo
     check(ctx, path, v, q, x, b)
 }
 
-/// Range-check an already read value.
+/// Smallest nonzero magnitude accepted for any value, in SI units (1e-18: atto).
+pub(crate) const TINY: f64 = 1e-18;
+
+/// Range-check an already read value (a nonzero value smaller than [`TINY`] is refused too).
 pub(crate) fn check(
     ctx: &Ctx,
     path: &str,
@@ -197,7 +191,17 @@ pub(crate) fn check(
     x: f64,
     b: Bounds,
 ) -> R<f64> {
-    if b.contains(x) {
+    if x != 0.0 && x.abs() < TINY && b.contains(x) {
+        // Denormal and absurdly small figures pass "above 0" but make nonsense downstream
+        // (1 / gbw overflows): no physical value railsong takes is this small.
+        Err(ctx.err(
+            path,
+            Problem::OutOfRange {
+                expected: format!("{}, and 0 or at least 1e-18 in size", range_words(q, &b)),
+                got: raw(v),
+            },
+        ))
+    } else if b.contains(x) {
         Ok(x)
     } else {
         Err(ctx.err(

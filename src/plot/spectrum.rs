@@ -270,8 +270,10 @@ pub fn spectrum_svg(p: &SpectrumPlot) -> Result<String, PlotError> {
         if floor_source == "median" { " (median)" } else { "" },
         y = px(fy),
     );
-    // Harmonics.
+    // Harmonics: marked only where they stand above the noise floor (by HARMONIC_ABOVE_FLOOR_DB),
+    // labelled only where the label clears the previous one.
     let mut hidden = 0usize;
+    let mut last_label_x = f64::NEG_INFINITY;
     svg.raw("<g class=\"harmonics\">\n");
     for h in p.harmonics {
         if !h.freq_hz.is_finite() || h.dbc.is_nan() {
@@ -297,8 +299,16 @@ pub fn spectrum_svg(p: &SpectrumPlot) -> Result<String, PlotError> {
             .iter()
             .copied()
             .fold(f64::NEG_INFINITY, f64::max);
+        if peak.is_nan() || peak <= floor + HARMONIC_ABOVE_FLOOR_DB {
+            hidden += 1;
+            continue;
+        }
         let mx = frame.px(h.freq_hz);
         let my = clamp_y(frame.py(peak));
+        let labelled = mx - last_label_x >= LABEL_GAP_PX;
+        if labelled {
+            last_label_x = mx;
+        }
         let label = format!("H{} {} dBc", h.order, fmt_db(h.dbc));
         let len = 6.2 * label.chars().count() as f64;
         let (ty, anchor) = if my - 8.0 - len > TOP + 2.0 {
@@ -307,21 +317,27 @@ pub fn spectrum_svg(p: &SpectrumPlot) -> Result<String, PlotError> {
             (my + 8.0, "end")
         };
         let tx = mx + 4.0;
+        let text = if labelled {
+            format!(
+                "<text class=\"marker-label\" x=\"{}\" y=\"{}\" text-anchor=\"{anchor}\" transform=\"rotate(-90 {} {})\">{}</text>",
+                px(tx),
+                px(ty),
+                px(tx),
+                px(ty),
+                esc(&label)
+            )
+        } else {
+            String::new()
+        };
         let _ = writeln!(
             svg.buf(),
-            "<g class=\"harmonic\" data-order=\"{}\" data-freq=\"{}\" data-dbc=\"{}\">\
-             <circle cx=\"{}\" cy=\"{}\" r=\"3\" fill=\"none\" stroke=\"{ACCENT2}\" stroke-width=\"1.5\"/>\
-             <text class=\"marker-label\" x=\"{}\" y=\"{}\" text-anchor=\"{anchor}\" transform=\"rotate(-90 {} {})\">{}</text></g>",
+            "<g class=\"harmonic\" data-order=\"{}\" data-freq=\"{}\" data-dbc=\"{}\" data-labelled=\"{labelled}\">\
+             <circle cx=\"{}\" cy=\"{}\" r=\"3\" fill=\"none\" stroke=\"{ACCENT2}\" stroke-width=\"1.5\"/>{text}</g>",
             h.order,
             num(h.freq_hz),
             num(h.dbc),
             px(mx),
             px(my),
-            px(tx),
-            px(ty),
-            px(tx),
-            px(ty),
-            esc(&label)
         );
     }
     let _ = writeln!(
@@ -330,6 +346,13 @@ pub fn spectrum_svg(p: &SpectrumPlot) -> Result<String, PlotError> {
     );
     Ok(svg.finish(p.title, p.caption))
 }
+
+/// How far a harmonic's peak must stand above the noise floor to be marked, dB.
+pub const HARMONIC_ABOVE_FLOOR_DB: f64 = 6.0;
+
+/// Least horizontal distance between two harmonic labels (each drawn vertically, about
+/// 11 px wide), px.
+const LABEL_GAP_PX: f64 = 14.0;
 
 /// A dB value with one decimal (`-9.5`, `-inf`).
 fn fmt_db(v: f64) -> String {

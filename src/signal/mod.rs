@@ -35,9 +35,11 @@
 //! [`load_wav`] reads PCM 8/16/24/32-bit and 32-bit float (plain or WAVE_FORMAT_EXTENSIBLE),
 //! picks or mixes channels, converts to volts and resamples. [`WavWriter`] writes calibrated,
 //! dithered, clipped-and-counted PCM or float to any `Write + Seek`; [`OutputDir`] adds atomic
-//! writes and an overwrite guard on top.
+//! writes and an overwrite guard on top. [`EdgeFade`] fades a file in and out at its edges.
 
+mod cleanup;
 mod control;
+pub mod fade;
 mod files;
 mod gate;
 mod noise;
@@ -51,14 +53,16 @@ use std::path::PathBuf;
 use crate::model::{Source, Wave};
 
 pub use control::{Dc, Ramp, Steps};
+pub use fade::{EdgeFade, DEFAULT_FADE_S};
 pub use files::{check_file_name, OutputDir, WavFile, MANIFEST_NAME};
 pub use gate::Gated;
 pub use noise::{PinkNoise, WhiteNoise, PINK_LOW_HZ};
 pub use periodic::{BandLimited, Multitone, Naive, Shape, Sine};
 pub use sweep::LogSweep;
-pub use wav_in::{load_wav, Playback, WavStream, MAX_RATE, MIN_RATE};
+pub use wav_in::{file_stamp, load_wav, Playback, WavStream, MAX_RATE, MIN_RATE};
 pub use wav_out::{
-    listen_gain, listen_gain_from, Depth, WavSpec, WavWriter, WriteStats, LISTEN_PEAK_DBFS,
+    check_fits, file_size, listen_gain, listen_gain_from, max_frames, Depth, WavSpec, WavWriter,
+    WriteStats, LISTEN_PEAK_DBFS,
 };
 
 /// A block-based signal generator.
@@ -103,6 +107,28 @@ pub enum SignalError {
         path: PathBuf,
         /// What is missing.
         what: &'static str,
+    },
+    /// The input path is not a regular file (a FIFO, a device, a folder).
+    #[error("WAV file {}: {what}, not a regular file", path.display())]
+    NotAFile {
+        /// The path.
+        path: PathBuf,
+        /// What it is.
+        what: &'static str,
+    },
+    /// The input file changed on disk while a render was reading it.
+    #[error("WAV file {}: changed on disk while it was being read (size or modification time); render again once it is complete", path.display())]
+    Changed {
+        /// The file.
+        path: PathBuf,
+    },
+    /// An output file would exceed the 4 GiB limit of a WAV file.
+    #[error("{name}: {what}")]
+    TooLarge {
+        /// The output's file name.
+        name: String,
+        /// The size and what to change.
+        what: String,
     },
     /// The input file ends before its header says it should.
     #[error("WAV file {}: truncated ({what})", path.display())]
@@ -197,7 +223,7 @@ pub enum SignalError {
         name: String,
     },
     /// The overwrite guard refused to replace a file railsong did not write.
-    #[error("refusing to overwrite {}: railsong did not write it (not listed in {MANIFEST_NAME}); pass --force to overwrite it", path.display())]
+    #[error("refusing to overwrite {}: railsong did not write it, or it changed since (it does not match its entry in {MANIFEST_NAME}); pass --force to overwrite it", path.display())]
     Foreign {
         /// The existing file.
         path: PathBuf,
@@ -392,8 +418,13 @@ pub fn file_source(
 
 /// Build the generator for a [`Wave::File`] source that streams the file from disk
 /// ([`WavStream`]: memory stays flat whatever its length), with the same checks, gating,
-/// offset and envelope as [`file_source`].
-pub fn file_stream(src: &Source, rate: f64) -> Result<Box<dyn Generator>, SignalError> {
+/// offset and envelope as [`file_source`]. `frames` (at `rate`) is how much a render will
+/// play: only that much of the file is checked before playback.
+pub fn file_stream(
+    src: &Source,
+    rate: f64,
+    frames: usize,
+) -> Result<Box<dyn Generator>, SignalError> {
     check_rate(src, rate)?;
     let Wave::File {
         path,
@@ -405,7 +436,14 @@ pub fn file_stream(src: &Source, rate: f64) -> Result<Box<dyn Generator>, Signal
         return Err(SignalError::bad(src, "file_stream needs a `file` wave"));
     };
     check_finite(src, "full_scale", *full_scale)?;
-    let wave = Box::new(WavStream::open(path, *channel, *full_scale, rate, *looped)?);
+    let wave = Box::new(WavStream::open_for(
+        path,
+        *channel,
+        *full_scale,
+        rate,
+        *looped,
+        frames,
+    )?);
     Gated::new(src, wave, rate).map(|g| Box::new(g) as Box<dyn Generator>)
 }
 

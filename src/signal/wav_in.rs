@@ -93,6 +93,27 @@ fn open_checked(
             source: e,
         },
     })?;
+    if !meta.is_file() {
+        use std::os::unix::fs::FileTypeExt;
+        let t = meta.file_type();
+        let what = if t.is_fifo() {
+            "a FIFO (named pipe)"
+        } else if t.is_char_device() {
+            "a character device"
+        } else if t.is_block_device() {
+            "a block device"
+        } else if t.is_socket() {
+            "a socket"
+        } else if t.is_dir() {
+            "a folder"
+        } else {
+            "not a regular file"
+        };
+        return Err(SignalError::NotAFile {
+            path: path.to_path_buf(),
+            what,
+        });
+    }
     if meta.len() == 0 {
         return Err(SignalError::Empty {
             path: path.to_path_buf(),
@@ -160,6 +181,7 @@ fn decode(
     reader: &mut hound::WavReader<io::BufReader<fs::File>>,
     c: &Checked,
     full_scale: f64,
+    limit: usize,
     take: &mut dyn FnMut(usize, f64),
 ) -> Result<(), SignalError> {
     let declared = c.declared;
@@ -170,7 +192,7 @@ fn decode(
     match (c.spec.sample_format, c.spec.bits_per_sample) {
         (hound::SampleFormat::Int, bits @ (8 | 16 | 24 | 32)) => {
             let scale = full_scale / 2f64.powi(i32::from(bits) - 1);
-            for (i, s) in reader.samples::<i32>().enumerate() {
+            for (i, s) in reader.samples::<i32>().take(limit).enumerate() {
                 let s = s.map_err(|e| match e {
                     hound::Error::IoError(ref io) if is_short_read(io) => truncated(i),
                     e => hound_err(path, e),
@@ -179,7 +201,7 @@ fn decode(
             }
         }
         (hound::SampleFormat::Float, 32) => {
-            for (i, s) in reader.samples::<f32>().enumerate() {
+            for (i, s) in reader.samples::<f32>().take(limit).enumerate() {
                 let s = s.map_err(|e| match e {
                     hound::Error::IoError(ref io) if is_short_read(io) => truncated(i),
                     e => hound_err(path, e),
@@ -220,17 +242,24 @@ pub fn load_wav(
     let mut mono = vec![0.0f64; c.n_frames];
     let channels = c.channels;
     // A frame that the end of the file cuts (when the declared size lies) is dropped.
-    decode(path, &mut reader, &c, full_scale, &mut |i, v| {
-        let ch = i % channels;
-        let Some(m) = mono.get_mut(i / channels) else {
-            return;
-        };
-        match channel {
-            Some(k) if k == ch => *m = v,
-            Some(_) => {}
-            None => *m += v / channels as f64,
-        }
-    })?;
+    decode(
+        path,
+        &mut reader,
+        &c,
+        full_scale,
+        usize::MAX,
+        &mut |i, v| {
+            let ch = i % channels;
+            let Some(m) = mono.get_mut(i / channels) else {
+                return;
+            };
+            match channel {
+                Some(k) if k == ch => *m = v,
+                Some(_) => {}
+                None => *m += v / channels as f64,
+            }
+        },
+    )?;
     let data = if (c.rate - target_rate).abs() > 1e-9 * target_rate {
         resample(path, &mono, c.rate, target_rate)?
     } else {
@@ -241,6 +270,17 @@ pub fn load_wav(
 
 /// Frames per read of [`WavStream`] (at the file's rate).
 const STREAM_CHUNK: usize = 4096;
+/// Fewest frames per read of [`WavStream`].
+const MIN_CHUNK: usize = 16;
+/// About the most output samples one read of [`WavStream`] makes when upsampling.
+const OUT_MAX: usize = 1 << 18;
+
+/// Size and modification time of a file (`None` when it cannot be read), to notice that an
+/// input changed while a render reads it.
+pub fn file_stamp(path: &Path) -> Option<(u64, std::time::SystemTime)> {
+    let m = fs::metadata(path).ok()?;
+    Some((m.len(), m.modified().ok()?))
+}
 
 /// Plays a WAV file from disk at `target_rate` without holding it in memory: reads a chunk
 /// at a time, picks or mixes the channel, resamples continuously (the same rubato sinc
@@ -254,6 +294,7 @@ pub struct WavStream {
     full_scale: f64,
     looped: bool,
     checked: Checked,
+    chunk: usize,
     reader: Option<hound::WavReader<io::BufReader<fs::File>>>,
     resampler: Option<Async<f64>>,
     raw: Vec<f64>,
@@ -298,7 +339,8 @@ fn sinc_resampler(
 }
 
 impl WavStream {
-    /// Check and open `path` for streaming at `target_rate`.
+    /// Check and open `path` for streaming at `target_rate`: every sample of the file is
+    /// decoded once first (storing nothing), so a broken file is reported before playback.
     pub fn open(
         path: &Path,
         channel: Option<usize>,
@@ -306,26 +348,50 @@ impl WavStream {
         target_rate: f64,
         looped: bool,
     ) -> Result<WavStream, SignalError> {
+        Self::open_for(path, channel, full_scale, target_rate, looped, usize::MAX)
+    }
+
+    /// [`WavStream::open`] for a render of `frames` frames at `target_rate`: only the part of
+    /// the file that such a render plays (plus the resampler's reach) is checked first, so a
+    /// long file behind a short render is not decoded whole.
+    pub fn open_for(
+        path: &Path,
+        channel: Option<usize>,
+        full_scale: f64,
+        target_rate: f64,
+        looped: bool,
+        frames: usize,
+    ) -> Result<WavStream, SignalError> {
         let (mut reader, c) = open_checked(path, channel, target_rate)?;
-        decode(path, &mut reader, &c, full_scale, &mut |_, _| {})?;
+        let ratio = target_rate / c.rate;
+        // Frames read per chunk: fewer when upsampling far, so one chunk's output (about
+        // chunk x ratio samples) stays near OUT_MAX whatever the rates.
+        let chunk = ((OUT_MAX as f64 / ratio.max(1.0)) as usize).clamp(MIN_CHUNK, STREAM_CHUNK);
+        let used = (frames as f64 / ratio.max(1e-9)).ceil();
+        let needed = if used.is_finite() && used < 1e15 {
+            (used as usize).saturating_add(2 * STREAM_CHUNK + 512)
+        } else {
+            usize::MAX
+        };
+        let limit = needed.saturating_mul(c.channels);
+        decode(path, &mut reader, &c, full_scale, limit, &mut |_, _| {})?;
         let resampler = if (c.rate - target_rate).abs() > 1e-9 * target_rate {
-            Some(sinc_resampler(path, c.rate, target_rate, STREAM_CHUNK)?)
+            Some(sinc_resampler(path, c.rate, target_rate, chunk)?)
         } else {
             None
         };
-        let out_max = resampler
-            .as_ref()
-            .map_or(STREAM_CHUNK, |r| r.output_frames_max());
+        let out_max = resampler.as_ref().map_or(chunk, |r| r.output_frames_max());
         let mut s = WavStream {
             path: path.to_path_buf(),
             channel,
             full_scale,
             looped,
             checked: c,
+            chunk,
             reader: None,
             resampler,
-            raw: Vec::with_capacity(STREAM_CHUNK * c.channels),
-            mono: vec![0.0; STREAM_CHUNK],
+            raw: Vec::with_capacity(chunk * c.channels),
+            mono: vec![0.0; chunk],
             out: vec![0.0; out_max],
             out_pos: 0,
             out_len: 0,
@@ -347,7 +413,7 @@ impl WavStream {
         self.ended = false;
     }
 
-    /// Read up to `STREAM_CHUNK - at` mono frames into `self.mono[at..]`; returns how many
+    /// Read up to `chunk - at` mono frames into `self.mono[at..]`; returns how many
     /// (0 at the end of the file).
     fn read_chunk(&mut self, at: usize) -> usize {
         let c = self.checked;
@@ -355,7 +421,7 @@ impl WavStream {
             return 0;
         };
         self.raw.clear();
-        let want = (STREAM_CHUNK - at) * c.channels;
+        let want = (self.chunk - at) * c.channels;
         let scale_int = self.full_scale / 2f64.powi(i32::from(c.spec.bits_per_sample) - 1);
         match c.spec.sample_format {
             hound::SampleFormat::Int => {
@@ -391,7 +457,7 @@ impl WavStream {
         let mut n = self.read_chunk(0);
         // A looped file runs on from its start into the same chunk: no gap at the loop point.
         let mut restarts = 0;
-        while self.looped && !self.ended && n < STREAM_CHUNK && restarts < 2 {
+        while self.looped && !self.ended && n < self.chunk && restarts < 2 {
             self.reader = hound::WavReader::open(&self.path).ok();
             let got = self.read_chunk(n);
             restarts = if got == 0 { restarts + 1 } else { 0 };
@@ -404,7 +470,7 @@ impl WavStream {
             // Flush the resampler's tail once with silence.
             self.ended = true;
         }
-        if n < STREAM_CHUNK {
+        if n < self.chunk {
             self.mono[n..].fill(0.0);
         }
         match &mut self.resampler {

@@ -205,6 +205,61 @@ impl<W: Write + Seek> WavWriter<W> {
 }
 
 /// The header for `data` bytes of sample data (`frames` per channel).
+/// Size in bytes of the file [`WavWriter`] writes for `frames` frames of `spec` (header,
+/// data and the pad byte).
+pub fn file_size(spec: &WavSpec, frames: u64) -> u64 {
+    let head = match spec.depth {
+        Depth::Float32 => FLOAT_HEADER,
+        _ => PCM_HEADER,
+    };
+    let data = frames
+        .saturating_mul(u64::from(spec.channels))
+        .saturating_mul(spec.depth.bytes() as u64);
+    head.saturating_add(data).div_ceil(2) * 2
+}
+
+/// Most frames of `spec` a WAV file holds (its RIFF size field is 32 bits).
+pub fn max_frames(spec: &WavSpec) -> u64 {
+    let head = match spec.depth {
+        Depth::Float32 => FLOAT_HEADER,
+        _ => PCM_HEADER,
+    };
+    let frame = u64::from(spec.channels.max(1)) * spec.depth.bytes() as u64;
+    (u64::from(u32::MAX) + 8 - head - 1) / frame
+}
+
+/// Refuse, before anything is written, an output `name` of `frames` frames that a WAV file
+/// cannot hold; the message gives the size and the longest length at this rate and depth.
+pub fn check_fits(name: &str, spec: &WavSpec, frames: u64) -> Result<(), SignalError> {
+    if frames <= max_frames(spec) {
+        return Ok(());
+    }
+    let rate = f64::from(spec.rate.max(1));
+    let gib = file_size(spec, frames) as f64 / f64::from(1u32 << 30);
+    let longest = max_frames(spec) as f64 / rate;
+    let shorter = if spec.depth == Depth::Pcm16 {
+        String::new()
+    } else {
+        let s16 = WavSpec {
+            depth: Depth::Pcm16,
+            ..*spec
+        };
+        format!(
+            "; 16-bit (--depth 16) holds {:.0} s",
+            max_frames(&s16) as f64 / rate
+        )
+    };
+    Err(SignalError::TooLarge {
+        name: name.to_string(),
+        what: format!(
+            "{} s at {} Hz, {}-bit would be a {gib:.1} GiB file, above the 4 GiB a WAV file              can hold; expected at most {longest:.0} s at this rate and depth{shorter}, or a              lower patch.rate or a shorter patch.length",
+            frames as f64 / rate,
+            spec.rate,
+            spec.depth.bits()
+        ),
+    })
+}
+
 fn header(spec: &WavSpec, data: u32, frames: u32) -> Vec<u8> {
     let float = spec.depth == Depth::Float32;
     let bps = spec.depth.bytes() as u32;
@@ -240,8 +295,8 @@ fn header(spec: &WavSpec, data: u32, frames: u32) -> Vec<u8> {
 pub const LISTEN_PEAK_DBFS: f64 = -1.0;
 
 /// Gain (a factor on volts) for a comfortable listening copy: it brings the RMS of `samples`
-/// to `target_rms_dbfs`, where RMS in dBFS is `20 log10(rms / full_scale)` (full scale as a
-/// constant level, so a full-scale sine reads -3.01 dB), but never lets the peak exceed
+/// to `target_rms_dbfs`, in the convention of the figures (AES17: a full-scale sine reads
+/// 0 dBFS, so RMS in dBFS is `20 log10(sqrt 2 rms / full_scale)`), but never lets the peak exceed
 /// [`LISTEN_PEAK_DBFS`] (-1 dBFS): when the two disagree the peak guard wins and the copy is
 /// quieter than asked (a crest factor above `LISTEN_PEAK_DBFS - target` dB). Empty, silent or
 /// non-finite input, or an unusable `full_scale`, gives 1.
@@ -267,7 +322,8 @@ pub fn listen_gain_from(rms: f64, peak: f64, target_rms_dbfs: f64, full_scale: f
     if !(rms.is_finite() && rms > 0.0 && peak.is_finite() && peak > 0.0) {
         return 1.0;
     }
-    let want = full_scale * 10f64.powf(target_rms_dbfs / 20.0) / rms;
+    // AES17: the RMS of a sine at `target` dBFS is its peak over sqrt 2
+    let want = full_scale * 10f64.powf(target_rms_dbfs / 20.0) / (std::f64::consts::SQRT_2 * rms);
     let guard = full_scale * 10f64.powf(LISTEN_PEAK_DBFS / 20.0) / peak;
     want.min(guard)
 }

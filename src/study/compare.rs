@@ -8,15 +8,20 @@
 //! - The alternating file plays A, B, A, B ... in segments of equal length, starting with A
 //!   at t = 0. Each boundary at `k * segment` is the centre of a crossfade of `fade` samples
 //!   (`fade/2` before, `fade/2` after). Inside it, at position `u = (n - start + 0.5) / fade`
-//!   (0 < u < 1), the outgoing side has gain `cos(pi u / 2)` and the incoming side
-//!   `sin(pi u / 2)`: equal power, `g_out^2 + g_in^2 = 1` at every sample.
+//!   (0 < u < 1), the outgoing side has gain `(1 - u) / d` and the incoming side `u / d`,
+//!   `d = sqrt((1 - u)^2 + u^2 + 2 rho u (1 - u))`, with `rho` the measured correlation of A
+//!   and matched B (`sum(a b) / sqrt(sum(a^2) sum(b^2))`, DC included, held to 0..1). Two
+//!   sides of equal RMS and correlation `rho` mix to a signal of the same RMS at every point
+//!   of the fade (`E[(g a + h b)^2] = (g^2 + h^2 + 2 rho g h) E[a^2]`): correlated sides
+//!   (`rho` = 1, the usual A/B of two versions of one circuit) get an equal-gain fade,
+//!   `g_out + g_in = 1`, whose peak never passes the larger side's (an equal-power fade would
+//!   add up to +3 dB at every switch); uncorrelated sides (`rho` = 0) an equal-power one,
+//!   `g_out^2 + g_in^2 = 1`.
 //! - The difference file is `A - gain * B`; its level is stated relative to A's RMS (dB below
 //!   the signal) and in dBFS with the AES17 convention (a full-scale sine reads 0 dBFS, so
 //!   `dBFS = 20 log10(sqrt 2 * rms / full_scale)`).
 //! - Figures are those of each side's own render (B before matching: headroom and clipping
 //!   belong to the circuit, not to the listening level).
-
-use std::f64::consts::FRAC_PI_2;
 
 use serde::Serialize;
 
@@ -70,11 +75,37 @@ pub fn loudness_gain(a: &[f64], b: &[f64], rate: f64, full_scale: f64) -> Option
     g.is_finite().then_some(g)
 }
 
-/// Crossfade gains at position `u` (0..1) through a crossfade: `(outgoing, incoming)` =
-/// `(cos(pi u / 2), sin(pi u / 2))`.
-pub fn crossfade_gains(u: f64) -> (f64, f64) {
+/// Crossfade gains at position `u` (0..1) through a crossfade between two sides of equal
+/// RMS and correlation `rho`: `(outgoing, incoming)` = `((1 - u) / d, u / d)`,
+/// `d = sqrt((1 - u)^2 + u^2 + 2 rho u (1 - u))` (`rho` held to 0..1). Equal gain at
+/// `rho = 1`, equal power at `rho = 0`.
+pub fn crossfade_gains(u: f64, rho: f64) -> (f64, f64) {
     let u = u.clamp(0.0, 1.0);
-    ((FRAC_PI_2 * u).cos(), (FRAC_PI_2 * u).sin())
+    let rho = if rho.is_finite() {
+        rho.clamp(0.0, 1.0)
+    } else {
+        0.0
+    };
+    let v = 1.0 - u;
+    let d = (v * v + u * u + 2.0 * rho * u * v).sqrt();
+    (v / d, u / d)
+}
+
+/// Correlation of two signals, `sum(a b) / sqrt(sum(a^2) sum(b^2))` (DC included; 0 when
+/// either is silent), over the shorter length.
+pub fn correlation(a: &[f64], b: &[f64]) -> f64 {
+    let (mut ab, mut aa, mut bb) = (0.0, 0.0, 0.0);
+    for (&x, &y) in a.iter().zip(b) {
+        ab += x * y;
+        aa += x * x;
+        bb += y * y;
+    }
+    let r = ab / (aa * bb).sqrt();
+    if r.is_finite() {
+        r
+    } else {
+        0.0
+    }
 }
 
 /// One segment of the alternating file.
@@ -172,14 +203,14 @@ impl Alternation {
         out
     }
 
-    /// Gains `(g_a, g_b)` at frame `n`.
-    pub fn gains(&self, n: usize) -> (f64, f64) {
+    /// Gains `(g_a, g_b)` at frame `n`, for sides of correlation `rho`.
+    pub fn gains(&self, n: usize, rho: f64) -> (f64, f64) {
         let h = self.fade / 2;
         let j = (n + h) / self.segment;
         let b = j * self.segment;
         let (prev, next, g_prev, g_next) = if j >= 1 && self.fade > 0 && n < b - h + self.fade {
             let u = ((n + h - b) as f64 + 0.5) / self.fade as f64;
-            let (o, i) = crossfade_gains(u);
+            let (o, i) = crossfade_gains(u, rho);
             (side_of(j - 1), side_of(j), o, i)
         } else {
             let s = side_of(n / self.segment);
@@ -203,8 +234,9 @@ impl Alternation {
         j >= 1 && self.fade > 0 && n < j * self.segment - h + self.fade
     }
 
-    /// The alternating signal of `a` and (already matched) `b`; both must be `frames` long.
-    pub fn render(&self, a: &[f64], b: &[f64]) -> Result<Vec<f64>, StudyError> {
+    /// The alternating signal of `a` and (already matched) `b`, both `frames` long, with the
+    /// crossfade law for their measured [`correlation`]; returns it with that correlation.
+    pub fn render(&self, a: &[f64], b: &[f64]) -> Result<(Vec<f64>, f64), StudyError> {
         if a.len() != self.frames || b.len() != self.frames {
             return Err(StudyError::Mismatch(format!(
                 "A has {} frames and B {}, the layout {}",
@@ -213,12 +245,14 @@ impl Alternation {
                 self.frames
             )));
         }
-        Ok((0..self.frames)
+        let rho = correlation(a, b).clamp(0.0, 1.0);
+        let mix = (0..self.frames)
             .map(|n| {
-                let (ga, gb) = self.gains(n);
+                let (ga, gb) = self.gains(n, rho);
                 ga * a[n] + gb * b[n]
             })
-            .collect())
+            .collect();
+        Ok((mix, rho))
     }
 }
 
@@ -447,6 +481,9 @@ pub struct OutputComparison {
     pub difference_dbfs: Option<f64>,
     /// Segments of the alternating file.
     pub segments: Vec<Segment>,
+    /// Correlation of A and matched B (0..1) that chose the alternating file's crossfade
+    /// law: 1 equal gain, 0 equal power.
+    pub crossfade_correlation: f64,
     /// Figures side by side.
     pub figures: Vec<FigureRow>,
     /// Sentences for the figures that moved.
@@ -490,7 +527,7 @@ pub fn compare_output(
         },
     })?;
     let b_matched: Vec<f64> = b.iter().map(|x| x * gain).collect();
-    let alternating = layout.render(a, &b_matched)?;
+    let (alternating, rho) = layout.render(a, &b_matched)?;
     let difference = difference(a, b, gain);
     let silent = rms(&difference) == 0.0;
     let figures = figure_rows(ra, rb);
@@ -503,6 +540,7 @@ pub fn compare_output(
         difference_below_db: (!silent).then(|| db_below(&difference, a)),
         difference_dbfs: (!silent).then(|| dbfs_rms(&difference, full_scale)),
         segments: layout.segments(),
+        crossfade_correlation: rho,
         figures,
         changes,
         b_matched,
