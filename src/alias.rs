@@ -485,7 +485,22 @@ pub fn estimate(
                 s.wave = Wave::Dc { level: 0.0 };
             }
         }
-        let settle = (measure::settle_time(&p) * p.rate).round() as usize;
+        let settle_s = measure::settle_time(&p);
+        if !(settle_s.is_finite() && settle_s <= patch.length) {
+            // the render itself never settles: nor would the capture
+            for i in outs {
+                result.push((
+                    patch.outputs[i].name.clone(),
+                    OutputAlias::none(&format!(
+                        "not estimated: the circuit settles in {:.3e} s, longer than the \
+                         render",
+                        settle_s
+                    )),
+                ));
+            }
+            continue;
+        }
+        let settle = (settle_s * p.rate).round() as usize;
         let frames = settle + n;
         p.length = frames as f64 / p.rate;
         let run = render::render(
