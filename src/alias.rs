@@ -24,7 +24,7 @@
 //! smooth linear filter between the two ([`difference_db`]: the first-order hold's droop and
 //! the discretised capacitors' phase are linear effects of the step, not alias), relative to
 //! the in-band signal, is an upper bound of the alias (it also holds the finer render's own
-//! alias, and any in-band nonlinear effect of the step size); its floor, about -85 dB, is
+//! alias, and any in-band nonlinear effect of the step size); its floor, about -80 to -100 dB, is
 //! the decimators' passband ripple.
 
 use crate::engine::halfband::PASS_EDGE;
@@ -63,7 +63,7 @@ pub const METHOD: &str = "measured on this patch, per output and per op-amp stag
     settle time plus up to 2^15 samples of the patch as it plays, against the same stretch with \
     the same source signals and stages stepping 4 times finer; the in-band difference, less \
     the best smooth linear filter between the two, re the in-band signal (an upper bound of \
-    the alias; floor about -85 dB, the decimators' passband ripple)";
+    the alias; floor about -80 to -100 dB: the decimators' passband ripple)";
 
 /// Alias of one stage's own output.
 #[derive(Debug, Clone, PartialEq, Serialize)]

@@ -326,7 +326,7 @@ pub(crate) fn print_alias(m: &measure::Measurement, patch: &Patch) {
                 fmt_eng(a.tone_hz.unwrap_or(0.0), "Hz")
             )
         } else {
-            "dB in band, measured on this patch (a stretch after the settle time against the same stretch with stages stepping 4 times finer: the in-band difference re the signal, smooth linear differences taken out, an upper bound; floor about -85 dB)".to_string()
+            "dB in band, measured on this patch (a stretch after the settle time against the same stretch with stages stepping 4 times finer: the in-band difference re the signal, smooth linear differences taken out, an upper bound; floor about -80 to -100 dB)".to_string()
         };
         say!(
             "  alias of {} at x{k}: {dbc:.1} {how}{}",

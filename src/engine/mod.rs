@@ -105,11 +105,11 @@
 //!
 //! | K | reversal, 2 V below the range | reversal, 1 V below | slew corners, 3x SR |
 //! |---|---|---|---|
-//! | 1 | -6.2 dBc | -9.4 dBc | -5.3 dBc |
-//! | 2 | -12.8 dBc | -16.8 dBc | -10.4 dBc |
-//! | 4 | -20.3 dBc | -22.6 dBc | -14.5 dBc |
-//! | 8 | -26.1 dBc | -29.9 dBc | -24.1 dBc |
-//! | 16 | -34.2 dBc | -37.4 dBc | -28.2 dBc |
+//! | 1 | -3.1 dBc | -5.8 dBc | -5.3 dBc |
+//! | 2 | -11.8 dBc | -15.8 dBc | -10.4 dBc |
+//! | 4 | -20.0 dBc | -22.2 dBc | -14.5 dBc |
+//! | 8 | -26.0 dBc | -29.7 dBc | -24.1 dBc |
+//! | 16 | -34.2 dBc | -37.5 dBc | -28.2 dBc |
 //!
 //! (Reversal: jfet-general follower on +/-12 V, 1 kHz at 10 and 9 V peak against an input
 //! range ending at -8 V; the output jumps rail to rail within one or two internal steps.
