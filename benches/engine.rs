@@ -1,6 +1,6 @@
 //! Engine throughput: a four-input summer with a restoring inverter at K = 4, 48 kHz, one
 //! core. Prints samples/s (base-rate frames per second of wall time) and times real time for
-//! a clean mix and a mix that clips. Only the processing is timed (compile and allocation
+//! a clean mix and a mix that clips, each with circuit noise off and on. Only the processing is timed (compile and allocation
 //! happen before the clock starts). Run with `cargo bench --bench engine`.
 
 use railsong::engine::{compile, Engine};
@@ -8,7 +8,7 @@ use railsong::model::*;
 use railsong::parts::builtin;
 use std::time::Instant;
 
-fn patch(amp: f64) -> Patch {
+fn patch(amp: f64, noise: bool) -> Patch {
     let jf = builtin("jfet-general").expect("built-in");
     let freqs = [110.0, 440.0, 997.0, 3150.0];
     let sources = freqs
@@ -40,7 +40,7 @@ fn patch(amp: f64) -> Patch {
         length: 10.0,
         oversample: 4,
         seed: 1,
-        noise: false,
+        noise,
         temperature: 298.15,
         rails: Rails {
             pos: 12.0,
@@ -101,8 +101,8 @@ fn cpu_time() -> Option<f64> {
     Some(ns * 1e-9)
 }
 
-fn measure(label: &str, amp: f64, seconds: f64) {
-    let p = patch(amp);
+fn measure(label: &str, amp: f64, noise: bool, seconds: f64) {
+    let p = patch(amp, noise);
     let plan = compile(&p).expect("bench patch compiles");
     let mut e = Engine::new(&plan);
     let frames = (seconds * p.rate) as usize;
@@ -150,9 +150,15 @@ fn main() {
     // RAILSONG_BENCH=clean or =clipping runs one case only (for profiling).
     let only = std::env::var("RAILSONG_BENCH").unwrap_or_default();
     if only.is_empty() || only == "clean" {
-        measure("clean", 0.5, 20.0);
+        measure("clean", 0.5, false, 20.0);
+    }
+    if only.is_empty() || only == "noise" {
+        measure("clean+noise", 0.5, true, 20.0);
     }
     if only.is_empty() || only == "clipping" {
-        measure("clipping", 5.0, 5.0);
+        measure("clipping", 5.0, false, 5.0);
+    }
+    if only.is_empty() || only == "clipnoise" {
+        measure("clip+noise", 5.0, true, 5.0);
     }
 }

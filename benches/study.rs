@@ -7,6 +7,7 @@ use std::path::Path;
 use std::time::Instant;
 
 use railsong::analysis::Settings;
+use railsong::study::length::StudyLength;
 use railsong::study::sweep::{self, PatchText, Spacing};
 use railsong::study::tolerance::{self, Tolerances};
 
@@ -44,6 +45,7 @@ fn main() {
         "sources.bar.amp",
         &values,
         &Settings::default(),
+        StudyLength::default(),
         &|| {},
     )
     .expect("sweep");
@@ -64,8 +66,16 @@ fn main() {
         capacitor: 0.05,
     };
     let t = Instant::now();
-    let rep =
-        tolerance::study(&patch, &tol, 1000, 1, &Settings::default(), &|| {}).expect("tolerance");
+    let rep = tolerance::study(
+        &patch,
+        &tol,
+        1000,
+        1,
+        &Settings::default(),
+        StudyLength::default(),
+        &|| {},
+    )
+    .expect("tolerance");
     let dt = t.elapsed().as_secs_f64();
     println!(
         "tolerance: 1000 runs x 1 s, {threads} thread(s): {dt:.2} s wall ({:.1} ms per run); gain spread {:?}",

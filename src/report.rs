@@ -546,16 +546,22 @@ pub fn base64(bytes: &[u8]) -> String {
     out
 }
 
-/// A 16-bit WAV file of `samples` (volts) at the patch calibration, as bytes.
-pub fn wav_bytes(samples: &[f64], rate: f64, full_scale: f64, seed: u64) -> Vec<u8> {
-    use crate::signal::{Depth, WavSpec, WavWriter};
-    let spec = WavSpec {
+/// The WAV format of a player: 16-bit mono at the patch calibration, dither seeded by its
+/// place on the page (the same bytes whether embedded or written beside the page).
+pub fn player_spec(rate: f64, full_scale: f64, seed: u64) -> crate::signal::WavSpec {
+    crate::signal::WavSpec {
         rate: rate.round() as u32,
         channels: 1,
-        depth: Depth::Pcm16,
+        depth: crate::signal::Depth::Pcm16,
         full_scale,
         dither_seed: seed,
-    };
+    }
+}
+
+/// A 16-bit WAV file of `samples` (volts) at the patch calibration, as bytes.
+pub fn wav_bytes(samples: &[f64], rate: f64, full_scale: f64, seed: u64) -> Vec<u8> {
+    use crate::signal::WavWriter;
+    let spec = player_spec(rate, full_scale, seed);
     let cur = std::io::Cursor::new(Vec::new());
     let Ok(mut w) = WavWriter::new(cur, spec) else {
         return Vec::new();
@@ -576,6 +582,41 @@ pub struct Player<'a> {
     pub samples: &'a [f64],
     /// Fade at the edges of the embedded file (the figures come from the unfaded signal).
     pub fade: crate::signal::EdgeFade,
+}
+
+/// Largest total size of the audio a page embeds (the base64 text of every player's WAV),
+/// bytes: above it the page links WAV files written beside it instead (issue 13: a light
+/// page; embedded audio costs about 11.5 MB per minute of 48 kHz audio).
+pub const EMBED_MAX_BYTES: usize = 5_000_000;
+
+/// Size of the `data:` URIs that would embed every player (16-bit mono WAV, base64), bytes.
+pub fn embedded_audio_bytes(players: &[Player]) -> usize {
+    // header (at most 64 bytes for plain 16-bit PCM) plus two bytes a sample, in base64
+    players
+        .iter()
+        .map(|p| 4 * (64 + 2 * p.samples.len()).div_ceil(3))
+        .sum()
+}
+
+/// Where the page's players take their audio: `None` embeds every WAV in the page (small
+/// pages); `Some(names)` links one WAV file per player, written beside the page under those
+/// names (`listen-N-LABEL.wav`, N from 1 in player order), when embedding would take more
+/// than [`EMBED_MAX_BYTES`].
+pub fn linked_audio(players: &[Player]) -> Option<Vec<String>> {
+    (embedded_audio_bytes(players) > EMBED_MAX_BYTES).then(|| {
+        players
+            .iter()
+            .enumerate()
+            .map(|(i, p)| {
+                let stem: String = p
+                    .label
+                    .chars()
+                    .map(|c| if c.is_ascii_alphanumeric() { c } else { '-' })
+                    .collect();
+                format!("listen-{}-{}.wav", i + 1, stem.trim_matches('-'))
+            })
+            .collect()
+    })
 }
 
 /// The comment lines at the top of a patch file (its title and job), without the `#`.
@@ -603,7 +644,9 @@ pub struct FigureTable<'a> {
 
 /// The listening page: the figures of `main` (whose settings set the rate and calibration of
 /// the players) and of `other` (side B of a comparison); `sections` are extra HTML blocks
-/// (e.g. an A/B comparison).
+/// (e.g. an A/B comparison). `linked` ([`linked_audio`]): the file names of the players'
+/// WAVs beside the page, or `None` to embed them as `data:` URIs.
+#[allow(clippy::too_many_arguments)]
 pub fn page(
     patch: &Patch,
     patch_text: &str,
@@ -611,6 +654,7 @@ pub fn page(
     other: Option<FigureTable>,
     figures: &[Figure],
     players: &[Player],
+    linked: Option<&[String]>,
     sections: &[String],
 ) -> String {
     let m = main.m;
@@ -642,20 +686,32 @@ figure{{margin:1em 0}}figure svg{{max-width:100%;height:auto}}.caution{{color:#8
     // Players.
     let _ = writeln!(h, "<h2>Listen</h2>\n<div class=\"players\">");
     for (i, p) in players.iter().enumerate() {
-        let wav = wav_bytes(
-            &p.fade.applied(p.samples),
-            m.settings.rate_hz,
-            m.settings.full_scale_v,
-            i as u64 + 1,
-        );
+        let src = match linked.and_then(|l| l.get(i)) {
+            Some(name) => escape(name),
+            None => {
+                let wav = wav_bytes(
+                    &p.fade.applied(p.samples),
+                    m.settings.rate_hz,
+                    m.settings.full_scale_v,
+                    i as u64 + 1,
+                );
+                format!("data:audio/wav;base64,{}", base64(&wav))
+            }
+        };
         let _ = writeln!(
             h,
             "<div class=\"player\"><div><b>{}</b></div><div>{}</div>\
-<audio controls preload=\"auto\" data-name=\"{}\" src=\"data:audio/wav;base64,{}\"></audio></div>",
+<audio controls preload=\"auto\" data-name=\"{}\" src=\"{src}\"></audio></div>",
             escape(&p.label),
             escape(&p.note),
             escape(&p.label),
-            base64(&wav)
+        );
+    }
+    if linked.is_some() {
+        let _ = writeln!(
+            h,
+            "<p class=\"note\">The players read the WAV files beside this page (keep them in \
+the same folder).</p>"
         );
     }
     let _ = writeln!(h, "</div>");

@@ -149,6 +149,73 @@ fn report_page_loads_every_plot_and_player_in_a_browser() {
     let _ = std::fs::copy(&shot, keep);
 }
 
+// A light page (issue 13): above 5 MB of embedded audio (here three outputs of 20 s: about
+// 7.7 MB of base64 16-bit WAV) the page links WAV files written beside it, stays small, and
+// every player still loads in the browser from the file:// page.
+#[test]
+fn a_long_report_links_its_audio_and_the_players_load() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path().to_str().unwrap();
+    let out = railsong(&[
+        "report",
+        "patches/demo.toml",
+        "--out",
+        d,
+        "--set",
+        "patch.length=20 s",
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let page = dir.path().join("report.html");
+    let html = std::fs::read_to_string(&page).unwrap();
+    assert!(!html.contains("data:audio"), "audio still embedded");
+    assert!(html.len() < 1_000_000, "page of {} bytes", html.len());
+    let outputs = ["clean", "rails", "reversal"];
+    for (i, o) in outputs.iter().enumerate() {
+        let name = format!("listen-{}-{o}.wav", i + 1);
+        assert!(
+            html.contains(&format!("src=\"{name}\"")),
+            "no link to {name}"
+        );
+        // a complete 16-bit WAV of the whole 20 s (read back with hound, a general library)
+        let r = hound::WavReader::open(dir.path().join(&name)).unwrap();
+        assert_eq!(r.spec().bits_per_sample, 16);
+        assert_eq!(r.duration(), 20 * 48_000);
+    }
+    let Some(browser) = chromium() else {
+        assert!(
+            std::env::var_os("CI").is_none(),
+            "chromium is missing on CI: .ci/run must install it"
+        );
+        eprintln!("skipping the browser half: chromium is not installed (CI installs it)");
+        return;
+    };
+    let url = format!("file://{}", page.display());
+    let profile = tempfile::tempdir().unwrap();
+    let dom = headless(browser, profile.path())
+        .args(["--virtual-time-budget=20000", "--dump-dom", &url])
+        .output()
+        .expect("chromium runs");
+    let dom = String::from_utf8_lossy(&dom.stdout);
+    let body = dom
+        .split("<body")
+        .nth(1)
+        .and_then(|b| b.split('>').next())
+        .unwrap_or_else(|| panic!("no body in the DOM: {}", &dom[..dom.len().min(500)]));
+    let attr = |k: &str| {
+        body.split(&format!("{k}=\""))
+            .nth(1)
+            .and_then(|r| r.split('"').next())
+            .and_then(|v| v.parse::<usize>().ok())
+            .unwrap_or_else(|| panic!("body has no {k}: {body}"))
+    };
+    assert_eq!(attr("data-audio-loaded"), outputs.len(), "{body}");
+    assert_eq!(attr("data-audio-failed"), 0, "{body}");
+}
+
 // Inverting gain -Rf/Rin (textbook): the "hot" variant has 3.3 times the feedback resistor,
 // so before clipping it would be 10.4 dB louder; matched by RMS, B comes back down by about
 // that much (a little less, since it clips on the rails).

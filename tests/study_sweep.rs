@@ -192,6 +192,7 @@ fn sweep_order_and_numbers_independent_of_threads() {
                     "sources.osc.amp",
                     &values,
                     &Settings::default(),
+                    railsong::study::length::StudyLength::default(),
                     &|| {},
                 )
                 .unwrap()

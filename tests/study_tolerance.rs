@@ -1,6 +1,7 @@
 //! Tolerance (Monte Carlo) studies: closed-form channel gains and seeded, thread-count
 //! independent runs.
 
+use railsong::study::length::StudyLength;
 use std::path::Path;
 
 use railsong::analysis::Settings;
@@ -84,6 +85,7 @@ fn equal_resistor_summer_spread_within_two_percent() {
         300,
         42,
         &Settings::default(),
+        StudyLength::default(),
         &|| {},
     )
     .unwrap();
@@ -123,7 +125,18 @@ fn same_seed_same_numbers_on_any_thread_count() {
             .num_threads(threads)
             .build()
             .unwrap()
-            .install(|| study(&p, &ONE_PERCENT, 24, 9, &Settings::default(), &|| {}).unwrap())
+            .install(|| {
+                study(
+                    &p,
+                    &ONE_PERCENT,
+                    24,
+                    9,
+                    &Settings::default(),
+                    StudyLength::default(),
+                    &|| {},
+                )
+                .unwrap()
+            })
     };
     let one = go(1);
     let three = go(3);
@@ -132,7 +145,18 @@ fn same_seed_same_numbers_on_any_thread_count() {
         .num_threads(2)
         .build()
         .unwrap()
-        .install(|| study(&p, &ONE_PERCENT, 24, 10, &Settings::default(), &|| {}).unwrap());
+        .install(|| {
+            study(
+                &p,
+                &ONE_PERCENT,
+                24,
+                10,
+                &Settings::default(),
+                StudyLength::default(),
+                &|| {},
+            )
+            .unwrap()
+        });
     assert_ne!(one.runs[0].channels, other.runs[0].channels);
 }
 

@@ -98,38 +98,22 @@ pub(crate) fn safe_stem(s: &str) -> String {
     }
 }
 
-pub(crate) fn progress_bar(frames: usize, rate: f64) -> Option<indicatif::ProgressBar> {
-    if (frames as f64) < 2.0 * rate {
-        return None;
-    }
-    let bar = indicatif::ProgressBar::new(1000);
-    bar.set_style(
-        indicatif::ProgressStyle::with_template("rendering {bar:40} {percent:>3}% {eta}")
-            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
-    );
-    Some(bar)
-}
-
-/// Run `f` with a progress callback that drives a bar on stderr when asked and the patch is
-/// long enough to need one.
+/// Run `f` with a progress callback: a bar on a terminal when asked and the patch is at least
+/// 2 s long, lines on a piped stderr once the render has taken 2 s ([`super::progress`]),
+/// nothing with `--quiet`.
 pub(crate) fn with_progress<T>(
     patch: &Patch,
     show: bool,
     f: impl FnOnce(&mut dyn FnMut(f64)) -> Result<T, RenderError>,
 ) -> Result<T, Failure> {
-    let bar = if show {
-        progress_bar(patch.frames(), patch.rate)
-    } else {
-        None
-    };
-    let r = f(&mut |x| {
-        if let Some(b) = &bar {
-            b.set_position((x * 1000.0) as u64);
-        }
-    });
-    if let Some(b) = bar {
-        b.finish_and_clear();
+    if !show {
+        return f(&mut |_| {}).map_err(render_error);
     }
+    let bar = (patch.frames() as f64) >= 2.0 * patch.rate;
+    let seconds = (patch.frames() as f64 / patch.rate).round() as u64;
+    let p = super::progress::Progress::new(seconds.max(1), "rendering", "s of audio", bar);
+    let r = f(&mut |x| p.set_fraction(x));
+    p.finish();
     r.map_err(render_error)
 }
 
@@ -255,21 +239,6 @@ pub(crate) fn depth_of(flags: &RenderFlags) -> Depth {
         "float" => Depth::Float32,
         _ => Depth::Pcm24,
     }
-}
-
-pub(crate) fn bar(n: usize, what: &str) -> indicatif::ProgressBar {
-    // The stderr target draws nothing when stderr is not a terminal.
-    let b = indicatif::ProgressBar::with_draw_target(
-        Some(n as u64),
-        indicatif::ProgressDrawTarget::stderr(),
-    );
-    b.set_style(
-        indicatif::ProgressStyle::with_template(&format!(
-            "{what} {{bar:40}} {{pos}}/{{len}} {{eta}}"
-        ))
-        .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
-    );
-    b
 }
 
 pub(crate) fn variant_names(path: &Path) -> Result<Vec<String>, Failure> {

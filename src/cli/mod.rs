@@ -14,6 +14,7 @@ mod demo;
 mod measure;
 mod noise;
 mod parts;
+mod progress;
 mod render;
 mod report;
 mod sweep;
@@ -57,6 +58,10 @@ clips, slews, leaves its input range or reverses phase."
 struct Cli {
     #[command(subcommand)]
     command: Command,
+    /// No progress output on stderr (by default a bar on a terminal; on a pipe or log, a
+    /// line every few seconds once a run has taken 2 s).
+    #[arg(long, global = true)]
+    quiet: bool,
 }
 
 #[derive(Subcommand, Debug)]
@@ -258,6 +263,10 @@ enum Command {
         /// Overwrite plot files railsong did not write.
         #[arg(long)]
         force: bool,
+        /// Render every point at the patch's whole length (default for a stationary patch:
+        /// the settle time plus one capture, same figures, faster).
+        #[arg(long)]
+        full: bool,
     },
     /// Monte Carlo over every resistor and capacitor within its tolerance.
     #[command(
@@ -292,6 +301,10 @@ renders/<patch name>/): <output>-tolerance-gain.svg, a histogram of the output's
         /// Print the whole study as JSON.
         #[arg(long)]
         json: bool,
+        /// Render every run at the patch's whole length (default for a stationary patch: the
+        /// settle time plus one capture, same figures, faster).
+        #[arg(long)]
+        full: bool,
         #[command(flatten)]
         out: RenderFlags,
         /// Override a value by dotted path (repeatable).
@@ -409,6 +422,7 @@ pub fn run() -> Result<(), Failure> {
             )));
         }
     };
+    progress::set_quiet(cli.quiet);
     match cli.command {
         Command::Check {
             patch,
@@ -530,6 +544,7 @@ pub fn run() -> Result<(), Failure> {
             plots,
             out,
             force,
+            full,
         } => sweep::cmd_sweep(&sweep::SweepArgs {
             patch: &patch,
             set: &set,
@@ -544,6 +559,7 @@ pub fn run() -> Result<(), Failure> {
             csv,
             json,
             plots: plots.then_some((out, force)),
+            length: study_length(full),
         }),
         Command::Tolerance {
             patch,
@@ -554,6 +570,7 @@ pub fn run() -> Result<(), Failure> {
             seed,
             render_run,
             json,
+            full,
             out,
             sets,
         } => tolerance::cmd_tolerance(&tolerance::ToleranceArgs {
@@ -567,7 +584,16 @@ pub fn run() -> Result<(), Failure> {
             sets: &sets,
             flags: &out,
             json,
+            length: study_length(full),
         }),
+    }
+}
+
+fn study_length(full: bool) -> railsong::study::length::StudyLength {
+    if full {
+        railsong::study::length::StudyLength::Full
+    } else {
+        railsong::study::length::StudyLength::Short
     }
 }
 

@@ -122,6 +122,24 @@ pub(crate) fn cmd_report(
             sections.push(report::comparison_section(results, a, b));
         }
     }
+    // A light page: above report::EMBED_MAX_BYTES of audio the players link WAV files
+    // written beside the page (before it, so the page never points at a missing file). Every
+    // file name is checked before anything is written.
+    let linked = report::linked_audio(&players);
+    let mut names: Vec<String> = linked.clone().unwrap_or_default();
+    if flags.plots {
+        names.extend(figs.iter().map(|f| f.file_name()));
+    }
+    folder.check_all(&names).map_err(signal_error)?;
+    if let Some(names) = &linked {
+        for (i, (name, p)) in names.iter().zip(&players).enumerate() {
+            let spec =
+                report::player_spec(m.settings.rate_hz, m.settings.full_scale_v, i as u64 + 1);
+            folder
+                .write(name, spec, &p.fade.applied(p.samples))
+                .map_err(signal_error)?;
+        }
+    }
     let (main, other) = match (&comparison, &side_b) {
         (Some((_, a, b)), Some((_, mb))) => (
             report::FigureTable {
@@ -135,11 +153,16 @@ pub(crate) fn cmd_report(
         ),
         _ => (report::FigureTable { side: None, m: &m }, None),
     };
-    if flags.plots {
-        let names: Vec<String> = figs.iter().map(|f| f.file_name()).collect();
-        folder.check_all(&names).map_err(signal_error)?;
-    }
-    let html = report::page(&patch, &text, main, other, &figs, &players, &sections);
+    let html = report::page(
+        &patch,
+        &text,
+        main,
+        other,
+        &figs,
+        &players,
+        linked.as_deref(),
+        &sections,
+    );
     folder
         .write_text("report.html", &html)
         .map_err(signal_error)?;

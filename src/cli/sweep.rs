@@ -5,10 +5,12 @@ use std::path::{Path, PathBuf};
 use railsong::analysis::Settings;
 use railsong::measure;
 use railsong::parts::eseries::Series;
+use railsong::study::length::StudyLength;
 use railsong::study::sweep::{self, PatchText, Spacing, Value};
 use railsong::units::fmt_eng;
 
-use super::common::{bar, default_dir, failure_io, signal_error, stem_of, study_error};
+use super::common::{default_dir, failure_io, signal_error, stem_of, study_error};
+use super::progress::Progress;
 use super::Failure;
 
 /// Options of `sweep`.
@@ -27,6 +29,8 @@ pub(crate) struct SweepArgs<'a> {
     pub json: bool,
     /// Write plots: (folder, force).
     pub plots: Option<(Option<PathBuf>, bool)>,
+    /// Settle time plus one capture per point, or the whole length (`--full`).
+    pub length: StudyLength,
 }
 
 pub(crate) fn split_range<'s>(flag: &str, s: &'s str) -> Result<(&'s str, &'s str), Failure> {
@@ -113,11 +117,19 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
     first.push(format!("{path}={}", values[0].text));
     let base = railsong::patch::parse_str_variant(&text, &origin, &base_dir, args.variant, &first)
         .map_err(Failure::bad_input)?;
-    let pb = bar(values.len(), "sweeping");
+    let pb = Progress::new(values.len() as u64, "sweep", "points", true);
     let tick = || pb.inc(1);
-    let pts = sweep::run(&src, args.with, &path, &values, &Settings::default(), &tick)
-        .map_err(study_error)?;
-    pb.finish_and_clear();
+    let pts = sweep::run(
+        &src,
+        args.with,
+        &path,
+        &values,
+        &Settings::default(),
+        args.length,
+        &tick,
+    )
+    .map_err(study_error)?;
+    pb.finish();
 
     let mut folder = match &args.plots {
         Some((dir, force)) => {
@@ -179,6 +191,7 @@ pub(crate) fn cmd_sweep(args: &SweepArgs) -> Result<(), Failure> {
                 railsong::analysis::sweep::CROSSING_TOLERANCE,
                 &Settings::default(),
                 &o.name,
+                args.length,
             )
             .map_err(study_error)
         };

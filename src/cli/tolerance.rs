@@ -5,10 +5,12 @@ use std::path::Path;
 use railsong::analysis::Settings;
 use railsong::model::Patch;
 use railsong::parts::eseries::Series;
+use railsong::study::length::StudyLength;
 use railsong::study::tolerance::{self, Spread, Tolerances};
 use railsong::units;
 
-use super::common::{bar, default_dir, failure_io, signal_error, stem_of, study_error};
+use super::common::{default_dir, failure_io, signal_error, stem_of, study_error};
+use super::progress::Progress;
 use super::render::render_to;
 use super::{load, Failure, RenderFlags};
 
@@ -24,6 +26,8 @@ pub(crate) struct ToleranceArgs<'a> {
     pub sets: &'a [String],
     pub flags: &'a RenderFlags,
     pub json: bool,
+    /// Settle time plus one capture per run, or the whole length (`--full`).
+    pub length: StudyLength,
 }
 
 pub(crate) fn series_tolerance(s: Series) -> f64 {
@@ -131,11 +135,19 @@ pub(crate) fn cmd_tolerance(args: &ToleranceArgs) -> Result<(), Failure> {
     if args.runs == 0 {
         return Err(Failure::bad_input("--runs 0: expected 1 or more"));
     }
-    let pb = bar(args.runs, "tolerance runs");
+    let pb = Progress::new(args.runs as u64, "tolerance", "runs", true);
     let tick = || pb.inc(1);
-    let rep = tolerance::study(&patch, &tol, args.runs, seed, &Settings::default(), &tick)
-        .map_err(study_error)?;
-    pb.finish_and_clear();
+    let rep = tolerance::study(
+        &patch,
+        &tol,
+        args.runs,
+        seed,
+        &Settings::default(),
+        args.length,
+        &tick,
+    )
+    .map_err(study_error)?;
+    pb.finish();
     if args.flags.plots {
         let dir = args
             .flags

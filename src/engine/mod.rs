@@ -123,7 +123,14 @@
 //! Each stage first runs a block as the linear recursion and checks it: |Vd| below
 //! [`plan::FAST_VD`] times Vov (so `phi` is 1 within 1e-5), state inside its clamp, V+ inside
 //! the common-mode range (20 * 0.2 V inside it for reversing parts). A block that fails is
-//! recomputed with the full model. The clipper runs the same way on both paths. When the
+//! recomputed sample by sample (issue 13, `run::hybrid_block`): each sample keeps the linear
+//! step when it passes the same checks before and after the step, a weakly nonlinear sample
+//! (`z0 = |Vd| / Vov < 1/2`, `f = 1`, `k b h >= 1`) takes the full step through per-stage
+//! polynomials in `z0^2` fitted once at the Chebyshev points of the exact step
+//! (`run::WeakStep`, within 3e-12 V of it, tested), and the rest takes the full step with the
+//! engine's own exp/ln/sinh/asinh ([`fastmath`], a few ulp). With the fast path off
+//! ([`Engine::set_fast_path`]) every sample runs the plain reference: the full model with the
+//! library's functions. The clipper runs the same way on every path. When the
 //! recursion's memory `e = exp(-k b h)` satisfies `e^2 <= 1e-17` (fast parts, e.g. the JFET
 //! and bipolar profiles at K = 4) the weight of the output two steps back is negligible and
 //! the recursion is evaluated as a three-tap FIR on p, fused with the checks (no serial
@@ -135,9 +142,10 @@
 //! arithmetic in wider vectors (no fused multiply-add), so results do not depend on it.
 //!
 //! Measured (`cargo bench --bench engine`, four-input summer plus restoring inverter,
-//! jfet-general, K = 4, one core of a shared 2-core machine): clean mix about 8e2 times real
-//! time at 48 kHz by CPU time (4.0e7 samples/s), a mix that clips all the time about 27 times
-//! real time (the full model in every block).
+//! jfet-general, K = 4, one core of a shared 2-core machine): clean mix about 1000 times real
+//! time at 48 kHz by CPU time (4.8e7 samples/s), a mix that clips all the time about 65 times
+//! real time (31 before the per-sample shortcut; most of its samples are weakly nonlinear,
+//! the clipped ones need the serial full step).
 //!
 //! # Noise
 //! With `patch.noise` on (the default for renders) the engine adds circuit noise, each source
@@ -167,11 +175,15 @@
 //! an inverting-node branch at its Millman weight (`G_i / G_total`), a V+ source directly.
 //! Independent white sources entering the same equation are combined into one Gaussian with
 //! the summed variance (statistically identical: a sum of independent Gaussians is Gaussian
-//! with the summed variance), so a stage draws one white and one 1/f Gaussian per internal
-//! sample (one Box-Muller pair) and an output half a pair. The noise of a block is generated
-//! before the fast-path decision, so both paths see the same samples (they agree within
-//! 1 uV with noise on, tested); noise is tiny and linear, so the fast-path checks hold. The
-//! Gaussians are xoshiro256++ words through a branch-free, vectorisable Box-Muller
+//! with the summed variance), so a stage draws one white sample per internal sample and a
+//! 1/f sample per hold. Issue 13 (cost): the white drive noise is one xoshiro256++ word per
+//! sample summed as four 16-bit uniforms (Irwin-Hall, unit variance; the decimation filter
+//! makes what reaches an output Gaussian, tested by its kurtosis); the 1/f part runs at
+//! `fs / floor(fs / 64 kHz)` with a hold ([`noise::FLICKER_MIN_RATE`]) from Box-Muller
+//! Gaussians; an output's thermal noise, independent of the circuit, is added at the base
+//! rate after decimation with its in-band density. The noise of a block is generated before
+//! the fast-path decision, so both paths see the same samples (they agree within 1 uV with
+//! noise on, tested); noise is tiny and linear, so the fast-path checks hold
 //! ([`noise::NoiseStream`]); every stream's seed comes from the patch seed and the owner and
 //! label (`stages.NAME` / `vd`, `outputs.NAME` / `thermal`), so a seed gives a bit-identical
 //! render, another seed another one, and noise off gives exactly the noiseless render.
@@ -187,9 +199,10 @@
 //! Measured (tests/engine_noise.rs, 1 s renders, 20 Hz - 20 kHz): a lone 100k resistor
 //! +0.01 dB from `sqrt(4 k T R B)`; inverting stages of gain 1, 10, 100 within 0.09 dB of
 //! the analytic budget (jfet-general and bipolar-lownoise); the 1/f ratio of 20-50 Hz to
-//! 2-5 kHz within 0.15 dB of the closed form for fc = 100 Hz and 1 kHz (120 s renders). Speed (the bench
-//! patch with noise on, by CPU time): about 140 times real time, against about 850 without
-//! noise; the 1/f filters take about half of it.
+//! 2-5 kHz within 0.3 dB of the closed form for fc = 100 Hz and 1 kHz (120 s renders; its
+//! standard error is about 0.1 dB). Speed (the bench patch with noise on, by CPU time): about
+//! 330 times real time against about 1000 without noise (140 against 850 before issue 13);
+//! the stages' 1/f filters, run one after the other, are most of the rest.
 //!
 //! # Events
 //! Per stage and step, accumulated as seconds over the internal steps processed (including
@@ -203,6 +216,7 @@
 //! measured with the engine bench (clean mix, noise off, 10 alternating runs, medians by CPU
 //! time) they cost about 9 % of the fast path (1009 -> 920 times real time).
 
+pub mod fastmath;
 pub mod feed;
 pub mod halfband;
 pub mod noise;

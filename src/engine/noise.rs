@@ -18,6 +18,11 @@ pub const FLICKER_LOW_HZ: f64 = 3.0;
 pub const FLICKER_HIGH_HZ: f64 = 100e3;
 /// Most sections of the 1/f filter (3 Hz to 100 kHz at two per decade needs 9).
 pub const MAX_SECTIONS: usize = 10;
+/// Lowest rate the engine runs a 1/f filter at, Hz: a stage's 1/f part runs at
+/// `fs / floor(fs / FLICKER_MIN_RATE)` (64 kHz at K = 4 and 48 kHz), each value held, which
+/// keeps the held part within 0.1 dB over 20 Hz - 5 kHz and its share of the total noise
+/// within 0.1 dB up to 20 kHz (see [`NoiseStream`]).
+pub const FLICKER_MIN_RATE: f64 = 64e3;
 /// Pole-zero pairs of the 1/f filter per decade.
 pub const FLICKER_PER_DECADE: f64 = 2.0;
 
@@ -132,21 +137,19 @@ impl Flicker {
         h2
     }
 
-    /// `out[n] = w * white[n] + f * H(pink)[n]` over a block, `H` without
-    /// [`Flicker::gain`]. Transposed direct form II, `y = x + s`, `s = b1 x - a1 y` per
-    /// section (padding sections have `b1 = a1 = 0`: exactly the identity).
+    /// `out[n] = f * H(x)[n]` over a block (the 1/f part alone).
     #[inline(always)]
-    fn mix_block(&mut self, pairs: &[f64], w: f64, f: f64, out: &mut [f64]) {
+    fn shape_block(&mut self, x: &[f64], f: f64, out: &mut [f64]) {
         let (b1, a1) = (self.b1, self.a1);
         let mut st = self.state;
-        for (o, g) in out.iter_mut().zip(pairs.chunks_exact(2)) {
-            let mut y = g[1];
+        for (o, &g) in out.iter_mut().zip(x) {
+            let mut y = g;
             for j in 0..MAX_SECTIONS {
                 let x = y;
                 y = x + st[j];
                 st[j] = b1[j] * x - a1[j] * y;
             }
-            *o = w * g[0] + f * y;
+            *o = f * y;
         }
         self.state = st;
     }
@@ -228,11 +231,37 @@ fn gaussians(words: &[u64], out: &mut [f64]) {
     }
 }
 
+/// Unit-variance white samples from raw 64-bit words, one word each: the sum of the word's
+/// four 16-bit fields (Irwin-Hall with four uniforms: zero mean, unit variance after
+/// scaling, excess kurtosis -0.3, bounded at 3.46 sigma), branch-free and vectorisable. The
+/// engine's white noise uses these at the internal rate (issue 13: one word a sample instead
+/// of half a Box-Muller pair); what anyone hears or measures is that noise after the
+/// decimation filter, a weighted sum of many samples, which is Gaussian by the central limit
+/// theorem (tested on the output in `tests/engine_noise.rs`). The 1/f part keeps the exact
+/// Gaussians of [`gaussians`].
+#[inline(always)]
+fn white_samples(words: &[u64], out: &mut [f64]) {
+    // each field uniform on 0..=65535: mean 32767.5, variance (65536^2 - 1) / 12
+    const MEAN: f64 = 4.0 * 32_767.5;
+    let inv_sigma = 1.0 / (4.0 * (65_536.0f64 * 65_536.0 - 1.0) / 12.0).sqrt();
+    for (o, &w) in out.iter_mut().zip(words) {
+        let s = (w & 0xffff) + ((w >> 16) & 0xffff) + ((w >> 32) & 0xffff) + (w >> 48);
+        *o = (s as f64 - MEAN) * inv_sigma;
+    }
+}
+
 /// A seeded noise stream of the engine at the internal rate: `white` (one-sided density,
 /// V/sqrt(Hz)) plus a 1/f part of density^2 `flicker^2 / f`, independent of each other.
-/// Each sample costs one Gaussian pair when there is a 1/f part, half a pair otherwise.
-/// Scratch is sized for blocks of `block` samples at construction; [`NoiseStream::fill`]
-/// does not allocate.
+///
+/// The 1/f part may run at a lower rate, `rate / hold` (the engine uses at least
+/// [`FLICKER_MIN_RATE`], issue 13: it is a low-frequency signal), each of its samples held
+/// for `hold` internal samples: a zero-order hold keeps the spectral density at low
+/// frequencies and rolls it off by `sinc^2(f hold / rate)` (-0.09 dB at 5 kHz, -1.4 dB at
+/// 20 kHz at 64 kHz), where the 1/f part is far below the white part (`fc / f` of it), so the
+/// total changes by less than 0.1 dB in the audio band; the images above the base band are
+/// removed by the decimator. Each internal sample costs half a Gaussian pair for the white part, plus half a
+/// pair and the 1/f filter per `hold` samples. Scratch is sized for blocks of `block` samples
+/// at construction; [`NoiseStream::fill`] does not allocate.
 #[derive(Debug, Clone)]
 pub struct NoiseStream {
     seed: u64,
@@ -240,28 +269,60 @@ pub struct NoiseStream {
     white_sigma: f64,
     flicker_sigma: f64,
     flicker: Option<Flicker>,
+    hold: usize,
+    block: usize,
+    /// Position within the current hold, and the held 1/f value.
+    phase: usize,
+    held: f64,
     words: Vec<u64>,
     gauss: Vec<f64>,
+    fbuf: Vec<f64>,
 }
 
 impl NoiseStream {
     /// A stream at sampling rate `rate` (Hz), filled in blocks of at most `block` samples
     /// (longer requests are split). The white part's per-sample sigma is
     /// `white * sqrt(rate / 2)` (white noise of one-sided density `d` sampled at `fs` has
-    /// variance `d^2 fs / 2`).
+    /// variance `d^2 fs / 2`); the 1/f part at the full rate.
     pub fn new(white: f64, flicker: f64, rate: f64, seed: u64, block: usize) -> NoiseStream {
+        NoiseStream::with_hold(white, flicker, rate, seed, block, 1)
+    }
+
+    /// As [`NoiseStream::new`], with the 1/f part at `rate / hold`, each value held `hold`
+    /// samples (see the type's docs).
+    pub fn with_hold(
+        white: f64,
+        flicker: f64,
+        rate: f64,
+        seed: u64,
+        block: usize,
+        hold: usize,
+    ) -> NoiseStream {
+        let hold = hold.max(1);
+        let frate = rate / hold as f64;
         let scale = (0.5 * rate).sqrt();
-        let fl = (flicker > 0.0).then(|| Flicker::new(rate));
+        let fl = (flicker > 0.0).then(|| Flicker::new(frate));
         let fg = fl.as_ref().map_or(0.0, |f| f.gain());
-        let n = 2 * block.max(1).div_ceil(2) * if fl.is_some() { 2 } else { 1 };
+        let block = block.max(1);
+        let nf = if fl.is_some() {
+            block.div_ceil(hold) + 1
+        } else {
+            0
+        };
+        let n = block + 2 * nf.div_ceil(2);
         NoiseStream {
             seed,
             rng: Rng::new(seed),
             white_sigma: white.max(0.0) * scale,
-            flicker_sigma: flicker.max(0.0) * scale * fg,
+            flicker_sigma: flicker.max(0.0) * (0.5 * frate).sqrt() * fg,
             flicker: fl,
+            hold,
+            block,
+            phase: 0,
+            held: 0.0,
             words: vec![0; n],
             gauss: vec![0.0; n],
+            fbuf: vec![0.0; nf],
         }
     }
 
@@ -274,6 +335,8 @@ impl NoiseStream {
     /// Back to the start of the stream.
     pub fn reset(&mut self) {
         self.rng = Rng::new(self.seed);
+        self.phase = 0;
+        self.held = 0.0;
         if let Some(f) = &mut self.flicker {
             f.clear();
         }
@@ -282,9 +345,7 @@ impl NoiseStream {
     /// Overwrite `out` with the next samples.
     #[inline(always)]
     pub fn fill(&mut self, out: &mut [f64]) {
-        let per = if self.flicker.is_some() { 2 } else { 1 };
-        let chunk = (self.gauss.len() / per).max(1);
-        for part in out.chunks_mut(chunk) {
+        for part in out.chunks_mut(self.block) {
             self.fill_chunk(part);
         }
     }
@@ -294,19 +355,38 @@ impl NoiseStream {
         let ws = self.white_sigma;
         let fs = self.flicker_sigma;
         let n = out.len();
-        let per = if self.flicker.is_some() { 2 } else { 1 };
-        let m = 2 * (n * per).div_ceil(2);
+        // new 1/f samples: positions whose phase is 0
+        let first = (self.hold - self.phase) % self.hold;
+        let nf = match &self.flicker {
+            Some(_) if n > first => (n - first).div_ceil(self.hold),
+            _ => 0,
+        };
+        let m = n + 2 * nf.div_ceil(2);
         for w in &mut self.words[..m] {
             *w = self.rng.next_u64();
         }
-        gaussians(&self.words[..m], &mut self.gauss[..m]);
-        match &mut self.flicker {
-            Some(f) => f.mix_block(&self.gauss[..2 * n], ws, fs, out),
-            None => {
-                for (o, g) in out.iter_mut().zip(&self.gauss[..n]) {
-                    *o = ws * g;
+        white_samples(&self.words[..n], &mut self.gauss[..n]);
+        gaussians(&self.words[n..m], &mut self.gauss[n..m]);
+        for (o, g) in out.iter_mut().zip(&self.gauss[..n]) {
+            *o = ws * g;
+        }
+        if let Some(f) = &mut self.flicker {
+            f.shape_block(&self.gauss[n..n + nf], fs, &mut self.fbuf[..nf]);
+            let (hold, mut phase, mut held) = (self.hold, self.phase, self.held);
+            let mut j = 0;
+            for o in out.iter_mut() {
+                if phase == 0 {
+                    held = self.fbuf[j];
+                    j += 1;
+                }
+                *o += held;
+                phase += 1;
+                if phase == hold {
+                    phase = 0;
                 }
             }
+            self.phase = phase;
+            self.held = held;
         }
     }
 }

@@ -90,6 +90,8 @@ pub struct Engine {
     fast: bool,
     fast_blocks: u64,
     full_blocks: u64,
+    /// Per stage: the weakly nonlinear step's polynomials ([`WeakStep`]), when they apply.
+    weak: Vec<Option<WeakStep>>,
     /// Internal blocks computed since the last reset.
     blocks: u64,
 }
@@ -127,7 +129,23 @@ fn ln_sinh(z: f64) -> f64 {
 fn solve(v0: f64, p: f64, pp: f64, b: f64, eps: f64, f: f64, kh: f64, vov: f64) -> f64 {
     let z0 = (f * (0.5 * (p + pp) - b * v0) / vov).abs();
     let lam = kh * f * b;
-    let phi_eff = if z0 < 1e-4 || lam <= 0.0 {
+    let phi_eff = phi_ref(z0, lam);
+    let g = f * phi_eff;
+    let c = g * b + eps;
+    let (e, a1, a0) = super::plan::foh(kh * c);
+    let inv = g / c;
+    let v = e * v0 + (a1 * p + a0 * pp) * inv;
+    // |dv/dt| <= SR + k eps |v| holds for the exact trajectory; the first-order hold can
+    // overshoot it when the target moves by several Vov within one step.
+    let dmax = kh * (vov + eps * v0.abs());
+    v0 + (v - v0).clamp(-dmax, dmax)
+}
+
+/// The effective `phi` of [`solve`] for `z0 = |f Vd| / Vov` (mean target) and
+/// `lam = k f b h`, with the library's special functions.
+#[inline]
+fn phi_ref(z0: f64, lam: f64) -> f64 {
+    if z0 < 1e-4 || lam <= 0.0 {
         1.0
     } else {
         let ls0 = ln_sinh(z0);
@@ -140,14 +158,256 @@ fn solve(v0: f64, p: f64, pp: f64, b: f64, eps: f64, f: f64, kh: f64, vov: f64) 
             l1.exp().asinh().ln()
         };
         ((z0.ln() - ln_z1) / lam).clamp(0.0, 1.0)
+    }
+}
+
+/// Degree of the weak-step polynomials.
+const WEAK_DEG: usize = 8;
+/// `z0` below which the weak-step polynomials apply (`w = z0^2 < WEAK_W`).
+const WEAK_W: f64 = 0.25;
+
+/// The full step of a stage for weakly nonlinear samples (issue 13): for `f = 1` the step is
+/// `v = E(w) v0 + A1(w) p + A0(w) pp` with `w = z0^2` (phi depends on `z0` only through
+/// `w`: `ln(sinh z / z)` and `asinh` are odd/even analytic), and `E`, `A1`, `A0` are analytic
+/// on `0 <= w < 1/4` with their nearest singularity at `w = -pi^2` or beyond `w = 6 lam`.
+/// They are interpolated once per stage at the Chebyshev points of `[0, 1/4]` (values from
+/// the reference step's own formulas) with degree [`WEAK_DEG`] (interpolation error about
+/// `rho^-9`, `rho` > 90: below 1e-16 relative; Trefethen, "Approximation Theory and
+/// Approximation Practice", 2013, ch. 8) and evaluated as polynomials in `w` (Estrin).
+/// Only for `lam = k b h >= 1` (a pole of `A1`, `A0` sits near `w = 6 lam`).
+#[derive(Debug, Clone)]
+struct WeakStep {
+    e: [f64; WEAK_DEG + 1],
+    a1: [f64; WEAK_DEG + 1],
+    a0: [f64; WEAK_DEG + 1],
+    inv_vov: f64,
+}
+
+impl WeakStep {
+    fn new(sp: &StagePlan, h: f64) -> Option<WeakStep> {
+        WeakStep::with(sp.gbw, sp.b, sp.eps, sp.vov, h)
+    }
+
+    /// From the part's GBW, the feedback fraction `b`, `eps = 1 / A0`, `Vov` and the step.
+    fn with(gbw: f64, b: f64, eps: f64, vov: f64, h: f64) -> Option<WeakStep> {
+        let kh = std::f64::consts::TAU * gbw * h;
+        let lam = kh * b;
+        if !(lam >= 1.0 && lam.is_finite() && vov > 0.0 && vov.is_finite()) {
+            return None;
+        }
+        let n = WEAK_DEG + 1;
+        let mut vals = [[0.0; WEAK_DEG + 1]; 3];
+        let mut ts = [0.0; WEAK_DEG + 1];
+        for k in 0..n {
+            let t = (std::f64::consts::PI * (2 * k + 1) as f64 / (2 * n) as f64).cos();
+            ts[k] = t;
+            let w = (t + 1.0) * WEAK_W / 2.0;
+            let phi = phi_ref(w.sqrt(), lam);
+            let c = phi * b + eps;
+            let (e, a1, a0) = super::plan::foh(kh * c);
+            let inv = phi / c;
+            vals[0][k] = e;
+            vals[1][k] = a1 * inv;
+            vals[2][k] = a0 * inv;
+        }
+        // Chebyshev coefficients, then monomial coefficients in t.
+        let mono = |v: &[f64; WEAK_DEG + 1]| {
+            let mut cheb = [0.0; WEAK_DEG + 1];
+            for (j, cj) in cheb.iter_mut().enumerate() {
+                let mut acc = 0.0;
+                for k in 0..n {
+                    acc += v[k] * (j as f64 * ts[k].acos()).cos();
+                }
+                *cj = acc * 2.0 / n as f64;
+            }
+            cheb[0] *= 0.5;
+            // T_0 = 1, T_1 = t, T_{j+1} = 2 t T_j - T_{j-1}, as monomial coefficient rows
+            let mut out = [0.0; WEAK_DEG + 1];
+            let mut tm1 = [0.0; WEAK_DEG + 1];
+            let mut tj = [0.0; WEAK_DEG + 1];
+            tm1[0] = 1.0;
+            tj[1] = 1.0;
+            out[0] += cheb[0];
+            for (o, x) in out.iter_mut().zip(&tj) {
+                *o += cheb[1] * x;
+            }
+            for cj in cheb.iter().skip(2) {
+                let mut next = [0.0; WEAK_DEG + 1];
+                for i in 0..=WEAK_DEG {
+                    next[i] = -tm1[i] + if i > 0 { 2.0 * tj[i - 1] } else { 0.0 };
+                }
+                for (o, x) in out.iter_mut().zip(&next) {
+                    *o += cj * x;
+                }
+                tm1 = tj;
+                tj = next;
+            }
+            out
+        };
+        // p(t) with t = 8 w - 1, as monomial coefficients in w (Horner on coefficient rows)
+        let in_w = |c: [f64; WEAK_DEG + 1]| {
+            let mut r = [0.0; WEAK_DEG + 1];
+            for &ck in c.iter().rev() {
+                let mut next = [0.0; WEAK_DEG + 1];
+                for i in 0..=WEAK_DEG {
+                    next[i] = -r[i] + if i > 0 { 8.0 * r[i - 1] } else { 0.0 };
+                }
+                next[0] += ck;
+                r = next;
+            }
+            r
+        };
+        Some(WeakStep {
+            e: in_w(mono(&vals[0])),
+            a1: in_w(mono(&vals[1])),
+            a0: in_w(mono(&vals[2])),
+            inv_vov: 1.0 / vov,
+        })
+    }
+}
+
+/// A polynomial of degree 8 by Estrin's scheme (short dependency chains).
+#[inline(always)]
+fn poly8(c: &[f64; WEAK_DEG + 1], t: f64, t2: f64, t4: f64) -> f64 {
+    let p01 = c[0] + c[1] * t;
+    let p23 = c[2] + c[3] * t;
+    let p45 = c[4] + c[5] * t;
+    let p67 = c[6] + c[7] * t;
+    let q0 = p01 + p23 * t2;
+    let q1 = p45 + p67 * t2;
+    q0 + q1 * t4 + c[8] * (t4 * t4)
+}
+
+/// Per-stage constants of [`solve_fast`], computed once per block.
+#[derive(Debug, Clone, Copy)]
+struct StepConsts {
+    kh: f64,
+    /// `lam = kh b` (the slew decay exponent at `f = 1`), its inverse and `E = exp(-lam)`.
+    lam: f64,
+    inv_lam: f64,
+    e_lam: f64,
+    /// `exp(-kh (b + eps))`: the step's memory at `phi = 1`.
+    e_lin: f64,
+    /// `E sinh(1/2)` is below 1e-8, so the weakly nonlinear branch applies for `z0 < 1/2`.
+    weak: bool,
+}
+
+impl StepConsts {
+    fn new(sp: &StagePlan, kh: f64) -> StepConsts {
+        let lam = kh * sp.b;
+        let e_lam = (-lam).exp();
+        StepConsts {
+            kh,
+            lam,
+            inv_lam: 1.0 / lam,
+            e_lam,
+            e_lin: (-kh * (sp.b + sp.eps)).exp(),
+            weak: lam > 0.0 && e_lam * 0.53 < 1e-8,
+        }
+    }
+}
+
+/// `ln(sinh z / z)` for `|z| <= 1/2`: its Maclaurin series
+/// `sum 2^(2n) B_2n z^(2n) / (2n (2n)!)` (B the Bernoulli numbers; any table of series,
+/// e.g. Abramowitz and Stegun 4.5.64 with 4.3.71), ten terms (the next is below 1e-17).
+#[inline(always)]
+fn ln_sinhc_small(z: f64) -> f64 {
+    let w = z * z;
+    let mut p = -1.140_257_560_229_609_1e-11;
+    p = p * w + 1.250_435_917_600_499_7e-10;
+    p = p * w - 1.388_413_049_373_729_9e-9;
+    p = p * w + 1.566_139_132_276_698_3e-8;
+    p = p * w - 1.803_670_234_005_331e-7;
+    p = p * w + 2.137_779_915_557_693_5e-6;
+    p = p * w - 2.645_502_645_502_645_6e-5;
+    p = p * w + 3.527_336_860_670_194e-4;
+    p = p * w - 5.555_555_555_555_556e-3;
+    p = p * w + 1.0 / 6.0;
+    p * w
+}
+
+/// [`solve`] with the engine's own special functions ([`super::fastmath`]; issue 13: cheaper
+/// special functions on the full step). The same closed form, `z1 = asinh(sinh(z0) E)`,
+/// `E = exp(-lam)`, `phi = ln(z0 / z1) / lam`, then the first-order-hold step, evaluated in
+/// one of two ways:
+/// - weakly nonlinear (`f = 1`, `z0 < 1/2`, `E sinh z0 < 1e-8`, the usual case of a stage
+///   whose error voltage is just past the fast path's bound): `asinh` is the identity there
+///   (to 1e-17), so `phi = 1 - ln(sinh z0 / z0) / lam`, a short series, and the step's memory
+///   `exp(-kh (phi b + eps)) = exp(-kh (b + eps)) exp(lam (1 - phi))` needs only a
+///   polynomial for the second factor (its argument is `ln(sinh z0 / z0) < 0.042`);
+/// - otherwise with [`super::fastmath`]'s `exp`, `ln`, `sinh` and `asinh`.
+///
+/// `(1 - e^-x) / x` uses its Taylor series below `x = 0.5`. Falls back to [`solve`] where
+/// `sinh(z0) E` leaves the normal range. Agrees with [`solve`] to about 1e-15 relative (the
+/// engine's fast/full test holds it to 1 uV).
+#[allow(clippy::too_many_arguments)]
+#[inline(always)]
+fn solve_fast(v0: f64, p: f64, pp: f64, b: f64, eps: f64, f: f64, vov: f64, k: &StepConsts) -> f64 {
+    use super::fastmath::{asinh, exp, ln, sinh};
+    let kh = k.kh;
+    let z0 = (f * (0.5 * (p + pp) - b * v0) / vov).abs();
+    let (phi_eff, e) = if z0 < 1e-4 || k.lam <= 0.0 {
+        (
+            1.0,
+            if f == 1.0 {
+                k.e_lin
+            } else {
+                exp(-kh * (f * b + eps))
+            },
+        )
+    } else if f == 1.0 && k.weak && z0 < 0.5 {
+        let l = ln_sinhc_small(z0);
+        let phi = (1.0 - l * k.inv_lam).clamp(0.0, 1.0);
+        // exp(l), l < 0.042: Taylor to l^7 (next term below 1e-14 relative of l^8 / 8!)
+        let mut x = 1.0 / 5040.0;
+        for d in [720.0, 120.0, 24.0, 6.0, 2.0, 1.0, 1.0] {
+            x = x * l + 1.0 / d;
+        }
+        (phi, k.e_lin * x)
+    } else {
+        let lam = kh * f * b;
+        let el = if f == 1.0 { k.e_lam } else { exp(-lam) };
+        let y = if z0 < 700.0 { sinh(z0) * el } else { 0.0 };
+        if !(1e-300..=1e300).contains(&y) {
+            return solve(v0, p, pp, b, eps, f, kh, vov);
+        }
+        let phi = (ln(z0 / asinh(y)) / lam).clamp(0.0, 1.0);
+        (phi, exp(-kh * (f * phi * b + eps)))
     };
     let g = f * phi_eff;
     let c = g * b + eps;
-    let (e, a1, a0) = super::plan::foh(kh * c);
-    let inv = g / c;
-    let v = e * v0 + (a1 * p + a0 * pp) * inv;
-    // |dv/dt| <= SR + k eps |v| holds for the exact trajectory; the first-order hold can
-    // overshoot it when the target moves by several Vov within one step.
+    let ic = 1.0 / c;
+    let lam1 = kh * c;
+    // r = (1 - e^-x) / x; below x = 0.5 by its Taylor series sum (-x)^n / (n + 1)! (to n = 16,
+    // next term below 1e-22), above it directly (1 - e has no cancellation there).
+    let r = if lam1 < 0.5 {
+        let mut t = 1.0 / 355_687_428_096_000.0;
+        for d in [
+            20_922_789_888_000.0,
+            1_307_674_368_000.0,
+            87_178_291_200.0,
+            6_227_020_800.0,
+            479_001_600.0,
+            39_916_800.0,
+            3_628_800.0,
+            362_880.0,
+            40_320.0,
+            5_040.0,
+            720.0,
+            120.0,
+            24.0,
+            6.0,
+            2.0,
+            1.0,
+        ] {
+            t = 1.0 / d - lam1 * t;
+        }
+        t
+    } else {
+        (1.0 - e) * ic / kh
+    };
+    let (a1, a0) = (1.0 - r, r - e);
+    let v = e * v0 + (a1 * p + a0 * pp) * (g * ic);
     let dmax = kh * (vov + eps * v0.abs());
     v0 + (v - v0).clamp(-dmax, dmax)
 }
@@ -183,14 +443,19 @@ impl Engine {
             .collect();
         let out_base = vec![vec![0.0; b / plan.oversample]; plan.outputs.len()];
         let fs = plan.internal_rate;
-        let stream = |white: f64, flicker: f64, seed: u64| {
-            let s = NoiseStream::new(white, flicker, fs, seed, b);
+        // Issue 13: the 1/f part of each stage runs at a lower rate, at least
+        // FLICKER_MIN_RATE (held; see noise.rs), and the outputs' thermal noise is added
+        // after decimation at the base rate.
+        let kf = plan.oversample;
+        let hold = ((fs / super::noise::FLICKER_MIN_RATE).floor() as usize).max(1);
+        let stream = |white: f64, flicker: f64, seed: u64, rate: f64, block: usize| {
+            let s = NoiseStream::with_hold(white, flicker, rate, seed, block, hold);
             (plan.noise && !s.is_silent()).then_some(s)
         };
         let stage_noise: Vec<Option<NoiseStream>> = plan
             .stages
             .iter()
-            .map(|s| stream(s.noise_white, s.noise_flicker, s.noise_seed))
+            .map(|s| stream(s.noise_white, s.noise_flicker, s.noise_seed, fs, b))
             .collect();
         let nbuf = stage_noise
             .iter()
@@ -205,10 +470,10 @@ impl Engine {
         let out_noise: Vec<Option<NoiseStream>> = plan
             .outputs
             .iter()
-            .map(|o| stream(o.noise_density, 0.0, o.noise_seed))
+            .map(|o| stream(o.noise_density, 0.0, o.noise_seed, plan.rate, b / kf))
             .collect();
         let obuf = if out_noise.iter().any(Option::is_some) {
-            vec![0.0; b]
+            vec![0.0; b / kf]
         } else {
             Vec::new()
         };
@@ -232,6 +497,11 @@ impl Engine {
             fast: true,
             fast_blocks: 0,
             full_blocks: 0,
+            weak: plan
+                .stages
+                .iter()
+                .map(|sp| WeakStep::new(sp, 1.0 / plan.internal_rate))
+                .collect(),
             blocks: 0,
             plan,
         };
@@ -408,15 +678,33 @@ impl Engine {
             }
             if !ok {
                 self.full_blocks += 1;
-                full_block(
-                    sp,
-                    st,
-                    &self.bufs,
-                    hist,
-                    noise,
-                    &mut self.xbuf,
-                    1.0 / self.plan.internal_rate,
-                );
+                if self.fast {
+                    // Issue 13: the block is not linear throughout; take the linear step for
+                    // each sample that stays linear and the full step only around events.
+                    hybrid_block(
+                        sp,
+                        st,
+                        &self.bufs,
+                        hist,
+                        noise,
+                        &mut self.xbuf,
+                        1.0 / self.plan.internal_rate,
+                        self.weak[si].as_ref(),
+                        &mut self.pbuf,
+                        &mut self.qbuf,
+                    );
+                } else {
+                    // The plain reference: the full model at every sample.
+                    full_block(
+                        sp,
+                        st,
+                        &self.bufs,
+                        hist,
+                        noise,
+                        &mut self.xbuf,
+                        1.0 / self.plan.internal_rate,
+                    );
+                }
             }
             shape_block(
                 sp,
@@ -431,16 +719,15 @@ impl Engine {
         let kf = self.plan.oversample;
         for (o, op) in self.plan.outputs.iter().enumerate() {
             let src = &self.bufs[op.node][hist - op.delay..hist - op.delay + b];
+            self.decims[o].process_scaled(src, op.gain, &mut self.out_base[o][..b / kf]);
             if let Some(ns) = &mut self.out_noise[o] {
-                // Thermal noise of the output's resistances, added at the internal rate
-                // (the decimator removes the excess band).
+                // Thermal noise of the output's resistances (white, independent of the
+                // circuit), added at the base rate after decimation with the density it has
+                // in band (issue 13: K times fewer draws than at the internal rate).
                 ns.fill(&mut self.obuf);
-                for (y, &x) in self.obuf.iter_mut().zip(src) {
-                    *y += op.gain * x;
+                for (y, n) in self.out_base[o][..b / kf].iter_mut().zip(&self.obuf) {
+                    *y += n;
                 }
-                self.decims[o].process(&self.obuf, &mut self.out_base[o][..b / kf]);
-            } else {
-                self.decims[o].process_scaled(src, op.gain, &mut self.out_base[o][..b / kf]);
             }
         }
         for buf in self.bufs.iter_mut().take(ns + self.plan.stages.len()) {
@@ -769,6 +1056,174 @@ fn full_block(
     st.p_prev2 = pp2;
 }
 
+/// The full model over a block with a per-sample linear shortcut (issue 13, "stay on the
+/// fast path for the linear samples of a block"): each sample first tries the fast path's
+/// linear step `v = e v0 + a1 p + a0 pp` and keeps it when that sample passes the fast path's
+/// own checks (|Vd| below [`FAST_VD`] times Vov, state inside its clamp, V+ inside the
+/// common-mode range with the fast path's margin); otherwise it takes the full step exactly as
+/// [`full_block`] does. A sample that passes contributes no event (|Vd| < Vov, no clamp, V+ in
+/// range), so the events match the full model's. Self-contained (it reads only the plan's
+/// stage and the block buffers), so it carries over to another engine core unchanged.
+#[allow(clippy::too_many_arguments)]
+fn hybrid_block(
+    sp: &StagePlan,
+    st: &mut StageState,
+    bufs: &[Vec<f64>],
+    hist: usize,
+    noise: Option<&[f64]>,
+    x: &mut [f64],
+    h: f64,
+    weak: Option<&WeakStep>,
+    vpa: &mut [f64],
+    mra: &mut [f64],
+) {
+    let b = x.len();
+    let kh = std::f64::consts::TAU * sp.gbw * h;
+    let kgain = std::f64::consts::TAU * sp.gbw;
+    let delta_inv = 1.0 / super::plan::CM_DELTA;
+    let (le, la1, la0) = (sp.lin_e, sp.lin_a1, sp.lin_a0);
+    let vd_max = FAST_VD * sp.vov;
+    let (slo, shi) = (sp.state_lo, sp.state_hi);
+    // V+ range where the linear step applies: the fast path's margin for reversing parts
+    // (tanh(20) is 1 in f64), none otherwise (V+ is then used unclamped).
+    let lin_cm = sp.cm.map(|(cl, ch)| {
+        let m = if sp.reversal {
+            20.0 * super::plan::CM_DELTA
+        } else {
+            0.0
+        };
+        (cl + m, ch - m)
+    });
+    let has_caps = sp.fb_cap.is_some() || sp.minus.iter().any(|m| m.cap.is_some());
+    let consts = StepConsts::new(sp, kh);
+    // Without capacitors V+ and `mrest` do not depend on the state: computed for the whole
+    // block first (vectorised), read back in the serial loop.
+    if !has_caps {
+        vpa.fill(sp.plus_const);
+        if let Some(pi) = &sp.plus {
+            let src = &bufs[pi.node][hist - pi.delay..hist - pi.delay + b];
+            for (d, s) in vpa.iter_mut().zip(src) {
+                *d += pi.gain * s;
+            }
+        }
+        mra.fill(sp.minus_const);
+        for m in &sp.minus {
+            let src = &bufs[m.node][hist - m.delay..hist - m.delay + b];
+            let w = m.mu * m.gain;
+            for (d, s) in mra.iter_mut().zip(src) {
+                *d += w * s;
+            }
+        }
+        if let Some(nz) = noise {
+            for (d, n) in mra.iter_mut().zip(nz) {
+                *d -= n;
+            }
+        }
+    }
+    let mut v = st.v;
+    let mut pp = st.p_prev;
+    let mut pp2 = st.p_prev2;
+    for (t, xo) in x.iter_mut().enumerate().take(b) {
+        let (vp, mrest, nz) = if has_caps {
+            let vp = match &sp.plus {
+                Some(pi) => sp.plus_const + pi.gain * bufs[pi.node][hist - pi.delay + t],
+                None => sp.plus_const,
+            };
+            let mut mrest = sp.minus_const;
+            for (m, vc) in sp.minus.iter().zip(st.vc.iter()) {
+                let s = bufs[m.node][hist - m.delay + t];
+                mrest += m.mu * (m.gain * s - vc);
+            }
+            if let Some(fc) = &sp.fb_cap {
+                mrest -= fc.mu * st.vf;
+            }
+            (vp, mrest, noise.map_or(0.0, |n| n[t]))
+        } else {
+            // the noise is folded into mrest here (subtracted above)
+            (vpa[t], mra[t], 0.0)
+        };
+        let in_range = lin_cm.is_none_or(|(cl, ch)| vp >= cl && vp <= ch);
+        let mut linear = false;
+        if in_range {
+            let pn = vp - mrest + nz;
+            let vl = le * v + la1 * pn + la0 * pp;
+            // Linear before the step (the full step's phi comes from the error voltage at the
+            // step's start, with the mean target) and after it (as the block check).
+            let pre = (0.5 * (pn + pp) - sp.b * v).abs() <= vd_max;
+            if pre && (pn - sp.b * vl).abs() <= vd_max && vl >= slo && vl <= shi {
+                linear = true;
+                v = vl;
+                *xo = vl;
+                pp2 = pp;
+                pp = pn;
+            }
+        }
+        if !linear {
+            let mut f = 1.0;
+            let mut vp_eff = vp;
+            if let Some((cl, ch)) = sp.cm {
+                if sp.reversal {
+                    let m = (vp - cl).min(ch - vp);
+                    f = (m * delta_inv).tanh();
+                    if f < 0.0 {
+                        st.rev += 1;
+                    }
+                } else {
+                    vp_eff = vp.clamp(cl, ch.max(cl));
+                }
+            }
+            let pn = vp_eff - mrest + nz;
+            let zr = (0.5 * (pn + pp) - sp.b * v) * weak.map_or(0.0, |w| w.inv_vov);
+            let w2 = zr * zr;
+            let xn = if let (Some(ws), true) = (weak, f == 1.0 && w2 < WEAK_W) {
+                let (t, t2) = (w2, w2 * w2);
+                let t4 = t2 * t2;
+                let ve = poly8(&ws.e, t, t2, t4) * v
+                    + poly8(&ws.a1, t, t2, t4) * pn
+                    + poly8(&ws.a0, t, t2, t4) * pp;
+                let dmax = kh * (sp.vov + sp.eps * v.abs());
+                v + (ve - v).clamp(-dmax, dmax)
+            } else if f > 0.0 {
+                solve_fast(v, pn, pp, sp.b, sp.eps, f, sp.vov, &consts)
+            } else {
+                let vd = f * (pn - sp.b * v);
+                v + h * (sp.slew * (vd / sp.vov).tanh() - kgain * sp.eps * v)
+            };
+            let xn = if xn.is_finite() { xn } else { v };
+            v = xn.clamp(slo, shi);
+            *xo = xn;
+            // Slewing, counted as in `full_block`: not while held at the swing (or current)
+            // limit, nor while latched by a phase reversal (f <= 0).
+            let held = xn <= slo || xn >= shi;
+            if f > 0.0 && !held && (f * (pn - sp.b * v)).abs() > sp.vov {
+                st.slew += 1;
+            }
+            pp2 = pp;
+            pp = pn;
+        }
+        if let Some((cl, ch)) = sp.cm {
+            if vp < cl || vp > ch {
+                st.cm += 1;
+            }
+        }
+        if has_caps {
+            let vminus = mrest + sp.b * v;
+            for (m, vc) in sp.minus.iter().zip(st.vc.iter_mut()) {
+                if m.cap.is_some() {
+                    let s = bufs[m.node][hist - m.delay + t];
+                    *vc += (1.0 - m.decay) * (m.gain * s - vminus - *vc);
+                }
+            }
+            if sp.fb_cap.is_some() {
+                st.vf = v - vminus;
+            }
+        }
+    }
+    st.v = v;
+    st.p_prev = pp;
+    st.p_prev2 = pp2;
+}
+
 /// Output clipper with one sample of lookahead: writes y[n-1] at position n.
 #[inline(always)]
 fn shape_block(
@@ -861,4 +1316,88 @@ fn shape_block(
     st.clip += clip;
     st.x1 = x1;
     st.x2 = x2;
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // The fast step against the plain reference step (railsong design: a plain reference
+    // beside every fast path): same closed form, library special functions in the reference.
+    #[test]
+    fn solve_fast_matches_solve() {
+        let mut worst: f64 = 0.0;
+        let mut rng = crate::rng::Rng::new(7);
+        for _ in 0..200_000 {
+            let u = |r: &mut crate::rng::Rng| r.uniform();
+            let b = 0.02 + 0.98 * u(&mut rng);
+            let eps = 10f64.powf(-6.0 + 4.0 * u(&mut rng));
+            let kh = 10f64.powf(-1.0 + 3.5 * u(&mut rng));
+            let vov = 10f64.powf(-1.5 + 1.5 * u(&mut rng));
+            let f = if u(&mut rng) < 0.3 { u(&mut rng) } else { 1.0 };
+            let v0 = 24.0 * u(&mut rng) - 12.0;
+            let scale = 10f64.powf(-6.0 + 7.0 * u(&mut rng));
+            let p = b * v0 + scale * (2.0 * u(&mut rng) - 1.0);
+            let pp = p + scale * (u(&mut rng) - 0.5);
+            let lam = kh * b;
+            let e_lam = (-lam).exp();
+            let k = StepConsts {
+                kh,
+                lam,
+                inv_lam: 1.0 / lam,
+                e_lam,
+                e_lin: (-kh * (b + eps)).exp(),
+                weak: lam > 0.0 && e_lam * 0.53 < 1e-8,
+            };
+            let a = solve_fast(v0, p, pp, b, eps, f, vov, &k);
+            let r = solve(v0, p, pp, b, eps, f, kh, vov);
+            let d = (a - r).abs() / (1.0 + r.abs());
+            assert!(
+                d < 1e-11,
+                "b {b} eps {eps} kh {kh} vov {vov} f {f} v0 {v0} p {p} pp {pp}: {a} vs {r}"
+            );
+            worst = worst.max(d);
+        }
+        println!("worst relative difference {worst:e}");
+    }
+
+    // The weak-step polynomials against the plain reference step, over the range they serve.
+    #[test]
+    fn weak_step_matches_solve() {
+        let mut worst: f64 = 0.0;
+        let mut rng = crate::rng::Rng::new(11);
+        let mut used = 0;
+        for _ in 0..2000 {
+            let gbw = 10f64.powf(5.0 + 2.0 * rng.uniform());
+            let h = 1.0 / (48_000.0 * [1.0, 2.0, 4.0, 8.0, 16.0][(rng.uniform() * 5.0) as usize]);
+            let b = 0.02 + 0.98 * rng.uniform();
+            let eps = 10f64.powf(-6.0 + 3.0 * rng.uniform());
+            let vov = 10f64.powf(-1.5 + 1.5 * rng.uniform());
+            let Some(ws) = WeakStep::with(gbw, b, eps, vov, h) else {
+                continue;
+            };
+            used += 1;
+            let kh = std::f64::consts::TAU * gbw * h;
+            for _ in 0..100 {
+                let v0 = 24.0 * rng.uniform() - 12.0;
+                let z = 0.499 * rng.uniform();
+                let d = z * vov * if rng.uniform() < 0.5 { -1.0 } else { 1.0 };
+                let pp = b * v0 + d + 0.01 * vov * (rng.uniform() - 0.5);
+                let p = 2.0 * (b * v0 + d) - pp;
+                let zr = (0.5 * (p + pp) - b * v0) * ws.inv_vov;
+                let t = zr * zr;
+                let (t2, t4) = (t * t, t * t * t * t);
+                let a = poly8(&ws.e, t, t2, t4) * v0
+                    + poly8(&ws.a1, t, t2, t4) * p
+                    + poly8(&ws.a0, t, t2, t4) * pp;
+                let r = solve(v0, p, pp, b, eps, 1.0, kh, vov);
+                let dmax = kh * (vov + eps * v0.abs());
+                let a = v0 + (a - v0).clamp(-dmax, dmax);
+                worst = worst.max((a - r).abs());
+            }
+        }
+        println!("{used} stages, worst difference {worst:e} V");
+        assert!(used > 100);
+        assert!(worst < 1e-11, "worst difference {worst:e} V");
+    }
 }

@@ -13,7 +13,12 @@ struct Env {
     inv_decay: f64,
     /// Retrigger period in samples (`None`: one shot).
     every: Option<f64>,
+    /// `exp(-inv_decay)`: the decay's factor per sample.
+    decay_factor: f64,
 }
+
+/// Samples between two evaluations of the decay's closed form.
+const ENV_ANCHOR: u64 = 256;
 
 /// Envelope state.
 #[derive(Debug, Clone, Copy)]
@@ -121,6 +126,7 @@ impl Gated {
                     attack: e.attack * rate,
                     inv_decay: 1.0 / (e.decay * rate),
                     every,
+                    decay_factor: (-1.0 / (e.decay * rate)).exp(),
                 })
             }
         };
@@ -164,8 +170,15 @@ impl Env {
                 }
             } else {
                 st.since_peak += 1;
-                // since_peak >= 1: an instant decay (inv_decay = inf) gives exp(-inf) = 0.
-                st.level = (-(st.since_peak as f64) * self.inv_decay).exp();
+                // exp(-since_peak * inv_decay) by recurrence (one product per sample), anchored
+                // to the closed form every ENV_ANCHOR samples so rounding cannot build up
+                // (at most ENV_ANCHOR roundings: about 3e-14 relative). since_peak >= 1: an
+                // instant decay (inv_decay = inf) gives exp(-inf) = 0 and a factor of 0.
+                st.level = if st.since_peak % ENV_ANCHOR == 1 {
+                    (-(st.since_peak as f64) * self.inv_decay).exp()
+                } else {
+                    st.level * self.decay_factor
+                };
             }
         }
         if rel == st.next_at {

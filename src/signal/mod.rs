@@ -57,7 +57,7 @@ pub use fade::{EdgeFade, DEFAULT_FADE_S};
 pub use files::{check_file_name, OutputDir, WavFile, MANIFEST_NAME};
 pub use gate::Gated;
 pub use noise::{PinkNoise, WhiteNoise, PINK_LOW_HZ};
-pub use periodic::{BandLimited, Multitone, Naive, Shape, Sine};
+pub use periodic::{BandLimited, Multitone, Naive, Shape, Sine, SineReference};
 pub use sweep::LogSweep;
 pub use wav_in::{file_stamp, load_wav, Playback, WavStream, MAX_RATE, MIN_RATE};
 pub use wav_out::{

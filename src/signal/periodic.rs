@@ -82,38 +82,168 @@ fn sin_cycles(c: f64) -> f64 {
     (TAU * c).sin()
 }
 
-/// `amp * sin(2 pi f t + phase)`.
+/// `(sin, cos)` of `2 pi c` for `c` in [0, 1), folded to [-1/2, 1/2) for accuracy.
+#[inline]
+fn sin_cos_cycles(c: f64) -> (f64, f64) {
+    let c = if c >= 0.5 { c - 1.0 } else { c };
+    (TAU * c).sin_cos()
+}
+
+/// Interleaved lanes of the rotation oscillator (independent chains, so the loop
+/// vectorises).
+const LANES: usize = 8;
+/// Samples between two re-anchorings of the rotation to the exact phase accumulator.
+pub const ANCHOR: usize = 256;
+
+/// One sinusoid at engine speed: the exact 64-bit phase accumulator of [`Phase`] gives the
+/// phase at the start of every run of [`ANCHOR`] samples (one library `sin_cos` there); within
+/// the run, [`LANES`] interleaved phasors each advance by `LANES` steps per iteration by a
+/// complex rotation (four products, no transcendental). A rotation's rounding error grows
+/// linearly, about `ANCHOR / LANES` roundings before the next anchor, so samples agree with
+/// the per-sample library sine ([`SineReference`]) to about 1e-14 of the amplitude (tested to
+/// 1e-12), and the phase never drifts.
 #[derive(Debug, Clone)]
-pub struct Sine {
+struct Rotor {
     phase: Phase,
     amp: f64,
+    /// cos / sin of `j` steps, `j = 0..LANES`.
+    lane_c: [f64; LANES],
+    lane_s: [f64; LANES],
+    /// cos / sin of `LANES` steps.
+    rot_c: f64,
+    rot_s: f64,
+}
+
+impl Rotor {
+    fn new(freq: f64, amp: f64, phase: f64, rate: f64) -> Rotor {
+        let phase = Phase::new(freq, phase, rate);
+        let mut lane_c = [0.0; LANES];
+        let mut lane_s = [0.0; LANES];
+        for j in 0..LANES {
+            let (s, c) = sin_cos_cycles(phase.step.wrapping_mul(j as u64) as f64 * TWO_M64);
+            lane_c[j] = c;
+            lane_s[j] = s;
+        }
+        let (rot_s, rot_c) = sin_cos_cycles(phase.step.wrapping_mul(LANES as u64) as f64 * TWO_M64);
+        Rotor {
+            phase,
+            amp,
+            lane_c,
+            lane_s,
+            rot_c,
+            rot_s,
+        }
+    }
+
+    /// Add the samples of absolute indices `n .. n + out.len()` to `out`; the range lies
+    /// within one run of [`ANCHOR`] samples. The lanes start from the exact phase at the
+    /// run's first sample and advance the same way whatever the calls' sizes, so any chunking
+    /// gives the same samples bit for bit.
+    #[inline(always)]
+    fn add(&self, out: &mut [f64], n: u64) {
+        let k = (n % ANCHOR as u64) as usize;
+        let run0 = n - k as u64;
+        let acc = self
+            .phase
+            .start
+            .wrapping_add(self.phase.step.wrapping_mul(run0));
+        let (s0, c0) = sin_cos_cycles(acc as f64 * TWO_M64);
+        let (s0, c0) = (self.amp * s0, self.amp * c0);
+        let mut s = [0.0; LANES];
+        let mut c = [0.0; LANES];
+        for j in 0..LANES {
+            s[j] = s0 * self.lane_c[j] + c0 * self.lane_s[j];
+            c[j] = c0 * self.lane_c[j] - s0 * self.lane_s[j];
+        }
+        let (rc, rs) = (self.rot_c, self.rot_s);
+        let rotate = |s: &mut [f64; LANES], c: &mut [f64; LANES]| {
+            for j in 0..LANES {
+                let ns = s[j] * rc + c[j] * rs;
+                let nc = c[j] * rc - s[j] * rs;
+                s[j] = ns;
+                c[j] = nc;
+            }
+        };
+        for _ in 0..k / LANES {
+            rotate(&mut s, &mut c);
+        }
+        let end = k + out.len();
+        let mut i = k;
+        let mut o = 0;
+        // leading partial round
+        while !i.is_multiple_of(LANES) && i < end {
+            out[o] += s[i % LANES];
+            i += 1;
+            o += 1;
+            if i.is_multiple_of(LANES) {
+                rotate(&mut s, &mut c);
+            }
+        }
+        // whole rounds
+        let whole = (end - i) / LANES * LANES;
+        for ch in out[o..o + whole].chunks_exact_mut(LANES) {
+            for j in 0..LANES {
+                ch[j] += s[j];
+            }
+            rotate(&mut s, &mut c);
+        }
+        i += whole;
+        o += whole;
+        // trailing partial round
+        for (y, sj) in out[o..].iter_mut().zip(&s) {
+            *y += sj;
+        }
+        debug_assert_eq!(i + out.len() - o, end);
+    }
+}
+
+/// Split `out` (absolute indices from `n`) at the multiples of [`ANCHOR`].
+pub(crate) fn runs(out: &mut [f64], n: u64) -> impl Iterator<Item = (&mut [f64], u64)> {
+    let first = (ANCHOR - (n % ANCHOR as u64) as usize).min(out.len());
+    let (head, tail) = out.split_at_mut(first);
+    std::iter::once((head, n)).chain(
+        tail.chunks_mut(ANCHOR)
+            .enumerate()
+            .map(move |(i, ch)| (ch, n + (first + i * ANCHOR) as u64)),
+    )
+}
+
+/// `amp * sin(2 pi f t + phase)`, at engine speed (see [`Rotor`]).
+#[derive(Debug, Clone)]
+pub struct Sine {
+    rotor: Rotor,
+    n: u64,
 }
 
 impl Sine {
     /// A sine of `freq` Hz, `amp` V peak, start phase `phase` radians, at `rate` Hz.
     pub fn new(freq: f64, amp: f64, phase: f64, rate: f64) -> Self {
         Sine {
-            phase: Phase::new(freq, phase, rate),
-            amp,
+            rotor: Rotor::new(freq, amp, phase, rate),
+            n: 0,
         }
     }
 }
 
 impl Generator for Sine {
     fn fill(&mut self, out: &mut [f64]) {
-        for y in out {
-            *y = self.amp * sin_cycles(self.phase.next_cycles());
+        let len = out.len() as u64;
+        for (run, n) in runs(out, self.n) {
+            run.fill(0.0);
+            self.rotor.add(run, n);
         }
+        self.n += len;
     }
     fn reset(&mut self) {
-        self.phase.reset();
+        self.n = 0;
     }
 }
 
-/// A sum of sines, each with its own exact phase.
+/// A sum of sines, each with its own exact phase, at engine speed (see [`Rotor`]).
 #[derive(Debug, Clone)]
 pub struct Multitone {
-    tones: Vec<Sine>,
+    tones: Vec<Rotor>,
+    n: u64,
 }
 
 impl Multitone {
@@ -122,25 +252,61 @@ impl Multitone {
         Multitone {
             tones: tones
                 .iter()
-                .map(|t| Sine::new(t.freq, t.amp, t.phase, rate))
+                .map(|t| Rotor::new(t.freq, t.amp, t.phase, rate))
                 .collect(),
+            n: 0,
         }
     }
 }
 
 impl Generator for Multitone {
     fn fill(&mut self, out: &mut [f64]) {
+        let len = out.len() as u64;
+        for (run, n) in runs(out, self.n) {
+            run.fill(0.0);
+            for t in &self.tones {
+                t.add(run, n);
+            }
+        }
+        self.n += len;
+    }
+    fn reset(&mut self) {
+        self.n = 0;
+    }
+}
+
+/// The plain reference of [`Sine`] and [`Multitone`]: the library sine of the exact phase at
+/// every sample (a sum of them for several tones). For tests and comparisons.
+#[derive(Debug, Clone)]
+pub struct SineReference {
+    tones: Vec<(Phase, f64)>,
+}
+
+impl SineReference {
+    /// The sum of `tones` at `rate` Hz (one tone for a plain sine).
+    pub fn new(tones: &[Tone], rate: f64) -> Self {
+        SineReference {
+            tones: tones
+                .iter()
+                .map(|t| (Phase::new(t.freq, t.phase, rate), t.amp))
+                .collect(),
+        }
+    }
+}
+
+impl Generator for SineReference {
+    fn fill(&mut self, out: &mut [f64]) {
         for y in out {
             let mut s = 0.0;
-            for t in &mut self.tones {
-                s += t.amp * sin_cycles(t.phase.next_cycles());
+            for (ph, amp) in &mut self.tones {
+                s += *amp * sin_cycles(ph.next_cycles());
             }
             *y = s;
         }
     }
     fn reset(&mut self) {
-        for t in &mut self.tones {
-            t.phase.reset();
+        for (ph, _) in &mut self.tones {
+            ph.reset();
         }
     }
 }

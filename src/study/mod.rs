@@ -14,8 +14,11 @@
 //!   range) for any numeric key path, and the parallel run of the points.
 //! - [`tolerance`]: seeded perturbation of every resistor and capacitor of a validated patch,
 //!   closed-form channel gains of inverting summers, percentiles, and the parallel runs.
+//! - [`length`]: for a stationary patch a point or run renders the settle time plus one
+//!   capture ([`length::StudyLength::Short`], the default), else the whole length.
 
 pub mod compare;
+pub mod length;
 pub mod loudness;
 pub mod sweep;
 pub mod tolerance;

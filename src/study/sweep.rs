@@ -5,6 +5,7 @@
 //! the same rules as the patch file. A range `FROM..TO` is split into a number (with its SI
 //! prefix or resistor letter code applied) and a unit text, which both ends must share.
 
+use super::length::{study_frames, StudyLength};
 use rayon::prelude::*;
 use serde::Serialize;
 
@@ -304,14 +305,17 @@ pub struct Point {
 }
 
 /// Run every value of `values` for `path`: load the patch with `fixed` overrides and then
-/// `PATH=VALUE`, render, measure. Points run in parallel on the current rayon pool; the
-/// result is in the order of `values`. `tick` is called once per finished point.
+/// `PATH=VALUE`, render (settle time plus one capture for a stationary patch unless
+/// `length` is [`StudyLength::Full`]), measure. Points run in parallel on the current rayon
+/// pool, each on its own (nothing shared but `tick`); the result is in the order of
+/// `values`. `tick` is called once per finished point.
 pub fn run(
     src: &PatchText,
     fixed: &[String],
     path: &str,
     values: &[Value],
     settings: &Settings,
+    length: StudyLength,
     tick: &(dyn Fn() + Sync),
 ) -> Result<Vec<Point>, StudyError> {
     values
@@ -321,7 +325,11 @@ pub fn run(
             sets.push(format!("{path}={}", v.text));
             let p =
                 patch::parse_str_variant(src.text, src.origin, src.base_dir, src.variant, &sets)?;
-            let run = render::render(&p, &RenderOptions::default(), &mut |_| {})?;
+            let opts = RenderOptions {
+                frames: study_frames(&p, length),
+                ..RenderOptions::default()
+            };
+            let run = render::render(&p, &opts, &mut |_| {})?;
             let mut measurement = measure::measure(&p, &run, None, settings, None, None);
             render::complete_thd(&p, &mut measurement, settings, None)?;
             tick();
@@ -351,6 +359,7 @@ pub fn find_thd_crossing(
     rel_tol: f64,
     settings: &Settings,
     output: &str,
+    length: StudyLength,
 ) -> Result<Option<f64>, StudyError> {
     let Some((lo, hi)) = crate::analysis::sweep::bracket(points, threshold) else {
         return Ok(None);
@@ -362,7 +371,11 @@ pub fn find_thd_crossing(
             sets.push(format!("{path}={}", value(x, unit).text));
             let p =
                 patch::parse_str_variant(src.text, src.origin, src.base_dir, src.variant, &sets)?;
-            let run = render::render(&p, &RenderOptions::default(), &mut |_| {})?;
+            let opts = RenderOptions {
+                frames: study_frames(&p, length),
+                ..RenderOptions::default()
+            };
+            let run = render::render(&p, &opts, &mut |_| {})?;
             let mut m = measure::measure(&p, &run, None, settings, Some(output), None);
             render::complete_thd(&p, &mut m, settings, None)?;
             Ok(m.outputs.get(output).and_then(|r| r.figures.thd_percent))

@@ -15,6 +15,7 @@
 //! values (textbook inverting gain, with the driving node's Thevenin resistance in series
 //! with the input resistor): `G_i = -Rf / (Ri + Rs_i)`.
 
+use super::length::{study_frames, StudyLength};
 use rayon::prelude::*;
 use serde::Serialize;
 
@@ -309,14 +310,18 @@ pub struct ToleranceReport {
     pub worst_run: Option<usize>,
 }
 
-/// Run `runs` perturbed copies of `patch` (in parallel on the current rayon pool) and the
-/// nominal patch; `tick` is called once per finished run.
+/// Run `runs` perturbed copies of `patch` (in parallel on the current rayon pool, each on
+/// its own: nothing shared but `tick`) and the nominal patch (once); each renders the settle
+/// time plus one capture for a stationary patch unless `length` is [`StudyLength::Full`]
+/// (the nominal run and every perturbed run at the same length, so gains compare like with
+/// like). `tick` is called once per finished run.
 pub fn study(
     patch: &Patch,
     tol: &Tolerances,
     runs: usize,
     seed: u64,
     settings: &Settings,
+    length: StudyLength,
     tick: &(dyn Fn() + Sync),
 ) -> Result<ToleranceReport, StudyError> {
     tol.check()?;
@@ -324,7 +329,11 @@ pub fn study(
         return Err(StudyError::arg("--runs", "0", "1 or more"));
     }
     let render_rms = |p: &Patch| -> Result<(Vec<f64>, measure::Measurement), StudyError> {
-        let run = render::render(p, &RenderOptions::default(), &mut |_| {})?;
+        let opts = RenderOptions {
+            frames: study_frames(patch, length),
+            ..RenderOptions::default()
+        };
+        let run = render::render(p, &opts, &mut |_| {})?;
         let m = measure::measure(p, &run, None, settings, None, None);
         Ok((run.outputs.iter().map(|o| rms(&o.samples)).collect(), m))
     };
