@@ -10,6 +10,7 @@
 //!
 //! The library does no terminal I/O; the `railsong` binary is a thin shell around it.
 
+pub mod alias;
 pub mod analysis;
 pub mod check;
 pub mod circuit;

@@ -229,6 +229,8 @@ pub struct OutputReport {
     pub from: String,
     /// Events per upstream op-amp stage, by stage name.
     pub events: BTreeMap<String, EventSeconds>,
+    /// The alias estimate of this output ([`crate::alias`]), when made (`null` otherwise).
+    pub alias: Option<crate::alias::OutputAlias>,
 }
 
 /// Settings that apply to every figure of a run (the JSON `settings` object).
@@ -254,11 +256,10 @@ pub struct RunSettings {
     pub settle_s: f64,
     /// What each figure refers to.
     pub references: References,
-    /// Alias figure (dBc) of each part used by a stage that feeds the measured outputs, at
-    /// this rate and oversampling, when measured (see `alias_probe`).
-    pub alias_dbc: BTreeMap<String, f64>,
-    /// What the alias figure is.
-    pub alias_probe: &'static str,
+    /// What each output's `alias` figure is ([`crate::alias::METHOD`]).
+    pub alias: &'static str,
+    /// Alias above this draws a warning, dBc.
+    pub alias_limit_dbc: f64,
 }
 
 /// What each figure refers to (the JSON `settings.references`, also in the README).
@@ -303,54 +304,6 @@ pub const REFERENCES: References = References {
               circuit after the last source switch-on, at least 50 ms) and take a coherent \
               capture from what follows; levels cover the whole record",
 };
-
-/// What the alias figure is.
-pub const ALIAS_PROBE: &str = "a fixed probe of the part, not measured on this render: a 5 kHz \
-    sine 7 dB past the swing through a unity inverter at this rate, rails and oversampling; \
-    in-band alias power re the fundamental";
-
-/// Alias figure of one part, for the stages that use it.
-#[derive(Debug, Clone, PartialEq)]
-pub struct AliasLine {
-    /// Part name.
-    pub part: String,
-    /// Stages using it that feed the chosen outputs, in patch order.
-    pub stages: Vec<String>,
-    /// The figure, dBc.
-    pub dbc: f64,
-}
-
-/// The alias figures of a run, once per part, only for parts of stages upstream of the
-/// chosen outputs (`output`: one by name; `None`: all).
-pub fn alias_lines(patch: &Patch, run: &Run, output: Option<&str>) -> Vec<AliasLine> {
-    let mut feeding = vec![false; patch.stages.len()];
-    for o in &patch.outputs {
-        if output.is_some_and(|n| n != o.name) {
-            continue;
-        }
-        for i in upstream(patch, o.from) {
-            feeding[i] = true;
-        }
-    }
-    let mut out: Vec<AliasLine> = Vec::new();
-    for (i, st) in patch.stages.iter().enumerate() {
-        if !feeding[i] {
-            continue;
-        }
-        let Some(a) = run.alias.iter().find(|a| a.stage == st.name) else {
-            continue;
-        };
-        match out.iter_mut().find(|l| l.part == a.part) {
-            Some(l) => l.stages.push(st.name.clone()),
-            None => out.push(AliasLine {
-                part: a.part.clone(),
-                stages: vec![st.name.clone()],
-                dbc: a.dbc,
-            }),
-        }
-    }
-    out
-}
 
 /// The stage upstream of the measured outputs that clips first, and when (s from t = 0).
 pub fn first_clip(m: &Measurement) -> Option<(String, f64)> {
@@ -597,14 +550,11 @@ pub fn measure(
             noise,
             from: patch.node_name(o.from).to_string(),
             events,
+            alias: None,
         };
         apply_circuit_peaks(&mut report, patch, i);
         map.insert(o.name.clone(), report);
     }
-    let alias_dbc = alias_lines(patch, run, outputs)
-        .into_iter()
-        .map(|l| (l.part, l.dbc))
-        .collect();
     Measurement {
         outputs: map,
         settings: RunSettings {
@@ -618,8 +568,8 @@ pub fn measure(
             snr_reference_v_rms: SNR_REFERENCE_V_RMS,
             settle_s,
             references: REFERENCES,
-            alias_dbc,
-            alias_probe: ALIAS_PROBE,
+            alias: crate::alias::METHOD,
+            alias_limit_dbc: crate::alias::WARN_DBC,
         },
     }
 }

@@ -111,7 +111,7 @@ fn feeds_for(
 /// The patch as the engine's compiler sees it: every source whose waveform comes from
 /// [`crate::signal`] is replaced by its resting (t = 0) DC value, which is all the plan needs
 /// from it (pre-roll level and capacitor steady states); the feeds supply the waveform.
-fn for_compile(patch: &Patch) -> Patch {
+pub(crate) fn for_compile(patch: &Patch) -> Patch {
     let mut p = patch.clone();
     for s in &mut p.sources {
         let level = match &s.wave {

@@ -143,9 +143,9 @@ pub(crate) fn stream_patch(
     })
 }
 
-/// Stream a patch through `sink` (with the alias probe), render its idle channel when
-/// circuit noise is on, and measure: figures from the kept tails, levels over the whole
-/// record.
+/// Stream a patch through `sink`, render its idle channel when circuit noise is on, and
+/// measure: figures from the kept tails, levels over the whole record, THD on the internal
+/// signal where the file cannot hold it, and the alias estimate of each output.
 pub(crate) fn measure_streamed(
     patch: &Patch,
     settings: &Settings,
@@ -153,7 +153,7 @@ pub(crate) fn measure_streamed(
     show_progress: bool,
     sink: &mut render::Sink,
 ) -> Result<(render::Streamed, measure::Measurement), Failure> {
-    let streamed = stream_patch(patch, true, show_progress, sink)?;
+    let streamed = stream_patch(patch, false, show_progress, sink)?;
     let idle = if patch.noise {
         Some(stream_patch(
             &render::muted(patch),
@@ -174,6 +174,7 @@ pub(crate) fn measure_streamed(
     );
     measure::apply_full_levels(&mut m, patch, &streamed.levels);
     render::complete_thd(patch, &mut m, settings, None).map_err(render_error)?;
+    railsong::alias::apply(patch, &mut m).map_err(render_error)?;
     Ok((streamed, m))
 }
 
@@ -267,15 +268,59 @@ pub(crate) fn file_peak_note(f: &railsong::analysis::OutputFigures) -> String {
     }
 }
 
-/// The alias figure, once per part, for the stages that feed the chosen outputs.
-pub(crate) fn print_alias(lines: &[measure::AliasLine], oversample: usize) {
-    for l in lines {
+/// The alias estimate of each output measured, and a warning for each one above the limit
+/// naming the stage it comes from.
+pub(crate) fn print_alias(m: &measure::Measurement, patch: &Patch) {
+    let k = patch.oversample;
+    for o in &patch.outputs {
+        let Some(a) = m.outputs.get(&o.name).and_then(|r| r.alias.as_ref()) else {
+            continue;
+        };
+        let Some(dbc) = a.dbc else {
+            say!(
+                "  alias of {}: {}",
+                o.name,
+                a.note.as_deref().unwrap_or("not estimated")
+            );
+            continue;
+        };
+        let stages: Vec<String> = a
+            .stages
+            .iter()
+            .filter_map(|s| s.dbc.map(|d| format!("{} {d:.1}", s.stage)))
+            .collect();
+        let how = if a.method == Some("coherent") {
+            format!(
+                "dBc in band, measured on this patch (its stages re-run at full level with the tone at {}, coherent capture, power off the harmonics 20 Hz - 20 kHz re the fundamental)",
+                fmt_eng(a.tone_hz.unwrap_or(0.0), "Hz")
+            )
+        } else {
+            "dB in band, measured on this patch (a stretch after the settle time against the same stretch with stages stepping 4 times finer: the in-band difference re the signal, smooth linear differences taken out, an upper bound; floor about -80 to -100 dB)".to_string()
+        };
         say!(
-            "  alias figure of part {} (stage{} {}) at x{oversample}: {:.1} dBc, a fixed probe of the part (5 kHz sine 7 dB past the swing through a unity inverter), not measured on this render",
-            l.part,
-            if l.stages.len() > 1 { "s" } else { "" },
-            l.stages.join(", "),
-            l.dbc
+            "  alias of {} at x{k}: {dbc:.1} {how}{}",
+            o.name,
+            if stages.is_empty() {
+                String::new()
+            } else {
+                format!("; stages (dB): {}", stages.join(", "))
+            }
         );
+        if a.above_limit {
+            let stage = a
+                .stage
+                .as_deref()
+                .map_or(String::new(), |s| format!(", mostly from stage {s}"));
+            let advice = if k < 16 {
+                format!("raise patch.oversample (now {k}; try {})", (4 * k).min(16))
+            } else {
+                "already at the highest patch.oversample (16)".to_string()
+            };
+            say!(
+                "  warning: {} holds {dbc:.1} dB of alias, above {:.0} dB{stage}: {advice}",
+                o.name,
+                railsong::alias::WARN_DBC
+            );
+        }
     }
 }

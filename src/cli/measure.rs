@@ -193,22 +193,7 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
         "  spectral captures start at {} (settle time); THD re the fundamental, THD+N and SINAD re the whole signal in band (SINAD = -THD+N), rms is AC",
         fmt_eng(s.settle_s, "s")
     );
-    let lines: Vec<measure::AliasLine> = s
-        .alias_dbc
-        .iter()
-        .map(|(part, dbc)| measure::AliasLine {
-            part: part.clone(),
-            stages: patch
-                .stages
-                .iter()
-                .filter(|st| st.part.as_ref().is_some_and(|p| &p.name == part))
-                .filter(|st| m.outputs.values().any(|o| o.events.contains_key(&st.name)))
-                .map(|st| st.name.clone())
-                .collect(),
-            dbc: *dbc,
-        })
-        .collect();
-    print_alias(&lines, s.oversample);
+    print_alias(m, patch);
 }
 
 /// Parse `SOURCE=FROM..TO`.

@@ -80,7 +80,7 @@ pub(crate) fn render_to(
     let fade = flags.edge_fade(patch.frames(), patch.rate)?;
     let mut written = vec![0usize; files.len()];
     let mut scratch: Vec<f64> = Vec::new();
-    let (streamed, m) = measure_streamed(patch, &Settings::default(), None, true, &mut |i, x| {
+    let (_, m) = measure_streamed(patch, &Settings::default(), None, true, &mut |i, x| {
         let start = written[i];
         written[i] += x.len();
         if gains[i] == 1.0 && !fade.touches(start, x.len()) {
@@ -96,7 +96,6 @@ pub(crate) fn render_to(
     for f in files {
         stats.push(f.finish().map_err(signal_error)?);
     }
-    let run = &streamed.run;
 
     match variant {
         Some(v) => say!("{} (variant {v}) -> {}", patch.title, dir.display()),
@@ -141,7 +140,7 @@ pub(crate) fn render_to(
             fmt_eng(t.max(0.0), "s")
         );
     }
-    print_alias(&measure::alias_lines(patch, run, None), run.oversample);
+    print_alias(&m, patch);
     folder
         .write_text(&figures_name, &measure::to_json(&m))
         .map_err(signal_error)?;

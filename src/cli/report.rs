@@ -40,7 +40,7 @@ pub(crate) fn cmd_report(
     folder.check_writable("report.html").map_err(signal_error)?;
     let (patch, run, m, comparison, side_b) = match ab {
         None => {
-            let run = run_patch(&patch, true, true)?;
+            let run = run_patch(&patch, false, true)?;
             let mut m = measure::measure(&patch, &run, None, &Settings::default(), None, None);
             railsong::render::complete_thd(&patch, &mut m, &Settings::default(), None)
                 .map_err(render_error)?;

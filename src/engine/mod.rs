@@ -112,6 +112,26 @@
 //! aliases through its slew corners, which the clipper does not treat: -31 dBc at K = 4,
 //! -46 dBc at K = 16.
 //!
+//! Events the clipper does not treat, measured with the alias estimate of a render
+//! ([`crate::alias`]: the patch's own stages, tone moved to an odd coherent bin, in-band
+//! power off the harmonics, 20 Hz - 20 kHz at 48 kHz):
+//!
+//! | K | reversal, 2 V below the range | reversal, 1 V below | slew corners, 3x SR |
+//! |---|---|---|---|
+//! | 1 | -3.1 dBc | -5.8 dBc | -5.3 dBc |
+//! | 2 | -11.8 dBc | -15.8 dBc | -10.4 dBc |
+//! | 4 | -20.0 dBc | -22.2 dBc | -14.5 dBc |
+//! | 8 | -26.0 dBc | -29.7 dBc | -24.1 dBc |
+//! | 16 | -34.2 dBc | -37.5 dBc | -28.2 dBc |
+//!
+//! (Reversal: jfet-general follower on +/-12 V, 1 kHz at 10 and 9 V peak against an input
+//! range ending at -8 V; the output jumps rail to rail within one or two internal steps.
+//! Slew: a single-supply part at 120 mV/us as a follower, 10 kHz at 6 V peak, 3.1 times its
+//! slew rate: a triangle whose corner samples, where the direction reverses within a step,
+//! are off the exact trajectory by up to a large part of `SR h`, which folds as strong lines,
+//! e.g. 192 kHz - 19 f at -15 dBc.) Neither has a band-limited correction yet; `render` and
+//! `measure` print the estimate and warn above -60 dBc.
+//!
 //! # Fast path
 //! Each stage first runs a block as the linear recursion and checks it: |Vd| below
 //! [`plan::FAST_VD`] times Vov (so `phi` is 1 within 1e-5), state inside its clamp, V+ inside
