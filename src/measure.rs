@@ -425,6 +425,17 @@ fn silent(w: &Wave) -> bool {
 /// current limit into its static load ([`crate::check::static_loads`]). `None` for a passive
 /// stage.
 pub fn stage_swing(patch: &Patch, stage: usize) -> Option<SwingLimits> {
+    // a network's output: the swing of the op-amp that drives its output node, on that
+    // op-amp's own supply
+    if let crate::model::StageKind::Network(n) = &patch.stages[stage].kind {
+        let a = n.amps.iter().find(|a| a.out == n.out)?;
+        let (lo, hi) = crate::check::swing_limits(&a.part, a.rails.pos, a.rails.neg);
+        return Some(SwingLimits {
+            pos: hi,
+            neg: lo,
+            centre: 0.0,
+        });
+    }
     let part = patch.stages[stage].part.as_ref()?;
     let (mut lo, mut hi) = crate::check::swing_limits(part, patch.rails.pos, patch.rails.neg);
     if let (Some(isc), Some(load)) = (part.isc, crate::check::static_loads(patch)[stage]) {

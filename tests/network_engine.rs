@@ -568,3 +568,46 @@ out = \"y\"\n[outputs.out]\nfrom = \"d\"\n",
     let span = r.stages[0].span;
     assert!((span.hi - 4.7 * 1.5).abs() < 1e-6, "{span:?}");
 }
+
+// A network's output headroom is taken against the swing of the op-amp driving its output
+// node (rail minus the profile's drop, as for a shorthand stage), and its op-amp counts no
+// slewing while it is held at that swing (the definition of slewing: the output free to move
+// at its slew rate; textbook full-power bandwidth, SR / (2 pi Vp), is far above 100 Hz here).
+#[test]
+fn network_headroom_is_against_the_amps_swing_and_a_held_amp_does_not_slew() {
+    let text = format!(
+        "{HEAD}{}\
+[stages.net]\ntype = \"network\"\n\
+amps = [{{ part = \"jfet-general\", plus = \"a\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"y\", \"m\"] }}, {{ r = \"10k\", ends = [\"m\", \"gnd\"] }}]\n\
+out = \"y\"\n[outputs.o]\nfrom = \"net\"\n",
+        sine("a", 100.0, 7.0)
+    );
+    let p = patch(&text);
+    let r = railsong::engine::run(&p, &railsong::engine::RunOptions::default()).unwrap();
+    let m = railsong::measure::measure(
+        &p,
+        &r,
+        None,
+        &railsong::analysis::Settings::default(),
+        None,
+        None,
+    );
+    let o = &m.outputs["o"];
+    let jf = railsong::parts::builtin("jfet-general").unwrap();
+    let swing = 12.0 - jf.drop_pos;
+    let peak = o.figures.peak_v.unwrap();
+    let head = o.figures.headroom_pos_db.unwrap();
+    // gain 2 on 7 V asks for 14 V: the output stops at the swing, so the headroom to it is
+    // about 0 dB (the band-limited peak may pass it by a little), not the 1.4 dB to the rail
+    assert!(
+        (peak - swing).abs() < 0.1,
+        "peak {peak} against swing {swing}"
+    );
+    assert!(head.abs() < 0.1, "headroom {head} dB");
+    let ev = &o.events["net.amp0"];
+    assert!(ev.clip_s > 0.05, "{ev:?}");
+    // the sine crosses the clipping band in well under a millisecond per crossing; held at
+    // the limit for most of the 0.2 s, the op-amp slews only in those short stretches
+    assert!(ev.slew_s < 0.01, "slewing while held: {ev:?}");
+}

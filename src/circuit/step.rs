@@ -698,7 +698,10 @@ fn full_step(
         let v = st.z[nc + j];
         let p = st.z[nc + na + j];
         let f = st.fs[j];
-        if (f * (p - ac.b * v)).abs() > a.vov {
+        // slewing only while free to move: not held at the swing (or current) limit, nor
+        // latched by a phase reversal (f <= 0), as the stage engine counts it
+        let held = v <= a.state_lo || v >= a.state_hi;
+        if f > 0.0 && !held && (f * (p - ac.b * v)).abs() > a.vov {
             ev.slew += 1;
         }
         if let Some((cl, ch)) = a.cm {
