@@ -124,8 +124,7 @@ fn build(patch: &Patch) -> Whole {
         let part = st
             .part
             .clone()
-            .or_else(|| crate::parts::builtin("ideal"))
-            .unwrap_or_else(unreachable_part);
+            .unwrap_or_else(crate::parts::profiles::ideal);
         let amp = |_: &Circuit| Amp::new(&st.name, &part, patch.rails, 0.0);
         let y = match &st.kind {
             StageKind::InvertingSum {
@@ -281,29 +280,6 @@ fn build(patch: &Patch) -> Whole {
         src,
         out,
         stage: stage_node,
-    }
-}
-
-fn unreachable_part() -> crate::parts::OpAmp {
-    crate::parts::OpAmp {
-        name: "ideal".into(),
-        about: String::new(),
-        gbw: 1e12,
-        slew: 1e12,
-        a0: None,
-        drop_pos: 0.0,
-        drop_neg: 0.0,
-        knee: 0.0,
-        cm_low: None,
-        cm_high: None,
-        reversal: false,
-        vos: 0.0,
-        ib: 0.0,
-        en: 0.0,
-        en_corner: 0.0,
-        inoise: 0.0,
-        isc: None,
-        supply_max: f64::INFINITY,
     }
 }
 

@@ -58,31 +58,36 @@ pub fn builtin_names() -> &'static [&'static str] {
     ]
 }
 
+/// The textbook op-amp (the built-in `ideal` profile): huge bandwidth and slew, output to the
+/// rails, no limits. Also what a passive stage is modelled with where an op-amp is needed.
+pub fn ideal() -> OpAmp {
+    OpAmp {
+        name: "ideal".into(),
+        about: "textbook op-amp: huge bandwidth and slew, output to the rails, no limits".into(),
+        gbw: 1e12,
+        slew: 1e12,
+        a0: None,
+        drop_pos: 0.0,
+        drop_neg: 0.0,
+        knee: 0.0,
+        cm_low: None,
+        cm_high: None,
+        reversal: false,
+        vos: 0.0,
+        ib: 0.0,
+        en: 0.0,
+        en_corner: 0.0,
+        inoise: 0.0,
+        isc: None,
+        supply_max: f64::INFINITY,
+    }
+}
+
 /// A built-in profile by name.
 pub fn builtin(name: &str) -> Option<OpAmp> {
     // Figures below are typical of each class, from memory (not from any one datasheet).
     let p = match name {
-        "ideal" => OpAmp {
-            name: name.into(),
-            about: "textbook op-amp: huge bandwidth and slew, output to the rails, no limits"
-                .into(),
-            gbw: 1e12,
-            slew: 1e12,
-            a0: None,
-            drop_pos: 0.0,
-            drop_neg: 0.0,
-            knee: 0.0,
-            cm_low: None,
-            cm_high: None,
-            reversal: false,
-            vos: 0.0,
-            ib: 0.0,
-            en: 0.0,
-            en_corner: 0.0,
-            inoise: 0.0,
-            isc: None,
-            supply_max: f64::INFINITY,
-        },
+        "ideal" => ideal(),
         "jfet-general" => OpAmp {
             name: name.into(),
             about: "JFET-input general purpose; input range stops ~4 V above V-, phase reversal"
