@@ -46,6 +46,7 @@ pub mod partition;
 pub mod plan;
 pub mod step;
 
+use crate::engine::plan::{amp_limits, AmpLimits};
 use crate::engine::shaper::Shaper;
 use crate::model::Rails;
 use crate::parts::{Diode, OpAmp};
@@ -167,29 +168,8 @@ impl Amp {
             Some(a) if a.is_finite() && a > 0.0 => 1.0 / a,
             _ => 0.0,
         };
-        let mut lo = rails.neg + part.drop_neg.max(0.0);
-        let mut hi = rails.pos - part.drop_pos.max(0.0);
-        if hi < lo {
-            let mid = 0.5 * (hi + lo);
-            hi = mid;
-            lo = mid;
-        }
-        let swing = (lo, hi);
-        if let Some(isc) = part.isc {
-            if isc.is_finite() && isc > 0.0 && load_g > 0.0 {
-                let vmax = isc / load_g;
-                hi = hi.min(vmax).max(lo);
-                lo = lo.max(-vmax).min(hi);
-            }
-        }
-        let w = part.knee.max(0.0).min(0.25 * (hi - lo));
-        let cm = match (part.cm_low, part.cm_high) {
-            (None, None) => None,
-            (l, u) => Some((
-                l.map_or(f64::NEG_INFINITY, |l| rails.neg + l),
-                u.map_or(f64::INFINITY, |u| rails.pos - u),
-            )),
-        };
+        let AmpLimits { swing, shaper, cm } = amp_limits(part, rails, load_g);
+        let Shaper { lo, hi, w } = shaper;
         Amp {
             name: name.to_string(),
             part: part.name.clone(),
@@ -202,7 +182,7 @@ impl Amp {
             eps,
             vos: if part.vos.is_finite() { part.vos } else { 0.0 },
             ib: if part.ib.is_finite() { part.ib } else { 0.0 },
-            shaper: Shaper { lo, hi, w },
+            shaper,
             swing,
             state_lo: lo - w - STATE_MARGIN,
             state_hi: hi + w + STATE_MARGIN,

@@ -6,8 +6,9 @@ use super::shaper::{Shaper, LOOKAHEAD};
 use super::EngineError;
 use crate::circuit::build::{network_circuit, InputRef};
 use crate::circuit::step::CircuitState;
-use crate::model::{Envelope, NetNode, Node, Patch, StageKind, Wave};
+use crate::model::{Envelope, NetNode, Node, Patch, Rails, StageKind, Wave};
 use crate::parts::taper;
+use crate::parts::OpAmp;
 
 /// Internal samples per processing block.
 pub const BLOCK: usize = 512;
@@ -484,6 +485,52 @@ pub fn foh(lam: f64) -> (f64, f64, f64) {
     (e, 1.0 - r, r - e)
 }
 
+/// An op-amp's output and input limits on its rails.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct AmpLimits {
+    /// The profile's swing (rails less the drops), V.
+    pub swing: (f64, f64),
+    /// The output clipper: the swing narrowed by the current limit into the static load.
+    pub shaper: Shaper,
+    /// The input common-mode range, V (`None`: no limit).
+    pub cm: Option<(f64, f64)>,
+}
+
+/// The limits of `part` on `rails` with its output loaded by `load_g` (S): the swing
+/// (drops that cross leave a single point in the middle), narrowed to `isc / load_g` by the
+/// current limit, with the knee at most a quarter of what is left; the input range from the
+/// profile's distances to the rails. One definition for stage plans and circuit op-amps.
+pub fn amp_limits(part: &OpAmp, rails: Rails, load_g: f64) -> AmpLimits {
+    let mut lo = rails.neg + part.drop_neg.max(0.0);
+    let mut hi = rails.pos - part.drop_pos.max(0.0);
+    if hi < lo {
+        let mid = 0.5 * (hi + lo);
+        hi = mid;
+        lo = mid;
+    }
+    let swing = (lo, hi);
+    if let Some(isc) = part.isc {
+        if isc.is_finite() && isc > 0.0 && load_g > 0.0 {
+            let vmax = isc / load_g;
+            hi = hi.min(vmax).max(lo);
+            lo = lo.max(-vmax).min(hi);
+        }
+    }
+    let w = part.knee.max(0.0).min(0.25 * (hi - lo));
+    let cm = match (part.cm_low, part.cm_high) {
+        (None, None) => None,
+        (l, u) => Some((
+            l.map_or(f64::NEG_INFINITY, |l| rails.neg + l),
+            u.map_or(f64::INFINITY, |u| rails.pos - u),
+        )),
+    };
+    AmpLimits {
+        swing,
+        shaper: Shaper { lo, hi, w },
+        cm,
+    }
+}
+
 /// Compile a validated patch.
 pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
     let k = patch.oversample;
@@ -941,30 +988,8 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                 Consumer::Output(_) => *g,
             };
         }
-        let mut lo = patch.rails.neg + part.drop_neg.max(0.0);
-        let mut hi = patch.rails.pos - part.drop_pos.max(0.0);
-        if hi < lo {
-            let mid = 0.5 * (hi + lo);
-            hi = mid;
-            lo = mid;
-        }
-        let swing = (lo, hi);
-        if let Some(isc) = part.isc {
-            if isc.is_finite() && isc > 0.0 && load_g > 0.0 {
-                let vmax = isc / load_g;
-                hi = hi.min(vmax).max(lo);
-                lo = lo.max(-vmax).min(hi);
-            }
-        }
-        let w = part.knee.max(0.0).min(0.25 * (hi - lo));
-        let shaper = Shaper { lo, hi, w };
-        let cm = match (part.cm_low, part.cm_high) {
-            (None, None) => None,
-            (l, u) => Some((
-                l.map_or(f64::NEG_INFINITY, |l| patch.rails.neg + l),
-                u.map_or(f64::INFINITY, |u| patch.rails.pos - u),
-            )),
-        };
+        let AmpLimits { swing, shaper, cm } = amp_limits(part, patch.rails, load_g);
+        let Shaper { lo, hi, w } = shaper;
 
         // Rest state.
         let vp_eff = match cm {
