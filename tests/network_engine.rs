@@ -127,6 +127,69 @@ out = \"y\"\n[outputs.out]\nfrom = \"lp\"\n",
     }
 }
 
+// The same 1-degree check on the shorthand stages' capacitors, each against its analog
+// first-order response [S] (textbook RC networks around an ideal op-amp):
+// - inverting with a feedback capacitor: H = -(Rf/Rin) / (1 + j w Rf C);
+// - inverting with a coupling capacitor in series with Rin: H = -(Rf/Rin) j w Rin C / (1 + j w Rin C);
+// - non-inverting with a capacitor across r_fb: H = 1 + (Rf/Rg) / (1 + j w Rf C).
+// Magnitude within 0.05 dB of the same response at the bilinear-warped frequency.
+#[test]
+fn shorthand_rc_phase_within_a_degree_at_20_khz() {
+    let (rin, rf, c) = (10e3, 47e3, 1e-9);
+    let cin = 2.2e-9;
+    let cases: [(&str, Box<dyn Fn(f64) -> (f64, f64)>); 3] = [
+        (
+            "type = \"inverting\"\nfrom = \"osc\"\nr_in = \"10k\"\nfeedback = { r = \"47k\", c = \"1n\" }\n",
+            Box::new(move |f: f64| {
+                let w = TAU * f * rf * c;
+                let k = -(rf / rin) / (1.0 + w * w);
+                (k, -k * w)
+            }),
+        ),
+        (
+            "type = \"inverting-sum\"\ninputs = [{ from = \"osc\", r = \"10k\", c = \"2.2n\" }]\nfeedback = { r = \"47k\" }\n",
+            Box::new(move |f: f64| {
+                let w = TAU * f * rin * cin;
+                // -(rf/rin) j w / (1 + j w) = -(rf/rin) (w^2 + j w) / (1 + w^2)
+                let k = -(rf / rin) / (1.0 + w * w);
+                (k * w * w, k * w)
+            }),
+        ),
+        (
+            "type = \"non-inverting\"\nfrom = \"osc\"\nr_fb = \"47k\"\nr_g = \"10k\"\nc_fb = \"1n\"\n",
+            Box::new(move |f: f64| {
+                let w = TAU * f * rf * c;
+                let k = (rf / rin) / (1.0 + w * w);
+                (1.0 + k, -k * w)
+            }),
+        ),
+    ];
+    for (stage, resp) in &cases {
+        for f in [1000.0, 5000.0, 20000.0] {
+            let text = format!(
+                "{HEAD}{}[stages.s]\npart = \"ideal\"\n{stage}[outputs.out]\nfrom = \"s\"\n",
+                sine("osc", f, 1.0)
+            );
+            let y = render(&text);
+            let g = gain(&y[0], f, 1.0);
+            let want = resp(f);
+            let dphase = wrap(deg(g) - deg(want));
+            assert!(
+                dphase.abs() < 1.0,
+                "{stage} {f} Hz: phase off by {dphase} deg"
+            );
+            let fs = 4.0 * RATE;
+            let warped = resp(fs / PI * (PI * f / fs).tan());
+            assert!(
+                (db(g) - db(warped)).abs() < 0.05,
+                "{stage} {f} Hz: {} vs {}",
+                db(g),
+                db(warped)
+            );
+        }
+    }
+}
+
 // Unity-gain Sallen-Key low-pass: w0 = 1 / sqrt(R1 R2 C1 C2), Q = sqrt(R1 R2 C1 C2) /
 // (C2 (R1 + R2)), H = 1 / (1 - (w/w0)^2 + j w / (w0 Q)) [S] (CHECKS.md, filter handbooks).
 // Gain at f0/2, f0 and 2 f0 within 0.05 dB, ideal part.

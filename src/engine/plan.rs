@@ -125,7 +125,8 @@ pub struct MinusInput {
     pub r: f64,
     /// Series capacitor, F.
     pub cap: Option<f64>,
-    /// Per-step decay `exp(-h / (r C))` of the capacitor (1 without one).
+    /// Per-step decay of the capacitor's history `(2rC/h - 1) / (2rC/h + 1)` (its trapezoidal
+    /// companion in series with `r`; 1 without one).
     pub decay: f64,
     /// Millman weight `G' / G_total` of this branch.
     pub mu: f64,
@@ -149,7 +150,8 @@ pub struct PlusInput {
 pub struct FeedbackCap {
     /// Capacitance, F.
     pub c: f64,
-    /// Companion conductance `1 / (Rf (exp(h / (Rf C)) - 1))` (exact pole), S.
+    /// Trapezoidal companion conductance `2C/h`, S; the history `vf` steps as
+    /// `vf <- 2 (v - V-) - vf`.
     pub g: f64,
     /// Millman weight of its history source.
     pub mu: f64,
@@ -831,9 +833,11 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
         let a_dc;
         let beta_dc;
         let vp_rest;
-        let fb_companion = |rf: f64, c: Option<f64>| -> f64 {
+        // Trapezoidal companion of a capacitor: conductance 2C/h beside a history source (no
+        // phase error, only the bilinear frequency warp), as the circuit engine's.
+        let fb_companion = |_rf: f64, c: Option<f64>| -> f64 {
             match c {
-                Some(c) => 1.0 / (rf * (h / (rf * c)).exp_m1()),
+                Some(c) => 2.0 * c / h,
                 None => 0.0,
             }
         };
@@ -859,8 +863,10 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                     let r = inp.r + t.rth;
                     let (decay, g) = match inp.c {
                         Some(c) => {
-                            let d = (-h / (r * c)).exp();
-                            (d, d / r)
+                            // the branch R + trapezoidal companion (2C/h): conductance
+                            // 1 / (R + h / 2C), history decay (2RC/h - 1) / (2RC/h + 1)
+                            let gcr = 2.0 * c * r / h;
+                            ((gcr - 1.0) / (gcr + 1.0), 1.0 / (r + 0.5 * h / c))
                         }
                         None => {
                             dc_g += 1.0 / r;
