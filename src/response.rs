@@ -258,7 +258,15 @@ fn build(patch: &Patch) -> Whole {
     }
     let mut out = Vec::new();
     for o in &patch.outputs {
-        let n = node(o.from, &stage_node);
+        let mut n = node(o.from, &stage_node);
+        if let (Node::Stage(s), Some(l)) = (o.from, o.inner) {
+            if let StageKind::Network(net) = &patch.stages[s].kind {
+                let name = format!("{}.{}", patch.stages[s].name, net.nodes[l]);
+                if let Some(k) = c.nodes.iter().position(|x| x.name == name) {
+                    n = k;
+                }
+            }
+        }
         let n = match o.load {
             Some(l) => {
                 let t = if o.series > 0.0 {

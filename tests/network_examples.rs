@@ -345,3 +345,79 @@ fn network_tolerance_spread_matches_first_order_sensitivity() {
     }
     assert!(mean.abs() < 0.05, "mean {mean} dB");
 }
+
+const HEAD: &str =
+    "[patch]\nlength = \"0.1 s\"\nnoise = false\n[rails]\npos = \"12 V\"\nneg = \"-12 V\"\n\
+[sources.v]\nwave = \"sine\"\nfreq = \"1 kHz\"\namp = \"3 V\"\n";
+
+/// Peak amplitude of a rendered 1 kHz output (sine fit after 20 ms), signed by its phase
+/// against the source (+ in phase, - inverted).
+fn amplitude(y: &[f64]) -> f64 {
+    let skip = 960;
+    let (a, b, _, _) = fit(&y[skip..], skip, 1000.0, RATE);
+    a.hypot(b).copysign(a)
+}
+
+fn run_outputs(text: &str) -> Vec<f64> {
+    let p = railsong::patch::parse_str(text, "inner.toml", Path::new("."), &[])
+        .unwrap_or_else(|e| panic!("{e}"));
+    let r = railsong::engine::run(&p, &railsong::engine::RunOptions::default())
+        .unwrap_or_else(|e| panic!("{e}"));
+    r.outputs.iter().map(|o| amplitude(&o.samples)).collect()
+}
+
+// `[outputs.X] from = "stage.node"` reads a network's passive inner node, and the output's
+// load hangs on that node in the solve: a 10k/10k divider reads half the source open, and
+// with a 10k load on its middle R2 || RL / (R1 + R2 || RL) = 1/3 (voltage divider), within
+// 1e-4 of the amplitude. The response solve of the whole patch says the same.
+#[test]
+fn an_output_reads_a_passive_inner_node_with_its_load_in_the_solve() {
+    let text = format!(
+        "{HEAD}[stages.net]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"a\", minus = \"y\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"v\", \"a\"] }}, {{ r = \"10k\", ends = [\"a\", \"gnd\"] }}]\n\
+out = \"y\"\n\
+[outputs.open]\nfrom = \"net.a\"\n\
+[outputs.buffered]\nfrom = \"net\"\n"
+    );
+    let g = run_outputs(&text);
+    assert!(
+        (g[0] - 1.5).abs() < 3e-4 && (g[1] - 1.5).abs() < 3e-4,
+        "{g:?}"
+    );
+    let loaded = text.replace(
+        "[outputs.open]\nfrom = \"net.a\"\n",
+        "[outputs.open]\nfrom = \"net.a\"\nload = \"10k\"\n",
+    );
+    let g = run_outputs(&loaded);
+    assert!((g[0] - 1.0).abs() < 3e-4, "loaded node {g:?}");
+    // the follower reads the same (loaded) node
+    assert!((g[1] - 1.0).abs() < 3e-4, "follower {g:?}");
+    let p = railsong::patch::parse_str(&loaded, "inner.toml", Path::new("."), &[]).unwrap();
+    let r = railsong::response::response(&p, 0, &[1000.0]).unwrap();
+    let open = r.outputs["open"].points[0].gain_db;
+    assert!((open - db(1.0 / 3.0)).abs() < 1e-3, "{open} dB");
+}
+
+// Another network reads a passive inner node (`ends = ["src.a", ...]`) through 10k into an
+// inverting op-amp's virtual ground: that input loads the node by 1/10k, so the divider's
+// middle sits at 1/3 of the source (10k against 10k || 10k), the inverter gives -1/3 and
+// the first network's follower 1/3, within 1e-4 of the amplitude (voltage divider and
+// inverting gain -Rf/Ri, textbook).
+#[test]
+fn a_network_reading_another_networks_passive_node_loads_it() {
+    let text = format!(
+        "{HEAD}[stages.src]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"a\", minus = \"y\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"v\", \"a\"] }}, {{ r = \"10k\", ends = [\"a\", \"gnd\"] }}]\n\
+out = \"y\"\n\
+[stages.inv]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"gnd\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"src.a\", \"m\"] }}, {{ r = \"10k\", ends = [\"m\", \"y\"] }}]\n\
+out = \"y\"\n\
+[outputs.inv]\nfrom = \"inv\"\n[outputs.follower]\nfrom = \"src\"\n"
+    );
+    let g = run_outputs(&text);
+    assert!((g[0] + 1.0).abs() < 3e-4, "inverter {g:?}");
+    assert!((g[1] - 1.0).abs() < 3e-4, "follower {g:?}");
+}
