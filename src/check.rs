@@ -639,7 +639,7 @@ pub fn static_loads(patch: &Patch) -> Vec<Option<f64>> {
         }
     }
     for out in &patch.outputs {
-        if let (Node::Stage(j), Some(load)) = (out.from, out.load) {
+        if let (Node::Stage(j), Some(load), None) = (out.from, out.load, out.inner) {
             g[j] += 1.0 / (out.series + load);
         }
     }
@@ -704,6 +704,7 @@ mod tests {
             outputs: vec![Output {
                 name: "out".into(),
                 from: Node::Stage(stages.len() - 1),
+                inner: None,
                 series: 1000.0,
                 load: Some(100e3),
                 file: None,

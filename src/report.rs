@@ -63,6 +63,7 @@ fn with_probes(patch: &Patch) -> Patch {
         p.outputs.push(Output {
             name: format!("{PROBE}{name}"),
             from: node,
+            inner: None,
             series: 0.0,
             load: None,
             file: None,

@@ -72,6 +72,7 @@ fn out(name: &str, from: Node, series: f64, load: Option<f64>) -> Output {
     Output {
         name: name.into(),
         from,
+        inner: None,
         series,
         load,
         file: None,

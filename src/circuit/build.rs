@@ -40,6 +40,20 @@ pub type Tap<'a> = &'a dyn Fn(Node) -> (f64, f64);
 ///
 /// Panics never; a stage that is not a network gives an empty circuit.
 pub fn network_circuit(patch: &Patch, stage: usize, tap: Tap, out_load: f64) -> NetCircuit {
+    network_circuit_loaded(patch, stage, tap, out_load, &[])
+}
+
+/// [`network_circuit`] with static loads (to 0 V, S) on local nodes that other stages or
+/// outputs read (`stage.node`): `(local node, conductance)`. On an op-amp's output node a
+/// load counts towards its current limit, as `out_load` does; on a passive node it is a
+/// resistor to ground in the circuit.
+pub fn network_circuit_loaded(
+    patch: &Patch,
+    stage: usize,
+    tap: Tap,
+    out_load: f64,
+    node_loads: &[(usize, f64)],
+) -> NetCircuit {
     let st = &patch.stages[stage];
     let mut c = Circuit::new();
     let StageKind::Network(net) = &st.kind else {
@@ -128,9 +142,16 @@ pub fn network_circuit(patch: &Patch, stage: usize, tap: Tap, out_load: f64) -> 
     let out = locals[net.out];
     let mut out_amp = None;
     let amp_outs: Vec<usize> = net.amps.iter().map(|a| locals[a.out]).collect();
+    let extra = |local: usize| -> f64 {
+        node_loads
+            .iter()
+            .filter(|(l, g)| *l == local && *g > 0.0)
+            .map(|(_, g)| g)
+            .sum()
+    };
     for (k, (a, (plus, minus))) in net.amps.iter().zip(pins).enumerate() {
         let o = locals[a.out];
-        let mut load = c.load_conductance(o, &amp_outs);
+        let mut load = c.load_conductance(o, &amp_outs) + extra(a.out);
         if o == out {
             load += out_load;
             out_amp = Some(k);
@@ -141,6 +162,12 @@ pub fn network_circuit(patch: &Patch, stage: usize, tap: Tap, out_load: f64) -> 
     if out_amp.is_none() && out_load > 0.0 {
         c.r(out, gnd, 1.0 / out_load, "loads");
     }
+    for (l, name) in net.nodes.iter().enumerate() {
+        let g = extra(l);
+        if g > 0.0 && !net.amp_driven(l) {
+            c.r(locals[l], gnd, 1.0 / g, &format!("{name}.readers"));
+        }
+    }
     NetCircuit {
         circuit: c,
         inputs,
@@ -148,6 +175,22 @@ pub fn network_circuit(patch: &Patch, stage: usize, tap: Tap, out_load: f64) -> 
         out,
         out_amp,
     }
+}
+
+/// The static load network stage `stage` puts on each node it reads, S: the conductance
+/// into its circuit at that input with every op-amp output and every op-amp's inverting
+/// input held at 0 V (the virtual ground of an op-amp in negative feedback, as a shorthand
+/// summer's input resistor loads its source by `1/R`), capacitors and diodes open.
+pub fn reader_loads(patch: &Patch, stage: usize) -> Vec<(InputRef, f64)> {
+    let direct = |_: Node| (1.0, 0.0);
+    let nc = network_circuit(patch, stage, &direct, 0.0);
+    let c = &nc.circuit;
+    let mut held: Vec<usize> = c.amps.iter().map(|a| a.out).collect();
+    held.extend(c.amps.iter().map(|a| a.minus));
+    nc.inputs
+        .iter()
+        .map(|&(cn, r, _)| (r, c.load_conductance(cn, &held)))
+        .collect()
 }
 
 /// The whole patch as one circuit: every stage (shorthand or network) expanded into its
@@ -359,7 +402,16 @@ pub fn patch_circuit(patch: &Patch) -> PatchCircuit {
     let mut output_elems = Vec::with_capacity(patch.outputs.len());
     for o in &patch.outputs {
         let elems0 = c.elems.len();
-        let n = node(o.from, &stage_node);
+        let mut n = node(o.from, &stage_node);
+        // `from = "stage.node"`: that network's inner node
+        if let (Node::Stage(s), Some(l)) = (o.from, o.inner) {
+            if let StageKind::Network(net) = &patch.stages[s].kind {
+                let name = format!("{}.{}", patch.stages[s].name, net.nodes[l]);
+                if let Some(k) = c.nodes.iter().position(|x| x.name == name) {
+                    n = k;
+                }
+            }
+        }
         let n = match o.load {
             Some(l) => {
                 let t = if o.series > 0.0 {

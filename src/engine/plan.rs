@@ -4,7 +4,7 @@ use super::halfband;
 use super::network::{NetInput, NetPlan};
 use super::shaper::{Shaper, LOOKAHEAD};
 use super::EngineError;
-use crate::circuit::build::{network_circuit, shorthand_circuit, InputRef};
+use crate::circuit::build::{network_circuit_loaded, reader_loads, shorthand_circuit, InputRef};
 use crate::circuit::kernel::stage_form;
 use crate::circuit::step::CircuitState;
 use crate::circuit::Amp;
@@ -286,6 +286,8 @@ struct Ctx<'a> {
     loads: Vec<Vec<(Consumer, f64)>>,
     /// input resistance of each attenuator (track top plus bottom || its loads)
     att_rin: Vec<f64>,
+    /// loads on networks' inner nodes read as `stage.node`: ((stage, local node), S)
+    inner_loads: Vec<((usize, usize), f64)>,
 }
 
 fn check_node(patch: &Patch, node: Node, before: usize, who: &str) -> Result<(), EngineError> {
@@ -412,7 +414,13 @@ fn compile_network(
         let t = ctx.tap(Consumer::Input(i, usize::MAX), n);
         (t.gain, t.rth)
     };
-    let nc = network_circuit(patch, i, &tap, stage_load(ctx, i));
+    let node_loads: Vec<(usize, f64)> = ctx
+        .inner_loads
+        .iter()
+        .filter(|((s, _), _)| *s == i)
+        .map(|&((_, l), g)| (l, g))
+        .collect();
+    let nc = network_circuit_loaded(patch, i, &tap, stage_load(ctx, i), &node_loads);
     let circ_err = |e: crate::circuit::plan::CircuitError| EngineError::Circuit {
         stage: name.clone(),
         message: e.to_string(),
@@ -691,9 +699,16 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
     let n_st = patch.stages.len();
     let mut loads: Vec<Vec<(Consumer, f64)>> = vec![Vec::new(); n_st];
     let mut att_rin = vec![0.0; n_st];
+    let mut inner_loads: Vec<((usize, usize), f64)> = Vec::new();
     for (o, out) in patch.outputs.iter().enumerate() {
-        if let (Node::Stage(i), Some(l)) = (out.from, out.load) {
-            loads[i].push((Consumer::Output(o), 1.0 / (out.series + l)));
+        match (out.from, out.load, out.inner) {
+            (Node::Stage(i), Some(l), None) => {
+                loads[i].push((Consumer::Output(o), 1.0 / (out.series + l)));
+            }
+            (Node::Stage(i), Some(l), Some(k)) => {
+                inner_loads.push(((i, k), 1.0 / (out.series + l)));
+            }
+            _ => {}
         }
     }
     for i in (0..n_st).rev() {
@@ -727,6 +742,22 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                     }
                 }
             }
+            // whatever a network reads, it loads (its inputs into its circuit, op-amp
+            // outputs and inverting inputs held at 0 V)
+            StageKind::Network(_) => {
+                for (r, g) in reader_loads(patch, i) {
+                    if !(g.is_finite() && g > 0.0) {
+                        continue;
+                    }
+                    match r {
+                        InputRef::Node(Node::Stage(a)) => {
+                            loads[a].push((Consumer::Input(i, usize::MAX), g));
+                        }
+                        InputRef::Inner(a, l) => inner_loads.push(((a, l), g)),
+                        InputRef::Node(Node::Source(_)) => {}
+                    }
+                }
+            }
             _ => {}
         }
     }
@@ -735,6 +766,7 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
         stage_buf,
         loads,
         att_rin,
+        inner_loads,
     };
 
     // Inner nodes other networks read get buffers of their own.
@@ -759,6 +791,15 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                         next += 1;
                     }
                 }
+            }
+        }
+    }
+    // ... and inner nodes outputs read
+    for out in &patch.outputs {
+        if let (Node::Stage(s), Some(l)) = (out.from, out.inner) {
+            if !export_buf.iter().any(|(k, _)| *k == (s, l)) {
+                export_buf.push(((s, l), next));
+                next += 1;
             }
         }
     }
@@ -799,7 +840,7 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                 (t.gain, t.rth)
             };
             let nc = (net.amps.len() == 1 && !exported)
-                .then(|| network_circuit(patch, i, &tap, stage_load(&ctx, i)));
+                .then(|| network_circuit_loaded(patch, i, &tap, stage_load(&ctx, i), &[]));
             let form = nc
                 .as_ref()
                 .filter(|nc| nc.out_amp == Some(0))
@@ -1037,7 +1078,17 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
     let mut latency = 0;
     let mut taps = Vec::new();
     for (o, out) in patch.outputs.iter().enumerate() {
-        let t = ctx.tap(Consumer::Output(o), out.from);
+        let mut t = ctx.tap(Consumer::Output(o), out.from);
+        if let (Node::Stage(s), Some(l)) = (out.from, out.inner) {
+            // an inner node: its own buffer, the output's load already in the circuit
+            if let Some(&(_, b)) = export_buf.iter().find(|(k, _)| *k == (s, l)) {
+                t = Tap {
+                    base: b,
+                    gain: 1.0,
+                    rth: 0.0,
+                };
+            }
+        }
         latency = latency.max(node_lat[t.base]);
         taps.push(t);
     }

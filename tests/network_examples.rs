@@ -1,0 +1,423 @@
+//! The example network patches against closed forms (textbook formulas and nodal solutions
+//! written here), a nonlinear step that cannot converge, and a tolerance study over a
+//! network against its first-order sensitivity.
+mod engine_support;
+use engine_support::fit;
+use std::f64::consts::{LN_10, PI, TAU};
+use std::path::{Path, PathBuf};
+
+use railsong::model::{NetPartKind, Patch, StageKind};
+
+const RATE: f64 = 48_000.0;
+
+fn example(name: &str) -> (String, PathBuf) {
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("patches");
+    let text = std::fs::read_to_string(dir.join(name)).unwrap();
+    (text, dir)
+}
+
+fn parse(text: &str, dir: &Path, sets: &[&str]) -> Patch {
+    let sets: Vec<String> = sets.iter().map(|s| s.to_string()).collect();
+    railsong::patch::parse_str(text, "example.toml", dir, &sets).unwrap_or_else(|e| panic!("{e}"))
+}
+
+/// The values of a network's parts, in patch order (a pot gives its track).
+fn values(p: &Patch, stage: &str) -> Vec<f64> {
+    let st = p.stages.iter().find(|s| s.name == stage).unwrap();
+    let StageKind::Network(net) = &st.kind else {
+        panic!("{stage} is a network")
+    };
+    net.parts
+        .iter()
+        .map(|q| match &q.kind {
+            NetPartKind::R(r) => *r,
+            NetPartKind::C(c) => *c,
+            NetPartKind::Pot { setting, .. } => setting.track,
+            NetPartKind::Diode(_) => f64::NAN,
+        })
+        .collect()
+}
+
+/// Gain (dB) and phase (degrees) of the only output at `hz` from the response solve.
+fn response_at(p: &Patch, hz: f64) -> (f64, f64) {
+    let r = railsong::response::response(p, 0, &[hz]).unwrap_or_else(|e| panic!("{e}"));
+    let pt = r.outputs.values().next().unwrap().points[0];
+    (pt.gain_db, pt.phase_deg)
+}
+
+fn db(x: f64) -> f64 {
+    20.0 * x.abs().log10()
+}
+
+// patches/net-mfb-bandpass.toml: the multiple-feedback band-pass (R1 input, R2 shunt, equal
+// C, R3 feedback) against the textbook second-order section: f0 = sqrt((R1 + R2)/(R1 R2 R3))
+// / (2 pi C), Q = pi f0 C R3, H(f0) = -R3/(2 R1) (CHECKS.md; Sedra and Smith, "Microelectronic
+// Circuits", active filter chapter). With an ideal part, within 0.05 dB at f0/2, f0 and 2 f0;
+// and the patch's comment (f0 about 1 kHz, Q about 5, about 0 dB at f0) holds within 2 %.
+#[test]
+fn mfb_band_pass_example_matches_the_textbook_section() {
+    let (text, dir) = example("net-mfb-bandpass.toml");
+    let ideal = text.replace("jfet-general", "ideal");
+    let p = parse(&ideal, &dir, &[]);
+    let v = values(&p, "bp");
+    let (r1, r2, c, r3) = (v[0], v[1], v[2], v[4]);
+    assert_eq!(v[2], v[3], "equal capacitors");
+    let f0 = ((r1 + r2) / (r1 * r2 * r3)).sqrt() / (TAU * c);
+    let q = PI * f0 * c * r3;
+    let h0 = -r3 / (2.0 * r1);
+    assert!((f0 / 1000.0 - 1.0).abs() < 0.02, "f0 {f0}");
+    assert!((q / 5.0 - 1.0).abs() < 0.02, "Q {q}");
+    assert!(db(h0).abs() < 0.25, "centre gain {h0}");
+    for f in [f0 / 2.0, f0, 2.0 * f0] {
+        let x = f / f0;
+        let (re, im) = (1.0 - x * x, x / q);
+        let want = db(h0 * (im / re.hypot(im)));
+        let (got, phase) = response_at(&p, f);
+        assert!((got - want).abs() < 0.05, "{f} Hz: {got} dB vs {want} dB");
+        if f == f0 {
+            // inverting at its centre
+            assert!(phase.abs() > 179.5, "{phase} deg at f0");
+        }
+    }
+}
+
+/// Two T networks (arms `ra` from the input, `rb` from the output, `rc` to the virtual
+/// ground) into one inverting node: KCL at that node, with each T's middle voltage by
+/// Millman, gives `Vout/Vin = -sum 1/(ra rc S) / sum 1/(rb rc S)`, `S = 1/ra + 1/rb + 1/rc`.
+fn t_networks(ts: &[(f64, f64, f64)]) -> f64 {
+    let s = |&(ra, rb, rc): &(f64, f64, f64)| 1.0 / ra + 1.0 / rb + 1.0 / rc;
+    let num: f64 = ts.iter().map(|t| 1.0 / (t.0 * t.2 * s(t))).sum();
+    let den: f64 = ts.iter().map(|t| 1.0 / (t.1 * t.2 * s(t))).sum();
+    -num / den
+}
+
+// patches/net-tone-control.toml, with an ideal part. At 0 Hz every capacitor is open: the
+// bass pot and its two 10k arms form one T into the virtual ground, whose middle must sit at
+// 0 V, so the gain is minus the ratio of the two arms, -(R1 + at P) / (R1 + (1 - at) P)
+// (each track segment at least 1 ohm). Far above the band (100 MHz) every capacitor is a
+// short: the bass side is a T of R1, R1 and its wiper resistor, the treble pot a T of its two
+// segments and its wiper resistor, both into the virtual ground (`t_networks`). Boost and
+// cut at each knob's ends, flat in the middle, within 0.05 dB.
+#[test]
+fn tone_control_example_boosts_and_cuts_as_its_t_networks_say() {
+    let (text, dir) = example("net-tone-control.toml");
+    let ideal = text.replace("bipolar-lownoise", "ideal");
+    let nominal = parse(&ideal, &dir, &[]);
+    let v = values(&nominal, "tone");
+    let (r1, pb, r1b, rwb) = (v[0], v[1], v[2], v[5]);
+    let (pt, rwt) = (v[7], v[9]);
+    assert_eq!(r1, r1b, "equal bass arms");
+    let seg = |x: f64| x.max(1.0);
+    let mut highest: f64 = 0.0;
+    for at in [0.0, 0.25, 0.5, 0.75, 1.0] {
+        let set = format!("knobs.bass={at}");
+        let p = parse(&ideal, &dir, &[&set]);
+        let g = railsong::response::dc_gains(&p).unwrap()[0][0];
+        let want = -(r1 + seg(at * pb)) / (r1 + seg((1.0 - at) * pb));
+        assert!(
+            (db(g) - db(want)).abs() < 0.05 && g < 0.0,
+            "bass {at}: {g} vs {want}"
+        );
+        highest = highest.max(db(g));
+
+        let set = format!("knobs.treble={at}");
+        let p = parse(&ideal, &dir, &[&set]);
+        let (got, _) = response_at(&p, 1e8);
+        let want = t_networks(&[(r1, r1, rwb), (seg((1.0 - at) * pt), seg(at * pt), rwt)]);
+        assert!(
+            (got - db(want)).abs() < 0.05,
+            "treble {at}: {got} dB vs {} dB",
+            db(want)
+        );
+    }
+    // the comment's +-20.8 dB of bass
+    assert!((highest - 20.83).abs() < 0.01, "{highest}");
+}
+
+// The same patch as written (its real part) with both knobs at 50 %: every branch from the
+// input has its mirror image to the output, so the inverting node balances only at
+// Vout = -Vin, at every frequency: rendered sines at 100 Hz, 1 kHz and 10 kHz come out at
+// 0 dB within 0.05 dB and inverted within 0.5 degrees.
+#[test]
+fn tone_control_example_is_flat_and_inverting_at_its_centre() {
+    let (text, dir) = example("net-tone-control.toml");
+    for f in [100.0, 1000.0, 10_000.0] {
+        let freq = format!("sources.saw.freq={f} Hz");
+        let p = parse(
+            &text,
+            &dir,
+            &[
+                "sources.saw.wave=sine",
+                &freq,
+                "sources.saw.amp=1 V",
+                "knobs.bass=0.5",
+                "knobs.treble=0.5",
+                "patch.length=0.2 s",
+                "patch.noise=false",
+            ],
+        );
+        let r = railsong::engine::run(&p, &railsong::engine::RunOptions::default())
+            .unwrap_or_else(|e| panic!("{e}"));
+        let y = &r.outputs[0].samples;
+        // skip 50 ms: the bass capacitors settle with time constants up to a few ms
+        let skip = 2400;
+        let (a, b, _, _) = fit(&y[skip..], skip, f, RATE);
+        let gain = a.hypot(b);
+        let phase = b.atan2(a).to_degrees();
+        assert!(db(gain).abs() < 0.05, "{f} Hz: {} dB", db(gain));
+        assert!(phase.abs() > 179.5, "{f} Hz: {phase} deg");
+    }
+}
+
+/// A non-inverting stage of gain 2 with anti-parallel diodes from its output back to its
+/// input node: once the diodes conduct, the loop through them turns positive and the stage
+/// snaps over; the nonlinear step cannot settle on one state there.
+const SNAP: &str = r#"[patch]
+length = "0.05 s"
+noise = false
+[rails]
+pos = "12 V"
+neg = "-12 V"
+[sources.a]
+wave = "sine"
+freq = "100 Hz"
+amp = "5 V"
+[stages.snap]
+type = "network"
+amps = [{ part = "ideal", plus = "p", minus = "m", out = "y" }]
+parts = [
+  { r = "10k", ends = ["a", "p"] },
+  { diode = "silicon-signal", ends = ["y", "p"] },
+  { diode = "silicon-signal", ends = ["p", "y"] },
+  { r = "1k", ends = ["y", "m"] },
+  { r = "1k", ends = ["m", "gnd"] },
+]
+out = "y"
+[outputs.o]
+from = "snap"
+"#;
+
+// A nonlinear step that does not converge ends the command with one clear line naming the
+// stage and the time of the step, exit 2 (bad input: the circuit, not railsong), within its
+// iteration bound (no hang), and `render` writes no file (no NaN reaches a WAV). The bound
+// (`circuit::step::MAX_ITER`) and the stage name are what the line must carry.
+#[test]
+fn a_step_that_does_not_converge_is_a_clear_error_naming_stage_and_time() {
+    let dir = std::env::temp_dir().join(format!("railsong-snap-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).unwrap();
+    let patch = dir.join("snap.toml");
+    std::fs::write(&patch, SNAP).unwrap();
+    let out = dir.join("out");
+    for args in [
+        vec!["measure".to_string(), patch.display().to_string()],
+        vec![
+            "render".to_string(),
+            patch.display().to_string(),
+            "--out".to_string(),
+            out.display().to_string(),
+        ],
+    ] {
+        let o = std::process::Command::new(env!("CARGO_BIN_EXE_railsong"))
+            .args(&args)
+            .output()
+            .unwrap();
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "{args:?}: {err}");
+        let lines: Vec<&str> = err.lines().filter(|l| !l.trim().is_empty()).collect();
+        assert_eq!(lines.len(), 1, "{err}");
+        let line = lines[0];
+        assert!(
+            line.starts_with("railsong: stages.snap: the nonlinear step did not converge at t = "),
+            "{line}"
+        );
+        // the time is a number inside the render
+        let t: f64 = line
+            .split("t = ")
+            .nth(1)
+            .and_then(|s| s.split(' ').next())
+            .and_then(|s| s.parse().ok())
+            .unwrap_or_else(|| panic!("no time in {line}"));
+        assert!((0.0..0.05).contains(&t), "{line}");
+        assert!(!line.contains("NaN") && !line.contains("inf"), "{line}");
+    }
+    let wavs = std::fs::read_dir(&out)
+        .map(|d| {
+            d.filter(|e| {
+                e.as_ref()
+                    .map(|e| e.path().extension().is_some_and(|x| x == "wav"))
+                    .unwrap_or(false)
+            })
+            .count()
+        })
+        .unwrap_or(0);
+    assert_eq!(wavs, 0, "no WAV written after the failure");
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+/// A level pot on a knob, its wiper loaded by RL, into a non-inverting stage (Rf, Rg).
+const TOL: &str = r#"[patch]
+rate = "48 kHz"
+length = "0.05 s"
+oversample = 1
+noise = false
+[rails]
+pos = "12 V"
+neg = "-12 V"
+[knobs]
+level = 0.5
+[sources.a]
+wave = "sine"
+freq = "1 kHz"
+amp = "1 V"
+[stages.amp]
+type = "network"
+amps = [{ part = "ideal", plus = "w", minus = "m", out = "y" }]
+parts = [
+  { pot = "10k", ends = ["gnd", "a"], wiper = "w", at = "level" },
+  { r = "1k", ends = ["w", "gnd"] },
+  { r = "22k", ends = ["y", "m"], tolerance = "2 %" },
+  { r = "10k", ends = ["m", "gnd"], tolerance = "2 %" },
+]
+out = "y"
+[outputs.out]
+from = "amp"
+"#;
+
+// Tolerance study over a network: the knob's pot track and the load resistor vary uniformly
+// within the study's +-5 %, the stage's two resistors within their own +-2 %, and the spread of the output level matches the first-order sensitivity
+// (Bode's sensitivity S_x = d ln G / d ln x; Bode, "Network Analysis and Feedback Amplifier
+// Design", 1945): G = D (1 + Rf/Rg) with the loaded divider D = L / (U + L), L = aP || RL,
+// U = (1 - a) P. S_Rf = -S_Rg = (G' - 1)/G' for the stage gain G', S_P = RL/(aP + RL) -
+// (U + L RL/(aP + RL))/(U + L), S_RL = aP/(aP + RL) - (L aP/(aP + RL))/(U + L). Independent
+// uniform errors of half-width t have variance t^2/3, so the standard deviation of the gain
+// in dB is (20/ln 10) sqrt(sum S^2 t^2 / 3). 400 runs estimate a standard deviation within
+// about 1/sqrt(2 * 400) = 3.5 %; within 12 % here.
+#[test]
+fn network_tolerance_spread_matches_first_order_sensitivity() {
+    use railsong::analysis::Settings;
+    use railsong::study::length::StudyLength;
+    use railsong::study::tolerance::{study, Tolerances};
+    let p = railsong::patch::parse_str(TOL, "tol.toml", Path::new("."), &[]).unwrap();
+    let t = 0.05;
+    let rep = study(
+        &p,
+        &Tolerances {
+            resistor: t,
+            capacitor: t,
+        },
+        400,
+        7,
+        &Settings::default(),
+        StudyLength::default(),
+        &|| {},
+    )
+    .unwrap();
+    let (a, pot, rl, rf, rg) = (0.5, 10e3, 1e3, 22e3, 10e3);
+    let t_own = 0.02;
+    let ap = a * pot;
+    let l = ap * rl / (ap + rl);
+    let u = (1.0 - a) * pot;
+    let s_p = rl / (ap + rl) - (u + l * rl / (ap + rl)) / (u + l);
+    let s_rl = ap / (ap + rl) - (l * ap / (ap + rl)) / (u + l);
+    let gs = 1.0 + rf / rg;
+    let s_f = (gs - 1.0) / gs;
+    let var = |pot_share: f64, own: f64| {
+        (pot_share * s_p * s_p + s_rl * s_rl) * t * t + 2.0 * s_f * s_f * own * own
+    };
+    let sd_db = |v: f64| 20.0 / LN_10 * (v / 3.0).sqrt();
+    let want = sd_db(var(1.0, t_own));
+    let g: Vec<f64> = rep.runs.iter().map(|r| r.outputs[0].gain_db).collect();
+    let n = g.len() as f64;
+    let mean = g.iter().sum::<f64>() / n;
+    let sd = (g.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
+    assert!(
+        (sd / want - 1.0).abs() < 0.12,
+        "spread {sd} dB against {want} dB"
+    );
+    // the test can tell: a pot left alone, or the parts' own 2 % ignored, would give a
+    // spread outside the band
+    for other in [sd_db(var(0.0, t_own)), sd_db(var(1.0, t))] {
+        assert!(
+            (sd / other - 1.0).abs() > 0.15,
+            "{sd} dB also fits {other} dB"
+        );
+    }
+    assert!(mean.abs() < 0.05, "mean {mean} dB");
+}
+
+const HEAD: &str =
+    "[patch]\nlength = \"0.1 s\"\nnoise = false\n[rails]\npos = \"12 V\"\nneg = \"-12 V\"\n\
+[sources.v]\nwave = \"sine\"\nfreq = \"1 kHz\"\namp = \"3 V\"\n";
+
+/// Peak amplitude of a rendered 1 kHz output (sine fit after 20 ms), signed by its phase
+/// against the source (+ in phase, - inverted).
+fn amplitude(y: &[f64]) -> f64 {
+    let skip = 960;
+    let (a, b, _, _) = fit(&y[skip..], skip, 1000.0, RATE);
+    a.hypot(b).copysign(a)
+}
+
+fn run_outputs(text: &str) -> Vec<f64> {
+    let p = railsong::patch::parse_str(text, "inner.toml", Path::new("."), &[])
+        .unwrap_or_else(|e| panic!("{e}"));
+    let r = railsong::engine::run(&p, &railsong::engine::RunOptions::default())
+        .unwrap_or_else(|e| panic!("{e}"));
+    r.outputs.iter().map(|o| amplitude(&o.samples)).collect()
+}
+
+// `[outputs.X] from = "stage.node"` reads a network's passive inner node, and the output's
+// load hangs on that node in the solve: a 10k/10k divider reads half the source open, and
+// with a 10k load on its middle R2 || RL / (R1 + R2 || RL) = 1/3 (voltage divider), within
+// 1e-4 of the amplitude. The response solve of the whole patch says the same.
+#[test]
+fn an_output_reads_a_passive_inner_node_with_its_load_in_the_solve() {
+    let text = format!(
+        "{HEAD}[stages.net]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"a\", minus = \"y\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"v\", \"a\"] }}, {{ r = \"10k\", ends = [\"a\", \"gnd\"] }}]\n\
+out = \"y\"\n\
+[outputs.open]\nfrom = \"net.a\"\n\
+[outputs.buffered]\nfrom = \"net\"\n"
+    );
+    let g = run_outputs(&text);
+    assert!(
+        (g[0] - 1.5).abs() < 3e-4 && (g[1] - 1.5).abs() < 3e-4,
+        "{g:?}"
+    );
+    let loaded = text.replace(
+        "[outputs.open]\nfrom = \"net.a\"\n",
+        "[outputs.open]\nfrom = \"net.a\"\nload = \"10k\"\n",
+    );
+    let g = run_outputs(&loaded);
+    assert!((g[0] - 1.0).abs() < 3e-4, "loaded node {g:?}");
+    // the follower reads the same (loaded) node
+    assert!((g[1] - 1.0).abs() < 3e-4, "follower {g:?}");
+    let p = railsong::patch::parse_str(&loaded, "inner.toml", Path::new("."), &[]).unwrap();
+    let r = railsong::response::response(&p, 0, &[1000.0]).unwrap();
+    let open = r.outputs["open"].points[0].gain_db;
+    assert!((open - db(1.0 / 3.0)).abs() < 1e-3, "{open} dB");
+}
+
+// Another network reads a passive inner node (`ends = ["src.a", ...]`) through 10k into an
+// inverting op-amp's virtual ground: that input loads the node by 1/10k, so the divider's
+// middle sits at 1/3 of the source (10k against 10k || 10k), the inverter gives -1/3 and
+// the first network's follower 1/3, within 1e-4 of the amplitude (voltage divider and
+// inverting gain -Rf/Ri, textbook).
+#[test]
+fn a_network_reading_another_networks_passive_node_loads_it() {
+    let text = format!(
+        "{HEAD}[stages.src]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"a\", minus = \"y\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"v\", \"a\"] }}, {{ r = \"10k\", ends = [\"a\", \"gnd\"] }}]\n\
+out = \"y\"\n\
+[stages.inv]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"gnd\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"src.a\", \"m\"] }}, {{ r = \"10k\", ends = [\"m\", \"y\"] }}]\n\
+out = \"y\"\n\
+[outputs.inv]\nfrom = \"inv\"\n[outputs.follower]\nfrom = \"src\"\n"
+    );
+    let g = run_outputs(&text);
+    assert!((g[0] + 1.0).abs() < 3e-4, "inverter {g:?}");
+    assert!((g[1] - 1.0).abs() < 3e-4, "follower {g:?}");
+}
