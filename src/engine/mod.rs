@@ -20,7 +20,8 @@
 //! the summing resistor. An output is `v_node * load / (series + Rth + load)`.
 //! Op-amp outputs are ideal voltage sources for downstream stages.
 //!
-//! At each op-amp, Millman's theorem gives `V- = m + b v` (v the op-amp output, `0 < b <= 1`)
+//! At each op-amp, nodal elimination of the stage's circuit (`circuit::kernel::stage_form`,
+//! Millman's theorem for the textbook shapes) gives `V- = m + b v` (v the op-amp output, `0 < b <= 1`)
 //! and `V+` from the inputs, so `Vd = p - b v`. Capacitors enter as companion models that keep
 //! each step a scalar equation. Both are the trapezoidal companion the circuit engine uses
 //! (conductance `2C/h` beside a history source: no phase error, only the bilinear frequency
