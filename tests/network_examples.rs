@@ -551,3 +551,58 @@ out = \"y\"\n[outputs.o]\nfrom = \"f\"\nload = \"100\"\n",
         cur[0].message
     );
 }
+
+// Events of a network op-amp carry its peaks and its first clip, as a shorthand stage's do:
+// a gain-2 stage (1 + Rf/Rg) of an ideal part (output to the rails) on 7 V at 100 Hz first
+// reaches the 12 V rail at t = asin(12/14) / (2 pi 100 Hz) = 1.6395 ms (the sine's own
+// closed form), within two internal samples at K = 4, as the shorthand stage says too; it
+// stays there 4 (pi/2 - asin(12/14)) / (2 pi) of the time; its highest output is the rail,
+// and the output's peak is the op-amp's (after its clamp).
+#[test]
+fn network_amp_events_carry_peaks_and_first_clip() {
+    let text = format!(
+        "{}{}\
+[stages.net]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"a\", minus = \"m\", out = \"y\", name = \"gain2\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"y\", \"m\"] }}, {{ r = \"10k\", ends = [\"m\", \"gnd\"] }}]\n\
+out = \"y\"\n\
+[stages.short]\ntype = \"non-inverting\"\npart = \"ideal\"\nfrom = \"a\"\nr_fb = \"10k\"\nr_g = \"10k\"\n\
+[outputs.o]\nfrom = \"net\"\n[outputs.s]\nfrom = \"short\"\n",
+        RAILS,
+        "[sources.a]\nwave = \"sine\"\nfreq = \"100 Hz\"\namp = \"7 V\"\n"
+    );
+    let p = railsong::patch::parse_str(&text, "ev.toml", Path::new("."), &[])
+        .unwrap_or_else(|e| panic!("{e}"));
+    let r = railsong::engine::run(&p, &railsong::engine::RunOptions::default()).unwrap();
+    let m = railsong::measure::measure(
+        &p,
+        &r,
+        None,
+        &railsong::analysis::Settings::default(),
+        None,
+        None,
+    );
+    let want = (12.0f64 / 14.0).asin() / (TAU * 100.0);
+    let h = 1.0 / (4.0 * RATE);
+    let net = &m.outputs["o"].events["gain2"];
+    let short = &m.outputs["s"].events["short"];
+    let t_net = net.first_clip_s.expect("the network op-amp clips");
+    let t_short = short.first_clip_s.expect("the shorthand stage clips");
+    assert!((t_net - want).abs() < 2.0 * h, "{t_net} s against {want} s");
+    assert!((t_short - want).abs() < 2.0 * h, "shorthand {t_short} s");
+    let hi = net.peak_pos_v.unwrap();
+    let lo = net.peak_neg_v.unwrap();
+    assert!(
+        (hi - 12.0).abs() < 1e-6 && (lo + 12.0).abs() < 1e-6,
+        "{lo} .. {hi}"
+    );
+    assert!(net.headroom_pos_db.unwrap().abs() < 1e-3, "{net:?}");
+    // at the rail while |sin| > 12/14: 4 (pi/2 - asin(12/14)) / (2 pi) of each period
+    let clip = 0.1 * 4.0 * (PI / 2.0 - (12.0f64 / 14.0).asin()) / TAU;
+    assert!(
+        (net.clip_s / clip - 1.0).abs() < 0.02,
+        "{net:?} against {clip} s"
+    );
+    let peak = m.outputs["o"].figures.peak_v.unwrap();
+    assert!((peak - 12.0).abs() < 1e-6, "output peak {peak}");
+}
