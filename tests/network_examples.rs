@@ -606,3 +606,42 @@ out = \"y\"\n\
     let peak = m.outputs["o"].figures.peak_v.unwrap();
     assert!((peak - 12.0).abs() < 1e-6, "output peak {peak}");
 }
+
+// The page (and `render --plots`) shows the small-signal response of an output when the
+// patch has capacitors: the Sallen-Key example gets a gain plot with its -3 dB point marked
+// where `response` puts it, and a phase plot; a resistive patch gets neither.
+#[test]
+fn plots_show_the_response_when_the_patch_has_capacitors() {
+    let (text, dir) = example("net-sallen-key.toml");
+    let p = parse(&text, &dir, &["patch.length=0.2 s", "patch.noise=false"]);
+    let figs = railsong::report::plots(&p, None).unwrap();
+    let kinds: Vec<&str> = figs.iter().map(|f| f.kind).collect();
+    assert!(
+        kinds.contains(&"response-gain") && kinds.contains(&"response-phase"),
+        "{kinds:?}"
+    );
+    let gain = figs.iter().find(|f| f.kind == "response-gain").unwrap();
+    assert_eq!(gain.file_name(), "out-response-gain.svg");
+    let grid = railsong::response::log_grid(10.0, 40e3, 200).unwrap();
+    let r = railsong::response::response(&p, 0, &grid).unwrap();
+    let f3 = railsong::response::minus_3db(&r.outputs["out"].points);
+    assert_eq!(f3.len(), 1);
+    let label = format!("-3 dB at {}", railsong::units::fmt_eng(f3[0], "Hz"));
+    assert!(gain.svg.contains(&label), "{label} not in the plot");
+
+    let resistive = format!(
+        "{RAILS}{}[stages.g]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"v\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"y\", \"m\"] }}, {{ r = \"10k\", ends = [\"m\", \"gnd\"] }}]\n\
+out = \"y\"\n[outputs.o]\nfrom = \"g\"\n",
+        "[sources.v]\nwave = \"saw\"\nfreq = \"100 Hz\"\namp = \"1 V\"\n"
+    );
+    let p = railsong::patch::parse_str(&resistive, "r.toml", Path::new("."), &[]).unwrap();
+    let figs = railsong::report::plots(&p, None).unwrap();
+    assert!(
+        figs.iter().all(|f| !f.kind.starts_with("response")),
+        "{:?}",
+        figs.iter().map(|f| f.kind).collect::<Vec<_>>()
+    );
+    assert!(figs.iter().any(|f| f.kind == "spectrum"));
+}
