@@ -645,3 +645,116 @@ out = \"y\"\n[outputs.o]\nfrom = \"g\"\n",
     );
     assert!(figs.iter().any(|f| f.kind == "spectrum"));
 }
+
+/// The one-sided density of a budget's output at 1 kHz, V/sqrt(Hz).
+fn noise_density(text: &str, output: &str) -> (f64, Vec<String>) {
+    let p = railsong::patch::parse_str(text, "noise.toml", Path::new("."), &[])
+        .unwrap_or_else(|e| panic!("{e}"));
+    let b = railsong::budget::budget(&p, railsong::budget::DEFAULT_BAND);
+    let o = b.iter().find(|b| b.output == output).unwrap();
+    (
+        o.total_density_1k,
+        o.items.iter().map(|i| i.label.clone()).collect(),
+    )
+}
+
+const NOISY: &str = "[parts.quiet]\nbased_on = \"ideal\"\nen = \"10 nV/rtHz\"\nen_corner = \"0 Hz\"\nin = \"2 pA/rtHz\"\n";
+
+// The noise budget reads network stages from the patch's one circuit. A non-inverting
+// network (source resistor Rs into V+, Rf, Rg) with a fast part: the textbook output
+// density e^2 = NG^2 (en^2 + 4kT Rs + (in Rs)^2) + (in Rf)^2 + 4kT Rf (1 + Rf/Rg),
+// NG = 1 + Rf/Rg (op-amp noise analysis, e.g. Franco, "Design with Operational Amplifiers
+// and Analog Integrated Circuits", 2015), within 1e-4; every part and both input currents
+// are listed by their key; and the same circuit written as the shorthand stage budgets the
+// same total.
+#[test]
+fn network_noise_budget_matches_the_textbook_non_inverting_stage() {
+    let (rs, rf, rg) = (10e3, 47e3, 4.7e3);
+    let text = format!(
+        "{RAILS}{NOISY}{}[stages.n]\ntype = \"network\"\n\
+amps = [{{ part = \"quiet\", plus = \"p\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ r = \"{rs}\", ends = [\"v\", \"p\"] }}, {{ r = \"{rf}\", ends = [\"y\", \"m\"] }}, \
+{{ r = \"{rg}\", ends = [\"m\", \"gnd\"] }}]\n\
+out = \"y\"\n[outputs.o]\nfrom = \"n\"\n",
+        sine_src("v", 0.1, 0.0)
+    );
+    let (d, labels) = noise_density(&text, "o");
+    let p = railsong::patch::parse_str(&text, "n.toml", Path::new("."), &[]).unwrap();
+    let kt4 = 4.0 * railsong::budget::BOLTZMANN * p.temperature;
+    let (en, inn) = (10e-9, 2e-12);
+    let ng = 1.0 + rf / rg;
+    let want = (ng * ng * (en * en + kt4 * rs + (inn * rs).powi(2))
+        + (inn * rf).powi(2)
+        + kt4 * rf * (1.0 + rf / rg))
+        .sqrt();
+    assert!((d / want - 1.0).abs() < 1e-4, "{d} against {want}");
+    for l in [
+        "stages.n.parts[0]",
+        "stages.n.parts[1]",
+        "stages.n.parts[2]",
+        "stages.n.amps[0] en",
+        "stages.n.amps[0] in+",
+        "stages.n.amps[0] in-",
+    ] {
+        assert!(labels.iter().any(|x| x.starts_with(l)), "{l} in {labels:?}");
+    }
+    // the shorthand stage, fed through a unity follower network carrying Rs (so both see the
+    // same source resistance), budgets the same noise at its output
+    let short = format!(
+        "{RAILS}{NOISY}{}[stages.rs]\ntype = \"network\"\namps = []\n\
+parts = [{{ r = \"{rs}\", ends = [\"v\", \"p\"] }}, {{ r = \"1G\", ends = [\"p\", \"gnd\"] }}]\nout = \"p\"\n\
+[stages.s]\ntype = \"non-inverting\"\npart = \"quiet\"\nfrom = \"rs\"\nr_fb = \"{rf}\"\nr_g = \"{rg}\"\n\
+[outputs.o]\nfrom = \"s\"\n",
+        sine_src("v", 0.1, 0.0)
+    );
+    let (ds, _) = noise_density(&short, "o");
+    // 1G to ground adds its own 4kT 1G through Rs/(Rs + 1G): 1e-5 of Rs's power
+    assert!(
+        (ds / want - 1.0).abs() < 1e-4,
+        "shorthand {ds} against {want}"
+    );
+}
+
+// A diode's shot noise: a forward-biased junction (is, n, no series resistance) fed from the
+// positive rail through R, read at its node (`from = "net.d"`). Its current I from the
+// Shockley equation (solved here by Newton's method), its small-signal resistance
+// rd = n Vt / (I + is); the node's density is 2 q I (R || rd)^2 (Schottky's shot noise)
+// plus R's 4kT R (rd / (R + rd))^2, within 1e-3.
+#[test]
+fn network_noise_budget_includes_diode_shot_noise() {
+    let r = 10e3;
+    let text = format!(
+        "{RAILS}{}[diodes.plain]\nis = \"1e-14 A\"\nn = 1\nrs = \"0\"\ncj = \"0\"\n\
+[stages.net]\ntype = \"network\"\namps = []\n\
+parts = [{{ r = \"{r}\", ends = [\"pos\", \"d\"] }}, {{ diode = \"plain\", ends = [\"d\", \"gnd\"] }}, \
+{{ r = \"10k\", ends = [\"v\", \"x\"] }}, {{ r = \"10k\", ends = [\"x\", \"gnd\"] }}]\nout = \"x\"\n\
+[outputs.o]\nfrom = \"net.d\"\n",
+        sine_src("v", 0.1, 0.0)
+    );
+    let p = railsong::patch::parse_str(&text, "d.toml", Path::new("."), &[])
+        .unwrap_or_else(|e| panic!("{e}"));
+    let vt =
+        railsong::budget::BOLTZMANN * p.temperature / railsong::parts::diodes::ELEMENTARY_CHARGE;
+    let is = 1e-14;
+    let mut v: f64 = 0.6;
+    for _ in 0..100 {
+        let f = is * ((v / vt).exp() - 1.0) - (12.0 - v) / r;
+        let df = is / vt * (v / vt).exp() + 1.0 / r;
+        v -= f / df;
+    }
+    let i = (12.0 - v) / r;
+    let rd = vt / (i + is);
+    let kt4 = 4.0 * railsong::budget::BOLTZMANN * p.temperature;
+    let par = r * rd / (r + rd);
+    let want = (2.0 * railsong::parts::diodes::ELEMENTARY_CHARGE * i * par * par
+        + kt4 * r * (rd / (r + rd)).powi(2))
+    .sqrt();
+    let (d, labels) = noise_density(&text, "o");
+    assert!((d / want - 1.0).abs() < 1e-3, "{d} against {want}");
+    assert!(
+        labels
+            .iter()
+            .any(|l| l.starts_with("stages.net.parts[1] (diode, shot")),
+        "{labels:?}"
+    );
+}

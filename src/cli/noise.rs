@@ -20,7 +20,7 @@ pub(crate) fn cmd_noise(
     json: bool,
 ) -> Result<(), Failure> {
     let patch = load(path, sets)?;
-    let budgets = railsong::noise::try_budget(&patch, railsong::noise::DEFAULT_BAND)
+    let budgets = railsong::budget::try_budget(&patch, railsong::budget::DEFAULT_BAND)
         .map_err(Failure::bad_input)?;
     let picked: Vec<_> = budgets
         .iter()
@@ -54,7 +54,7 @@ pub(crate) fn cmd_noise(
     let sim = stream_patch(&idle, false, false, &mut |_, _| Ok(()))?;
     for b in picked {
         say!();
-        say_raw!("{}", railsong::noise::format_budget(b));
+        say_raw!("{}", railsong::budget::format_budget(b));
         let k = patch.outputs.iter().position(|o| o.name == b.output);
         let simulated = k
             .and_then(|k| sim.run.outputs.get(k))

@@ -169,8 +169,8 @@
 //! `density * sqrt(fs_internal / 2)` (white noise of one-sided density `d` sampled at `fs`
 //! has variance `d^2 fs / 2`); the decimator removes the band above the base rate's
 //! Nyquist frequency. Simulated, with the same model as the analytic budget
-//! ([`crate::noise`]) so that the two totals compare:
-//! - thermal (Johnson-Nyquist) noise `sqrt(4 k T R)`, `k` = [`crate::noise::BOLTZMANN`]
+//! ([`crate::budget`]) so that the two totals compare:
+//! - thermal (Johnson-Nyquist) noise `sqrt(4 k T R)`, `k` = [`crate::budget::BOLTZMANN`]
 //!   (exact, SI 2019), `T` = `patch.temperature`, as a voltage in series with each resistor:
 //!   every input branch (its resistor plus the Thevenin resistance of the pots it reads: a
 //!   passive resistive network's Thevenin noise is that of its Thevenin resistance),
