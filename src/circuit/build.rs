@@ -440,3 +440,95 @@ pub fn patch_circuit(patch: &Patch) -> PatchCircuit {
         output_elems,
     }
 }
+
+/// A shorthand op-amp stage (inverting summer, inverting, non-inverting, follower) as its
+/// textbook circuit, the same expansion as [`patch_circuit`], with every input on an input
+/// node of its own: `tap(j, node)` gives the (gain, Thevenin resistance) of input `j`'s
+/// source as that input sees it (a pot's wiper with its other loads; input 0 of a
+/// non-inverting stage or follower is its `from`), the resistance a resistor from the input
+/// node. `amp` is the compiled op-amp (its static load already counted). A network or an
+/// attenuator gives an empty circuit.
+pub fn shorthand_circuit(
+    patch: &Patch,
+    stage: usize,
+    tap: &dyn Fn(usize, Node) -> (f64, f64),
+    amp: Amp,
+) -> NetCircuit {
+    let st = &patch.stages[stage];
+    let mut c = Circuit::new();
+    let mut inputs: Vec<(usize, InputRef, f64)> = Vec::new();
+    let mut feed = |c: &mut Circuit, j: usize, from: Node| -> usize {
+        let (gain, rth) = tap(j, from);
+        let name = patch.node_name(from).to_string();
+        let i = c.input(&name);
+        inputs.push((i, InputRef::Node(from), gain));
+        if rth > 0.0 {
+            let n = c.node(&format!("{name}.tap"), NodeKind::Free);
+            c.r(i, n, rth, &format!("{name}.rth"));
+            n
+        } else {
+            i
+        }
+    };
+    let y = c.node(&st.name, NodeKind::Free);
+    match &st.kind {
+        StageKind::InvertingSum {
+            inputs: ins,
+            feedback,
+            reference,
+            ..
+        } => {
+            let m = c.node("minus", NodeKind::Free);
+            let r = c.node("ref", NodeKind::Fixed(*reference));
+            for (k, inp) in ins.iter().enumerate() {
+                let from = feed(&mut c, k, inp.from);
+                match inp.c {
+                    Some(cap) => {
+                        let mid = c.node(&format!("inputs[{k}].c"), NodeKind::Free);
+                        c.c(from, mid, cap, &format!("inputs[{k}].c"));
+                        c.r(mid, m, inp.r, &format!("inputs[{k}].r"));
+                    }
+                    None => c.r(from, m, inp.r, &format!("inputs[{k}].r")),
+                }
+            }
+            c.r(m, y, feedback.r, "feedback.r");
+            if let Some(cap) = feedback.c {
+                c.c(m, y, cap, "feedback.c");
+            }
+            c.amp(amp, r, m, y);
+        }
+        StageKind::NonInverting {
+            from,
+            r_fb,
+            c_fb,
+            r_g,
+            reference,
+        } => {
+            let m = c.node("minus", NodeKind::Free);
+            let r = c.node("ref", NodeKind::Fixed(*reference));
+            c.r(y, m, *r_fb, "r_fb");
+            if let Some(cap) = c_fb {
+                c.c(y, m, *cap, "c_fb");
+            }
+            c.r(m, r, *r_g, "r_g");
+            let p = feed(&mut c, 0, *from);
+            c.amp(amp, p, m, y);
+        }
+        StageKind::Follower { from } => {
+            let p = feed(&mut c, 0, *from);
+            c.amp(amp, p, y, y);
+        }
+        StageKind::Attenuator { .. } | StageKind::Network(_) => {}
+    }
+    NetCircuit {
+        circuit: c,
+        inputs,
+        locals: Vec::new(),
+        out: y,
+        out_amp: (!matches!(
+            st.kind,
+            StageKind::Attenuator { .. } | StageKind::Network(_)
+        ))
+        .then_some(0),
+    }
+}

@@ -1061,7 +1061,7 @@ fn linear_block(
             }
         }
         if sp.fb_cap.is_some() {
-            st.vf = v - vminus;
+            st.vf = 2.0 * (v - vminus) - st.vf;
         }
     }
     st.v = v;
@@ -1142,7 +1142,7 @@ fn full_block(
             }
         }
         if sp.fb_cap.is_some() {
-            st.vf = v - vminus;
+            st.vf = 2.0 * (v - vminus) - st.vf;
         }
         pp2 = pp;
         pp = pn;
@@ -1311,7 +1311,7 @@ fn hybrid_block(
                 }
             }
             if sp.fb_cap.is_some() {
-                st.vf = v - vminus;
+                st.vf = 2.0 * (v - vminus) - st.vf;
             }
         }
     }
