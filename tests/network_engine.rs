@@ -547,8 +547,9 @@ parts = [{{ pot = \"10k\", ends = [\"gnd\", \"osc\"], wiper = \"w\", at = \"pan\
     assert_eq!(setting.track, 20e3);
 }
 
-// The compiled plan is plain data: a state-variable loop is one group of three op-amps, a
-// chain of two inverters two groups, and the printout names them.
+// The compiled plan is plain data: a chain of two inverters is two groups, and the printout
+// names them; the engine's kernel selection runs each group, one op-amp in the stage shape,
+// on the stage kernel (two stages named by their op-amps).
 #[test]
 fn the_plan_groups_loops_and_chains() {
     let text = format!(
@@ -559,18 +560,26 @@ parts = [{{ r = \"10k\", ends = [\"osc\", \"m1\"] }}, {{ r = \"10k\", ends = [\"
 [outputs.out]\nfrom = \"two\"\n",
         sine("osc", 1000.0, 1.0)
     );
-    let plan = railsong::engine::compile(&patch(&text)).unwrap();
-    let net = &plan.networks[0];
-    assert_eq!(net.circuit.groups.len(), 2);
-    let shown = net.circuit.to_string();
+    let p = patch(&text);
+    let nc = railsong::circuit::build::network_circuit(&p, 0, &|_| (1.0, 0.0), 0.0);
+    let circuit = railsong::circuit::plan::compile(nc.circuit, 1.0 / (4.0 * RATE)).unwrap();
+    assert_eq!(circuit.groups.len(), 2);
+    let shown = circuit.to_string();
     assert!(
         shown.contains("group 0") && shown.contains("group 1"),
         "{shown}"
     );
     assert!(shown.contains("linear fast path"), "{shown}");
     // unity inverters with an ideal part: each loop factor is 1/2 (Millman) [S]
-    for g in &net.circuit.groups {
+    for g in &circuit.groups {
         assert!((g.amps[0].b - 0.5).abs() < 1e-12);
+    }
+    let plan = railsong::engine::compile(&p).unwrap();
+    assert!(plan.networks.is_empty());
+    let names: Vec<&str> = plan.stages.iter().map(|s| s.name.as_str()).collect();
+    assert_eq!(names, ["two.amp0", "two.amp1"]);
+    for s in &plan.stages {
+        assert!((s.b - 0.5).abs() < 1e-12, "{}", s.name);
     }
     let y = render(&text);
     let g = gain(&y[0], 1000.0, 1.0);

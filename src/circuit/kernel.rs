@@ -478,6 +478,131 @@ pub fn stage_form(c: &Circuit, h: f64) -> Option<StageForm> {
     })
 }
 
+/// What feeds an input node of a [`Piece`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Feed {
+    /// An input node of the whole circuit (its node index there).
+    Input(usize),
+    /// Another op-amp's output (its index in the whole circuit).
+    Amp(usize),
+}
+
+/// One op-amp group of a circuit as a circuit of its own in the stage shape.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Piece {
+    /// The op-amp (index in the whole circuit).
+    pub amp: usize,
+    /// Its circuit: the op-amp, the passive nodes around its inputs and their elements;
+    /// every other driven node an input node (or the same fixed node).
+    pub circuit: Circuit,
+    /// Its stage form.
+    pub form: StageForm,
+    /// What feeds each of its input nodes: (node in `circuit`, feed).
+    pub feeds: Vec<(usize, Feed)>,
+}
+
+/// Split a circuit into its op-amp groups ([`super::partition::groups`], in solving
+/// order) when every group is one op-amp in the stage shape; `None` otherwise (the
+/// circuit then runs on the circuit group kernel as a whole). Passive nodes that reach no
+/// op-amp input only load an output (counted in the op-amp's static load).
+pub fn split_groups(c: &Circuit, h: f64) -> Option<Vec<Piece>> {
+    let groups = super::partition::groups(c);
+    let nn = c.nodes.len();
+    let passive: Vec<bool> = (0..nn).map(|n| !c.driven(n)).collect();
+    let mut pieces = Vec::new();
+    for g in &groups {
+        match g.amps.len() {
+            0 => continue,
+            1 => {}
+            _ => return None,
+        }
+        let ai = g.amps[0];
+        let a = &c.amps[ai];
+        // passive nodes reachable from the inputs through passive nodes
+        let mut set = vec![false; nn];
+        let mut stack: Vec<usize> = [a.plus, a.minus]
+            .into_iter()
+            .filter(|&n| passive[n])
+            .collect();
+        for &n in &stack {
+            set[n] = true;
+        }
+        while let Some(x) = stack.pop() {
+            for e in &c.elems {
+                let y = if e.a == x {
+                    e.b
+                } else if e.b == x {
+                    e.a
+                } else {
+                    continue;
+                };
+                if passive[y] && !set[y] {
+                    set[y] = true;
+                    stack.push(y);
+                }
+            }
+        }
+        let mut sub = Circuit::new();
+        let mut map = vec![usize::MAX; nn];
+        let mut feeds = Vec::new();
+        let mut node = |sub: &mut Circuit, n: usize| -> usize {
+            if map[n] != usize::MAX {
+                return map[n];
+            }
+            let name = c.nodes[n].name.clone();
+            let k = if n == a.out || set[n] {
+                sub.node(&name, NodeKind::Free)
+            } else {
+                match c.nodes[n].kind {
+                    NodeKind::Fixed(v) => sub.node(&name, NodeKind::Fixed(v)),
+                    NodeKind::Input(_) => {
+                        let k = sub.input(&name);
+                        feeds.push((k, Feed::Input(n)));
+                        k
+                    }
+                    NodeKind::Free => {
+                        let k = sub.input(&name);
+                        let src = c.amps.iter().position(|b| b.out == n);
+                        feeds.push((k, Feed::Amp(src.unwrap_or(usize::MAX))));
+                        k
+                    }
+                }
+            };
+            map[n] = k;
+            k
+        };
+        let (p, m, o) = (
+            node(&mut sub, a.plus),
+            node(&mut sub, a.minus),
+            node(&mut sub, a.out),
+        );
+        for e in &c.elems {
+            if !(set[e.a] || set[e.b]) {
+                continue;
+            }
+            let (x, y) = (node(&mut sub, e.a), node(&mut sub, e.b));
+            sub.elems.push(super::Elem {
+                kind: e.kind,
+                a: x,
+                b: y,
+                label: e.label.clone(),
+            });
+        }
+        if feeds.iter().any(|(_, f)| *f == Feed::Amp(usize::MAX)) {
+            return None;
+        }
+        sub.amp(a.clone(), p, m, o);
+        let form = stage_form(&sub, h)?;
+        pieces.push(Piece {
+            amp: ai,
+            circuit: sub,
+            form,
+            feeds,
+        });
+    }
+    Some(pieces)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

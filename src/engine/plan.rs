@@ -4,8 +4,9 @@ use super::halfband;
 use super::network::{NetInput, NetPlan};
 use super::shaper::{Shaper, LOOKAHEAD};
 use super::EngineError;
+use crate::circuit::build::NetCircuit;
 use crate::circuit::build::{network_circuit_loaded, reader_loads, shorthand_circuit, InputRef};
-use crate::circuit::kernel::stage_form;
+use crate::circuit::kernel::{split_groups, stage_form, Feed, StageForm};
 use crate::circuit::step::CircuitState;
 use crate::circuit::Amp;
 use crate::model::{Envelope, NetNode, Node, Patch, Rails, StageKind, Wave};
@@ -394,6 +395,19 @@ fn stage_load(ctx: &Ctx, i: usize) -> f64 {
         };
     }
     load_g
+}
+
+/// One op-amp stage for the stage kernel: a shorthand stage, or one op-amp group of a
+/// network, with its reduced form.
+struct Job<'p> {
+    name: String,
+    topology: &'static str,
+    part: &'p OpAmp,
+    amp: Amp,
+    form: StageForm,
+    /// (input node of the form's circuit, buffer, tap gain)
+    feeds: Vec<(usize, usize, f64)>,
+    buf: usize,
 }
 
 /// Compile network stage `i` into buffer `buf`.
@@ -833,20 +847,72 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
             }
             continue;
         };
-        let (nc, form, part, topology, g_fb_load) = if let StageKind::Network(net) = &st.kind {
+        // every input node of the stage's circuit: (buffer, tap gain)
+        let feeds_of = |nc: &NetCircuit| -> Vec<(usize, usize, f64)> {
+            nc.inputs
+                .iter()
+                .map(|&(cnode, r, gain)| {
+                    let b = match r {
+                        InputRef::Node(n) => ctx.tap(Consumer::Input(i, usize::MAX), n).base,
+                        InputRef::Inner(s, l) => export_buf
+                            .iter()
+                            .find(|(k, _)| *k == (s, l))
+                            .map_or(0, |(_, b)| *b),
+                    };
+                    (cnode, b, gain)
+                })
+                .collect()
+        };
+        let mut jobs: Vec<Job> = Vec::new();
+        if let StageKind::Network(net) = &st.kind {
             let exported = export_buf.iter().any(|((s, _), _)| *s == i);
             let tap = |n: Node| {
                 let t = ctx.tap(Consumer::Input(i, usize::MAX), n);
                 (t.gain, t.rth)
             };
-            let nc = (net.amps.len() == 1 && !exported)
-                .then(|| network_circuit_loaded(patch, i, &tap, stage_load(&ctx, i), &[]));
-            let form = nc
-                .as_ref()
-                .filter(|nc| nc.out_amp == Some(0))
-                .and_then(|nc| stage_form(&nc.circuit, h));
-            match (nc, form) {
-                (Some(nc), Some(form)) => (nc, form, &net.amps[0].part, "network", 0.0),
+            let nc = (!exported)
+                .then(|| network_circuit_loaded(patch, i, &tap, stage_load(&ctx, i), &[]))
+                .filter(|nc| nc.out_amp.is_some());
+            let pieces = nc.as_ref().and_then(|nc| split_groups(&nc.circuit, h));
+            match (nc, pieces) {
+                (Some(nc), Some(pieces)) => {
+                    let outer = feeds_of(&nc);
+                    // the op-amp driving `out` writes the stage's buffer; the others get
+                    // buffers of their own
+                    let mut amp_buf = vec![usize::MAX; nc.circuit.amps.len()];
+                    for pc in &pieces {
+                        amp_buf[pc.amp] = if Some(pc.amp) == nc.out_amp {
+                            buf
+                        } else {
+                            node_lat.push(0);
+                            rest_node.push(0.0);
+                            node_lat.len() - 1
+                        };
+                    }
+                    for pc in pieces {
+                        let feeds = pc
+                            .feeds
+                            .iter()
+                            .map(|&(k, f)| match f {
+                                Feed::Input(n) => outer
+                                    .iter()
+                                    .find(|x| x.0 == n)
+                                    .map_or((k, 0, 0.0), |x| (k, x.1, x.2)),
+                                Feed::Amp(a) => (k, amp_buf[a], 1.0),
+                            })
+                            .collect();
+                        let amp = pc.circuit.amps[0].clone();
+                        jobs.push(Job {
+                            name: amp.name.clone(),
+                            topology: "network",
+                            part: &net.amps[pc.amp].part,
+                            amp,
+                            form: pc.form,
+                            feeds,
+                            buf: amp_buf[pc.amp],
+                        });
+                    }
+                }
                 _ => {
                     let np = compile_network(
                         &ctx,
@@ -911,166 +977,168 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                 stage: st.name.clone(),
                 message: "the stage's circuit does not reduce to one op-amp stage".into(),
             })?;
-            (nc, form, part, topology, g_fb_load)
-        };
-        let amp = &nc.circuit.amps[form.amp];
-        let name = if matches!(st.kind, StageKind::Network(_)) {
-            amp.name.clone()
-        } else {
-            st.name.clone()
-        };
-        // every input node: (buffer, tap gain)
-        let feed_of = |cnode: usize| -> (usize, f64) {
-            nc.inputs
-                .iter()
-                .find(|(n, _, _)| *n == cnode)
-                .map_or((0, 0.0), |&(_, r, gain)| {
-                    let b = match r {
-                        InputRef::Node(n) => ctx.tap(Consumer::Input(i, usize::MAX), n).base,
-                        InputRef::Inner(s, l) => export_buf
-                            .iter()
-                            .find(|(k, _)| *k == (s, l))
-                            .map_or(0, |(_, b)| *b),
-                    };
-                    (b, gain)
-                })
-        };
-        let (gbw, slew, vov, eps, load_g) = (amp.gbw, amp.slew, amp.vov, amp.eps, amp.load_g);
-        let kgain = std::f64::consts::TAU * gbw;
-        let nonneg = |x: f64| if x.is_finite() && x > 0.0 { x } else { 0.0 };
-        let (en, fc, inoise) = (nonneg(part.en), nonneg(part.en_corner), nonneg(part.inoise));
-        let _ = g_fb_load;
-        let mut taps = Vec::new();
-        let mut minus = Vec::new();
-        for br in &form.minus {
-            let (node, gain) = feed_of(br.node);
-            taps.push(node);
-            minus.push(MinusInput {
-                node,
-                delay: 0,
-                gain,
-                r: br.r,
-                cap: br.cap,
-                decay: br.decay,
-                mu: br.mu,
+            jobs.push(Job {
+                name: st.name.clone(),
+                topology,
+                part,
+                amp: nc.circuit.amps[form.amp].clone(),
+                feeds: feeds_of(&nc),
+                form,
+                buf,
             });
         }
-        let mut plus = None;
-        let mut vp_rest = form.plus_const;
-        if let Some((cnode, w)) = form.plus {
-            let (node, gain) = feed_of(cnode);
-            taps.push(node);
-            vp_rest += w * gain * rest_node[node];
-            plus = Some(PlusInput {
-                node,
-                delay: 0,
-                gain: w * gain,
-                rth: form.plus_rth,
+        for job in jobs {
+            let Job {
+                name,
+                topology,
+                part,
+                amp,
+                form,
+                feeds,
+                buf,
+            } = job;
+            let feed_of = |cnode: usize| -> (usize, f64) {
+                feeds
+                    .iter()
+                    .find(|x| x.0 == cnode)
+                    .map_or((0, 0.0), |x| (x.1, x.2))
+            };
+            let (gbw, slew, vov, eps, load_g) = (amp.gbw, amp.slew, amp.vov, amp.eps, amp.load_g);
+            let kgain = std::f64::consts::TAU * gbw;
+            let nonneg = |x: f64| if x.is_finite() && x > 0.0 { x } else { 0.0 };
+            let (en, fc, inoise) = (nonneg(part.en), nonneg(part.en_corner), nonneg(part.inoise));
+            let mut taps = Vec::new();
+            let mut minus = Vec::new();
+            for br in &form.minus {
+                let (node, gain) = feed_of(br.node);
+                taps.push(node);
+                minus.push(MinusInput {
+                    node,
+                    delay: 0,
+                    gain,
+                    r: br.r,
+                    cap: br.cap,
+                    decay: br.decay,
+                    mu: br.mu,
+                });
+            }
+            let mut plus = None;
+            let mut vp_rest = form.plus_const;
+            if let Some((cnode, w)) = form.plus {
+                let (node, gain) = feed_of(cnode);
+                taps.push(node);
+                vp_rest += w * gain * rest_node[node];
+                plus = Some(PlusInput {
+                    node,
+                    delay: 0,
+                    gain: w * gain,
+                    rth: form.plus_rth,
+                });
+            }
+            let (plus_const, minus_const, b) = (form.plus_const, form.minus_const, form.b);
+            let fb_cap = form.fb_cap.map(|(c, g, mu)| FeedbackCap { c, g, mu });
+            // DC (caps open) for the rest state: V- = a_dc + beta_dc v.
+            let a_dc = form.dc_const
+                + form
+                    .dc_minus
+                    .iter()
+                    .map(|&(cnode, w)| {
+                        let (node, gain) = feed_of(cnode);
+                        w * gain * rest_node[node]
+                    })
+                    .sum::<f64>();
+            let beta_dc = form.dc_b;
+            // White noise power densities at V+ and V- (V^2/Hz): every resistor through its
+            // transfer, en at V+, the current noise through the resistance each input sees.
+            let n_plus = en * en + four_kt * form.noise_plus_r + (inoise * form.plus_rth).powi(2);
+            let n_minus = four_kt * form.noise_minus_r + (inoise * form.z_minus).powi(2);
+            let (swing, shaper, cm, reversal) = (amp.swing, amp.shaper, amp.cm, amp.reversal);
+            let Shaper { lo, hi, w } = shaper;
+
+            // Rest state.
+            let vp_eff = match cm {
+                Some((cl, ch)) if !reversal => vp_rest.clamp(cl, ch.max(cl)),
+                _ => vp_rest,
+            };
+            let v_lin = (vp_eff - a_dc) / (beta_dc + eps);
+            let rest_v = if v_lin.is_finite() {
+                v_lin.clamp(lo, hi)
+            } else {
+                0.0
+            };
+            let vminus = a_dc + beta_dc * rest_v;
+            let rest_vc: Vec<f64> = minus
+                .iter()
+                .map(|m| {
+                    if m.cap.is_some() {
+                        m.gain * rest_node[m.node] - vminus
+                    } else {
+                        0.0
+                    }
+                })
+                .collect();
+            let rest_vf = if fb_cap.is_some() {
+                rest_v - vminus
+            } else {
+                0.0
+            };
+            let mrest = minus_const
+                + minus
+                    .iter()
+                    .zip(&rest_vc)
+                    .map(|(m, vc)| m.mu * (m.gain * rest_node[m.node] - vc))
+                    .sum::<f64>()
+                - fb_cap.as_ref().map_or(0.0, |f| f.mu * rest_vf);
+            let rest_p = vp_eff - mrest;
+            rest_node[buf] = shaper.apply(rest_v);
+
+            let lat = LOOKAHEAD + taps.iter().map(|&t| node_lat[t]).max().unwrap_or(0);
+            node_lat[buf] = lat;
+            for m in &mut minus {
+                m.delay = lat - LOOKAHEAD - node_lat[m.node];
+                history = history.max(m.delay);
+            }
+            if let Some(p) = &mut plus {
+                p.delay = lat - LOOKAHEAD - node_lat[p.node];
+                history = history.max(p.delay);
+            }
+            let (e, a1, a0) = foh(kgain * h * (b + eps));
+            order.push(StageStep::Op(stages.len()));
+            stages.push(StagePlan {
+                part: part.name.clone(),
+                topology: topology.to_string(),
+                node: buf,
+                latency: lat,
+                minus,
+                plus,
+                plus_const,
+                minus_const,
+                b,
+                fb_cap,
+                gbw,
+                slew,
+                vov,
+                eps,
+                lin_e: e,
+                lin_a1: a1 / (b + eps),
+                lin_a0: a0 / (b + eps),
+                shaper,
+                swing,
+                load_g,
+                state_lo: lo - w - STATE_MARGIN,
+                state_hi: hi + w + STATE_MARGIN,
+                cm,
+                reversal,
+                rest_v,
+                rest_vc,
+                rest_vf,
+                rest_p,
+                noise_white: (n_plus + n_minus).sqrt(),
+                noise_flicker: en * fc.sqrt(),
+                noise_seed: super::noise::stream_seed(patch.seed, &format!("stages.{name}"), "vd"),
+                name,
             });
         }
-        let (plus_const, minus_const, b) = (form.plus_const, form.minus_const, form.b);
-        let fb_cap = form.fb_cap.map(|(c, g, mu)| FeedbackCap { c, g, mu });
-        // DC (caps open) for the rest state: V- = a_dc + beta_dc v.
-        let a_dc = form.dc_const
-            + form
-                .dc_minus
-                .iter()
-                .map(|&(cnode, w)| {
-                    let (node, gain) = feed_of(cnode);
-                    w * gain * rest_node[node]
-                })
-                .sum::<f64>();
-        let beta_dc = form.dc_b;
-        // White noise power densities at V+ and V- (V^2/Hz): every resistor through its
-        // transfer, en at V+, the current noise through the resistance each input sees.
-        let n_plus = en * en + four_kt * form.noise_plus_r + (inoise * form.plus_rth).powi(2);
-        let n_minus = four_kt * form.noise_minus_r + (inoise * form.z_minus).powi(2);
-        let (swing, shaper, cm, reversal) = (amp.swing, amp.shaper, amp.cm, amp.reversal);
-        let Shaper { lo, hi, w } = shaper;
-
-        // Rest state.
-        let vp_eff = match cm {
-            Some((cl, ch)) if !reversal => vp_rest.clamp(cl, ch.max(cl)),
-            _ => vp_rest,
-        };
-        let v_lin = (vp_eff - a_dc) / (beta_dc + eps);
-        let rest_v = if v_lin.is_finite() {
-            v_lin.clamp(lo, hi)
-        } else {
-            0.0
-        };
-        let vminus = a_dc + beta_dc * rest_v;
-        let rest_vc: Vec<f64> = minus
-            .iter()
-            .map(|m| {
-                if m.cap.is_some() {
-                    m.gain * rest_node[m.node] - vminus
-                } else {
-                    0.0
-                }
-            })
-            .collect();
-        let rest_vf = if fb_cap.is_some() {
-            rest_v - vminus
-        } else {
-            0.0
-        };
-        let mrest = minus_const
-            + minus
-                .iter()
-                .zip(&rest_vc)
-                .map(|(m, vc)| m.mu * (m.gain * rest_node[m.node] - vc))
-                .sum::<f64>()
-            - fb_cap.as_ref().map_or(0.0, |f| f.mu * rest_vf);
-        let rest_p = vp_eff - mrest;
-        rest_node[buf] = shaper.apply(rest_v);
-
-        let lat = LOOKAHEAD + taps.iter().map(|&t| node_lat[t]).max().unwrap_or(0);
-        node_lat[buf] = lat;
-        for m in &mut minus {
-            m.delay = lat - LOOKAHEAD - node_lat[m.node];
-            history = history.max(m.delay);
-        }
-        if let Some(p) = &mut plus {
-            p.delay = lat - LOOKAHEAD - node_lat[p.node];
-            history = history.max(p.delay);
-        }
-        let (e, a1, a0) = foh(kgain * h * (b + eps));
-        order.push(StageStep::Op(stages.len()));
-        stages.push(StagePlan {
-            name,
-            part: part.name.clone(),
-            topology: topology.to_string(),
-            node: buf,
-            latency: lat,
-            minus,
-            plus,
-            plus_const,
-            minus_const,
-            b,
-            fb_cap,
-            gbw,
-            slew,
-            vov,
-            eps,
-            lin_e: e,
-            lin_a1: a1 / (b + eps),
-            lin_a0: a0 / (b + eps),
-            shaper,
-            swing,
-            load_g,
-            state_lo: lo - w - STATE_MARGIN,
-            state_hi: hi + w + STATE_MARGIN,
-            cm,
-            reversal,
-            rest_v,
-            rest_vc,
-            rest_vf,
-            rest_p,
-            noise_white: (n_plus + n_minus).sqrt(),
-            noise_flicker: en * fc.sqrt(),
-            noise_seed: super::noise::stream_seed(patch.seed, &format!("stages.{}", st.name), "vd"),
-        });
     }
 
     // Outputs.
@@ -1142,7 +1210,7 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
         stages,
         networks,
         order,
-        buffers: nb,
+        buffers: node_lat.len(),
         passives,
         outputs,
         filter_lengths,
