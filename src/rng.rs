@@ -106,6 +106,18 @@ impl Rng4 {
         out
     }
 
+    /// The state, `[k][lane]` (for the vector version in `engine::noise`).
+    #[inline(always)]
+    pub(crate) fn state(&self) -> [[u64; 4]; 4] {
+        self.s
+    }
+
+    /// Set the state, `[k][lane]` (for the vector version in `engine::noise`).
+    #[inline(always)]
+    pub(crate) fn set_state(&mut self, s: [[u64; 4]; 4]) {
+        self.s = s;
+    }
+
     /// Fill `out` (length a multiple of 4) with words, lane `i` at positions `i mod 4`.
     #[inline(always)]
     pub(crate) fn fill(&mut self, out: &mut [u64]) {

@@ -382,6 +382,114 @@ fn spread<const H: usize>(out: &mut [f64], v: &[f64]) {
     }
 }
 
+/// `out[i] = ws * white_one(word i)` for `out.len()` a multiple of 4, the words from `rng`.
+#[inline(always)]
+fn white_portable(rng: &mut Rng4, ws: f64, out: &mut [f64]) {
+    // the generator's state in locals (registers) for the loop
+    let mut r = *rng;
+    for c in out.chunks_exact_mut(4) {
+        let w = r.next4();
+        for (o, &w) in c.iter_mut().zip(&w) {
+            *o = ws * white_one(w);
+        }
+    }
+    *rng = r;
+}
+
+/// One step of the four lanes of xoshiro256++ in a 256-bit register each (the arithmetic of
+/// [`crate::rng::Rng::next_u64`] lane by lane; rotations as two shifts and an or).
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+#[inline]
+fn xoshiro4_avx2(s: &mut [std::arch::x86_64::__m256i; 4]) -> std::arch::x86_64::__m256i {
+    use std::arch::x86_64::*;
+    let [s0, s1, s2, s3] = *s;
+    let sum = _mm256_add_epi64(s0, s3);
+    let out = _mm256_add_epi64(
+        _mm256_or_si256(_mm256_slli_epi64::<23>(sum), _mm256_srli_epi64::<41>(sum)),
+        s0,
+    );
+    let t = _mm256_slli_epi64::<17>(s1);
+    let s2 = _mm256_xor_si256(s2, s0);
+    let s3 = _mm256_xor_si256(s3, s1);
+    let s1 = _mm256_xor_si256(s1, s2);
+    let s0 = _mm256_xor_si256(s0, s3);
+    let s2 = _mm256_xor_si256(s2, t);
+    let s3 = _mm256_or_si256(_mm256_slli_epi64::<45>(s3), _mm256_srli_epi64::<19>(s3));
+    *s = [s0, s1, s2, s3];
+    out
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+#[inline]
+fn load_state(rng: &Rng4) -> [std::arch::x86_64::__m256i; 4] {
+    use std::arch::x86_64::*;
+    let st = rng.state();
+    // SAFETY: each pointer is to a [u64; 4] (32 bytes), unaligned loads.
+    std::array::from_fn(|k| unsafe { _mm256_loadu_si256(st[k].as_ptr().cast()) })
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+#[inline]
+fn store_state(rng: &mut Rng4, s: &[std::arch::x86_64::__m256i; 4]) {
+    use std::arch::x86_64::*;
+    let mut st = [[0u64; 4]; 4];
+    for k in 0..4 {
+        // SAFETY: each pointer is to a [u64; 4] (32 bytes), unaligned stores.
+        unsafe { _mm256_storeu_si256(st[k].as_mut_ptr().cast(), s[k]) };
+    }
+    rng.set_state(st);
+}
+
+/// [`white_portable`] in AVX2 registers, bit for bit (the steps of [`white_one`] on four
+/// lanes).
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+fn white_avx2(rng: &mut Rng4, ws: f64, out: &mut [f64]) {
+    use std::arch::x86_64::*;
+    const MEAN: f64 = 4.0 * 32_767.5;
+    const TWO52: f64 = 4_503_599_627_370_496.0;
+    let inv_sigma = 1.0 / (4.0 * (65_536.0f64 * 65_536.0 - 1.0) / 12.0).sqrt();
+    let mut s = load_state(rng);
+    let low16 = _mm256_set1_epi64x(0x0000_ffff_0000_ffff);
+    let low32 = _mm256_set1_epi64x(0xffff_ffff);
+    let exp = _mm256_set1_epi64x(0x4330_0000_0000_0000);
+    let (two52, mean) = (_mm256_set1_pd(TWO52), _mm256_set1_pd(MEAN));
+    let (inv, wsv) = (_mm256_set1_pd(inv_sigma), _mm256_set1_pd(ws));
+    for c in out.chunks_exact_mut(4) {
+        let w = xoshiro4_avx2(&mut s);
+        let pairs = _mm256_add_epi64(
+            _mm256_and_si256(w, low16),
+            _mm256_and_si256(_mm256_srli_epi64::<16>(w), low16),
+        );
+        let sum = _mm256_add_epi64(
+            _mm256_and_si256(pairs, low32),
+            _mm256_srli_epi64::<32>(pairs),
+        );
+        let x = _mm256_sub_pd(_mm256_castsi256_pd(_mm256_or_si256(sum, exp)), two52);
+        let g = _mm256_mul_pd(_mm256_sub_pd(x, mean), inv);
+        // SAFETY: `c` has four elements.
+        unsafe { _mm256_storeu_pd(c.as_mut_ptr(), _mm256_mul_pd(wsv, g)) };
+    }
+    store_state(rng, &s);
+}
+
+/// [`Rng4::fill`] in AVX2 registers, bit for bit.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+fn words_avx2(rng: &mut Rng4, out: &mut [u64]) {
+    use std::arch::x86_64::*;
+    let mut s = load_state(rng);
+    for c in out.chunks_exact_mut(4) {
+        let w = xoshiro4_avx2(&mut s);
+        // SAFETY: `c` has four elements.
+        unsafe { _mm256_storeu_si256(c.as_mut_ptr().cast(), w) };
+    }
+    store_state(rng, &s);
+}
+
 /// A seeded noise stream of the engine at the internal rate: `white` (one-sided density,
 /// V/sqrt(Hz)) plus a 1/f part of density^2 `flicker^2 / f`, independent of each other.
 ///
@@ -492,17 +600,26 @@ impl NoiseStream {
         // White part: words drawn four at a time (one per generator lane) and turned into
         // samples on the spot (the same arithmetic as `white_samples`, see `white_one`).
         let n4 = n - n % 4;
-        // the generator's state in locals (registers) for the loop
-        let mut rng = self.rng;
-        for c in out[..n4].chunks_exact_mut(4) {
-            let w = rng.next4();
-            for (o, &w) in c.iter_mut().zip(&w) {
-                *o = ws * white_one(w);
+        let m4 = m.next_multiple_of(4);
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::arch::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU supports AVX2 (checked just above).
+                unsafe {
+                    white_avx2(&mut self.rng, ws, &mut out[..n4]);
+                    words_avx2(&mut self.rng, &mut self.words[n4..m4]);
+                }
+            } else {
+                white_portable(&mut self.rng, ws, &mut out[..n4]);
+                self.rng.fill(&mut self.words[n4..m4]);
             }
         }
-        self.rng = rng;
+        #[cfg(not(target_arch = "x86_64"))]
+        {
+            white_portable(&mut self.rng, ws, &mut out[..n4]);
+            self.rng.fill(&mut self.words[n4..m4]);
+        }
         // The rest of the words, in the order the plain version draws them.
-        self.rng.fill(&mut self.words[n4..m.next_multiple_of(4)]);
         for (o, &w) in out[n4..].iter_mut().zip(&self.words[n4..n]) {
             *o = ws * white_one(w);
         }
@@ -660,6 +777,17 @@ mod tests {
                 b.fill_reference(&mut y);
                 assert_eq!(x, y, "flicker {flicker}, hold {hold}, len {len}");
             }
+        }
+        // the portable white loop (used without AVX2) against the plain steps
+        let (mut r1, mut r2) = (Rng4::new(8), Rng4::new(8));
+        let mut fast = vec![0.0; 400];
+        white_portable(&mut r1, 0.3, &mut fast);
+        let mut words = vec![0u64; 400];
+        r2.fill(&mut words);
+        let mut plain = vec![0.0; 400];
+        white_samples(&words, &mut plain);
+        for (a, b) in fast.iter().zip(&plain) {
+            assert_eq!(*a, 0.3 * b);
         }
         // white_one is white_samples, sample by sample
         let mut r = Rng::new(3);
