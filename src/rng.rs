@@ -90,18 +90,18 @@ impl Rng4 {
     pub(crate) fn next4(&mut self) -> [u64; 4] {
         let [s0, s1, s2, s3] = &mut self.s;
         let mut out = [0u64; 4];
-        // rotations spelled as shifts: vector units have 64-bit shifts but (before
-        // AVX-512) no 64-bit rotation, and compilers then keep the lanes in scalar registers
         for i in 0..4 {
-            let sum = s0[i].wrapping_add(s3[i]);
-            out[i] = ((sum << 23) | (sum >> 41)).wrapping_add(s0[i]);
+            out[i] = s0[i]
+                .wrapping_add(s3[i])
+                .rotate_left(23)
+                .wrapping_add(s0[i]);
             let t = s1[i] << 17;
             s2[i] ^= s0[i];
             s3[i] ^= s1[i];
             s1[i] ^= s2[i];
             s0[i] ^= s3[i];
             s2[i] ^= t;
-            s3[i] = (s3[i] << 45) | (s3[i] >> 19);
+            s3[i] = s3[i].rotate_left(45);
         }
         out
     }

@@ -239,8 +239,8 @@ impl Flicker {
             let y = pipeline_tick::<V, true>(&mut a, &mut st, &c, &a1, 0.0, t + 1 - nf, depth);
             out[t + 1 - depth] = f * y;
         }
-        for v in 0..V {
-            self.state[4 * v..4 * v + 4].copy_from_slice(&st[v]);
+        for (dst, src) in self.state.chunks_mut(4).zip(&st) {
+            dst.copy_from_slice(src);
         }
     }
 
@@ -281,12 +281,9 @@ impl Flicker {
             let y = pipeline_tick::<V, true>(&mut a, &mut st, &c, &a1, 0.0, t + 1 - nf, depth);
             out[t + 1 - depth] = f * y;
         }
-        for v in 0..V {
-            for i in 0..4 {
-                if 4 * v + i < MAX_SECTIONS {
-                    self.state[4 * v + i] = st[v][i];
-                }
-            }
+        // the lanes past MAX_SECTIONS are identity sections, not kept
+        for (dst, src) in self.state.iter_mut().zip(st.iter().flatten()) {
+            *dst = *src;
         }
     }
 
