@@ -236,3 +236,32 @@ fn output_noise_is_gaussian() {
     assert!(excess.abs() < 0.06, "excess kurtosis {excess}");
     assert!(beyond4 >= 3, "{beyond4} samples beyond 4 sigma in {n}");
 }
+
+// The 1/f part is driven by the same four-uniform sums (issue 13). Its output in band is a
+// weighted sum of many inputs (the slower the component, the more), and passes the
+// decimator too, so an output where the 1/f part dominates must be Gaussian as well: a
+// follower of 0 V into an open output with a 20 kHz corner, where 1/f carries
+// fc ln(1000) / (fc ln(1000) + 20 kHz) = 87 % of the 20 Hz - 20 kHz power (closed form of
+// en^2 (1 + fc / f), common practice). Same bounds and reasons as above (4 s at 48 kHz).
+#[test]
+fn output_noise_is_gaussian_where_one_over_f_dominates() {
+    let mut amp = part("jfet-general");
+    amp.name = "steep".into();
+    amp.en_corner = 20e3;
+    let mut pb = Pb::new(RATE, 4, 4.0);
+    let z = pb.dc("zero", 0.0);
+    let f = pb.follower("buf", &amp, z);
+    pb.out("out", f, 0.0, None);
+    let p = noisy(pb, 3);
+    let y = &render(&p)[0];
+    let n = y.len() as f64;
+    let mean = y.iter().sum::<f64>() / n;
+    let m2 = y.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / n;
+    let m4 = y.iter().map(|v| (v - mean).powi(4)).sum::<f64>() / n;
+    let excess = m4 / (m2 * m2) - 3.0;
+    let sd = m2.sqrt();
+    let beyond4 = y.iter().filter(|v| (*v - mean).abs() > 4.0 * sd).count();
+    println!("excess kurtosis {excess:+.4} over {n} samples; {beyond4} beyond 4 sigma");
+    assert!(excess.abs() < 0.06, "excess kurtosis {excess}");
+    assert!(beyond4 >= 3, "{beyond4} samples beyond 4 sigma in {n}");
+}
