@@ -76,6 +76,8 @@ pub struct Corner {
     pub u: f64,
     /// Slope after less slope before, volts per step.
     pub d: f64,
+    /// Second derivative after less before, volts per step squared.
+    pub c: f64,
 }
 
 /// What one step did: its end value, whether it ends slewing (`+1`, `-1`) or tracking (`0`),
@@ -93,9 +95,9 @@ pub struct Stepped {
 }
 
 impl Stepped {
-    fn push(&mut self, u: f64, d: f64) {
+    fn push(&mut self, u: f64, d: f64, c: f64) {
         if self.n < MAX_CORNERS {
-            self.corners[self.n] = Corner { u, d };
+            self.corners[self.n] = Corner { u, d, c };
             self.n += 1;
         }
     }
@@ -117,6 +119,40 @@ pub fn blamp4(d: f64) -> f64 {
 #[inline]
 pub fn blamp(u: f64) -> [f64; 4] {
     [blamp4(1.0 + u), blamp4(u), blamp4(1.0 - u), blamp4(2.0 - u)]
+}
+
+/// `R(d)`, the triangle kernel's average of `(t)+^2 / 2` less its sample at distance `d`:
+/// the running integral of the ramp's (see [`blamp4`]): `(1 + d)^4 / 24` on `[-1, 0]`,
+/// `1/12 - (1 - d)^4 / 24` on `[0, 1]`, `1/12` beyond.
+#[inline]
+fn tri_par(d: f64) -> f64 {
+    if d <= -1.0 {
+        0.0
+    } else if d <= 0.0 {
+        let a = 1.0 + d;
+        a * a * a * a / 24.0
+    } else if d < 1.0 {
+        let a = 1.0 - d;
+        1.0 / 12.0 - a * a * a * a / 24.0
+    } else {
+        1.0 / 12.0
+    }
+}
+
+/// The band-limited correction of a unit jump of the second derivative (`(t)+^2 / 2`) at
+/// signed distance `d` (sample less corner) for the kernel of [`blamp4`]: `(4/3) R(d) -
+/// (4/3) R(d / 2)` (the wide triangle's `R` scales by 4), zero from two samples on either
+/// side since the kernel's second moment is zero.
+#[inline]
+pub fn blep2(d: f64) -> f64 {
+    (4.0 / 3.0) * (tri_par(d) - tri_par(0.5 * d))
+}
+
+/// [`blep2`] for samples `n - 2`, `n - 1`, `n` and `n + 1` around a jump at `u` of the step
+/// from `n - 1` to `n`.
+#[inline]
+pub fn blep2_at(u: f64) -> [f64; 4] {
+    [blep2(-1.0 - u), blep2(-u), blep2(1.0 - u), blep2(2.0 - u)]
 }
 
 /// The smallest root of `a x^2 + b x + c` in `(lo, hi]`, if any (stable form).
@@ -232,7 +268,7 @@ impl SlewStep {
                 };
                 v = cv(x);
                 ramp = rho(f64::from(s));
-                out.push(x, ramp - cs(x));
+                out.push(x, ramp - cs(x), -2.0 * t[2]);
                 u = x;
                 mode = s;
                 fresh = true;
@@ -272,12 +308,12 @@ impl SlewStep {
                 let back = -s * r - leak * v;
                 if s * (after - back) < 0.0 {
                     // the curve runs away the other way faster than the slew rate
-                    out.push(x, back - ramp);
+                    out.push(x, back - ramp, 0.0);
                     ramp = back;
                     mode = -mode;
                     fresh = true;
                 } else {
-                    out.push(x, after - ramp);
+                    out.push(x, after - ramp, 2.0 * t[2]);
                     mode = 0;
                 }
                 u = x;
@@ -375,6 +411,27 @@ mod tests {
             }
             assert!((avg(3.0) - (3.0 - u)).abs() < 1e-8, "{u}");
             assert!(avg(-2.0).abs() < 1e-8, "{u}");
+        }
+        // the same for a unit jump of the second derivative, `(t - u)+^2 / 2`
+        for u in [0.0, 0.25, 0.5, 0.8] {
+            let avg = |n: f64| {
+                let m = 200_000;
+                (0..m)
+                    .map(|i| {
+                        let x = -2.0 + (i as f64 + 0.5) * 4.0 / m as f64;
+                        let r = (n + x - u).max(0.0);
+                        kernel(x) * 0.5 * r * r * 4.0 / m as f64
+                    })
+                    .sum::<f64>()
+            };
+            let w = blep2_at(u);
+            for (j, n) in [-1.0, 0.0, 1.0, 2.0].into_iter().enumerate() {
+                let r = (n - u).max(0.0);
+                let got = avg(n) - 0.5 * r * r;
+                assert!((got - w[j]).abs() < 1e-8, "u {u} n {n}: {got} vs {}", w[j]);
+            }
+            let r = 3.0 - u;
+            assert!((avg(3.0) - 0.5 * r * r).abs() < 1e-8, "{u}");
         }
         // no droop: the kernel's second moment is zero, so a parabola's average is itself
         let m = 200_000;

@@ -1,6 +1,6 @@
 //! The running engine: block processing of a [`Plan`].
 
-use super::edges::{blamp, SlewStep, Stepped};
+use super::edges::{blamp, blep2_at, SlewStep, Stepped};
 use super::feed::{SourceFeed, ToneFeed};
 use super::halfband::Decimator;
 use super::network::{net_block, NetRun};
@@ -1392,14 +1392,15 @@ fn add_corners(r: &Stepped, x: &mut [f64], t: usize, xh: &mut [f64; WINDOW - 1])
     const H: usize = WINDOW - 1;
     let mut next = 0.0;
     for c in &r.corners[..r.n] {
-        let w = blamp(c.u);
-        x[t] += c.d * w[2];
-        next += c.d * w[3];
+        let (a, b) = (blamp(c.u), blep2_at(c.u));
+        let w: [f64; 4] = std::array::from_fn(|i| c.d * a[i] + c.c * b[i]);
+        x[t] += w[2];
+        next += w[3];
         for (back, wb) in [(1, w[1]), (2, w[0])] {
             if t >= back {
-                x[t - back] += c.d * wb;
+                x[t - back] += wb;
             } else {
-                xh[H + t - back] += c.d * wb;
+                xh[H + t - back] += wb;
             }
         }
     }
