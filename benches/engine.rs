@@ -87,6 +87,7 @@ fn patch(amp: f64, noise: bool) -> Patch {
         outputs: vec![Output {
             name: "out".into(),
             from: Node::Stage(1),
+            inner: None,
             series: 1e3,
             load: Some(100e3),
             file: None,

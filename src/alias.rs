@@ -576,6 +576,7 @@ fn probed(patch: &Patch, outs: &[usize]) -> (Patch, Vec<usize>) {
         p.outputs.push(Output {
             name: format!("{PROBE}{}", patch.stages[s].name),
             from: Node::Stage(s),
+            inner: None,
             series: 0.0,
             load: None,
             file: None,

@@ -449,6 +449,20 @@ pub fn stage_swing(patch: &Patch, stage: usize) -> Option<SwingLimits> {
     })
 }
 
+/// What drives an output, by name: a source, a stage, or `stage.node` for a network's inner
+/// node.
+pub fn output_source_name(patch: &Patch, o: &crate::model::Output) -> String {
+    match (o.from, o.inner) {
+        (Node::Stage(s), Some(l)) => match &patch.stages[s].kind {
+            crate::model::StageKind::Network(n) => {
+                format!("{}.{}", patch.stages[s].name, n.nodes[l])
+            }
+            _ => patch.stages[s].name.clone(),
+        },
+        _ => patch.node_name(o.from).to_string(),
+    }
+}
+
 /// The output's series/load divider (1 for an open output).
 fn output_divider(patch: &Patch, out: usize) -> f64 {
     let o = &patch.outputs[out];
@@ -460,6 +474,17 @@ fn output_divider(patch: &Patch, out: usize) -> f64 {
 pub fn swing_at(patch: &Patch, out: usize) -> SwingLimits {
     let o = &patch.outputs[out];
     let (lo, hi) = match o.from {
+        // an inner node: the swing of the op-amp driving it, the rails for a passive one
+        Node::Stage(i) if o.inner.is_some() => match &patch.stages[i].kind {
+            crate::model::StageKind::Network(n) => n
+                .amps
+                .iter()
+                .find(|a| Some(a.out) == o.inner)
+                .map_or((patch.rails.neg, patch.rails.pos), |a| {
+                    crate::check::swing_limits(&a.part, a.rails.pos, a.rails.neg)
+                }),
+            _ => (patch.rails.neg, patch.rails.pos),
+        },
         Node::Stage(i) => {
             stage_swing(patch, i).map_or((patch.rails.neg, patch.rails.pos), |s| (s.neg, s.pos))
         }
@@ -480,7 +505,18 @@ fn apply_circuit_peaks(r: &mut OutputReport, patch: &Patch, out: usize) {
     let Node::Stage(i) = patch.outputs[out].from else {
         return;
     };
-    let Some(e) = r.events.get(&patch.stages[i].name) else {
+    if patch.outputs[out].inner.is_some() {
+        return;
+    }
+    // a network: the op-amp driving its output node, by its name
+    let name = match &patch.stages[i].kind {
+        StageKind::Network(n) => match n.amps.iter().find(|a| a.out == n.out) {
+            Some(a) => a.name.clone(),
+            None => return,
+        },
+        _ => patch.stages[i].name.clone(),
+    };
+    let Some(e) = r.events.get(&name) else {
         return;
     };
     let (Some(hi), Some(lo)) = (e.peak_pos_v, e.peak_neg_v) else {
@@ -536,17 +572,26 @@ pub fn measure(
             .flat_map(|s| {
                 let st = &patch.stages[s];
                 match &st.kind {
+                    // each against its own swing, on its own supply
                     StageKind::Network(n) => n
                         .amps
                         .iter()
-                        .map(|a| (a.name.clone(), None))
+                        .map(|a| {
+                            let (lo, hi) =
+                                crate::check::swing_limits(&a.part, a.rails.pos, a.rails.neg);
+                            let lim = SwingLimits {
+                                pos: hi,
+                                neg: lo,
+                                centre: 0.0,
+                            };
+                            (a.name.clone(), Some(lim))
+                        })
                         .collect::<Vec<_>>(),
-                    _ if st.part.is_some() => vec![(st.name.clone(), Some(s))],
+                    _ if st.part.is_some() => vec![(st.name.clone(), stage_swing(patch, s))],
                     _ => Vec::new(),
                 }
             })
-            .filter_map(|(name, s)| {
-                let swing = s.and_then(|s| stage_swing(patch, s));
+            .filter_map(|(name, swing)| {
                 run.events
                     .iter()
                     .find(|e| e.stage == name)
@@ -559,7 +604,7 @@ pub fn measure(
         let mut report = OutputReport {
             figures,
             noise,
-            from: patch.node_name(o.from).to_string(),
+            from: output_source_name(patch, o),
             events,
             alias: None,
         };

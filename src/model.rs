@@ -503,6 +503,10 @@ pub struct Output {
     pub name: String,
     /// Node that drives this output.
     pub from: Node,
+    /// An inner node of the network stage `from` (`from = "stage.node"`: index into that
+    /// network's local nodes) read instead of the stage's output; the output's series
+    /// resistor and load then hang on that node.
+    pub inner: Option<usize>,
     /// Series (output) resistor, ohm (0 allowed).
     pub series: f64,
     /// Load resistance to ground, ohm; `None` for an open (unloaded) output.

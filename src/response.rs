@@ -13,11 +13,10 @@ use std::collections::BTreeMap;
 use rustfft::num_complex::Complex64;
 use serde::Serialize;
 
-use crate::circuit::build::{network_circuit, InputRef};
+use crate::circuit::build::{patch_circuit, PatchCircuit};
 use crate::circuit::step::CircuitState;
-use crate::circuit::{Amp, Circuit, ElemKind, NodeKind};
-use crate::model::{Node, Patch, StageKind, Wave};
-use crate::parts::taper;
+use crate::circuit::{ElemKind, NodeKind};
+use crate::model::{Patch, Wave};
 
 /// Errors of a response computation.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -81,205 +80,10 @@ pub fn log_grid(from: f64, to: f64, points: usize) -> Result<Vec<f64>, ResponseE
         .collect())
 }
 
-/// The patch as one circuit: (circuit, the input node of every source, the node of every
-/// stage's output, the node of every output).
-struct Whole {
-    c: Circuit,
-    src: Vec<usize>,
-    out: Vec<usize>,
-    stage: Vec<usize>,
-}
-
 fn dc_level(w: &Wave, offset: f64) -> f64 {
     match w {
         Wave::Dc { level } => level + offset,
         _ => offset,
-    }
-}
-
-fn build(patch: &Patch) -> Whole {
-    let mut c = Circuit::new();
-    let gnd = c.node("gnd", NodeKind::Fixed(0.0));
-    let mut src = Vec::new();
-    let mut node_of_source = Vec::new();
-    for s in &patch.sources {
-        let i = c.input(&s.name);
-        src.push(i);
-        if s.r > 0.0 {
-            let n = c.node(&format!("{}.out", s.name), NodeKind::Free);
-            c.r(i, n, s.r, &format!("sources.{}.r", s.name));
-            node_of_source.push(n);
-        } else {
-            node_of_source.push(i);
-        }
-    }
-    let mut stage_node: Vec<usize> = Vec::with_capacity(patch.stages.len());
-    let node = |n: Node, stage_node: &Vec<usize>| match n {
-        Node::Source(i) => node_of_source[i],
-        Node::Stage(i) => stage_node[i],
-    };
-    for (i, st) in patch.stages.iter().enumerate() {
-        // op-amp stages always carry a part (a model invariant); the ideal profile stands in
-        // rather than a panic
-        let part = st
-            .part
-            .clone()
-            .unwrap_or_else(crate::parts::profiles::ideal);
-        let amp = |_: &Circuit| Amp::new(&st.name, &part, patch.rails, 0.0);
-        let y = match &st.kind {
-            StageKind::InvertingSum {
-                inputs,
-                feedback,
-                reference,
-                ..
-            } => {
-                let m = c.node(&format!("{}.minus", st.name), NodeKind::Free);
-                let y = c.node(&st.name, NodeKind::Free);
-                let r = c.node(&format!("{}.ref", st.name), NodeKind::Fixed(*reference));
-                for (k, inp) in inputs.iter().enumerate() {
-                    let from = node(inp.from, &stage_node);
-                    match inp.c {
-                        Some(cap) => {
-                            let mid = c.node(&format!("{}.inputs[{k}].c", st.name), NodeKind::Free);
-                            c.c(from, mid, cap, "c");
-                            c.r(mid, m, inp.r, "r");
-                        }
-                        None => c.r(from, m, inp.r, "r"),
-                    }
-                }
-                c.r(m, y, feedback.r, "feedback.r");
-                if let Some(cap) = feedback.c {
-                    c.c(m, y, cap, "feedback.c");
-                }
-                let a = amp(&c);
-                c.amp(a, r, m, y);
-                y
-            }
-            StageKind::NonInverting {
-                from,
-                r_fb,
-                c_fb,
-                r_g,
-                reference,
-            } => {
-                let m = c.node(&format!("{}.minus", st.name), NodeKind::Free);
-                let y = c.node(&st.name, NodeKind::Free);
-                let r = c.node(&format!("{}.ref", st.name), NodeKind::Fixed(*reference));
-                c.r(y, m, *r_fb, "r_fb");
-                if let Some(cap) = c_fb {
-                    c.c(y, m, *cap, "c_fb");
-                }
-                c.r(m, r, *r_g, "r_g");
-                let p = node(*from, &stage_node);
-                let a = amp(&c);
-                c.amp(a, p, m, y);
-                y
-            }
-            StageKind::Follower { from } => {
-                let y = c.node(&st.name, NodeKind::Free);
-                let p = node(*from, &stage_node);
-                let a = amp(&c);
-                c.amp(a, p, y, y);
-                y
-            }
-            StageKind::Attenuator {
-                from,
-                pot,
-                taper: t,
-                at,
-            } => {
-                let frac = taper::fraction(*t, *at);
-                let w = c.node(&st.name, NodeKind::Free);
-                let top = node(*from, &stage_node);
-                c.r(
-                    top,
-                    w,
-                    (pot * (1.0 - frac)).max(crate::model::POT_END_R),
-                    "pot upper",
-                );
-                c.r(
-                    w,
-                    gnd,
-                    (pot * frac).max(crate::model::POT_END_R),
-                    "pot lower",
-                );
-                w
-            }
-            StageKind::Network(_) => {
-                let direct = |_: Node| (1.0, 0.0);
-                let nc = network_circuit(patch, i, &direct, 0.0);
-                // merge: fixed nodes by value, inputs onto the patch nodes they read, free
-                // nodes as new nodes
-                let mut map = vec![0usize; nc.circuit.nodes.len()];
-                for (k, n) in nc.circuit.nodes.iter().enumerate() {
-                    map[k] = match n.kind {
-                        NodeKind::Fixed(v) => c.node(&n.name, NodeKind::Fixed(v)),
-                        NodeKind::Free => {
-                            c.node(&format!("{}.{}", st.name, n.name), NodeKind::Free)
-                        }
-                        NodeKind::Input(_) => usize::MAX,
-                    };
-                }
-                for &(cn, r, _) in &nc.inputs {
-                    map[cn] = match r {
-                        InputRef::Node(n) => node(n, &stage_node),
-                        InputRef::Inner(s, l) => {
-                            let StageKind::Network(net) = &patch.stages[s].kind else {
-                                continue;
-                            };
-                            let name = format!("{}.{}", patch.stages[s].name, net.nodes[l]);
-                            c.nodes.iter().position(|x| x.name == name).unwrap_or(gnd)
-                        }
-                    };
-                }
-                for e in &nc.circuit.elems {
-                    let (a, b) = (map[e.a], map[e.b]);
-                    match e.kind {
-                        ElemKind::R(r) => c.r(a, b, r, &e.label),
-                        ElemKind::C(x) => c.c(a, b, x, &e.label),
-                        ElemKind::Junction { .. } => {
-                            c.elems.push(crate::circuit::Elem {
-                                kind: e.kind,
-                                a,
-                                b,
-                                label: e.label.clone(),
-                            });
-                        }
-                    }
-                }
-                for a in &nc.circuit.amps {
-                    let (p, m, o) = (map[a.plus], map[a.minus], map[a.out]);
-                    c.amp(a.clone(), p, m, o);
-                }
-                map[nc.out]
-            }
-        };
-        stage_node.push(y);
-    }
-    let mut out = Vec::new();
-    for o in &patch.outputs {
-        let n = node(o.from, &stage_node);
-        let n = match o.load {
-            Some(l) => {
-                let t = if o.series > 0.0 {
-                    let t = c.node(&format!("outputs.{}", o.name), NodeKind::Free);
-                    c.r(n, t, o.series, "series");
-                    t
-                } else {
-                    n
-                };
-                c.r(t, gnd, l, "load");
-                t
-            }
-            None => n,
-        };
-        out.push(n);
-    }
-    Whole {
-        c,
-        src,
-        out,
-        stage: stage_node,
     }
 }
 
@@ -326,23 +130,26 @@ fn csolve(a: &mut [Complex64], b: &mut [Complex64], n: usize) -> bool {
 
 /// The patch as one circuit, ready for complex solves: its rest (DC) state found once.
 struct Solver {
-    w: Whole,
+    w: PatchCircuit,
     rest: CircuitState,
     col: Vec<usize>,
     amp_out: Vec<bool>,
     n: usize,
+    /// Per op-amp: in negative feedback and in a group without diodes (its small-signal
+    /// gains hold over its whole range, up to its limits).
+    amp_linear: Vec<bool>,
 }
 
 impl Solver {
     fn new(patch: &Patch) -> Result<Solver, ResponseError> {
-        let w = build(patch);
-        let c = &w.c;
+        let w = patch_circuit(patch);
+        let c = &w.circuit;
         let h = 1.0 / (patch.rate * patch.oversample as f64);
         let plan = crate::circuit::plan::compile(c.clone(), h)
             .map_err(|e| ResponseError::Circuit(e.to_string()))?;
         let mut rest = CircuitState::new(&plan);
         for (k, s) in patch.sources.iter().enumerate() {
-            rest.vn[w.src[k]] = dc_level(&s.wave, s.offset);
+            rest.vn[w.sources[k]] = dc_level(&s.wave, s.offset);
         }
         rest.rest(&plan)
             .map_err(|e| ResponseError::Circuit(e.to_string()))?;
@@ -356,20 +163,28 @@ impl Solver {
         let amp_out = (0..c.nodes.len())
             .map(|n| c.amps.iter().any(|a| a.out == n))
             .collect();
+        let amp_linear = (0..c.amps.len())
+            .map(|k| {
+                plan.groups.iter().any(|g| {
+                    g.junctions.is_empty() && g.amps.iter().any(|a| a.amp == k && !a.explicit)
+                })
+            })
+            .collect();
         Ok(Solver {
             n: free.len(),
             w,
             rest,
             col,
             amp_out,
+            amp_linear,
         })
     }
 
     /// Every node's complex value at `hz` for a unit signal at `source` (0 Hz: DC gains).
     fn solve(&self, source: usize, hz: f64) -> Result<Vec<Complex64>, ResponseError> {
-        let (c, col, n) = (&self.w.c, &self.col, self.n);
+        let (c, col, n) = (&self.w.circuit, &self.col, self.n);
         let zero = Complex64::new(0.0, 0.0);
-        let src = self.w.src[source];
+        let src = self.w.sources[source];
         let s = Complex64::new(0.0, std::f64::consts::TAU * hz);
         let mut a = vec![zero; n * n];
         let mut b = vec![zero; n];
@@ -438,10 +253,10 @@ impl Solver {
 /// given frequencies.
 pub fn response(patch: &Patch, source: usize, freqs: &[f64]) -> Result<Response, ResponseError> {
     let sv = Solver::new(patch)?;
-    let mut curves: Vec<Vec<Point>> = vec![Vec::with_capacity(freqs.len()); sv.w.out.len()];
+    let mut curves: Vec<Vec<Point>> = vec![Vec::with_capacity(freqs.len()); sv.w.outputs.len()];
     for &hz in freqs {
         let v = sv.solve(source, hz)?;
-        for (k, &o) in sv.w.out.iter().enumerate() {
+        for (k, &o) in sv.w.outputs.iter().enumerate() {
             curves[k].push(Point {
                 hz,
                 gain_db: 20.0 * v[o].norm().max(1e-300).log10(),
@@ -471,10 +286,56 @@ pub fn dc_gains(patch: &Patch) -> Result<Vec<Vec<f64>>, ResponseError> {
         .collect::<Result<_, _>>()?;
     Ok(sv
         .w
-        .stage
+        .stages
         .iter()
         .map(|&node| per_source.iter().map(|v| v[node].re).collect())
         .collect())
+}
+
+/// The whole patch's circuit with, for every node, its rest (DC operating) voltage and,
+/// per source, its DC gain and its largest gain over a band: what `check` needs for the
+/// worst-case span of any node, network op-amps' outputs and inputs included.
+#[derive(Debug, Clone)]
+pub struct NodeGains {
+    /// The circuit (node indices below index `circuit.circuit.nodes`).
+    pub circuit: PatchCircuit,
+    /// Rest voltage of every node with every source at its DC level, V.
+    pub rest: Vec<f64>,
+    /// `dc[source][node]`: small-signal gain at 0 Hz.
+    pub dc: Vec<Vec<f64>>,
+    /// `band[source][node]`: the largest `|H|` at 0 Hz and over the band's frequencies.
+    pub band: Vec<Vec<f64>>,
+    /// Per op-amp of the circuit: in negative feedback with no diode in its group, so
+    /// its small-signal gains describe it up to its limits (a comparator, a loop with
+    /// positive feedback or a diode only near its rest point).
+    pub amp_linear: Vec<bool>,
+}
+
+/// Rest voltages, DC gains and largest gains over `band_hz` of every node of the patch.
+pub fn node_gains(patch: &Patch, band_hz: &[f64]) -> Result<NodeGains, ResponseError> {
+    let sv = Solver::new(patch)?;
+    let nn = sv.w.circuit.nodes.len();
+    let mut dc = Vec::with_capacity(patch.sources.len());
+    let mut band = Vec::with_capacity(patch.sources.len());
+    for k in 0..patch.sources.len() {
+        let d: Vec<f64> = sv.solve(k, 0.0)?.iter().map(|v| v.re).collect();
+        let mut b: Vec<f64> = d.iter().map(|x| x.abs()).collect();
+        for &hz in band_hz {
+            for (m, v) in b.iter_mut().zip(sv.solve(k, hz)?) {
+                *m = m.max(v.norm());
+            }
+        }
+        debug_assert_eq!(b.len(), nn);
+        dc.push(d);
+        band.push(b);
+    }
+    Ok(NodeGains {
+        amp_linear: sv.amp_linear.clone(),
+        rest: sv.rest.vn.clone(),
+        circuit: sv.w,
+        dc,
+        band,
+    })
 }
 
 /// Frequencies where the gain crosses 3 dB below its largest value on the grid (log

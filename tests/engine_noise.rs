@@ -2,9 +2,9 @@
 mod engine_support;
 use engine_support::*;
 use railsong::analysis::{band_rms, Bandwidth, Settings};
+use railsong::budget::{band_power, budget, johnson_density, BOLTZMANN};
 use railsong::engine::{compile, Engine};
 use railsong::model::*;
-use railsong::noise::{band_power, budget, johnson_density, BOLTZMANN};
 
 const RATE: f64 = 48_000.0;
 
@@ -59,7 +59,7 @@ fn lone_resistor_gives_johnson_nyquist_noise() {
 
 #[test]
 fn inverting_stage_noise_matches_the_analytic_budget() {
-    // The analytic budget (railsong::noise, nodal analysis of every source: resistors'
+    // The analytic budget (railsong::budget, nodal analysis of every source: resistors'
     // 4kTR, en with its 1/f corner, in through the node resistance, finite GBW) against the
     // simulated output noise over 20 Hz - 20 kHz, gains 1, 10, 100.
     for part_name in ["jfet-general", "bipolar-lownoise"] {
@@ -79,7 +79,7 @@ fn inverting_stage_noise_matches_the_analytic_budget() {
 fn voltage_noise_follows_its_one_over_f_corner() {
     // density^2(f) = en^2 (1 + fc / f) (the usual op-amp voltage-noise model, common
     // practice). A follower fed from 0 V into an open output has only en at its output.
-    // Band powers from the closed form (railsong::noise::band_power): the ratio of the mean
+    // Band powers from the closed form (railsong::budget::band_power): the ratio of the mean
     // densities in 20-50 Hz and 2-5 kHz. 120 s at 16 kHz: about 1800 independent bins in the
     // low band (3600 bins, 7-term Blackman-Harris noise bandwidth about 2 bins), so the
     // ratio's standard error is about 0.1 dB (0.25 dB measured scatter over seeds at 40 s).

@@ -172,6 +172,7 @@ impl Pb {
         self.p.outputs.push(Output {
             name: name.into(),
             from,
+            inner: None,
             series,
             load,
             file: None,

@@ -89,6 +89,53 @@ out = \"y\"\n\
     }
 }
 
+// One engine: a shorthand stage with a coupling and a feedback capacitor and the same circuit
+// written as a network compile to the same stage kernel (kernel selection by shape, the
+// coefficients from the circuit's nodal elimination) and render the same samples, driven
+// into clipping so the full model runs too. Independent of the reduction: the weights are
+// checked against Millman's theorem at the inverting node [S] with the capacitors'
+// trapezoidal companions (2C/h; the coupling branch 1 / (R + h/2C)).
+#[test]
+fn shorthand_and_network_run_one_kernel() {
+    let text = format!(
+        "{HEAD}{}\
+[stages.short]\ntype = \"inverting-sum\"\npart = \"jfet-general\"\n\
+inputs = [{{ from = \"a\", r = \"10k\", c = \"1u\" }}]\nfeedback = {{ r = \"47k\", c = \"220p\" }}\n\
+[stages.net]\ntype = \"network\"\n\
+amps = [{{ part = \"jfet-general\", plus = \"gnd\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ c = \"1u\", ends = [\"a\", \"x\"] }}, {{ r = \"10k\", ends = [\"x\", \"m\"] }}, \
+{{ r = \"47k\", ends = [\"m\", \"y\"] }}, {{ c = \"220p\", ends = [\"m\", \"y\"] }}]\n\
+out = \"y\"\n\
+[outputs.s]\nfrom = \"short\"\n[outputs.n]\nfrom = \"net\"\n",
+        sine("a", 1000.0, 4.0),
+    );
+    let p = patch(&text);
+    let plan = railsong::engine::compile(&p).unwrap_or_else(|e| panic!("{e}"));
+    assert!(
+        plan.networks.is_empty(),
+        "the network runs on the stage kernel"
+    );
+    assert_eq!(plan.stages.len(), 2);
+    let h = 1.0 / plan.internal_rate;
+    let gb = 1.0 / (10e3 + 0.5 * h / 1e-6);
+    let gc = 2.0 * 220e-12 / h;
+    let gt = gb + 1.0 / 47e3 + gc;
+    for st in &plan.stages {
+        assert!((st.b - (1.0 / 47e3 + gc) / gt).abs() < 1e-12, "{}", st.name);
+        assert!((st.minus[0].mu - gb / gt).abs() < 1e-12, "{}", st.name);
+        assert!((st.fb_cap.as_ref().map_or(0.0, |f| f.mu) - gc / gt).abs() < 1e-12);
+    }
+    let y = render(&text);
+    let worst = y[0]
+        .iter()
+        .zip(&y[1])
+        .map(|(a, b)| (a - b).abs())
+        .fold(0.0, f64::max);
+    let peak = y[0].iter().fold(0.0f64, |m, v| m.max(v.abs()));
+    assert!(peak > 10.0, "driven into clipping: peak {peak} V");
+    assert!(worst < 1e-9, "{worst} V apart");
+}
+
 // First-order low-pass in the feedback of an inverting stage: H = -(Rf/Rin) / (1 + j w Rf C)
 // (any op-amp text, e.g. Sedra & Smith). The capacitor's phase at 20 kHz within 1 degree at
 // K = 4 (the issue's requirement); the gain within 0.05 dB of the analog response at the
@@ -124,6 +171,70 @@ out = \"y\"\n[outputs.out]\nfrom = \"lp\"\n",
             db(g),
             db(warped)
         );
+    }
+}
+
+// The same 1-degree check on the shorthand stages' capacitors, each against its analog
+// first-order response [S] (textbook RC networks around an ideal op-amp):
+// - inverting with a feedback capacitor: H = -(Rf/Rin) / (1 + j w Rf C);
+// - inverting with a coupling capacitor in series with Rin: H = -(Rf/Rin) j w Rin C / (1 + j w Rin C);
+// - non-inverting with a capacitor across r_fb: H = 1 + (Rf/Rg) / (1 + j w Rf C).
+// Magnitude within 0.05 dB of the same response at the bilinear-warped frequency.
+#[test]
+fn shorthand_rc_phase_within_a_degree_at_20_khz() {
+    let (rin, rf, c) = (10e3, 47e3, 1e-9);
+    let cin = 2.2e-9;
+    type Resp = Box<dyn Fn(f64) -> (f64, f64)>;
+    let cases: [(&str, Resp); 3] = [
+        (
+            "type = \"inverting\"\nfrom = \"osc\"\nr_in = \"10k\"\nfeedback = { r = \"47k\", c = \"1n\" }\n",
+            Box::new(move |f: f64| {
+                let w = TAU * f * rf * c;
+                let k = -(rf / rin) / (1.0 + w * w);
+                (k, -k * w)
+            }),
+        ),
+        (
+            "type = \"inverting-sum\"\ninputs = [{ from = \"osc\", r = \"10k\", c = \"2.2n\" }]\nfeedback = { r = \"47k\" }\n",
+            Box::new(move |f: f64| {
+                let w = TAU * f * rin * cin;
+                // -(rf/rin) j w / (1 + j w) = -(rf/rin) (w^2 + j w) / (1 + w^2)
+                let k = -(rf / rin) / (1.0 + w * w);
+                (k * w * w, k * w)
+            }),
+        ),
+        (
+            "type = \"non-inverting\"\nfrom = \"osc\"\nr_fb = \"47k\"\nr_g = \"10k\"\nc_fb = \"1n\"\n",
+            Box::new(move |f: f64| {
+                let w = TAU * f * rf * c;
+                let k = (rf / rin) / (1.0 + w * w);
+                (1.0 + k, -k * w)
+            }),
+        ),
+    ];
+    for (stage, resp) in &cases {
+        for f in [1000.0, 5000.0, 20000.0] {
+            let text = format!(
+                "{HEAD}{}[stages.s]\npart = \"ideal\"\n{stage}[outputs.out]\nfrom = \"s\"\n",
+                sine("osc", f, 1.0)
+            );
+            let y = render(&text);
+            let g = gain(&y[0], f, 1.0);
+            let want = resp(f);
+            let dphase = wrap(deg(g) - deg(want));
+            assert!(
+                dphase.abs() < 1.0,
+                "{stage} {f} Hz: phase off by {dphase} deg"
+            );
+            let fs = 4.0 * RATE;
+            let warped = resp(fs / PI * (PI * f / fs).tan());
+            assert!(
+                (db(g) - db(warped)).abs() < 0.05,
+                "{stage} {f} Hz: {} vs {}",
+                db(g),
+                db(warped)
+            );
+        }
     }
 }
 

@@ -41,6 +41,7 @@
 //! step. A step that does not converge is an error naming the stage and time.
 
 pub mod build;
+pub mod kernel;
 pub mod linalg;
 pub mod partition;
 pub mod plan;

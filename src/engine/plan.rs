@@ -4,8 +4,10 @@ use super::halfband;
 use super::network::{NetInput, NetPlan};
 use super::shaper::{Shaper, LOOKAHEAD};
 use super::EngineError;
-use crate::circuit::build::{network_circuit, InputRef};
+use crate::circuit::build::{network_circuit_loaded, reader_loads, shorthand_circuit, InputRef};
+use crate::circuit::kernel::stage_form;
 use crate::circuit::step::CircuitState;
+use crate::circuit::Amp;
 use crate::model::{Envelope, NetNode, Node, Patch, Rails, StageKind, Wave};
 use crate::parts::taper;
 use crate::parts::OpAmp;
@@ -125,7 +127,8 @@ pub struct MinusInput {
     pub r: f64,
     /// Series capacitor, F.
     pub cap: Option<f64>,
-    /// Per-step decay `exp(-h / (r C))` of the capacitor (1 without one).
+    /// Per-step decay of the capacitor's history `(2rC/h - 1) / (2rC/h + 1)` (its trapezoidal
+    /// companion in series with `r`; 1 without one).
     pub decay: f64,
     /// Millman weight `G' / G_total` of this branch.
     pub mu: f64,
@@ -149,7 +152,8 @@ pub struct PlusInput {
 pub struct FeedbackCap {
     /// Capacitance, F.
     pub c: f64,
-    /// Companion conductance `1 / (Rf (exp(h / (Rf C)) - 1))` (exact pole), S.
+    /// Trapezoidal companion conductance `2C/h`, S; the history `vf` steps as
+    /// `vf <- 2 (v - V-) - vf`.
     pub g: f64,
     /// Millman weight of its history source.
     pub mu: f64,
@@ -282,6 +286,8 @@ struct Ctx<'a> {
     loads: Vec<Vec<(Consumer, f64)>>,
     /// input resistance of each attenuator (track top plus bottom || its loads)
     att_rin: Vec<f64>,
+    /// loads on networks' inner nodes read as `stage.node`: ((stage, local node), S)
+    inner_loads: Vec<((usize, usize), f64)>,
 }
 
 fn check_node(patch: &Patch, node: Node, before: usize, who: &str) -> Result<(), EngineError> {
@@ -408,7 +414,13 @@ fn compile_network(
         let t = ctx.tap(Consumer::Input(i, usize::MAX), n);
         (t.gain, t.rth)
     };
-    let nc = network_circuit(patch, i, &tap, stage_load(ctx, i));
+    let node_loads: Vec<(usize, f64)> = ctx
+        .inner_loads
+        .iter()
+        .filter(|((s, _), _)| *s == i)
+        .map(|&((_, l), g)| (l, g))
+        .collect();
+    let nc = network_circuit_loaded(patch, i, &tap, stage_load(ctx, i), &node_loads);
     let circ_err = |e: crate::circuit::plan::CircuitError| EngineError::Circuit {
         stage: name.clone(),
         message: e.to_string(),
@@ -554,7 +566,7 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
     let ns = patch.sources.len();
     // 4 k T: thermal noise density^2 per ohm, V^2/(Hz ohm).
     let four_kt = if patch.temperature.is_finite() && patch.temperature > 0.0 {
-        4.0 * crate::noise::BOLTZMANN * patch.temperature
+        4.0 * crate::budget::BOLTZMANN * patch.temperature
     } else {
         0.0
     };
@@ -687,9 +699,16 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
     let n_st = patch.stages.len();
     let mut loads: Vec<Vec<(Consumer, f64)>> = vec![Vec::new(); n_st];
     let mut att_rin = vec![0.0; n_st];
+    let mut inner_loads: Vec<((usize, usize), f64)> = Vec::new();
     for (o, out) in patch.outputs.iter().enumerate() {
-        if let (Node::Stage(i), Some(l)) = (out.from, out.load) {
-            loads[i].push((Consumer::Output(o), 1.0 / (out.series + l)));
+        match (out.from, out.load, out.inner) {
+            (Node::Stage(i), Some(l), None) => {
+                loads[i].push((Consumer::Output(o), 1.0 / (out.series + l)));
+            }
+            (Node::Stage(i), Some(l), Some(k)) => {
+                inner_loads.push(((i, k), 1.0 / (out.series + l)));
+            }
+            _ => {}
         }
     }
     for i in (0..n_st).rev() {
@@ -723,6 +742,22 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
                     }
                 }
             }
+            // whatever a network reads, it loads (its inputs into its circuit, op-amp
+            // outputs and inverting inputs held at 0 V)
+            StageKind::Network(_) => {
+                for (r, g) in reader_loads(patch, i) {
+                    if !(g.is_finite() && g > 0.0) {
+                        continue;
+                    }
+                    match r {
+                        InputRef::Node(Node::Stage(a)) => {
+                            loads[a].push((Consumer::Input(i, usize::MAX), g));
+                        }
+                        InputRef::Inner(a, l) => inner_loads.push(((a, l), g)),
+                        InputRef::Node(Node::Source(_)) => {}
+                    }
+                }
+            }
             _ => {}
         }
     }
@@ -731,6 +766,7 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
         stage_buf,
         loads,
         att_rin,
+        inner_loads,
     };
 
     // Inner nodes other networks read get buffers of their own.
@@ -758,6 +794,15 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
             }
         }
     }
+    // ... and inner nodes outputs read
+    for out in &patch.outputs {
+        if let (Node::Stage(s), Some(l)) = (out.from, out.inner) {
+            if !export_buf.iter().any(|(k, _)| *k == (s, l)) {
+                export_buf.push(((s, l), next));
+                next += 1;
+            }
+        }
+    }
 
     // Latencies of base nodes.
     let nb = next;
@@ -772,21 +817,9 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
     let mut networks = Vec::new();
     let mut order = Vec::new();
     for (i, st) in patch.stages.iter().enumerate() {
-        if let (StageKind::Network(_), Some(buf)) = (&st.kind, ctx.stage_buf[i]) {
-            let np = compile_network(
-                &ctx,
-                i,
-                buf,
-                h,
-                &export_buf,
-                &mut node_lat,
-                &mut rest_node,
-                &mut history,
-            )?;
-            order.push(StageStep::Net(networks.len()));
-            networks.push(np);
-            continue;
-        }
+        // Kernel selection: every op-amp stage becomes a circuit; the stage kernel runs it
+        // when it has the stage shape (`circuit::kernel`), the circuit group kernel
+        // otherwise.
         let Some(buf) = ctx.stage_buf[i] else {
             if let StageKind::Attenuator {
                 pot, taper: t, at, ..
@@ -800,200 +833,164 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
             }
             continue;
         };
-        let part = st.part.as_ref().ok_or_else(|| EngineError::MissingPart {
-            stage: st.name.clone(),
-        })?;
-        positive(part.gbw, || format!("part `{}` gbw", part.name))?;
-        positive(part.slew, || format!("part `{}` slew", part.name))?;
-        let kgain = std::f64::consts::TAU * part.gbw;
-        let vov = part.slew / kgain;
-        let eps = match part.a0 {
-            Some(a) if a.is_finite() && a > 0.0 => 1.0 / a,
-            _ => 0.0,
+        let (nc, form, part, topology, g_fb_load) = if let StageKind::Network(net) = &st.kind {
+            let exported = export_buf.iter().any(|((s, _), _)| *s == i);
+            let tap = |n: Node| {
+                let t = ctx.tap(Consumer::Input(i, usize::MAX), n);
+                (t.gain, t.rth)
+            };
+            let nc = (net.amps.len() == 1 && !exported)
+                .then(|| network_circuit_loaded(patch, i, &tap, stage_load(&ctx, i), &[]));
+            let form = nc
+                .as_ref()
+                .filter(|nc| nc.out_amp == Some(0))
+                .and_then(|nc| stage_form(&nc.circuit, h));
+            match (nc, form) {
+                (Some(nc), Some(form)) => (nc, form, &net.amps[0].part, "network", 0.0),
+                _ => {
+                    let np = compile_network(
+                        &ctx,
+                        i,
+                        buf,
+                        h,
+                        &export_buf,
+                        &mut node_lat,
+                        &mut rest_node,
+                        &mut history,
+                    )?;
+                    order.push(StageStep::Net(networks.len()));
+                    networks.push(np);
+                    continue;
+                }
+            }
+        } else {
+            let part = st.part.as_ref().ok_or_else(|| EngineError::MissingPart {
+                stage: st.name.clone(),
+            })?;
+            positive(part.gbw, || format!("part `{}` gbw", part.name))?;
+            positive(part.slew, || format!("part `{}` slew", part.name))?;
+            // The static load of the feedback network on the output (the inverting node
+            // taken as a virtual ground).
+            let (topology, g_fb_load) = match &st.kind {
+                StageKind::InvertingSum {
+                    feedback, single, ..
+                } => (
+                    if *single {
+                        "inverting"
+                    } else {
+                        "inverting-sum"
+                    },
+                    1.0 / feedback.r,
+                ),
+                StageKind::NonInverting { r_fb, r_g, .. } => ("non-inverting", 1.0 / (r_fb + r_g)),
+                _ => ("follower", 0.0),
+            };
+            let mut load_g = g_fb_load;
+            for (c, g) in &ctx.loads[i] {
+                load_g += match c {
+                    Consumer::Input(j, _) => match patch.stages[*j].kind {
+                        StageKind::Attenuator { .. } => {
+                            if ctx.att_rin[*j] > 0.0 {
+                                1.0 / ctx.att_rin[*j]
+                            } else {
+                                0.0
+                            }
+                        }
+                        _ => *g,
+                    },
+                    Consumer::Output(_) => *g,
+                };
+            }
+            let amp = Amp::new(&st.name, part, patch.rails, load_g);
+            let tap = |j: usize, n: Node| {
+                let t = ctx.tap(Consumer::Input(i, j), n);
+                (t.gain, t.rth)
+            };
+            let nc = shorthand_circuit(patch, i, &tap, amp);
+            let form = stage_form(&nc.circuit, h).ok_or_else(|| EngineError::Circuit {
+                stage: st.name.clone(),
+                message: "the stage's circuit does not reduce to one op-amp stage".into(),
+            })?;
+            (nc, form, part, topology, g_fb_load)
         };
-        let ib = if part.ib.is_finite() { part.ib } else { 0.0 };
+        let amp = &nc.circuit.amps[form.amp];
+        let name = if matches!(st.kind, StageKind::Network(_)) {
+            amp.name.clone()
+        } else {
+            st.name.clone()
+        };
+        // every input node: (buffer, tap gain)
+        let feed_of = |cnode: usize| -> (usize, f64) {
+            nc.inputs
+                .iter()
+                .find(|(n, _, _)| *n == cnode)
+                .map_or((0, 0.0), |&(_, r, gain)| {
+                    let b = match r {
+                        InputRef::Node(n) => ctx.tap(Consumer::Input(i, usize::MAX), n).base,
+                        InputRef::Inner(s, l) => export_buf
+                            .iter()
+                            .find(|(k, _)| *k == (s, l))
+                            .map_or(0, |(_, b)| *b),
+                    };
+                    (b, gain)
+                })
+        };
+        let (gbw, slew, vov, eps, load_g) = (amp.gbw, amp.slew, amp.vov, amp.eps, amp.load_g);
+        let kgain = std::f64::consts::TAU * gbw;
         let nonneg = |x: f64| if x.is_finite() && x > 0.0 { x } else { 0.0 };
         let (en, fc, inoise) = (nonneg(part.en), nonneg(part.en_corner), nonneg(part.inoise));
-        // White noise power densities at V+ and V- (V^2/Hz); en is at V+ in every topology.
-        let mut n_plus = en * en;
-        let n_minus;
-        let vos = if part.vos.is_finite() { part.vos } else { 0.0 };
-        let mut minus = Vec::new();
+        let _ = g_fb_load;
         let mut taps = Vec::new();
+        let mut minus = Vec::new();
+        for br in &form.minus {
+            let (node, gain) = feed_of(br.node);
+            taps.push(node);
+            minus.push(MinusInput {
+                node,
+                delay: 0,
+                gain,
+                r: br.r,
+                cap: br.cap,
+                decay: br.decay,
+                mu: br.mu,
+            });
+        }
         let mut plus = None;
-        let plus_const;
-        let minus_const;
-        let b;
-        let mut fb_cap = None;
-        let topology;
-        let g_fb_load;
-        // DC (caps open) Millman for the rest state: V- = a_dc + beta_dc v.
-        let a_dc;
-        let beta_dc;
-        let vp_rest;
-        let fb_companion = |rf: f64, c: Option<f64>| -> f64 {
-            match c {
-                Some(c) => 1.0 / (rf * (h / (rf * c)).exp_m1()),
-                None => 0.0,
-            }
-        };
-        match &st.kind {
-            StageKind::InvertingSum {
-                inputs,
-                feedback,
-                reference,
-                single,
-            } => {
-                topology = if *single {
-                    "inverting"
-                } else {
-                    "inverting-sum"
-                };
-                let gf = 1.0 / feedback.r;
-                let gc = fb_companion(feedback.r, feedback.c);
-                let mut gsum = 0.0;
-                let mut dc_g = 0.0;
-                let mut dc_num = 0.0;
-                for (j, inp) in inputs.iter().enumerate() {
-                    let t = ctx.tap(Consumer::Input(i, j), inp.from);
-                    let r = inp.r + t.rth;
-                    let (decay, g) = match inp.c {
-                        Some(c) => {
-                            let d = (-h / (r * c)).exp();
-                            (d, d / r)
-                        }
-                        None => {
-                            dc_g += 1.0 / r;
-                            dc_num += t.gain * rest_node[t.base] / r;
-                            (1.0, 1.0 / r)
-                        }
-                    };
-                    gsum += g;
-                    minus.push(MinusInput {
-                        node: t.base,
-                        delay: 0,
-                        gain: t.gain,
-                        r,
-                        cap: inp.c,
-                        decay,
-                        mu: g,
-                    });
-                    taps.push(t.base);
-                }
-                let gtot = gsum + gf + gc;
-                for m in &mut minus {
-                    m.mu /= gtot;
-                }
-                b = (gf + gc) / gtot;
-                minus_const = -ib / gtot;
-                plus_const = reference + vos;
-                if let Some(c) = feedback.c {
-                    fb_cap = Some(FeedbackCap {
-                        c,
-                        g: gc,
-                        mu: gc / gtot,
-                    });
-                }
-                g_fb_load = gf;
-                // Series noise voltages of every input branch (its resistor and the tap's
-                // Thevenin resistance) and of Rf enter V- at their Millman weights; in- flows
-                // into the node's total conductance.
-                n_minus = minus
-                    .iter()
-                    .map(|m| m.mu * m.mu * four_kt * m.r)
-                    .sum::<f64>()
-                    + (gf / gtot).powi(2) * four_kt * feedback.r
-                    + (inoise / gtot).powi(2);
-                let gd = dc_g + gf;
-                a_dc = (dc_num - ib) / gd;
-                beta_dc = gf / gd;
-                vp_rest = plus_const;
-            }
-            StageKind::NonInverting {
-                from,
-                r_fb,
-                c_fb,
-                r_g,
-                reference,
-            } => {
-                topology = "non-inverting";
-                let t = ctx.tap(Consumer::Input(i, 0), *from);
-                let gf = 1.0 / r_fb;
-                let gg = 1.0 / r_g;
-                let gc = fb_companion(*r_fb, *c_fb);
-                let gtot = gg + gf + gc;
-                b = (gf + gc) / gtot;
-                minus_const = (gg * reference - ib) / gtot;
-                plus_const = vos - ib * t.rth;
-                plus = Some(PlusInput {
-                    node: t.base,
-                    delay: 0,
-                    gain: t.gain,
-                    rth: t.rth,
-                });
-                taps.push(t.base);
-                if let Some(c) = c_fb {
-                    fb_cap = Some(FeedbackCap {
-                        c: *c,
-                        g: gc,
-                        mu: gc / gtot,
-                    });
-                }
-                g_fb_load = 1.0 / (r_fb + r_g);
-                n_minus = (gg / gtot).powi(2) * four_kt * r_g
-                    + (gf / gtot).powi(2) * four_kt * r_fb
-                    + (inoise / gtot).powi(2);
-                n_plus += four_kt * t.rth + (inoise * t.rth).powi(2);
-                a_dc = (gg * reference - ib) / (gg + gf);
-                beta_dc = gf / (gg + gf);
-                vp_rest = plus_const + t.gain * rest_node[t.base];
-            }
-            StageKind::Follower { from } => {
-                topology = "follower";
-                let t = ctx.tap(Consumer::Input(i, 0), *from);
-                b = 1.0;
-                minus_const = 0.0;
-                plus_const = vos - ib * t.rth;
-                plus = Some(PlusInput {
-                    node: t.base,
-                    delay: 0,
-                    gain: t.gain,
-                    rth: t.rth,
-                });
-                taps.push(t.base);
-                g_fb_load = 0.0;
-                n_minus = 0.0;
-                n_plus += four_kt * t.rth + (inoise * t.rth).powi(2);
-                a_dc = 0.0;
-                beta_dc = 1.0;
-                vp_rest = plus_const + t.gain * rest_node[t.base];
-            }
-            StageKind::Attenuator { .. } | StageKind::Network(_) => unreachable!("handled above"),
+        let mut vp_rest = form.plus_const;
+        if let Some((cnode, w)) = form.plus {
+            let (node, gain) = feed_of(cnode);
+            taps.push(node);
+            vp_rest += w * gain * rest_node[node];
+            plus = Some(PlusInput {
+                node,
+                delay: 0,
+                gain: w * gain,
+                rth: form.plus_rth,
+            });
         }
-
-        // Static load and swing.
-        let mut load_g = g_fb_load;
-        for (c, g) in &ctx.loads[i] {
-            load_g += match c {
-                Consumer::Input(j, _) => match patch.stages[*j].kind {
-                    StageKind::Attenuator { .. } => {
-                        if ctx.att_rin[*j] > 0.0 {
-                            1.0 / ctx.att_rin[*j]
-                        } else {
-                            0.0
-                        }
-                    }
-                    _ => *g,
-                },
-                Consumer::Output(_) => *g,
-            };
-        }
-        let AmpLimits { swing, shaper, cm } = amp_limits(part, patch.rails, load_g);
+        let (plus_const, minus_const, b) = (form.plus_const, form.minus_const, form.b);
+        let fb_cap = form.fb_cap.map(|(c, g, mu)| FeedbackCap { c, g, mu });
+        // DC (caps open) for the rest state: V- = a_dc + beta_dc v.
+        let a_dc = form.dc_const
+            + form
+                .dc_minus
+                .iter()
+                .map(|&(cnode, w)| {
+                    let (node, gain) = feed_of(cnode);
+                    w * gain * rest_node[node]
+                })
+                .sum::<f64>();
+        let beta_dc = form.dc_b;
+        // White noise power densities at V+ and V- (V^2/Hz): every resistor through its
+        // transfer, en at V+, the current noise through the resistance each input sees.
+        let n_plus = en * en + four_kt * form.noise_plus_r + (inoise * form.plus_rth).powi(2);
+        let n_minus = four_kt * form.noise_minus_r + (inoise * form.z_minus).powi(2);
+        let (swing, shaper, cm, reversal) = (amp.swing, amp.shaper, amp.cm, amp.reversal);
         let Shaper { lo, hi, w } = shaper;
 
         // Rest state.
         let vp_eff = match cm {
-            Some((cl, ch)) if !part.reversal => vp_rest.clamp(cl, ch.max(cl)),
+            Some((cl, ch)) if !reversal => vp_rest.clamp(cl, ch.max(cl)),
             _ => vp_rest,
         };
         let v_lin = (vp_eff - a_dc) / (beta_dc + eps);
@@ -1041,7 +1038,7 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
         let (e, a1, a0) = foh(kgain * h * (b + eps));
         order.push(StageStep::Op(stages.len()));
         stages.push(StagePlan {
-            name: st.name.clone(),
+            name,
             part: part.name.clone(),
             topology: topology.to_string(),
             node: buf,
@@ -1052,8 +1049,8 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
             minus_const,
             b,
             fb_cap,
-            gbw: part.gbw,
-            slew: part.slew,
+            gbw,
+            slew,
             vov,
             eps,
             lin_e: e,
@@ -1065,7 +1062,7 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
             state_lo: lo - w - STATE_MARGIN,
             state_hi: hi + w + STATE_MARGIN,
             cm,
-            reversal: part.reversal,
+            reversal,
             rest_v,
             rest_vc,
             rest_vf,
@@ -1081,7 +1078,17 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
     let mut latency = 0;
     let mut taps = Vec::new();
     for (o, out) in patch.outputs.iter().enumerate() {
-        let t = ctx.tap(Consumer::Output(o), out.from);
+        let mut t = ctx.tap(Consumer::Output(o), out.from);
+        if let (Node::Stage(s), Some(l)) = (out.from, out.inner) {
+            // an inner node: its own buffer, the output's load already in the circuit
+            if let Some(&(_, b)) = export_buf.iter().find(|(k, _)| *k == (s, l)) {
+                t = Tap {
+                    base: b,
+                    gain: 1.0,
+                    rth: 0.0,
+                };
+            }
+        }
         latency = latency.max(node_lat[t.base]);
         taps.push(t);
     }

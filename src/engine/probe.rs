@@ -105,6 +105,7 @@ pub fn probe_patch(part: &OpAmp, rails: Rails, rate: f64, oversample: usize) -> 
         outputs: vec![Output {
             name: "out".into(),
             from: Node::Stage(0),
+            inner: None,
             series: 0.0,
             load: None,
             file: None,

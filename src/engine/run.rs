@@ -639,17 +639,25 @@ impl Engine {
             })
             .collect();
         for (np, nr) in self.plan.networks.iter().zip(&self.nets) {
-            for (a, ev) in np.circuit.circuit.amps.iter().zip(&nr.state.events) {
+            // a step at buffer time t reads inputs of source time t - (latency - 1) h
+            let lag = (np.latency as f64 - 1.0) * h;
+            for ((a, ev), &(lo, hi)) in np
+                .circuit
+                .circuit
+                .amps
+                .iter()
+                .zip(&nr.state.events)
+                .zip(&nr.peaks)
+            {
                 v.push(StageEvents {
                     stage: a.name.clone(),
                     clip_s: ev.clip as f64 * h,
                     slew_s: ev.slew as f64 * h,
                     cm_out_s: ev.cm as f64 * h,
                     reversed_s: ev.rev as f64 * h,
-                    // not tracked for network op-amps yet
-                    first_clip_s: None,
-                    peak_pos_v: None,
-                    peak_neg_v: None,
+                    first_clip_s: ev.first_clip_s.map(|t| t - lag),
+                    peak_pos_v: hi.is_finite().then_some(hi),
+                    peak_neg_v: lo.is_finite().then_some(lo),
                 });
             }
         }
@@ -1069,7 +1077,7 @@ fn linear_block(
             }
         }
         if sp.fb_cap.is_some() {
-            st.vf = v - vminus;
+            st.vf = 2.0 * (v - vminus) - st.vf;
         }
     }
     st.v = v;
@@ -1173,7 +1181,7 @@ fn full_block(
             }
         }
         if sp.fb_cap.is_some() {
-            st.vf = v - vminus;
+            st.vf = 2.0 * (v - vminus) - st.vf;
         }
         pp2 = pp;
         pp = pn;
@@ -1373,7 +1381,7 @@ fn hybrid_block(
                 }
             }
             if sp.fb_cap.is_some() {
-                st.vf = v - vminus;
+                st.vf = 2.0 * (v - vminus) - st.vf;
             }
         }
     }

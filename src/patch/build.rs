@@ -244,7 +244,7 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
         .map(|(i, s)| (s.name.as_str(), i))
         .collect();
 
-    let outputs = build_outputs(&root, &names, &stage_pos)?;
+    let outputs = build_outputs(&root, &names, &stages, &stage_pos)?;
 
     Ok(Patch {
         title,
@@ -1137,7 +1137,8 @@ fn inputs_of(kind: &StageKind) -> Vec<Node> {
 }
 
 /// Resolve `stage.node` references once every network is built: the stage must be a
-/// network, the node one of its op-amp outputs (reading a passive node would load it).
+/// network and the node one of its nodes (a passive node is loaded by whatever reads it:
+/// the engine hangs that load on it).
 fn resolve_inner(ctx: &Ctx, stages: &mut [Stage], pending: &[super::network::Pending]) -> R<()> {
     let mut resolved: Vec<usize> = Vec::with_capacity(pending.len());
     for p in pending {
@@ -1163,17 +1164,6 @@ fn resolve_inner(ctx: &Ctx, stages: &mut [Stage], pending: &[super::network::Pen
                 },
             ));
         };
-        if !net.amp_driven(k) {
-            return Err(ctx.err(
-                &p.path,
-                Problem::Other(format!(
-                    "'{}.{}' is a passive node of stages.{}: reading it from another stage \
-                     would load it; put this part inside that network, or read one of its \
-                     op-amp outputs",
-                    other.name, p.node, other.name
-                )),
-            ));
-        }
         resolved.push(k);
     }
     let fix = |n: &mut NetNode| {
@@ -1344,7 +1334,61 @@ fn render_file_name(name: &str, file: Option<&str>) -> String {
     format!("{stem}.wav")
 }
 
-fn build_outputs(root: &Tab, names: &Names, stage_pos: &HashMap<&str, usize>) -> R<Vec<Output>> {
+/// `from = "stage.node"`: an inner node of a network stage, as (the stage, its local node).
+/// `None` when `from` has no dot (a source or a stage, resolved by the caller).
+fn output_inner(
+    t: &Tab,
+    names: &Names,
+    stages: &[Stage],
+    stage_pos: &HashMap<&str, usize>,
+) -> R<Option<(Node, Option<usize>)>> {
+    let Some(toml::Value::String(name)) = t.get("from") else {
+        return Ok(None);
+    };
+    let Some((stage, node)) = name.split_once('.') else {
+        return Ok(None);
+    };
+    let Some(&si) = stage_pos.get(stage) else {
+        return Err(t.err(
+            "from",
+            Problem::UnknownName {
+                what: "stage".into(),
+                name: stage.to_string(),
+                suggestion: suggest(stage, names.stages.iter().copied()),
+                valid_list: "stage.node reads a network stage's node".into(),
+            },
+        ));
+    };
+    let StageKind::Network(net) = &stages[si].kind else {
+        return Err(t.err(
+            "from",
+            Problem::Other(format!(
+                "'{name}': stages.{stage} is not a network stage (stage.node reads a network's \
+                 inner node; name the stage alone to read its output)"
+            )),
+        ));
+    };
+    let Some(k) = net.nodes.iter().position(|n| n == node) else {
+        return Err(t.err(
+            "from",
+            Problem::UnknownName {
+                what: format!("node of stages.{stage}"),
+                name: node.to_string(),
+                suggestion: suggest(node, net.nodes.iter().map(String::as_str)),
+                valid_list: format!("its nodes are {}", net.nodes.join(", ")),
+            },
+        ));
+    };
+    // the stage's own output node is the stage's output
+    Ok(Some((Node::Stage(si), (k != net.out).then_some(k))))
+}
+
+fn build_outputs(
+    root: &Tab,
+    names: &Names,
+    stages: &[Stage],
+    stage_pos: &HashMap<&str, usize>,
+) -> R<Vec<Output>> {
     let none = || {
         root.ctx.err(
             "outputs",
@@ -1374,14 +1418,20 @@ fn build_outputs(root: &Tab, names: &Names, stage_pos: &HashMap<&str, usize>) ->
         }
         let tab = Tab::new(root.ctx, format!("outputs.{name}"), t);
         tab.check_keys(schema::OUTPUT, &[], "")?;
-        let from = match names.node(&tab, "from")? {
-            Node::Stage(file_idx) => Node::Stage(
-                stage_pos
-                    .get(names.stages[file_idx])
-                    .copied()
-                    .unwrap_or(file_idx),
-            ),
-            n => n,
+        let (from, inner) = match output_inner(&tab, names, stages, stage_pos)? {
+            Some(x) => x,
+            None => match names.node(&tab, "from")? {
+                Node::Stage(file_idx) => (
+                    Node::Stage(
+                        stage_pos
+                            .get(names.stages[file_idx])
+                            .copied()
+                            .unwrap_or(file_idx),
+                    ),
+                    None,
+                ),
+                n => (n, None),
+            },
         };
         let series = match tab.get("series") {
             None => 0.0,
@@ -1466,6 +1516,7 @@ fn build_outputs(root: &Tab, names: &Names, stage_pos: &HashMap<&str, usize>) ->
         outs.push(Output {
             name: name.clone(),
             from,
+            inner,
             series,
             load,
             file,
