@@ -237,6 +237,7 @@
 //! measured with the engine bench (clean mix, noise off, 10 alternating runs, medians by CPU
 //! time) they cost about 9 % of the fast path (1009 -> 920 times real time).
 
+pub mod edges;
 pub mod fastmath;
 pub mod feed;
 pub mod halfband;
