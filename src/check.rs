@@ -228,14 +228,29 @@ pub fn check(patch: &Patch) -> Report {
         Node::Stage(i) => th[i],
     };
 
-    let net_gains = if patch
+    // networks: the whole patch solved as one circuit (rest point, DC gains, largest gains
+    // over the audio band) for the span of any node
+    let net_nodes = if patch
         .stages
         .iter()
         .any(|s| matches!(s.kind, StageKind::Network(_)))
     {
-        crate::response::dc_gains(patch)
+        let band = crate::response::log_grid(10.0, 20e3, 25).unwrap_or_default();
+        crate::response::node_gains(patch, &band).ok()
     } else {
-        Ok(Vec::new())
+        None
+    };
+    // each source's largest excursion from its rest level, and its largest slope
+    let excursions: Vec<(f64, f64)> = match &net_nodes {
+        Some(ng) => src_spans
+            .iter()
+            .zip(&ng.circuit.sources)
+            .map(|(sp, &n)| {
+                let d = ng.rest[n];
+                ((sp.hi - d).abs().max((sp.lo - d).abs()), sp.slope)
+            })
+            .collect(),
+        None => Vec::new(),
     };
     for (si, stage) in patch.stages.iter().enumerate() {
         let key = format!("stages.{}", stage.name);
@@ -372,38 +387,28 @@ pub fn check(patch: &Patch) -> Report {
             }
             StageKind::Network(_) => {
                 // static gain from each source (the whole patch solved as one circuit at
-                // 0 Hz; capacitors open, op-amps with their DC gain); the span is the sum of
-                // each source's span through its gain
-                let mut total = Span {
-                    lo: 0.0,
-                    hi: 0.0,
-                    dc: 0.0,
-                    slope: 0.0,
-                };
-                match &net_gains {
-                    Ok(g) => {
-                        for (k, &gk) in g[si].iter().enumerate() {
-                            if gk.abs() < 1e-9 {
-                                continue;
+                // 0 Hz; capacitors open, op-amps with their DC gain); the span is the rest
+                // level plus each source's excursion through its largest gain over the band
+                match &net_nodes {
+                    Some(ng) => {
+                        let node = ng.circuit.stages[si];
+                        for d in &ng.dc {
+                            if d[node].abs() >= 1e-9 {
+                                gains.push(d[node]);
                             }
-                            gains.push(gk);
-                            let t = src_spans[k].gain(gk, 0.0);
-                            total.lo += t.lo;
-                            total.hi += t.hi;
-                            total.dc += t.dc;
-                            total.slope += t.slope;
                         }
+                        ("network", node_span(ng, &excursions, node))
                     }
-                    Err(_) => {
-                        total = Span {
+                    None => (
+                        "network",
+                        Span {
                             lo: neg,
                             hi: pos,
                             dc: 0.0,
                             slope: 0.0,
-                        }
-                    }
+                        },
+                    ),
                 }
-                ("network", total)
             }
         };
 
@@ -535,6 +540,14 @@ pub fn check(patch: &Patch) -> Report {
                 });
             }
         }
+        if let (StageKind::Network(net), Some(ng)) = (&stage.kind, &net_nodes) {
+            let w = network_checks(&key, si, net, ng, &excursions, &mut warnings);
+            if let Some((lo, hi)) = w {
+                swing = Some((lo, hi));
+                out_span.lo = span.lo.clamp(lo, hi);
+                out_span.hi = span.hi.clamp(lo, hi);
+            }
+        }
         stages.push(StageSummary {
             name: stage.name.clone(),
             kind,
@@ -646,6 +659,172 @@ pub fn static_loads(patch: &Patch) -> Vec<Option<f64>> {
     g.into_iter()
         .map(|x| if x > 0.0 { Some(1.0 / x) } else { None })
         .collect()
+}
+
+/// Worst-case span of a node of the whole patch's circuit: its rest level plus every
+/// source's excursion (`excursions[k]`: largest distance from its rest level, largest slope)
+/// through the largest gain from that source over the band, all in phase.
+fn node_span(ng: &crate::response::NodeGains, excursions: &[(f64, f64)], node: usize) -> Span {
+    let rest = ng.rest[node];
+    let mut dev = 0.0;
+    let mut slope = 0.0;
+    for (b, &(a, sl)) in ng.band.iter().zip(excursions) {
+        dev += a * b[node];
+        slope += sl * b[node];
+    }
+    Span {
+        lo: rest - dev,
+        hi: rest + dev,
+        dc: rest,
+        slope,
+    }
+}
+
+/// The paper checks of every op-amp of network stage `si` (its worst-case output span
+/// against its swing after the current limit into its static load, its input span against
+/// its common-mode range, its own supply against the part's maximum, its slope against its
+/// slew rate) and of its resistors' values. Returns the swing of the op-amp driving the
+/// stage's output node, if one does. The span checks need the op-amp's small-signal gains
+/// to hold up to its limits: an op-amp without negative feedback (a comparator, a Schmitt
+/// trigger) or with a diode in its loop (a precision rectifier) gets the supply check only.
+fn network_checks(
+    key: &str,
+    si: usize,
+    net: &crate::model::Network,
+    ng: &crate::response::NodeGains,
+    excursions: &[(f64, f64)],
+    warnings: &mut Vec<Warning>,
+) -> Option<(f64, f64)> {
+    let pc = &ng.circuit;
+    let c = &pc.circuit;
+    let held: Vec<usize> = c
+        .amps
+        .iter()
+        .map(|a| a.out)
+        .chain(c.amps.iter().map(|a| a.minus))
+        .collect();
+    let mut out_swing = None;
+    for (j, a) in net.amps.iter().enumerate() {
+        let Some(ca) = c.amps.get(pc.stage_amps[si].start + j) else {
+            continue;
+        };
+        let akey = format!("{key}.amps[{j}]");
+        let part = &a.part;
+        let (pos, neg) = (a.rails.pos, a.rails.neg);
+        let (mut lo, mut hi) = swing_limits(part, pos, neg);
+        let linear = ng
+            .amp_linear
+            .get(pc.stage_amps[si].start + j)
+            .copied()
+            .unwrap_or(false);
+        let span = node_span(ng, excursions, ca.out);
+        let peak = span.hi.max(-span.lo);
+        if let (Some(isc), true) = (part.isc, linear) {
+            let g = c.load_conductance(ca.out, &held);
+            if g > 0.0 && g.is_finite() {
+                let vmax = isc / g;
+                hi = hi.min(vmax).max(lo);
+                lo = lo.max(-vmax).min(hi);
+                if peak > vmax {
+                    warnings.push(Warning {
+                        kind: WarningKind::Current,
+                        key: akey.clone(),
+                        message: format!(
+                            "op-amp '{}': a {} peak into {} of total load draws {}, above the {} output limit of '{}'",
+                            a.name,
+                            fmt_eng(peak, "V"),
+                            fmt_resistance(1.0 / g),
+                            fmt_eng(peak * g, "A"),
+                            fmt_eng(isc, "A"),
+                            part.name
+                        ),
+                    });
+                }
+            }
+        }
+        if linear && (span.hi > hi || span.lo < lo) {
+            let mid = 0.5 * (lo + hi);
+            let half = (0.5 * (hi - lo)).max(1e-12);
+            let over = (span.hi - mid).max(mid - span.lo) / half;
+            warnings.push(Warning {
+                kind: WarningKind::Clipping,
+                key: akey.clone(),
+                message: format!(
+                    "op-amp '{}': worst-case output {} .. {} (all inputs at their peaks, largest gain in the band) exceeds the swing {} .. {} of '{}'{}: expect clipping",
+                    a.name,
+                    fmt_eng(span.lo, "V"),
+                    fmt_eng(span.hi, "V"),
+                    fmt_eng(lo, "V"),
+                    fmt_eng(hi, "V"),
+                    part.name,
+                    if over.is_finite() && over > 1.0 {
+                        format!(" by {:.1} dB", 20.0 * over.log10())
+                    } else {
+                        String::new()
+                    }
+                ),
+            });
+        }
+        if pos - neg > part.supply_max {
+            warnings.push(Warning {
+                kind: WarningKind::Supply,
+                key: format!("{akey}.part"),
+                message: format!(
+                    "op-amp '{}': its supply spans {} but '{}' is rated for {} total supply",
+                    a.name,
+                    fmt_eng(pos - neg, "V"),
+                    part.name,
+                    fmt_eng(part.supply_max, "V")
+                ),
+            });
+        }
+        let cs = node_span(ng, excursions, ca.plus);
+        let cm_lo = part.cm_low.map(|d| neg + d);
+        let cm_hi = part.cm_high.map(|d| pos - d);
+        if linear && (cm_lo.is_some_and(|l| cs.lo < l) || cm_hi.is_some_and(|h| cs.hi > h)) {
+            let what = if part.reversal {
+                "the output reverses phase while it is outside"
+            } else {
+                "the input stage clips while it is outside"
+            };
+            warnings.push(Warning {
+                kind: WarningKind::CommonMode,
+                key: akey.clone(),
+                message: format!(
+                    "op-amp '{}': input common-mode span {} .. {} leaves the range {} .. {} of '{}': {}",
+                    a.name,
+                    fmt_eng(cs.lo, "V"),
+                    fmt_eng(cs.hi, "V"),
+                    cm_lo.map_or("rail".into(), |v| fmt_eng(v, "V")),
+                    cm_hi.map_or("rail".into(), |v| fmt_eng(v, "V")),
+                    part.name,
+                    what
+                ),
+            });
+        }
+        if linear && span.slope.is_finite() && span.slope > part.slew {
+            warnings.push(Warning {
+                kind: WarningKind::Slew,
+                key: akey.clone(),
+                message: format!(
+                    "op-amp '{}': peak output slope about {}/us exceeds the slew rate {}/us of '{}': expect slew limiting",
+                    a.name,
+                    fmt_eng(span.slope * 1e-6, "V"),
+                    fmt_eng(part.slew * 1e-6, "V"),
+                    part.name
+                ),
+            });
+        }
+        if a.out == net.out {
+            out_swing = Some((lo, hi));
+        }
+    }
+    for (i, p) in net.parts.iter().enumerate() {
+        if let crate::model::NetPartKind::R(r) = p.kind {
+            standard_value(warnings, &format!("{key}.parts[{i}].r"), r);
+        }
+    }
+    out_swing
 }
 
 fn standard_value(warnings: &mut Vec<Warning>, key: &str, r: f64) {

@@ -12,12 +12,12 @@
 
 pub mod alias;
 pub mod analysis;
+pub mod budget;
 pub mod check;
 pub mod circuit;
 pub mod engine;
 pub mod measure;
 pub mod model;
-pub mod noise;
 pub mod parts;
 pub mod patch;
 pub mod plot;

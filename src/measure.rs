@@ -508,7 +508,15 @@ fn apply_circuit_peaks(r: &mut OutputReport, patch: &Patch, out: usize) {
     if patch.outputs[out].inner.is_some() {
         return;
     }
-    let Some(e) = r.events.get(&patch.stages[i].name) else {
+    // a network: the op-amp driving its output node, by its name
+    let name = match &patch.stages[i].kind {
+        StageKind::Network(n) => match n.amps.iter().find(|a| a.out == n.out) {
+            Some(a) => a.name.clone(),
+            None => return,
+        },
+        _ => patch.stages[i].name.clone(),
+    };
+    let Some(e) = r.events.get(&name) else {
         return;
     };
     let (Some(hi), Some(lo)) = (e.peak_pos_v, e.peak_neg_v) else {
@@ -564,17 +572,26 @@ pub fn measure(
             .flat_map(|s| {
                 let st = &patch.stages[s];
                 match &st.kind {
+                    // each against its own swing, on its own supply
                     StageKind::Network(n) => n
                         .amps
                         .iter()
-                        .map(|a| (a.name.clone(), None))
+                        .map(|a| {
+                            let (lo, hi) =
+                                crate::check::swing_limits(&a.part, a.rails.pos, a.rails.neg);
+                            let lim = SwingLimits {
+                                pos: hi,
+                                neg: lo,
+                                centre: 0.0,
+                            };
+                            (a.name.clone(), Some(lim))
+                        })
                         .collect::<Vec<_>>(),
-                    _ if st.part.is_some() => vec![(st.name.clone(), Some(s))],
+                    _ if st.part.is_some() => vec![(st.name.clone(), stage_swing(patch, s))],
                     _ => Vec::new(),
                 }
             })
-            .filter_map(|(name, s)| {
-                let swing = s.and_then(|s| stage_swing(patch, s));
+            .filter_map(|(name, swing)| {
                 run.events
                     .iter()
                     .find(|e| e.stage == name)

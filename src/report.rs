@@ -32,7 +32,8 @@ pub struct Figure {
     pub output: String,
     /// Side of an A/B comparison it belongs to (`"A"` or `"B"`), if any.
     pub side: Option<&'static str>,
-    /// Kind: `spectrum`, `waveform`, `transfer` or `thd-vs-level`.
+    /// Kind: `spectrum`, `waveform`, `transfer`, `thd-vs-level`, `response-gain` or
+    /// `response-phase`.
     pub kind: &'static str,
     /// The SVG document.
     pub svg: String,
@@ -224,6 +225,64 @@ fn first_source(patch: &Patch, node: Node) -> Option<usize> {
         .find(|&s| !matches!(patch.sources[s].wave, Wave::Dc { .. }))
 }
 
+/// The response plots of one output: its gain (with the -3 dB points marked) and its phase
+/// against frequency, as (`response-gain` / `response-phase`, SVG); `prefix` starts each
+/// title (a side of a comparison).
+pub fn response_svgs(
+    name: &str,
+    o: &crate::response::OutputResponse,
+    prefix: &str,
+) -> Result<Vec<(&'static str, String)>, plot::PlotError> {
+    let gain: Vec<(f64, f64)> = o.points.iter().map(|p| (p.hz, p.gain_db)).collect();
+    let phase: Vec<(f64, f64)> = o.points.iter().map(|p| (p.hz, p.phase_deg)).collect();
+    let peak = gain.iter().map(|p| p.1).fold(f64::NEG_INFINITY, f64::max);
+    let crossings: Vec<Crossing> = crate::response::minus_3db(&o.points)
+        .into_iter()
+        .map(|f| Crossing {
+            x: f,
+            y: peak - 3.0,
+            label: format!("-3 dB at {}", crate::units::fmt_eng(f, "Hz")),
+        })
+        .collect();
+    let caption = format!(
+        "small-signal response from {} (complex nodal solve)",
+        o.source
+    );
+    let mut out = Vec::new();
+    for (kind, pts, label, unit, marks) in [
+        ("response-gain", &gain, "gain", "dB", &crossings[..]),
+        ("response-phase", &phase, "phase", "deg", &[][..]),
+    ] {
+        let title = format!("{prefix}{name}: {label} against frequency");
+        let series = [SweepSeries {
+            name: label,
+            points: pts,
+        }];
+        out.push((
+            kind,
+            plot::sweep_svg(&SweepPlot {
+                title: &title,
+                caption: &caption,
+                x: AxisSpec::log("frequency", "Hz"),
+                y: AxisSpec::linear(label, unit),
+                series: &series,
+                crossings: marks,
+                threshold: None,
+            })?,
+        ));
+    }
+    Ok(out)
+}
+
+/// Whether the patch's circuit has a capacitor (then its response is worth a plot).
+pub fn has_capacitors(patch: &Patch) -> bool {
+    crate::circuit::build::patch_circuit(patch)
+        .circuit
+        .elems
+        .iter()
+        .any(|e| matches!(e.kind, crate::circuit::ElemKind::C(_)))
+}
+
 /// Longest stretch the plots are drawn from, s: a longer patch is plotted from its first
 /// [`PLOT_MAX_S`] seconds (the plots show shapes, not the whole record).
 pub const PLOT_MAX_S: f64 = 10.0;
@@ -248,6 +307,7 @@ pub fn side_plots(
     let probe_patch = with_probes(patch);
     let probes = render::render(&probe_patch, &RenderOptions::default(), &mut |_| {})?;
     let run = &probes;
+    let with_caps = has_capacitors(patch);
     let mut figs = Vec::new();
     for (oi, o) in patch.outputs.iter().enumerate() {
         if only.is_some_and(|n| n != o.name) {
@@ -431,6 +491,21 @@ pub fn side_plots(
                         }),
                     }),
                 );
+            }
+        }
+
+        // Small-signal response from the output's first source, when the circuit has
+        // capacitors (a flat response is no news).
+        if let (true, Some(s)) = (with_caps, first_source(patch, o.from)) {
+            let grid = crate::response::log_grid(10.0, 40e3, 200).unwrap_or_default();
+            if let Ok(r) = crate::response::response(patch, s, &grid) {
+                if let Some(or) = r.outputs.get(&o.name) {
+                    if let Ok(svgs) = response_svgs(&o.name, or, &prefix) {
+                        for (kind, svg) in svgs {
+                            push(kind, Ok(svg));
+                        }
+                    }
+                }
             }
         }
     }

@@ -135,6 +135,9 @@ struct Solver {
     col: Vec<usize>,
     amp_out: Vec<bool>,
     n: usize,
+    /// Per op-amp: in negative feedback and in a group without diodes (its small-signal
+    /// gains hold over its whole range, up to its limits).
+    amp_linear: Vec<bool>,
 }
 
 impl Solver {
@@ -160,12 +163,20 @@ impl Solver {
         let amp_out = (0..c.nodes.len())
             .map(|n| c.amps.iter().any(|a| a.out == n))
             .collect();
+        let amp_linear = (0..c.amps.len())
+            .map(|k| {
+                plan.groups.iter().any(|g| {
+                    g.junctions.is_empty() && g.amps.iter().any(|a| a.amp == k && !a.explicit)
+                })
+            })
+            .collect();
         Ok(Solver {
             n: free.len(),
             w,
             rest,
             col,
             amp_out,
+            amp_linear,
         })
     }
 
@@ -279,6 +290,52 @@ pub fn dc_gains(patch: &Patch) -> Result<Vec<Vec<f64>>, ResponseError> {
         .iter()
         .map(|&node| per_source.iter().map(|v| v[node].re).collect())
         .collect())
+}
+
+/// The whole patch's circuit with, for every node, its rest (DC operating) voltage and,
+/// per source, its DC gain and its largest gain over a band: what `check` needs for the
+/// worst-case span of any node, network op-amps' outputs and inputs included.
+#[derive(Debug, Clone)]
+pub struct NodeGains {
+    /// The circuit (node indices below index `circuit.circuit.nodes`).
+    pub circuit: PatchCircuit,
+    /// Rest voltage of every node with every source at its DC level, V.
+    pub rest: Vec<f64>,
+    /// `dc[source][node]`: small-signal gain at 0 Hz.
+    pub dc: Vec<Vec<f64>>,
+    /// `band[source][node]`: the largest `|H|` at 0 Hz and over the band's frequencies.
+    pub band: Vec<Vec<f64>>,
+    /// Per op-amp of the circuit: in negative feedback with no diode in its group, so
+    /// its small-signal gains describe it up to its limits (a comparator, a loop with
+    /// positive feedback or a diode only near its rest point).
+    pub amp_linear: Vec<bool>,
+}
+
+/// Rest voltages, DC gains and largest gains over `band_hz` of every node of the patch.
+pub fn node_gains(patch: &Patch, band_hz: &[f64]) -> Result<NodeGains, ResponseError> {
+    let sv = Solver::new(patch)?;
+    let nn = sv.w.circuit.nodes.len();
+    let mut dc = Vec::with_capacity(patch.sources.len());
+    let mut band = Vec::with_capacity(patch.sources.len());
+    for k in 0..patch.sources.len() {
+        let d: Vec<f64> = sv.solve(k, 0.0)?.iter().map(|v| v.re).collect();
+        let mut b: Vec<f64> = d.iter().map(|x| x.abs()).collect();
+        for &hz in band_hz {
+            for (m, v) in b.iter_mut().zip(sv.solve(k, hz)?) {
+                *m = m.max(v.norm());
+            }
+        }
+        debug_assert_eq!(b.len(), nn);
+        dc.push(d);
+        band.push(b);
+    }
+    Ok(NodeGains {
+        amp_linear: sv.amp_linear.clone(),
+        rest: sv.rest.vn.clone(),
+        circuit: sv.w,
+        dc,
+        band,
+    })
 }
 
 /// Frequencies where the gain crosses 3 dB below its largest value on the grid (log

@@ -27,12 +27,20 @@ fn reference(freq: f64, vp: f64, gbw: f64, sr: f64, rate: f64, n: usize) -> Vec<
     out
 }
 
+/// The engine's samples of the same follower, with the band-limited corrections off
+/// (`Plan::antialias`): they move the samples beside a slew corner by up to `SR h / 3` by
+/// design (tests/engine_edges.rs); this test checks the step itself.
 fn engine(freq: f64, vp: f64, gbw: f64, sr: f64, rate: f64, n: usize) -> Vec<f64> {
     let mut b = Pb::new(rate, 1, n as f64 / rate).rails(15.0, -15.0);
     let s = b.sine("in", freq, vp);
     let f = b.follower("buf", &linear_part(gbw, sr), s);
     b.out("out", f, 0.0, None);
-    render(&b.p).remove(0)
+    let mut plan = railsong::engine::compile(&b.p).expect("compiles");
+    plan.antialias = false;
+    let mut eng = railsong::engine::Engine::new(&plan);
+    let mut out = vec![0.0; n];
+    eng.process(&mut [out.as_mut_slice()]);
+    out
 }
 
 // Three regimes at 192 kHz internal rate, 5 kHz input: slewing (5 V peak, SR 0.1 V/us, 1.6

@@ -421,3 +421,340 @@ out = \"y\"\n\
     assert!((g[0] + 1.0).abs() < 3e-4, "inverter {g:?}");
     assert!((g[1] - 1.0).abs() < 3e-4, "follower {g:?}");
 }
+
+fn warnings(text: &str) -> Vec<railsong::check::Warning> {
+    let p = railsong::patch::parse_str(text, "check.toml", Path::new("."), &[])
+        .unwrap_or_else(|e| panic!("{e}"));
+    railsong::check::check(&p).warnings
+}
+
+fn sine_src(name: &str, amp: f64, offset: f64) -> String {
+    format!(
+        "[sources.{name}]\nwave = \"sine\"\nfreq = \"1 kHz\"\namp = \"{amp} V\"\noffset = \"{offset} V\"\n"
+    )
+}
+
+const RAILS: &str =
+    "[patch]\nlength = \"0.1 s\"\nnoise = false\n[rails]\npos = \"12 V\"\nneg = \"-12 V\"\n";
+
+// `check` on a network checks each op-amp on paper, from the whole patch solved as one
+// circuit: a non-inverting stage of gain 1 + Rf/Rg = 2 (textbook) on 7 V peaks asks for
+// 14 V, beyond the swing 12 - 1.8 V of its part (the profile's drop): a clipping warning on
+// `amps[0]`, none at 3 V; its 90k resistor is not an E24 or E96 value (IEC 60063).
+#[test]
+fn check_warns_when_a_network_amp_cannot_swing_its_worst_case() {
+    let net = |amp: f64| {
+        format!(
+            "{RAILS}{}[stages.g]\ntype = \"network\"\n\
+amps = [{{ part = \"jfet-general\", plus = \"v\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"y\", \"m\"] }}, {{ r = \"10k\", ends = [\"m\", \"gnd\"] }}, \
+{{ r = \"90k\", ends = [\"y\", \"gnd\"] }}]\n\
+out = \"y\"\n[outputs.o]\nfrom = \"g\"\n",
+            sine_src("v", amp, 0.0)
+        )
+    };
+    let w = warnings(&net(7.0));
+    let clip: Vec<_> = w
+        .iter()
+        .filter(|w| w.kind == railsong::check::WarningKind::Clipping)
+        .collect();
+    assert_eq!(clip.len(), 1, "{w:?}");
+    assert_eq!(clip[0].key, "stages.g.amps[0]");
+    assert!(
+        clip[0].message.contains("-14 V .. 14 V") && clip[0].message.contains("10.2 V"),
+        "{}",
+        clip[0].message
+    );
+    let w = warnings(&net(3.0));
+    assert!(
+        !w.iter()
+            .any(|w| w.kind == railsong::check::WarningKind::Clipping),
+        "{w:?}"
+    );
+    assert!(
+        w.iter()
+            .any(|w| w.kind == railsong::check::WarningKind::NonStandard
+                && w.key == "stages.g.parts[2].r"),
+        "{w:?}"
+    );
+}
+
+// A passive-averaging (non-inverting) summer: V+ is the mean of its inputs (Millman's
+// theorem, equal resistors). Two inputs at -9 V +- 1 V put V+ at -10 .. -8 V, below the
+// JFET-input part's range (4 V above the negative rail, common practice: -8 V on +-12 V): a
+// common-mode warning on `amps[0]` saying the output reverses. At -5 V +- 1 V: none.
+#[test]
+fn check_warns_when_a_network_amp_leaves_its_input_range() {
+    let net = |dc: f64| {
+        format!(
+            "{RAILS}{}{}[stages.avg]\ntype = \"network\"\n\
+amps = [{{ part = \"jfet-general\", plus = \"p\", minus = \"y\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"a\", \"p\"] }}, {{ r = \"10k\", ends = [\"b\", \"p\"] }}]\n\
+out = \"y\"\n[outputs.o]\nfrom = \"avg\"\n",
+            sine_src("a", 1.0, dc),
+            sine_src("b", 1.0, dc)
+        )
+    };
+    let w = warnings(&net(-9.0));
+    let cm: Vec<_> = w
+        .iter()
+        .filter(|w| w.kind == railsong::check::WarningKind::CommonMode)
+        .collect();
+    assert_eq!(cm.len(), 1, "{w:?}");
+    assert_eq!(cm[0].key, "stages.avg.amps[0]");
+    assert!(
+        cm[0].message.contains("-10 V .. -8 V") && cm[0].message.contains("reverses"),
+        "{}",
+        cm[0].message
+    );
+    assert!(warnings(&net(-5.0)).is_empty());
+}
+
+// An op-amp on its own supply (+-12 V, 24 V) with a part rated for 5.5 V: a supply warning
+// on `amps[0].part`. A follower of 5 V peaks into a 100 ohm output load draws 50 mA (Ohm's
+// law), above the jfet-general profile's 18 mA limit: a current warning on `amps[0]`.
+#[test]
+fn check_warns_on_a_network_amps_supply_and_output_current() {
+    let text = format!(
+        "{RAILS}{}[stages.f]\ntype = \"network\"\n\
+amps = [{{ part = \"rail-to-rail-cmos\", plus = \"v\", minus = \"y\", out = \"y\", pos = \"12 V\", neg = \"-12 V\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"y\", \"gnd\"] }}]\n\
+out = \"y\"\n[outputs.o]\nfrom = \"f\"\n",
+        sine_src("v", 1.0, 0.0)
+    );
+    let w = warnings(&text);
+    assert!(
+        w.iter()
+            .any(|w| w.kind == railsong::check::WarningKind::Supply
+                && w.key == "stages.f.amps[0].part"
+                && w.message.contains("24 V")),
+        "{w:?}"
+    );
+    let text = format!(
+        "{RAILS}{}[stages.f]\ntype = \"network\"\n\
+amps = [{{ part = \"jfet-general\", plus = \"v\", minus = \"y\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"y\", \"gnd\"] }}]\n\
+out = \"y\"\n[outputs.o]\nfrom = \"f\"\nload = \"100\"\n",
+        sine_src("v", 5.0, 0.0)
+    );
+    let w = warnings(&text);
+    let cur: Vec<_> = w
+        .iter()
+        .filter(|w| w.kind == railsong::check::WarningKind::Current)
+        .collect();
+    assert_eq!(cur.len(), 1, "{w:?}");
+    assert_eq!(cur[0].key, "stages.f.amps[0]");
+    // 100 ohm || 10k = 99 ohm: 5 V / 99 ohm = 50.5 mA
+    assert!(
+        cur[0].message.contains("99R") && cur[0].message.contains("50.5"),
+        "{}",
+        cur[0].message
+    );
+}
+
+// Events of a network op-amp carry its peaks and its first clip, as a shorthand stage's do:
+// a gain-2 stage (1 + Rf/Rg) of an ideal part (output to the rails) on 7 V at 100 Hz first
+// reaches the 12 V rail at t = asin(12/14) / (2 pi 100 Hz) = 1.6395 ms (the sine's own
+// closed form), within two internal samples at K = 4, as the shorthand stage says too; it
+// stays there 4 (pi/2 - asin(12/14)) / (2 pi) of the time; its highest output is the rail,
+// and the output's peak is the op-amp's (after its clamp).
+#[test]
+fn network_amp_events_carry_peaks_and_first_clip() {
+    let text = format!(
+        "{}{}\
+[stages.net]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"a\", minus = \"m\", out = \"y\", name = \"gain2\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"y\", \"m\"] }}, {{ r = \"10k\", ends = [\"m\", \"gnd\"] }}]\n\
+out = \"y\"\n\
+[stages.short]\ntype = \"non-inverting\"\npart = \"ideal\"\nfrom = \"a\"\nr_fb = \"10k\"\nr_g = \"10k\"\n\
+[outputs.o]\nfrom = \"net\"\n[outputs.s]\nfrom = \"short\"\n",
+        RAILS,
+        "[sources.a]\nwave = \"sine\"\nfreq = \"100 Hz\"\namp = \"7 V\"\n"
+    );
+    let p = railsong::patch::parse_str(&text, "ev.toml", Path::new("."), &[])
+        .unwrap_or_else(|e| panic!("{e}"));
+    let r = railsong::engine::run(&p, &railsong::engine::RunOptions::default()).unwrap();
+    let m = railsong::measure::measure(
+        &p,
+        &r,
+        None,
+        &railsong::analysis::Settings::default(),
+        None,
+        None,
+    );
+    let want = (12.0f64 / 14.0).asin() / (TAU * 100.0);
+    let h = 1.0 / (4.0 * RATE);
+    let net = &m.outputs["o"].events["gain2"];
+    let short = &m.outputs["s"].events["short"];
+    let t_net = net.first_clip_s.expect("the network op-amp clips");
+    let t_short = short.first_clip_s.expect("the shorthand stage clips");
+    assert!((t_net - want).abs() < 2.0 * h, "{t_net} s against {want} s");
+    assert!((t_short - want).abs() < 2.0 * h, "shorthand {t_short} s");
+    let hi = net.peak_pos_v.unwrap();
+    let lo = net.peak_neg_v.unwrap();
+    assert!(
+        (hi - 12.0).abs() < 1e-6 && (lo + 12.0).abs() < 1e-6,
+        "{lo} .. {hi}"
+    );
+    assert!(net.headroom_pos_db.unwrap().abs() < 1e-3, "{net:?}");
+    // at the rail while |sin| > 12/14: 4 (pi/2 - asin(12/14)) / (2 pi) of each period
+    let clip = 0.1 * 4.0 * (PI / 2.0 - (12.0f64 / 14.0).asin()) / TAU;
+    assert!(
+        (net.clip_s / clip - 1.0).abs() < 0.02,
+        "{net:?} against {clip} s"
+    );
+    let peak = m.outputs["o"].figures.peak_v.unwrap();
+    assert!((peak - 12.0).abs() < 1e-6, "output peak {peak}");
+}
+
+// The page (and `render --plots`) shows the small-signal response of an output when the
+// patch has capacitors: the Sallen-Key example gets a gain plot with its -3 dB point marked
+// where `response` puts it, and a phase plot; a resistive patch gets neither.
+#[test]
+fn plots_show_the_response_when_the_patch_has_capacitors() {
+    let (text, dir) = example("net-sallen-key.toml");
+    let p = parse(&text, &dir, &["patch.length=0.2 s", "patch.noise=false"]);
+    let figs = railsong::report::plots(&p, None).unwrap();
+    let kinds: Vec<&str> = figs.iter().map(|f| f.kind).collect();
+    assert!(
+        kinds.contains(&"response-gain") && kinds.contains(&"response-phase"),
+        "{kinds:?}"
+    );
+    let gain = figs.iter().find(|f| f.kind == "response-gain").unwrap();
+    assert_eq!(gain.file_name(), "out-response-gain.svg");
+    let grid = railsong::response::log_grid(10.0, 40e3, 200).unwrap();
+    let r = railsong::response::response(&p, 0, &grid).unwrap();
+    let f3 = railsong::response::minus_3db(&r.outputs["out"].points);
+    assert_eq!(f3.len(), 1);
+    let label = format!("-3 dB at {}", railsong::units::fmt_eng(f3[0], "Hz"));
+    assert!(gain.svg.contains(&label), "{label} not in the plot");
+
+    let resistive = format!(
+        "{RAILS}{}[stages.g]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"v\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"y\", \"m\"] }}, {{ r = \"10k\", ends = [\"m\", \"gnd\"] }}]\n\
+out = \"y\"\n[outputs.o]\nfrom = \"g\"\n",
+        "[sources.v]\nwave = \"saw\"\nfreq = \"100 Hz\"\namp = \"1 V\"\n"
+    );
+    let p = railsong::patch::parse_str(&resistive, "r.toml", Path::new("."), &[]).unwrap();
+    let figs = railsong::report::plots(&p, None).unwrap();
+    assert!(
+        figs.iter().all(|f| !f.kind.starts_with("response")),
+        "{:?}",
+        figs.iter().map(|f| f.kind).collect::<Vec<_>>()
+    );
+    assert!(figs.iter().any(|f| f.kind == "spectrum"));
+}
+
+/// The one-sided density of a budget's output at 1 kHz, V/sqrt(Hz).
+fn noise_density(text: &str, output: &str) -> (f64, Vec<String>) {
+    let p = railsong::patch::parse_str(text, "noise.toml", Path::new("."), &[])
+        .unwrap_or_else(|e| panic!("{e}"));
+    let b = railsong::budget::budget(&p, railsong::budget::DEFAULT_BAND);
+    let o = b.iter().find(|b| b.output == output).unwrap();
+    (
+        o.total_density_1k,
+        o.items.iter().map(|i| i.label.clone()).collect(),
+    )
+}
+
+const NOISY: &str = "[parts.quiet]\nbased_on = \"ideal\"\nen = \"10 nV/rtHz\"\nen_corner = \"0 Hz\"\nin = \"2 pA/rtHz\"\n";
+
+// The noise budget reads network stages from the patch's one circuit. A non-inverting
+// network (source resistor Rs into V+, Rf, Rg) with a fast part: the textbook output
+// density e^2 = NG^2 (en^2 + 4kT Rs + (in Rs)^2) + (in Rf)^2 + 4kT Rf (1 + Rf/Rg),
+// NG = 1 + Rf/Rg (op-amp noise analysis, e.g. Franco, "Design with Operational Amplifiers
+// and Analog Integrated Circuits", 2015), within 1e-4; every part and both input currents
+// are listed by their key; and the same circuit written as the shorthand stage budgets the
+// same total.
+#[test]
+fn network_noise_budget_matches_the_textbook_non_inverting_stage() {
+    let (rs, rf, rg) = (10e3, 47e3, 4.7e3);
+    let text = format!(
+        "{RAILS}{NOISY}{}[stages.n]\ntype = \"network\"\n\
+amps = [{{ part = \"quiet\", plus = \"p\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ r = \"{rs}\", ends = [\"v\", \"p\"] }}, {{ r = \"{rf}\", ends = [\"y\", \"m\"] }}, \
+{{ r = \"{rg}\", ends = [\"m\", \"gnd\"] }}]\n\
+out = \"y\"\n[outputs.o]\nfrom = \"n\"\n",
+        sine_src("v", 0.1, 0.0)
+    );
+    let (d, labels) = noise_density(&text, "o");
+    let p = railsong::patch::parse_str(&text, "n.toml", Path::new("."), &[]).unwrap();
+    let kt4 = 4.0 * railsong::budget::BOLTZMANN * p.temperature;
+    let (en, inn) = (10e-9, 2e-12);
+    let ng = 1.0 + rf / rg;
+    let want = (ng * ng * (en * en + kt4 * rs + (inn * rs).powi(2))
+        + (inn * rf).powi(2)
+        + kt4 * rf * (1.0 + rf / rg))
+        .sqrt();
+    assert!((d / want - 1.0).abs() < 1e-4, "{d} against {want}");
+    for l in [
+        "stages.n.parts[0]",
+        "stages.n.parts[1]",
+        "stages.n.parts[2]",
+        "stages.n.amps[0] en",
+        "stages.n.amps[0] in+",
+        "stages.n.amps[0] in-",
+    ] {
+        assert!(labels.iter().any(|x| x.starts_with(l)), "{l} in {labels:?}");
+    }
+    // the shorthand stage, fed through a unity follower network carrying Rs (so both see the
+    // same source resistance), budgets the same noise at its output
+    let short = format!(
+        "{RAILS}{NOISY}{}[stages.rs]\ntype = \"network\"\namps = []\n\
+parts = [{{ r = \"{rs}\", ends = [\"v\", \"p\"] }}, {{ r = \"1G\", ends = [\"p\", \"gnd\"] }}]\nout = \"p\"\n\
+[stages.s]\ntype = \"non-inverting\"\npart = \"quiet\"\nfrom = \"rs\"\nr_fb = \"{rf}\"\nr_g = \"{rg}\"\n\
+[outputs.o]\nfrom = \"s\"\n",
+        sine_src("v", 0.1, 0.0)
+    );
+    let (ds, _) = noise_density(&short, "o");
+    // 1G to ground adds its own 4kT 1G through Rs/(Rs + 1G): 1e-5 of Rs's power
+    assert!(
+        (ds / want - 1.0).abs() < 1e-4,
+        "shorthand {ds} against {want}"
+    );
+}
+
+// A diode's shot noise: a forward-biased junction (is, n, no series resistance) fed from the
+// positive rail through R, read at its node (`from = "net.d"`). Its current I from the
+// Shockley equation (solved here by Newton's method), its small-signal resistance
+// rd = n Vt / (I + is); the node's density is 2 q I (R || rd)^2 (Schottky's shot noise)
+// plus R's 4kT R (rd / (R + rd))^2, within 1e-3.
+#[test]
+fn network_noise_budget_includes_diode_shot_noise() {
+    let r = 10e3;
+    let text = format!(
+        "{RAILS}{}[diodes.plain]\nis = \"1e-14 A\"\nn = 1\nrs = \"0\"\ncj = \"0\"\n\
+[stages.net]\ntype = \"network\"\namps = []\n\
+parts = [{{ r = \"{r}\", ends = [\"pos\", \"d\"] }}, {{ diode = \"plain\", ends = [\"d\", \"gnd\"] }}, \
+{{ r = \"10k\", ends = [\"v\", \"x\"] }}, {{ r = \"10k\", ends = [\"x\", \"gnd\"] }}]\nout = \"x\"\n\
+[outputs.o]\nfrom = \"net.d\"\n",
+        sine_src("v", 0.1, 0.0)
+    );
+    let p = railsong::patch::parse_str(&text, "d.toml", Path::new("."), &[])
+        .unwrap_or_else(|e| panic!("{e}"));
+    let vt =
+        railsong::budget::BOLTZMANN * p.temperature / railsong::parts::diodes::ELEMENTARY_CHARGE;
+    let is = 1e-14;
+    let mut v: f64 = 0.6;
+    for _ in 0..100 {
+        let f = is * ((v / vt).exp() - 1.0) - (12.0 - v) / r;
+        let df = is / vt * (v / vt).exp() + 1.0 / r;
+        v -= f / df;
+    }
+    let i = (12.0 - v) / r;
+    let rd = vt / (i + is);
+    let kt4 = 4.0 * railsong::budget::BOLTZMANN * p.temperature;
+    let par = r * rd / (r + rd);
+    let want = (2.0 * railsong::parts::diodes::ELEMENTARY_CHARGE * i * par * par
+        + kt4 * r * (rd / (r + rd)).powi(2))
+    .sqrt();
+    let (d, labels) = noise_density(&text, "o");
+    assert!((d / want - 1.0).abs() < 1e-3, "{d} against {want}");
+    assert!(
+        labels
+            .iter()
+            .any(|l| l.starts_with("stages.net.parts[1] (diode, shot")),
+        "{labels:?}"
+    );
+}

@@ -11,12 +11,12 @@
 //! - independent noise sources add in power, correlated ones (one source along two paths) in
 //!   amplitude [S, any noise text].
 
-use railsong::model::{
-    Feedback, Node, Output, Patch, Rails, Source, Stage, StageKind, SumInput, Taper, Wave,
-};
-use railsong::noise::{
+use railsong::budget::{
     band_power, budget, format_budget, johnson_density, try_budget, NoiseError, OutputBudget,
     BOLTZMANN, DEFAULT_BAND,
+};
+use railsong::model::{
+    Feedback, Node, Output, Patch, Rails, Source, Stage, StageKind, SumInput, Taper, Wave,
 };
 use railsong::parts::{builtin, OpAmp};
 
@@ -148,7 +148,7 @@ fn attenuator(name: &str, from: Node, pot: f64, at: f64) -> Stage {
     }
 }
 
-fn item<'a>(b: &'a OutputBudget, starts: &str) -> &'a railsong::noise::Contribution {
+fn item<'a>(b: &'a OutputBudget, starts: &str) -> &'a railsong::budget::Contribution {
     b.items
         .iter()
         .find(|c| c.label.starts_with(starts))

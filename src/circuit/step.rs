@@ -22,6 +22,8 @@ pub struct AmpEvents {
     pub cm: u64,
     /// Phase reversed.
     pub rev: u64,
+    /// Time of the first step at or past the start of the knee, as given to the step, s.
+    pub first_clip_s: Option<f64>,
 }
 
 /// Running state of one group, with its scratch buffers (sized once).
@@ -715,6 +717,7 @@ fn full_step(
         }
         if a.shaper.clipping(v) {
             ev.clip += 1;
+            ev.first_clip_s.get_or_insert(time_s);
         }
     }
     Ok(())

@@ -2,7 +2,7 @@
 
 use std::path::{Path, PathBuf};
 
-use railsong::plot::{sweep_svg, AxisSpec, Crossing, SweepPlot, SweepSeries};
+use railsong::report::response_svgs;
 use railsong::response::{log_grid, minus_3db, response};
 use railsong::signal::OutputDir;
 use railsong::units::{fmt_eng, parse_frequency};
@@ -104,42 +104,9 @@ pub(crate) fn cmd_response(a: &ResponseArgs) -> Result<(), Failure> {
     if let Some((dir, force)) = &a.plots {
         let mut folder = OutputDir::open(dir, *force).map_err(signal_error)?;
         for (name, o) in &r.outputs {
-            let gain: Vec<(f64, f64)> = o.points.iter().map(|p| (p.hz, p.gain_db)).collect();
-            let phase: Vec<(f64, f64)> = o.points.iter().map(|p| (p.hz, p.phase_deg)).collect();
-            let peak = gain.iter().map(|p| p.1).fold(f64::NEG_INFINITY, f64::max);
-            let crossings: Vec<Crossing> = minus_3db(&o.points)
-                .into_iter()
-                .map(|f| Crossing {
-                    x: f,
-                    y: peak - 3.0,
-                    label: format!("-3 dB at {}", fmt_eng(f, "Hz")),
-                })
-                .collect();
-            let caption = format!(
-                "small-signal response from {} (complex nodal solve)",
-                o.source
-            );
-            for (kind, pts, label, unit, marks) in [
-                ("gain", &gain, "gain", "dB", &crossings[..]),
-                ("phase", &phase, "phase", "deg", &[][..]),
-            ] {
-                let title = format!("{name}: {label} against frequency");
-                let series = [SweepSeries {
-                    name: kind,
-                    points: pts,
-                }];
-                let svg = sweep_svg(&SweepPlot {
-                    title: &title,
-                    caption: &caption,
-                    x: AxisSpec::log("frequency", "Hz"),
-                    y: AxisSpec::linear(label, unit),
-                    series: &series,
-                    crossings: marks,
-                    threshold: None,
-                })
-                .map_err(failure_io)?;
+            for (kind, svg) in response_svgs(name, o, "").map_err(failure_io)? {
                 folder
-                    .write_text(&format!("{name}-response-{kind}.svg"), &svg)
+                    .write_text(&format!("{name}-{kind}.svg"), &svg)
                     .map_err(signal_error)?;
             }
         }

@@ -174,8 +174,8 @@
 //! `density * sqrt(fs_internal / 2)` (white noise of one-sided density `d` sampled at `fs`
 //! has variance `d^2 fs / 2`); the decimator removes the band above the base rate's
 //! Nyquist frequency. Simulated, with the same model as the analytic budget
-//! ([`crate::noise`]) so that the two totals compare:
-//! - thermal (Johnson-Nyquist) noise `sqrt(4 k T R)`, `k` = [`crate::noise::BOLTZMANN`]
+//! ([`crate::budget`]) so that the two totals compare:
+//! - thermal (Johnson-Nyquist) noise `sqrt(4 k T R)`, `k` = [`crate::budget::BOLTZMANN`]
 //!   (exact, SI 2019), `T` = `patch.temperature`, as a voltage in series with each resistor:
 //!   every input branch (its resistor plus the Thevenin resistance of the pots it reads: a
 //!   passive resistive network's Thevenin noise is that of its Thevenin resistance),
@@ -198,10 +198,11 @@
 //! the summed variance (statistically identical: a sum of independent Gaussians is Gaussian
 //! with the summed variance), so a stage draws one white sample per internal sample and a
 //! 1/f sample per hold. Issue 13 (cost): the white drive noise is one xoshiro256++ word per
-//! sample summed as four 16-bit uniforms (Irwin-Hall, unit variance; the decimation filter
-//! makes what reaches an output Gaussian, tested by its kurtosis); the 1/f part runs at
-//! `fs / floor(fs / 64 kHz)` with a hold ([`noise::FLICKER_MIN_RATE`]) from Box-Muller
-//! Gaussians; an output's thermal noise, independent of the circuit, is added at the base
+//! sample (four generators in lockstep) summed as four 16-bit uniforms (Irwin-Hall, unit
+//! variance; the decimation filter makes what reaches an output Gaussian, tested by its
+//! kurtosis); the 1/f part runs at `fs / floor(fs / 64 kHz)` with a hold
+//! ([`noise::FLICKER_MIN_RATE`]), driven by the same sums, its sections in a skewed
+//! lockstep pipeline ([`noise::Flicker::shape_block`], bit for bit the serial cascade); an output's thermal noise, independent of the circuit, is added at the base
 //! rate after decimation with its in-band density. The noise of a block is generated before
 //! the fast-path decision, so both paths see the same samples (they agree within 1 uV with
 //! noise on, tested); noise is tiny and linear, so the fast-path checks hold
@@ -237,6 +238,7 @@
 //! measured with the engine bench (clean mix, noise off, 10 alternating runs, medians by CPU
 //! time) they cost about 9 % of the fast path (1009 -> 920 times real time).
 
+pub mod edges;
 pub mod fastmath;
 pub mod feed;
 pub mod halfband;

@@ -52,6 +52,8 @@ pub(crate) struct NetRun {
     pub drive: Vec<f64>,
     pub ex_prev: Vec<f64>,
     pub ex_vals: Vec<Vec<f64>>,
+    /// Lowest and highest output of every op-amp (after its clamp), V.
+    pub peaks: Vec<(f64, f64)>,
 }
 
 impl NetRun {
@@ -63,6 +65,7 @@ impl NetRun {
             drive: vec![0.0; block],
             ex_prev: vec![0.0; np.exports.len()],
             ex_vals: vec![vec![0.0; block]; np.exports.len()],
+            peaks: vec![(f64::INFINITY, f64::NEG_INFINITY); np.circuit.circuit.amps.len()],
         };
         r.reset(np);
         r
@@ -79,6 +82,7 @@ impl NetRun {
         for (p, &(n, _)) in self.ex_prev.iter_mut().zip(&np.exports) {
             *p = np.rest.vn[n];
         }
+        self.peaks.fill((f64::INFINITY, f64::NEG_INFINITY));
     }
 }
 
@@ -106,6 +110,11 @@ pub(crate) fn net_block(
             }
             if let Err(e) = nr.state.step(&np.circuit, fast, t0 + t as f64 * h) {
                 err = Some(e);
+            }
+            for (pk, a) in nr.peaks.iter_mut().zip(&np.circuit.circuit.amps) {
+                let x = nr.state.vn[a.out];
+                pk.0 = pk.0.min(x);
+                pk.1 = pk.1.max(x);
             }
         }
         nr.drive[t] = match np.out_amp {

@@ -580,7 +580,7 @@ pub fn compile(patch: &Patch) -> Result<Plan, EngineError> {
     let ns = patch.sources.len();
     // 4 k T: thermal noise density^2 per ohm, V^2/(Hz ohm).
     let four_kt = if patch.temperature.is_finite() && patch.temperature > 0.0 {
-        4.0 * crate::noise::BOLTZMANN * patch.temperature
+        4.0 * crate::budget::BOLTZMANN * patch.temperature
     } else {
         0.0
     };

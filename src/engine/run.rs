@@ -1,5 +1,6 @@
 //! The running engine: block processing of a [`Plan`].
 
+use super::edges::{blamp, blep2_at, SlewStep, Stepped};
 use super::feed::{SourceFeed, ToneFeed};
 use super::halfband::Decimator;
 use super::network::{net_block, NetRun};
@@ -14,6 +15,11 @@ struct StageState {
     v: f64,
     p_prev: f64,
     p_prev2: f64,
+    /// Slewing up (`1`), down (`-1`) or not (`0`) at the end of the last step (the stiff
+    /// slew model's mode, [`SlewStep`]).
+    mode: i8,
+    /// Slope-corner correction still to add to the next drive sample.
+    pend: f64,
     vc: Vec<f64>,
     vf: f64,
     /// The last `WINDOW - 1` drive samples, oldest first (the clamp's window less its
@@ -36,6 +42,8 @@ impl StageState {
             v: sp.rest_v,
             p_prev: sp.rest_p,
             p_prev2: sp.rest_p,
+            mode: 0,
+            pend: 0.0,
             vc: sp.rest_vc.clone(),
             vf: sp.rest_vf,
             xh: [sp.rest_v; WINDOW - 1],
@@ -53,6 +61,8 @@ impl StageState {
         self.v = o.v;
         self.p_prev = o.p_prev;
         self.p_prev2 = o.p_prev2;
+        self.mode = o.mode;
+        self.pend = o.pend;
         self.vc.copy_from_slice(&o.vc);
         self.vf = o.vf;
         self.xh = o.xh;
@@ -562,6 +572,8 @@ impl Engine {
             st.v = sp.rest_v;
             st.p_prev = sp.rest_p;
             st.p_prev2 = sp.rest_p;
+            st.mode = 0;
+            st.pend = 0.0;
             st.vc.copy_from_slice(&sp.rest_vc);
             st.vf = sp.rest_vf;
             st.xh = [sp.rest_v; WINDOW - 1];
@@ -627,17 +639,25 @@ impl Engine {
             })
             .collect();
         for (np, nr) in self.plan.networks.iter().zip(&self.nets) {
-            for (a, ev) in np.circuit.circuit.amps.iter().zip(&nr.state.events) {
+            // a step at buffer time t reads inputs of source time t - (latency - 1) h
+            let lag = (np.latency as f64 - 1.0) * h;
+            for ((a, ev), &(lo, hi)) in np
+                .circuit
+                .circuit
+                .amps
+                .iter()
+                .zip(&nr.state.events)
+                .zip(&nr.peaks)
+            {
                 v.push(StageEvents {
                     stage: a.name.clone(),
                     clip_s: ev.clip as f64 * h,
                     slew_s: ev.slew as f64 * h,
                     cm_out_s: ev.cm as f64 * h,
                     reversed_s: ev.rev as f64 * h,
-                    // not tracked for network op-amps yet
-                    first_clip_s: None,
-                    peak_pos_v: None,
-                    peak_neg_v: None,
+                    first_clip_s: ev.first_clip_s.map(|t| t - lag),
+                    peak_pos_v: hi.is_finite().then_some(hi),
+                    peak_neg_v: lo.is_finite().then_some(lo),
                 });
             }
         }
@@ -745,7 +765,8 @@ impl Engine {
             let mut own = std::mem::take(&mut self.bufs[sp.node]);
             let st = &mut self.states[si];
             let mut ok = false;
-            if self.fast {
+            // a corner correction still to add to the next sample needs the sample loop
+            if self.fast && st.pend == 0.0 {
                 self.saved[si].restore_from(st);
                 ok = linear_block(
                     sp,
@@ -758,6 +779,7 @@ impl Engine {
                     &mut self.qbuf,
                 );
                 if ok {
+                    st.mode = 0;
                     self.fast_blocks += 1;
                 } else {
                     st.restore_from(&self.saved[si]);
@@ -779,6 +801,7 @@ impl Engine {
                         self.weak[si].as_ref(),
                         &mut self.pbuf,
                         &mut self.qbuf,
+                        self.plan.antialias,
                     );
                 } else {
                     // The plain reference: the full model at every sample.
@@ -790,6 +813,7 @@ impl Engine {
                         noise,
                         &mut self.xbuf,
                         1.0 / self.plan.internal_rate,
+                        self.plan.antialias,
                     );
                 }
             }
@@ -1064,6 +1088,7 @@ fn linear_block(
 
 /// The full model over a block: slew (implicit phi), common-mode range and reversal, state
 /// clamp, events.
+#[allow(clippy::too_many_arguments)]
 fn full_block(
     sp: &StagePlan,
     st: &mut StageState,
@@ -1072,6 +1097,7 @@ fn full_block(
     noise: Option<&[f64]>,
     x: &mut [f64],
     h: f64,
+    aa: bool,
 ) {
     let b = x.len();
     let kh = std::f64::consts::TAU * sp.gbw * h;
@@ -1080,7 +1106,7 @@ fn full_block(
     let mut v = st.v;
     let mut pp = st.p_prev;
     let mut pp2 = st.p_prev2;
-    for (t, xo) in x.iter_mut().enumerate().take(b) {
+    for t in 0..b {
         let vp = match &sp.plus {
             Some(pi) => sp.plus_const + pi.gain * bufs[pi.node][hist - pi.delay + t],
             None => sp.plus_const,
@@ -1110,15 +1136,36 @@ fn full_block(
             }
         }
         let pn = vp_eff - mrest + noise.map_or(0.0, |n| n[t]);
-        let xn = if f > 0.0 {
+        let ev = SlewStep {
+            p: [pp2, pp, pn],
+            f,
+            b: sp.b,
+            eps: sp.eps,
+            kh,
+            srh: sp.slew * h,
+        };
+        let mut corners = None;
+        let xn = if ev.stiff() && ev.eventful(st.mode) {
+            let r = ev.step(v, st.mode);
+            st.mode = r.mode;
+            corners = Some(r);
+            r.v
+        } else if f > 0.0 {
+            st.mode = 0;
             solve(v, pn, pp, sp.b, sp.eps, f, kh, sp.vov)
         } else {
+            st.mode = 0;
             let vd = f * (pn - sp.b * v);
             v + h * (sp.slew * (vd / sp.vov).tanh() - kgain * sp.eps * v)
         };
         let xn = if xn.is_finite() { xn } else { v };
         v = xn.clamp(sp.state_lo, sp.state_hi);
-        *xo = xn;
+        x[t] = xn;
+        x[t] += st.pend;
+        st.pend = 0.0;
+        if let (Some(r), true) = (corners, aa) {
+            st.pend = add_corners(&r, x, t, &mut st.xh);
+        }
         // Slewing: the drive is past the linear range and the output is free to move. Not
         // while it is held at the swing (or current) limit, and not while latched by a phase
         // reversal (f <= 0).
@@ -1164,9 +1211,11 @@ fn hybrid_block(
     weak: Option<&WeakStep>,
     vpa: &mut [f64],
     mra: &mut [f64],
+    aa: bool,
 ) {
     let b = x.len();
     let kh = std::f64::consts::TAU * sp.gbw * h;
+    let srh = sp.slew * h;
     let kgain = std::f64::consts::TAU * sp.gbw;
     let delta_inv = 1.0 / super::plan::CM_DELTA;
     let (le, la1, la0) = (sp.lin_e, sp.lin_a1, sp.lin_a0);
@@ -1211,7 +1260,10 @@ fn hybrid_block(
     let mut v = st.v;
     let mut pp = st.p_prev;
     let mut pp2 = st.p_prev2;
-    for (t, xo) in x.iter_mut().enumerate().take(b) {
+    // corrections of the next sample: carried from the last step, made by this one
+    let mut carry = st.pend;
+    let mut pend = 0.0;
+    for t in 0..b {
         let (vp, mrest, nz) = if has_caps {
             let vp = match &sp.plus {
                 Some(pi) => sp.plus_const + pi.gain * bufs[pi.node][hist - pi.delay + t],
@@ -1240,8 +1292,9 @@ fn hybrid_block(
             let pre = (0.5 * (pn + pp) - sp.b * v).abs() <= vd_max;
             if pre && (pn - sp.b * vl).abs() <= vd_max && vl >= slo && vl <= shi {
                 linear = true;
+                st.mode = 0;
                 v = vl;
-                *xo = vl;
+                x[t] = vl;
                 pp2 = pp;
                 pp = pn;
             }
@@ -1263,7 +1316,22 @@ fn hybrid_block(
             let pn = vp_eff - mrest + nz;
             let zr = (0.5 * (pn + pp) - sp.b * v) * weak.map_or(0.0, |w| w.inv_vov);
             let w2 = zr * zr;
-            let xn = if let (Some(ws), true) = (weak, f == 1.0 && w2 < WEAK_W) {
+            let ev = SlewStep {
+                p: [pp2, pp, pn],
+                f,
+                b: sp.b,
+                eps: sp.eps,
+                kh,
+                srh,
+            };
+            let mut corners = None;
+            let xn = if ev.stiff() && ev.eventful(st.mode) {
+                let r = ev.step(v, st.mode);
+                st.mode = r.mode;
+                corners = Some(r);
+                r.v
+            } else if let (Some(ws), true) = (weak, f == 1.0 && w2 < WEAK_W) {
+                st.mode = 0;
                 let (t, t2) = (w2, w2 * w2);
                 let t4 = t2 * t2;
                 let ve = poly8(&ws.e, t, t2, t4) * v
@@ -1272,14 +1340,19 @@ fn hybrid_block(
                 let dmax = kh * (sp.vov + sp.eps * v.abs());
                 v + (ve - v).clamp(-dmax, dmax)
             } else if f > 0.0 {
+                st.mode = 0;
                 solve_fast(v, pn, pp, sp.b, sp.eps, f, sp.vov, &consts)
             } else {
+                st.mode = 0;
                 let vd = f * (pn - sp.b * v);
                 v + h * (sp.slew * (vd / sp.vov).tanh() - kgain * sp.eps * v)
             };
             let xn = if xn.is_finite() { xn } else { v };
             v = xn.clamp(slo, shi);
-            *xo = xn;
+            x[t] = xn;
+            if let (Some(r), true) = (corners, aa) {
+                pend = add_corners(&r, x, t, &mut st.xh);
+            }
             // Slewing, counted as in `full_block`: not while held at the swing (or current)
             // limit, nor while latched by a phase reversal (f <= 0).
             let held = xn <= slo || xn >= shi;
@@ -1289,6 +1362,11 @@ fn hybrid_block(
             pp2 = pp;
             pp = pn;
         }
+        if carry != 0.0 {
+            x[t] += carry;
+        }
+        carry = pend;
+        pend = 0.0;
         if let Some((cl, ch)) = sp.cm {
             if vp < cl || vp > ch {
                 st.cm += 1;
@@ -1310,6 +1388,31 @@ fn hybrid_block(
     st.v = v;
     st.p_prev = pp;
     st.p_prev2 = pp2;
+    st.pend = carry;
+}
+
+/// Adds the band-limited corrections of a step's slope corners ([`blamp`]) to the drive: the
+/// step ends at `x[t]`; the two samples before it are `x[t - 1]`, `x[t - 2]` or, at the head
+/// of a block, the newest samples of the clamp's history (not yet shaped: the clamp runs
+/// after the block); the correction of the next sample is returned, to add once it exists.
+#[inline]
+fn add_corners(r: &Stepped, x: &mut [f64], t: usize, xh: &mut [f64; WINDOW - 1]) -> f64 {
+    const H: usize = WINDOW - 1;
+    let mut next = 0.0;
+    for c in &r.corners[..r.n] {
+        let (a, b) = (blamp(c.u), blep2_at(c.u));
+        let w: [f64; 4] = std::array::from_fn(|i| c.d * a[i] + c.c * b[i]);
+        x[t] += w[2];
+        next += w[3];
+        for (back, wb) in [(1, w[1]), (2, w[0])] {
+            if t >= back {
+                x[t - back] += wb;
+            } else {
+                xh[H + t - back] += wb;
+            }
+        }
+    }
+    next
 }
 
 /// Output clipper with [`LOOKAHEAD`] samples of lookahead: writes y[n - LOOKAHEAD] at

@@ -11,7 +11,7 @@ pub const ELEMENTARY_CHARGE: f64 = 1.602_176_634e-19;
 
 /// Thermal voltage `k T / q` at `kelvin`, V.
 pub fn thermal_voltage(kelvin: f64) -> f64 {
-    crate::noise::BOLTZMANN * kelvin / ELEMENTARY_CHARGE
+    crate::budget::BOLTZMANN * kelvin / ELEMENTARY_CHARGE
 }
 
 /// Figures of one diode (SI units).

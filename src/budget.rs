@@ -1,5 +1,6 @@
-//! Analytic noise budget: every noise source of a patch, carried to each output through the
-//! small-signal gains of the network, with no simulation.
+//! Analytic noise budget (the paper figure; the engine's noise *generators*, which render
+//! noise, are [`crate::engine`]'s `noise` module): every noise source of a patch, carried to
+//! each output through the small-signal gains of the network, with no simulation.
 //!
 //! This is the paper half of railsong's noise feature. Its totals are defined so that they can
 //! be set beside the rms of a simulated render's output noise measured over the same band: the
@@ -42,6 +43,19 @@
 //!   `Rser` included;
 //! - each op-amp stage's gains times `1 / (1 + NG / A(f))`: `G0 / (1 + j f NG / GBW)`.
 //!
+//! # Network stages
+//! A network stage is read from the patch's one circuit
+//! ([`crate::circuit::build::patch_circuit`], the circuit `response` and `check` solve):
+//! every resistor of the stage (a pot's two track segments, a diode's series resistance)
+//! with its thermal noise, labelled by its key (`stages.NAME.parts[2]`,
+//! `stages.NAME.parts[4].lower`), every capacitor, every diode junction as its small-signal
+//! conductance at the patch's rest (DC) point with its shot noise `sqrt(2 q I)` at that
+//! current (Schottky, 1918), and every op-amp with its `en` and its `in` into each input
+//! (`stages.NAME.amps[0] en`, `in+`, `in-`). What the network reads is loaded by it, as in
+//! `response`. The shorthand stages keep their own netlist above (their labels name the
+//! shorthand keys, `inputs[2].r`, `feedback.r`); the two agree on the same circuit
+//! (`tests/network_examples.rs`).
+//!
 //! # Band
 //! Spot densities are `|H(1 kHz)|` times the source density at 1 kHz. Band powers are
 //! `d^2 (integral of |H|^2 df + fc * integral of |H|^2 / f df)`; with a flat gain these are the
@@ -68,6 +82,7 @@ use rustfft::num_complex::Complex;
 use serde::Serialize;
 
 use crate::model::{Node, Patch, StageKind};
+use crate::parts::diodes::ELEMENTARY_CHARGE;
 use crate::parts::taper;
 
 type C = Complex<f64>;
@@ -201,6 +216,10 @@ enum Imp {
     Series(f64, f64),
     /// A resistor with a capacitor across it (a feedback element).
     Parallel(f64, f64),
+    /// A capacitor (a network's part).
+    Cap(f64),
+    /// A conductance (a network's diode at its rest point), S.
+    G(f64),
 }
 
 impl Imp {
@@ -210,6 +229,8 @@ impl Imp {
             Imp::R(r) => real(r),
             Imp::Series(r, c) => C::new(r, -1.0 / (w * c)),
             Imp::Parallel(r, c) => real(r) / C::new(1.0, w * r * c),
+            Imp::Cap(c) => C::new(0.0, -1.0 / (w * c)),
+            Imp::G(g) => real(1.0 / g),
         }
     }
     /// Norton current of the resistor's series noise voltage, per volt: `1 / Z` when the
@@ -217,7 +238,7 @@ impl Imp {
     fn norton(self, f: f64) -> C {
         match self {
             Imp::R(r) | Imp::Parallel(r, _) => real(1.0 / r),
-            Imp::Series(..) => real(1.0) / self.z(f),
+            Imp::Series(..) | Imp::Cap(_) | Imp::G(_) => real(1.0) / self.z(f),
         }
     }
 }
@@ -235,7 +256,7 @@ struct Branch {
 struct Amp {
     out: usize,
     plus: Option<usize>,
-    minus: usize,
+    minus: Option<usize>,
     gbw: f64,
     a0: Option<f64>,
     en: Option<usize>,
@@ -315,11 +336,29 @@ impl Netlist {
     fn resistor(&mut self, a: Option<usize>, b: Option<usize>, imp: Imp, label: String, t: f64) {
         let r = match imp {
             Imp::R(r) | Imp::Series(r, _) | Imp::Parallel(r, _) => r,
+            Imp::Cap(_) => 0.0,
+            Imp::G(g) => 1.0 / g,
         };
         if a.is_none() && b.is_none() {
             return;
         }
         let noise = self.register(label, johnson_density(r, t), 0.0);
+        self.branches.push(Branch { a, b, imp, noise });
+    }
+
+    /// A branch with a noise source of its own (`density`: a voltage in series with it), or
+    /// none (a capacitor).
+    fn branch(
+        &mut self,
+        a: Option<usize>,
+        b: Option<usize>,
+        imp: Imp,
+        noise: Option<(String, f64)>,
+    ) {
+        if a.is_none() && b.is_none() {
+            return;
+        }
+        let noise = noise.and_then(|(label, d)| self.register(label, d, 0.0));
         self.branches.push(Branch { a, b, imp, noise });
     }
 
@@ -350,7 +389,23 @@ impl Netlist {
         let mut rth: Vec<f64> = Vec::with_capacity(n);
         let mut stage_notes: Vec<Vec<String>> = Vec::with_capacity(n);
         let mut upstream: Vec<Vec<bool>> = Vec::with_capacity(n);
-        for stage in &patch.stages {
+        // Network stages come from the patch's one circuit (`circuit::build::patch_circuit`,
+        // with its rest point for the diodes): each of its nodes becomes an unknown when
+        // first met; sources are ideal (as for the shorthand), a shorthand stage's output is
+        // its unknown here.
+        let whole = patch
+            .stages
+            .iter()
+            .any(|s| matches!(s.kind, StageKind::Network(_)))
+            .then(|| crate::response::node_gains(patch, &[]));
+        let mut node_map: Vec<Option<Option<usize>>> = Vec::new();
+        if let Some(Ok(ng)) = &whole {
+            node_map = vec![None; ng.circuit.circuit.nodes.len()];
+            for &k in ng.circuit.sources.iter().chain(&ng.circuit.source_nodes) {
+                node_map[k] = Some(None);
+            }
+        }
+        for (si, stage) in patch.stages.iter().enumerate() {
             let key = format!("stages.{}", stage.name);
             let node_of = |node: Node, outs: &Vec<Option<usize>>| match node {
                 Node::Source(_) => None,
@@ -437,7 +492,7 @@ impl Netlist {
                     net.amps.push(Amp {
                         out,
                         plus: None,
-                        minus,
+                        minus: Some(minus),
                         gbw: part.map_or(f64::INFINITY, |p| p.gbw),
                         a0: part.and_then(|p| p.a0),
                         en,
@@ -487,7 +542,7 @@ impl Netlist {
                     net.amps.push(Amp {
                         out,
                         plus,
-                        minus,
+                        minus: Some(minus),
                         gbw: part.map_or(f64::INFINITY, |p| p.gbw),
                         a0: part.and_then(|p| p.a0),
                         en,
@@ -510,7 +565,7 @@ impl Netlist {
                     net.amps.push(Amp {
                         out,
                         plus,
-                        minus: out,
+                        minus: Some(out),
                         gbw: part.map_or(f64::INFINITY, |p| p.gbw),
                         a0: part.and_then(|p| p.a0),
                         en,
@@ -552,12 +607,29 @@ impl Netlist {
                         0.0
                     };
                 }
-                StageKind::Network(_) => {
-                    notes.push(format!(
-                        "{key}: network stages are not in the analytic budget yet (the \
-                         rendered noise figures still include every resistor and op-amp of \
-                         the shorthand stages)"
-                    ));
+                StageKind::Network(nw) => {
+                    for x in nw.reads() {
+                        mark(x);
+                    }
+                    match &whole {
+                        Some(Ok(ng)) => {
+                            out_node = net.network(ng, si, nw, &key, &mut node_map, t);
+                            if nw
+                                .parts
+                                .iter()
+                                .any(|p| matches!(p.kind, crate::model::NetPartKind::Diode(_)))
+                            {
+                                notes.push(format!(
+                                    "{key}: diodes at their small-signal conductance at the \
+                                     rest (DC) point, with their shot noise 2 q I there"
+                                ));
+                            }
+                        }
+                        _ => notes.push(format!(
+                            "{key}: the patch's circuit has no rest point, so this network \
+                             is not in the budget"
+                        )),
+                    }
                 }
             }
             if let (Some(p), Some(ng)) = (part, ng_flat) {
@@ -573,6 +645,12 @@ impl Netlist {
                 }
             }
             outs.push(out_node);
+            if let Some(Ok(ng)) = &whole {
+                let k = ng.circuit.stages[si];
+                if node_map[k].is_none() {
+                    node_map[k] = Some(out_node);
+                }
+            }
             rth.push(out_r);
             stage_notes.push(notes);
             upstream.push(up);
@@ -580,9 +658,21 @@ impl Netlist {
 
         for out in &patch.outputs {
             let key = format!("outputs.{}", out.name);
-            let from = match out.from {
-                Node::Source(_) => None,
-                Node::Stage(j) => outs[j],
+            let from = match (out.from, out.inner, &whole) {
+                // a network's inner node
+                (Node::Stage(_), Some(_), Some(Ok(ng))) => {
+                    let k = ng.circuit.outputs[net.probes.len()];
+                    let k = ng
+                        .circuit
+                        .circuit
+                        .elems
+                        .get(ng.circuit.output_elems[net.probes.len()].clone())
+                        .and_then(|e| e.iter().find(|e| e.label == "series"))
+                        .map_or(k, |e| e.a);
+                    node_map[k].flatten()
+                }
+                (Node::Source(_), _, _) => None,
+                (Node::Stage(j), _, _) => outs[j],
             };
             let mut notes = vec![format!(
                 "band {} .. {}, spot densities at {}, {t:.2} K; powers of independent sources \
@@ -640,6 +730,90 @@ impl Netlist {
         net
     }
 
+    /// Network stage `si` from the patch's circuit `ng`: every element of the stage a branch
+    /// (resistors with their thermal noise labelled `KEY.parts[i]`, capacitors, each diode
+    /// junction as its rest conductance with its shot noise), every op-amp with its `en` and
+    /// its `in` into each input. Returns the unknown of the stage's output node.
+    fn network(
+        &mut self,
+        ng: &crate::response::NodeGains,
+        si: usize,
+        nw: &crate::model::Network,
+        key: &str,
+        node_map: &mut [Option<Option<usize>>],
+        t: f64,
+    ) -> Option<usize> {
+        use crate::circuit::{ElemKind, NodeKind};
+        let pc = &ng.circuit;
+        let c = &pc.circuit;
+        let amp_outs: Vec<usize> = c.amps.iter().map(|a| a.out).collect();
+        let mut map = |k: usize, net: &mut Netlist| -> Option<usize> {
+            if let Some(m) = node_map[k] {
+                return m;
+            }
+            let m = match c.nodes[k].kind {
+                NodeKind::Free => Some(net.unknown(amp_outs.contains(&k))),
+                _ => None,
+            };
+            node_map[k] = Some(m);
+            m
+        };
+        for e in &c.elems[pc.stage_elems[si].clone()] {
+            let (a, b) = (map(e.a, self), map(e.b, self));
+            let ekey = format!("{key}.{}", e.label);
+            match e.kind {
+                ElemKind::R(r) => self.resistor(a, b, Imp::R(r), thermal_label(&ekey, r), t),
+                ElemKind::C(cap) => self.branch(a, b, Imp::Cap(cap), None),
+                ElemKind::Junction { is, nvt } => {
+                    let v = (ng.rest[e.a] - ng.rest[e.b]).min(200.0 * nvt);
+                    let x = (v / nvt).exp();
+                    let i = is * (x - 1.0);
+                    let g = is / nvt * x + crate::circuit::GMIN;
+                    // shot noise of the junction current, sqrt(2 q |I|) A/sqrt(Hz) (Schottky
+                    // 1918), as a series voltage over its conductance
+                    let dens = (2.0 * ELEMENTARY_CHARGE * i.abs()).sqrt() / g;
+                    let label = format!("{ekey} (diode, shot noise at {} rest)", fmt_eng(i, "A"));
+                    self.branch(a, b, Imp::G(g), Some((label, dens)));
+                }
+            }
+        }
+        for (j, ai) in pc.stage_amps[si].clone().enumerate() {
+            let ca = &c.amps[ai];
+            let Some(na) = nw.amps.get(j) else { continue };
+            let p = &na.part;
+            let (out, plus, minus) = (map(ca.out, self), map(ca.plus, self), map(ca.minus, self));
+            let akey = format!("{key}.amps[{j}]");
+            let en = self.register(
+                format!("{akey} en ({}, {})", na.name, p.name),
+                p.en,
+                p.en_corner,
+            );
+            self.inject(
+                plus,
+                format!("{akey} in+ ({}, {})", na.name, p.name),
+                p.inoise,
+            );
+            if minus != out {
+                self.inject(
+                    minus,
+                    format!("{akey} in- ({}, {})", na.name, p.name),
+                    p.inoise,
+                );
+            }
+            if let Some(out) = out {
+                self.amps.push(Amp {
+                    out,
+                    plus,
+                    minus,
+                    gbw: p.gbw,
+                    a0: p.a0,
+                    en,
+                });
+            }
+        }
+        map(pc.stages[si], self)
+    }
+
     /// Gains from every source to every output at frequency `f`; `None` if the network
     /// matrix is singular there.
     fn transfers(&self, f: f64) -> Option<Vec<Transfer>> {
@@ -671,7 +845,9 @@ impl Netlist {
             if let Some(p) = amp.plus {
                 y[r * n + p] -= real(1.0);
             }
-            y[r * n + amp.minus] += real(1.0);
+            if let Some(m) = amp.minus {
+                y[r * n + m] += real(1.0);
+            }
             if let Some(id) = amp.en {
                 b.push((r, id, real(1.0)));
             }
