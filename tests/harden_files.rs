@@ -150,7 +150,9 @@ fn slow_patch(dir: &Path) -> PathBuf {
 
 fn spawn_render(patch: &Path, out: &Path) -> Child {
     bin()
+        // --quiet: a slow machine may print a progress line before the error this checks
         .args([
+            "--quiet",
             "render",
             patch.to_str().unwrap(),
             "--out",
