@@ -87,6 +87,183 @@ pub struct GroupPlan {
     pub col: Vec<Option<usize>>,
     /// The linear fast path (none when an op-amp is explicit).
     pub fast: Option<FastPath>,
+    /// Circuit noise of the group (none: noise off, or nothing in the group makes noise).
+    pub noise: Option<GroupNoise>,
+}
+
+/// Circuit noise of one group, as extra inputs of its step. Per step the group takes a
+/// vector `w` of `n_kcl + na` draws: `n_kcl` unit-density white draws `g` that make the
+/// block nodes' noise currents `i = chol g` (every resistor's thermal noise as its Norton
+/// current into its two nodes, every op-amp's current noise into its input nodes; `chol`
+/// the Cholesky factor of their one-sided covariance density, A^2/Hz), then each op-amp's
+/// voltage noise `en` (V, white and 1/f), which enters beside its offset.
+#[derive(Debug, Clone, PartialEq)]
+pub struct GroupNoise {
+    /// Lower-triangular factor of the node-current covariance density (row-major,
+    /// `n_kcl x n_kcl`), A/sqrt(Hz).
+    pub chol: Vec<f64>,
+    /// The fast path's map from `w` to the unknowns (row-major, `ny x (n_kcl + na)`):
+    /// unit-current columns times `chol`, then each op-amp's `en` column.
+    pub ay_w: Vec<f64>,
+    /// Each op-amp's `en` (white density, V/sqrt(Hz)) and `en sqrt(fc)` (its 1/f part).
+    pub en: Vec<(f64, f64)>,
+}
+
+/// Noise densities of one op-amp of a circuit: `en` (V/sqrt(Hz)), its 1/f corner (Hz) and
+/// `in` (A/sqrt(Hz)).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct AmpNoise {
+    /// White voltage noise density, V/sqrt(Hz).
+    pub en: f64,
+    /// 1/f corner of the voltage noise, Hz.
+    pub fc: f64,
+    /// Current noise density at each input, A/sqrt(Hz).
+    pub inoise: f64,
+}
+
+/// Cholesky factor of a positive semi-definite matrix (row-major `n x n`), lower
+/// triangular; a pivot at or below a relative `1e-14` of the largest diagonal (a node no
+/// noise reaches, or a combination of nodes that is noise-free) leaves its column zero.
+pub fn cholesky_psd(s: &[f64], n: usize) -> Vec<f64> {
+    let mut l = vec![0.0; n * n];
+    let dmax = (0..n).map(|i| s[i * n + i]).fold(0.0f64, f64::max);
+    let tiny = 1e-14 * dmax;
+    for j in 0..n {
+        let mut d = s[j * n + j];
+        for k in 0..j {
+            d -= l[j * n + k] * l[j * n + k];
+        }
+        if d <= tiny {
+            continue;
+        }
+        let dj = d.sqrt();
+        l[j * n + j] = dj;
+        for i in j + 1..n {
+            let mut x = s[i * n + j];
+            for k in 0..j {
+                x -= l[i * n + k] * l[j * n + k];
+            }
+            l[i * n + j] = x / dj;
+        }
+    }
+    l
+}
+
+/// Add circuit noise to a compiled plan: `four_kt` (4 k T, V^2/(Hz ohm)) for every
+/// resistor, `amps[i]` the densities of circuit op-amp `i`. A group with no noise source
+/// keeps `noise: None`. The fast path's noise columns come from the factor the fast path
+/// was compiled with.
+pub fn add_noise(plan: &mut CircuitPlan, four_kt: f64, amps: &[AmpNoise]) {
+    let c = &plan.circuit;
+    let nnodes = c.nodes.len();
+    let zeros_vn = vec![0.0; nnodes];
+    for gp in &mut plan.groups {
+        let nk = gp.n_kcl;
+        let na = gp.amps.len();
+        let ny = gp.ny();
+        let kcl = |n: usize| gp.col[n].filter(|&i| i < nk);
+        let mut s = vec![0.0; nk * nk];
+        for &ei in &gp.elems {
+            let e = &c.elems[ei];
+            if let ElemKind::R(r) = e.kind {
+                if !(r > 0.0 && r.is_finite()) {
+                    continue;
+                }
+                let g = four_kt / r;
+                let (a, b) = (kcl(e.a), kcl(e.b));
+                for (x, sx) in [(a, 1.0), (b, -1.0)] {
+                    for (y, sy) in [(a, 1.0), (b, -1.0)] {
+                        if let (Some(x), Some(y)) = (x, y) {
+                            s[x * nk + y] += sx * sy * g;
+                        }
+                    }
+                }
+            }
+        }
+        for (ai, a) in c.amps.iter().enumerate() {
+            let inoise = amps.get(ai).map_or(0.0, |n| n.inoise.max(0.0));
+            for pin in [a.plus, a.minus] {
+                if let Some(x) = kcl(pin) {
+                    s[x * nk + x] += inoise * inoise;
+                }
+            }
+        }
+        let en: Vec<(f64, f64)> = gp
+            .amps
+            .iter()
+            .map(|ac| {
+                let n = amps.get(ac.amp).copied().unwrap_or(AmpNoise {
+                    en: 0.0,
+                    fc: 0.0,
+                    inoise: 0.0,
+                });
+                let e = n.en.max(0.0);
+                (e, e * n.fc.max(0.0).sqrt())
+            })
+            .collect();
+        if s.iter().all(|&x| x == 0.0) && en.iter().all(|&(w, f)| w == 0.0 && f == 0.0) {
+            continue;
+        }
+        let chol = cholesky_psd(&s, nk);
+        let nw = nk + na;
+        let mut ay_w = vec![0.0; ny * nw];
+        if gp.fast.is_some() {
+            // the fast path's factor (op-amp rows as compiled), unit sources one at a time
+            let outs = vec![(1.0, 0.0); na];
+            let junc0 = vec![(0.0, 0.0); gp.junctions.len()];
+            let zj = vec![0.0; gp.caps.len()];
+            let rows0: Vec<AmpRow> = gp
+                .amps
+                .iter()
+                .map(|a| AmpRow::Step {
+                    k: a.a1p,
+                    b: a.b,
+                    r: 0.0,
+                    plus_fixed: None,
+                })
+                .collect();
+            let lin0 = Lin {
+                rows: &rows0,
+                outs: &outs,
+                junc: &junc0,
+                caps: Some(&zj),
+                consts: false,
+            };
+            let mut lu = vec![0.0; ny * ny];
+            let mut rhs = vec![0.0; ny];
+            let mut perm = vec![0; ny];
+            let mut tmp = vec![0.0; ny];
+            assemble(c, gp, &lin0, &zeros_vn, &mut lu, &mut rhs);
+            if lu_factor(&mut lu, ny, &mut perm) {
+                // unit current into each block node
+                let mut unit = vec![0.0; ny * nk];
+                for r in 0..nk {
+                    rhs.fill(0.0);
+                    rhs[r] = 1.0;
+                    lu_solve(&lu, ny, &perm, &mut rhs, &mut tmp);
+                    for i in 0..ny {
+                        unit[i * nk + r] = rhs[i];
+                    }
+                }
+                for i in 0..ny {
+                    for q in 0..nk {
+                        ay_w[i * nw + q] =
+                            (q..nk).map(|r| unit[i * nk + r] * chol[r * nk + q]).sum();
+                    }
+                }
+                // en of op-amp j beside its offset: `k vos` in its row
+                for (j, ac) in gp.amps.iter().enumerate() {
+                    rhs.fill(0.0);
+                    rhs[gp.nodes.len() + j] = ac.a1p;
+                    lu_solve(&lu, ny, &perm, &mut rhs, &mut tmp);
+                    for i in 0..ny {
+                        ay_w[i * nw + nk + j] = rhs[i];
+                    }
+                }
+            }
+        }
+        gp.noise = Some(GroupNoise { chol, ay_w, en });
+    }
 }
 
 impl GroupPlan {
@@ -341,6 +518,7 @@ pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
             known,
             col,
             fast: None,
+            noise: None,
         };
         let ny = gp.ny();
         let na = gp.amps.len();

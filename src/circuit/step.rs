@@ -54,6 +54,11 @@ pub struct GroupState {
     sens_junc: Vec<(f64, f64)>,
     zvn: Vec<f64>,
     zj: Vec<f64>,
+    /// This step's noise draws (see [`super::plan::GroupNoise`]; empty: no noise), set by
+    /// the caller before each step.
+    pub w: Vec<f64>,
+    /// Block nodes' noise currents of this step, A.
+    cur: Vec<f64>,
 }
 
 impl GroupState {
@@ -83,6 +88,12 @@ impl GroupState {
             sens_junc: vec![(0.0, 0.0); gp.junctions.len()],
             zvn: vec![0.0; nnodes],
             zj: vec![0.0; gp.caps.len()],
+            w: if gp.noise.is_some() {
+                vec![0.0; gp.n_kcl + na]
+            } else {
+                Vec::new()
+            },
+            cur: vec![0.0; if gp.noise.is_some() { gp.n_kcl } else { 0 }],
         }
     }
 
@@ -420,13 +431,24 @@ fn fast_step(
         }
         st.ynew[i] = s;
     }
+    if let (Some(gn), false) = (&gp.noise, st.w.is_empty()) {
+        let nw = st.w.len();
+        for (i, yi) in st.ynew.iter_mut().enumerate() {
+            let ri = &gn.ay_w[i * nw..(i + 1) * nw];
+            let mut s = 0.0;
+            for (a, b) in ri.iter().zip(&st.w) {
+                s += a * b;
+            }
+            *yi += s;
+        }
+    }
     let nn = gp.nodes.len();
     let y = &st.ynew;
     for (j, ac) in gp.amps.iter().enumerate() {
         let a = &c.amps[ac.amp];
         let v = y[nn + j];
         let vp = val(gp, vn, y, a.plus);
-        let vd = vp - val(gp, vn, y, a.minus) + a.vos;
+        let vd = vp - val(gp, vn, y, a.minus) + a.vos + en_of(gp, st, j);
         let sh = &a.shaper;
         let mut ok = vd.abs() <= FAST_VD * a.vov && v >= sh.lo + sh.w && v <= sh.hi - sh.w;
         if let Some((cl, ch)) = a.cm {
@@ -445,6 +467,49 @@ fn fast_step(
     }
     commit(c, gp, vn, st);
     true
+}
+
+/// The voltage noise of op-amp `j` of the group at this step (0 without noise).
+#[inline]
+fn en_of(gp: &GroupPlan, st: &GroupState, j: usize) -> f64 {
+    if st.w.is_empty() {
+        0.0
+    } else {
+        st.w[gp.n_kcl + j]
+    }
+}
+
+/// Add this step's noise to an assembled right-hand side: the block nodes' currents
+/// (`st.cur`, from [`noise_currents`]) and each op-amp's `en` beside its offset.
+fn add_noise_rhs(gp: &GroupPlan, st: &mut GroupState) {
+    if st.w.is_empty() {
+        return;
+    }
+    for (r, i) in st.rhs.iter_mut().zip(&st.cur) {
+        *r += i;
+    }
+    let nn = gp.nodes.len();
+    for j in 0..gp.amps.len() {
+        let en = st.w[gp.n_kcl + j];
+        st.rhs[nn + j] += match st.rows[j] {
+            AmpRow::Step { k, .. } => k * en,
+            AmpRow::Dc { .. } => en,
+            AmpRow::Pin(_) => 0.0,
+        };
+    }
+}
+
+/// This step's block-node noise currents `chol g` into `st.cur`.
+fn noise_currents(gp: &GroupPlan, st: &mut GroupState) {
+    let Some(gn) = &gp.noise else { return };
+    if st.w.is_empty() {
+        return;
+    }
+    let nk = gp.n_kcl;
+    for (r, cr) in st.cur.iter_mut().enumerate() {
+        let row = &gn.chol[r * nk..r * nk + r + 1];
+        *cr = row.iter().zip(&st.w).map(|(a, b)| a * b).sum();
+    }
 }
 
 /// Write the solution in `st.ynew` to the node array and advance the state.
@@ -468,7 +533,7 @@ fn commit(c: &Circuit, gp: &GroupPlan, vn: &mut [f64], st: &mut GroupState) {
             Some((cl, ch)) if !a.reversal => vn[a.plus].clamp(cl, ch.max(cl)),
             _ => vn[a.plus],
         };
-        let vd = vp - vn[a.minus] + a.vos;
+        let vd = vp - vn[a.minus] + a.vos + en_of(gp, st, j);
         st.z[nc + j] = v;
         st.z[nc + na + j] = vd + ac.b * v;
     }
@@ -526,6 +591,7 @@ fn full_step(
     let nc = gp.caps.len();
     let na = gp.amps.len();
     let delta_inv = 1.0 / CM_DELTA;
+    noise_currents(gp, st);
     // the reversal factor from the previous values, fixed for the step
     for (j, ac) in gp.amps.iter().enumerate() {
         let a = &c.amps[ac.amp];
@@ -584,7 +650,7 @@ fn full_step(
                 _ => None,
             };
             let pe = plus_fixed.unwrap_or(vp);
-            let pg = pe - val(gp, vn, &st.y, a.minus) + a.vos + bd * vg;
+            let pg = pe - val(gp, vn, &st.y, a.minus) + a.vos + en_of(gp, st, j) + bd * vg;
             let z0 = (f * (0.5 * (pg + p0) - bd * v0) / a.vov).abs();
             let phi = phi_eff(z0, ac.kh * f * bd);
             let g = f * phi;
@@ -611,6 +677,7 @@ fn full_step(
                 consts: true,
             };
             assemble(c, gp, &lin, vn, &mut st.m, &mut st.rhs);
+            add_noise_rhs(gp, st);
             if !lu_factor(&mut st.m, ny, &mut st.perm) {
                 return Err(CircuitError::Singular {
                     what: gp.describe(c),

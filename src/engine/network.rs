@@ -3,6 +3,7 @@
 
 use crate::circuit::plan::CircuitPlan;
 use crate::circuit::step::CircuitState;
+use crate::engine::noise::{stream_seed, NoiseStream, FLICKER_MIN_RATE};
 
 /// One input node of a network, read from an engine buffer.
 #[derive(Debug, Clone, PartialEq)]
@@ -41,6 +42,21 @@ pub struct NetPlan {
     pub rest: CircuitState,
     /// Rest value of the output, V.
     pub rest_out: f64,
+    /// Seed of the network's noise streams (each group's and op-amp's stream derives its
+    /// own from it); used only when a group has noise.
+    pub noise_seed: u64,
+}
+
+/// Noise streams of one group of a network: the node draws (unit density, `n_kcl` per
+/// step, interleaved) and each op-amp's voltage noise, filled a block at a time.
+#[derive(Debug, Clone)]
+pub(crate) struct GroupNoiseRun {
+    group: usize,
+    nk: usize,
+    nodes: Option<NoiseStream>,
+    node_buf: Vec<f64>,
+    amps: Vec<Option<NoiseStream>>,
+    amp_buf: Vec<Vec<f64>>,
 }
 
 /// Running state of one network stage.
@@ -54,6 +70,8 @@ pub(crate) struct NetRun {
     pub ex_vals: Vec<Vec<f64>>,
     /// Lowest and highest output of every op-amp (after its clamp), V.
     pub peaks: Vec<(f64, f64)>,
+    /// Noise streams of the groups that have noise.
+    pub(crate) noise: Vec<GroupNoiseRun>,
 }
 
 impl NetRun {
@@ -66,6 +84,7 @@ impl NetRun {
             ex_prev: vec![0.0; np.exports.len()],
             ex_vals: vec![vec![0.0; block]; np.exports.len()],
             peaks: vec![(f64::INFINITY, f64::NEG_INFINITY); np.circuit.circuit.amps.len()],
+            noise: noise_runs(np, block),
         };
         r.reset(np);
         r
@@ -83,7 +102,55 @@ impl NetRun {
             *p = np.rest.vn[n];
         }
         self.peaks.fill((f64::INFINITY, f64::NEG_INFINITY));
+        for g in &mut self.noise {
+            if let Some(s) = &mut g.nodes {
+                s.reset();
+            }
+            for s in g.amps.iter_mut().flatten() {
+                s.reset();
+            }
+        }
     }
+}
+
+/// The noise streams of a network's groups, as the stage kernel makes its own: white at
+/// the internal rate (bandwidth half that rate), the 1/f part at a rate of at least
+/// [`FLICKER_MIN_RATE`], held.
+fn noise_runs(np: &NetPlan, block: usize) -> Vec<GroupNoiseRun> {
+    let rate = 1.0 / np.circuit.h;
+    let hold = ((rate / FLICKER_MIN_RATE).floor() as usize).max(1);
+    let mut v = Vec::new();
+    for (gi, gp) in np.circuit.groups.iter().enumerate() {
+        let Some(gn) = &gp.noise else { continue };
+        let nk = gp.n_kcl;
+        let nodes = (nk > 0 && gn.chol.iter().any(|&x| x != 0.0)).then(|| {
+            let seed = stream_seed(np.noise_seed, &format!("group{gi}"), "nodes");
+            NoiseStream::with_hold(1.0, 0.0, rate, seed, block * nk, hold)
+        });
+        let amps: Vec<Option<NoiseStream>> = gp
+            .amps
+            .iter()
+            .zip(&gn.en)
+            .map(|(ac, &(white, flicker))| {
+                let name = &np.circuit.circuit.amps[ac.amp].name;
+                let seed = stream_seed(np.noise_seed, name, "en");
+                let s = NoiseStream::with_hold(white, flicker, rate, seed, block, hold);
+                (!s.is_silent()).then_some(s)
+            })
+            .collect();
+        v.push(GroupNoiseRun {
+            group: gi,
+            nk,
+            node_buf: vec![0.0; if nodes.is_some() { block * nk } else { 0 }],
+            nodes,
+            amp_buf: amps
+                .iter()
+                .map(|s| vec![0.0; if s.is_some() { block } else { 0 }])
+                .collect(),
+            amps,
+        });
+    }
+    v
 }
 
 /// Run one block of a network stage: inputs from `bufs`, the output into `own` (one
@@ -103,10 +170,31 @@ pub(crate) fn net_block(
 ) -> Result<(), crate::circuit::plan::CircuitError> {
     let b = own.len();
     let mut err = None;
+    for g in &mut nr.noise {
+        if let Some(s) = &mut g.nodes {
+            s.fill(&mut g.node_buf[..b * g.nk]);
+        }
+        for (s, buf) in g.amps.iter_mut().zip(&mut g.amp_buf) {
+            if let Some(s) = s {
+                s.fill(&mut buf[..b]);
+            }
+        }
+    }
     for t in 0..b {
         if err.is_none() {
             for inp in &np.inputs {
                 nr.state.vn[inp.cnode] = inp.gain * bufs[inp.buf][hist - inp.delay + t];
+            }
+            for g in &nr.noise {
+                let w = &mut nr.state.groups[g.group].w;
+                if g.nodes.is_some() {
+                    w[..g.nk].copy_from_slice(&g.node_buf[t * g.nk..(t + 1) * g.nk]);
+                }
+                for (j, (s, buf)) in g.amps.iter().zip(&g.amp_buf).enumerate() {
+                    if s.is_some() {
+                        w[g.nk + j] = buf[t];
+                    }
+                }
             }
             if let Err(e) = nr.state.step(&np.circuit, fast, t0 + t as f64 * h) {
                 err = Some(e);

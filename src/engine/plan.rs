@@ -439,7 +439,30 @@ fn compile_network(
         stage: name.clone(),
         message: e.to_string(),
     };
-    let plan = crate::circuit::plan::compile(nc.circuit, h).map_err(circ_err)?;
+    let mut plan = crate::circuit::plan::compile(nc.circuit, h).map_err(circ_err)?;
+    // circuit noise: every resistor's thermal noise, each op-amp's en (with its 1/f part)
+    // and in, as extra inputs of its group's step (see `circuit::plan::GroupNoise`)
+    if patch.noise {
+        let four_kt = if patch.temperature.is_finite() && patch.temperature > 0.0 {
+            4.0 * crate::budget::BOLTZMANN * patch.temperature
+        } else {
+            0.0
+        };
+        let nonneg = |x: f64| if x.is_finite() && x > 0.0 { x } else { 0.0 };
+        let amps: Vec<crate::circuit::plan::AmpNoise> = match &patch.stages[i].kind {
+            StageKind::Network(net) => net
+                .amps
+                .iter()
+                .map(|a| crate::circuit::plan::AmpNoise {
+                    en: nonneg(a.part.en),
+                    fc: nonneg(a.part.en_corner),
+                    inoise: nonneg(a.part.inoise),
+                })
+                .collect(),
+            _ => Vec::new(),
+        };
+        crate::circuit::plan::add_noise(&mut plan, four_kt, &amps);
+    }
     let mut inputs = Vec::new();
     let mut lat_in = 0;
     for &(cnode, r, gain) in &nc.inputs {
@@ -484,6 +507,7 @@ fn compile_network(
             }
         }
     }
+    let noise_seed = super::noise::stream_seed(patch.seed, &format!("stages.{name}"), "circuit");
     Ok(NetPlan {
         name,
         node: buf,
@@ -494,6 +518,7 @@ fn compile_network(
         exports,
         rest,
         rest_out,
+        noise_seed,
         circuit: plan,
     })
 }
