@@ -150,3 +150,48 @@ fn network_noise_is_seeded_and_off_when_noise_is_off() {
     assert!(hi - lo < 1e-12, "{lo} .. {hi}");
     assert!(rms_in(&a[0][12_000..], 20.0, 20e3) > 1e-7);
 }
+
+#[test]
+fn fast_path_and_nonlinear_step_agree_with_noise_on() {
+    // The same noise draws enter the fast map and the nonlinear step (they are made before
+    // the path decision): the two paths agree within the engine's 1 uV fast-path criterion
+    // (engine module docs), with a tone through the filter.
+    let text = SVF.replace(
+        "wave = \"dc\"\nlevel = \"0 V\"",
+        "wave = \"sine\"\nfreq = \"1 kHz\"\namp = \"1 Vpk\"",
+    );
+    let mut p = parse(&text);
+    p.length = 0.2;
+    let plan = railsong::engine::compile(&p).expect("compiles");
+    let frames = p.frames();
+    let out = |fast: bool| {
+        let mut e = railsong::engine::Engine::new(&plan);
+        e.set_fast_path(fast);
+        let mut y = vec![0.0; frames];
+        e.process(&mut [y.as_mut_slice()]);
+        y
+    };
+    let (yf, ys) = (out(true), out(false));
+    let worst = yf
+        .iter()
+        .zip(&ys)
+        .map(|(a, b)| (a - b).abs())
+        .fold(0.0, f64::max);
+    println!("fast vs nonlinear step with noise: {worst:e} V");
+    assert!(worst < 1e-6, "{worst}");
+    let mut q = p.clone();
+    q.noise = false;
+    let quiet = {
+        let plan = railsong::engine::compile(&q).expect("compiles");
+        let mut e = railsong::engine::Engine::new(&plan);
+        let mut y = vec![0.0; frames];
+        e.process(&mut [y.as_mut_slice()]);
+        y
+    };
+    let diff = yf
+        .iter()
+        .zip(&quiet)
+        .map(|(a, b)| (a - b).abs())
+        .fold(0.0, f64::max);
+    assert!(diff > 1e-7, "{diff}");
+}
