@@ -56,19 +56,6 @@ pub(crate) fn cmd_noise(
         say!();
         say_raw!("{}", railsong::budget::format_budget(b));
         let k = patch.outputs.iter().position(|o| o.name == b.output);
-        // network stages render no circuit noise yet: no like-for-like figure to show
-        let through_network = k.is_some_and(|k| {
-            measure::upstream(&patch, patch.outputs[k].from)
-                .into_iter()
-                .any(|s| matches!(patch.stages[s].kind, railsong::model::StageKind::Network(_)))
-        });
-        if through_network {
-            say!(
-                "simulated: not compared: network stages do not render circuit noise yet (the \
-                 budget above is analytic)"
-            );
-            continue;
-        }
         let simulated = k
             .and_then(|k| sim.run.outputs.get(k))
             .map(|o| measure::noise_figures(&o.samples, sim.run.rate));
