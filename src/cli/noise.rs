@@ -66,6 +66,27 @@ pub(crate) fn cmd_noise(
                 fmt_eng(idle.length, "s"),
                 20.0 * (n / b.total_rms).log10()
             );
+            // The budget is small-signal: an op-amp that sits at its swing at idle (a
+            // comparator, a latched stage) passes no noise in the render.
+            let held: Vec<&str> = k
+                .map(|k| measure::upstream(&patch, patch.outputs[k].from))
+                .unwrap_or_default()
+                .into_iter()
+                .flat_map(|s| {
+                    let name = &patch.stages[s].name;
+                    sim.run.events.iter().filter(move |e| {
+                        e.clip_s > 0.0
+                            && (e.stage == *name || e.stage.starts_with(&format!("{name}.")))
+                    })
+                })
+                .map(|e| e.stage.as_str())
+                .collect();
+            if !held.is_empty() {
+                say!(
+                    "note: {} at its swing in the idle render: the budget's small-signal gains do not hold there",
+                    held.join(", ")
+                );
+            }
         }
     }
     Ok(())
