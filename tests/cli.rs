@@ -172,6 +172,30 @@ fn noise_budget_json_adds_up_in_power() {
     assert_eq!(out.status.code(), Some(2));
 }
 
+// A network stage's idle render carries its circuit noise: `noise` compares it with the
+// analytic budget (within 0.3 dB: a 2 s render's band estimate and the budget's model), and
+// names a comparator held at its swing, whose small-signal budget does not hold.
+#[test]
+fn noise_compares_network_renders_with_the_budget() {
+    let out = railsong(&["noise", "patches/net-sallen-key.toml"]);
+    assert!(out.status.success());
+    let text = String::from_utf8_lossy(&out.stdout);
+    let line = text
+        .lines()
+        .find(|l| l.starts_with("simulated:"))
+        .unwrap_or_else(|| panic!("{text}"));
+    let db: f64 = line
+        .rsplit('(')
+        .next()
+        .and_then(|t| t.split_whitespace().next())
+        .and_then(|t| t.parse().ok())
+        .unwrap_or_else(|| panic!("{line}"));
+    assert!(db.abs() < 0.3, "{line}");
+    let out = railsong(&["noise", "patches/net-schmitt-gate.toml"]);
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(text.contains("at its swing in the idle render"), "{text}");
+}
+
 // SNR re 10 Vpp (common practice for modular audio): 20 log10(5/sqrt2 V / noise rms); the
 // A-weighted noise of a flat-ish hiss is lower than the unweighted (IEC 61672-1 curve).
 #[test]
