@@ -87,7 +87,9 @@ pub const SETTLE_TIME_CONSTANTS: f64 = 14.0;
 /// The slowest time constant of the circuit, s: every coupling capacitor with the resistance
 /// it charges through (its input resistor plus, from a pot, the largest Thevenin resistance
 /// of the track, a quarter of it), every capacitor across a feedback resistor with that
-/// resistor, and every op-amp's closed-loop pole `noise gain / (2 pi GBW)`.
+/// resistor, every op-amp's closed-loop pole `noise gain / (2 pi GBW)`, and for a network
+/// the sum of its capacitors' open-circuit time constants
+/// ([`crate::response::capacitor_time_constants`]).
 pub fn slowest_time_constant(patch: &Patch) -> f64 {
     let source_r = |n: Node| match n {
         Node::Stage(j) => match &patch.stages[j].kind {
@@ -97,7 +99,24 @@ pub fn slowest_time_constant(patch: &Patch) -> f64 {
         Node::Source(_) => 0.0,
     };
     let mut tau: f64 = 0.0;
-    for st in &patch.stages {
+    // per stage, the sum of its capacitors' open-circuit time constants (networks only)
+    let network_tau: Option<Vec<f64>> = if patch
+        .stages
+        .iter()
+        .any(|s| matches!(s.kind, StageKind::Network(_)))
+    {
+        crate::response::capacitor_time_constants(patch)
+            .ok()
+            .map(|(w, t)| {
+                w.stage_elems
+                    .iter()
+                    .map(|r| t[r.clone()].iter().sum())
+                    .collect()
+            })
+    } else {
+        None
+    };
+    for (si, st) in patch.stages.iter().enumerate() {
         let (ng, caps) = match &st.kind {
             StageKind::InvertingSum {
                 inputs, feedback, ..
@@ -118,8 +137,17 @@ pub fn slowest_time_constant(patch: &Patch) -> f64 {
             ),
             StageKind::Follower { .. } => (1.0, Vec::new()),
             StageKind::Attenuator { .. } => (0.0, Vec::new()),
-            // a network: every RC product of its parts and each op-amp's own pole at unity
-            // noise gain (a conservative settle estimate without solving it)
+            // a network: the sum of its capacitors' open-circuit time constants (from the
+            // patch's one circuit; the slowest real pole's time constant is at most that
+            // sum), and each op-amp's own pole at unity noise gain; without a circuit
+            // solution, every RC product with the network's largest resistance
+            StageKind::Network(n) if network_tau.is_some() => {
+                for a in &n.amps {
+                    tau = tau.max(1.0 / (std::f64::consts::TAU * a.part.gbw));
+                }
+                let sum = network_tau.as_ref().map_or(0.0, |t| t[si]);
+                (0.0, vec![sum])
+            }
             StageKind::Network(n) => {
                 let rs: Vec<f64> = n
                     .parts

@@ -182,9 +182,21 @@ impl Solver {
 
     /// Every node's complex value at `hz` for a unit signal at `source` (0 Hz: DC gains).
     fn solve(&self, source: usize, hz: f64) -> Result<Vec<Complex64>, ResponseError> {
+        self.solve_driven(Some(source), None, hz)
+    }
+
+    /// Every node's complex value at `hz` with a unit signal at `source` (when given) and a
+    /// unit current injected into node `inject.0` and drawn from `inject.1` (when given);
+    /// every other source at 0.
+    fn solve_driven(
+        &self,
+        source: Option<usize>,
+        inject: Option<(usize, usize)>,
+        hz: f64,
+    ) -> Result<Vec<Complex64>, ResponseError> {
         let (c, col, n) = (&self.w.circuit, &self.col, self.n);
         let zero = Complex64::new(0.0, 0.0);
-        let src = self.w.sources[source];
+        let src = source.map_or(usize::MAX, |k| self.w.sources[k]);
         let s = Complex64::new(0.0, std::f64::consts::TAU * hz);
         let mut a = vec![zero; n * n];
         let mut b = vec![zero; n];
@@ -234,6 +246,13 @@ impl Solver {
                 }
             }
         }
+        if let Some((into, from)) = inject {
+            for (node, i) in [(into, 1.0), (from, -1.0)] {
+                if col[node] != usize::MAX && !self.amp_out[node] {
+                    b[col[node]] += Complex64::new(i, 0.0);
+                }
+            }
+        }
         if !csolve(&mut a, &mut b, n) {
             return Err(ResponseError::Singular { hz });
         }
@@ -275,6 +294,25 @@ pub fn response(patch: &Patch, source: usize, freqs: &[f64]) -> Result<Response,
         );
     }
     Ok(Response { outputs })
+}
+
+/// Open-circuit time constant of every capacitor of the patch's one circuit, s, indexed
+/// like `circuit.elems` (0 for the other parts): the capacitance times the resistance it
+/// sees at 0 Hz with every other capacitor open, every source at rest and each op-amp as
+/// its DC gain (the zero-value time-constant method: Gray, Hurst, Lewis and Meyer,
+/// "Analysis and Design of Analog Integrated Circuits", 2009, section 7.3). Their sum over
+/// the capacitors of a section is the `s` coefficient of its characteristic polynomial, an
+/// upper bound on the slowest time constant when the poles are real.
+pub fn capacitor_time_constants(patch: &Patch) -> Result<(PatchCircuit, Vec<f64>), ResponseError> {
+    let sv = Solver::new(patch)?;
+    let mut tau = vec![0.0; sv.w.circuit.elems.len()];
+    for (k, e) in sv.w.circuit.elems.iter().enumerate() {
+        if let ElemKind::C(x) = e.kind {
+            let v = sv.solve_driven(None, Some((e.a, e.b)), 0.0)?;
+            tau[k] = x * (v[e.a].re - v[e.b].re).abs();
+        }
+    }
+    Ok((sv.w, tau))
 }
 
 /// Static (DC, small-signal) gain from every source to every stage's output:

@@ -87,3 +87,46 @@ fn response_agrees_with_rendered_sines() {
         assert!(dph.abs() < 0.5, "{f} Hz: phase {ph} vs {}", want.phase_deg);
     }
 }
+
+// Open-circuit (zero-value) time constants [Gray, Hurst, Lewis and Meyer, "Analysis and
+// Design of Analog Integrated Circuits", 2009, sec. 7.3]: each capacitor times the
+// resistance it sees with the other capacitors open and the sources at rest. A single-supply
+// stage: the 100n input coupling capacitor sees the 1M/1M bias divider (500k: 50 ms; the
+// `+` input draws nothing), the 10u leg capacitor sees 4k7 into the inverting node, which
+// the loop holds (47 ms), the 1u output capacitor sees the 100k load behind the op-amp's
+// output (100 ms). The settle time follows their sum.
+#[test]
+fn capacitor_time_constants_are_the_textbook_rc_products() {
+    let p = patch(
+        "[patch]\nlength = \"1 s\"\n[rails]\npos = \"9 V\"\nneg = \"0 V\"\n\
+         [sources.in]\nwave = \"sine\"\nfreq = \"200 Hz\"\namp = \"0.1 V\"\n\
+         [stages.amp]\ntype = \"network\"\n\
+         amps = [{ part = \"ideal\", plus = \"bias\", minus = \"fb\", out = \"y\" }]\n\
+         parts = [{ c = \"100n\", ends = [\"in\", \"bias\"] }, { r = \"1M\", ends = [\"pos\", \"bias\"] }, \
+         { r = \"1M\", ends = [\"bias\", \"gnd\"] }, { r = \"100k\", ends = [\"y\", \"fb\"] }, \
+         { r = \"4k7\", ends = [\"fb\", \"leg\"] }, { c = \"10u\", ends = [\"leg\", \"gnd\"] }, \
+         { c = \"1u\", ends = [\"y\", \"out\"] }, { r = \"100k\", ends = [\"out\", \"gnd\"] }]\n\
+         out = \"out\"\n[outputs.out]\nfrom = \"amp\"\n",
+    );
+    let (w, tau) = railsong::response::capacitor_time_constants(&p).unwrap();
+    let mut got: Vec<(f64, f64)> = w
+        .circuit
+        .elems
+        .iter()
+        .zip(&tau)
+        .filter_map(|(e, &t)| match e.kind {
+            railsong::circuit::ElemKind::C(c) => Some((c, t)),
+            _ => None,
+        })
+        .collect();
+    got.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let want = [(100e-9, 50e-3), (1e-6, 100e-3), (10e-6, 47e-3)];
+    assert_eq!(got.len(), 3, "{got:?}");
+    for ((c, t), (wc, wt)) in got.iter().zip(want) {
+        assert!((c - wc).abs() < 1e-15);
+        assert!((t / wt - 1.0).abs() < 1e-3, "{c} F: {t} s vs {wt} s");
+    }
+    let sum: f64 = want.iter().map(|x| x.1).sum();
+    let slowest = railsong::measure::slowest_time_constant(&p);
+    assert!((slowest / sum - 1.0).abs() < 1e-3, "{slowest} vs {sum}");
+}
