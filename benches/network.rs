@@ -1,7 +1,7 @@
 //! Network throughput at K = 4, 48 kHz, one core, times real time (median of 5 timed runs of
 //! 10 s of audio each, wall time, processing only: compile and allocation happen before the
 //! clock starts): the four-input summer plus restoring inverter as shorthand stages and as
-//! one network; a state-variable filter (three op-amps in one loop), clean; a diode clipper
+//! one network; a state-variable filter (three op-amps in one loop), clean and with circuit noise on; a diode clipper
 //! driven hard. Run with `cargo bench --bench network`.
 
 use railsong::engine::{compile, Engine};
@@ -52,10 +52,12 @@ amps = [{{ part = \"jfet-general\", plus = \"in\", minus = \"y\", out = \"y\" }}
 parts = [{{ r = \"4k7\", ends = [\"y\", \"x\"] }}, {{ diode = \"silicon-signal\", ends = [\"x\", \"gnd\"] }}, {{ diode = \"silicon-signal\", ends = [\"gnd\", \"x\"] }}]\nout = \"x\"\n\
 [outputs.out]\nfrom = \"clip\"\n"
     );
+    let svf_noise = svf.replace("noise = false", "noise = true");
     vec![
         ("summer + inverter, shorthand", shorthand),
         ("summer + inverter, one network", network),
         ("state-variable filter, clean", svf),
+        ("state-variable filter, clean, circuit noise on", svf_noise),
         ("diode clipper, driven hard", clipper),
     ]
 }
