@@ -1,8 +1,8 @@
 //! Network throughput at K = 4, 48 kHz, one core, times real time (median of 5 timed runs of
 //! 10 s of audio each, wall time, processing only: compile and allocation happen before the
 //! clock starts): the four-input summer plus restoring inverter as shorthand stages and as
-//! one network; a state-variable filter (three op-amps in one loop), clean and with circuit noise on; a diode clipper
-//! driven hard. Run with `cargo bench --bench network`.
+//! one network; a state-variable filter (three op-amps in one loop), clean and with circuit
+//! noise on; a diode clipper driven hard. Run with `cargo bench --bench network`.
 
 use railsong::engine::{compile, Engine};
 use std::time::Instant;
