@@ -111,10 +111,21 @@ pub fn stage_delta(level: u32) -> f64 {
 /// the internal rate down to the base rate.
 pub fn chain(k: usize) -> Vec<Vec<f64>> {
     let levels = k.trailing_zeros();
-    (0..levels)
-        .rev()
-        .map(|l| design(stage_delta(l + 1)))
-        .collect()
+    (0..levels).rev().map(|l| stage_taps(l + 1)).collect()
+}
+
+/// The design of the stage at `level` ([`design`] of [`stage_delta`]), made once per process
+/// and level: the search evaluates the response on a dense grid, which costs about as much
+/// as a second of audio through the engine, and a render builds several chains (the signal,
+/// the idle channel, the alias estimate).
+fn stage_taps(level: u32) -> Vec<f64> {
+    use std::sync::OnceLock;
+    const CACHED: usize = 16;
+    static TAPS: [OnceLock<Vec<f64>>; CACHED] = [const { OnceLock::new() }; CACHED];
+    match TAPS.get(level as usize) {
+        Some(cell) => cell.get_or_init(|| design(stage_delta(level))).clone(),
+        None => design(stage_delta(level)),
+    }
 }
 
 /// One decimate-by-two stage with its history, kept as even and odd phases so every tap is
