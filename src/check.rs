@@ -458,11 +458,7 @@ pub fn check(patch: &Patch) -> Report {
                         fmt_eng(lo, "V"),
                         fmt_eng(hi, "V"),
                         part.name,
-                        if over.is_finite() && over > 1.0 {
-                            format!(" by {:.1} dB", 20.0 * over.log10())
-                        } else {
-                            String::new()
-                        }
+                        excess_db(over)
                     ),
                 });
             }
@@ -757,11 +753,7 @@ fn network_checks(
                     fmt_eng(lo, "V"),
                     fmt_eng(hi, "V"),
                     part.name,
-                    if over.is_finite() && over > 1.0 {
-                        format!(" by {:.1} dB", 20.0 * over.log10())
-                    } else {
-                        String::new()
-                    }
+                    excess_db(over)
                 ),
             });
         }
@@ -841,6 +833,16 @@ fn standard_value(warnings: &mut Vec<Warning>, key: &str, r: f64) {
             fmt_resistance(Series::E96.nearest(r))
         ),
     });
+}
+
+/// `" by N dB"` for a worst-case span `over` times the half swing (nothing when it is not
+/// past the swing or not finite): the clipping warnings' suffix.
+fn excess_db(over: f64) -> String {
+    if over.is_finite() && over > 1.0 {
+        format!(" by {:.1} dB", 20.0 * over.log10())
+    } else {
+        String::new()
+    }
 }
 
 #[cfg(test)]
