@@ -2,7 +2,8 @@
 //! 10 s of audio each, wall time, processing only: compile and allocation happen before the
 //! clock starts): the four-input summer plus restoring inverter as shorthand stages and as
 //! one network; a state-variable filter (three op-amps in one loop), clean and with circuit
-//! noise on; a diode clipper driven hard. Run with `cargo bench --bench network`.
+//! noise on; a diode clipper driven hard. Run with `cargo bench --bench network` (add
+//! `-- WORD` to run only the cases whose name contains WORD).
 
 use railsong::engine::{compile, Engine};
 use std::time::Instant;
@@ -63,7 +64,12 @@ parts = [{{ r = \"4k7\", ends = [\"y\", \"x\"] }}, {{ diode = \"silicon-signal\"
 }
 
 fn main() {
+    // `cargo bench --bench network -- WORD` runs only the cases whose name contains WORD
+    let only: Option<String> = std::env::args().skip(1).find(|a| !a.starts_with('-'));
     for (name, text) in cases() {
+        if only.as_ref().is_some_and(|w| !name.contains(w.as_str())) {
+            continue;
+        }
         let p = railsong::patch::parse_str(&text, "bench.toml", std::path::Path::new("."), &[])
             .expect("bench patch");
         let plan = compile(&p).expect("compiles");

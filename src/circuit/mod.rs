@@ -45,6 +45,7 @@ pub mod kernel;
 pub mod linalg;
 pub mod partition;
 pub mod plan;
+pub mod small;
 pub mod step;
 
 use crate::engine::plan::{amp_limits, AmpLimits};

@@ -233,17 +233,17 @@ impl CircuitState {
     ) -> Result<(), CircuitError> {
         let c = &plan.circuit;
         for (gp, st) in plan.groups.iter().zip(self.groups.iter_mut()) {
-            let done = fast
-                && gp
-                    .fast
-                    .as_ref()
-                    .is_some_and(|fp| fast_step(c, gp, fp, &mut self.vn, st));
-            if done {
-                self.counts.0 += 1;
-            } else {
-                self.counts.1 += 1;
-                full_step(c, gp, plan.h, &mut self.vn, st, &mut self.events, time_s)?;
-            }
+            step_group(
+                c,
+                gp,
+                plan.h,
+                fast,
+                &mut self.vn,
+                st,
+                &mut self.events,
+                &mut self.counts,
+                time_s,
+            )?;
         }
         Ok(())
     }
@@ -267,6 +267,35 @@ impl CircuitState {
         self.events.copy_from_slice(&o.events);
         self.counts = o.counts;
     }
+}
+
+/// One step of one group (the generic path): the linear fast path when `fast` and nothing
+/// is near a limit, else the nonlinear step; `counts` as [`CircuitState::counts`].
+#[allow(clippy::too_many_arguments)]
+#[inline]
+pub(crate) fn step_group(
+    c: &Circuit,
+    gp: &GroupPlan,
+    h: f64,
+    fast: bool,
+    vn: &mut [f64],
+    st: &mut GroupState,
+    events: &mut [AmpEvents],
+    counts: &mut (u64, u64),
+    time_s: f64,
+) -> Result<(), CircuitError> {
+    let done = fast
+        && gp
+            .fast
+            .as_ref()
+            .is_some_and(|fp| fast_step(c, gp, fp, vn, st));
+    if done {
+        counts.0 += 1;
+    } else {
+        counts.1 += 1;
+        full_step(c, gp, h, vn, st, events, time_s)?;
+    }
+    Ok(())
 }
 
 fn rest_group(
@@ -577,7 +606,7 @@ fn loop_factors(c: &Circuit, gp: &GroupPlan, st: &mut GroupState) -> Result<(), 
 
 /// The nonlinear step of one group.
 #[allow(clippy::too_many_arguments)]
-fn full_step(
+pub(crate) fn full_step(
     c: &Circuit,
     gp: &GroupPlan,
     h: f64,

@@ -2,6 +2,7 @@
 //! outputs as engine buffers, and its block processing.
 
 use crate::circuit::plan::CircuitPlan;
+use crate::circuit::small::{run_block, BlockIo, KernelRun, SmallKernel};
 use crate::circuit::step::CircuitState;
 use crate::engine::noise::{stream_seed, NoiseStream, FLICKER_MIN_RATE};
 
@@ -45,6 +46,63 @@ pub struct NetPlan {
     /// Seed of the network's noise streams (each group's and op-amp's stream derives its
     /// own from it); used only when a group has noise.
     pub noise_seed: u64,
+    /// Per group of the circuit: its small-group kernel (none without a linear fast path).
+    pub kernels: Vec<Option<SmallKernel>>,
+    /// Per group: its nodes read outside it (by later groups, as the output, as exports,
+    /// an op-amp's output for its peaks), written per sample.
+    pub writes: Vec<Vec<usize>>,
+    /// The group and in-group index of the op-amp driving the output.
+    pub drive: Option<(usize, usize)>,
+}
+
+impl NetPlan {
+    /// Compile the small-group kernels (after the circuit's noise is added).
+    pub fn attach_kernels(&mut self) {
+        let c = &self.circuit.circuit;
+        let mut needed: Vec<usize> = Vec::new();
+        let add = |n: usize, v: &mut Vec<usize>| {
+            if !v.contains(&n) {
+                v.push(n);
+            }
+        };
+        for g in &self.circuit.groups {
+            for &n in &g.known {
+                add(n, &mut needed);
+            }
+        }
+        add(self.out, &mut needed);
+        for &(n, _) in &self.exports {
+            add(n, &mut needed);
+        }
+        for a in &c.amps {
+            add(a.out, &mut needed);
+        }
+        self.writes = self
+            .circuit
+            .groups
+            .iter()
+            .map(|g| {
+                needed
+                    .iter()
+                    .copied()
+                    .filter(|&n| g.col[n].is_some_and(|i| i < g.nodes.len()))
+                    .collect()
+            })
+            .collect();
+        self.kernels = self
+            .circuit
+            .groups
+            .iter()
+            .map(|g| SmallKernel::compile(c, g, &needed))
+            .collect();
+        self.drive = self.out_amp.and_then(|a| {
+            self.circuit
+                .groups
+                .iter()
+                .enumerate()
+                .find_map(|(gi, g)| g.amps.iter().position(|ac| ac.amp == a).map(|j| (gi, j)))
+        });
+    }
 }
 
 /// Noise streams of one group of a network: the node draws (unit density, `n_kcl` per
@@ -72,6 +130,13 @@ pub(crate) struct NetRun {
     pub peaks: Vec<(f64, f64)>,
     /// Noise streams of the groups that have noise.
     pub(crate) noise: Vec<GroupNoiseRun>,
+    /// Per group: its kernel's running state.
+    pub(crate) kruns: Vec<Option<KernelRun>>,
+    /// Per circuit node a block of samples (inputs, values read across groups), then the
+    /// drive (the output op-amp's state).
+    pub(crate) slots: Vec<Vec<f64>>,
+    /// One group's noise draws for the block, interleaved.
+    pub(crate) wbuf: Vec<f64>,
 }
 
 impl NetRun {
@@ -85,6 +150,22 @@ impl NetRun {
             ex_vals: vec![vec![0.0; block]; np.exports.len()],
             peaks: vec![(f64::INFINITY, f64::NEG_INFINITY); np.circuit.circuit.amps.len()],
             noise: noise_runs(np, block),
+            kruns: np
+                .kernels
+                .iter()
+                .map(|k| k.as_ref().map(KernelRun::new))
+                .collect(),
+            slots: vec![vec![0.0; block]; np.circuit.circuit.nodes.len() + 1],
+            wbuf: vec![
+                0.0;
+                block
+                    * np.circuit
+                        .groups
+                        .iter()
+                        .map(|g| g.n_kcl + g.amps.len())
+                        .max()
+                        .unwrap_or(0)
+            ],
         };
         r.reset(np);
         r
@@ -102,6 +183,9 @@ impl NetRun {
             *p = np.rest.vn[n];
         }
         self.peaks.fill((f64::INFINITY, f64::NEG_INFINITY));
+        for k in self.kruns.iter_mut().flatten() {
+            k.reset();
+        }
         for g in &mut self.noise {
             if let Some(s) = &mut g.nodes {
                 s.reset();
@@ -154,8 +238,10 @@ fn noise_runs(np: &NetPlan, block: usize) -> Vec<GroupNoiseRun> {
 }
 
 /// Run one block of a network stage: inputs from `bufs`, the output into `own` (one
-/// sample late), the exported nodes' values (not yet delayed) into `nr.ex_vals`. Returns the error of a step that failed (the
-/// rest of the block holds the last value).
+/// sample late), the exported nodes' values (not yet delayed) into `nr.ex_vals`. Group by
+/// group in solving order, each through the whole block (`circuit::small::run_block`: its
+/// small-group kernel when `kernels`, else the generic path). Returns the error of a step
+/// that failed (the rest of the block holds the last value).
 #[allow(clippy::too_many_arguments)]
 pub(crate) fn net_block(
     np: &NetPlan,
@@ -164,12 +250,13 @@ pub(crate) fn net_block(
     hist: usize,
     own: &mut [f64],
     fast: bool,
+    kernels: bool,
     antialias: bool,
     t0: f64,
-    h: f64,
 ) -> Result<(), crate::circuit::plan::CircuitError> {
     let b = own.len();
-    let mut err = None;
+    let c = &np.circuit.circuit;
+    let nnodes = c.nodes.len();
     for g in &mut nr.noise {
         if let Some(s) = &mut g.nodes {
             s.fill(&mut g.node_buf[..b * g.nk]);
@@ -180,38 +267,100 @@ pub(crate) fn net_block(
             }
         }
     }
-    for t in 0..b {
-        if err.is_none() {
-            for inp in &np.inputs {
-                nr.state.vn[inp.cnode] = inp.gain * bufs[inp.buf][hist - inp.delay + t];
-            }
-            for g in &nr.noise {
-                let w = &mut nr.state.groups[g.group].w;
+    for inp in &np.inputs {
+        let src = &bufs[inp.buf][hist - inp.delay..hist - inp.delay + b];
+        for (d, &x) in nr.slots[inp.cnode][..b].iter_mut().zip(src) {
+            *d = inp.gain * x;
+        }
+    }
+    let mut err = None;
+    let mut limit = b;
+    for (gi, gp) in np.circuit.groups.iter().enumerate() {
+        let st = &mut nr.state.groups[gi];
+        let nw = st.w.len();
+        if nw > 0 {
+            let w = &mut nr.wbuf[..b * nw];
+            w.fill(0.0);
+            if let Some(g) = nr.noise.iter().find(|g| g.group == gi) {
                 if g.nodes.is_some() {
-                    w[..g.nk].copy_from_slice(&g.node_buf[t * g.nk..(t + 1) * g.nk]);
+                    for t in 0..b {
+                        w[t * nw..t * nw + g.nk]
+                            .copy_from_slice(&g.node_buf[t * g.nk..(t + 1) * g.nk]);
+                    }
                 }
                 for (j, (s, buf)) in g.amps.iter().zip(&g.amp_buf).enumerate() {
                     if s.is_some() {
-                        w[g.nk + j] = buf[t];
+                        for t in 0..b {
+                            w[t * nw + g.nk + j] = buf[t];
+                        }
                     }
                 }
             }
-            if let Err(e) = nr.state.step(&np.circuit, fast, t0 + t as f64 * h) {
-                err = Some(e);
-            }
-            for (pk, a) in nr.peaks.iter_mut().zip(&np.circuit.circuit.amps) {
-                let x = nr.state.vn[a.out];
-                pk.0 = pk.0.min(x);
-                pk.1 = pk.1.max(x);
-            }
         }
-        nr.drive[t] = match np.out_amp {
-            Some(a) => nr.state.amp_state(&np.circuit, a),
-            None => nr.state.vn[np.out],
+        let kern = match (&np.kernels[gi], &mut nr.kruns[gi], kernels) {
+            (Some(k), Some(kr), true) => Some((k, kr)),
+            _ => None,
         };
-        for (k, &(n, _)) in np.exports.iter().enumerate() {
-            nr.ex_vals[k][t] = nr.state.vn[n];
+        let mut io = BlockIo {
+            slots: &mut nr.slots,
+            writes: &np.writes[gi],
+            drive: np.drive.filter(|d| d.0 == gi).map(|d| d.1),
+            w: &nr.wbuf[..b * nw],
+        };
+        let r = run_block(
+            c,
+            gp,
+            kern,
+            np.circuit.h,
+            fast,
+            &mut nr.state.vn,
+            st,
+            &mut nr.state.events,
+            &mut nr.state.counts,
+            &mut io,
+            limit,
+            t0,
+        );
+        if let Err((e, t)) = r {
+            // this group stopped at `t`: later groups and the outputs hold from there
+            limit = t;
+            err.get_or_insert(e);
         }
+    }
+    // the samples after a failed step hold the last value
+    if limit < b {
+        for w in &np.writes {
+            for &n in w {
+                let last = if limit > 0 {
+                    nr.slots[n][limit - 1]
+                } else {
+                    nr.state.vn[n]
+                };
+                nr.slots[n][limit..b].fill(last);
+            }
+        }
+        if let Some(a) = np.out_amp {
+            let last = if limit > 0 {
+                nr.slots[nnodes][limit - 1]
+            } else {
+                nr.state.amp_state(&np.circuit, a)
+            };
+            nr.slots[nnodes][limit..b].fill(last);
+        }
+    }
+    for (pk, a) in nr.peaks.iter_mut().zip(&c.amps) {
+        for &x in &nr.slots[a.out][..limit] {
+            pk.0 = pk.0.min(x);
+            pk.1 = pk.1.max(x);
+        }
+    }
+    let drive_slot = match np.drive {
+        Some(_) => nnodes,
+        None => np.out,
+    };
+    nr.drive[..b].copy_from_slice(&nr.slots[drive_slot][..b]);
+    for (k, &(n, _)) in np.exports.iter().enumerate() {
+        nr.ex_vals[k][..b].copy_from_slice(&nr.slots[n][..b]);
     }
     match np.out_amp {
         Some(a) => {

@@ -508,7 +508,7 @@ fn compile_network(
         }
     }
     let noise_seed = super::noise::stream_seed(patch.seed, &format!("stages.{name}"), "circuit");
-    Ok(NetPlan {
+    let mut np = NetPlan {
         name,
         node: buf,
         latency: lat,
@@ -520,7 +520,12 @@ fn compile_network(
         rest_out,
         noise_seed,
         circuit: plan,
-    })
+        kernels: Vec::new(),
+        writes: Vec::new(),
+        drive: None,
+    };
+    np.attach_kernels();
+    Ok(np)
 }
 
 /// First-order-hold coefficients of the exact exponential step with rate `lam = k h c`:

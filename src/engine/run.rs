@@ -99,6 +99,8 @@ pub struct Engine {
     avail: usize,
     skip: usize,
     fast: bool,
+    /// Whether network groups run on their small-group kernels (else the generic path).
+    group_kernels: bool,
     fast_blocks: u64,
     full_blocks: u64,
     /// Per stage: the weakly nonlinear step's polynomials ([`WeakStep`]), when they apply.
@@ -512,6 +514,7 @@ impl Engine {
             avail: 0,
             skip: plan.discard,
             fast: true,
+            group_kernels: true,
             fast_blocks: 0,
             full_blocks: 0,
             weak: plan
@@ -537,6 +540,12 @@ impl Engine {
     /// Enable or disable the block-linear fast path (for verification; on by default).
     pub fn set_fast_path(&mut self, on: bool) {
         self.fast = on;
+    }
+
+    /// Run network groups on their small-group kernels (`circuit::small`; on by default) or
+    /// on the generic per-sample path, their plain reference (for verification).
+    pub fn set_group_kernels(&mut self, on: bool) {
+        self.group_kernels = on;
     }
 
     /// Number of (stage, block) pairs run by the fast path and by the full model.
@@ -735,9 +744,9 @@ impl Engine {
                         hist,
                         &mut own[hist..hist + b],
                         self.fast,
+                        self.group_kernels,
                         self.plan.antialias,
                         t0,
-                        h,
                     );
                     self.bufs[np.node] = own;
                     for (k, &(_, eb)) in np.exports.iter().enumerate() {
