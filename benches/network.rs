@@ -3,7 +3,7 @@
 //! clock starts): the four-input summer plus restoring inverter as shorthand stages and as
 //! one network; a state-variable filter (three op-amps in one loop), clean and with circuit
 //! noise on; a diode clipper driven hard. Run with `cargo bench --bench network` (add
-//! `-- WORD` to run only the cases whose name contains WORD).
+//! `-- WORD` to run only the cases whose name contains WORD, `-- =NAME` for one case).
 
 use railsong::engine::{compile, Engine};
 use std::time::Instant;
@@ -67,7 +67,11 @@ fn main() {
     // `cargo bench --bench network -- WORD` runs only the cases whose name contains WORD
     let only: Option<String> = std::env::args().skip(1).find(|a| !a.starts_with('-'));
     for (name, text) in cases() {
-        if only.as_ref().is_some_and(|w| !name.contains(w.as_str())) {
+        let skip = |w: &String| match w.strip_prefix('=') {
+            Some(exact) => name != exact,
+            None => !name.contains(w.as_str()),
+        };
+        if only.as_ref().is_some_and(skip) {
             continue;
         }
         let p = railsong::patch::parse_str(&text, "bench.toml", std::path::Path::new("."), &[])

@@ -49,11 +49,21 @@ pub struct SmallKernel {
     pub chk_lo: Vec<f64>,
     /// Upper limit of each check.
     pub chk_hi: Vec<f64>,
+    /// Per row (padded): its lower limit (`-f64::MAX` for a row that is not checked, so
+    /// that an infinite value fails too).
+    pub lo: Vec<f64>,
+    /// Per row (padded): its upper limit.
+    pub hi: Vec<f64>,
     /// Every unknown of the group from `u` (row-major, `ny x ncol`): the previous step's
     /// full solution when the nonlinear step takes over.
     pub full: Vec<f64>,
     /// Group nodes read outside the group: (circuit node, row).
     pub node_rows: Vec<(usize, usize)>,
+    /// The state columns of `m` padded with zero columns to a multiple of 4 (`nzp`
+    /// columns of `rp`), for the vector path.
+    pub mz: Vec<f64>,
+    /// Padded state columns.
+    pub nzp: usize,
 }
 
 impl SmallKernel {
@@ -148,7 +158,7 @@ impl SmallKernel {
         for (q, &ei) in gp.junctions.iter().enumerate() {
             let e = &c.elems[ei];
             chk_row.push(rows.len());
-            chk_lo.push(f64::NEG_INFINITY);
+            chk_lo.push(-f64::MAX);
             chk_hi.push(fp.vth[q]);
             rows.push(lin(1.0, &node_row(e.a), -1.0, &node_row(e.b)));
         }
@@ -174,7 +184,18 @@ impl SmallKernel {
                 m[ci * rp + ri] = x;
             }
         }
+        let mut lo = vec![-f64::MAX; rp];
+        let mut hi = vec![f64::MAX; rp];
+        for ((&r, &l), &u) in chk_row.iter().zip(&chk_lo).zip(&chk_hi) {
+            lo[r] = lo[r].max(l);
+            hi[r] = hi[r].min(u);
+        }
+        let nzp = nz.div_ceil(4) * 4;
+        let mut mz = vec![0.0; nzp * rp];
+        mz[..nz * rp].copy_from_slice(&m[..nz * rp]);
         Some(SmallKernel {
+            mz,
+            nzp,
             nz,
             nk,
             nw,
@@ -185,32 +206,16 @@ impl SmallKernel {
             chk_row,
             chk_lo,
             chk_hi,
+            lo,
+            hi,
             full,
             node_rows,
         })
     }
 
-    /// Every row for the input vector `u` (its last entry 1) into `acc` (length `rp`).
-    /// The common sizes run with the rows in registers (a fixed-size accumulator); the
-    /// sums are taken in the same order either way.
-    #[inline(always)]
+    /// Every row for the input vector `u` (its last entry 1) into `acc` (length `rp`), in
+    /// the order the block loop takes them (the constant column, then each column of `u`).
     pub fn rows(&self, u: &[f64], acc: &mut [f64]) {
-        match self.rp {
-            4 => rows_fixed::<4>(&self.m, u, self.ncol, acc),
-            8 => rows_fixed::<8>(&self.m, u, self.ncol, acc),
-            12 => rows_fixed::<12>(&self.m, u, self.ncol, acc),
-            16 => rows_fixed::<16>(&self.m, u, self.ncol, acc),
-            20 => rows_fixed::<20>(&self.m, u, self.ncol, acc),
-            24 => rows_fixed::<24>(&self.m, u, self.ncol, acc),
-            28 => rows_fixed::<28>(&self.m, u, self.ncol, acc),
-            32 => rows_fixed::<32>(&self.m, u, self.ncol, acc),
-            _ => self.rows_any(u, acc),
-        }
-    }
-
-    /// [`SmallKernel::rows`] for any size.
-    #[inline(always)]
-    fn rows_any(&self, u: &[f64], acc: &mut [f64]) {
         let rp = self.rp;
         let kc = self.ncol - 1;
         let acc = &mut acc[..rp];
@@ -223,66 +228,272 @@ impl SmallKernel {
     }
 
     /// Whether every check row in `acc` is inside its limits (a NaN is not).
-    #[inline(always)]
     pub fn inside(&self, acc: &[f64]) -> bool {
-        let mut ok = true;
-        for ((&r, &lo), &hi) in self.chk_row.iter().zip(&self.chk_lo).zip(&self.chk_hi) {
-            let x = acc[r];
-            ok &= x >= lo && x <= hi;
-        }
-        ok
+        acc[..self.rp]
+            .iter()
+            .zip(self.lo.iter().zip(&self.hi))
+            .all(|(&x, (&l, &h))| x >= l && x <= h)
     }
 }
 
-/// The rows of a kernel with `R` (padded) rows: the constant column, then each column of
-/// `u` in order, accumulated in a local array the compiler keeps in registers.
-#[inline(always)]
-fn rows_fixed<const R: usize>(m: &[f64], u: &[f64], ncol: usize, acc: &mut [f64]) {
-    let kc = ncol - 1;
-    let mut a = [0.0f64; R];
-    a.copy_from_slice(&m[kc * R..(kc + 1) * R]);
-    for (col, &x) in m[..kc * R].chunks_exact(R).zip(&u[..kc]) {
-        for (ar, &mr) in a.iter_mut().zip(col) {
-            *ar += mr * x;
-        }
-    }
-    acc[..R].copy_from_slice(&a);
-}
-
-/// Running state of one group's kernel: two input vectors (the current step's and the
-/// previous one's, alternating) and the row buffer.
+/// Running state and scratch of one group's kernel (sized once for a block length).
 #[derive(Debug, Clone, PartialEq)]
 pub struct KernelRun {
-    u: Vec<f64>,
-    cur: usize,
-    acc: Vec<f64>,
-    /// `u[cur]` holds the group's state (else it is in [`GroupState::z`]).
-    loaded: bool,
+    /// Per sample of the block: the known node values and the noise draws.
+    xw: Vec<f64>,
+    /// The values written out (node rows, then the drive), a block per output (swapped
+    /// with the node's buffer when the kernel took the whole block).
+    ob: Vec<Vec<f64>>,
+    /// Rows written out.
+    orow: Vec<usize>,
+    /// The input vector `u` of the last kernel step.
+    uprev: Vec<f64>,
     /// The last step was the kernel's: the group's full solution (`GroupState::y`, the node
     /// array) is not written.
     stale: bool,
+    /// Scratch rows.
+    acc: Vec<f64>,
 }
 
 impl KernelRun {
-    /// A run for kernel `k`.
-    pub fn new(k: &SmallKernel) -> KernelRun {
-        let mut u = vec![0.0; 2 * k.ncol];
-        u[k.ncol - 1] = 1.0;
-        u[2 * k.ncol - 1] = 1.0;
+    /// A run for kernel `k` with blocks of up to `block` samples; `drive` the op-amp (in
+    /// the group) whose state is written out after the node rows.
+    pub fn new(k: &SmallKernel, block: usize, drive: Option<usize>, nc: usize) -> KernelRun {
+        let mut orow: Vec<usize> = k.node_rows.iter().map(|&(_, r)| r).collect();
+        if let Some(j) = drive {
+            orow.push(nc + j);
+        }
         KernelRun {
-            u,
-            cur: 0,
-            acc: vec![0.0; k.rp],
-            loaded: false,
+            xw: vec![0.0; block * (k.nk + k.nw)],
+            ob: vec![vec![0.0; block]; orow.len()],
+            orow,
+            uprev: vec![0.0; k.ncol],
             stale: false,
+            acc: vec![0.0; k.rp],
         }
     }
 
-    /// Forget the kept state (after the group's state was set from elsewhere).
+    /// Forget the last kernel step (after the group's state was set from elsewhere).
     pub fn reset(&mut self) {
-        self.loaded = false;
         self.stale = false;
     }
+}
+
+/// The kernel's steps from sample `from` while every check row stays inside its limits,
+/// with AVX2 vectors: the state in `z` (updated), the per-sample inputs in `xw`, output `i`
+/// of sample `t` into `ob[i][t]`. Returns the first sample outside the checks (or
+/// `n`) and keeps the last step's input vector in `uprev`.
+///
+/// The rows are `G` vectors of four, kept in registers from step to step; the state's
+/// values are broadcast from them lane by lane (no round trip through memory) and summed
+/// in four partial sums (the loop-carried chain is a multiply and three adds, whatever the
+/// state length); the inputs' part does not depend on the state and overlaps. The sums are
+/// taken in another order than [`segment_any`] (both agree with the generic path to
+/// rounding); no fused multiply-add.
+///
+/// # Safety
+/// The CPU must support AVX2; `k.rp == 4 G`.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+#[allow(clippy::too_many_arguments)]
+unsafe fn segment_avx2<const G: usize>(
+    k: &SmallKernel,
+    z: &mut [f64],
+    xw: &[f64],
+    ob: &mut [Vec<f64>],
+    orow: &[usize],
+    uprev: &mut [f64],
+    from: usize,
+    n: usize,
+) -> usize {
+    use std::arch::x86_64::{
+        __m256d, _mm256_add_pd, _mm256_and_pd, _mm256_cmp_pd, _mm256_loadu_pd, _mm256_movemask_pd,
+        _mm256_mul_pd, _mm256_permute4x64_pd, _mm256_set1_pd, _mm256_setzero_pd, _mm256_storeu_pd,
+        _CMP_GE_OQ, _CMP_LE_OQ,
+    };
+    let r = 4 * G;
+    let nz = k.nz;
+    let nq = k.nzp / 4;
+    let nx = k.nk + k.nw;
+    let kc = k.ncol - 1;
+    let no = orow.len();
+    assert!(k.rp == r && k.m.len() >= k.ncol * r && k.lo.len() >= r && k.hi.len() >= r);
+    assert!(k.mz.len() >= k.nzp * r && nq <= G);
+    assert!(xw.len() >= n * nx && ob.len() >= no && ob.iter().all(|o| o.len() >= n));
+    assert!(z.len() >= nz && uprev.len() >= k.ncol && orow.iter().all(|&o| o < r));
+    let mp = k.m.as_ptr();
+    let zp_ = k.mz.as_ptr();
+    let mut cst = [_mm256_setzero_pd(); G];
+    let mut lo = [_mm256_setzero_pd(); G];
+    let mut hi = [_mm256_setzero_pd(); G];
+    for g in 0..G {
+        // SAFETY: within `m` (kc * r + r <= ncol * r) and the limit rows (checked above).
+        cst[g] = _mm256_loadu_pd(mp.add(kc * r + 4 * g));
+        lo[g] = _mm256_loadu_pd(k.lo.as_ptr().add(4 * g));
+        hi[g] = _mm256_loadu_pd(k.hi.as_ptr().add(4 * g));
+    }
+    let mut zbuf = [0.0f64; 32];
+    zbuf[..nz].copy_from_slice(&z[..nz]);
+    let mut zc = [_mm256_setzero_pd(); G];
+    for (q, v) in zc.iter_mut().enumerate() {
+        // SAFETY: 4 q + 3 < 4 G <= 32.
+        *v = _mm256_loadu_pd(zbuf.as_ptr().add(4 * q));
+    }
+    let mut zprev = zc;
+    let mut out = [0.0f64; 32];
+    let mut t = from;
+    while t < n {
+        // the inputs' part (independent of the state)
+        let mut b: [__m256d; G] = cst;
+        for (c, &x) in xw[t * nx..(t + 1) * nx].iter().enumerate() {
+            let xv = _mm256_set1_pd(x);
+            for (g, bg) in b.iter_mut().enumerate() {
+                // SAFETY: column nz + c < kc, row 4 g + 3 < r.
+                let m = _mm256_loadu_pd(mp.add((nz + c) * r + 4 * g));
+                *bg = _mm256_add_pd(*bg, _mm256_mul_pd(m, xv));
+            }
+        }
+        // the state's part, lane by lane into four partial sums
+        let mut s0 = [_mm256_setzero_pd(); G];
+        let mut s1 = [_mm256_setzero_pd(); G];
+        let mut s2 = [_mm256_setzero_pd(); G];
+        let mut s3 = [_mm256_setzero_pd(); G];
+        for (q, &v) in zc.iter().enumerate().take(nq) {
+            let l0 = _mm256_permute4x64_pd::<0x00>(v);
+            let l1 = _mm256_permute4x64_pd::<0x55>(v);
+            let l2 = _mm256_permute4x64_pd::<0xaa>(v);
+            let l3 = _mm256_permute4x64_pd::<0xff>(v);
+            let base = 4 * q * r;
+            for g in 0..G {
+                // SAFETY: columns 4 q .. 4 q + 3 < nzp, row 4 g + 3 < r.
+                let m0 = _mm256_loadu_pd(zp_.add(base + 4 * g));
+                let m1 = _mm256_loadu_pd(zp_.add(base + r + 4 * g));
+                let m2 = _mm256_loadu_pd(zp_.add(base + 2 * r + 4 * g));
+                let m3 = _mm256_loadu_pd(zp_.add(base + 3 * r + 4 * g));
+                s0[g] = _mm256_add_pd(s0[g], _mm256_mul_pd(m0, l0));
+                s1[g] = _mm256_add_pd(s1[g], _mm256_mul_pd(m1, l1));
+                s2[g] = _mm256_add_pd(s2[g], _mm256_mul_pd(m2, l2));
+                s3[g] = _mm256_add_pd(s3[g], _mm256_mul_pd(m3, l3));
+            }
+        }
+        let mut a = b;
+        let mut bad = 0;
+        for g in 0..G {
+            a[g] = _mm256_add_pd(
+                _mm256_add_pd(b[g], _mm256_add_pd(s0[g], s1[g])),
+                _mm256_add_pd(s2[g], s3[g]),
+            );
+            let ok = _mm256_and_pd(
+                _mm256_cmp_pd::<_CMP_GE_OQ>(a[g], lo[g]),
+                _mm256_cmp_pd::<_CMP_LE_OQ>(a[g], hi[g]),
+            );
+            bad |= _mm256_movemask_pd(ok) ^ 0xf;
+        }
+        if bad != 0 {
+            break;
+        }
+        for (g, ag) in a.iter().enumerate() {
+            // SAFETY: 4 g + 3 < r <= 32.
+            _mm256_storeu_pd(out.as_mut_ptr().add(4 * g), *ag);
+        }
+        for (i, &row) in orow.iter().enumerate() {
+            ob[i][t] = out[row];
+        }
+        zprev = zc;
+        zc = a;
+        t += 1;
+    }
+    if t > from {
+        for (q, v) in zc.iter().enumerate() {
+            // SAFETY: 4 q + 3 < 4 G <= 32.
+            _mm256_storeu_pd(zbuf.as_mut_ptr().add(4 * q), *v);
+        }
+        z[..nz].copy_from_slice(&zbuf[..nz]);
+        for (q, v) in zprev.iter().enumerate() {
+            // SAFETY: as above.
+            _mm256_storeu_pd(zbuf.as_mut_ptr().add(4 * q), *v);
+        }
+        uprev[..nz].copy_from_slice(&zbuf[..nz]);
+        uprev[nz..kc].copy_from_slice(&xw[(t - 1) * nx..t * nx]);
+        uprev[kc] = 1.0;
+    }
+    t
+}
+
+/// The kernel's steps from sample `from` while every check row stays inside its limits,
+/// plain (the rows through a slice): see `segment_avx2`.
+#[allow(clippy::too_many_arguments)]
+fn segment_any(
+    k: &SmallKernel,
+    z: &mut [f64],
+    xw: &[f64],
+    ob: &mut [Vec<f64>],
+    orow: &[usize],
+    uprev: &mut [f64],
+    acc: &mut [f64],
+    from: usize,
+    n: usize,
+) -> usize {
+    let nz = k.nz;
+    let nx = k.nk + k.nw;
+    let kc = k.ncol - 1;
+    let mut t = from;
+    while t < n {
+        // u = [z, x, w, 1] in `uprev`'s shape, kept only when the step is taken
+        let rp = k.rp;
+        acc[..rp].copy_from_slice(&k.m[kc * rp..(kc + 1) * rp]);
+        for (q, col) in k.m[..kc * rp].chunks_exact(rp).enumerate() {
+            let x = if q < nz { z[q] } else { xw[t * nx + q - nz] };
+            for (a, m) in acc.iter_mut().zip(col) {
+                *a += m * x;
+            }
+        }
+        if !k.inside(acc) {
+            break;
+        }
+        for (i, &r) in orow.iter().enumerate() {
+            ob[i][t] = acc[r];
+        }
+        uprev[..nz].copy_from_slice(&z[..nz]);
+        uprev[nz..kc].copy_from_slice(&xw[t * nx..(t + 1) * nx]);
+        uprev[kc] = 1.0;
+        z[..nz].copy_from_slice(&acc[..nz]);
+        t += 1;
+    }
+    t
+}
+
+/// The kernel's steps from sample `from` while every check row stays inside its limits
+/// (AVX2 vectors for up to 32 rows where the CPU has them, else [`segment_any`]).
+fn run_segment(k: &SmallKernel, z: &mut [f64], kr: &mut KernelRun, from: usize, n: usize) -> usize {
+    let KernelRun {
+        xw,
+        ob,
+        orow,
+        uprev,
+        acc,
+        ..
+    } = kr;
+    #[cfg(target_arch = "x86_64")]
+    {
+        if std::arch::is_x86_feature_detected!("avx2") {
+            // SAFETY: the CPU supports AVX2 (checked just above); `rp == 4 G` by the match.
+            unsafe {
+                match k.rp {
+                    4 => return segment_avx2::<1>(k, z, xw, ob, orow, uprev, from, n),
+                    8 => return segment_avx2::<2>(k, z, xw, ob, orow, uprev, from, n),
+                    12 => return segment_avx2::<3>(k, z, xw, ob, orow, uprev, from, n),
+                    16 => return segment_avx2::<4>(k, z, xw, ob, orow, uprev, from, n),
+                    20 => return segment_avx2::<5>(k, z, xw, ob, orow, uprev, from, n),
+                    24 => return segment_avx2::<6>(k, z, xw, ob, orow, uprev, from, n),
+                    28 => return segment_avx2::<7>(k, z, xw, ob, orow, uprev, from, n),
+                    32 => return segment_avx2::<8>(k, z, xw, ob, orow, uprev, from, n),
+                    _ => {}
+                }
+            }
+        }
+    }
+    segment_any(k, z, xw, ob, orow, uprev, acc, from, n)
 }
 
 /// Where a block of one group reads and writes: per circuit node a buffer of samples (the
@@ -324,55 +535,60 @@ pub fn run_block(
     if !fast {
         kern = None;
     }
-    for t in 0..n {
-        if let Some((k, kr)) = kern.as_mut() {
-            let ncol = k.ncol;
-            let nz = k.nz;
-            let base = kr.cur * ncol;
-            if !kr.loaded {
-                kr.u[base..base + nz].copy_from_slice(&st.z);
-                kr.loaded = true;
-            }
+    if let Some((k, kr)) = kern.as_mut() {
+        // the block's inputs, per sample: known nodes, then noise draws
+        let nx = k.nk + k.nw;
+        for (q, &node) in gp.known.iter().enumerate() {
+            for (d, &x) in kr
+                .xw
+                .iter_mut()
+                .skip(q)
+                .step_by(nx)
+                .zip(&io.slots[node][..n])
             {
-                let u = &mut kr.u[base..base + ncol];
-                for (x, &node) in u[nz..nz + k.nk].iter_mut().zip(&gp.known) {
-                    *x = io.slots[node][t];
-                }
-                if k.nw > 0 {
-                    u[nz + k.nk..nz + k.nk + k.nw].copy_from_slice(&io.w[t * nw..(t + 1) * nw]);
-                }
+                *d = x;
             }
-            k.rows(&kr.u[base..base + ncol], &mut kr.acc);
-            if k.inside(&kr.acc) {
-                let nb = (1 - kr.cur) * ncol;
-                kr.u[nb..nb + nz].copy_from_slice(&kr.acc[..nz]);
-                for &(node, row) in &k.node_rows {
-                    io.slots[node][t] = kr.acc[row];
-                }
-                if let Some(j) = io.drive {
-                    io.slots[nnodes][t] = kr.acc[nc + j];
-                }
-                kr.cur = 1 - kr.cur;
+        }
+        if k.nw > 0 {
+            for t in 0..n {
+                kr.xw[t * nx + k.nk..(t + 1) * nx].copy_from_slice(&io.w[t * nw..(t + 1) * nw]);
+            }
+        }
+    }
+    let mut t = 0;
+    while t < n {
+        if let Some((k, kr)) = kern.as_mut() {
+            let from = t;
+            t = run_segment(k, &mut st.z, kr, from, n);
+            if t > from {
                 kr.stale = true;
-                counts.0 += 1;
-                continue;
+                counts.0 += (t - from) as u64;
+                let mut targets = k.node_rows.iter().map(|&(node, _)| node);
+                for ob in kr.ob.iter_mut() {
+                    let node = targets.next().unwrap_or(nnodes);
+                    if from == 0 && t == n && ob.len() == io.slots[node].len() {
+                        std::mem::swap(ob, &mut io.slots[node]);
+                    } else {
+                        io.slots[node][from..t].copy_from_slice(&ob[from..t]);
+                    }
+                }
             }
-            // the nonlinear step takes this sample: hand over the state and the previous
-            // step's full solution
-            st.z.copy_from_slice(&kr.u[base..base + nz]);
+            if t >= n {
+                break;
+            }
+            // the nonlinear step takes this sample: hand over the previous step's full
+            // solution (the state is already in `st.z`)
             if kr.stale {
-                let prev = (1 - kr.cur) * ncol;
-                let up = &kr.u[prev..prev + ncol];
+                let ncol = k.ncol;
                 for (i, y) in st.y.iter_mut().enumerate() {
                     let r = &k.full[i * ncol..(i + 1) * ncol];
-                    *y = r.iter().zip(up).map(|(a, b)| a * b).sum();
+                    *y = r.iter().zip(&kr.uprev).map(|(a, b)| a * b).sum();
                 }
                 for (i, &node) in gp.nodes.iter().enumerate() {
                     vn[node] = st.y[i];
                 }
+                kr.stale = false;
             }
-            kr.stale = false;
-            kr.loaded = false;
         }
         for &node in &gp.known {
             vn[node] = io.slots[node][t];
@@ -396,12 +612,7 @@ pub fn run_block(
         if let Some(j) = io.drive {
             io.slots[nnodes][t] = st.z[nc + j];
         }
-    }
-    if let Some((k, kr)) = kern {
-        if kr.loaded {
-            let base = kr.cur * k.ncol;
-            st.z.copy_from_slice(&kr.u[base..base + k.nz]);
-        }
+        t += 1;
     }
     Ok(())
 }

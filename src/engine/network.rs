@@ -123,7 +123,6 @@ pub(crate) struct NetRun {
     pub state: CircuitState,
     pub x1: f64,
     pub x2: f64,
-    pub drive: Vec<f64>,
     pub ex_prev: Vec<f64>,
     pub ex_vals: Vec<Vec<f64>>,
     /// Lowest and highest output of every op-amp (after its clamp), V.
@@ -145,7 +144,6 @@ impl NetRun {
             state: np.rest.clone(),
             x1: 0.0,
             x2: 0.0,
-            drive: vec![0.0; block],
             ex_prev: vec![0.0; np.exports.len()],
             ex_vals: vec![vec![0.0; block]; np.exports.len()],
             peaks: vec![(f64::INFINITY, f64::NEG_INFINITY); np.circuit.circuit.amps.len()],
@@ -153,7 +151,13 @@ impl NetRun {
             kruns: np
                 .kernels
                 .iter()
-                .map(|k| k.as_ref().map(KernelRun::new))
+                .enumerate()
+                .map(|(gi, k)| {
+                    k.as_ref().map(|k| {
+                        let drive = np.drive.filter(|d| d.0 == gi).map(|d| d.1);
+                        KernelRun::new(k, block, drive, np.circuit.groups[gi].caps.len())
+                    })
+                })
                 .collect(),
             slots: vec![vec![0.0; block]; np.circuit.circuit.nodes.len() + 1],
             wbuf: vec![
@@ -349,23 +353,25 @@ pub(crate) fn net_block(
         }
     }
     for (pk, a) in nr.peaks.iter_mut().zip(&c.amps) {
+        let (mut lo, mut hi) = *pk;
         for &x in &nr.slots[a.out][..limit] {
-            pk.0 = pk.0.min(x);
-            pk.1 = pk.1.max(x);
+            lo = if x < lo { x } else { lo };
+            hi = if x > hi { x } else { hi };
         }
+        *pk = (lo, hi);
+    }
+    for (k, &(n, _)) in np.exports.iter().enumerate() {
+        nr.ex_vals[k][..b].copy_from_slice(&nr.slots[n][..b]);
     }
     let drive_slot = match np.drive {
         Some(_) => nnodes,
         None => np.out,
     };
-    nr.drive[..b].copy_from_slice(&nr.slots[drive_slot][..b]);
-    for (k, &(n, _)) in np.exports.iter().enumerate() {
-        nr.ex_vals[k][..b].copy_from_slice(&nr.slots[n][..b]);
-    }
+    let drive = &nr.slots[drive_slot][..b];
     match np.out_amp {
         Some(a) => {
             let sh = np.circuit.circuit.amps[a].shaper;
-            for (o, &xn) in own.iter_mut().zip(&nr.drive) {
+            for (o, &xn) in own.iter_mut().zip(drive) {
                 let (x2, x1) = (nr.x2, nr.x1);
                 *o = if sh.inside(x2, x1, xn) {
                     x1
@@ -379,7 +385,7 @@ pub(crate) fn net_block(
             }
         }
         None => {
-            for (o, &xn) in own.iter_mut().zip(&nr.drive) {
+            for (o, &xn) in own.iter_mut().zip(drive) {
                 *o = nr.x1;
                 nr.x1 = xn;
             }
