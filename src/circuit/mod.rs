@@ -41,6 +41,7 @@
 //! step. A step that does not converge is an error naming the stage and time.
 
 pub mod build;
+pub mod diode;
 pub mod kernel;
 pub mod linalg;
 pub mod partition;

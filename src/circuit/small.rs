@@ -64,6 +64,9 @@ pub struct SmallKernel {
     pub mz: Vec<f64>,
     /// Padded state columns.
     pub nzp: usize,
+    /// The fast nonlinear step of a diode group without op-amps (`circuit::diode`), taken
+    /// instead of the generic one.
+    pub diode: Option<super::diode::DiodeStep>,
 }
 
 impl SmallKernel {
@@ -193,7 +196,8 @@ impl SmallKernel {
         let nzp = nz.div_ceil(4) * 4;
         let mut mz = vec![0.0; nzp * rp];
         mz[..nz * rp].copy_from_slice(&m[..nz * rp]);
-        Some(SmallKernel {
+        let mut k = SmallKernel {
+            diode: None,
             mz,
             nzp,
             nz,
@@ -210,7 +214,9 @@ impl SmallKernel {
             hi,
             full,
             node_rows,
-        })
+        };
+        k.diode = super::diode::DiodeStep::compile(c, gp, &k);
+        Some(k)
     }
 
     /// Every row for the input vector `u` (its last entry 1) into `acc` (length `rp`), in
@@ -248,6 +254,10 @@ pub struct KernelRun {
     orow: Vec<usize>,
     /// The input vector `u` of the last kernel step.
     uprev: Vec<f64>,
+    /// The input vector of a diode step.
+    ucur: Vec<f64>,
+    /// Junction voltages of the last diode steps.
+    dhist: super::diode::DiodeHist,
     /// The last step was the kernel's: the group's full solution (`GroupState::y`, the node
     /// array) is not written.
     stale: bool,
@@ -268,6 +278,8 @@ impl KernelRun {
             ob: vec![vec![0.0; block]; orow.len()],
             orow,
             uprev: vec![0.0; k.ncol],
+            ucur: vec![0.0; k.ncol],
+            dhist: super::diode::DiodeHist::default(),
             stale: false,
             acc: vec![0.0; k.rp],
         }
@@ -276,6 +288,7 @@ impl KernelRun {
     /// Forget the last kernel step (after the group's state was set from elsewhere).
     pub fn reset(&mut self) {
         self.stale = false;
+        self.dhist.n = 0;
     }
 }
 
@@ -562,6 +575,7 @@ pub fn run_block(
             t = run_segment(k, &mut st.z, kr, from, n);
             if t > from {
                 kr.stale = true;
+                kr.dhist.n = 0;
                 counts.0 += (t - from) as u64;
                 let mut targets = k.node_rows.iter().map(|&(node, _)| node);
                 for ob in kr.ob.iter_mut() {
@@ -597,9 +611,18 @@ pub fn run_block(
             st.w.copy_from_slice(&io.w[t * nw..(t + 1) * nw]);
         }
         let time_s = t0 + t as f64 * h;
-        let r = if kern.is_some() {
+        let r = if let Some((k, kr)) = kern.as_mut() {
             counts.1 += 1;
-            full_step(c, gp, h, vn, st, events, time_s)
+            match &k.diode {
+                Some(ds) => {
+                    let (nz, nx) = (k.nz, k.nk + k.nw);
+                    kr.ucur[..nz].copy_from_slice(&st.z);
+                    kr.ucur[nz..nz + nx].copy_from_slice(&kr.xw[t * nx..(t + 1) * nx]);
+                    kr.ucur[nz + nx] = 1.0;
+                    ds.step(c, gp, k, &kr.ucur, vn, st, &mut kr.dhist, time_s)
+                }
+                None => full_step(c, gp, h, vn, st, events, time_s),
+            }
         } else {
             step_group(c, gp, h, fast, vn, st, events, counts, time_s)
         };

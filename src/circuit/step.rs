@@ -36,7 +36,7 @@ pub struct GroupState {
     m: Vec<f64>,
     rhs: Vec<f64>,
     tmp: Vec<f64>,
-    ynew: Vec<f64>,
+    pub(crate) ynew: Vec<f64>,
     perm: Vec<usize>,
     rows: Vec<AmpRow>,
     outs: Vec<(f64, f64)>,
@@ -147,7 +147,7 @@ fn phi_eff(z0: f64, lam: f64) -> f64 {
 
 /// Junction step limiting (the classic logarithmic damping of a diode's Newton step).
 #[inline]
-fn limit_junction(vnew: f64, vold: f64, nvt: f64, vcrit: f64) -> f64 {
+pub(crate) fn limit_junction(vnew: f64, vold: f64, nvt: f64, vcrit: f64) -> f64 {
     if vnew > vcrit && (vnew - vold).abs() > 2.0 * nvt {
         if vold > 0.0 {
             let arg = 1.0 + (vnew - vold) / nvt;
@@ -543,7 +543,7 @@ fn noise_currents(gp: &GroupPlan, st: &mut GroupState) {
 
 /// Write the solution in `st.ynew` to the node array and advance the state.
 #[inline]
-fn commit(c: &Circuit, gp: &GroupPlan, vn: &mut [f64], st: &mut GroupState) {
+pub(crate) fn commit(c: &Circuit, gp: &GroupPlan, vn: &mut [f64], st: &mut GroupState) {
     let nn = gp.nodes.len();
     let nc = gp.caps.len();
     let na = gp.amps.len();
