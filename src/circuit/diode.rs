@@ -160,7 +160,7 @@ impl DiodeStep {
     /// state (as the generic step does). `vn` must hold this step's known values; the first
     /// guess is the extrapolation of `hist` when it holds the two steps before, else the
     /// previous step's solution in `st.y`.
-    #[allow(clippy::too_many_arguments)]
+    #[allow(clippy::too_many_arguments, clippy::needless_range_loop)]
     pub fn step(
         &self,
         c: &Circuit,
