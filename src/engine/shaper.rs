@@ -428,6 +428,7 @@ impl Shaper {
         }
         let ts = &mut ts[..n];
         ts.sort_unstable_by(f64::total_cmp);
+        let inv4w = 0.25 / w;
         let mut acc = 0.0;
         for pair in ts.windows(2) {
             let (a, b) = (pair[0], pair[1]);
@@ -442,11 +443,21 @@ impl Shaper {
                 acc += line_piece(&c, self.lo, a, b);
             } else if xm > self.lo + w && xm < self.hi - w {
                 // linear region: no residual
-            } else {
+            } else if w > 0.0 {
+                // inside one knee: the residual is -+(x - knee)^2 / (4 w), one product per
+                // node (no branch, no division)
+                let (knee, sign) = if xm > 0.5 * (self.hi + self.lo) {
+                    (self.hi - w, -1.0)
+                } else {
+                    (self.lo + w, 1.0)
+                };
+                let mut q = 0.0;
                 for (&gt, &gw) in GL7_T.iter().zip(&GL7_W) {
                     let t = mid + half * gt;
-                    acc += gw * half * (1.0 - t.abs()) * self.residual(horner(&c, t));
+                    let d = horner(&c, t) - knee;
+                    q += gw * (1.0 - t.abs()) * d * d;
                 }
+                acc += sign * half * q * inv4w;
             }
         }
         (x[3] + acc).clamp(self.lo - g, self.hi + g)
