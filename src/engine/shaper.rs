@@ -174,8 +174,9 @@ fn bracket_root(f: impl Fn(f64) -> f64, df: impl Fn(f64) -> f64, a: f64, b: f64,
 /// The roots in `(-1, 1)` of the polynomial `c` (ascending coefficients, degree at most 6),
 /// ascending, into `out`; returns how many. Degree 2 and less in closed form; above, the
 /// polynomial is monotone between consecutive roots of its derivative (found the same way),
-/// and each such piece holds at most one root, found by [`bracket_root`].
-fn roots(c: &[f64], out: &mut [f64; 8]) -> usize {
+/// and each such piece holds at most one root, found by [`bracket_root`]. `quick` adds two
+/// exact shortcuts (below) at every level; without it, the plain form of the reference.
+fn roots(c: &[f64], out: &mut [f64; 8], quick: bool) -> usize {
     let d = c.len() - 1;
     if d <= 2 {
         let (a, b, c0) = (
@@ -188,13 +189,30 @@ fn roots(c: &[f64], out: &mut [f64; 8]) -> usize {
         out[..n].copy_from_slice(&r[..n]);
         return n;
     }
+    // Two exact shortcuts on [-1, 1], where |t^i| <= 1: no root when |c0| exceeds the sum
+    // of the other |ci|; monotone (so at most one root, between the ends) when |c1| exceeds
+    // the sum of i |ci| over i >= 2, the bound of the derivative's other terms.
+    let (mut rest, mut slope) = (0.0, 0.0);
+    for (i, &ci) in c.iter().enumerate().skip(1) {
+        rest += ci.abs();
+        if i >= 2 {
+            slope += i as f64 * ci.abs();
+        }
+    }
+    if quick && c[0].abs() > rest {
+        return 0;
+    }
     let mut dc = [0.0; 7];
     for i in 1..=d {
         dc[i - 1] = i as f64 * c[i];
     }
     let dc = &dc[..d];
     let mut e = [0.0; 8];
-    let k = roots(dc, &mut e);
+    let k = if quick && c[1].abs() > slope {
+        0
+    } else {
+        roots(dc, &mut e, quick)
+    };
     let mut ends = [-1.0; 10];
     ends[1..=k].copy_from_slice(&e[..k]);
     ends[k + 1] = 1.0;
@@ -404,7 +422,7 @@ impl Shaper {
                 dc[i - 1] = i as f64 * c[i];
             }
             let mut e = [0.0; 8];
-            let k = roots(&dc, &mut e);
+            let k = roots(&dc, &mut e, true);
             let mut ends = [-1.0; 10];
             ends[1..=k].copy_from_slice(&e[..k]);
             ends[k + 1] = 1.0;
@@ -463,9 +481,9 @@ impl Shaper {
         (x[3] + acc).clamp(self.lo - g, self.hi + g)
     }
 
-    /// The plain reference of [`Shaper::smooth7`]: every piece of the kernel's support by
-    /// seven-point Gauss-Legendre quadrature (exact for the polynomial pieces, so both agree
-    /// to rounding; tested to 1e-12 V).
+    /// The plain reference of [`Shaper::smooth7`]: the crossings by the plain root search,
+    /// every piece of the kernel's support by seven-point Gauss-Legendre quadrature (exact
+    /// for the polynomial pieces, so both agree to rounding; tested to 1e-12 V).
     pub fn smooth7_reference(&self, x: &[f64; WINDOW]) -> f64 {
         let c = sextic(x);
         let w = self.w;
@@ -487,7 +505,7 @@ impl Shaper {
                 dc[i - 1] = i as f64 * c[i];
             }
             let mut e = [0.0; 8];
-            let k = roots(&dc, &mut e);
+            let k = roots(&dc, &mut e, false);
             let mut ends = [-1.0; 10];
             ends[1..=k].copy_from_slice(&e[..k]);
             ends[k + 1] = 1.0;
