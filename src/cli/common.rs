@@ -155,12 +155,7 @@ pub(crate) fn measure_streamed(
 ) -> Result<(render::Streamed, measure::Measurement), Failure> {
     let streamed = stream_patch(patch, false, show_progress, sink)?;
     let idle = if patch.noise {
-        Some(stream_patch(
-            &render::muted(patch),
-            false,
-            false,
-            &mut |_, _| Ok(()),
-        )?)
+        Some(render::render_idle(patch, false).map_err(render_error)?)
     } else {
         None
     };

@@ -174,8 +174,9 @@ fn bracket_root(f: impl Fn(f64) -> f64, df: impl Fn(f64) -> f64, a: f64, b: f64,
 /// The roots in `(-1, 1)` of the polynomial `c` (ascending coefficients, degree at most 6),
 /// ascending, into `out`; returns how many. Degree 2 and less in closed form; above, the
 /// polynomial is monotone between consecutive roots of its derivative (found the same way),
-/// and each such piece holds at most one root, found by [`bracket_root`].
-fn roots(c: &[f64], out: &mut [f64; 8]) -> usize {
+/// and each such piece holds at most one root, found by [`bracket_root`]. `quick` adds two
+/// exact shortcuts (below) at every level; without it, the plain form of the reference.
+fn roots(c: &[f64], out: &mut [f64; 8], quick: bool) -> usize {
     let d = c.len() - 1;
     if d <= 2 {
         let (a, b, c0) = (
@@ -188,13 +189,30 @@ fn roots(c: &[f64], out: &mut [f64; 8]) -> usize {
         out[..n].copy_from_slice(&r[..n]);
         return n;
     }
+    // Two exact shortcuts on [-1, 1], where |t^i| <= 1: no root when |c0| exceeds the sum
+    // of the other |ci|; monotone (so at most one root, between the ends) when |c1| exceeds
+    // the sum of i |ci| over i >= 2, the bound of the derivative's other terms.
+    let (mut rest, mut slope) = (0.0, 0.0);
+    for (i, &ci) in c.iter().enumerate().skip(1) {
+        rest += ci.abs();
+        if i >= 2 {
+            slope += i as f64 * ci.abs();
+        }
+    }
+    if quick && c[0].abs() > rest {
+        return 0;
+    }
     let mut dc = [0.0; 7];
     for i in 1..=d {
         dc[i - 1] = i as f64 * c[i];
     }
     let dc = &dc[..d];
     let mut e = [0.0; 8];
-    let k = roots(dc, &mut e);
+    let k = if quick && c[1].abs() > slope {
+        0
+    } else {
+        roots(dc, &mut e, quick)
+    };
     let mut ends = [-1.0; 10];
     ends[1..=k].copy_from_slice(&e[..k]);
     ends[k + 1] = 1.0;
@@ -368,8 +386,105 @@ impl Shaper {
 
     /// Band-limited output at the sample with drive `x[3]`, from the [`LOOKAHEAD`] samples
     /// before and after it: as [`Shaper::smooth`] with the drive taken as the polynomial of
-    /// degree 6 through the seven samples; see the module documentation.
+    /// degree 6 through the seven samples; see the module documentation. The kernel's support
+    /// is split at its apex and at every crossing of a boundary, so each piece lies in one
+    /// region of the clamp: nothing to add in the linear region, a closed form past a knee
+    /// (the residual there is the rail minus the drive, a polynomial: [`line_piece`]; the
+    /// whole support past one knee, the common case of a clipping stage, is one expression),
+    /// and seven-point Gauss-Legendre quadrature inside a knee. [`Shaper::smooth7_reference`]
+    /// integrates every piece by quadrature.
     pub fn smooth7(&self, x: &[f64; WINDOW]) -> f64 {
+        let c = sextic(x);
+        let w = self.w;
+        let g = GIBBS * (self.hi - self.lo);
+        let m = reach7(x);
+        let (rlo, rhi) = (x[2].min(x[3]).min(x[4]) - m, x[2].max(x[3]).max(x[4]) + m);
+        let (past_hi, past_lo) = (self.hi + w, self.lo - w);
+        // The polynomial over the whole support beyond one knee: the residual is the rail
+        // minus the drive, and the kernel (1 - |t|) weights t^k by 2 / ((k + 1)(k + 2)) for
+        // even k, 0 for odd k.
+        if rlo > past_hi || rhi < past_lo {
+            let rail = if rlo > past_hi { self.hi } else { self.lo };
+            let mean = c[0] + c[2] / 6.0 + c[4] / 15.0 + c[6] / 28.0;
+            return (x[3] + (rail - mean)).clamp(self.lo - g, self.hi + g);
+        }
+        let four = [self.hi - w, self.hi + w, self.lo + w, self.lo - w];
+        let two = [self.hi, self.lo];
+        let bounds: &[f64] = if w > 0.0 { &four } else { &two };
+        let mut ts = [0.0f64; 3 + 4 * 7];
+        ts[0] = -1.0;
+        ts[1] = 0.0;
+        ts[2] = 1.0;
+        let mut n = 3;
+        if bounds.iter().any(|&bd| bd >= rlo && bd <= rhi) {
+            let mut dc = [0.0; 6];
+            for i in 1..7 {
+                dc[i - 1] = i as f64 * c[i];
+            }
+            let mut e = [0.0; 8];
+            let k = roots(&dc, &mut e, true);
+            let mut ends = [-1.0; 10];
+            ends[1..=k].copy_from_slice(&e[..k]);
+            ends[k + 1] = 1.0;
+            for j in 0..=k {
+                let (a, b) = (ends[j], ends[j + 1]);
+                let (xa, xb) = (horner(&c, a), horner(&c, b));
+                for &bd in bounds {
+                    let (ga, gb) = (xa - bd, xb - bd);
+                    if (ga < 0.0 && gb > 0.0) || (ga > 0.0 && gb < 0.0) {
+                        ts[n] = bracket_root(|t| horner(&c, t) - bd, |t| horner(&dc, t), a, b, ga);
+                        n += 1;
+                    } else if gb == 0.0 && b < 1.0 {
+                        ts[n] = b;
+                        n += 1;
+                    }
+                }
+            }
+        }
+        if n == 3 && !self.clipping(x[3]) {
+            return x[3];
+        }
+        let ts = &mut ts[..n];
+        ts.sort_unstable_by(f64::total_cmp);
+        let inv4w = 0.25 / w;
+        let mut acc = 0.0;
+        for pair in ts.windows(2) {
+            let (a, b) = (pair[0], pair[1]);
+            if b <= a {
+                continue;
+            }
+            let (mid, half) = (0.5 * (a + b), 0.5 * (b - a));
+            let xm = horner(&c, mid);
+            if xm >= past_hi {
+                acc += line_piece(&c, self.hi, a, b);
+            } else if xm <= past_lo {
+                acc += line_piece(&c, self.lo, a, b);
+            } else if xm > self.lo + w && xm < self.hi - w {
+                // linear region: no residual
+            } else if w > 0.0 {
+                // inside one knee: the residual is -+(x - knee)^2 / (4 w), one product per
+                // node (no branch, no division)
+                let (knee, sign) = if xm > 0.5 * (self.hi + self.lo) {
+                    (self.hi - w, -1.0)
+                } else {
+                    (self.lo + w, 1.0)
+                };
+                let mut q = 0.0;
+                for (&gt, &gw) in GL7_T.iter().zip(&GL7_W) {
+                    let t = mid + half * gt;
+                    let d = horner(&c, t) - knee;
+                    q += gw * (1.0 - t.abs()) * d * d;
+                }
+                acc += sign * half * q * inv4w;
+            }
+        }
+        (x[3] + acc).clamp(self.lo - g, self.hi + g)
+    }
+
+    /// The plain reference of [`Shaper::smooth7`]: the crossings by the plain root search,
+    /// every piece of the kernel's support by seven-point Gauss-Legendre quadrature (exact
+    /// for the polynomial pieces, so both agree to rounding; tested to 1e-12 V).
+    pub fn smooth7_reference(&self, x: &[f64; WINDOW]) -> f64 {
         let c = sextic(x);
         let w = self.w;
         let four = [self.hi - w, self.hi + w, self.lo + w, self.lo - w];
@@ -390,7 +505,7 @@ impl Shaper {
                 dc[i - 1] = i as f64 * c[i];
             }
             let mut e = [0.0; 8];
-            let k = roots(&dc, &mut e);
+            let k = roots(&dc, &mut e, false);
             let mut ends = [-1.0; 10];
             ends[1..=k].copy_from_slice(&e[..k]);
             ends[k + 1] = 1.0;
@@ -429,6 +544,26 @@ impl Shaper {
         let g = GIBBS * (self.hi - self.lo);
         (x[3] + acc).clamp(self.lo - g, self.hi + g)
     }
+}
+
+/// `integral over [a, b] of (1 - |t|) (rail - x(t)) dt` for the polynomial `x = c`, with `a`
+/// and `b` on one side of 0: the kernel times the residual past a knee, by the antiderivative
+/// of the degree-7 product.
+#[inline]
+fn line_piece(c: &[f64; 7], rail: f64, a: f64, b: f64) -> f64 {
+    let sg = if b <= 0.0 { -1.0 } else { 1.0 };
+    // g = rail - x, h = (1 - sg t) g, F = antiderivative of h
+    let mut gc = [0.0; 7];
+    for (gk, &ck) in gc.iter_mut().zip(c) {
+        *gk = -ck;
+    }
+    gc[0] += rail;
+    let mut f = [0.0; 9];
+    for k in 0..8 {
+        let hk = if k < 7 { gc[k] } else { 0.0 } - if k > 0 { sg * gc[k - 1] } else { 0.0 };
+        f[k + 1] = hk / (k + 1) as f64;
+    }
+    horner(&f, b) - horner(&f, a)
 }
 
 #[cfg(test)]

@@ -112,6 +112,13 @@ struct Rotor {
     /// cos / sin of `LANES` steps.
     rot_c: f64,
     rot_s: f64,
+    /// The lanes where the last [`Rotor::add`] left them: `cache_at` is the absolute index
+    /// of the first sample of the round they hold (`u64::MAX`: none). A call that continues
+    /// within the same run starts from them instead of rotating from the run's anchor again;
+    /// they are the very values that rotation would give, so the samples do not change.
+    cache_at: u64,
+    cache_s: [f64; LANES],
+    cache_c: [f64; LANES],
 }
 
 impl Rotor {
@@ -132,6 +139,9 @@ impl Rotor {
             lane_s,
             rot_c,
             rot_s,
+            cache_at: u64::MAX,
+            cache_s: [0.0; LANES],
+            cache_c: [0.0; LANES],
         }
     }
 
@@ -140,21 +150,12 @@ impl Rotor {
     /// run's first sample and advance the same way whatever the calls' sizes, so any chunking
     /// gives the same samples bit for bit.
     #[inline(always)]
-    fn add(&self, out: &mut [f64], n: u64) {
+    fn add(&mut self, out: &mut [f64], n: u64) {
+        if out.is_empty() {
+            return;
+        }
         let k = (n % ANCHOR as u64) as usize;
         let run0 = n - k as u64;
-        let acc = self
-            .phase
-            .start
-            .wrapping_add(self.phase.step.wrapping_mul(run0));
-        let (s0, c0) = sin_cos_cycles(acc as f64 * TWO_M64);
-        let (s0, c0) = (self.amp * s0, self.amp * c0);
-        let mut s = [0.0; LANES];
-        let mut c = [0.0; LANES];
-        for j in 0..LANES {
-            s[j] = s0 * self.lane_c[j] + c0 * self.lane_s[j];
-            c[j] = c0 * self.lane_c[j] - s0 * self.lane_s[j];
-        }
         let (rc, rs) = (self.rot_c, self.rot_s);
         let rotate = |s: &mut [f64; LANES], c: &mut [f64; LANES]| {
             for j in 0..LANES {
@@ -164,9 +165,27 @@ impl Rotor {
                 c[j] = nc;
             }
         };
-        for _ in 0..k / LANES {
-            rotate(&mut s, &mut c);
-        }
+        let round_at = run0 + (k / LANES * LANES) as u64;
+        let (mut s, mut c) = if self.cache_at == round_at {
+            (self.cache_s, self.cache_c)
+        } else {
+            let acc = self
+                .phase
+                .start
+                .wrapping_add(self.phase.step.wrapping_mul(run0));
+            let (s0, c0) = sin_cos_cycles(acc as f64 * TWO_M64);
+            let (s0, c0) = (self.amp * s0, self.amp * c0);
+            let mut s = [0.0; LANES];
+            let mut c = [0.0; LANES];
+            for j in 0..LANES {
+                s[j] = s0 * self.lane_c[j] + c0 * self.lane_s[j];
+                c[j] = c0 * self.lane_c[j] - s0 * self.lane_s[j];
+            }
+            for _ in 0..k / LANES {
+                rotate(&mut s, &mut c);
+            }
+            (s, c)
+        };
         let end = k + out.len();
         let mut i = k;
         let mut o = 0;
@@ -194,6 +213,14 @@ impl Rotor {
             *y += sj;
         }
         debug_assert_eq!(i + out.len() - o, end);
+        // a run that ends here starts the next from its own anchor: nothing to keep
+        if end < ANCHOR {
+            self.cache_at = run0 + (end / LANES * LANES) as u64;
+            self.cache_s = s;
+            self.cache_c = c;
+        } else {
+            self.cache_at = u64::MAX;
+        }
     }
 }
 
@@ -264,7 +291,7 @@ impl Generator for Multitone {
         let len = out.len() as u64;
         for (run, n) in runs(out, self.n) {
             run.fill(0.0);
-            for t in &self.tones {
+            for t in &mut self.tones {
                 t.add(run, n);
             }
         }
@@ -493,7 +520,9 @@ impl Generator for BandLimited {
         for y in out {
             let p = self.phase.next_fixed();
             let i = (p >> shift) as usize;
-            let t = ((p << self.bits) >> 11) as f64 * (1.0 / 9_007_199_254_740_992.0);
+            // below 2^53: exact through the signed conversion (one instruction, where the
+            // unsigned one takes several)
+            let t = ((p << self.bits) >> 11) as i64 as f64 * (1.0 / 9_007_199_254_740_992.0);
             let (y0, y1) = (self.value[i], self.value[i + 1]);
             let (m0, m1) = (self.slope[i], self.slope[i + 1]);
             // Cubic Hermite on the unit interval.

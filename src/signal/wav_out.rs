@@ -73,6 +73,21 @@ pub struct WriteStats {
 }
 
 const CHUNK: usize = 4096;
+
+/// `x.round()` (half away from zero) for `|x| <= 2^51`, without a library call: adding and
+/// removing 1.5 * 2^52 rounds to the nearest integer, ties to even (the default rounding
+/// mode); a tie (exactly half way, so `x +- 0.5` is exact) is then taken away from zero. Exact, so the same as
+/// `f64::round` for every such `x` (tested in this module).
+#[inline(always)]
+fn round_half_away(x: f64) -> f64 {
+    const MAGIC: f64 = 6_755_399_441_055_744.0; // 1.5 * 2^52
+    let r = (x + MAGIC) - MAGIC;
+    if (x - r).abs() == 0.5 {
+        x + 0.5f64.copysign(x)
+    } else {
+        r
+    }
+}
 const PCM_HEADER: u64 = 44;
 const FLOAT_HEADER: u64 = 58;
 
@@ -136,28 +151,43 @@ impl<W: Write + Seek> WavWriter<W> {
             return Err(SignalError::TooLong);
         }
         for block in samples.chunks(CHUNK) {
-            for (k, &v) in block.iter().enumerate() {
-                let x = v * self.inv_fs;
-                let dst = &mut self.bytes[k * bps..(k + 1) * bps];
-                let (x, clip) = if x.is_nan() {
-                    (0.0, true)
+            let inv_fs = self.inv_fs;
+            let mut clipped = 0u64;
+            // scaled, NaN -> 0 and clamped to full scale; counts what was out of range
+            let mut scaled = |v: f64| {
+                let x = v * inv_fs;
+                if x.is_nan() {
+                    clipped += 1;
+                    0.0
                 } else {
-                    (x.clamp(-1.0, 1.0), x.abs() > 1.0)
-                };
-                self.clipped += u64::from(clip);
-                match self.spec.depth {
-                    Depth::Pcm16 => {
+                    clipped += u64::from(x.abs() > 1.0);
+                    x.clamp(-1.0, 1.0)
+                }
+            };
+            match self.spec.depth {
+                Depth::Pcm16 => {
+                    for (&v, dst) in block.iter().zip(self.bytes.chunks_exact_mut(2)) {
+                        let x = scaled(v);
                         let d = self.rng.uniform() - self.rng.uniform();
-                        let c = (x * 32_768.0 + d).round().clamp(-32_768.0, 32_767.0) as i16;
+                        let c = round_half_away(x * 32_768.0 + d).clamp(-32_768.0, 32_767.0) as i16;
                         dst.copy_from_slice(&c.to_le_bytes());
                     }
-                    Depth::Pcm24 => {
-                        let c = (x * 8_388_608.0).round().clamp(-8_388_608.0, 8_388_607.0) as i32;
+                }
+                Depth::Pcm24 => {
+                    for (&v, dst) in block.iter().zip(self.bytes.chunks_exact_mut(3)) {
+                        let x = scaled(v);
+                        let c = round_half_away(x * 8_388_608.0).clamp(-8_388_608.0, 8_388_607.0)
+                            as i32;
                         dst.copy_from_slice(&c.to_le_bytes()[..3]);
                     }
-                    Depth::Float32 => dst.copy_from_slice(&(x as f32).to_le_bytes()),
+                }
+                Depth::Float32 => {
+                    for (&v, dst) in block.iter().zip(self.bytes.chunks_exact_mut(4)) {
+                        dst.copy_from_slice(&(scaled(v) as f32).to_le_bytes());
+                    }
                 }
             }
+            self.clipped += clipped;
             self.out
                 .write_all(&self.bytes[..block.len() * bps])
                 .map_err(SignalError::Stream)?;
@@ -326,4 +356,43 @@ pub fn listen_gain_from(rms: f64, peak: f64, target_rms_dbfs: f64, full_scale: f
     let want = full_scale * 10f64.powf(target_rms_dbfs / 20.0) / (std::f64::consts::SQRT_2 * rms);
     let guard = full_scale * 10f64.powf(LISTEN_PEAK_DBFS / 20.0) / peak;
     want.min(guard)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::round_half_away;
+
+    #[test]
+    fn round_half_away_equals_the_library_round() {
+        // Reference: f64::round (half away from zero), on ties, their neighbours one ulp
+        // away, and a dense spread of the range a 24-bit sample uses.
+        let mut xs = vec![
+            0.0,
+            -0.0,
+            0.49999999999999994,
+            -0.49999999999999994,
+            8_388_607.5,
+        ];
+        for k in -40i32..=40 {
+            let t = f64::from(k) + 0.5;
+            xs.extend([
+                t,
+                -t,
+                t.next_up(),
+                t.next_down(),
+                -t.next_up(),
+                -t.next_down(),
+            ]);
+        }
+        let mut s = 0x2545_f491_4f6c_dd1du64;
+        for _ in 0..200_000 {
+            s ^= s << 13;
+            s ^= s >> 7;
+            s ^= s << 17;
+            xs.push((s >> 11) as f64 / (1u64 << 53) as f64 * 2.0 * 8_388_609.0 - 8_388_609.0);
+        }
+        for x in xs {
+            assert_eq!(round_half_away(x), x.round(), "{x:e}");
+        }
+    }
 }
