@@ -17,19 +17,25 @@
 //!   that input sees.
 //!
 //! # Gains: nodal analysis at each frequency
-//! The patch becomes a small linear network: a node voltage for each op-amp output, each
-//! inverting input, each pot wiper and each series-resistor/load junction; sources and
-//! references are fixed (0 V for noise). Resistors are branches (with an input's coupling
-//! capacitor in series, a feedback capacitor across); each resistor's noise is a voltage in
-//! series with it, entered as its Norton current. Each op-amp is an ideal controlled voltage
-//! source `Vout = A(f) (V+ + en - V-)` with a single-pole open loop
-//! `A = A0 / (1 + j f A0 / GBW)` (or `GBW / (j f)` without a DC gain); current noise enters as
-//! a current into each input node that has a resistance to it. Kirchhoff's current law at
-//! every undriven node plus one op-amp equation per output is solved (complex LU with partial
-//! pivoting) for all sources at once through the adjoint system, one solve per output. So a
-//! source that reaches an output along two paths adds in amplitude, and a pot wiper with
-//! several loads on it is solved with all of them (all outputs' loads are connected, as in a
-//! render). For a resistive chain the result is the textbook set of noise gains:
+//! The budget reads the patch's one circuit ([`crate::circuit::build::patch_circuit`], the
+//! circuit the engine, `response` and `check` read): shorthand stages expanded into their
+//! textbook parts, networks as written, every output's series resistor and load. Every node
+//! of it is an unknown except the fixed ones (ground, rails, references) and the sources
+//! (ideal and noiseless: 0 V for noise, their output resistance shorted). A pot segment at
+//! its floor ([`POT_END_R`], the wiper at that end of the track) is a short, as the taper
+//! says. Each resistor is a branch with its thermal noise as a voltage in series, entered as
+//! its Norton current `e / R`; each capacitor a branch; each diode junction its
+//! small-signal conductance at the patch's rest (DC) point, with its shot noise
+//! `sqrt(2 q I)` at that current (Schottky, 1918) as a series voltage over that
+//! conductance. Each op-amp is an ideal controlled voltage source
+//! `Vout = A(f) (V+ + en - V-)` with a single-pole open loop `A = A0 / (1 + j f A0 / GBW)`
+//! (or `GBW / (j f)` without a DC gain); its current noise enters as a current into each
+//! input node that is not driven. Kirchhoff's current law at every undriven node plus one
+//! op-amp equation per output is solved (complex LU with partial pivoting) for all sources
+//! at once through the adjoint system, one solve per output. So a source that reaches an
+//! output along two paths adds in amplitude, and a pot wiper with several loads on it is
+//! solved with all of them (all outputs' loads are connected, as in a render). For a
+//! resistive chain the result is the textbook set of noise gains:
 //! - inverting summer: each input and its `Ri` at `-Rf / (Ri + Rs_i)` (`Rs_i` the driving
 //!   wiper's resistance), `Rf` at 1, `en` at the noise gain `NG = 1 + Rf / Rpar` (all
 //!   `Ri + Rs_i` in parallel), `in-` at `Rf`; the non-inverting input sits at the reference,
@@ -43,19 +49,18 @@
 //!   `Rser` included;
 //! - each op-amp stage's gains times `1 / (1 + NG / A(f))`: `G0 / (1 + j f NG / GBW)`.
 //!
-//! # Network stages
-//! A network stage is read from the patch's one circuit
-//! ([`crate::circuit::build::patch_circuit`], the circuit `response` and `check` solve):
-//! every resistor of the stage (a pot's two track segments, a diode's series resistance)
-//! with its thermal noise, labelled by its key (`stages.NAME.parts[2]`,
-//! `stages.NAME.parts[4].lower`), every capacitor, every diode junction as its small-signal
-//! conductance at the patch's rest (DC) point with its shot noise `sqrt(2 q I)` at that
-//! current (Schottky, 1918), and every op-amp with its `en` and its `in` into each input
-//! (`stages.NAME.amps[0] en`, `in+`, `in-`). What the network reads is loaded by it, as in
-//! `response`. The shorthand stages keep their own netlist above (their labels name the
-//! shorthand keys, `inputs[2].r`, `feedback.r`); the two agree on the same circuit
-//! (`tests/network_examples.rs`).
-//!
+//! # Labels and notes
+//! Every contributor is named by its patch key, which the circuit's element labels carry:
+//! `stages.mix.inputs[2].r`, `stages.mix.feedback.r`, `stages.inv.r_in`,
+//! `stages.vol.pot upper`, a network's `stages.lp.parts[2]` (a pot's `parts[4].lower`, a
+//! diode's series resistance `parts[1].rs`), `stages.NAME en`, `in+` (with the resistance
+//! it flows through), `in-` (with the feedback resistor), a network op-amp's
+//! `stages.NAME.amps[0] en`, `outputs.NAME.series`, `outputs.NAME.load`. The notes name every
+//! op-amp whose closed-loop bandwidth `GBW / NG` falls inside the band (`NG` the inverse of
+//! its resistive feedback fraction) and every shorthand capacitor whose corner
+//! `1 / (2 pi R C)` does (`R` the resistance it sees: its open-circuit time constant over
+//! `C`); a network's interacting capacitors are left to `response`.
+
 //! # Band
 //! Spot densities are `|H(1 kHz)|` times the source density at 1 kHz. Band powers are
 //! `d^2 (integral of |H|^2 df + fc * integral of |H|^2 / f df)`; with a flat gain these are the
@@ -71,7 +76,8 @@
 //!   inside the band are flagged (their roll-off is in the gains).
 //! - Capacitor corners `1 / (2 pi R C)` inside the band are named in the notes (they are in
 //!   the gains too).
-//! - Sources are ideal (noiseless, zero impedance); references (`ref`) are ideal voltages.
+//! - Sources are noiseless voltages; a source's output resistance (`[sources.X] r`) is a
+//!   resistor with its thermal noise (`sources.X.r`); references (`ref`) are ideal voltages.
 //! - The load resistor of an output belongs to the next module but is physically there: it is
 //!   counted, labelled `outputs.NAME.load`, and the notes (and
 //!   [`OutputBudget::rms_without_load`]) give the total without it.
@@ -81,9 +87,8 @@ use std::f64::consts::PI;
 use rustfft::num_complex::Complex;
 use serde::Serialize;
 
-use crate::model::{Node, Patch, StageKind};
+use crate::model::{Node, Patch, StageKind, POT_END_R};
 use crate::parts::diodes::ELEMENTARY_CHARGE;
-use crate::parts::taper;
 
 type C = Complex<f64>;
 use crate::units::{fmt_eng, fmt_resistance};
@@ -212,10 +217,6 @@ fn real(x: f64) -> C {
 enum Imp {
     /// A resistor.
     R(f64),
-    /// A resistor in series with a capacitor (an input with a coupling capacitor).
-    Series(f64, f64),
-    /// A resistor with a capacitor across it (a feedback element).
-    Parallel(f64, f64),
     /// A capacitor (a network's part).
     Cap(f64),
     /// A conductance (a network's diode at its rest point), S.
@@ -227,8 +228,6 @@ impl Imp {
         let w = 2.0 * PI * f;
         match self {
             Imp::R(r) => real(r),
-            Imp::Series(r, c) => C::new(r, -1.0 / (w * c)),
-            Imp::Parallel(r, c) => real(r) / C::new(1.0, w * r * c),
             Imp::Cap(c) => C::new(0.0, -1.0 / (w * c)),
             Imp::G(g) => real(1.0 / g),
         }
@@ -237,8 +236,8 @@ impl Imp {
     /// voltage is in series with the whole branch, `1 / R` when a capacitor is across it.
     fn norton(self, f: f64) -> C {
         match self {
-            Imp::R(r) | Imp::Parallel(r, _) => real(1.0 / r),
-            Imp::Series(..) | Imp::Cap(_) | Imp::G(_) => real(1.0) / self.z(f),
+            Imp::R(r) => real(1.0 / r),
+            Imp::Cap(_) | Imp::G(_) => real(1.0) / self.z(f),
         }
     }
 }
@@ -299,12 +298,16 @@ fn thermal_label(key: &str, r: f64) -> String {
     format!("{key} ({}, thermal)", fmt_resistance(r))
 }
 
-fn corner_note(key: &str, r: f64, c: f64, band: (f64, f64), what: &str) -> Option<String> {
+/// A capacitor's corner `1 / (2 pi R C)`, `R` the resistance it sees (its open-circuit time
+/// constant over `C`), when it falls inside the band.
+fn corner_note(key: &str, r: f64, c: f64, band: (f64, f64)) -> Option<String> {
     let f = 1.0 / (2.0 * PI * r * c);
     (f > band.0 && f < band.1).then(|| {
         format!(
-            "{key}: {what} corner 1 / (2 pi R C) = {} is inside the band (included in the gains)",
-            fmt_eng(f, "Hz")
+            "{key}: corner 1 / (2 pi R C) = {} (R = {}, the resistance it sees) is inside the \
+             band (included in the gains)",
+            fmt_eng(f, "Hz"),
+            fmt_resistance(r)
         )
     })
 }
@@ -335,7 +338,7 @@ impl Netlist {
     /// A resistor (with its optional capacitor) between `a` and `b`, with its thermal noise.
     fn resistor(&mut self, a: Option<usize>, b: Option<usize>, imp: Imp, label: String, t: f64) {
         let r = match imp {
-            Imp::R(r) | Imp::Series(r, _) | Imp::Parallel(r, _) => r,
+            Imp::R(r) => r,
             Imp::Cap(_) => 0.0,
             Imp::G(g) => 1.0 / g,
         };
@@ -372,6 +375,7 @@ impl Netlist {
     }
 
     fn build(patch: &Patch, band: (f64, f64)) -> Netlist {
+        use crate::circuit::{ElemKind, NodeKind};
         let t = patch.temperature;
         let n = patch.stages.len();
         let mut net = Netlist {
@@ -383,297 +387,236 @@ impl Netlist {
             sources: Vec::new(),
             notes: Vec::new(),
         };
-        // per stage: its output unknown, unloaded Thevenin resistance (for labels and the flat
-        // noise gain), notes and upstream stages
-        let mut outs: Vec<Option<usize>> = Vec::with_capacity(n);
-        let mut rth: Vec<f64> = Vec::with_capacity(n);
-        let mut stage_notes: Vec<Vec<String>> = Vec::with_capacity(n);
-        let mut upstream: Vec<Vec<bool>> = Vec::with_capacity(n);
-        // Network stages come from the patch's one circuit (`circuit::build::patch_circuit`,
-        // with its rest point for the diodes): each of its nodes becomes an unknown when
-        // first met; sources are ideal (as for the shorthand), a shorthand stage's output is
-        // its unknown here.
-        let whole = patch
-            .stages
-            .iter()
-            .any(|s| matches!(s.kind, StageKind::Network(_)))
-            .then(|| crate::response::node_gains(patch, &[]));
-        let mut node_map: Vec<Option<Option<usize>>> = Vec::new();
-        if let Some(Ok(ng)) = &whole {
-            node_map = vec![None; ng.circuit.circuit.nodes.len()];
-            for &k in ng.circuit.sources.iter().chain(&ng.circuit.source_nodes) {
-                node_map[k] = Some(None);
+        // The patch's one circuit (`circuit::build::patch_circuit`, the circuit `response`,
+        // `check` and the engine read) with its rest point (for the diodes' conductances).
+        let mut global_notes = Vec::new();
+        let (pc, rest) = match crate::response::node_gains(patch, &[]) {
+            Ok(ng) => (ng.circuit, ng.rest),
+            Err(e) => {
+                let pc = crate::circuit::build::patch_circuit(patch);
+                if pc
+                    .circuit
+                    .elems
+                    .iter()
+                    .any(|e| matches!(e.kind, ElemKind::Junction { .. }))
+                {
+                    global_notes.push(format!(
+                        "the patch's circuit has no rest point ({e}), so its diodes are taken \
+                         at 0 V"
+                    ));
+                }
+                let rest = vec![0.0; pc.circuit.nodes.len()];
+                (pc, rest)
+            }
+        };
+        // open-circuit time constant of every capacitor: the corner it sets
+        let tau = crate::response::capacitor_time_constants(patch)
+            .map(|(_, tau)| tau)
+            .unwrap_or_default();
+        let c = &pc.circuit;
+        let nn = c.nodes.len();
+        // A pot segment at its floor (`POT_END_R`: the taper puts the wiper at that end) is
+        // a short for the budget, as the taper says: its nodes are one.
+        let short = |e: &crate::circuit::Elem| match e.kind {
+            ElemKind::R(r) => {
+                r <= POT_END_R
+                    && (e.label.starts_with("pot ")
+                        || e.label.ends_with(".lower")
+                        || e.label.ends_with(".upper"))
+            }
+            _ => false,
+        };
+        let mut root: Vec<usize> = (0..nn).collect();
+        fn find(root: &mut [usize], mut x: usize) -> usize {
+            while root[x] != x {
+                root[x] = root[root[x]];
+                x = root[x];
+            }
+            x
+        }
+        for e in c.elems.iter().filter(|e| short(e)) {
+            let (ra, rb) = (find(&mut root, e.a), find(&mut root, e.b));
+            if ra != rb {
+                root[ra] = rb;
             }
         }
+        let root: Vec<usize> = (0..nn).map(|k| find(&mut root, k)).collect();
+        // fixed for noise: ground, rails, references, the sources' ideal voltages
+        let mut fixed = vec![false; nn];
+        for k in 0..nn {
+            if !matches!(c.nodes[k].kind, NodeKind::Free) {
+                fixed[root[k]] = true;
+            }
+        }
+        let mut driven = vec![false; nn];
+        for a in &c.amps {
+            driven[root[a.out]] = true;
+        }
+        let mut unknown: Vec<Option<Option<usize>>> = vec![None; nn];
+        let mut map = |k: usize, net: &mut Netlist| -> Option<usize> {
+            let r = root[k];
+            if let Some(m) = unknown[r] {
+                return m;
+            }
+            let m = (!fixed[r]).then(|| net.unknown(driven[r]));
+            unknown[r] = Some(m);
+            m
+        };
+        let amp_outs: Vec<usize> = c.amps.iter().map(|a| a.out).collect();
+        let mut virtual_grounds = amp_outs.clone();
+        virtual_grounds.extend(c.amps.iter().map(|a| a.minus));
+
+        // a source's output resistance (`[sources.X] r`): a resistor like any other, with
+        // its thermal noise
+        for e in c.elems.iter().filter(|e| e.label.starts_with("sources.")) {
+            if let ElemKind::R(r) = e.kind {
+                let (a, b) = (map(e.a, &mut net), map(e.b, &mut net));
+                net.resistor(a, b, Imp::R(r), thermal_label(&e.label, r), t);
+            }
+        }
+        let mut stage_notes: Vec<Vec<String>> = Vec::with_capacity(n);
+        let mut upstream: Vec<Vec<bool>> = Vec::with_capacity(n);
         for (si, stage) in patch.stages.iter().enumerate() {
             let key = format!("stages.{}", stage.name);
-            let node_of = |node: Node, outs: &Vec<Option<usize>>| match node {
-                Node::Source(_) => None,
-                Node::Stage(j) => outs[j],
-            };
-            let rth_of = |node: Node, rth: &Vec<f64>| match node {
-                Node::Source(_) => 0.0,
-                Node::Stage(j) => rth[j],
-            };
             let mut up = vec![false; n];
-            let mut mark = |node: Node| {
-                if let Node::Stage(j) = node {
+            for x in stage.kind.reads() {
+                if let Node::Stage(j) = x {
                     up[j] = true;
                     for (k, u) in upstream[j].iter().enumerate() {
                         up[k] |= *u;
                     }
                 }
-            };
+            }
             let mut notes = Vec::new();
-            let mut out_node = None;
-            let mut out_r = 0.0;
-            let mut ng_flat = None;
-            let part = stage.part.as_ref();
-            match &stage.kind {
-                StageKind::InvertingSum {
-                    inputs,
-                    feedback,
-                    single,
-                    ..
-                } => {
-                    let out = net.unknown(true);
-                    let minus = net.unknown(false);
-                    let rf = feedback.r;
-                    let mut g_flat = 0.0;
-                    for (k, inp) in inputs.iter().enumerate() {
-                        mark(inp.from);
-                        let r_tot = inp.r + rth_of(inp.from, &rth);
-                        g_flat += 1.0 / r_tot;
-                        let (rkey, ckey) = if *single {
-                            (format!("{key}.r_in"), format!("{key}.c_in"))
+            let mut diodes = false;
+            for ei in pc.stage_elems[si].clone() {
+                let e = &c.elems[ei];
+                if short(e) {
+                    continue;
+                }
+                let (a, b) = (map(e.a, &mut net), map(e.b, &mut net));
+                let ekey = format!("{key}.{}", e.label);
+                match e.kind {
+                    ElemKind::R(r) => {
+                        let label = if e.label == "feedback.pot" {
+                            format!("{ekey} ({} set, thermal)", fmt_resistance(r))
                         } else {
-                            (
-                                format!("{key}.inputs[{k}].r"),
-                                format!("{key}.inputs[{k}].c"),
-                            )
+                            thermal_label(&ekey, r)
                         };
-                        let imp = match inp.c {
-                            Some(c) => {
-                                notes.extend(corner_note(&ckey, r_tot, c, band, "high-pass"));
-                                Imp::Series(inp.r, c)
-                            }
-                            None => Imp::R(inp.r),
-                        };
-                        let from = node_of(inp.from, &outs);
-                        net.resistor(from, Some(minus), imp, thermal_label(&rkey, inp.r), t);
+                        net.resistor(a, b, Imp::R(r), label, t);
                     }
-                    let fb_label = match (&feedback.pot, single) {
-                        (Some(_), _) => {
-                            format!("{key}.feedback.pot ({} set, thermal)", fmt_resistance(rf))
+                    ElemKind::C(cap) => {
+                        net.branch(a, b, Imp::Cap(cap), None);
+                        // a shorthand's capacitor sets one corner (its open-circuit time
+                        // constant); in a network several interact (`response` shows them)
+                        let tc = tau.get(ei).copied().unwrap_or(0.0);
+                        let network = matches!(stage.kind, StageKind::Network(_));
+                        if !network && tc > 0.0 && tc.is_finite() {
+                            notes.extend(corner_note(&ekey, tc / cap, cap, band));
                         }
-                        (None, true) => thermal_label(&format!("{key}.r_fb"), rf),
-                        (None, false) => thermal_label(&format!("{key}.feedback.r"), rf),
-                    };
-                    let imp = match feedback.c {
-                        Some(c) => {
-                            let ckey = if *single && feedback.pot.is_none() {
-                                format!("{key}.c_fb")
-                            } else {
-                                format!("{key}.feedback.c")
-                            };
-                            notes.extend(corner_note(&ckey, rf, c, band, "low-pass"));
-                            Imp::Parallel(rf, c)
-                        }
-                        None => Imp::R(rf),
-                    };
-                    net.resistor(Some(minus), Some(out), imp, fb_label, t);
-                    ng_flat = Some(1.0 + rf * g_flat);
-                    let mut en = None;
-                    if let Some(p) = part {
-                        en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
-                        let label = format!("{key} in- ({}, into {})", p.name, fmt_resistance(rf));
-                        net.inject(Some(minus), label, p.inoise);
                     }
-                    net.amps.push(Amp {
-                        out,
-                        plus: None,
-                        minus: Some(minus),
-                        gbw: part.map_or(f64::INFINITY, |p| p.gbw),
-                        a0: part.and_then(|p| p.a0),
-                        en,
-                    });
-                    out_node = Some(out);
+                    ElemKind::Junction { is, nvt } => {
+                        diodes = true;
+                        let v = (rest[e.a] - rest[e.b]).min(200.0 * nvt);
+                        let x = (v / nvt).exp();
+                        let i = is * (x - 1.0);
+                        let g = is / nvt * x + crate::circuit::GMIN;
+                        // shot noise of the junction current, sqrt(2 q |I|) A/sqrt(Hz)
+                        // (Schottky 1918), as a series voltage over its conductance
+                        let dens = (2.0 * ELEMENTARY_CHARGE * i.abs()).sqrt() / g;
+                        let label =
+                            format!("{ekey} (diode, shot noise at {} rest)", fmt_eng(i, "A"));
+                        net.branch(a, b, Imp::G(g), Some((label, dens)));
+                    }
                 }
-                StageKind::NonInverting {
-                    from,
-                    r_fb,
-                    c_fb,
-                    r_g,
-                    ..
-                } => {
-                    mark(*from);
-                    let plus = node_of(*from, &outs);
-                    let rs = rth_of(*from, &rth);
-                    let out = net.unknown(true);
-                    let minus = net.unknown(false);
-                    let imp = match c_fb {
-                        Some(c) => {
-                            notes.extend(corner_note(
-                                &format!("{key}.c_fb"),
-                                *r_fb,
-                                *c,
-                                band,
-                                "low-pass",
+            }
+            if diodes {
+                notes.push(format!(
+                    "{key}: diodes at their small-signal conductance at the rest (DC) point, \
+                     with their shot noise 2 q I there"
+                ));
+            }
+            for (j, ai) in pc.stage_amps[si].clone().enumerate() {
+                let ca = &c.amps[ai];
+                // the part's noise figures (the circuit's op-amp carries its dynamics only)
+                let (part, akey, who) = match &stage.kind {
+                    StageKind::Network(nw) => {
+                        let Some(na) = nw.amps.get(j) else { continue };
+                        (Some(&na.part), format!("{key}.amps[{j}]"), Some(&na.name))
+                    }
+                    _ => (stage.part.as_ref(), key.clone(), None),
+                };
+                let (out, plus, minus) = (
+                    map(ca.out, &mut net),
+                    map(ca.plus, &mut net),
+                    map(ca.minus, &mut net),
+                );
+                let mut en = None;
+                if let Some(p) = part {
+                    let tag = match who {
+                        Some(name) => format!("{name}, {}", p.name),
+                        None => p.name.clone(),
+                    };
+                    en = net.register(format!("{akey} en ({tag})"), p.en, p.en_corner);
+                    // shorthand labels say what the current flows through: the feedback
+                    // resistor (into the virtual ground), the source's resistance at V+
+                    let into = match &stage.kind {
+                        StageKind::InvertingSum { feedback, .. } => {
+                            format!(", into {}", fmt_resistance(feedback.r))
+                        }
+                        StageKind::NonInverting { r_fb, .. } => {
+                            format!(", into {}", fmt_resistance(*r_fb))
+                        }
+                        _ => String::new(),
+                    };
+                    let through = if who.is_none() {
+                        let g = c.load_conductance(ca.plus, &virtual_grounds);
+                        let rs = if g > 0.0 { 1.0 / g } else { 0.0 };
+                        format!(", through {}", fmt_resistance(rs))
+                    } else {
+                        String::new()
+                    };
+                    net.inject(plus, format!("{akey} in+ ({tag}{through})"), p.inoise);
+                    if minus != out {
+                        net.inject(minus, format!("{akey} in- ({tag}{into})"), p.inoise);
+                    }
+                    // closed-loop bandwidth: GBW over the noise gain 1 / beta, beta the
+                    // resistive feedback fraction from the output to the inputs
+                    let others: Vec<usize> =
+                        amp_outs.iter().copied().filter(|&o| o != ca.out).collect();
+                    if let Some(v) = c.dc_voltages(ca.out, &others) {
+                        let beta = v[ca.minus] - v[ca.plus];
+                        let ng = 1.0 / beta;
+                        let bw = p.gbw / ng;
+                        if beta > 1e-9 && bw.is_finite() && bw < band.1 {
+                            notes.push(format!(
+                                "{akey}: closed-loop bandwidth GBW / noise gain = {} / {:.2} = \
+                                 {} is inside the band (its single-pole roll-off is included \
+                                 in the gains)",
+                                fmt_eng(p.gbw, "Hz"),
+                                ng,
+                                fmt_eng(bw, "Hz")
                             ));
-                            Imp::Parallel(*r_fb, *c)
                         }
-                        None => Imp::R(*r_fb),
-                    };
-                    let fb = thermal_label(&format!("{key}.r_fb"), *r_fb);
-                    net.resistor(Some(minus), Some(out), imp, fb, t);
-                    let rg = thermal_label(&format!("{key}.r_g"), *r_g);
-                    net.resistor(Some(minus), None, Imp::R(*r_g), rg, t);
-                    ng_flat = Some(1.0 + r_fb / r_g);
-                    let mut en = None;
-                    if let Some(p) = part {
-                        en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
-                        let label =
-                            format!("{key} in- ({}, into {})", p.name, fmt_resistance(*r_fb));
-                        net.inject(Some(minus), label, p.inoise);
-                        let label =
-                            format!("{key} in+ ({}, through {})", p.name, fmt_resistance(rs));
-                        net.inject(plus, label, p.inoise);
                     }
+                }
+                if let Some(out) = out {
                     net.amps.push(Amp {
                         out,
                         plus,
-                        minus: Some(minus),
+                        minus,
                         gbw: part.map_or(f64::INFINITY, |p| p.gbw),
                         a0: part.and_then(|p| p.a0),
                         en,
                     });
-                    out_node = Some(out);
-                }
-                StageKind::Follower { from } => {
-                    mark(*from);
-                    let plus = node_of(*from, &outs);
-                    let rs = rth_of(*from, &rth);
-                    let out = net.unknown(true);
-                    ng_flat = Some(1.0);
-                    let mut en = None;
-                    if let Some(p) = part {
-                        en = net.register(format!("{key} en ({})", p.name), p.en, p.en_corner);
-                        let label =
-                            format!("{key} in+ ({}, through {})", p.name, fmt_resistance(rs));
-                        net.inject(plus, label, p.inoise);
-                    }
-                    net.amps.push(Amp {
-                        out,
-                        plus,
-                        minus: Some(out),
-                        gbw: part.map_or(f64::INFINITY, |p| p.gbw),
-                        a0: part.and_then(|p| p.a0),
-                        en,
-                    });
-                    out_node = Some(out);
-                }
-                StageKind::Attenuator {
-                    from,
-                    pot,
-                    taper: law,
-                    at,
-                } => {
-                    mark(*from);
-                    let src = node_of(*from, &outs);
-                    let y = taper::fraction(*law, *at);
-                    let upper = pot * (1.0 - y);
-                    let lower = pot * y;
-                    let ul = thermal_label(&format!("{key}.pot upper"), upper);
-                    let ll = thermal_label(&format!("{key}.pot lower"), lower);
-                    if lower <= 0.0 {
-                        // wiper at the ground end
-                        if upper > 0.0 {
-                            net.resistor(src, None, Imp::R(upper), ul, t);
-                        }
-                    } else if upper <= 0.0 {
-                        // wiper at the top: the input node itself
-                        net.resistor(src, None, Imp::R(lower), ll, t);
-                        out_node = src;
-                    } else {
-                        let w = net.unknown(false);
-                        net.resistor(src, Some(w), Imp::R(upper), ul, t);
-                        net.resistor(Some(w), None, Imp::R(lower), ll, t);
-                        out_node = Some(w);
-                    }
-                    let top = rth_of(*from, &rth) + upper;
-                    out_r = if top + lower > 0.0 {
-                        top * lower / (top + lower)
-                    } else {
-                        0.0
-                    };
-                }
-                StageKind::Network(nw) => {
-                    for x in nw.reads() {
-                        mark(x);
-                    }
-                    match &whole {
-                        Some(Ok(ng)) => {
-                            out_node = net.network(ng, si, nw, &key, &mut node_map, t);
-                            if nw
-                                .parts
-                                .iter()
-                                .any(|p| matches!(p.kind, crate::model::NetPartKind::Diode(_)))
-                            {
-                                notes.push(format!(
-                                    "{key}: diodes at their small-signal conductance at the \
-                                     rest (DC) point, with their shot noise 2 q I there"
-                                ));
-                            }
-                        }
-                        _ => notes.push(format!(
-                            "{key}: the patch's circuit has no rest point, so this network \
-                             is not in the budget"
-                        )),
-                    }
                 }
             }
-            if let (Some(p), Some(ng)) = (part, ng_flat) {
-                let bw = p.gbw / ng;
-                if bw < band.1 {
-                    notes.push(format!(
-                        "{key}: closed-loop bandwidth GBW / noise gain = {} / {:.2} = {} is \
-                         inside the band (its single-pole roll-off is included in the gains)",
-                        fmt_eng(p.gbw, "Hz"),
-                        ng,
-                        fmt_eng(bw, "Hz")
-                    ));
-                }
-            }
-            outs.push(out_node);
-            if let Some(Ok(ng)) = &whole {
-                let k = ng.circuit.stages[si];
-                if node_map[k].is_none() {
-                    node_map[k] = Some(out_node);
-                }
-            }
-            rth.push(out_r);
             stage_notes.push(notes);
             upstream.push(up);
         }
 
-        for out in &patch.outputs {
+        for (o, out) in patch.outputs.iter().enumerate() {
             let key = format!("outputs.{}", out.name);
-            let from = match (out.from, out.inner, &whole) {
-                // a network's inner node
-                (Node::Stage(_), Some(_), Some(Ok(ng))) => {
-                    let k = ng.circuit.outputs[net.probes.len()];
-                    let k = ng
-                        .circuit
-                        .circuit
-                        .elems
-                        .get(ng.circuit.output_elems[net.probes.len()].clone())
-                        .and_then(|e| e.iter().find(|e| e.label == "series"))
-                        .map_or(k, |e| e.a);
-                    node_map[k].flatten()
-                }
-                (Node::Source(_), _, _) => None,
-                (Node::Stage(j), _, _) => outs[j],
-            };
             let mut notes = vec![format!(
                 "band {} .. {}, spot densities at {}, {t:.2} K; powers of independent sources \
                  added",
@@ -681,41 +624,44 @@ impl Netlist {
                 fmt_eng(band.1, "Hz"),
                 fmt_eng(SPOT_FREQUENCY, "Hz")
             )];
+            notes.extend(global_notes.iter().cloned());
+            let node = map(pc.outputs[o], &mut net);
             let series_label = thermal_label(&format!("{key}.series"), out.series);
-            let probe = match out.load {
-                Some(rl) => {
-                    let load_label = format!(
-                        "{key}.load ({}, thermal, next module's input)",
-                        fmt_resistance(rl)
-                    );
-                    let node = if out.series > 0.0 {
-                        let o = net.unknown(false);
-                        net.resistor(from, Some(o), Imp::R(out.series), series_label, t);
-                        Some(o)
+            let probe = if out.load.is_some() {
+                // the series resistor and the load, as the circuit has them: all outputs'
+                // loads are connected, as in a render
+                for e in &c.elems[pc.output_elems[o].clone()] {
+                    let ElemKind::R(r) = e.kind else { continue };
+                    let (a, b) = (map(e.a, &mut net), map(e.b, &mut net));
+                    if e.label == "load" {
+                        let label = format!(
+                            "{key}.load ({}, thermal, next module's input)",
+                            fmt_resistance(r)
+                        );
+                        let before = net.sources.len();
+                        // straight across an ideal source the load's noise is shorted: not
+                        // listed
+                        net.resistor(a, b, Imp::R(r), label, t);
+                        for s in &mut net.sources[before..] {
+                            s.load = true;
+                        }
                     } else {
-                        from
-                    };
-                    let before = net.sources.len();
-                    // straight across an ideal source the load's noise is shorted: not listed
-                    net.resistor(node, None, Imp::R(rl), load_label, t);
-                    for s in &mut net.sources[before..] {
-                        s.load = true;
-                    }
-                    Probe {
-                        node,
-                        direct: Vec::new(),
+                        net.resistor(a, b, Imp::R(r), series_label.clone(), t);
                     }
                 }
-                None => {
-                    notes.push(format!(
-                        "{key}: unloaded; the open-circuit voltage is budgeted"
-                    ));
-                    let direct = net
-                        .register(series_label, johnson_density(out.series, t), 0.0)
-                        .into_iter()
-                        .collect();
-                    Probe { node: from, direct }
+                Probe {
+                    node,
+                    direct: Vec::new(),
                 }
+            } else {
+                notes.push(format!(
+                    "{key}: unloaded; the open-circuit voltage is budgeted"
+                ));
+                let direct = net
+                    .register(series_label, johnson_density(out.series, t), 0.0)
+                    .into_iter()
+                    .collect();
+                Probe { node, direct }
             };
             if let Node::Stage(j) = out.from {
                 for (k, sn) in stage_notes.iter().enumerate() {
@@ -728,90 +674,6 @@ impl Netlist {
             net.notes.push(notes);
         }
         net
-    }
-
-    /// Network stage `si` from the patch's circuit `ng`: every element of the stage a branch
-    /// (resistors with their thermal noise labelled `KEY.parts[i]`, capacitors, each diode
-    /// junction as its rest conductance with its shot noise), every op-amp with its `en` and
-    /// its `in` into each input. Returns the unknown of the stage's output node.
-    fn network(
-        &mut self,
-        ng: &crate::response::NodeGains,
-        si: usize,
-        nw: &crate::model::Network,
-        key: &str,
-        node_map: &mut [Option<Option<usize>>],
-        t: f64,
-    ) -> Option<usize> {
-        use crate::circuit::{ElemKind, NodeKind};
-        let pc = &ng.circuit;
-        let c = &pc.circuit;
-        let amp_outs: Vec<usize> = c.amps.iter().map(|a| a.out).collect();
-        let mut map = |k: usize, net: &mut Netlist| -> Option<usize> {
-            if let Some(m) = node_map[k] {
-                return m;
-            }
-            let m = match c.nodes[k].kind {
-                NodeKind::Free => Some(net.unknown(amp_outs.contains(&k))),
-                _ => None,
-            };
-            node_map[k] = Some(m);
-            m
-        };
-        for e in &c.elems[pc.stage_elems[si].clone()] {
-            let (a, b) = (map(e.a, self), map(e.b, self));
-            let ekey = format!("{key}.{}", e.label);
-            match e.kind {
-                ElemKind::R(r) => self.resistor(a, b, Imp::R(r), thermal_label(&ekey, r), t),
-                ElemKind::C(cap) => self.branch(a, b, Imp::Cap(cap), None),
-                ElemKind::Junction { is, nvt } => {
-                    let v = (ng.rest[e.a] - ng.rest[e.b]).min(200.0 * nvt);
-                    let x = (v / nvt).exp();
-                    let i = is * (x - 1.0);
-                    let g = is / nvt * x + crate::circuit::GMIN;
-                    // shot noise of the junction current, sqrt(2 q |I|) A/sqrt(Hz) (Schottky
-                    // 1918), as a series voltage over its conductance
-                    let dens = (2.0 * ELEMENTARY_CHARGE * i.abs()).sqrt() / g;
-                    let label = format!("{ekey} (diode, shot noise at {} rest)", fmt_eng(i, "A"));
-                    self.branch(a, b, Imp::G(g), Some((label, dens)));
-                }
-            }
-        }
-        for (j, ai) in pc.stage_amps[si].clone().enumerate() {
-            let ca = &c.amps[ai];
-            let Some(na) = nw.amps.get(j) else { continue };
-            let p = &na.part;
-            let (out, plus, minus) = (map(ca.out, self), map(ca.plus, self), map(ca.minus, self));
-            let akey = format!("{key}.amps[{j}]");
-            let en = self.register(
-                format!("{akey} en ({}, {})", na.name, p.name),
-                p.en,
-                p.en_corner,
-            );
-            self.inject(
-                plus,
-                format!("{akey} in+ ({}, {})", na.name, p.name),
-                p.inoise,
-            );
-            if minus != out {
-                self.inject(
-                    minus,
-                    format!("{akey} in- ({}, {})", na.name, p.name),
-                    p.inoise,
-                );
-            }
-            if let Some(out) = out {
-                self.amps.push(Amp {
-                    out,
-                    plus,
-                    minus,
-                    gbw: p.gbw,
-                    a0: p.a0,
-                    en,
-                });
-            }
-        }
-        map(pc.stages[si], self)
     }
 
     /// Gains from every source to every output at frequency `f`; `None` if the network

@@ -271,25 +271,36 @@ pub fn patch_circuit(patch: &Patch) -> PatchCircuit {
                 inputs,
                 feedback,
                 reference,
-                ..
+                single,
             } => {
                 let m = c.node(&format!("{}.minus", st.name), NodeKind::Free);
                 let y = c.node(&st.name, NodeKind::Free);
                 let r = c.node(&format!("{}.ref", st.name), NodeKind::Fixed(*reference));
+                // labels are the patch keys (what the noise budget names its contributors)
                 for (k, inp) in inputs.iter().enumerate() {
                     let from = node(inp.from, &stage_node);
+                    let (rk, ck) = if *single {
+                        ("r_in".to_string(), "c_in".to_string())
+                    } else {
+                        (format!("inputs[{k}].r"), format!("inputs[{k}].c"))
+                    };
                     match inp.c {
                         Some(cap) => {
                             let mid = c.node(&format!("{}.inputs[{k}].c", st.name), NodeKind::Free);
-                            c.c(from, mid, cap, "c");
-                            c.r(mid, m, inp.r, "r");
+                            c.c(from, mid, cap, &ck);
+                            c.r(mid, m, inp.r, &rk);
                         }
-                        None => c.r(from, m, inp.r, "r"),
+                        None => c.r(from, m, inp.r, &rk),
                     }
                 }
-                c.r(m, y, feedback.r, "feedback.r");
+                let (rk, ck) = match (&feedback.pot, single) {
+                    (Some(_), _) => ("feedback.pot", "feedback.c"),
+                    (None, true) => ("r_fb", "c_fb"),
+                    (None, false) => ("feedback.r", "feedback.c"),
+                };
+                c.r(m, y, feedback.r, rk);
                 if let Some(cap) = feedback.c {
-                    c.c(m, y, cap, "feedback.c");
+                    c.c(m, y, cap, ck);
                 }
                 let a = amp(&c);
                 c.amp(a, r, m, y);

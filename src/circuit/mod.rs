@@ -286,19 +286,21 @@ impl Circuit {
         !matches!(self.nodes[n].kind, NodeKind::Free) || self.amps.iter().any(|a| a.out == n)
     }
 
-    /// Static resistive load on node `n`: the conductance into the resistors around it with
-    /// every node in `driven` (and every fixed or input node) at 0 V, capacitors and diodes
-    /// open (a diode's series resistance leads nowhere), S.
-    pub fn load_conductance(&self, n: usize, driven: &[usize]) -> f64 {
-        let held = |k: usize| {
-            k == n || driven.contains(&k) || !matches!(self.nodes[k].kind, NodeKind::Free)
-        };
-        let free: Vec<usize> = (0..self.nodes.len()).filter(|&k| !held(k)).collect();
+    /// DC voltages of every node with node `n` at 1 V and every node in `held` (and every
+    /// fixed or input node) at 0 V, through the resistors alone (capacitors and diodes
+    /// open; a node left floating sits at 0 V). `None` when the resistor network is
+    /// singular.
+    pub fn dc_voltages(&self, n: usize, held: &[usize]) -> Option<Vec<f64>> {
+        let is_held =
+            |k: usize| k == n || held.contains(&k) || !matches!(self.nodes[k].kind, NodeKind::Free);
+        let free: Vec<usize> = (0..self.nodes.len()).filter(|&k| !is_held(k)).collect();
         let m = free.len();
-        let col = |k: usize| free.iter().position(|&x| x == k);
+        let mut col = vec![usize::MAX; self.nodes.len()];
+        for (i, &k) in free.iter().enumerate() {
+            col[k] = i;
+        }
         let mut a = vec![0.0; m * m];
         let mut b = vec![0.0; m];
-        let mut direct = 0.0;
         for (i, row) in a.chunks_mut(m.max(1)).enumerate().take(m) {
             // a tiny leak to ground keeps a floating island defined (it then sits at 0 V)
             row[i] += 1e-15;
@@ -310,38 +312,54 @@ impl Circuit {
             }
             let g = 1.0 / r;
             for (x, y) in [(e.a, e.b), (e.b, e.a)] {
-                if let Some(i) = col(x) {
-                    a[i * m + i] += g;
-                    match col(y) {
-                        Some(j) => a[i * m + j] -= g,
-                        None if y == n => b[i] += g,
-                        None => {}
-                    }
+                let i = col[x];
+                if i == usize::MAX {
+                    continue;
                 }
-            }
-            if e.a == n || e.b == n {
-                direct += g;
+                a[i * m + i] += g;
+                match col[y] {
+                    usize::MAX if y == n => b[i] += g,
+                    usize::MAX => {}
+                    j => a[i * m + j] -= g,
+                }
             }
         }
         if m > 0 {
             let mut perm = vec![0; m];
             let mut tmp = vec![0.0; m];
             if !linalg::lu_factor(&mut a, m, &mut perm) {
-                return direct;
+                return None;
             }
             linalg::lu_solve(&a, m, &perm, &mut b, &mut tmp);
         }
-        // current out of n: sum over resistors at n of g (1 - v_other)
-        let mut i_out = 0.0;
-        for e in &self.elems {
-            let ElemKind::R(r) = e.kind else { continue };
-            if r <= 0.0 || (e.a != n && e.b != n) {
-                continue;
-            }
-            let other = if e.a == n { e.b } else { e.a };
-            let v = col(other).map_or(0.0, |j| b[j]);
-            i_out += (1.0 - v) / r;
+        let mut v = vec![0.0; self.nodes.len()];
+        v[n] = 1.0;
+        for (i, &k) in free.iter().enumerate() {
+            v[k] = b[i];
         }
+        Some(v)
+    }
+
+    /// Static resistive load on node `n`: the conductance into the resistors around it with
+    /// every node in `driven` (and every fixed or input node) at 0 V, capacitors and diodes
+    /// open (a diode's series resistance leads nowhere), S.
+    pub fn load_conductance(&self, n: usize, driven: &[usize]) -> f64 {
+        let at_n = || {
+            self.elems.iter().filter_map(|e| match e.kind {
+                ElemKind::R(r) if r > 0.0 && (e.a == n || e.b == n) => Some((e, r)),
+                _ => None,
+            })
+        };
+        let Some(v) = self.dc_voltages(n, driven) else {
+            return at_n().map(|(_, r)| 1.0 / r).sum();
+        };
+        // current out of n: sum over resistors at n of g (1 - v_other)
+        let i_out: f64 = at_n()
+            .map(|(e, r)| {
+                let other = if e.a == n { e.b } else { e.a };
+                (1.0 - if other == n { 1.0 } else { v[other] }) / r
+            })
+            .sum();
         i_out.max(0.0)
     }
 }
