@@ -462,6 +462,16 @@ impl SlewStep {
         out
     }
 
+    /// A step that starts with the state past the swing, slewing in direction `mode` back
+    /// toward it (the return from a reversal found the swing only after its own step): the
+    /// corner where the output leaves the rail, then the stable loop, as
+    /// [`SlewStep::leave_reversal`] from the start of the step; `None` when the state is not
+    /// past the swing or moves away from it.
+    pub fn from_rail(&self, v0: f64, mode: i8, sw: Swing, hold: Swing) -> Option<Stepped> {
+        let toward = (v0 > sw.hi && mode < 0) || (v0 < sw.lo && mode > 0);
+        toward.then(|| self.leave_reversal(v0, 0, 0.0, sw, hold))
+    }
+
     /// The step in which the loop turns negative again at `u1` (the input is back in its
     /// range): the reversed ramp in direction `mode` (`0`: none) from the state `v0` up to
     /// `u1`, the state held within `hold` (the state's limits), then the stable loop from
@@ -494,7 +504,9 @@ impl SlewStep {
         } else {
             let lim = if v1 > sw.hi { sw.hi } else { sw.lo };
             let ul = u1 + (lim - v1) / r1;
-            if ul >= 1.0 || ul.is_nan() {
+            // past the step (the next one finds it, [`SlewStep::from_rail`]), or the state
+            // moving away from the swing: the output stays at the rail
+            if ul >= 1.0 || ul.is_nan() || ul < u1 {
                 out.v = v1 + r1 * (1.0 - u1);
                 out.mode = s;
                 out.slope = r1;

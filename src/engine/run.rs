@@ -1254,18 +1254,17 @@ fn rev_step(
         lo: sp.shaper.lo,
         hi: sp.shaper.hi,
     };
+    let hold = Swing {
+        lo: sp.state_lo,
+        hi: sp.state_hi,
+    };
     let mut full = *ev;
     full.f = 1.0;
     match (was, on) {
         (false, true) => Some(full.enter_reversal(v, st.mode, u(), sw)),
         (true, true) if st.mode != 0 => Some(ev.reversed(v, st.mode, sw)),
-        (true, false) => {
-            let hold = Swing {
-                lo: sp.state_lo,
-                hi: sp.state_hi,
-            };
-            Some(full.leave_reversal(v, st.mode, u(), sw, hold))
-        }
+        (true, false) => Some(full.leave_reversal(v, st.mode, u(), sw, hold)),
+        (false, false) if st.mode != 0 => full.from_rail(v, st.mode, sw, hold),
         _ => None,
     }
 }
