@@ -131,19 +131,22 @@ pub const SPAN: usize = 6;
 /// running integrals of the quadratic B-spline `B3` (three unit boxes convolved, support
 /// `|d| < 3/2`), i.e. its averages of `(d + s)+` and `(d + s)+^2 / 2` (de Boor, "A Practical
 /// Guide to Splines", 1978: a B-spline as a divided difference of truncated powers).
-#[inline]
+#[inline(always)]
 fn b3_ramps(d: f64) -> (f64, f64) {
-    const C: [f64; 4] = [1.0, -3.0, 3.0, -1.0];
-    let (mut r, mut q) = (0.0, 0.0);
-    for (j, c) in C.iter().enumerate() {
-        let x = d + 1.5 - j as f64;
-        if x > 0.0 {
-            let x4 = x * x * x * x;
-            r += c * x4;
-            q += c * x4 * x;
-        }
-    }
-    (r / 24.0, q / 120.0)
+    // branch-free (the four truncated powers at once)
+    let x = [
+        (d + 1.5).max(0.0),
+        (d + 0.5).max(0.0),
+        (d - 0.5).max(0.0),
+        (d - 1.5).max(0.0),
+    ];
+    let x4 = x.map(|v| {
+        let v2 = v * v;
+        v2 * v2
+    });
+    let r = (x4[0] - x4[3]) + 3.0 * (x4[2] - x4[1]);
+    let q = (x4[0] * x[0] - x4[3] * x[3]) + 3.0 * (x4[2] * x[2] - x4[1] * x[1]);
+    (r * (1.0 / 24.0), q * (1.0 / 120.0))
 }
 
 /// The band-limited corrections of a corner at `u` in `[0, 1]` of the step from sample
