@@ -167,8 +167,8 @@
 //!
 //! | K | 2 V below the range, before | 2 V below, now | 1 V below, before | 1 V below, now |
 //! |---|---|---|---|---|
-//! | 1 | -3.2 dBc | -31.9 dBc | -5.7 dBc | |
-//! | 2 | -12.1 dBc | -57.9 dBc | -16.3 dBc | |
+//! | 1 | -3.2 dBc | -31.9 dBc | -5.7 dBc | not measured |
+//! | 2 | -12.1 dBc | -57.9 dBc | -16.3 dBc | not measured |
 //! | 4 | -20.0 dBc | -69.7 dBc | -22.0 dBc | -73.8 dBc |
 //! | 8 | -26.1 dBc | -73.6 dBc | -29.7 dBc | -78.3 dBc |
 //! | 16 | -34.1 dBc | -77.9 dBc | -37.5 dBc | -82.8 dBc |
