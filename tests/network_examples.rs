@@ -422,6 +422,63 @@ out = \"y\"\n\
     assert!((g[1] - 1.0).abs() < 3e-4, "follower {g:?}");
 }
 
+// Shorthand stages read a network's inner node too (`from = "src.a"`), and load it like
+// any reader. The divider's middle node `a` (10k from the 3 V source, 10k to ground) also
+// carries an inverter's and a summer's 10k into their virtual grounds and a 10k attenuator
+// track to ground, so a = 3 (10k / 4) / (10k + 10k / 4) = 0.6 V (voltage divider,
+// textbook); a follower and a non-inverting stage (gain 2) add no load. Expected, within
+// 3e-4 of the amplitude: inverter -0.6, follower 0.6, non-inverting 1.2, the attenuator at
+// mid track 0.3, the summer of a (10k) and the source (30k) into 10k -(0.6 + 1) = -1.6
+// (inverting summer -Rf sum(Vi / Ri), textbook).
+#[test]
+fn shorthand_stages_read_a_networks_inner_node_and_load_it() {
+    let text = format!(
+        "{HEAD}[stages.src]\ntype = \"network\"\n\
+amps = [{{ part = \"ideal\", plus = \"a\", minus = \"y\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"v\", \"a\"] }}, {{ r = \"10k\", ends = [\"a\", \"gnd\"] }}]\n\
+out = \"y\"\n\
+[stages.inv]\ntype = \"inverting\"\npart = \"ideal\"\nfrom = \"src.a\"\nr_in = \"10k\"\nr_fb = \"10k\"\n\
+[stages.buf]\ntype = \"follower\"\npart = \"ideal\"\nfrom = \"src.a\"\n\
+[stages.gain]\ntype = \"non-inverting\"\npart = \"ideal\"\nfrom = \"src.a\"\nr_fb = \"10k\"\nr_g = \"10k\"\n\
+[stages.vol]\ntype = \"attenuator\"\nfrom = \"src.a\"\npot = \"10k\"\ntaper = \"linear\"\nat = 0.5\n\
+[stages.mix]\ntype = \"inverting-sum\"\npart = \"ideal\"\n\
+inputs = [{{ from = \"src.a\", r = \"10k\" }}, {{ from = \"v\", r = \"30k\" }}]\nfeedback = {{ r = \"10k\" }}\n\
+[outputs.inv]\nfrom = \"inv\"\n[outputs.buf]\nfrom = \"buf\"\n[outputs.gain]\nfrom = \"gain\"\n\
+[outputs.vol]\nfrom = \"vol\"\n[outputs.mix]\nfrom = \"mix\"\n"
+    );
+    let g = run_outputs(&text);
+    for (got, want) in g.iter().zip([-0.6, 0.6, 1.2, 0.3, -1.6]) {
+        assert!((got - want).abs() < 3e-4, "{g:?}");
+    }
+    // the whole patch solved as one circuit (`response`) agrees at DC
+    let p = railsong::patch::parse_str(&text, "inner.toml", Path::new("."), &[]).unwrap();
+    let dc = railsong::response::dc_gains(&p).unwrap();
+    let want_dc = [0.2, -0.2, 0.2, 0.4, 0.1, -(0.2 + 1.0 / 3.0)];
+    for (k, w) in want_dc.iter().enumerate() {
+        assert!(
+            (dc[k][0] - w).abs() < 1e-4,
+            "stage {k}: {} against {w}",
+            dc[k][0]
+        );
+    }
+    // a shorthand reading stage.node needs a 0 V reference (a network has no other fixed
+    // node): a clear error naming the key
+    let bad = text.replace(
+        "r_fb = \"10k\"\nr_g = \"10k\"\n",
+        "r_fb = \"10k\"\nr_g = \"10k\"\nref = \"1 V\"\n",
+    );
+    let e = railsong::patch::parse_str(&bad, "inner.toml", Path::new("."), &[])
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains("stages.gain.ref") && e.contains("0 V"), "{e}");
+    // an unknown inner node names the stage's nodes
+    let bad = text.replace("from = \"src.a\"\nr_in", "from = \"src.q\"\nr_in");
+    let e = railsong::patch::parse_str(&bad, "inner.toml", Path::new("."), &[])
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains("stages.inv.from") && e.contains("'q'"), "{e}");
+}
+
 fn warnings(text: &str) -> Vec<railsong::check::Warning> {
     let p = railsong::patch::parse_str(text, "check.toml", Path::new("."), &[])
         .unwrap_or_else(|e| panic!("{e}"));

@@ -219,7 +219,7 @@ pub(crate) fn build(doc: &toml::Table, ctx: &Ctx, stem: &str, base_dir: &Path) -
                 kind: StageKind::Network(net),
             });
         } else {
-            stages.push(stage(&tab, name, &env)?);
+            stages.push(stage(&tab, name, &env, &net_env, &mut pending)?);
         }
         let r = tab.q_opt("tolerance", Quantity::Percent, tol_bounds)?;
         let c = tab.q_opt("cap_tolerance", Quantity::Percent, tol_bounds)?;
@@ -1007,7 +1007,13 @@ fn feedback(t: &Tab) -> R<Feedback> {
 const FEEDBACK_EXAMPLE: &str =
     "a table like { r = \"100k\" } or { pot = \"100k\", taper = \"log\", at = 0.5 }";
 
-fn stage(t: &Tab, name: &str, env: &StageEnv) -> R<Stage> {
+fn stage(
+    t: &Tab,
+    name: &str,
+    env: &StageEnv,
+    net_env: &super::network::NetEnv,
+    pending: &mut Vec<super::network::Pending>,
+) -> R<Stage> {
     if !t.has("type") {
         // a misspelt key may be the missing one ('tpye'): report it first
         t.check_keys(&schema::all_stage_keys(), &[], "to a stage")?;
@@ -1031,6 +1037,22 @@ fn stage(t: &Tab, name: &str, env: &StageEnv) -> R<Stage> {
         Some(p)
     };
     let names = env.names;
+    // What each `from` reads, in key order: a source or stage (`Ext`), or another
+    // network's inner node (`stage.node`), which makes this stage run as its network form.
+    let mut froms: Vec<NetNode> = Vec::new();
+    let mut from = |t: &Tab, key: &str| -> R<Node> {
+        let s = t.str_req(key, "the name of a source or a stage")?;
+        if !names.nodes.contains_key(s) && s.contains('.') {
+            let mut locals = Vec::new();
+            let n = super::network::node_ref(t, key, s, name, net_env, &mut locals, pending)?;
+            froms.push(n);
+            // a stand-in until the stage is rewritten as its network below
+            return Ok(Node::Source(0));
+        }
+        let n = names.node(t, key)?;
+        froms.push(NetNode::Ext(n));
+        Ok(n)
+    };
     let k = match kind {
         "inverting-sum" => {
             let a = t.array_req(
@@ -1047,7 +1069,7 @@ fn stage(t: &Tab, name: &str, env: &StageEnv) -> R<Stage> {
             for it in t.tables_in("inputs", a, "{ from = \"osc\", r = \"100k\" }")? {
                 it.check_keys(schema::INPUT, &[], "")?;
                 inputs.push(SumInput {
-                    from: names.node(&it, "from")?,
+                    from: from(&it, "from")?,
                     r: res(&it, "r")?,
                     c: cap(&it, "c")?,
                 });
@@ -1061,7 +1083,7 @@ fn stage(t: &Tab, name: &str, env: &StageEnv) -> R<Stage> {
         }
         "inverting" => {
             let input = SumInput {
-                from: names.node(t, "from")?,
+                from: from(t, "from")?,
                 r: res(t, "r_in")?,
                 c: cap(t, "c_in")?,
             };
@@ -1105,25 +1127,33 @@ fn stage(t: &Tab, name: &str, env: &StageEnv) -> R<Stage> {
             }
         }
         "non-inverting" => StageKind::NonInverting {
-            from: names.node(t, "from")?,
+            from: from(t, "from")?,
             r_fb: res(t, "r_fb")?,
             c_fb: cap(t, "c_fb")?,
             r_g: res(t, "r_g")?,
             reference: reference(t, env.rails)?,
         },
         "follower" => StageKind::Follower {
-            from: names.node(t, "from")?,
+            from: from(t, "from")?,
         },
         _ => {
             let pot = pot_setting(t, "pot")?;
             StageKind::Attenuator {
-                from: names.node(t, "from")?,
+                from: from(t, "from")?,
                 pot: pot.track,
                 taper: pot.taper,
                 at: pot.at,
             }
         }
     };
+    if froms.iter().any(|n| matches!(n, NetNode::Inner(..))) {
+        let net = super::network::shorthand_network(t, name, &k, part.as_ref(), env.rails, &froms)?;
+        return Ok(Stage {
+            name: name.to_string(),
+            part: None,
+            kind: StageKind::Network(net),
+        });
+    }
     Ok(Stage {
         name: name.to_string(),
         part,

@@ -128,7 +128,7 @@ pub(crate) fn build_diodes(root: &Tab) -> R<HashMap<String, Diode>> {
 }
 
 /// The node names a network stage may use besides its own.
-fn node_ref(
+pub(crate) fn node_ref(
     t: &Tab,
     key: &str,
     name: &str,
@@ -619,4 +619,127 @@ fn check_topology(t: &Tab, net: &Network) -> R<()> {
         }
     }
     Ok(())
+}
+
+/// A shorthand stage that reads another network's inner node (`from = "stage.node"`) as
+/// the network it stands for: the same parts between the same nodes as
+/// [`crate::circuit::build::patch_circuit`] expands the shorthand into, with its op-amp
+/// named after the stage. `froms` are the nodes the stage reads, in the order of its
+/// `from` keys (a summer's inputs in order). A shorthand whose reference is not 0 V has no
+/// network form (a network's fixed nodes are gnd and the rails): an error naming the key.
+pub(crate) fn shorthand_network(
+    t: &Tab,
+    name: &str,
+    kind: &crate::model::StageKind,
+    part: Option<&OpAmp>,
+    rails: Rails,
+    froms: &[NetNode],
+) -> R<Network> {
+    use crate::model::StageKind;
+    let no_reference = |reference: f64| -> R<()> {
+        if reference != 0.0 {
+            return Err(t.err(
+                "ref",
+                Problem::Other(
+                    "a shorthand stage that reads stage.node takes ref = 0 V; write the stage \
+                     as a network (a divider from the rails for its reference)"
+                        .into(),
+                ),
+            ));
+        }
+        Ok(())
+    };
+    let r = |ends: [NetNode; 2], v: f64| NetPart {
+        ends,
+        kind: NetPartKind::R(v),
+        tolerance: None,
+    };
+    let c = |ends: [NetNode; 2], v: f64| NetPart {
+        ends,
+        kind: NetPartKind::C(v),
+        tolerance: None,
+    };
+    let from = |k: usize| froms.get(k).copied().unwrap_or(NetNode::Gnd);
+    let mut nodes = vec!["y".to_string()];
+    let (y, m) = (NetNode::Local(0), NetNode::Local(1));
+    let mut parts = Vec::new();
+    let amp = |plus: NetNode, minus: NetNode| {
+        part.map(|p| NetAmp {
+            name: name.to_string(),
+            part: p.clone(),
+            plus,
+            minus,
+            out: 0,
+            rails,
+        })
+    };
+    let amps: Vec<NetAmp> = match kind {
+        StageKind::InvertingSum {
+            inputs,
+            feedback,
+            reference,
+            ..
+        } => {
+            no_reference(*reference)?;
+            nodes.push("minus".into());
+            for (k, inp) in inputs.iter().enumerate() {
+                match inp.c {
+                    Some(cap) => {
+                        nodes.push(format!("inputs{k}c"));
+                        let mid = NetNode::Local(nodes.len() - 1);
+                        parts.push(c([from(k), mid], cap));
+                        parts.push(r([mid, m], inp.r));
+                    }
+                    None => parts.push(r([from(k), m], inp.r)),
+                }
+            }
+            parts.push(r([m, y], feedback.r));
+            if let Some(cap) = feedback.c {
+                parts.push(c([m, y], cap));
+            }
+            amp(NetNode::Gnd, m).into_iter().collect()
+        }
+        StageKind::NonInverting {
+            r_fb,
+            c_fb,
+            r_g,
+            reference,
+            ..
+        } => {
+            no_reference(*reference)?;
+            nodes.push("minus".into());
+            parts.push(r([y, m], *r_fb));
+            if let Some(cap) = c_fb {
+                parts.push(c([y, m], *cap));
+            }
+            parts.push(r([m, NetNode::Gnd], *r_g));
+            amp(from(0), m).into_iter().collect()
+        }
+        StageKind::Follower { .. } => amp(from(0), y).into_iter().collect(),
+        StageKind::Attenuator { pot, taper, at, .. } => {
+            parts.push(NetPart {
+                ends: [NetNode::Gnd, from(0)],
+                kind: NetPartKind::Pot {
+                    setting: PotSetting {
+                        track: *pot,
+                        taper: *taper,
+                        at: *at,
+                    },
+                    wiper: y,
+                    knob: None,
+                },
+                tolerance: None,
+            });
+            Vec::new()
+        }
+        StageKind::Network(n) => return Ok(n.clone()),
+    };
+    // well formed by construction (every node has its parts, the output is driven or a
+    // wiper): no topology check to run
+    Ok(Network {
+        nodes,
+        amps,
+        parts,
+        out: 0,
+    })
 }
