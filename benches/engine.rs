@@ -104,8 +104,26 @@ fn cpu_time() -> Option<f64> {
 }
 
 fn measure(label: &str, amp: f64, noise: bool, seconds: f64) {
-    let p = patch(amp, noise);
-    let plan = compile(&p).expect("bench patch compiles");
+    measure_patch(label, &patch(amp, noise), true, seconds);
+}
+
+/// A follower on +/-12 V driven by one sine (issue 16's edge cases): `part` and `slew`
+/// override the built-in's slew rate when given.
+fn follower(part: &str, slew: Option<&str>, freq: &str, amp: &str) -> Patch {
+    let slew = slew.map_or(String::new(), |s| format!("slew = \"{s}\"\n"));
+    let text = format!(
+        "[patch]\nnoise = false\nlength = \"10 s\"\n[rails]\npos = \"12 V\"\nneg = \"-12 V\"\n\
+         [parts.p]\nbased_on = \"{part}\"\n{slew}[sources.osc]\nwave = \"sine\"\nfreq = \"{freq}\"\n\
+         amp = \"{amp}\"\n[stages.buf]\ntype = \"follower\"\npart = \"p\"\nfrom = \"osc\"\n\
+         [outputs.out]\nfrom = \"buf\"\n"
+    );
+    railsong::patch::parse_str(&text, "bench.toml", std::path::Path::new("."), &[])
+        .expect("bench patch")
+}
+
+fn measure_patch(label: &str, p: &Patch, aa: bool, seconds: f64) {
+    let mut plan = compile(p).expect("bench patch compiles");
+    plan.antialias = aa;
     let mut e = Engine::new(&plan);
     let frames = (seconds * p.rate) as usize;
     let mut out = vec![0.0; 4800];
@@ -132,7 +150,7 @@ fn measure(label: &str, amp: f64, noise: bool, seconds: f64) {
     let (fast, full) = e.path_counts();
     let sps = frames as f64 / best;
     println!(
-        "{label:10} {frames} frames in {best:.4} s wall: {sps:.3e} samples/s, {:.0}x real time \
+        "{label:18} {frames} frames in {best:.4} s wall: {sps:.3e} samples/s, {:.0}x real time \
          at 48 kHz (stage blocks: {fast} fast, {full} full; clip {:.3} s)",
         sps / p.rate,
         e.events().iter().map(|ev| ev.clip_s).sum::<f64>()
@@ -140,7 +158,7 @@ fn measure(label: &str, amp: f64, noise: bool, seconds: f64) {
     if best_cpu.is_finite() {
         let cps = frames as f64 / best_cpu;
         println!(
-            "{label:10} by CPU time {best_cpu:.4} s: {cps:.3e} samples/s, {:.0}x real time",
+            "{label:18} by CPU time {best_cpu:.4} s: {cps:.3e} samples/s, {:.0}x real time",
             cps / p.rate
         );
     }
@@ -162,5 +180,19 @@ fn main() {
     }
     if only.is_empty() || only == "clipnoise" {
         measure("clip+noise", 5.0, true, 5.0);
+    }
+    // Issue 16: the band-limited corrections of slew corners and reversal edges, on and off
+    // (`Plan::antialias`), on the clean mix, a follower that slews all the time (a slow part
+    // at 3.1 times its slew rate: a triangle) and one that reverses every cycle (2 V below
+    // its input range at 1 kHz).
+    if only.is_empty() || only == "edges" {
+        let slewing = follower("single-supply", Some("0.12 V/us"), "10 kHz", "6 Vpk");
+        let reversing = follower("jfet-general", None, "1 kHz", "10 Vpk");
+        for aa in [true, false] {
+            let tag = if aa { "on" } else { "off" };
+            measure_patch(&format!("clean aa {tag}"), &patch(0.5, false), aa, 20.0);
+            measure_patch(&format!("slewing aa {tag}"), &slewing, aa, 5.0);
+            measure_patch(&format!("reversing aa {tag}"), &reversing, aa, 5.0);
+        }
     }
 }

@@ -91,18 +91,19 @@ fn figure_counts_in_band_bins_off_the_harmonics() {
     assert_eq!(coherent_alias_dbc(&vec![0.0; n], m, rate), None);
 }
 
-// The issue's case: a reversing follower whose render holds heavy alias must read far
-// worse than -60 dBc (the issue measured about -19 dBc for a harsh reversal at 4x) and be
-// flagged, naming the stage; more oversampling must help.
+// The issue's case: a reversing follower whose render holds heavy alias must read worse
+// than -60 dBc and be flagged, naming the stage; more oversampling must help. At K = 1 (the
+// band-limited reversal edges of issue 16 read about -70 dBc at the default K = 4; the
+// issue measured about -19 dBc there before them, `tests/engine_edges.rs`).
 #[test]
 fn reversing_follower_reads_heavy_alias_and_warns() {
-    let p = load(FOLLOWER, &[]);
+    let p = load(FOLLOWER, &["patch.oversample=1"]);
     let est = alias::estimate(&p, None).unwrap();
     assert_eq!(est.len(), 1);
     let a = &est[0].1;
     let d = a.dbc.unwrap();
-    println!("reversing follower x4: {d:.1} dBc");
-    assert!(d > -40.0, "{a:?}");
+    println!("reversing follower x1: {d:.1} dBc");
+    assert!(d > -50.0, "{a:?}");
     assert!(a.above_limit);
     assert_eq!(a.stage.as_deref(), Some("follow"));
     assert!((a.tone_hz.unwrap() - 999.0234375).abs() < 1e-9);
@@ -145,14 +146,15 @@ fn hard_clip_matches_the_fixed_probe() {
 }
 
 // The alias made by the reversal passes on to a clean stage after it: the stage named is the
-// follower (upstream, within 1 dB of the worst), whichever order the figures come in.
+// follower (upstream, within 1 dB of the worst), whichever order the figures come in. At
+// K = 1, where the reversal still aliases past the warning level.
 #[test]
 fn the_stage_named_is_where_the_alias_starts() {
     let text = format!(
         "{FOLLOWER}\n[stages.half]\ntype = \"inverting\"\npart = \"jfet-general\"\nfrom = \
          \"follow\"\nr_in = \"20k\"\nr_fb = \"10k\"\n\n[outputs.last]\nfrom = \"half\"\n"
     );
-    let p = load(&text, &[]);
+    let p = load(&text, &["patch.oversample=1"]);
     let est = alias::estimate(&p, Some("last")).unwrap();
     let a = &est[0].1;
     assert_eq!(a.stages.len(), 2);
@@ -176,7 +178,7 @@ fn the_stage_named_is_where_the_alias_starts() {
 // Any other signal is estimated by difference from the same stretch with 4 times finer
 // steps. A linear follower (an LTI system: no new frequencies; textbook) under a twin tone
 // reads only the floor (the decimators' passband ripple, 0.001 dB = -79 dB at most: the
-// design specification of the chain, `halfband` tests); the reversing follower under a
+// design specification of the chain, `halfband` tests); the reversing follower (at K = 1) under a
 // twin tone whose low crests dip 2 V below the input range warns and names the stage.
 #[test]
 fn other_signals_are_estimated_by_difference() {
@@ -194,7 +196,9 @@ fn other_signals_are_estimated_by_difference() {
     assert_eq!(clean.method, Some("difference"));
     assert!(clean.dbc.unwrap() < -75.0, "{clean:?}");
     assert!(!clean.above_limit);
-    let hard = &alias::estimate(&load(&twin("5 Vpk"), &[]), None).unwrap()[0].1;
+    // at K = 1: at the default K = 4 the band-limited reversal edges (issue 16) read about
+    // -70 dB here
+    let hard = &alias::estimate(&load(&twin("5 Vpk"), &["patch.oversample=1"]), None).unwrap()[0].1;
     println!("reversing twin tone: {:?} dB", hard.dbc);
     assert!(hard.dbc.unwrap() > -60.0, "{hard:?}");
     assert!(hard.above_limit);

@@ -1,12 +1,12 @@
 //! The running engine: block processing of a [`Plan`].
 
-use super::edges::{blamp, blep2_at, SlewStep, Stepped};
+use super::edges::{corner6, crossing, SlewStep, Stepped, Swing, SPAN};
 use super::feed::{SourceFeed, ToneFeed};
 use super::halfband::Decimator;
 use super::network::{net_block, NetRun};
 use super::noise::NoiseStream;
 use super::plan::{Plan, StagePlan, StageStep, FAST_VD};
-use super::shaper::{reach7, LOOKAHEAD, WINDOW};
+use super::shaper::{reach7, Shaper, LOOKAHEAD, WINDOW};
 use super::{EngineError, StageEvents};
 
 /// Per-stage running state.
@@ -18,8 +18,10 @@ struct StageState {
     /// Slewing up (`1`), down (`-1`) or not (`0`) at the end of the last step (the stiff
     /// slew model's mode, [`SlewStep`]).
     mode: i8,
-    /// Slope-corner correction still to add to the next drive sample.
-    pend: f64,
+    /// Slope-corner corrections still to add to the next two drive samples.
+    pend: [f64; 2],
+    /// Reversal edges (issue 16).
+    rv: RevState,
     vc: Vec<f64>,
     vf: f64,
     /// The last `WINDOW - 1` drive samples, oldest first (the clamp's window less its
@@ -43,7 +45,8 @@ impl StageState {
             p_prev: sp.rest_p,
             p_prev2: sp.rest_p,
             mode: 0,
-            pend: 0.0,
+            pend: [0.0; 2],
+            rv: RevState::REST,
             vc: sp.rest_vc.clone(),
             vf: sp.rest_vf,
             xh: [sp.rest_v; WINDOW - 1],
@@ -63,6 +66,7 @@ impl StageState {
         self.p_prev2 = o.p_prev2;
         self.mode = o.mode;
         self.pend = o.pend;
+        self.rv = o.rv;
         self.vc.copy_from_slice(&o.vc);
         self.vf = o.vf;
         self.xh = o.xh;
@@ -76,6 +80,107 @@ impl StageState {
     }
 }
 
+/// A reversing stage's edges (issue 16): whether the loop was reversed at the last step, V+
+/// at the last two samples (for the instant the input leaves or re-enters its range), and
+/// the output overrides around an edge. The drive that the clamp reads stays the plain
+/// trajectory (held at the rail while reversed), whose window around a rail-to-rail jump
+/// no local polynomial fits; the samples whose clamp window holds an edge take instead the
+/// static clamp of their drive plus the edge's band-limited corrections (`ov`, NaN where
+/// none; `oh` the overrides of the drive history `xh`, aligned with it).
+#[derive(Debug, Clone, Copy)]
+struct RevState {
+    on: bool,
+    vp1: f64,
+    vp2: f64,
+    oh: [f64; WINDOW - 1],
+    /// Samples still to override after the current one, and the corrections of the next two.
+    ofut: u8,
+    ocar: [f64; 2],
+    /// Whether this block's override buffer holds anything (it is filled with NaN first).
+    blk: bool,
+}
+
+impl RevState {
+    const REST: RevState = RevState {
+        on: false,
+        vp1: f64::NAN,
+        vp2: f64::NAN,
+        oh: [f64::NAN; WINDOW - 1],
+        ofut: 0,
+        ocar: [0.0; 2],
+        blk: false,
+    };
+
+    /// Overrides (or adds to the override of) the sample `back` samples before `t`: its
+    /// output becomes the static clamp of its drive plus `add`.
+    #[inline]
+    #[allow(clippy::too_many_arguments)]
+    fn mark(
+        &mut self,
+        ov: &mut [f64],
+        x: &[f64],
+        xh: &[f64; WINDOW - 1],
+        sh: &Shaper,
+        t: usize,
+        back: usize,
+        add: f64,
+    ) {
+        const H: usize = WINDOW - 1;
+        if !self.blk {
+            ov.fill(f64::NAN);
+            self.blk = true;
+        }
+        let slot = if t >= back {
+            let i = t - back;
+            if ov[i].is_nan() {
+                ov[i] = sh.apply(x[i]);
+            }
+            &mut ov[i]
+        } else {
+            let i = H + t - back;
+            if self.oh[i].is_nan() {
+                self.oh[i] = sh.apply(xh[i]);
+            }
+            &mut self.oh[i]
+        };
+        *slot += add;
+    }
+
+    /// After sample `t`'s drive is final: the override it was promised by an earlier edge,
+    /// then this step's edge (`r`, its corners' corrections on `t - 2 ..= t + 1`, the
+    /// overrides on `t - 3 ..= t + 2`: every sample whose clamp window holds the edge).
+    #[inline]
+    #[allow(clippy::too_many_arguments)]
+    fn after(
+        &mut self,
+        ov: &mut [f64],
+        x: &[f64],
+        xh: &[f64; WINDOW - 1],
+        sh: &Shaper,
+        t: usize,
+        r: Option<&Stepped>,
+        aa: bool,
+    ) {
+        if self.ofut > 0 {
+            let c = self.ocar[0];
+            self.mark(ov, x, xh, sh, t, 0, c);
+            self.ocar = [self.ocar[1], 0.0];
+            self.ofut -= 1;
+        }
+        let Some(r) = r else { return };
+        if !aa || r.n == 0 {
+            return;
+        }
+        let w = corner_weights(r);
+        for back in 0..=3 {
+            self.mark(ov, x, xh, sh, t, back, w[3 - back]);
+        }
+        self.ocar[0] += w[4];
+        self.ocar[1] += w[5];
+        self.ofut = 2;
+    }
+}
+
 /// Runs a compiled [`Plan`] block by block.
 pub struct Engine {
     plan: Plan,
@@ -84,6 +189,8 @@ pub struct Engine {
     states: Vec<StageState>,
     saved: Vec<StageState>,
     xbuf: Vec<f64>,
+    /// Output overrides of a reversing stage's block ([`RevState`]).
+    ovbuf: Vec<f64>,
     pbuf: Vec<f64>,
     qbuf: Vec<f64>,
     decims: Vec<Decimator>,
@@ -502,6 +609,7 @@ impl Engine {
             states,
             saved,
             xbuf: vec![0.0; b],
+            ovbuf: vec![f64::NAN; b],
             pbuf: vec![0.0; b],
             qbuf: vec![0.0; b],
             decims,
@@ -582,7 +690,8 @@ impl Engine {
             st.p_prev = sp.rest_p;
             st.p_prev2 = sp.rest_p;
             st.mode = 0;
-            st.pend = 0.0;
+            st.pend = [0.0; 2];
+            st.rv = RevState::REST;
             st.vc.copy_from_slice(&sp.rest_vc);
             st.vf = sp.rest_vf;
             st.xh = [sp.rest_v; WINDOW - 1];
@@ -774,8 +883,9 @@ impl Engine {
             let mut own = std::mem::take(&mut self.bufs[sp.node]);
             let st = &mut self.states[si];
             let mut ok = false;
+            st.rv.blk = false;
             // a corner correction still to add to the next sample needs the sample loop
-            if self.fast && st.pend == 0.0 {
+            if self.fast && st.pend == [0.0; 2] && st.rv.ofut == 0 {
                 self.saved[si].restore_from(st);
                 ok = linear_block(
                     sp,
@@ -790,6 +900,11 @@ impl Engine {
                 if ok {
                     st.mode = 0;
                     self.fast_blocks += 1;
+                    if sp.reversal {
+                        st.rv.on = false;
+                        st.rv.vp2 = vp_at(sp, &self.bufs, hist, b - 2);
+                        st.rv.vp1 = vp_at(sp, &self.bufs, hist, b - 1);
+                    }
                 } else {
                     st.restore_from(&self.saved[si]);
                 }
@@ -810,6 +925,7 @@ impl Engine {
                         self.weak[si].as_ref(),
                         &mut self.pbuf,
                         &mut self.qbuf,
+                        &mut self.ovbuf,
                         self.plan.antialias,
                     );
                 } else {
@@ -821,15 +937,26 @@ impl Engine {
                         hist,
                         noise,
                         &mut self.xbuf,
+                        &mut self.ovbuf,
                         1.0 / self.plan.internal_rate,
                         self.plan.antialias,
                     );
                 }
             }
+            // overrides of a reversing stage's edges, this block's or the history's
+            let ov = if st.rv.blk {
+                Some(self.ovbuf.as_slice())
+            } else if st.rv.oh.iter().any(|o| !o.is_nan()) {
+                self.ovbuf.fill(f64::NAN);
+                Some(self.ovbuf.as_slice())
+            } else {
+                None
+            };
             shape_block(
                 sp,
                 st,
                 &self.xbuf,
+                ov,
                 &mut own[hist..hist + b],
                 self.plan.antialias,
                 self.blocks * b as u64,
@@ -1095,6 +1222,62 @@ fn linear_block(
     true
 }
 
+/// V+ of a stage at sample `t` of the block.
+#[inline]
+fn vp_at(sp: &StagePlan, bufs: &[Vec<f64>], hist: usize, t: usize) -> f64 {
+    match &sp.plus {
+        Some(pi) => sp.plus_const + pi.gain * bufs[pi.node][hist - pi.delay + t],
+        None => sp.plus_const,
+    }
+}
+
+/// A reversing stage's step through its edges (issue 16, [`RevState`]): the step in which
+/// the reversal factor `f` turns negative (the input leaves its range at the instant
+/// [`crossing`] finds on V+), the steps wholly reversed (a ramp at the slew rate, held at
+/// the state's limit) and the step in which it turns positive again, as
+/// [`SlewStep::enter_reversal`], [`SlewStep::reversed`] and [`SlewStep::leave_reversal`];
+/// `None` for any other step (and for a loop too slow for the sharp model), which then
+/// takes the stage's usual step. Keeps the V+ history and the reversed flag.
+#[inline]
+fn rev_step(
+    sp: &StagePlan,
+    st: &mut StageState,
+    ev: &SlewStep,
+    vp: f64,
+    v: f64,
+) -> Option<Stepped> {
+    let (cl, ch) = sp.cm?;
+    let on = ev.f <= 0.0;
+    let was = st.rv.on;
+    let (vp2, vp1) = (st.rv.vp2, st.rv.vp1);
+    st.rv.vp2 = vp1;
+    st.rv.vp1 = vp;
+    st.rv.on = on;
+    if ev.kh * (sp.b + sp.eps) < super::edges::STIFF {
+        return None;
+    }
+    let low = vp + vp1 < cl + ch || vp1.is_nan() && vp < 0.5 * (cl + ch);
+    let m = |x: f64| if low { x - cl } else { ch - x };
+    let u = || crossing([m(vp2), m(vp1), m(vp)]);
+    let sw = Swing {
+        lo: sp.shaper.lo,
+        hi: sp.shaper.hi,
+    };
+    let hold = Swing {
+        lo: sp.state_lo,
+        hi: sp.state_hi,
+    };
+    let mut full = *ev;
+    full.f = 1.0;
+    match (was, on) {
+        (false, true) => Some(full.enter_reversal(v, st.mode, u(), sw)),
+        (true, true) if st.mode != 0 => Some(ev.reversed(v, st.mode, sw)),
+        (true, false) => Some(full.leave_reversal(v, st.mode, u(), sw, hold)),
+        (false, false) if st.mode != 0 => full.from_rail(v, st.mode, sw, hold),
+        _ => None,
+    }
+}
+
 /// The full model over a block: slew (implicit phi), common-mode range and reversal, state
 /// clamp, events.
 #[allow(clippy::too_many_arguments)]
@@ -1105,6 +1288,7 @@ fn full_block(
     hist: usize,
     noise: Option<&[f64]>,
     x: &mut [f64],
+    ov: &mut [f64],
     h: f64,
     aa: bool,
 ) {
@@ -1154,7 +1338,16 @@ fn full_block(
             srh: sp.slew * h,
         };
         let mut corners = None;
-        let xn = if ev.stiff() && ev.eventful(st.mode) {
+        let edge = if sp.reversal {
+            rev_step(sp, st, &ev, vp, v)
+        } else {
+            None
+        };
+        let xn = if let Some(r) = edge {
+            st.mode = r.mode;
+            corners = Some(r);
+            r.v
+        } else if ev.stiff() && ev.eventful(st.mode) {
             let r = ev.step(v, st.mode);
             st.mode = r.mode;
             corners = Some(r);
@@ -1169,11 +1362,21 @@ fn full_block(
         };
         let xn = if xn.is_finite() { xn } else { v };
         v = xn.clamp(sp.state_lo, sp.state_hi);
-        x[t] = xn;
-        x[t] += st.pend;
-        st.pend = 0.0;
-        if let (Some(r), true) = (corners, aa) {
-            st.pend = add_corners(&r, x, t, &mut st.xh);
+        // reversed and held: the drive the following held steps give (no kink at the rail)
+        x[t] = if edge.is_some() && f <= 0.0 && v != xn {
+            v + ev.ramp(f64::from(st.mode), v)
+        } else {
+            xn
+        };
+        x[t] += st.pend[0];
+        st.pend = [st.pend[1], 0.0];
+        if edge.is_some() || st.rv.ofut > 0 {
+            st.rv
+                .after(ov, x, &st.xh, &sp.shaper, t, corners.as_ref(), aa);
+        } else if let (Some(r), true) = (corners, aa) {
+            let w = add_corners(&r, x, t, &mut st.xh);
+            st.pend[0] += w[0];
+            st.pend[1] += w[1];
         }
         // Slewing: the drive is past the linear range and the output is free to move. Not
         // while it is held at the swing (or current) limit, and not while latched by a phase
@@ -1220,6 +1423,7 @@ fn hybrid_block(
     weak: Option<&WeakStep>,
     vpa: &mut [f64],
     mra: &mut [f64],
+    ov: &mut [f64],
     aa: bool,
 ) {
     let b = x.len();
@@ -1270,8 +1474,7 @@ fn hybrid_block(
     let mut pp = st.p_prev;
     let mut pp2 = st.p_prev2;
     // corrections of the next sample: carried from the last step, made by this one
-    let mut carry = st.pend;
-    let mut pend = 0.0;
+    let mut pend = st.pend;
     for t in 0..b {
         let (vp, mrest, nz) = if has_caps {
             let vp = match &sp.plus {
@@ -1306,8 +1509,15 @@ fn hybrid_block(
                 x[t] = vl;
                 pp2 = pp;
                 pp = pn;
+                if sp.reversal {
+                    st.rv.vp2 = st.rv.vp1;
+                    st.rv.vp1 = vp;
+                    st.rv.on = false;
+                }
             }
         }
+        let mut corners = None;
+        let mut edge = None;
         if !linear {
             let mut f = 1.0;
             let mut vp_eff = vp;
@@ -1333,8 +1543,14 @@ fn hybrid_block(
                 kh,
                 srh,
             };
-            let mut corners = None;
-            let xn = if ev.stiff() && ev.eventful(st.mode) {
+            if sp.reversal {
+                edge = rev_step(sp, st, &ev, vp, v);
+            }
+            let xn = if let Some(r) = edge {
+                st.mode = r.mode;
+                corners = Some(r);
+                r.v
+            } else if ev.stiff() && ev.eventful(st.mode) {
                 let r = ev.step(v, st.mode);
                 st.mode = r.mode;
                 corners = Some(r);
@@ -1358,10 +1574,12 @@ fn hybrid_block(
             };
             let xn = if xn.is_finite() { xn } else { v };
             v = xn.clamp(slo, shi);
-            x[t] = xn;
-            if let (Some(r), true) = (corners, aa) {
-                pend = add_corners(&r, x, t, &mut st.xh);
-            }
+            // reversed and held: the drive the following held steps give (as `full_block`)
+            x[t] = if edge.is_some() && f <= 0.0 && v != xn {
+                v + ev.ramp(f64::from(st.mode), v)
+            } else {
+                xn
+            };
             // Slewing, counted as in `full_block`: not while held at the swing (or current)
             // limit, nor while latched by a phase reversal (f <= 0).
             let held = xn <= slo || xn >= shi;
@@ -1371,11 +1589,18 @@ fn hybrid_block(
             pp2 = pp;
             pp = pn;
         }
-        if carry != 0.0 {
-            x[t] += carry;
+        if pend[0] != 0.0 {
+            x[t] += pend[0];
         }
-        carry = pend;
-        pend = 0.0;
+        pend = [pend[1], 0.0];
+        if edge.is_some() || st.rv.ofut > 0 {
+            st.rv
+                .after(ov, x, &st.xh, &sp.shaper, t, corners.as_ref(), aa);
+        } else if let (Some(r), true) = (corners, aa) {
+            let w = add_corners(&r, x, t, &mut st.xh);
+            pend[0] += w[0];
+            pend[1] += w[1];
+        }
         if let Some((cl, ch)) = sp.cm {
             if vp < cl || vp > ch {
                 st.cm += 1;
@@ -1397,31 +1622,41 @@ fn hybrid_block(
     st.v = v;
     st.p_prev = pp;
     st.p_prev2 = pp2;
-    st.pend = carry;
+    st.pend = pend;
 }
 
-/// Adds the band-limited corrections of a step's slope corners ([`blamp`]) to the drive: the
-/// step ends at `x[t]`; the two samples before it are `x[t - 1]`, `x[t - 2]` or, at the head
-/// of a block, the newest samples of the clamp's history (not yet shaped: the clamp runs
-/// after the block); the correction of the next sample is returned, to add once it exists.
+/// Adds the band-limited corrections of a step's slope corners ([`corner6`]) to the drive:
+/// the step ends at `x[t]`; the three samples before it are `x[t - 1]` .. `x[t - 3]` or, at
+/// the head of a block, the newest samples of the clamp's history (not yet shaped: the
+/// clamp runs after the block); the corrections of the next two samples are returned, to
+/// add once they exist.
 #[inline]
-fn add_corners(r: &Stepped, x: &mut [f64], t: usize, xh: &mut [f64; WINDOW - 1]) -> f64 {
+fn add_corners(r: &Stepped, x: &mut [f64], t: usize, xh: &mut [f64; WINDOW - 1]) -> [f64; 2] {
     const H: usize = WINDOW - 1;
-    let mut next = 0.0;
-    for c in &r.corners[..r.n] {
-        let (a, b) = (blamp(c.u), blep2_at(c.u));
-        let w: [f64; 4] = std::array::from_fn(|i| c.d * a[i] + c.c * b[i]);
-        x[t] += w[2];
-        next += w[3];
-        for (back, wb) in [(1, w[1]), (2, w[0])] {
-            if t >= back {
-                x[t - back] += wb;
-            } else {
-                xh[H + t - back] += wb;
-            }
+    let w = corner_weights(r);
+    x[t] += w[3];
+    for back in 1..=3 {
+        let wb = w[3 - back];
+        if t >= back {
+            x[t - back] += wb;
+        } else {
+            xh[H + t - back] += wb;
         }
     }
-    next
+    [w[4], w[5]]
+}
+
+/// The summed corrections of a step's corners on samples `t - 3 ..= t + 2` ([`corner6`]).
+#[inline]
+fn corner_weights(r: &Stepped) -> [f64; SPAN] {
+    let mut w = [0.0; SPAN];
+    for c in &r.corners[..r.n] {
+        let (a, b) = corner6(c.u);
+        for i in 0..SPAN {
+            w[i] += c.d * a[i] + c.c * b[i];
+        }
+    }
+    w
 }
 
 /// Output clipper with [`LOOKAHEAD`] samples of lookahead: writes y[n - LOOKAHEAD] at
@@ -1431,6 +1666,7 @@ fn shape_block(
     sp: &StagePlan,
     st: &mut StageState,
     x: &[f64],
+    ov: Option<&[f64]>,
     out: &mut [f64],
     aa: bool,
     start: u64,
@@ -1442,7 +1678,7 @@ fn shape_block(
     let b = x.len();
     // Whole block strictly inside the linear region: the output is the drive, LOOKAHEAD
     // samples late (same values as the per-sample branch below).
-    if b >= 2 * H {
+    if b >= 2 * H && ov.is_none() {
         // the windows that reach into the previous block
         let mut e = [0.0; 2 * H];
         e[..H].copy_from_slice(&h);
@@ -1505,10 +1741,16 @@ fn shape_block(
         }
     }
     let mut clip = 0u64;
+    let mut oh = st.rv.oh;
+    let gibbs = super::shaper::GIBBS * (sh.hi - sh.lo);
     for (t, (o, &xn)) in out.iter_mut().zip(x).enumerate() {
         let win: [f64; WINDOW] = std::array::from_fn(|i| if i < H { h[i] } else { xn });
         let xc = h[LOOKAHEAD];
-        *o = if sh.inside7(&win) {
+        let oc = oh[LOOKAHEAD];
+        *o = if !oc.is_nan() {
+            // bounded as the clamp's own band-limited value (`Shaper::smooth7`)
+            oc.clamp(sh.lo - gibbs, sh.hi + gibbs)
+        } else if sh.inside7(&win) {
             xc
         } else if aa {
             sh.smooth7(&win)
@@ -1527,9 +1769,14 @@ fn shape_block(
         st.out_min = st.out_min.min(v);
         h.copy_within(1.., 0);
         h[H - 1] = xn;
+        if let Some(ov) = ov {
+            oh.copy_within(1.., 0);
+            oh[H - 1] = ov[t];
+        }
     }
     st.clip += clip;
     st.xh = h;
+    st.rv.oh = oh;
 }
 
 #[cfg(test)]
