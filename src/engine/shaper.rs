@@ -412,35 +412,7 @@ impl Shaper {
         let two = [self.hi, self.lo];
         let bounds: &[f64] = if w > 0.0 { &four } else { &two };
         let mut ts = [0.0f64; 3 + 4 * 7];
-        ts[0] = -1.0;
-        ts[1] = 0.0;
-        ts[2] = 1.0;
-        let mut n = 3;
-        if bounds.iter().any(|&bd| bd >= rlo && bd <= rhi) {
-            let mut dc = [0.0; 6];
-            for i in 1..7 {
-                dc[i - 1] = i as f64 * c[i];
-            }
-            let mut e = [0.0; 8];
-            let k = roots(&dc, &mut e, true);
-            let mut ends = [-1.0; 10];
-            ends[1..=k].copy_from_slice(&e[..k]);
-            ends[k + 1] = 1.0;
-            for j in 0..=k {
-                let (a, b) = (ends[j], ends[j + 1]);
-                let (xa, xb) = (horner(&c, a), horner(&c, b));
-                for &bd in bounds {
-                    let (ga, gb) = (xa - bd, xb - bd);
-                    if (ga < 0.0 && gb > 0.0) || (ga > 0.0 && gb < 0.0) {
-                        ts[n] = bracket_root(|t| horner(&c, t) - bd, |t| horner(&dc, t), a, b, ga);
-                        n += 1;
-                    } else if gb == 0.0 && b < 1.0 {
-                        ts[n] = b;
-                        n += 1;
-                    }
-                }
-            }
-        }
+        let n = split_points(&c, bounds, (rlo, rhi), true, &mut ts);
         if n == 3 && !self.clipping(x[3]) {
             return x[3];
         }
@@ -492,38 +464,9 @@ impl Shaper {
         let bounds: &[f64] = if w > 0.0 { &four } else { &two };
         // Kernel support split at the kernel's apex and at every crossing of a boundary.
         let mut ts = [0.0f64; 3 + 4 * 7];
-        ts[0] = -1.0;
-        ts[1] = 0.0;
-        ts[2] = 1.0;
-        let mut n = 3;
         let m = reach7(x);
         let (rlo, rhi) = (x[2].min(x[3]).min(x[4]) - m, x[2].max(x[3]).max(x[4]) + m);
-        if bounds.iter().any(|&bd| bd >= rlo && bd <= rhi) {
-            // Monotone pieces of the drive, split at the roots of x' in (-1, 1).
-            let mut dc = [0.0; 6];
-            for i in 1..7 {
-                dc[i - 1] = i as f64 * c[i];
-            }
-            let mut e = [0.0; 8];
-            let k = roots(&dc, &mut e, false);
-            let mut ends = [-1.0; 10];
-            ends[1..=k].copy_from_slice(&e[..k]);
-            ends[k + 1] = 1.0;
-            for j in 0..=k {
-                let (a, b) = (ends[j], ends[j + 1]);
-                let (xa, xb) = (horner(&c, a), horner(&c, b));
-                for &bd in bounds {
-                    let (ga, gb) = (xa - bd, xb - bd);
-                    if (ga < 0.0 && gb > 0.0) || (ga > 0.0 && gb < 0.0) {
-                        ts[n] = bracket_root(|t| horner(&c, t) - bd, |t| horner(&dc, t), a, b, ga);
-                        n += 1;
-                    } else if gb == 0.0 && b < 1.0 {
-                        ts[n] = b;
-                        n += 1;
-                    }
-                }
-            }
-        }
+        let n = split_points(&c, bounds, (rlo, rhi), false, &mut ts);
         if n == 3 && !self.clipping(x[3]) {
             return x[3];
         }
@@ -564,6 +507,49 @@ fn line_piece(c: &[f64; 7], rail: f64, a: f64, b: f64) -> f64 {
         f[k + 1] = hk / (k + 1) as f64;
     }
     horner(&f, b) - horner(&f, a)
+}
+
+/// The kernel's support split at its apex and at every crossing of a boundary by the drive
+/// polynomial `c` (when the drive's reach `(rlo, rhi)` holds one): writes -1, 0, 1 and the
+/// crossings (unsorted) into `ts`, returns how many. The drive is split into monotone pieces
+/// at the roots of its derivative in (-1, 1) (`quick`: [`roots`]'s exact shortcuts).
+fn split_points(
+    c: &[f64; 7],
+    bounds: &[f64],
+    (rlo, rhi): (f64, f64),
+    quick: bool,
+    ts: &mut [f64; 3 + 4 * 7],
+) -> usize {
+    ts[0] = -1.0;
+    ts[1] = 0.0;
+    ts[2] = 1.0;
+    let mut n = 3;
+    if bounds.iter().any(|&bd| bd >= rlo && bd <= rhi) {
+        let mut dc = [0.0; 6];
+        for i in 1..7 {
+            dc[i - 1] = i as f64 * c[i];
+        }
+        let mut e = [0.0; 8];
+        let k = roots(&dc, &mut e, quick);
+        let mut ends = [-1.0; 10];
+        ends[1..=k].copy_from_slice(&e[..k]);
+        ends[k + 1] = 1.0;
+        for j in 0..=k {
+            let (a, b) = (ends[j], ends[j + 1]);
+            let (xa, xb) = (horner(c, a), horner(c, b));
+            for &bd in bounds {
+                let (ga, gb) = (xa - bd, xb - bd);
+                if (ga < 0.0 && gb > 0.0) || (ga > 0.0 && gb < 0.0) {
+                    ts[n] = bracket_root(|t| horner(c, t) - bd, |t| horner(&dc, t), a, b, ga);
+                    n += 1;
+                } else if gb == 0.0 && b < 1.0 {
+                    ts[n] = b;
+                    n += 1;
+                }
+            }
+        }
+    }
+    n
 }
 
 #[cfg(test)]
