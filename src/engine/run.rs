@@ -1524,7 +1524,7 @@ fn hybrid_block(
             if let Some((cl, ch)) = sp.cm {
                 if sp.reversal {
                     let m = (vp - cl).min(ch - vp);
-                    f = (m * delta_inv).tanh();
+                    f = super::fastmath::tanh(m * delta_inv);
                     if f < 0.0 {
                         st.rev += 1;
                     }
@@ -1570,7 +1570,7 @@ fn hybrid_block(
             } else {
                 st.mode = 0;
                 let vd = f * (pn - sp.b * v);
-                v + h * (sp.slew * (vd / sp.vov).tanh() - kgain * sp.eps * v)
+                v + h * (sp.slew * super::fastmath::tanh(vd / sp.vov) - kgain * sp.eps * v)
             };
             let xn = if xn.is_finite() { xn } else { v };
             v = xn.clamp(slo, shi);
