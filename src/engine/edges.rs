@@ -160,6 +160,96 @@ fn b3_ramps(d: f64) -> (f64, f64) {
 /// holds.
 #[inline]
 pub fn corner6(u: f64) -> ([f64; SPAN], [f64; SPAN]) {
+    // the same piecewise polynomials in `u`, tabulated: two pieces per sample (the kernel's
+    // knots fall on whole and half samples), Horner in `u` (see `CORNER_TABLE`)
+    let piece = usize::from(u >= 0.5);
+    let mut a = [0.0; SPAN];
+    let mut b = [0.0; SPAN];
+    for i in 0..SPAN {
+        let ca = &CORNER_TABLE.0[i][piece];
+        let cb = &CORNER_TABLE.1[i][piece];
+        a[i] = (((ca[4] * u + ca[3]) * u + ca[2]) * u + ca[1]) * u + ca[0];
+        b[i] = ((((cb[5] * u + cb[4]) * u + cb[3]) * u + cb[2]) * u + cb[1]) * u + cb[0];
+    }
+    (a, b)
+}
+
+/// The coefficients (in powers of `u`) of [`corner6_reference`]'s corrections, per sample
+/// and piece (`u < 1/2`, `u >= 1/2`): every truncated power `(d + s)+^k` with `d = i - 2 - u`
+/// is either 0 or `(i - 2 + s - u)^k` over a whole piece (its knot `i - 2 + s` is a multiple
+/// of 1/2), expanded by the binomial theorem. Slope jumps (degree 4) and curvature jumps
+/// (degree 5).
+type CornerTable = ([[[f64; 6]; 2]; SPAN], [[[f64; 6]; 2]; SPAN]);
+static CORNER_TABLE: CornerTable = corner_table();
+
+const fn corner_table() -> CornerTable {
+    // (weight, shift) of the truncated powers: (4/3) B3(t) ramps, -(1/3) B3(t/2)/2 ramps
+    // (x/2 powers folded into the weights), and the ramp itself
+    const S1: [(f64, f64); 4] = [(1.0, 1.5), (-1.0, -1.5), (3.0, -0.5), (-3.0, 0.5)];
+    const S2: [(f64, f64); 4] = [(1.0, 3.0), (-1.0, -3.0), (3.0, -1.0), (-3.0, 1.0)];
+    let mut ta = [[[0.0; 6]; 2]; SPAN];
+    let mut tb = [[[0.0; 6]; 2]; SPAN];
+    let mut i = 0;
+    while i < SPAN {
+        let c = i as f64 - 2.0;
+        let mut piece = 0;
+        while piece < 2 {
+            let mid = if piece == 0 { 0.25 } else { 0.75 };
+            let mut j = 0;
+            while j < 9 {
+                // term j: (shift, weight for a (k = 4 or 1), weight for b (k = 5 or 2))
+                let (s, wa, wb, ka, kb) = if j < 4 {
+                    let (w, s) = S1[j];
+                    (s, w * (4.0 / 3.0) / 24.0, w * (4.0 / 3.0) / 120.0, 4, 5)
+                } else if j < 8 {
+                    let (w, s) = S2[j - 4];
+                    (
+                        s,
+                        -w * (2.0 / 3.0) / (16.0 * 24.0),
+                        -w * (4.0 / 3.0) / (32.0 * 120.0),
+                        4,
+                        5,
+                    )
+                } else {
+                    (0.0, -1.0, -0.5, 1, 2)
+                };
+                let knot = c + s;
+                // active over the piece, and inside the kernel's support (|d| < 3)
+                if knot - mid > 0.0 && (c - mid).abs() < 3.0 {
+                    add_power(&mut ta[i][piece], knot, ka, wa);
+                    add_power(&mut tb[i][piece], knot, kb, wb);
+                }
+                j += 1;
+            }
+            piece += 1;
+        }
+        i += 1;
+    }
+    (ta, tb)
+}
+
+/// `coef += w (k0 - u)^k` in powers of `u` (binomial theorem).
+const fn add_power(coef: &mut [f64; 6], k0: f64, k: usize, w: f64) {
+    let mut m = 0;
+    let mut binom = 1.0;
+    while m <= k {
+        // C(k, m) k0^(k - m) (-u)^m
+        let mut pw = 1.0;
+        let mut e = 0;
+        while e < k - m {
+            pw *= k0;
+            e += 1;
+        }
+        let sign = if m % 2 == 0 { 1.0 } else { -1.0 };
+        coef[m] += w * binom * pw * sign;
+        binom = binom * (k - m) as f64 / (m + 1) as f64;
+        m += 1;
+    }
+}
+
+/// [`corner6`] evaluated from its definition (the B-spline ramps as truncated powers): the
+/// plain reference the table is tested against.
+pub fn corner6_reference(u: f64) -> ([f64; SPAN], [f64; SPAN]) {
     let mut a = [0.0; SPAN];
     let mut b = [0.0; SPAN];
     for (i, (ai, bi)) in a.iter_mut().zip(b.iter_mut()).enumerate() {
@@ -585,6 +675,23 @@ mod tests {
                 got.v
             );
         }
+    }
+
+    // The tabulated corrections equal the reference's evaluation of the truncated powers
+    // (the same polynomials expanded, so to rounding) over the whole step and at the
+    // pieces' ends.
+    #[test]
+    fn corner6_table_matches_its_reference() {
+        let mut worst: f64 = 0.0;
+        for k in 0..=20_000 {
+            let u = k as f64 / 20_000.0;
+            let (a, b) = corner6(u);
+            let (ra, rb) = corner6_reference(u);
+            for i in 0..SPAN {
+                worst = worst.max((a[i] - ra[i]).abs()).max((b[i] - rb[i]).abs());
+            }
+        }
+        assert!(worst < 1e-13, "{worst:e}");
     }
 
     // The kernel's average of a unit ramp `(t - u)+` (and of `(t - u)+^2 / 2`) at the six
