@@ -20,8 +20,8 @@
 //! their convergence tolerance (tested in `tests/network_kernels.rs`). A step that does not
 //! converge within [`super::step::MAX_ITER`] iterations is the same `NoConvergence` error.
 
-use super::linalg::{lu_factor, lu_solve};
-use super::plan::{assemble, AmpRow, CircuitError, GroupPlan, Lin};
+use super::linalg::lu_solve;
+use super::plan::{CircuitError, GroupPlan};
 use super::small::SmallKernel;
 use super::step::{commit, GroupState, MAX_ITER};
 use super::{Circuit, ElemKind};
@@ -75,27 +75,11 @@ impl DiodeStep {
         }
         let ny = gp.ny();
         let nk = gp.n_kcl;
-        // the fast path's matrix (junctions as GMIN only), as `plan::compile` factors it
-        let junc0 = vec![(0.0, 0.0); nj];
-        let zj = vec![0.0; gp.caps.len()];
-        let zeros_vn = vec![0.0; c.nodes.len()];
-        let rows: Vec<AmpRow> = Vec::new();
-        let outs: Vec<(f64, f64)> = Vec::new();
-        let lin = Lin {
-            rows: &rows,
-            outs: &outs,
-            junc: &junc0,
-            caps: Some(&zj),
-            consts: false,
-        };
-        let mut m = vec![0.0; ny * ny];
+        // the fast path's factor (junctions as GMIN only), as `plan::compile` left it
+        let fp = gp.fast.as_ref()?;
+        let (m, perm) = (&fp.lu, &fp.perm);
         let mut rhs = vec![0.0; ny];
-        let mut perm = vec![0; ny];
         let mut tmp = vec![0.0; ny];
-        assemble(c, gp, &lin, &zeros_vn, &mut m, &mut rhs);
-        if !lu_factor(&mut m, ny, &mut perm) {
-            return None;
-        }
         let mut params = Vec::new();
         let mut t = vec![0.0; ny * nj];
         for (q, &ei) in gp.junctions.iter().enumerate() {
@@ -111,7 +95,7 @@ impl DiodeStep {
             if let Some(i) = gp.col[e.b].filter(|&i| i < nk) {
                 rhs[i] += 1.0;
             }
-            lu_solve(&m, ny, &perm, &mut rhs, &mut tmp);
+            lu_solve(m, ny, perm, &mut rhs, &mut tmp);
             for i in 0..ny {
                 t[i * nj + q] = rhs[i];
             }

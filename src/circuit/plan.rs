@@ -64,6 +64,12 @@ pub struct FastPath {
     pub y0: Vec<f64>,
     /// Largest junction voltage of each diode for which its "off" model holds, V.
     pub vth: Vec<f64>,
+    /// The LU factor of the fast path's matrix (op-amp rows as compiled, junctions off),
+    /// row-major `ny x ny`, and its row permutation: what the noise map and the reduced
+    /// diode step solve with.
+    pub lu: Vec<f64>,
+    /// Row permutation of `lu`.
+    pub perm: Vec<usize>,
 }
 
 /// One compiled group.
@@ -155,8 +161,6 @@ pub fn cholesky_psd(s: &[f64], n: usize) -> Vec<f64> {
 /// was compiled with.
 pub fn add_noise(plan: &mut CircuitPlan, four_kt: f64, amps: &[AmpNoise]) {
     let c = &plan.circuit;
-    let nnodes = c.nodes.len();
-    let zeros_vn = vec![0.0; nnodes];
     for gp in &mut plan.groups {
         let nk = gp.n_kcl;
         let na = gp.amps.len();
@@ -207,58 +211,33 @@ pub fn add_noise(plan: &mut CircuitPlan, four_kt: f64, amps: &[AmpNoise]) {
         let chol = cholesky_psd(&s, nk);
         let nw = nk + na;
         let mut ay_w = vec![0.0; ny * nw];
-        if gp.fast.is_some() {
+        if let Some(fp) = &gp.fast {
             // the fast path's factor (op-amp rows as compiled), unit sources one at a time
-            let outs = vec![(1.0, 0.0); na];
-            let junc0 = vec![(0.0, 0.0); gp.junctions.len()];
-            let zj = vec![0.0; gp.caps.len()];
-            let rows0: Vec<AmpRow> = gp
-                .amps
-                .iter()
-                .map(|a| AmpRow::Step {
-                    k: a.a1p,
-                    b: a.b,
-                    r: 0.0,
-                    plus_fixed: None,
-                })
-                .collect();
-            let lin0 = Lin {
-                rows: &rows0,
-                outs: &outs,
-                junc: &junc0,
-                caps: Some(&zj),
-                consts: false,
-            };
-            let mut lu = vec![0.0; ny * ny];
+            let (lu, perm) = (&fp.lu, &fp.perm);
             let mut rhs = vec![0.0; ny];
-            let mut perm = vec![0; ny];
             let mut tmp = vec![0.0; ny];
-            assemble(c, gp, &lin0, &zeros_vn, &mut lu, &mut rhs);
-            if lu_factor(&mut lu, ny, &mut perm) {
-                // unit current into each block node
-                let mut unit = vec![0.0; ny * nk];
-                for r in 0..nk {
-                    rhs.fill(0.0);
-                    rhs[r] = 1.0;
-                    lu_solve(&lu, ny, &perm, &mut rhs, &mut tmp);
-                    for i in 0..ny {
-                        unit[i * nk + r] = rhs[i];
-                    }
-                }
+            // unit current into each block node
+            let mut unit = vec![0.0; ny * nk];
+            for r in 0..nk {
+                rhs.fill(0.0);
+                rhs[r] = 1.0;
+                lu_solve(lu, ny, perm, &mut rhs, &mut tmp);
                 for i in 0..ny {
-                    for q in 0..nk {
-                        ay_w[i * nw + q] =
-                            (q..nk).map(|r| unit[i * nk + r] * chol[r * nk + q]).sum();
-                    }
+                    unit[i * nk + r] = rhs[i];
                 }
-                // en of op-amp j beside its offset: `k vos` in its row
-                for (j, ac) in gp.amps.iter().enumerate() {
-                    rhs.fill(0.0);
-                    rhs[gp.nodes.len() + j] = ac.a1p;
-                    lu_solve(&lu, ny, &perm, &mut rhs, &mut tmp);
-                    for i in 0..ny {
-                        ay_w[i * nw + nk + j] = rhs[i];
-                    }
+            }
+            for i in 0..ny {
+                for q in 0..nk {
+                    ay_w[i * nw + q] = (q..nk).map(|r| unit[i * nk + r] * chol[r * nk + q]).sum();
+                }
+            }
+            // en of op-amp j beside its offset: `k vos` in its row
+            for (j, ac) in gp.amps.iter().enumerate() {
+                rhs.fill(0.0);
+                rhs[gp.nodes.len() + j] = ac.a1p;
+                lu_solve(lu, ny, perm, &mut rhs, &mut tmp);
+                for i in 0..ny {
+                    ay_w[i * nw + nk + j] = rhs[i];
                 }
             }
         }
@@ -686,6 +665,8 @@ pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
                 ay_z,
                 y0,
                 vth,
+                lu,
+                perm: perm.clone(),
             });
         }
         groups.push(gp);
