@@ -390,8 +390,9 @@ impl Netlist {
         // The patch's one circuit (`circuit::build::patch_circuit`, the circuit `response`,
         // `check` and the engine read) with its rest point (for the diodes' conductances).
         let mut global_notes = Vec::new();
-        let (pc, rest) = match crate::response::node_gains(patch, &[]) {
-            Ok(ng) => (ng.circuit, ng.rest),
+        let (pc, rest, tau) = match crate::response::rest_and_time_constants(patch) {
+            // open-circuit time constant of every capacitor: the corner it sets
+            Ok((ng, tau)) => (ng.circuit, ng.rest, tau),
             Err(e) => {
                 let pc = crate::circuit::build::patch_circuit(patch);
                 if pc
@@ -406,13 +407,9 @@ impl Netlist {
                     ));
                 }
                 let rest = vec![0.0; pc.circuit.nodes.len()];
-                (pc, rest)
+                (pc, rest, Vec::new())
             }
         };
-        // open-circuit time constant of every capacitor: the corner it sets
-        let tau = crate::response::capacitor_time_constants(patch)
-            .map(|(_, tau)| tau)
-            .unwrap_or_default();
         let c = &pc.circuit;
         let nn = c.nodes.len();
         // A pot segment at its floor (`POT_END_R`: the taper puts the wiper at that end) is

@@ -141,6 +141,18 @@ struct Solver {
 }
 
 impl Solver {
+    /// Open-circuit time constant of every capacitor (see [`capacitor_time_constants`]).
+    fn time_constants(&self) -> Result<Vec<f64>, ResponseError> {
+        let mut tau = vec![0.0; self.w.circuit.elems.len()];
+        for (k, e) in self.w.circuit.elems.iter().enumerate() {
+            if let ElemKind::C(x) = e.kind {
+                let v = self.solve_driven(None, Some((e.a, e.b)), 0.0)?;
+                tau[k] = x * (v[e.a].re - v[e.b].re).abs();
+            }
+        }
+        Ok(tau)
+    }
+
     fn new(patch: &Patch) -> Result<Solver, ResponseError> {
         let w = patch_circuit(patch);
         let c = &w.circuit;
@@ -305,14 +317,17 @@ pub fn response(patch: &Patch, source: usize, freqs: &[f64]) -> Result<Response,
 /// upper bound on the slowest time constant when the poles are real.
 pub fn capacitor_time_constants(patch: &Patch) -> Result<(PatchCircuit, Vec<f64>), ResponseError> {
     let sv = Solver::new(patch)?;
-    let mut tau = vec![0.0; sv.w.circuit.elems.len()];
-    for (k, e) in sv.w.circuit.elems.iter().enumerate() {
-        if let ElemKind::C(x) = e.kind {
-            let v = sv.solve_driven(None, Some((e.a, e.b)), 0.0)?;
-            tau[k] = x * (v[e.a].re - v[e.b].re).abs();
-        }
-    }
+    let tau = sv.time_constants()?;
     Ok((sv.w, tau))
+}
+
+/// [`node_gains`] (with no band) and [`capacitor_time_constants`] from one solve of the
+/// patch's circuit and its rest point (no time constants, an empty list, when their solve
+/// is singular).
+pub fn rest_and_time_constants(patch: &Patch) -> Result<(NodeGains, Vec<f64>), ResponseError> {
+    let sv = Solver::new(patch)?;
+    let tau = sv.time_constants().unwrap_or_default();
+    Ok((gains_of(sv, &[])?, tau))
 }
 
 /// Static (DC, small-signal) gain from every source to every stage's output:
@@ -351,11 +366,14 @@ pub struct NodeGains {
 
 /// Rest voltages, DC gains and largest gains over `band_hz` of every node of the patch.
 pub fn node_gains(patch: &Patch, band_hz: &[f64]) -> Result<NodeGains, ResponseError> {
-    let sv = Solver::new(patch)?;
+    gains_of(Solver::new(patch)?, band_hz)
+}
+
+fn gains_of(sv: Solver, band_hz: &[f64]) -> Result<NodeGains, ResponseError> {
     let nn = sv.w.circuit.nodes.len();
-    let mut dc = Vec::with_capacity(patch.sources.len());
-    let mut band = Vec::with_capacity(patch.sources.len());
-    for k in 0..patch.sources.len() {
+    let mut dc = Vec::with_capacity(sv.w.sources.len());
+    let mut band = Vec::with_capacity(sv.w.sources.len());
+    for k in 0..sv.w.sources.len() {
         let d: Vec<f64> = sv.solve(k, 0.0)?.iter().map(|v| v.re).collect();
         let mut b: Vec<f64> = d.iter().map(|x| x.abs()).collect();
         for &hz in band_hz {
