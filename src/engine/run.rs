@@ -1683,12 +1683,22 @@ fn shape_block(
         let mut e = [0.0; 2 * H];
         e[..H].copy_from_slice(&h);
         e[H..].copy_from_slice(&x[..H]);
+        out[..LOOKAHEAD].copy_from_slice(&h[LOOKAHEAD..]);
+        out[LOOKAHEAD..].copy_from_slice(&x[..b - LOOKAHEAD]);
+        // The cheap pass first: the block's middle samples and the largest second difference
+        // bound every window's reach (`shaper::REACH7_PER_E`); when that bound keeps the whole
+        // block inside, every window passes `inside7` and the exact pass below would return
+        // the same peaks.
+        if let Some((pk_lo, pk_hi)) = cheap_inside(&e, x, lin_lo, lin_hi) {
+            st.xh.copy_from_slice(&x[b - H..]);
+            st.out_min = st.out_min.min(pk_lo);
+            st.out_max = st.out_max.max(pk_hi);
+            return;
+        }
         let first = (0..H).all(|j| {
             let win: &[f64; WINDOW] = e[j..j + WINDOW].try_into().expect("window length");
             sh.inside7(win)
         });
-        out[..LOOKAHEAD].copy_from_slice(&h[LOOKAHEAD..]);
-        out[LOOKAHEAD..].copy_from_slice(&x[..b - LOOKAHEAD]);
         // One pass of eight independent lanes (compare-and-select, which vectorises): the
         // extremes of the local polynomial's bounds decide "inside" (as `Shaper::inside7`:
         // the three middle samples widened by `reach7`), those of the middle samples are the
@@ -1779,9 +1789,134 @@ fn shape_block(
     st.rv.oh = oh;
 }
 
+/// The block pass's cheap test (see [`super::shaper::REACH7_PER_E`]): `head` is the
+/// drive's history followed by the block's first samples (`[xh, x[..H]]`), `x` the block
+/// (at least `2 H` samples). When every window's middle samples widened by the bound on its
+/// reach stay strictly inside `(lo, hi)`, the lowest and highest window centre (the
+/// output's peaks over the block); `None` when the bound does not decide it (or a sample
+/// is not finite), and the exact pass decides.
+fn cheap_inside(head: &[f64; 2 * (WINDOW - 1)], x: &[f64], lo: f64, hi: f64) -> Option<(f64, f64)> {
+    const H: usize = WINDOW - 1;
+    let b = x.len();
+    // the concatenation s = [xh, x]: window j is s[j..j + 7] for j in 0..b; its middle
+    // samples are s[j + 2..=j + 4], its centre s[j + 3], its second differences at
+    // s[j + 1..=j + 5]
+    let mut mn = f64::INFINITY;
+    let mut mx = f64::NEG_INFINITY;
+    let mut emax = 0.0f64;
+    let mut pk_lo = f64::INFINITY;
+    let mut pk_hi = f64::NEG_INFINITY;
+    for t in 1..2 * H - 1 {
+        let e = (head[t + 1] - 2.0 * head[t] + head[t - 1]).abs();
+        emax = if e > emax { e } else { emax };
+    }
+    for &v in &head[2..] {
+        mn = if v < mn { v } else { mn };
+        mx = if v > mx { v } else { mx };
+    }
+    for &v in &head[3..] {
+        pk_lo = if v < pk_lo { v } else { pk_lo };
+        pk_hi = if v > pk_hi { v } else { pk_hi };
+    }
+    // second differences at positions 2 H - 1 ..= b + 4 of s (windows of x from H - 2)
+    let mut sum = 0.0;
+    for w in x[H - 2..b].windows(3) {
+        let e = (w[2] - 2.0 * w[1] + w[0]).abs();
+        emax = if e > emax { e } else { emax };
+    }
+    for &v in &x[H..b - 2] {
+        mn = if v < mn { v } else { mn };
+        mx = if v > mx { v } else { mx };
+        sum += v;
+    }
+    for &v in &x[H..b - 3] {
+        pk_lo = if v < pk_lo { v } else { pk_lo };
+        pk_hi = if v > pk_hi { v } else { pk_hi };
+    }
+    let reach = super::shaper::REACH7_PER_E * emax;
+    (sum.is_finite() && emax.is_finite() && mn - reach > lo && mx + reach < hi)
+        .then_some((pk_lo, pk_hi))
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    // The block pass's cheap test against the exact one (a plain reference beside the fast
+    // path): whenever the bound from the largest second difference says "inside", every
+    // window of the block passes `Shaper::inside7`, and the peaks are the extremes of the
+    // window centres. Random smooth and rough blocks near the limits.
+    #[test]
+    fn cheap_inside_implies_every_window_inside() {
+        const H: usize = WINDOW - 1;
+        let sh = Shaper {
+            lo: -10.0,
+            hi: 10.0,
+            w: 0.5,
+        };
+        let (lo, hi) = (sh.lo + sh.w, sh.hi - sh.w);
+        let mut rng = crate::rng::Rng::new(5);
+        let (mut decided, mut refused) = (0, 0);
+        for trial in 0..4000 {
+            let b = 16 + (rng.uniform() * 100.0) as usize;
+            let amp = 9.6 * rng.uniform();
+            let w = 0.8 * rng.uniform().powi(3);
+            let ph = 6.0 * rng.uniform();
+            let rough = if trial % 5 == 0 { 0.05 * rng.uniform() } else { 0.0 };
+            let s: Vec<f64> = (0..b + H)
+                .map(|i| amp * (w * i as f64 + ph).sin() + rough * (2.0 * rng.uniform() - 1.0))
+                .collect();
+            let xh: [f64; H] = s[..H].try_into().unwrap();
+            let x = &s[H..];
+            let mut head = [0.0; 2 * H];
+            head[..H].copy_from_slice(&xh);
+            head[H..].copy_from_slice(&x[..H]);
+            let exact = (0..b).all(|j| {
+                let win: &[f64; WINDOW] = s[j..j + WINDOW].try_into().unwrap();
+                sh.inside7(win)
+            });
+            match cheap_inside(&head, x, lo, hi) {
+                Some((pl, ph_)) => {
+                    decided += 1;
+                    assert!(exact, "trial {trial}: cheap said inside, a window is not");
+                    let c = &s[3..b + 3];
+                    let (ml, mh) = c
+                        .iter()
+                        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, z), &v| (a.min(v), z.max(v)));
+                    assert_eq!((pl, ph_), (ml, mh), "trial {trial}");
+                }
+                None => refused += u32::from(exact),
+            }
+        }
+        // the bound is sufficient and rarely stricter than the exact test
+        assert!(decided > 1000, "{decided}");
+        println!("decided {decided}, exact-inside but refused {refused}");
+        let mut bad = head_of(&[0.0; 40]);
+        bad.1[20] = f64::NAN;
+        assert!(cheap_inside(&bad.0, &bad.1, lo, hi).is_none());
+    }
+
+    fn head_of(s: &[f64]) -> ([f64; 2 * (WINDOW - 1)], Vec<f64>) {
+        const H: usize = WINDOW - 1;
+        let mut head = [0.0; 2 * H];
+        head[..H].copy_from_slice(&s[..H]);
+        head[H..].copy_from_slice(&s[H..2 * H]);
+        (head, s[H..].to_vec())
+    }
+
+    // Stirling's differences bounded by the largest second difference (the derivation at
+    // `shaper::REACH7_PER_E`), on random windows.
+    #[test]
+    fn reach7_is_bounded_by_second_differences() {
+        let mut rng = crate::rng::Rng::new(9);
+        for _ in 0..100_000 {
+            let x: [f64; WINDOW] = std::array::from_fn(|_| 2.0 * rng.uniform() - 1.0);
+            let e = (1..WINDOW - 1)
+                .map(|t| (x[t + 1] - 2.0 * x[t] + x[t - 1]).abs())
+                .fold(0.0, f64::max);
+            assert!(reach7(&x) <= 0.2867 * e + 1e-15, "{x:?}");
+        }
+    }
 
     // The fast step against the plain reference step (railsong design: a plain reference
     // beside every fast path): same closed form, library special functions in the reference.

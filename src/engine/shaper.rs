@@ -138,6 +138,18 @@ pub fn reach7(x: &[f64; WINDOW]) -> f64 {
         + 0.001_23 * d6.abs()
 }
 
+/// A bound on [`reach7`] from the window's second differences alone: with
+/// `e(t) = x(t+1) - 2 x(t) + x(t-1)` at the window's five inner samples, Stirling's
+/// differences are `d^2 = e(0)`, `mu d^3 = (e(1) - e(-1)) / 2`, `d^4 = e(1) - 2 e(0) + e(-1)`,
+/// `mu d^5 = (e(2) - 2 e(1) + 2 e(-1) - e(-2)) / 2` and `d^6 = e(2) - 4 e(1) + 6 e(0) - 4 e(-1)
+/// + e(-2)`, so `|d^2|`, `|mu d^3|`, `|d^4|`, `|mu d^5|`, `|d^6|` are at most 1, 1, 4, 3 and 16
+/// times `E = max |e|`, and `reach7 <= (0.125 + 0.0642 + 4 (0.0105) + 3 (0.0119) + 16 (0.00123))
+/// E = 0.2866 E`; the factor here is rounded up to 0.3 (covering the rounding of both
+/// sides). A block whose drive stays inside the linear region by this bound over all its
+/// windows passes [`Shaper::inside7`] at every one of them (tested), so the block pass can
+/// decide "linear throughout" from one running maximum of `|e|` instead of a window per sample.
+pub const REACH7_PER_E: f64 = 0.3;
+
 #[inline]
 fn horner(c: &[f64], t: f64) -> f64 {
     c.iter().rev().fold(0.0, |acc, &ci| acc * t + ci)
