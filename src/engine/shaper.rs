@@ -143,8 +143,8 @@ pub fn reach7(x: &[f64; WINDOW]) -> f64 {
 /// differences are `d^2 = e(0)`, `mu d^3 = (e(1) - e(-1)) / 2`, `d^4 = e(1) - 2 e(0) + e(-1)`,
 /// `mu d^5 = (e(2) - 2 e(1) + 2 e(-1) - e(-2)) / 2` and `d^6 = e(2) - 4 e(1) + 6 e(0) - 4 e(-1)
 /// + e(-2)`, so `|d^2|`, `|mu d^3|`, `|d^4|`, `|mu d^5|`, `|d^6|` are at most 1, 1, 4, 3 and 16
-/// times `E = max |e|`, and `reach7 <= (0.125 + 0.0642 + 4 (0.0105) + 3 (0.0119) + 16 (0.00123))
-/// E = 0.2866 E`; the factor here is rounded up to 0.3 (covering the rounding of both
+/// times `E = max |e|`, and `reach7` is at most
+/// `(0.125 + 0.0642 + 4 (0.0105) + 3 (0.0119) + 16 (0.00123)) E = 0.2866 E`; the factor here is rounded up to 0.3 (covering the rounding of both
 /// sides). A block whose drive stays inside the linear region by this bound over all its
 /// windows passes [`Shaper::inside7`] at every one of them (tested), so the block pass can
 /// decide "linear throughout" from one running maximum of `|e|` instead of a window per sample.
