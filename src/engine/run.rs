@@ -1862,7 +1862,11 @@ mod tests {
             let amp = 9.6 * rng.uniform();
             let w = 0.8 * rng.uniform().powi(3);
             let ph = 6.0 * rng.uniform();
-            let rough = if trial % 5 == 0 { 0.05 * rng.uniform() } else { 0.0 };
+            let rough = if trial % 5 == 0 {
+                0.05 * rng.uniform()
+            } else {
+                0.0
+            };
             let s: Vec<f64> = (0..b + H)
                 .map(|i| amp * (w * i as f64 + ph).sin() + rough * (2.0 * rng.uniform() - 1.0))
                 .collect();
@@ -1882,7 +1886,9 @@ mod tests {
                     let c = &s[3..b + 3];
                     let (ml, mh) = c
                         .iter()
-                        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, z), &v| (a.min(v), z.max(v)));
+                        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, z), &v| {
+                            (a.min(v), z.max(v))
+                        });
                     assert_eq!((pl, ph_), (ml, mh), "trial {trial}");
                 }
                 None => refused += u32::from(exact),
