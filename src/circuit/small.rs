@@ -401,7 +401,7 @@ unsafe fn segment_avx2<const G: usize>(
     let no = orow.len();
     assert!(k.rp == r && k.lo.len() >= r && k.hi.len() >= r && k.mz.len() >= ns * r);
     assert!(k.m.len() >= k.ncol * r && xw.len() >= n * (k.nk + k.nw));
-    assert!(ob.len() >= no && ob.iter().all(|o| o.len() >= n));
+    assert!(ob.len() >= no && no <= 8 && ob.iter().all(|o| o.len() >= n));
     assert!(zi.len() >= nz && zpi.len() >= nz && nz <= r && orow.iter().all(|&o| o < r));
     let mzp = k.mz.as_ptr();
     let mp = k.m.as_ptr();
@@ -423,6 +423,11 @@ unsafe fn segment_avx2<const G: usize>(
     rows[0][..nz].copy_from_slice(&zi[..nz]);
     rows[1][..nz].copy_from_slice(&zpi[..nz]);
     let (mut cur, mut prev, mut next) = (0, 1, 2);
+    // the output buffers' pointers (at most eight outputs, else the plain segment)
+    let mut optr = [(std::ptr::null_mut::<f64>(), 0usize); 8];
+    for ((p, o), &row) in optr.iter_mut().zip(ob.iter_mut()).zip(orow) {
+        *p = (o.as_mut_ptr(), row);
+    }
     let mut t = from;
     while t < n {
         let zs = rows[cur].as_ptr();
@@ -489,8 +494,9 @@ unsafe fn segment_avx2<const G: usize>(
             break;
         }
         let out = &rows[next];
-        for (i, &row) in orow.iter().enumerate() {
-            ob[i][t] = out[row];
+        for (&(dst, row), _) in optr.iter().zip(0..no) {
+            // SAFETY: t < n <= the length of every output buffer (checked above), row < r.
+            *dst.add(t) = *out.get_unchecked(row);
         }
         (cur, prev, next) = (next, cur, prev);
         t += 1;
@@ -564,7 +570,9 @@ fn run_segment(k: &SmallKernel, z: &mut [f64], kr: &mut KernelRun, from: usize, 
     let mut done = None;
     #[cfg(target_arch = "x86_64")]
     {
-        if std::arch::is_x86_feature_detected!("avx2") && std::arch::is_x86_feature_detected!("fma")
+        if orow.len() <= 8
+            && std::arch::is_x86_feature_detected!("avx2")
+            && std::arch::is_x86_feature_detected!("fma")
         {
             // SAFETY: the CPU supports AVX2 and FMA (checked just above); `rp == 4 G` by the
             // match.
@@ -796,7 +804,9 @@ from = "svf"
         );
         assert_eq!(t_any, n);
         #[cfg(target_arch = "x86_64")]
-        if std::arch::is_x86_feature_detected!("avx2") && std::arch::is_x86_feature_detected!("fma")
+        if orow.len() <= 8
+            && std::arch::is_x86_feature_detected!("avx2")
+            && std::arch::is_x86_feature_detected!("fma")
         {
             let mut z_v = z0.clone();
             let mut zp_v = z0.clone();
