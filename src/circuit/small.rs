@@ -804,7 +804,7 @@ from = "svf"
         );
         assert_eq!(t_any, n);
         #[cfg(target_arch = "x86_64")]
-        if orow.len() <= 8
+        if kr.orow.len() <= 8
             && std::arch::is_x86_feature_detected!("avx2")
             && std::arch::is_x86_feature_detected!("fma")
         {

@@ -353,7 +353,7 @@ pub(crate) fn net_block(
         }
     }
     for (pk, a) in nr.peaks.iter_mut().zip(&c.amps) {
-        let (lo, hi) = min_max(&nr.slots[a.out][..limit]);
+        let (lo, hi) = crate::engine::run::min_max(&nr.slots[a.out][..limit]);
         *pk = (pk.0.min(lo), pk.1.max(hi));
     }
     for (k, &(n, _)) in np.exports.iter().enumerate() {
@@ -370,7 +370,7 @@ pub(crate) fn net_block(
             // The whole block inside the linear region (the per-sample test's bound, taken
             // over the block at once: its lowest and highest drive and its largest second
             // difference): the output is the drive one sample late.
-            let (lo, hi) = min_max(drive);
+            let (lo, hi) = crate::engine::run::min_max(drive);
             let (lo, hi) = (lo.min(nr.x1).min(nr.x2), hi.max(nr.x1).max(nr.x2));
             if b >= 2 && lo.is_finite() && hi.is_finite() {
                 let e = max_second_diff(nr.x2, nr.x1, drive);
@@ -412,32 +412,6 @@ pub(crate) fn net_block(
     }
 }
 
-/// The lowest and highest of `xs` (infinities for none), in eight independent lanes (a NaN
-/// is skipped, as the per-sample comparisons skip it).
-fn min_max(xs: &[f64]) -> (f64, f64) {
-    let mut lo = [f64::INFINITY; 8];
-    let mut hi = [f64::NEG_INFINITY; 8];
-    let mut chunks = xs.chunks_exact(8);
-    for ch in &mut chunks {
-        for j in 0..8 {
-            let x = ch[j];
-            lo[j] = if x < lo[j] { x } else { lo[j] };
-            hi[j] = if x > hi[j] { x } else { hi[j] };
-        }
-    }
-    for &x in chunks.remainder() {
-        lo[0] = if x < lo[0] { x } else { lo[0] };
-        hi[0] = if x > hi[0] { x } else { hi[0] };
-    }
-    let l = lo
-        .iter()
-        .fold(f64::INFINITY, |a, &x| if x < a { x } else { a });
-    let h = hi
-        .iter()
-        .fold(f64::NEG_INFINITY, |a, &x| if x > a { x } else { a });
-    (l, h)
-}
-
 /// The largest `|x0 + x2 - 2 x1|` over the windows of three of `[x2, x1, d...]` (the
 /// clamp's windows over a block whose history is `x2`, `x1`); NaN when any is not finite.
 fn max_second_diff(x2: f64, x1: f64, d: &[f64]) -> f64 {
@@ -445,16 +419,9 @@ fn max_second_diff(x2: f64, x1: f64, d: &[f64]) -> f64 {
     if d.len() >= 2 {
         e = e.max((x1 + d[1] - 2.0 * d[0]).abs());
     }
-    let mut lanes = [0.0f64; 4];
-    let mut sum = 0.0;
-    for (k, w) in d.windows(3).enumerate() {
-        let v = (w[0] + w[2] - 2.0 * w[1]).abs();
-        let j = k % 4;
-        lanes[j] = if v > lanes[j] { v } else { lanes[j] };
-        sum += v;
-    }
-    if !sum.is_finite() || !e.is_finite() {
+    let rest = crate::engine::run::max_abs_second_diff(d);
+    if !e.is_finite() || !rest.is_finite() {
         return f64::NAN;
     }
-    lanes.iter().fold(e, |a, &x| if x > a { x } else { a })
+    e.max(rest)
 }

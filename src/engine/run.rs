@@ -1795,47 +1795,88 @@ fn shape_block(
 /// reach stay strictly inside `(lo, hi)`, the lowest and highest window centre (the
 /// output's peaks over the block); `None` when the bound does not decide it (or a sample
 /// is not finite), and the exact pass decides.
+#[inline]
 fn cheap_inside(head: &[f64; 2 * (WINDOW - 1)], x: &[f64], lo: f64, hi: f64) -> Option<(f64, f64)> {
     const H: usize = WINDOW - 1;
     let b = x.len();
     // the concatenation s = [xh, x]: window j is s[j..j + 7] for j in 0..b; its middle
     // samples are s[j + 2..=j + 4], its centre s[j + 3], its second differences at
     // s[j + 1..=j + 5]
-    let mut mn = f64::INFINITY;
-    let mut mx = f64::NEG_INFINITY;
     let mut emax = 0.0f64;
-    let mut pk_lo = f64::INFINITY;
-    let mut pk_hi = f64::NEG_INFINITY;
     for t in 1..2 * H - 1 {
         let e = (head[t + 1] - 2.0 * head[t] + head[t - 1]).abs();
         emax = if e > emax { e } else { emax };
     }
-    for &v in &head[2..] {
-        mn = if v < mn { v } else { mn };
-        mx = if v > mx { v } else { mx };
-    }
-    for &v in &head[3..] {
-        pk_lo = if v < pk_lo { v } else { pk_lo };
-        pk_hi = if v > pk_hi { v } else { pk_hi };
-    }
     // second differences at positions 2 H - 1 ..= b + 4 of s (windows of x from H - 2)
-    let mut sum = 0.0;
-    for w in x[H - 2..b].windows(3) {
-        let e = (w[2] - 2.0 * w[1] + w[0]).abs();
-        emax = if e > emax { e } else { emax };
+    let e2 = max_abs_second_diff(&x[H - 2..b]);
+    if !e2.is_finite() {
+        return None;
     }
-    for &v in &x[H..b - 2] {
-        mn = if v < mn { v } else { mn };
-        mx = if v > mx { v } else { mx };
-        sum += v;
-    }
-    for &v in &x[H..b - 3] {
-        pk_lo = if v < pk_lo { v } else { pk_lo };
-        pk_hi = if v > pk_hi { v } else { pk_hi };
-    }
+    emax = if e2 > emax { e2 } else { emax };
+    let (m1, x1) = min_max(&head[2..]);
+    let (m2, x2) = min_max(&x[H..b - 2]);
+    let (mn, mx) = (m1.min(m2), x1.max(x2));
+    let (p1, q1) = min_max(&head[3..]);
+    let (p2, q2) = min_max(&x[H..b - 3]);
+    let (pk_lo, pk_hi) = (p1.min(p2), q1.max(q2));
     let reach = super::shaper::REACH7_PER_E * emax;
-    (sum.is_finite() && emax.is_finite() && mn - reach > lo && mx + reach < hi)
-        .then_some((pk_lo, pk_hi))
+    (emax.is_finite() && mn - reach > lo && mx + reach < hi).then_some((pk_lo, pk_hi))
+}
+
+/// The lowest and highest of `xs` (infinities for none), in eight independent lanes so
+/// that it vectorises (a NaN is skipped, as the per-sample comparisons skip it).
+pub(crate) fn min_max(xs: &[f64]) -> (f64, f64) {
+    let mut lo = [f64::INFINITY; 8];
+    let mut hi = [f64::NEG_INFINITY; 8];
+    let mut chunks = xs.chunks_exact(8);
+    for ch in &mut chunks {
+        for j in 0..8 {
+            let x = ch[j];
+            lo[j] = if x < lo[j] { x } else { lo[j] };
+            hi[j] = if x > hi[j] { x } else { hi[j] };
+        }
+    }
+    for &x in chunks.remainder() {
+        lo[0] = if x < lo[0] { x } else { lo[0] };
+        hi[0] = if x > hi[0] { x } else { hi[0] };
+    }
+    let l = lo
+        .iter()
+        .fold(f64::INFINITY, |a, &x| if x < a { x } else { a });
+    let h = hi
+        .iter()
+        .fold(f64::NEG_INFINITY, |a, &x| if x > a { x } else { a });
+    (l, h)
+}
+
+/// The largest `|x[k - 1] - 2 x[k] + x[k + 1]|` over the windows of three of `xs` (0 for
+/// none), in eight independent lanes; NaN when any of them is not finite (so any sample
+/// of `xs` that is not finite, when `xs` holds three or more).
+pub(crate) fn max_abs_second_diff(xs: &[f64]) -> f64 {
+    let mut lanes = [0.0f64; 8];
+    let mut ok = [true; 8];
+    let n = xs.len();
+    let mut k = 1;
+    while k + 8 < n {
+        let w: &[f64; 10] = xs[k - 1..k + 9].try_into().expect("ten samples");
+        for j in 0..8 {
+            let e = (w[j] - 2.0 * w[j + 1] + w[j + 2]).abs();
+            ok[j] &= e < f64::INFINITY;
+            lanes[j] = if e > lanes[j] { e } else { lanes[j] };
+        }
+        k += 8;
+    }
+    while k + 1 < n {
+        let e = (xs[k - 1] - 2.0 * xs[k] + xs[k + 1]).abs();
+        ok[0] &= e < f64::INFINITY;
+        lanes[0] = if e > lanes[0] { e } else { lanes[0] };
+        k += 1;
+    }
+    if ok.iter().all(|&o| o) {
+        lanes.iter().fold(0.0, |a, &x| if x > a { x } else { a })
+    } else {
+        f64::NAN
+    }
 }
 
 #[cfg(test)]
