@@ -71,8 +71,9 @@ pub const MAX_CORNERS: usize = 6;
 /// step), the target the quadratic through the last three samples of `p`.
 #[derive(Debug, Clone, Copy)]
 pub struct SlewStep {
-    /// `p` at the two samples before the step and at its end (`p[n-2]`, `p[n-1]`, `p[n]`).
-    pub p: [f64; 3],
+    /// `p` at the three samples before the step and at its end (`p[n-3]`, `p[n-2]`,
+    /// `p[n-1]`, `p[n]`).
+    pub p: [f64; 4],
     /// Reversal (or input) factor `f`.
     pub f: f64,
     /// Loop factor `b` (`Vd = p - b v`).
@@ -302,34 +303,51 @@ impl SlewStep {
         self.f > 0.0 && self.kh * (self.f * self.b + self.eps) >= STIFF
     }
 
-    /// The tracking curve `T(u) = c0 + c1 u + c2 u^2` of the step.
+    /// The target within the step, `P(u) = p1 + b1 u + a2 u^2 + c3 u^3`: the cubic through
+    /// `(-2, p[n-3])`, `(-1, p[n-2])`, `(0, p[n-1])`, `(1, p[n])` in Newton's form (the
+    /// quadratic through the last three samples plus `c3 (u + 1) u (u - 1)`).
     #[inline]
-    fn tracking(&self) -> [f64; 3] {
-        let [p2, p1, p0] = self.p;
-        // quadratic through (-1, p2), (0, p1), (1, p0)
+    fn target(&self) -> [f64; 4] {
+        let [p3, p2, p1, p0] = self.p;
         let a1 = 0.5 * (p0 - p2);
         let a2 = 0.5 * (p0 - 2.0 * p1 + p2);
+        let c3 = (p0 - 3.0 * (p1 - p2) - p3) * (1.0 / 6.0);
+        [p1, a1 - c3, a2, c3]
+    }
+
+    /// The tracking curve `T(u) = c0 + c1 u + c2 u^2 + c3 u^3` of the step: `(f / G) (P -
+    /// P' / (k G) + P'' / (k G)^2 - P''' / (k G)^3)` for the cubic target `P`
+    /// ([`SlewStep::target`]).
+    #[inline]
+    fn tracking(&self) -> [f64; 4] {
+        let [p1, b1, a2, c3] = self.target();
         let g = self.f * self.b + self.eps;
         let ff = self.f / g;
         let l = 1.0 / (self.kh * g);
         [
-            ff * (p1 - l * a1 + 2.0 * l * l * a2),
-            ff * (a1 - 2.0 * l * a2),
-            ff * a2,
+            ff * (p1 - l * (b1 - l * (2.0 * a2 - l * 6.0 * c3))),
+            ff * (b1 - l * (2.0 * a2 - l * 6.0 * c3)),
+            ff * (a2 - 3.0 * l * c3),
+            ff * c3,
         ]
     }
 
     /// Whether a step starting in `mode` can hold an event: it starts slewing, or the
-    /// tracking curve's slope passes the slew rate somewhere in the step (its slope is linear
-    /// in time, so at an end).
+    /// tracking curve's slope passes the slew rate somewhere in the step (its slope is
+    /// quadratic in time, so at an end or at its vertex).
     #[inline]
     pub fn eventful(&self, mode: i8) -> bool {
         if mode != 0 {
             return true;
         }
         let t = self.tracking();
-        let (s0, s1) = (t[1], t[1] + 2.0 * t[2]);
-        s0.abs() > self.srh || s1.abs() > self.srh
+        let slope = |u: f64| t[1] + u * (2.0 * t[2] + 3.0 * t[3] * u);
+        if t[1].abs() > self.srh || slope(1.0).abs() > self.srh {
+            return true;
+        }
+        // the slope's vertex inside the step
+        let xv = -t[2] / (3.0 * t[3]);
+        xv > 0.0 && xv < 1.0 && slope(xv).abs() > self.srh
     }
 
     /// The step from `v0` in `mode` through the sharp model (see the module documentation).
@@ -343,15 +361,13 @@ impl SlewStep {
         let t = self.tracking();
         let r = self.srh;
         let leak = self.kh * self.eps;
+        let cv0 = |u: f64| t[0] + u * (t[1] + u * (t[2] + u * t[3]));
         // The curve the output tracks: through the state when the step starts tracking (the
         // previous steps hold it to within their transient), the tracking curve otherwise.
-        let shift = if mode == 0 {
-            v0 - (t[0] + ua * (t[1] + ua * t[2]))
-        } else {
-            0.0
-        };
-        let cv = |u: f64| t[0] + shift + u * (t[1] + u * t[2]);
-        let cs = |u: f64| t[1] + 2.0 * t[2] * u;
+        let shift = if mode == 0 { v0 - cv0(ua) } else { 0.0 };
+        let cv = |u: f64| cv0(u) + shift;
+        let cs = |u: f64| t[1] + u * (2.0 * t[2] + 3.0 * t[3] * u);
+        let cc = |u: f64| 2.0 * t[2] + 6.0 * t[3] * u;
         let mut out = Stepped::default();
         let mut u = ua;
         let mut v = v0;
@@ -370,12 +386,12 @@ impl SlewStep {
                 } else if s0 < rho(-1.0) {
                     Some((-1i8, u))
                 } else {
-                    let m = 2.0 * t[2];
                     let mut best: Option<(i8, f64)> = None;
-                    if m != 0.0 {
-                        for sg in [1i8, -1i8] {
-                            let x = (rho(f64::from(sg)) - t[1]) / m;
-                            if x > u && x < ue && best.is_none_or(|(_, bx)| x < bx) {
+                    for sg in [1i8, -1i8] {
+                        // cs(x) = rho: 3 t3 x^2 + 2 t2 x + t1 - rho = 0
+                        let x = first_root(3.0 * t[3], 2.0 * t[2], t[1] - rho(f64::from(sg)), u, ue);
+                        if let Some(x) = x {
+                            if x < ue && best.is_none_or(|(_, bx)| x < bx) {
                                 best = Some((sg, x));
                             }
                         }
@@ -386,42 +402,54 @@ impl SlewStep {
                     out.v = cv(ue);
                     out.mode = 0;
                     out.slope = cs(ue);
-                    out.curv = 2.0 * t[2];
+                    out.curv = cc(ue);
                     return out;
                 };
                 v = cv(x);
                 ramp = rho(f64::from(s));
-                out.push(x, ramp - cs(x), -2.0 * t[2]);
+                out.push(x, ramp - cs(x), -cc(x));
                 u = x;
                 mode = s;
                 fresh = true;
             } else {
                 let s = f64::from(mode);
-                // gap between the curve and the ramp, g0 + g1 y + g2 y^2 at x = u + y; slewing
-                // towards the curve while s gap > 0, the ramp meets it at the first root
-                let g2 = t[2];
+                // gap between the curve and the ramp, g0 + g1 y + g2 y^2 + g3 y^3 at x = u + y;
+                // slewing towards the curve while s gap > 0, the ramp meets it at the first root
+                let span = ue - u;
+                let g3 = t[3];
+                let g2 = t[2] + 3.0 * t[3] * u;
                 let g1 = cs(u) - ramp;
                 let y = if fresh {
-                    // the ramp leaves the curve at u (g0 = 0): the other root
+                    // the ramp leaves the curve at u (g0 = 0): a root of gap / y
                     if s * g1 < 0.0 {
                         Some(0.0)
-                    } else if g2 != 0.0 {
-                        let y = -g1 / g2;
-                        (y > 0.0 && y <= ue - u).then_some(y)
                     } else {
-                        None
+                        first_root(g3, g2, g1, 0.0, span)
                     }
                 } else {
                     let g0 = cv(u) - v;
                     if s * g0 <= 0.0 {
                         Some(0.0)
                     } else {
-                        first_root(g2, g1, g0, 0.0, ue - u)
+                        // the quadratic through the gap's values at 0 and `span` (the cubic
+                        // term's chord), then Newton on the cubic
+                        first_root(g2, g1 + g3 * span * span, g0, 0.0, span).map(|y0| {
+                            let mut y = y0;
+                            for _ in 0..2 {
+                                let g = g0 + y * (g1 + y * (g2 + y * g3));
+                                let dg = g1 + y * (2.0 * g2 + 3.0 * g3 * y);
+                                let yn = y - g / dg;
+                                if yn.is_finite() && yn > 0.0 && yn <= span {
+                                    y = yn;
+                                }
+                            }
+                            y
+                        })
                     }
                 };
                 fresh = false;
                 let Some(y) = y else {
-                    out.v = v + ramp * (ue - u);
+                    out.v = v + ramp * span;
                     out.mode = mode;
                     out.slope = ramp;
                     return out;
@@ -437,7 +465,7 @@ impl SlewStep {
                     mode = -mode;
                     fresh = true;
                 } else {
-                    out.push(x, after - ramp, 2.0 * t[2]);
+                    out.push(x, after - ramp, cc(x));
                     mode = 0;
                 }
                 u = x;
@@ -447,7 +475,7 @@ impl SlewStep {
         if mode == 0 {
             out.v = cv(ue);
             out.slope = cs(ue);
-            out.curv = 2.0 * t[2];
+            out.curv = cc(ue);
         } else {
             out.v = v + ramp * (ue - u);
             out.slope = ramp;
@@ -520,11 +548,9 @@ impl SlewStep {
         let s = if out.mode != 0 {
             -f64::from(out.mode)
         } else {
-            let [p2, p1, p0] = self.p;
-            let a1 = 0.5 * (p0 - p2);
-            let a2 = 0.5 * (p0 - 2.0 * p1 + p2);
-            let dp = a1 + 2.0 * a2 * u0;
-            let pu = p1 + u0 * (a1 + u0 * a2);
+            let [p1, b1, a2, c3] = self.target();
+            let dp = b1 + u0 * (2.0 * a2 + 3.0 * c3 * u0);
+            let pu = p1 + u0 * (b1 + u0 * (a2 + u0 * c3));
             if dp != 0.0 {
                 -dp.signum()
             } else if pu * self.eps != 0.0 {
@@ -588,7 +614,7 @@ impl SlewStep {
         };
         // toward the target from u1
         let t = self.tracking();
-        let target = t[0] + u1 * (t[1] + u1 * t[2]);
+        let target = t[0] + u1 * (t[1] + u1 * (t[2] + u1 * t[3]));
         let s: i8 = if target > v1 { 1 } else { -1 };
         let r1 = self.ramp(f64::from(s), v1);
         let (ua, va) = if inside(v1) {
@@ -635,15 +661,15 @@ mod tests {
         let _ = mode;
         for i in 0..n {
             let u = i as f64 * dt;
-            let tv = t[0] + u * (t[1] + u * t[2]);
-            let ts = t[1] + 2.0 * t[2] * u;
+            let tv = t[0] + u * (t[1] + u * (t[2] + u * t[3]));
+            let ts = t[1] + u * (2.0 * t[2] + 3.0 * t[3] * u);
             let want = ts + 0.5 / dt * (tv - v);
             v += want.clamp(-s.srh, s.srh) * dt;
         }
         v
     }
 
-    fn step_of(p: [f64; 3]) -> SlewStep {
+    fn step_of(p: [f64; 4]) -> SlewStep {
         SlewStep {
             p,
             f: 1.0,
@@ -658,12 +684,14 @@ mod tests {
     // the step, catch-up then tracking, catch-up then the other ramp, a pure ramp [D].
     #[test]
     fn end_value_matches_a_fine_step_slew_limiter() {
-        let cases: [([f64; 3], f64, i8); 5] = [
-            ([0.0, 0.5, 1.3], 0.5, 0),  // slope rises through the slew rate
-            ([0.0, 0.0, 0.0], 0.4, -1), // ramp down onto a flat target
-            ([3.0, 2.6, 2.0], 2.3, 1),  // ramp up meets a falling target, turns back
-            ([0.0, 2.0, 4.0], 0.0, 1),  // far behind: a full ramp
-            ([0.0, 0.2, 0.3], 0.15, 1), // catch-up then tracking
+        let cases: [([f64; 4], f64, i8); 7] = [
+            ([-0.3, 0.0, 0.5, 1.3], 0.5, 0),  // slope rises through the slew rate
+            ([0.0, 0.0, 0.0, 0.0], 0.4, -1),  // ramp down onto a flat target
+            ([3.2, 3.0, 2.6, 2.0], 2.3, 1),   // ramp up meets a falling target, turns back
+            ([-2.0, 0.0, 2.0, 4.0], 0.0, 1),  // far behind: a full ramp
+            ([-0.3, 0.0, 0.2, 0.3], 0.15, 1), // catch-up then tracking
+            ([0.6, 0.0, 0.5, 1.3], 0.5, 0),   // a cubic target: slope through the slew rate
+            ([2.0, 3.0, 2.6, 2.0], 2.3, 1),   // a cubic target: the ramp turns back
         ];
         for (p, v0, mode) in cases {
             let s = step_of(p);
