@@ -71,9 +71,8 @@ pub const MAX_CORNERS: usize = 6;
 /// step), the target the quadratic through the last three samples of `p`.
 #[derive(Debug, Clone, Copy)]
 pub struct SlewStep {
-    /// `p` at the three samples before the step and at its end (`p[n-3]`, `p[n-2]`,
-    /// `p[n-1]`, `p[n]`).
-    pub p: [f64; 4],
+    /// `p` at the four samples before the step and at its end (`p[n-4]` ..= `p[n]`).
+    pub p: [f64; DEG + 1],
     /// Reversal (or input) factor `f`.
     pub f: f64,
     /// Loop factor `b` (`Vd = p - b v`).
@@ -296,6 +295,24 @@ fn first_root(a: f64, b: f64, c: f64, lo: f64, hi: f64) -> Option<f64> {
     }
 }
 
+/// Degree of the target's local polynomial ([`SlewStep::target`]).
+pub const DEG: usize = 4;
+
+/// Newton's iteration for a root of `f` (value and derivative) from `x`, twice; an update
+/// that leaves `(lo, hi]` or is not finite is not taken.
+#[inline]
+fn polish(f: impl Fn(f64) -> (f64, f64), x: f64, lo: f64, hi: f64) -> f64 {
+    let mut x = x;
+    for _ in 0..2 {
+        let (g, dg) = f(x);
+        let xn = x - g / dg;
+        if xn.is_finite() && xn > lo && xn <= hi {
+            x = xn;
+        }
+    }
+    x
+}
+
 impl SlewStep {
     /// Whether the loop is stiff enough for the sharp model.
     #[inline]
@@ -303,49 +320,51 @@ impl SlewStep {
         self.f > 0.0 && self.kh * (self.f * self.b + self.eps) >= STIFF
     }
 
-    /// The target within the step, `P(u) = p1 + b1 u + a2 u^2 + c3 u^3`: the cubic through
-    /// `(-2, p[n-3])`, `(-1, p[n-2])`, `(0, p[n-1])`, `(1, p[n])` in Newton's form (the
-    /// quadratic through the last three samples plus `c3 (u + 1) u (u - 1)`).
+    /// The target within the step, `P(u) = sum_k c_k u^k`: the quartic through the last five
+    /// samples of `p` (`u = -3 ..= 1`), in Newton's form the quadratic through the last three
+    /// plus `d3 (u + 1) u (u - 1)` plus `d4 (u + 2) (u + 1) u (u - 1)`, `d3` and `d4` the
+    /// third and fourth differences over `3!` and `4!` (divided differences on a unit grid).
     #[inline]
-    fn target(&self) -> [f64; 4] {
-        let [p3, p2, p1, p0] = self.p;
+    fn target(&self) -> [f64; DEG + 1] {
+        let [p4, p3, p2, p1, p0] = self.p;
         let a1 = 0.5 * (p0 - p2);
         let a2 = 0.5 * (p0 - 2.0 * p1 + p2);
-        let c3 = (p0 - 3.0 * (p1 - p2) - p3) * (1.0 / 6.0);
-        [p1, a1 - c3, a2, c3]
+        let d3 = (p0 - 3.0 * (p1 - p2) - p3) * (1.0 / 6.0);
+        let d4 = (p0 + p4 - 4.0 * (p1 + p3) + 6.0 * p2) * (1.0 / 24.0);
+        // (u + 2) (u + 1) u (u - 1) = u^4 + 2 u^3 - u^2 - 2 u
+        [p1, a1 - d3 - 2.0 * d4, a2 - d4, d3 + 2.0 * d4, d4]
     }
 
-    /// The tracking curve `T(u) = c0 + c1 u + c2 u^2 + c3 u^3` of the step: `(f / G) (P -
-    /// P' / (k G) + P'' / (k G)^2 - P''' / (k G)^3)` for the cubic target `P`
-    /// ([`SlewStep::target`]).
+    /// The tracking curve `T(u) = sum_k t_k u^k` of the step: `(f / G) sum_j (-1 / (k G))^j
+    /// P^(j)` for the target `P` ([`SlewStep::target`]), the particular solution of `T + T' /
+    /// (k G) = (f / G) P`, so `t_k = (f / G) c_k - (k + 1) t_(k+1) / (k G)`.
     #[inline]
-    fn tracking(&self) -> [f64; 4] {
-        let [p1, b1, a2, c3] = self.target();
+    fn tracking(&self) -> [f64; DEG + 1] {
+        let c = self.target();
         let g = self.f * self.b + self.eps;
         let ff = self.f / g;
         let l = 1.0 / (self.kh * g);
-        [
-            ff * (p1 - l * (b1 - l * (2.0 * a2 - l * 6.0 * c3))),
-            ff * (b1 - l * (2.0 * a2 - l * 6.0 * c3)),
-            ff * (a2 - 3.0 * l * c3),
-            ff * c3,
-        ]
+        let mut t = [0.0; DEG + 1];
+        t[DEG] = ff * c[DEG];
+        for k in (0..DEG).rev() {
+            t[k] = ff * c[k] - l * (k + 1) as f64 * t[k + 1];
+        }
+        t
     }
 
     /// Whether a step starting in `mode` can hold an event: it starts slewing, or the
-    /// tracking curve's slope passes the slew rate somewhere in the step (its slope is
-    /// quadratic in time, so at an end or at its vertex).
+    /// tracking curve's slope passes the slew rate somewhere in the step (at an end, or near
+    /// the vertex of its quadratic part).
     #[inline]
     pub fn eventful(&self, mode: i8) -> bool {
         if mode != 0 {
             return true;
         }
         let t = self.tracking();
-        let slope = |u: f64| t[1] + u * (2.0 * t[2] + 3.0 * t[3] * u);
+        let slope = |u: f64| t[1] + u * (2.0 * t[2] + u * (3.0 * t[3] + 4.0 * t[4] * u));
         if t[1].abs() > self.srh || slope(1.0).abs() > self.srh {
             return true;
         }
-        // the slope's vertex inside the step
         let xv = -t[2] / (3.0 * t[3]);
         xv > 0.0 && xv < 1.0 && slope(xv).abs() > self.srh
     }
@@ -357,17 +376,21 @@ impl SlewStep {
 
     /// The part of the step from `ua` to `ue` (fractions of the step, `0 <= ua <= ue <= 1`),
     /// from `v0` at `ua` in `mode`; [`Stepped::v`] is the value at `ue`.
+    ///
+    /// Every instant is first solved on a quadratic (the higher powers replaced by their
+    /// chords over the span, so that it agrees with the curve at both ends), then polished by
+    /// Newton's iteration on the curve itself.
     pub fn step_span(&self, v0: f64, mode: i8, ua: f64, ue: f64) -> Stepped {
         let t = self.tracking();
         let r = self.srh;
         let leak = self.kh * self.eps;
-        let cv0 = |u: f64| t[0] + u * (t[1] + u * (t[2] + u * t[3]));
+        let cv0 = |u: f64| t[0] + u * (t[1] + u * (t[2] + u * (t[3] + u * t[4])));
         // The curve the output tracks: through the state when the step starts tracking (the
         // previous steps hold it to within their transient), the tracking curve otherwise.
         let shift = if mode == 0 { v0 - cv0(ua) } else { 0.0 };
         let cv = |u: f64| cv0(u) + shift;
-        let cs = |u: f64| t[1] + u * (2.0 * t[2] + 3.0 * t[3] * u);
-        let cc = |u: f64| 2.0 * t[2] + 6.0 * t[3] * u;
+        let cs = |u: f64| t[1] + u * (2.0 * t[2] + u * (3.0 * t[3] + 4.0 * t[4] * u));
+        let cc = |u: f64| 2.0 * t[2] + u * (6.0 * t[3] + 12.0 * t[4] * u);
         let mut out = Stepped::default();
         let mut u = ua;
         let mut v = v0;
@@ -388,8 +411,10 @@ impl SlewStep {
                 } else {
                     let mut best: Option<(i8, f64)> = None;
                     for sg in [1i8, -1i8] {
-                        // cs(x) = rho: 3 t3 x^2 + 2 t2 x + t1 - rho = 0
-                        let x = first_root(3.0 * t[3], 2.0 * t[2], t[1] - rho(f64::from(sg)), u, ue);
+                        // cs(x) = rho, the cubic term's chord over [0, 1]
+                        let rs = rho(f64::from(sg));
+                        let x = first_root(3.0 * t[3], 2.0 * t[2] + 4.0 * t[4], t[1] - rs, u, ue)
+                            .map(|x| polish(|x| (cs(x) - rs, cc(x)), x, u, ue));
                         if let Some(x) = x {
                             if x < ue && best.is_none_or(|(_, bx)| x < bx) {
                                 best = Some((sg, x));
@@ -413,37 +438,42 @@ impl SlewStep {
                 fresh = true;
             } else {
                 let s = f64::from(mode);
-                // gap between the curve and the ramp, g0 + g1 y + g2 y^2 + g3 y^3 at x = u + y;
-                // slewing towards the curve while s gap > 0, the ramp meets it at the first root
+                // gap between the curve and the ramp, sum_k g_k y^k at x = u + y; slewing
+                // towards the curve while s gap > 0, the ramp meets it at the first root
                 let span = ue - u;
-                let g3 = t[3];
-                let g2 = t[2] + 3.0 * t[3] * u;
+                let g4 = t[4];
+                let g3 = t[3] + 4.0 * t[4] * u;
+                let g2 = 0.5 * cc(u);
                 let g1 = cs(u) - ramp;
+                let s2 = span * span;
                 let y = if fresh {
                     // the ramp leaves the curve at u (g0 = 0): a root of gap / y
                     if s * g1 < 0.0 {
                         Some(0.0)
                     } else {
-                        first_root(g3, g2, g1, 0.0, span)
+                        first_root(g3, g2 + g4 * s2, g1, 0.0, span).map(|y| {
+                            let f = |y: f64| {
+                                (
+                                    g1 + y * (g2 + y * (g3 + y * g4)),
+                                    g2 + y * (2.0 * g3 + 3.0 * g4 * y),
+                                )
+                            };
+                            polish(f, y, 0.0, span)
+                        })
                     }
                 } else {
                     let g0 = cv(u) - v;
                     if s * g0 <= 0.0 {
                         Some(0.0)
                     } else {
-                        // the quadratic through the gap's values at 0 and `span` (the cubic
-                        // term's chord), then Newton on the cubic
-                        first_root(g2, g1 + g3 * span * span, g0, 0.0, span).map(|y0| {
-                            let mut y = y0;
-                            for _ in 0..2 {
-                                let g = g0 + y * (g1 + y * (g2 + y * g3));
-                                let dg = g1 + y * (2.0 * g2 + 3.0 * g3 * y);
-                                let yn = y - g / dg;
-                                if yn.is_finite() && yn > 0.0 && yn <= span {
-                                    y = yn;
-                                }
-                            }
-                            y
+                        first_root(g2, g1 + (g3 + g4 * span) * s2, g0, 0.0, span).map(|y| {
+                            let f = |y: f64| {
+                                (
+                                    g0 + y * (g1 + y * (g2 + y * (g3 + y * g4))),
+                                    g1 + y * (2.0 * g2 + y * (3.0 * g3 + 4.0 * g4 * y)),
+                                )
+                            };
+                            polish(f, y, 0.0, span)
                         })
                     }
                 };
@@ -548,9 +578,9 @@ impl SlewStep {
         let s = if out.mode != 0 {
             -f64::from(out.mode)
         } else {
-            let [p1, b1, a2, c3] = self.target();
-            let dp = b1 + u0 * (2.0 * a2 + 3.0 * c3 * u0);
-            let pu = p1 + u0 * (b1 + u0 * (a2 + u0 * c3));
+            let c = self.target();
+            let dp = c[1] + u0 * (2.0 * c[2] + u0 * (3.0 * c[3] + 4.0 * c[4] * u0));
+            let pu = c[0] + u0 * (c[1] + u0 * (c[2] + u0 * (c[3] + u0 * c[4])));
             if dp != 0.0 {
                 -dp.signum()
             } else if pu * self.eps != 0.0 {
@@ -614,7 +644,7 @@ impl SlewStep {
         };
         // toward the target from u1
         let t = self.tracking();
-        let target = t[0] + u1 * (t[1] + u1 * (t[2] + u1 * t[3]));
+        let target = t[0] + u1 * (t[1] + u1 * (t[2] + u1 * (t[3] + u1 * t[4])));
         let s: i8 = if target > v1 { 1 } else { -1 };
         let r1 = self.ramp(f64::from(s), v1);
         let (ua, va) = if inside(v1) {
@@ -661,15 +691,15 @@ mod tests {
         let _ = mode;
         for i in 0..n {
             let u = i as f64 * dt;
-            let tv = t[0] + u * (t[1] + u * (t[2] + u * t[3]));
-            let ts = t[1] + u * (2.0 * t[2] + 3.0 * t[3] * u);
+            let tv = t[0] + u * (t[1] + u * (t[2] + u * (t[3] + u * t[4])));
+            let ts = t[1] + u * (2.0 * t[2] + u * (3.0 * t[3] + 4.0 * t[4] * u));
             let want = ts + 0.5 / dt * (tv - v);
             v += want.clamp(-s.srh, s.srh) * dt;
         }
         v
     }
 
-    fn step_of(p: [f64; 4]) -> SlewStep {
+    fn step_of(p: [f64; 5]) -> SlewStep {
         SlewStep {
             p,
             f: 1.0,
@@ -684,14 +714,15 @@ mod tests {
     // the step, catch-up then tracking, catch-up then the other ramp, a pure ramp [D].
     #[test]
     fn end_value_matches_a_fine_step_slew_limiter() {
-        let cases: [([f64; 4], f64, i8); 7] = [
-            ([-0.3, 0.0, 0.5, 1.3], 0.5, 0),  // slope rises through the slew rate
-            ([0.0, 0.0, 0.0, 0.0], 0.4, -1),  // ramp down onto a flat target
-            ([3.2, 3.0, 2.6, 2.0], 2.3, 1),   // ramp up meets a falling target, turns back
-            ([-2.0, 0.0, 2.0, 4.0], 0.0, 1),  // far behind: a full ramp
-            ([-0.3, 0.0, 0.2, 0.3], 0.15, 1), // catch-up then tracking
-            ([0.6, 0.0, 0.5, 1.3], 0.5, 0),   // a cubic target: slope through the slew rate
-            ([2.0, 3.0, 2.6, 2.0], 2.3, 1),   // a cubic target: the ramp turns back
+        let cases: [([f64; 5], f64, i8); 8] = [
+            ([-0.9, -0.3, 0.0, 0.5, 1.3], 0.5, 0), // slope rises through the slew rate
+            ([0.0, 0.0, 0.0, 0.0, 0.0], 0.4, -1),  // ramp down onto a flat target
+            ([3.2, 3.2, 3.0, 2.6, 2.0], 2.3, 1),   // ramp up meets a falling target, turns back
+            ([-4.0, -2.0, 0.0, 2.0, 4.0], 0.0, 1), // far behind: a full ramp
+            ([-0.9, -0.3, 0.0, 0.2, 0.3], 0.15, 1), // catch-up then tracking
+            ([1.5, 0.6, 0.0, 0.5, 1.3], 0.5, 0),   // a cubic target: slope through the slew rate
+            ([0.6, 2.0, 3.0, 2.6, 2.0], 2.3, 1),   // a cubic target: the ramp turns back
+            ([0.0, 2.0, 3.0, 2.6, 2.0], 2.3, 1),   // a quartic target: the ramp turns back
         ];
         for (p, v0, mode) in cases {
             let s = step_of(p);

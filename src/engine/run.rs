@@ -15,8 +15,9 @@ struct StageState {
     v: f64,
     p_prev: f64,
     p_prev2: f64,
-    /// `p` three samples back (the cubic target of the stiff slew model, [`SlewStep`]).
+    /// `p` three and four samples back (the stiff slew model's target, [`SlewStep`]).
     p_prev3: f64,
+    p_prev4: f64,
     /// Slewing up (`1`), down (`-1`) or not (`0`) at the end of the last step (the stiff
     /// slew model's mode, [`SlewStep`]).
     mode: i8,
@@ -47,6 +48,7 @@ impl StageState {
             p_prev: sp.rest_p,
             p_prev2: sp.rest_p,
             p_prev3: sp.rest_p,
+            p_prev4: sp.rest_p,
             mode: 0,
             pend: [0.0; 2],
             rv: RevState::REST,
@@ -68,6 +70,7 @@ impl StageState {
         self.p_prev = o.p_prev;
         self.p_prev2 = o.p_prev2;
         self.p_prev3 = o.p_prev3;
+        self.p_prev4 = o.p_prev4;
         self.mode = o.mode;
         self.pend = o.pend;
         self.rv = o.rv;
@@ -694,6 +697,7 @@ impl Engine {
             st.p_prev = sp.rest_p;
             st.p_prev2 = sp.rest_p;
             st.p_prev3 = sp.rest_p;
+            st.p_prev4 = sp.rest_p;
             st.mode = 0;
             st.pend = [0.0; 2];
             st.rv = RevState::REST;
@@ -1107,7 +1111,11 @@ fn linear_block(
                 return false;
             }
             st.v = x[b - 1];
-            st.p_prev3 = if b >= 3 { p[b - 3] } else { st.p_prev };
+            // the history shifted by the block (`b >= 2` here)
+            let old = [st.p_prev4, st.p_prev3, st.p_prev2, st.p_prev];
+            let back = |j: usize| if b >= j { p[b - j] } else { old[4 + b - j] };
+            st.p_prev4 = back(4);
+            st.p_prev3 = back(3);
             st.p_prev = p[b - 1];
             st.p_prev2 = p[b - 2];
             return true;
@@ -1181,7 +1189,11 @@ fn linear_block(
             return false;
         }
         st.v = x[b - 1];
-        st.p_prev3 = if b >= 3 { p[b - 3] } else { st.p_prev };
+        // the history shifted by the block (`b >= 2` here)
+        let old = [st.p_prev4, st.p_prev3, st.p_prev2, st.p_prev];
+        let back = |j: usize| if b >= j { p[b - j] } else { old[4 + b - j] };
+        st.p_prev4 = back(4);
+        st.p_prev3 = back(3);
         st.p_prev = p[b - 1];
         st.p_prev2 = p[b - 2];
         return true;
@@ -1196,6 +1208,7 @@ fn linear_block(
     let mut pp = st.p_prev;
     let mut pp2 = st.p_prev2;
     let mut pp3 = st.p_prev3;
+    let mut pp4 = st.p_prev4;
     for t in 0..b {
         let mut mrest = 0.0;
         for (m, vc) in sp.minus.iter().zip(st.vc.iter()) {
@@ -1207,6 +1220,7 @@ fn linear_block(
         }
         let pn = p[t] - mrest;
         v = e * v + a1 * pn + a0 * pp;
+        pp4 = pp3;
         pp3 = pp2;
         pp2 = pp;
         pp = pn;
@@ -1229,6 +1243,7 @@ fn linear_block(
     st.p_prev = pp;
     st.p_prev2 = pp2;
     st.p_prev3 = pp3;
+    st.p_prev4 = pp4;
     true
 }
 
@@ -1310,6 +1325,7 @@ fn full_block(
     let mut pp = st.p_prev;
     let mut pp2 = st.p_prev2;
     let mut pp3 = st.p_prev3;
+    let mut pp4 = st.p_prev4;
     for t in 0..b {
         let vp = match &sp.plus {
             Some(pi) => sp.plus_const + pi.gain * bufs[pi.node][hist - pi.delay + t],
@@ -1341,7 +1357,7 @@ fn full_block(
         }
         let pn = vp_eff - mrest + noise.map_or(0.0, |n| n[t]);
         let ev = SlewStep {
-            p: [pp3, pp2, pp, pn],
+            p: [pp4, pp3, pp2, pp, pn],
             f,
             b: sp.b,
             eps: sp.eps,
@@ -1406,6 +1422,7 @@ fn full_block(
         if sp.fb_cap.is_some() {
             st.vf = 2.0 * (v - vminus) - st.vf;
         }
+        pp4 = pp3;
         pp3 = pp2;
         pp2 = pp;
         pp = pn;
@@ -1414,6 +1431,7 @@ fn full_block(
     st.p_prev = pp;
     st.p_prev2 = pp2;
     st.p_prev3 = pp3;
+    st.p_prev4 = pp4;
 }
 
 /// The full model over a block with a per-sample linear shortcut (issue 13, "stay on the
@@ -1487,6 +1505,7 @@ fn hybrid_block(
     let mut pp = st.p_prev;
     let mut pp2 = st.p_prev2;
     let mut pp3 = st.p_prev3;
+    let mut pp4 = st.p_prev4;
     // corrections of the next sample: carried from the last step, made by this one
     let mut pend = st.pend;
     for t in 0..b {
@@ -1521,6 +1540,7 @@ fn hybrid_block(
                 st.mode = 0;
                 v = vl;
                 x[t] = vl;
+                pp4 = pp3;
                 pp3 = pp2;
                 pp2 = pp;
                 pp = pn;
@@ -1551,7 +1571,7 @@ fn hybrid_block(
             let zr = (0.5 * (pn + pp) - sp.b * v) * weak.map_or(0.0, |w| w.inv_vov);
             let w2 = zr * zr;
             let ev = SlewStep {
-                p: [pp3, pp2, pp, pn],
+                p: [pp4, pp3, pp2, pp, pn],
                 f,
                 b: sp.b,
                 eps: sp.eps,
@@ -1601,6 +1621,7 @@ fn hybrid_block(
             if f > 0.0 && !held && (f * (pn - sp.b * v)).abs() > sp.vov {
                 st.slew += 1;
             }
+            pp4 = pp3;
             pp3 = pp2;
             pp2 = pp;
             pp = pn;
@@ -1639,6 +1660,7 @@ fn hybrid_block(
     st.p_prev = pp;
     st.p_prev2 = pp2;
     st.p_prev3 = pp3;
+    st.p_prev4 = pp4;
     st.pend = pend;
 }
 
