@@ -298,6 +298,13 @@ fn first_root(a: f64, b: f64, c: f64, lo: f64, hi: f64) -> Option<f64> {
 /// Degree of the target's local polynomial ([`SlewStep::target`]).
 pub const DEG: usize = 4;
 
+/// Largest ratio of the fourth difference of the last five samples of `p` to their largest
+/// second difference for which the target is the quartic through them
+/// ([`SlewStep::target`]). A sine of `w` radians per sample reads at most about `w^2`
+/// (0.41 at 20 kHz and K = 4); a corner of the input (a ramp or a tone starting from rest)
+/// at least 1.
+pub const SMOOTH: f64 = 0.7;
+
 /// Newton's iteration for a root of `f` (value and derivative) from `x`, twice; an update
 /// that leaves `(lo, hi]` or is not finite is not taken.
 #[inline]
@@ -324,13 +331,26 @@ impl SlewStep {
     /// samples of `p` (`u = -3 ..= 1`), in Newton's form the quadratic through the last three
     /// plus `d3 (u + 1) u (u - 1)` plus `d4 (u + 2) (u + 1) u (u - 1)`, `d3` and `d4` the
     /// third and fourth differences over `3!` and `4!` (divided differences on a unit grid).
+    ///
+    /// Where the five samples do not look smooth (the fourth difference more than
+    /// [`SMOOTH`] times the largest second difference among them: a corner of the input,
+    /// such as a tone's abrupt start, which the quartic would read as a slope that the
+    /// input does not have) the target is the quadratic through the last three alone.
     #[inline]
     fn target(&self) -> [f64; DEG + 1] {
         let [p4, p3, p2, p1, p0] = self.p;
         let a1 = 0.5 * (p0 - p2);
         let a2 = 0.5 * (p0 - 2.0 * p1 + p2);
+        let q4 = p0 + p4 - 4.0 * (p1 + p3) + 6.0 * p2;
+        let d2 = (p0 - 2.0 * p1 + p2)
+            .abs()
+            .max((p1 - 2.0 * p2 + p3).abs())
+            .max((p2 - 2.0 * p3 + p4).abs());
+        if q4.abs() > SMOOTH * d2 {
+            return [p1, a1, a2, 0.0, 0.0];
+        }
         let d3 = (p0 - 3.0 * (p1 - p2) - p3) * (1.0 / 6.0);
-        let d4 = (p0 + p4 - 4.0 * (p1 + p3) + 6.0 * p2) * (1.0 / 24.0);
+        let d4 = q4 * (1.0 / 24.0);
         // (u + 2) (u + 1) u (u - 1) = u^4 + 2 u^3 - u^2 - 2 u
         [p1, a1 - d3 - 2.0 * d4, a2 - d4, d3 + 2.0 * d4, d4]
     }
