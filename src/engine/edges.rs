@@ -756,6 +756,89 @@ mod tests {
         }
     }
 
+    // The target interpolates the five samples (Lagrange's form written out as the plain
+    // reference, textbook) and the tracking curve is the loop's particular solution: `T +
+    // T' / (k G) = (f / G) P` at every point of the step (for a polynomial target the
+    // particular solution is the finite series of its derivatives, textbook) [D].
+    #[test]
+    fn quartic_target_and_its_tracking_curve() {
+        let s = SlewStep {
+            p: [0.0; 5],
+            f: 0.8,
+            b: 0.5,
+            eps: 1e-4,
+            kh: 30.0,
+            srh: 0.6,
+        };
+        // samples of a slow quartic (smooth enough for the quartic target)
+        let poly = |u: f64| 0.2 + 0.5 * u - 0.3 * u * u + 0.04 * u * u * u - 0.01 * u.powi(4);
+        let p: [f64; 5] = [-3.0, -2.0, -1.0, 0.0, 1.0].map(poly);
+        let s = SlewStep { p, ..s };
+        let lagrange = |u: f64| {
+            let nodes = [-3.0, -2.0, -1.0, 0.0, 1.0];
+            (0..5)
+                .map(|i| {
+                    let mut w = 1.0;
+                    for j in 0..5 {
+                        if j != i {
+                            w *= (u - nodes[j]) / (nodes[i] - nodes[j]);
+                        }
+                    }
+                    w * p[i]
+                })
+                .sum::<f64>()
+        };
+        let c = s.target();
+        let ev = |u: f64| c.iter().rev().fold(0.0, |a, &ck| a * u + ck);
+        for k in 0..=40 {
+            let u = -3.0 + 0.1 * f64::from(k);
+            assert!((ev(u) - lagrange(u)).abs() < 1e-12, "{u}");
+            assert!((ev(u) - poly(u)).abs() < 1e-12, "{u}");
+        }
+        let t = s.tracking();
+        let g = s.f * s.b + s.eps;
+        for k in 0..=10 {
+            let u = 0.1 * f64::from(k);
+            let tv = t.iter().rev().fold(0.0, |a, &tk| a * u + tk);
+            let ts = (1..=DEG).rev().fold(0.0, |a, j| a * u + j as f64 * t[j]);
+            let lhs = tv + ts / (s.kh * g);
+            assert!((lhs - s.f / g * ev(u)).abs() < 1e-12, "{u}");
+        }
+    }
+
+    // A corner of the input (a tone starting from rest: samples at zero, then a sine) takes
+    // the quadratic through the last three samples; a sine at 20 kHz and K = 4 (0.65 rad per
+    // sample) is smooth enough for the quartic at every phase [D].
+    #[test]
+    fn the_quartic_only_where_the_samples_look_smooth() {
+        let w = std::f64::consts::TAU * 20e3 / 192e3;
+        let mk = |p: [f64; 5]| SlewStep {
+            p,
+            f: 1.0,
+            b: 1.0,
+            eps: 0.0,
+            kh: 20.0,
+            srh: 0.5,
+        };
+        for k in 0..100 {
+            let ph = f64::from(k) * 0.0628;
+            let p: [f64; 5] = [0.0, 1.0, 2.0, 3.0, 4.0].map(|j: f64| 5.0 * (ph + j * w).sin());
+            let c = mk(p).target();
+            let d4 = (p[0] - 4.0 * p[1] + 6.0 * p[2] - 4.0 * p[3] + p[4]) / 24.0;
+            assert!((c[4] - d4).abs() < 1e-12 && d4 != 0.0, "{ph}");
+        }
+        for lead in 1..=3 {
+            let mut p = [0.0; 5];
+            for j in 0..lead {
+                p[4 - j] = 5.0 * (f64::from((lead - j) as u32) * 0.16).sin();
+            }
+            let c = mk(p).target();
+            let a1 = 0.5 * (p[4] - p[2]);
+            let a2 = 0.5 * (p[4] - 2.0 * p[3] + p[2]);
+            assert_eq!(c, [p[3], a1, a2, 0.0, 0.0], "{lead}");
+        }
+    }
+
     // The tabulated corrections equal the reference's evaluation of the truncated powers
     // (the same polynomials expanded, so to rounding) over the whole step and at the
     // pieces' ends.
