@@ -1374,8 +1374,7 @@ fn full_block(
             st.mode = r.mode;
             corners = Some(r);
             r.v
-        } else if ev.stiff() && ev.eventful(st.mode) {
-            let r = ev.step(v, st.mode);
+        } else if let Some(r) = ev.step_if_eventful(v, st.mode) {
             st.mode = r.mode;
             corners = Some(r);
             r.v
@@ -1585,8 +1584,7 @@ fn hybrid_block(
                 st.mode = r.mode;
                 corners = Some(r);
                 r.v
-            } else if ev.stiff() && ev.eventful(st.mode) {
-                let r = ev.step(v, st.mode);
+            } else if let Some(r) = ev.step_if_eventful(v, st.mode) {
                 st.mode = r.mode;
                 corners = Some(r);
                 r.v
