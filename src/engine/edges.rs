@@ -375,7 +375,7 @@ impl SlewStep {
     /// such as a tone's abrupt start, which the quartic would read as a slope that the
     /// input does not have) the target is the quadratic through the last three alone.
     #[inline]
-    fn target(&self) -> [f64; DEG + 1] {
+    pub fn target(&self) -> [f64; DEG + 1] {
         let [p4, p3, p2, p1, p0] = self.p;
         let a1 = 0.5 * (p0 - p2);
         let a2 = 0.5 * (p0 - 2.0 * p1 + p2);
@@ -399,7 +399,7 @@ impl SlewStep {
     /// (k G) = (f / G) P`, written out per power (short dependency chains: it runs on every
     /// step that may slew; [`SlewStep::tracking_reference`] is the recursion it expands).
     #[inline]
-    fn tracking(&self) -> [f64; DEG + 1] {
+    pub fn tracking(&self) -> [f64; DEG + 1] {
         let c = self.target();
         let ig = 1.0 / (self.f * self.b + self.eps);
         let ff = self.f * ig;
