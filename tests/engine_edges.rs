@@ -57,9 +57,12 @@ fn amp(a: &str) -> String {
 }
 
 // Slew corners (the issue's case: a slow part asked for 3.1 times its slew rate, every
-// corner somewhere between internal samples). Before the stiff slew model and its
-// band-limited corners the engine read -14.5 dBc at K = 4 (engine docs' table); measured
-// now: -56.7 dBc at K = 4, -77.7 at 8, -90.6 at 16 (asserted with margin).
+// corner somewhere between internal samples; the issue asks for -70 dBc at K = 4). Before
+// the stiff slew model and its band-limited corners the engine read -14.5 dBc at K = 4
+// (engine docs' table); with the quadratic target through the last three samples of the
+// input -56.7 dBc at K = 4, -77.7 at 8, -90.6 at 16; with the cubic through four -70.6,
+// -99.6, -118.9. Measured now (the quartic through five): -85.9 dBc at K = 4, -118.2 at 8,
+// -128.3 at 16 (asserted with margin).
 #[test]
 fn slew_corners_are_band_limited() {
     let a = amp("6 Vpk");
@@ -67,8 +70,8 @@ fn slew_corners_are_band_limited() {
     let k8 = alias_dbc(SLEWER, 8, &[&a]);
     let k16 = alias_dbc(SLEWER, 16, &[&a]);
     println!("slew corners 3.1x SR: K 4 {k4:.1}, K 8 {k8:.1}, K 16 {k16:.1} dBc");
-    assert!(k4 < -54.0, "{k4}");
-    assert!(k8 < k4 - 10.0 && k16 < k8 - 6.0, "{k4} {k8} {k16}");
+    assert!(k4 < -84.0, "{k4}");
+    assert!(k8 < k4 - 25.0 && k16 < k8 - 6.0, "{k4} {k8} {k16}");
 }
 
 // A stage that never slews is left alone: the same follower at 1.5 V peak (largest slope

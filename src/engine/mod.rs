@@ -117,37 +117,44 @@
 //! A stage whose loop is stiff (`k G h >= `[`edges::STIFF`], `G = f b + eps`: every real
 //! part at K = 4) takes a step that holds an event (it starts slewing, or its target's slope
 //! passes the slew rate inside the step) through the stiff slew model of [`edges`]: the
-//! target within the step is the quadratic through the last three samples of `p`, the output
-//! tracks the linear loop's particular solution or ramps at the slew rate, and the instants
-//! where it leaves the curve (tangent) and joins it again (a slope corner) are solved in
-//! closed form between samples; each corner (slope and second derivative) gets its
-//! band-limited correction on the six samples around it, with a kernel of unit area, zero
-//! second moment and triple zeros at every multiple of the internal rate (so no in-band
-//! droop of the harmonics the corners make; the clamp's triangle would take 4 % off them at
-//! 21 kHz and K = 4). The corrections go to the output only; they need three samples of
-//! lookahead, the clamp's own. Steps without an event keep the step described above
-//! bit for bit. Measured with the alias estimate of a render ([`crate::alias`]: the patch's
-//! own stages, tone moved to an odd coherent bin, in-band power off the harmonics, 20 Hz -
-//! 20 kHz at 48 kHz; `tests/engine_edges.rs`), a single-supply part at 120 mV/us as a
-//! follower, 10 kHz at 6 V peak (3.1 times its slew rate, a triangle) and at 2.5 V peak (1.3
-//! times, short slewing stretches):
+//! target within the step is the quartic through the last five samples of `p` (the quadratic
+//! through the last three where they do not look smooth), the output tracks the linear
+//! loop's particular solution or ramps at the slew rate, and the instants where it leaves
+//! the curve (tangent) and joins it again (a slope corner) are solved between samples (on a
+//! quadratic, polished by Newton's iteration); each corner (slope and second derivative)
+//! gets its band-limited correction on the six samples around it, with a kernel of unit
+//! area, zero second moment and triple zeros at every multiple of the internal rate (so no
+//! in-band droop of the harmonics the corners make; the clamp's triangle would take 4 % off
+//! them at 21 kHz and K = 4). The corrections go to the output only; they need three samples
+//! of lookahead, the clamp's own. Steps without an event keep the step described above bit
+//! for bit. Measured with the alias estimate of a render ([`crate::alias`]: the patch's own
+//! stages, tone moved to an odd coherent bin, in-band power off the harmonics, 20 Hz - 20 kHz
+//! at 48 kHz; `tests/engine_edges.rs`), a single-supply part at 120 mV/us as a follower,
+//! 10 kHz at 6 V peak (3.1 times its slew rate, a triangle) and at 2.5 V peak (1.3 times,
+//! short slewing stretches):
 //!
-//! | K | 3.1x SR, before | 3.1x SR, now | 1.3x SR, before | 1.3x SR, now |
-//! |---|---|---|---|---|
-//! | 1 | -5.3 dBc | -22.2 dBc | -21.3 dBc | -26.4 dBc |
-//! | 2 | -10.4 dBc | -44.6 dBc | -39.4 dBc | -50.9 dBc |
-//! | 4 | -14.5 dBc | -56.7 dBc | -49.0 dBc | -58.0 dBc |
-//! | 8 | -24.1 dBc | -77.7 dBc | -63.2 dBc | -61.5 dBc |
-//! | 16 | -28.2 dBc | -90.6 dBc | -74.9 dBc | -65.8 dBc |
+//! | K | 3.1x SR, before | 3.1x SR, quadratic | 3.1x SR, now | 1.3x SR, before | 1.3x SR, quadratic | 1.3x SR, now |
+//! |---|---|---|---|---|---|---|
+//! | 1 | -5.3 dBc | -22.2 dBc | -24.4 dBc | -21.3 dBc | -26.4 dBc | -31.2 dBc |
+//! | 2 | -10.4 dBc | -44.6 dBc | -68.5 dBc | -39.4 dBc | -50.9 dBc | -52.0 dBc |
+//! | 4 | -14.5 dBc | -56.7 dBc | -85.9 dBc | -49.0 dBc | -58.0 dBc | -57.4 dBc |
+//! | 8 | -24.1 dBc | -77.7 dBc | -118.2 dBc | -63.2 dBc | -61.5 dBc | -61.1 dBc |
+//! | 16 | -28.2 dBc | -90.6 dBc | -128.3 dBc | -74.9 dBc | -65.8 dBc | -65.7 dBc |
 //!
 //! ("Before": the step with the effective `phi` alone, whose corner samples, where the
-//! direction reverses within a step, were off the trajectory by up to a large part of `SR h`.)
-//! The issue's target, -70 dBc at K = 4, is not reached: what is left comes from where the
-//! quadratic target puts the corners (its error grows as `h^3`; at 19 samples per cycle the
-//! start of slewing moves by about a tenth of a step), and at 1.3x SR from the short stretches
-//! between the tanh's soft start of slewing and the sharp model. A cubic target needs one more
-//! sample of the input, which the stage does not have yet. At K = 1 a tone under ten samples
-//! per cycle misleads the quadratic (a slope past the slew rate that the tone does not have).
+//! direction reverses within a step, were off the trajectory by up to a large part of `SR h`;
+//! "quadratic": the same model with the quadratic through the last three samples as its
+//! target.) The issue's target, -70 dBc at K = 4, is met at 3.1x SR. What limited the
+//! quadratic was where its target put the corners (an error of order `h^3` that offsets each
+//! stretch of the triangle by a different amount); the cubic through four samples read
+//! -70.6 dBc at K = 4 (-99.6 at 8, -118.9 at 16), the quartic -85.9 ([`edges`], "The
+//! target's order"). At 1.3x SR the target is not the limit; the suspects are the short
+//! stretches between the tanh's soft start of slewing and the sharp model, and the
+//! first-order hold's tracking (which the steps without an event keep; it differs from the
+//! sharp model's by about `p'' h^2 / (2 k G h)`) where they switch (joining the ramp to the
+//! hold's value instead gained 4 dB at K = 4 and lost 8 at K = 8: dropped). At K = 1 a tone
+//! under ten samples per cycle
+//! misleads any local polynomial (a slope past the slew rate that the tone does not have).
 //! An abrupt start of a tone (a corner of the input) can read as a short slewing event too.
 //! The fixed probe of the single-supply part (0.35 V/us against the probe's 0.74 V/us, a tone
 //! that also clips): -34.2 dBc at K = 4, -45.8 dBc at K = 16 (-31 and -46 before); why it

@@ -15,6 +15,9 @@ struct StageState {
     v: f64,
     p_prev: f64,
     p_prev2: f64,
+    /// `p` three and four samples back (the stiff slew model's target, [`SlewStep`]).
+    p_prev3: f64,
+    p_prev4: f64,
     /// Slewing up (`1`), down (`-1`) or not (`0`) at the end of the last step (the stiff
     /// slew model's mode, [`SlewStep`]).
     mode: i8,
@@ -44,6 +47,8 @@ impl StageState {
             v: sp.rest_v,
             p_prev: sp.rest_p,
             p_prev2: sp.rest_p,
+            p_prev3: sp.rest_p,
+            p_prev4: sp.rest_p,
             mode: 0,
             pend: [0.0; 2],
             rv: RevState::REST,
@@ -64,6 +69,8 @@ impl StageState {
         self.v = o.v;
         self.p_prev = o.p_prev;
         self.p_prev2 = o.p_prev2;
+        self.p_prev3 = o.p_prev3;
+        self.p_prev4 = o.p_prev4;
         self.mode = o.mode;
         self.pend = o.pend;
         self.rv = o.rv;
@@ -689,6 +696,8 @@ impl Engine {
             st.v = sp.rest_v;
             st.p_prev = sp.rest_p;
             st.p_prev2 = sp.rest_p;
+            st.p_prev3 = sp.rest_p;
+            st.p_prev4 = sp.rest_p;
             st.mode = 0;
             st.pend = [0.0; 2];
             st.rv = RevState::REST;
@@ -1102,6 +1111,11 @@ fn linear_block(
                 return false;
             }
             st.v = x[b - 1];
+            // the history shifted by the block (`b >= 2` here)
+            let old = [st.p_prev4, st.p_prev3, st.p_prev2, st.p_prev];
+            let back = |j: usize| if b >= j { p[b - j] } else { old[4 + b - j] };
+            st.p_prev4 = back(4);
+            st.p_prev3 = back(3);
             st.p_prev = p[b - 1];
             st.p_prev2 = p[b - 2];
             return true;
@@ -1175,6 +1189,11 @@ fn linear_block(
             return false;
         }
         st.v = x[b - 1];
+        // the history shifted by the block (`b >= 2` here)
+        let old = [st.p_prev4, st.p_prev3, st.p_prev2, st.p_prev];
+        let back = |j: usize| if b >= j { p[b - j] } else { old[4 + b - j] };
+        st.p_prev4 = back(4);
+        st.p_prev3 = back(3);
         st.p_prev = p[b - 1];
         st.p_prev2 = p[b - 2];
         return true;
@@ -1188,6 +1207,8 @@ fn linear_block(
     let mut v = st.v;
     let mut pp = st.p_prev;
     let mut pp2 = st.p_prev2;
+    let mut pp3 = st.p_prev3;
+    let mut pp4 = st.p_prev4;
     for t in 0..b {
         let mut mrest = 0.0;
         for (m, vc) in sp.minus.iter().zip(st.vc.iter()) {
@@ -1199,6 +1220,8 @@ fn linear_block(
         }
         let pn = p[t] - mrest;
         v = e * v + a1 * pn + a0 * pp;
+        pp4 = pp3;
+        pp3 = pp2;
         pp2 = pp;
         pp = pn;
         x[t] = v;
@@ -1219,6 +1242,8 @@ fn linear_block(
     st.v = v;
     st.p_prev = pp;
     st.p_prev2 = pp2;
+    st.p_prev3 = pp3;
+    st.p_prev4 = pp4;
     true
 }
 
@@ -1299,6 +1324,8 @@ fn full_block(
     let mut v = st.v;
     let mut pp = st.p_prev;
     let mut pp2 = st.p_prev2;
+    let mut pp3 = st.p_prev3;
+    let mut pp4 = st.p_prev4;
     for t in 0..b {
         let vp = match &sp.plus {
             Some(pi) => sp.plus_const + pi.gain * bufs[pi.node][hist - pi.delay + t],
@@ -1330,7 +1357,7 @@ fn full_block(
         }
         let pn = vp_eff - mrest + noise.map_or(0.0, |n| n[t]);
         let ev = SlewStep {
-            p: [pp2, pp, pn],
+            p: [pp4, pp3, pp2, pp, pn],
             f,
             b: sp.b,
             eps: sp.eps,
@@ -1347,8 +1374,7 @@ fn full_block(
             st.mode = r.mode;
             corners = Some(r);
             r.v
-        } else if ev.stiff() && ev.eventful(st.mode) {
-            let r = ev.step(v, st.mode);
+        } else if let Some(r) = ev.step_if_eventful(v, st.mode) {
             st.mode = r.mode;
             corners = Some(r);
             r.v
@@ -1395,12 +1421,16 @@ fn full_block(
         if sp.fb_cap.is_some() {
             st.vf = 2.0 * (v - vminus) - st.vf;
         }
+        pp4 = pp3;
+        pp3 = pp2;
         pp2 = pp;
         pp = pn;
     }
     st.v = v;
     st.p_prev = pp;
     st.p_prev2 = pp2;
+    st.p_prev3 = pp3;
+    st.p_prev4 = pp4;
 }
 
 /// The full model over a block with a per-sample linear shortcut (issue 13, "stay on the
@@ -1473,6 +1503,8 @@ fn hybrid_block(
     let mut v = st.v;
     let mut pp = st.p_prev;
     let mut pp2 = st.p_prev2;
+    let mut pp3 = st.p_prev3;
+    let mut pp4 = st.p_prev4;
     // corrections of the next sample: carried from the last step, made by this one
     let mut pend = st.pend;
     for t in 0..b {
@@ -1507,6 +1539,8 @@ fn hybrid_block(
                 st.mode = 0;
                 v = vl;
                 x[t] = vl;
+                pp4 = pp3;
+                pp3 = pp2;
                 pp2 = pp;
                 pp = pn;
                 if sp.reversal {
@@ -1536,7 +1570,7 @@ fn hybrid_block(
             let zr = (0.5 * (pn + pp) - sp.b * v) * weak.map_or(0.0, |w| w.inv_vov);
             let w2 = zr * zr;
             let ev = SlewStep {
-                p: [pp2, pp, pn],
+                p: [pp4, pp3, pp2, pp, pn],
                 f,
                 b: sp.b,
                 eps: sp.eps,
@@ -1550,8 +1584,7 @@ fn hybrid_block(
                 st.mode = r.mode;
                 corners = Some(r);
                 r.v
-            } else if ev.stiff() && ev.eventful(st.mode) {
-                let r = ev.step(v, st.mode);
+            } else if let Some(r) = ev.step_if_eventful(v, st.mode) {
                 st.mode = r.mode;
                 corners = Some(r);
                 r.v
@@ -1586,6 +1619,8 @@ fn hybrid_block(
             if f > 0.0 && !held && (f * (pn - sp.b * v)).abs() > sp.vov {
                 st.slew += 1;
             }
+            pp4 = pp3;
+            pp3 = pp2;
             pp2 = pp;
             pp = pn;
         }
@@ -1622,6 +1657,8 @@ fn hybrid_block(
     st.v = v;
     st.p_prev = pp;
     st.p_prev2 = pp2;
+    st.p_prev3 = pp3;
+    st.p_prev4 = pp4;
     st.pend = pend;
 }
 
