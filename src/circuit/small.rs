@@ -24,7 +24,7 @@
 
 use super::plan::{CircuitError, GroupPlan, FAST_VD};
 use super::step::{full_step, step_group, AmpEvents, GroupState};
-use super::{Circuit, NodeKind, CM_DELTA};
+use super::{Circuit, NodeKind, REV_FAST_MARGIN};
 
 /// The compiled linear step of one group.
 #[derive(Debug, Clone, PartialEq)]
@@ -151,7 +151,7 @@ impl SmallKernel {
             chk_hi.push(FAST_VD * a.vov);
             rows.push(vd_rows[j].clone());
             if let Some((cl, ch)) = a.cm {
-                let margin = if a.reversal { 20.0 * CM_DELTA } else { 0.0 };
+                let margin = if a.reversal { REV_FAST_MARGIN } else { 0.0 };
                 chk_row.push(rows.len());
                 chk_lo.push(cl + margin);
                 chk_hi.push(ch - margin);
@@ -565,6 +565,21 @@ pub fn run_block(
         if k.nw > 0 {
             for t in 0..n {
                 kr.xw[t * nx + k.nk..(t + 1) * nx].copy_from_slice(&io.w[t * nw..(t + 1) * nw]);
+            }
+        }
+    }
+    // a diode group with its table: the whole block in one loop
+    if let Some((k, kr)) = kern.as_mut() {
+        if let Some((ds, tab)) = k.diode.as_ref().and_then(|d| d.table.as_ref().map(|t| (d, t))) {
+            if k.nk + k.nw == 1 && io.drive.is_none() {
+                let done = ds.run_table_block(
+                    c, gp, tab, &kr.xw[..n], vn, st, counts, io.slots, io.writes, n, t0, h,
+                )?;
+                if done {
+                    kr.stale = false;
+                    kr.dhist.n = 0;
+                    return Ok(());
+                }
             }
         }
     }
