@@ -111,6 +111,9 @@ pub struct DiodeTable {
     pub w: [f64; MAX_J],
     /// `v0` at `s = 0` with the state at zero.
     pub b: [f64; MAX_J],
+    /// An orthonormal basis of the directions orthogonal to `a` (`nj - 1` vectors): the
+    /// coordinates `rho_k = e_k (v0 - b)` of `r`.
+    pub e: [[f64; MAX_J]; MAX_J],
     /// Start of the first cell.
     pub s0: f64,
     /// Cell width.
@@ -121,13 +124,12 @@ pub struct DiodeTable {
     pub per_cell: usize,
     /// `per_cell / h`.
     pub inv_hf: f64,
-    /// Per index slot (width `h / per_cell`), the offset in `seg` of the sub-interval that
-    /// holds it.
-    pub slot: Vec<u32>,
-    /// Per sub-interval ([`SEG_HEAD`] + `4 nj + 2 nj^2` values): its start and `1 /
-    /// width`, then per junction the cubic in the local `t` in `[0, 1]` (coefficients of
-    /// `1, t, t^2, t^3`: the Hermite interpolant of `c`), then `dc/dv0` at its start and
-    /// its change to the end (row-major `nj x nj` each).
+    /// Per index slot (width `h / per_cell`), the sub-interval that holds it.
+    pub slot: Vec<u16>,
+    /// Per sub-interval ([`seg_stride`] values): its start and `1 / width`, then per
+    /// junction the cubic in the local `t` in `[0, 1]` (coefficients of `1, t, t^2, t^3`:
+    /// the Hermite interpolant of `c`), then `dc/dv0 e_k` at its start and its change to
+    /// the end (row-major `nj x (nj - 1)` each).
     pub seg: Vec<f64>,
     /// Values per sub-interval.
     pub stride: usize,
@@ -135,6 +137,11 @@ pub struct DiodeTable {
 
 /// Values before the polynomials in a sub-interval of [`DiodeTable::seg`].
 pub const SEG_HEAD: usize = 2;
+
+/// Values per sub-interval of [`DiodeTable::seg`] for `nj` junctions.
+pub const fn seg_stride(nj: usize) -> usize {
+    SEG_HEAD + 4 * nj + 2 * nj * (nj - 1)
+}
 
 impl DiodeStep {
     /// The reduced form of group `gp` with kernel `k`, when the group has no op-amp, at
@@ -309,6 +316,14 @@ impl DiodeStep {
                 basis.push(e);
             }
         }
+        if basis.len() + 1 != nj {
+            return None;
+        }
+        let ne = nj - 1;
+        let mut eb = [[0.0f64; MAX_J]; MAX_J];
+        for (k, e) in basis.iter().enumerate() {
+            eb[k] = *e;
+        }
         let nvt_min = self.params[..nj]
             .iter()
             .map(|p| p.1)
@@ -319,7 +334,7 @@ impl DiodeStep {
             return None;
         }
         let nstride = 2 * nj + nj * nj;
-        let stride = SEG_HEAD + 4 * nj + 2 * nj * nj;
+        let stride = seg_stride(nj);
         let ny = self.t.len() / nj;
         // per cell: its first sub-interval and their count
         let mut cells: Vec<(usize, usize)> = Vec::with_capacity(ncell);
@@ -333,14 +348,17 @@ impl DiodeStep {
             v0
         };
         let zero = [0.0f64; MAX_J];
-        let mut dirs: Vec<[f64; MAX_J]> = vec![zero];
-        for e in &basis {
+        // (r, its coordinates in the basis)
+        let mut dirs: Vec<([f64; MAX_J], [f64; MAX_J])> = vec![(zero, zero)];
+        for (k, e) in basis.iter().enumerate() {
             for sign in [1.0, -1.0] {
                 let mut r = [0.0f64; MAX_J];
                 for q in 0..nj {
                     r[q] = sign * TABLE_RMAX * e[q];
                 }
-                dirs.push(r);
+                let mut rho = [0.0f64; MAX_J];
+                rho[k] = sign * TABLE_RMAX;
+                dirs.push((r, rho));
             }
         }
         // the converged solution at the start of the current cell (continuation)
@@ -384,9 +402,19 @@ impl DiodeStep {
                             2.0 * (c0 - c1) + d0 + d1,
                         ]);
                     }
-                    seg.extend_from_slice(&n0[2 * nj..]);
-                    for (j0, j1) in n0[2 * nj..].iter().zip(&n1[2 * nj..]) {
-                        seg.push(j1 - j0);
+                    // dc/dv0 e_k at both ends: its start, then its change
+                    let jme = |nd: &[f64], q: usize, k: usize| -> f64 {
+                        (0..nj).map(|p| nd[2 * nj + q * nj + p] * eb[k][p]).sum()
+                    };
+                    for q in 0..nj {
+                        for k in 0..ne {
+                            seg.push(jme(n0, q, k));
+                        }
+                    }
+                    for q in 0..nj {
+                        for k in 0..ne {
+                            seg.push(jme(n1, q, k) - jme(n0, q, k));
+                        }
                     }
                 }
                 // check every sub-interval's midpoint, on the line and off it
@@ -396,14 +424,14 @@ impl DiodeStep {
                     let s = sa + (kk as f64 + 0.5) * hs;
                     let sg = &seg[off + kk * stride..off + (kk + 1) * stride];
                     let tt = (s - sg[0]) * sg[1];
-                    for (di, r) in dirs.iter().enumerate() {
+                    for (di, (r, rho)) in dirs.iter().enumerate() {
                         let v0 = line(s, r);
                         let mut gg = gm;
                         let (c, _) = self.solve_exact(&v0, &mut gg)?;
                         if di == 0 {
                             gm = gg;
                         }
-                        let ct = seg_eval(sg, nj, tt, r);
+                        let ct = seg_eval(sg, nj, tt, rho);
                         for i in 0..ny {
                             let e: f64 =
                                 (0..nj).map(|q| self.t[i * nj + q] * (ct[q] - c[q])).sum();
@@ -428,16 +456,20 @@ impl DiodeStep {
             }
         }
         let per_cell = cells.iter().map(|c| c.1).max().unwrap_or(1);
+        if seg.len() / stride > u16::MAX as usize {
+            return None;
+        }
         let mut slot = Vec::with_capacity(ncell * per_cell);
         for &(first, m) in &cells {
             for i in 0..per_cell {
-                slot.push(((first + i / (per_cell / m)) * stride) as u32);
+                slot.push((first + i / (per_cell / m)) as u16);
             }
         }
         Some(DiodeTable {
             a,
             w,
             b,
+            e: eb,
             s0: lo,
             h,
             ncell,
@@ -748,9 +780,9 @@ impl DiodeStep {
         for q in 0..NJ {
             pw[0][q] = tab.w[q];
         }
-        for p in 0..NJ {
+        for k in 0..NJ - 1 {
             for q in 0..NJ {
-                pw[1 + p][q] = if p == q { 1.0 } else { 0.0 } - aa[p] * tab.w[q];
+                pw[1 + k][q] = tab.e[k][q];
             }
         }
         // as columns: over u (NC), over c (NJ), x' and the constant
@@ -758,7 +790,7 @@ impl DiodeStep {
         let mut pc = [[0.0f64; P]; NJ];
         let mut px = [0.0f64; P];
         let mut p1 = [0.0f64; P];
-        for k in 0..=NJ {
+        for k in 0..NJ {
             for q in 0..NJ {
                 let wk = pw[k][q];
                 for j in 0..NZ {
@@ -773,8 +805,12 @@ impl DiodeStep {
                 p1[k] += wk * (v0m[q][NC - 1] - bb[q]);
             }
         }
-        let stride = SEG_HEAD + 4 * NJ + 2 * NJ * NJ;
+        let stride = seg_stride(NJ);
         debug_assert_eq!(stride, tab.stride);
+        let mut eb = [[0.0f64; NJ]; NJ];
+        for k in 0..NJ - 1 {
+            eb[k].copy_from_slice(&tab.e[k][..NJ]);
+        }
         let mut uc = [0.0f64; W];
         uc[..NZ].copy_from_slice(&st.z[..NZ]);
         uc[NZ] = a.xs[0];
@@ -782,7 +818,7 @@ impl DiodeStep {
         // this sample's projections without its predecessor's currents (the first sample:
         // straight from v0)
         let mut pre = [0.0f64; P];
-        for k in 0..=NJ {
+        for k in 0..NJ {
             let mut acc = 0.0;
             for q in 0..NJ {
                 let v: f64 = (0..NC).map(|j| v0m[q][j] * uc[j]).sum();
@@ -823,10 +859,14 @@ impl DiodeStep {
                 }
                 pre = e;
             }
-            // the linear step's check (the kernel's check rows: v0 = b + a s + r)
+            // the linear step's check (the kernel's check rows: v0 = b + a s + rho e)
             let mut lin = true;
             for q in 0..NJ {
-                lin &= bb[q] + aa[q] * proj[0] + proj[1 + q] <= vth[q];
+                let mut v = bb[q] + aa[q] * proj[0];
+                for k in 0..NJ - 1 {
+                    v += eb[k][q] * proj[1 + k];
+                }
+                lin &= v <= vth[q];
             }
             let mut cc = [0.0f64; NJ];
             if lin {
@@ -836,9 +876,9 @@ impl DiodeStep {
                 let sv = proj[0];
                 let mut r = [0.0f64; MAX_J];
                 let mut near = true;
-                for q in 0..NJ {
-                    r[q] = proj[1 + q];
-                    near &= r[q].abs() <= TABLE_RMAX;
+                for k in 0..NJ - 1 {
+                    r[k] = proj[1 + k];
+                    near &= r[k].abs() <= TABLE_RMAX;
                 }
                 // the sub-interval from the predicted coordinate (known before this
                 // sample's predecessor is), confirmed with the exact one
@@ -1000,7 +1040,7 @@ impl DiodeTable {
         }
         // SAFETY: 0 <= xf < slot.len() (checked just above): the cast is exact.
         let i = unsafe { xf.to_int_unchecked::<i64>() } as usize;
-        let base = self.slot[i] as usize;
+        let base = self.slot[i] as usize * self.stride;
         let t = ((s - self.seg[base]) * self.seg[base + 1]).clamp(0.0, 1.0);
         Some((base, t))
     }
@@ -1014,7 +1054,7 @@ impl DiodeTable {
         }
         // SAFETY: 0 <= xf < slot.len() (checked just above): the cast is exact.
         let i = unsafe { xf.to_int_unchecked::<i64>() } as usize;
-        Some(self.slot[i] as usize)
+        Some(self.slot[i] as usize * self.stride)
     }
 
     /// The junction currents `c = I + is` for open-circuit junction voltages `v0` (see the
@@ -1024,32 +1064,34 @@ impl DiodeTable {
         for q in 0..nj {
             s += self.w[q] * (v0[q] - self.b[q]);
         }
-        let mut r = [0.0f64; MAX_J];
-        for q in 0..nj {
-            r[q] = v0[q] - self.b[q] - self.a[q] * s;
-            if !(r[q].abs() <= TABLE_RMAX) {
+        let mut rho = [0.0f64; MAX_J];
+        for k in 0..nj - 1 {
+            rho[k] = (0..nj).map(|q| self.e[k][q] * (v0[q] - self.b[q])).sum();
+            if !(rho[k].abs() <= TABLE_RMAX) {
                 return None;
             }
         }
         let (base, t) = self.locate(s)?;
-        Some(seg_eval(&self.seg[base..base + self.stride], nj, t, &r))
+        Some(seg_eval(&self.seg[base..base + self.stride], nj, t, &rho))
     }
 }
 
-/// A sub-interval's value at local `t` in `[0, 1]`, at distance `r` off the line: the
-/// cubic (Estrin's scheme) plus the first-order term with `dc/dv0` interpolated linearly.
+/// A sub-interval's value at local `t` in `[0, 1]`, at `rho` off the line (coordinates in
+/// the basis `e`): the cubic (Estrin's scheme) plus the first-order term with `dc/dv0 e_k`
+/// interpolated linearly.
 #[inline(always)]
-pub fn seg_eval(sg: &[f64], nj: usize, t: f64, r: &[f64; MAX_J]) -> [f64; MAX_J] {
+pub fn seg_eval(sg: &[f64], nj: usize, t: f64, rho: &[f64; MAX_J]) -> [f64; MAX_J] {
+    let ne = nj - 1;
     let t2 = t * t;
     let jb = SEG_HEAD + 4 * nj;
-    let db = jb + nj * nj;
+    let db = jb + nj * ne;
     let mut c = [0.0f64; MAX_J];
     for q in 0..nj {
         let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
         let poly = (p[0] + p[1] * t) + t2 * (p[2] + p[3] * t);
         let mut corr = 0.0;
-        for k in 0..nj {
-            corr += (sg[jb + q * nj + k] + t * sg[db + q * nj + k]) * r[k];
+        for k in 0..ne {
+            corr += (sg[jb + q * ne + k] + t * sg[db + q * ne + k]) * rho[k];
         }
         c[q] = poly + corr;
     }
