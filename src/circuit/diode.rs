@@ -40,6 +40,11 @@ pub struct DiodeHist {
     pub v2: [f64; MAX_J],
     /// How many of them are valid (0, 1 or 2).
     pub n: u8,
+    /// The junction currents `c = I + is` of the last three steps, newest first, when the
+    /// last block ended in the table's loop (`nc > 0`).
+    pub c: [[f64; MAX_J]; 3],
+    /// Whether `c` is valid.
+    pub nc: u8,
 }
 
 /// Largest Newton step (relative to `1 + |v|`) at which the iteration stops: Newton
@@ -662,6 +667,7 @@ impl DiodeStep {
         st: &mut GroupState,
         counts: &mut (u64, u64),
         slots: &mut [Vec<f64>],
+        hist: &mut DiodeHist,
         writes: &[usize],
         n: usize,
         t0: f64,
@@ -697,9 +703,9 @@ impl DiodeStep {
         macro_rules! go {
             ($nj:literal, $nz:literal, $nc:literal, $w:literal, $p:literal) => {
                 if small {
-                    self.table_loop::<$nj, $nz, $nc, $w, $p, 4>(&a, vn, st, counts, slots)
+                    self.table_loop::<$nj, $nz, $nc, $w, $p, 4>(&a, vn, st, counts, slots, hist)
                 } else {
-                    self.table_loop::<$nj, $nz, $nc, $w, $p, 8>(&a, vn, st, counts, slots)
+                    self.table_loop::<$nj, $nz, $nc, $w, $p, 8>(&a, vn, st, counts, slots, hist)
                 }
             };
         }
@@ -738,6 +744,7 @@ impl DiodeStep {
         st: &mut GroupState,
         counts: &mut (u64, u64),
         slots: &mut [Vec<f64>],
+        hist: &mut DiodeHist,
     ) -> Result<(), (CircuitError, usize)> {
         let nw = a.wr.len();
         assert!(NC == NZ + 2 && W == NC + NJ && NJ <= MAX_J && self.nj == NJ && self.ncol == NC);
@@ -826,9 +833,23 @@ impl DiodeStep {
             }
             pre[k] = acc;
         }
+        // the last steps' currents, when the block before ended in this loop
         let mut cprev = [0.0f64; NJ];
         let mut cpp = [0.0f64; NJ];
         let mut cppp = [0.0f64; NJ];
+        let mut warm = hist.nc > 0;
+        if warm {
+            cprev.copy_from_slice(&hist.c[0][..NJ]);
+            cpp.copy_from_slice(&hist.c[1][..NJ]);
+            cppp.copy_from_slice(&hist.c[2][..NJ]);
+            // the first sample's coordinate carries its predecessor's currents
+            for k in 0..NJ {
+                for q in 0..NJ {
+                    pre[k] -= pc[q][k] * cprev[q];
+                }
+            }
+        }
+        hist.nc = 0;
         let (mut nlin, mut nnl) = (0u64, 0u64);
         for t in 0..n {
             let x = uc[NZ];
@@ -902,7 +923,7 @@ impl DiodeStep {
                     }
                     let mut cp4 = [0.0f64; MAX_J];
                     cp4[..NJ].copy_from_slice(&cprev);
-                    match self.newton_from(&v04, &cp4) {
+                    match self.newton_from(&v04, &cp4, warm) {
                         Some(c4) => cc.copy_from_slice(&c4[..NJ]),
                         None => {
                             counts.0 += nlin;
@@ -922,6 +943,7 @@ impl DiodeStep {
             cppp = cpp;
             cpp = cprev;
             cprev = cc;
+            warm = true;
             // the new state and the written nodes (the currents' part last: the rest
             // does not wait for them)
             let mut out = [0.0f64; Q];
@@ -954,14 +976,24 @@ impl DiodeStep {
         counts.0 += nlin;
         counts.1 += nnl;
         st.z[..NZ].copy_from_slice(&uc[..NZ]);
+        hist.c[0][..NJ].copy_from_slice(&cprev);
+        hist.c[1][..NJ].copy_from_slice(&cpp);
+        hist.c[2][..NJ].copy_from_slice(&cppp);
+        hist.nc = 1;
         Ok(())
     }
 
-    /// The Newton step for `v0` from the guess `v = v0 + Z cprev` (off the table): the
-    /// currents `c`, or `None` when it does not converge.
+    /// The Newton step for `v0` from the guess `v = v0 + Z cprev` (off the table; `warm`:
+    /// `cprev` are the last step's currents): the currents `c`, or `None` when it does not
+    /// converge.
     #[cold]
     #[inline(never)]
-    fn newton_from(&self, v0: &[f64; MAX_J], cprev: &[f64; MAX_J]) -> Option<[f64; MAX_J]> {
+    fn newton_from(
+        &self,
+        v0: &[f64; MAX_J],
+        cprev: &[f64; MAX_J],
+        warm: bool,
+    ) -> Option<[f64; MAX_J]> {
         let nj = self.nj;
         let mut v = [0.0f64; MAX_J];
         for q in 0..nj {
@@ -970,6 +1002,13 @@ impl DiodeStep {
                 s += self.z[q * nj + r] * cprev[r];
             }
             v[q] = s;
+        }
+        if !warm {
+            // no last step: each junction from at most its critical voltage (the step
+            // limit takes it up from there)
+            for q in 0..nj {
+                v[q] = v[q].min(self.params[q].2);
+            }
         }
         let mut cur = [0.0f64; MAX_J];
         self.newton(v0, &mut v, &mut cur).then_some(cur)

@@ -289,6 +289,7 @@ impl KernelRun {
     pub fn reset(&mut self) {
         self.stale = false;
         self.dhist.n = 0;
+        self.dhist.nc = 0;
     }
 }
 
@@ -546,6 +547,9 @@ pub fn run_block(
     let nc = gp.caps.len();
     let nw = st.w.len();
     if !fast {
+        if let Some((_, kr)) = kern.as_mut() {
+            kr.dhist.nc = 0;
+        }
         kern = None;
     }
     if let Some((k, kr)) = kern.as_mut() {
@@ -573,7 +577,19 @@ pub fn run_block(
         if let Some((ds, tab)) = k.diode.as_ref().and_then(|d| d.table.as_ref().map(|t| (d, t))) {
             if k.nk + k.nw == 1 && io.drive.is_none() {
                 let done = ds.run_table_block(
-                    c, gp, tab, &kr.xw[..n], vn, st, counts, io.slots, io.writes, n, t0, h,
+                    c,
+                    gp,
+                    tab,
+                    &kr.xw[..n],
+                    vn,
+                    st,
+                    counts,
+                    io.slots,
+                    &mut kr.dhist,
+                    io.writes,
+                    n,
+                    t0,
+                    h,
                 )?;
                 if done {
                     kr.stale = false;
@@ -582,6 +598,10 @@ pub fn run_block(
                 }
             }
         }
+    }
+    if let Some((_, kr)) = kern.as_mut() {
+        // the table's loop did not take this block: its currents go stale
+        kr.dhist.nc = 0;
     }
     let mut t = 0;
     while t < n {
