@@ -224,6 +224,7 @@ fn clipper_diode_step(text: &str) -> railsong::circuit::diode::DiodeStep {
 // (`T dc`) within 1e-9 V. Outside the table (past its range, or farther off the line) the
 // table declines and the Newton step takes the sample.
 #[test]
+#[allow(clippy::needless_range_loop)]
 fn diode_table_matches_the_newton_reference_over_a_dense_sweep() {
     use railsong::circuit::diode::{MAX_J, TABLE_RMAX};
     let ds = clipper_diode_step(&case(CLIPPER, 997.0, 5.0, false));

@@ -290,7 +290,7 @@ impl DiodeStep {
             b[q] = self.v0[q * ncol + ncol - 1];
         }
         let a2: f64 = a.iter().map(|x| x * x).sum();
-        if !(a2 > 1e-12) || !(hi > lo) {
+        if !(a2 > 1e-12 && hi > lo) {
             return None;
         }
         let mut w = [0.0f64; MAX_J];
@@ -440,7 +440,7 @@ impl DiodeStep {
                         for i in 0..ny {
                             let e: f64 =
                                 (0..nj).map(|q| self.t[i * nj + q] * (ct[q] - c[q])).sum();
-                            if !(e.abs() <= TABLE_TOL) {
+                            if e.is_nan() || e.abs() > TABLE_TOL {
                                 ok = false;
                                 break 'check;
                             }
@@ -988,6 +988,7 @@ impl DiodeStep {
     /// converge.
     #[cold]
     #[inline(never)]
+    #[allow(clippy::needless_range_loop)]
     fn newton_from(
         &self,
         v0: &[f64; MAX_J],
@@ -1098,6 +1099,7 @@ impl DiodeTable {
 
     /// The junction currents `c = I + is` for open-circuit junction voltages `v0` (see the
     /// type): `None` outside the table or farther than `TABLE_RMAX` from its line.
+    #[allow(clippy::needless_range_loop)]
     pub fn eval(&self, nj: usize, v0: &[f64; MAX_J]) -> Option<[f64; MAX_J]> {
         let mut s = 0.0;
         for q in 0..nj {
@@ -1106,7 +1108,7 @@ impl DiodeTable {
         let mut rho = [0.0f64; MAX_J];
         for k in 0..nj - 1 {
             rho[k] = (0..nj).map(|q| self.e[k][q] * (v0[q] - self.b[q])).sum();
-            if !(rho[k].abs() <= TABLE_RMAX) {
+            if rho[k].is_nan() || rho[k].abs() > TABLE_RMAX {
                 return None;
             }
         }
