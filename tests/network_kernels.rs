@@ -182,6 +182,16 @@ fn reduced_diode_step_matches_the_generic_nonlinear_step() {
                 .any(|k| k.diode.is_some()),
             "{name}: the diode group has its reduced step"
         );
+        // noise off: the group's one varying input makes it a table (the block loop of
+        // `DiodeStep::run_table_block`); noise on: the per-sample Newton step
+        assert!(
+            plan.networks[0]
+                .kernels
+                .iter()
+                .flatten()
+                .any(|k| k.diode.as_ref().is_some_and(|d| d.table.is_some())),
+            "{name}: the diode group has its table"
+        );
         for noise in [false, true] {
             let text = case(net, 997.0, amp, noise);
             let (a, ca) = render(&text, true);
@@ -190,6 +200,106 @@ fn reduced_diode_step_matches_the_generic_nonlinear_step() {
             assert!(ca.1 > 1000, "{name}: nonlinear steps taken: {ca:?}");
             let d = abs_diff(&a, &b);
             assert!(d < 1e-9, "{name} (noise {noise}): {d:e} V");
+        }
+    }
+}
+
+/// The clipper's diode group: its reduced step (with the table when it has one).
+fn clipper_diode_step(text: &str) -> railsong::circuit::diode::DiodeStep {
+    let p = railsong::patch::parse_str(text, "t.toml", std::path::Path::new("."), &[])
+        .expect("test patch");
+    let plan = railsong::engine::compile(&p).expect("compiles");
+    plan.networks[0]
+        .kernels
+        .iter()
+        .flatten()
+        .find_map(|k| k.diode.clone())
+        .expect("the diode group has its reduced step")
+}
+
+// The clipper's table (junction currents tabulated along the input's line at compile time,
+// read by cubic Hermite interpolation, first-order term off the line) against the plain
+// reference, the reduced Newton step (`DiodeStep::newton`, converged), over a dense sweep of
+// the whole table and off its line as far as the table is taken: every unknown of the group
+// (`T dc`) within 1e-9 V. Outside the table (past its range, or farther off the line) the
+// table declines and the Newton step takes the sample.
+#[test]
+#[allow(clippy::needless_range_loop)]
+fn diode_table_matches_the_newton_reference_over_a_dense_sweep() {
+    use railsong::circuit::diode::{MAX_J, TABLE_RMAX};
+    let ds = clipper_diode_step(&case(CLIPPER, 997.0, 5.0, false));
+    let tab = ds.table.as_ref().expect("the clipper's diode group has a table");
+    let nj = ds.nj;
+    assert_eq!(nj, 2, "two junctions");
+    let ny = ds.t.len() / nj;
+    let (lo, hi) = (tab.s0, tab.s0 + tab.h * tab.ncell as f64);
+    // the follower's swing, as the table's range must cover it (about +-10 V on +-12 V
+    // rails; from memory of the profile, not a datasheet)
+    assert!(lo < -9.0 && hi > 9.0, "range {lo} .. {hi}");
+    let mut worst: f64 = 0.0;
+    let mut v = [0.0f64; MAX_J];
+    let npts = 200_000;
+    for i in 0..=npts {
+        let s = lo + (hi - lo) * (i as f64 + 0.37) / (npts as f64 + 1.0);
+        for rho in [0.0, 0.9 * TABLE_RMAX, -0.9 * TABLE_RMAX, 0.3 * TABLE_RMAX] {
+            let mut v0 = [0.0f64; MAX_J];
+            for q in 0..nj {
+                v0[q] = tab.a[q] * s + tab.b[q] + rho * tab.e[0][q];
+            }
+            // the first point from zero (a cold start far into conduction would need
+            // many limited steps), then continuation along the sweep
+            let mut vr = if i == 0 { [0.0; MAX_J] } else { v };
+            let mut cur = [0.0f64; MAX_J];
+            assert!(ds.newton(&v0, &mut vr, &mut cur), "reference converges at {s} V");
+            if rho == 0.0 {
+                v = vr;
+            }
+            let ct = tab.eval(nj, &v0).expect("inside the table");
+            for row in 0..ny {
+                let e: f64 = (0..nj).map(|q| ds.t[row * nj + q] * (ct[q] - cur[q])).sum();
+                worst = worst.max(e.abs());
+            }
+        }
+    }
+    assert!(worst < 1e-9, "table error {worst:e} V");
+    // outside: past the range, and farther off the line than TABLE_RMAX
+    let mut v0 = [0.0f64; MAX_J];
+    for q in 0..nj {
+        v0[q] = tab.a[q] * (hi + 1.0) + tab.b[q];
+    }
+    assert!(tab.eval(nj, &v0).is_none(), "past the range");
+    for q in 0..nj {
+        v0[q] = tab.b[q] + 3.0 * TABLE_RMAX * tab.e[0][q];
+    }
+    assert!(tab.eval(nj, &v0).is_none(), "off the line");
+}
+
+// A diode limiter straight on a source (no op-amp: the group reads the source), driven
+// past the table's range (the rails, 12 V, and a little): the samples beyond it take the
+// Newton step, the rest the table; the render agrees with the generic nonlinear step
+// (the whole group assembled and factored per iteration) within 1 nV, and takes the same
+// linear and nonlinear steps.
+#[test]
+fn diode_table_hands_samples_past_its_range_to_the_newton_step() {
+    let net = "amps = []\nparts = [{ r = \"4k7\", ends = [\"osc\", \"x\"] }, \
+{ diode = \"silicon-signal\", ends = [\"x\", \"gnd\"] }, \
+{ diode = \"silicon-signal\", ends = [\"gnd\", \"x\"] }]\nout = \"x\"\n";
+    for amp in [20.0, 0.3] {
+        let text = case(net, 997.0, amp, false);
+        let ds = clipper_diode_step(&text);
+        let tab = ds.table.as_ref().expect("a table");
+        let hi = tab.s0 + tab.h * tab.ncell as f64;
+        assert!(hi < 14.0, "the table ends near the rails: {hi}");
+        let (a, ca) = render(&text, true);
+        let (b, cb) = render(&text, false);
+        assert_eq!(ca, cb, "{amp} V: both take the same steps");
+        let d = abs_diff(&a, &b);
+        assert!(d < 1e-9, "{amp} V: {d:e} V");
+        // a diode clipper holds its output near one junction drop (about 0.6 V for small
+        // silicon at a few mA, from memory), well under the drive
+        let peak = a.iter().fold(0.0f64, |m, x| m.max(x.abs()));
+        if amp > 1.0 {
+            assert!(peak > 0.5 && peak < 1.0, "{amp} V: peak {peak}");
         }
     }
 }

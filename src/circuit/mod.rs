@@ -56,6 +56,12 @@ use crate::parts::{Diode, OpAmp};
 
 /// Softness of the common-mode reversal factor `tanh(m / delta)`, V (as the engine).
 pub const CM_DELTA: f64 = crate::engine::plan::CM_DELTA;
+/// Distance of `V+` from the common-mode limit of an op-amp with phase reversal beyond which
+/// the linear fast path of a network group takes the reversal factor `tanh(m / CM_DELTA)`
+/// as 1: at 12 `CM_DELTA` it differs from 1 by `2 exp(-24)`, below 1e-10, which scales the
+/// op-amp's drive only (far below the fast path's other approximations, e.g. a diode's
+/// "off" current within `plan::DIODE_TOL`). The stage engine keeps its own 20 `CM_DELTA`.
+pub const REV_FAST_MARGIN: f64 = 12.0 * CM_DELTA;
 /// How far beyond the knee the integrator state may go before it is held, V.
 pub const STATE_MARGIN: f64 = crate::engine::plan::STATE_MARGIN;
 /// Conductance across every diode junction (keeps a node joined only through diodes

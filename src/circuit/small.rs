@@ -24,7 +24,7 @@
 
 use super::plan::{CircuitError, GroupPlan, FAST_VD};
 use super::step::{full_step, step_group, AmpEvents, GroupState};
-use super::{Circuit, NodeKind, CM_DELTA};
+use super::{Circuit, NodeKind, REV_FAST_MARGIN};
 
 /// The compiled linear step of one group.
 #[derive(Debug, Clone, PartialEq)]
@@ -156,7 +156,7 @@ impl SmallKernel {
             chk_hi.push(FAST_VD * a.vov);
             rows.push(vd_rows[j].clone());
             if let Some((cl, ch)) = a.cm {
-                let margin = if a.reversal { 20.0 * CM_DELTA } else { 0.0 };
+                let margin = if a.reversal { REV_FAST_MARGIN } else { 0.0 };
                 chk_row.push(rows.len());
                 chk_lo.push(cl + margin);
                 chk_hi.push(ch - margin);
@@ -359,6 +359,7 @@ impl KernelRun {
     pub fn reset(&mut self) {
         self.stale = false;
         self.dhist.n = 0;
+        self.dhist.nc = 0;
     }
 }
 
@@ -644,6 +645,9 @@ pub fn run_block(
     let nc = gp.caps.len();
     let nw = st.w.len();
     if !fast {
+        if let Some((_, kr)) = kern.as_mut() {
+            kr.dhist.nc = 0;
+        }
         kern = None;
     }
     if let Some((k, kr)) = kern.as_mut() {
@@ -665,6 +669,37 @@ pub fn run_block(
                 kr.xw[t * nx + k.nk..(t + 1) * nx].copy_from_slice(&io.w[t * nw..(t + 1) * nw]);
             }
         }
+    }
+    // a diode group with its table: the whole block in one loop
+    if let Some((k, kr)) = kern.as_mut() {
+        if let Some((ds, tab)) = k.diode.as_ref().and_then(|d| d.table.as_ref().map(|t| (d, t))) {
+            if k.nk + k.nw == 1 && io.drive.is_none() {
+                let done = ds.run_table_block(
+                    c,
+                    gp,
+                    tab,
+                    &kr.xw[..n],
+                    vn,
+                    st,
+                    counts,
+                    io.slots,
+                    &mut kr.dhist,
+                    io.writes,
+                    n,
+                    t0,
+                    h,
+                )?;
+                if done {
+                    kr.stale = false;
+                    kr.dhist.n = 0;
+                    return Ok(());
+                }
+            }
+        }
+    }
+    if let Some((_, kr)) = kern.as_mut() {
+        // the table's loop did not take this block: its currents go stale
+        kr.dhist.nc = 0;
     }
     let mut t = 0;
     while t < n {

@@ -3,7 +3,7 @@
 
 use super::linalg::{lu_factor, lu_solve};
 use super::plan::{assemble, val, AmpRow, CircuitError, CircuitPlan, GroupPlan, Lin, FAST_VD};
-use super::{Circuit, ElemKind, NodeKind, CM_DELTA};
+use super::{Circuit, ElemKind, NodeKind, CM_DELTA, REV_FAST_MARGIN};
 
 /// Most iterations of one nonlinear step (or of the rest state) before giving up.
 pub const MAX_ITER: usize = 200;
@@ -481,7 +481,7 @@ fn fast_step(
         let sh = &a.shaper;
         let mut ok = vd.abs() <= FAST_VD * a.vov && v >= sh.lo + sh.w && v <= sh.hi - sh.w;
         if let Some((cl, ch)) = a.cm {
-            let margin = if a.reversal { 20.0 * CM_DELTA } else { 0.0 };
+            let margin = if a.reversal { REV_FAST_MARGIN } else { 0.0 };
             ok &= vp >= cl + margin && vp <= ch - margin;
         }
         if !ok || !v.is_finite() {
