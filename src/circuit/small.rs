@@ -371,9 +371,9 @@ impl KernelRun {
 ///
 /// Each step is the constant and the inputs' part (independent of the state, so it
 /// overlaps) plus the state that feeds back (`nsig` entries, each
-/// broadcast from the last step's stored rows) times its column, in two partial sums with
-/// fused multiply-adds (the loop-carried chain is a broadcast load, `nsig / 2`
-/// multiply-adds and one add); the rows stay in `G` vectors of four. The sums are taken
+/// broadcast from the last step's stored rows) times its column, in four partial sums with
+/// fused multiply-adds (the loop-carried chain is a broadcast load, about `nsig / 4`
+/// multiply-adds and two adds); the rows stay in `G` vectors of four. The sums are taken
 /// in another order than [`segment_any`] (both agree with the generic path to rounding).
 ///
 /// # Safety
@@ -443,7 +443,7 @@ unsafe fn segment_avx2<const G: usize>(
                 *a = _mm256_fmadd_pd(m, xv, *a);
             }
         }
-        // the state's part in two more partial sums, two columns at a time (the chain
+        // the state's part in two more partial sums, four columns at a time (the chain
         // is then about `nsig / 4` multiply-adds deep)
         let mut a2 = [_mm256_setzero_pd(); G];
         let mut a3 = [_mm256_setzero_pd(); G];
