@@ -228,7 +228,10 @@ fn clipper_diode_step(text: &str) -> railsong::circuit::diode::DiodeStep {
 fn diode_table_matches_the_newton_reference_over_a_dense_sweep() {
     use railsong::circuit::diode::{MAX_J, TABLE_RMAX};
     let ds = clipper_diode_step(&case(CLIPPER, 997.0, 5.0, false));
-    let tab = ds.table.as_ref().expect("the clipper's diode group has a table");
+    let tab = ds
+        .table
+        .as_ref()
+        .expect("the clipper's diode group has a table");
     let nj = ds.nj;
     assert_eq!(nj, 2, "two junctions");
     let ny = ds.t.len() / nj;
@@ -250,7 +253,10 @@ fn diode_table_matches_the_newton_reference_over_a_dense_sweep() {
             // many limited steps), then continuation along the sweep
             let mut vr = if i == 0 { [0.0; MAX_J] } else { v };
             let mut cur = [0.0f64; MAX_J];
-            assert!(ds.newton(&v0, &mut vr, &mut cur), "reference converges at {s} V");
+            assert!(
+                ds.newton(&v0, &mut vr, &mut cur),
+                "reference converges at {s} V"
+            );
             if rho == 0.0 {
                 v = vr;
             }

@@ -438,8 +438,7 @@ impl DiodeStep {
                         }
                         let ct = seg_eval(sg, nj, tt, rho);
                         for i in 0..ny {
-                            let e: f64 =
-                                (0..nj).map(|q| self.t[i * nj + q] * (ct[q] - c[q])).sum();
+                            let e: f64 = (0..nj).map(|q| self.t[i * nj + q] * (ct[q] - c[q])).sum();
                             if e.is_nan() || e.abs() > TABLE_TOL {
                                 ok = false;
                                 break 'check;

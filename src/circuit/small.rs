@@ -672,7 +672,11 @@ pub fn run_block(
     }
     // a diode group with its table: the whole block in one loop
     if let Some((k, kr)) = kern.as_mut() {
-        if let Some((ds, tab)) = k.diode.as_ref().and_then(|d| d.table.as_ref().map(|t| (d, t))) {
+        if let Some((ds, tab)) = k
+            .diode
+            .as_ref()
+            .and_then(|d| d.table.as_ref().map(|t| (d, t)))
+        {
             if k.nk + k.nw == 1 && io.drive.is_none() {
                 let done = ds.run_table_block(
                     c,
