@@ -499,23 +499,7 @@ impl DiodeStep {
         for _ in 0..400 {
             let mut cur = [0.0f64; MAX_J];
             let mut g = [0.0f64; MAX_J];
-            for q in 0..nj {
-                let (is, nvt, _) = self.params[q];
-                cur[q] = is * (v[q] / nvt).min(200.0).exp();
-                g[q] = cur[q] / nvt;
-            }
-            let mut jm = [0.0f64; MAX_J * MAX_J];
-            let mut f = [0.0f64; MAX_J];
-            for q in 0..nj {
-                let mut s = v[q] - v0[q];
-                for r in 0..nj {
-                    let zqr = self.z[q * nj + r];
-                    s -= zqr * cur[r];
-                    jm[q * MAX_J + r] = -zqr * g[r];
-                }
-                jm[q * MAX_J + q] += 1.0;
-                f[q] = s;
-            }
+            let (mut jm, mut f) = self.system(&v, v0, f64::exp, &mut cur, &mut g);
             let dv = solve_small(&mut jm, &mut f, nj)?;
             let mut big = false;
             for q in 0..nj {
@@ -1014,6 +998,39 @@ impl DiodeStep {
         self.newton(v0, &mut v, &mut cur).then_some(cur)
     }
 
+    /// The reduced equations at `v`: the junction currents into `cur` and their
+    /// conductances into `g` (with `exp` for the exponential), and the Newton system
+    /// `F(v) = v - v0 - Z is exp(v / nvt)`, `J = 1 - Z diag(g)` (row stride `MAX_J`).
+    #[inline(always)]
+    fn system(
+        &self,
+        v: &[f64; MAX_J],
+        v0: &[f64; MAX_J],
+        exp: impl Fn(f64) -> f64,
+        cur: &mut [f64; MAX_J],
+        g: &mut [f64; MAX_J],
+    ) -> ([f64; MAX_J * MAX_J], [f64; MAX_J]) {
+        let nj = self.nj;
+        for q in 0..nj {
+            let (is, nvt, _) = self.params[q];
+            cur[q] = is * exp((v[q] / nvt).min(200.0));
+            g[q] = cur[q] / nvt;
+        }
+        let mut jm = [0.0f64; MAX_J * MAX_J];
+        let mut f = [0.0f64; MAX_J];
+        for q in 0..nj {
+            let mut s = v[q] - v0[q];
+            for r in 0..nj {
+                let zqr = self.z[q * nj + r];
+                s -= zqr * cur[r];
+                jm[q * MAX_J + r] = -zqr * g[r];
+            }
+            jm[q * MAX_J + q] += 1.0;
+            f[q] = s;
+        }
+        (jm, f)
+    }
+
     /// Newton on `F(v) = v - v0 - Z c(v)` from `v` (the first guess) with the junction
     /// step limit: the solution in `v` and `c = is exp(v / nvt)` in `cur`; false when it
     /// does not converge within `MAX_ITER` iterations.
@@ -1022,25 +1039,7 @@ impl DiodeStep {
         let nj = self.nj;
         let mut g = [0.0f64; MAX_J];
         for _ in 0..MAX_ITER {
-            // F(v) = v - v0 - Z is exp(v / nvt); J = 1 - Z diag(g)
-            for q in 0..nj {
-                let (is, nvt, _) = self.params[q];
-                let ex = fastmath::exp((v[q] / nvt).min(200.0));
-                cur[q] = is * ex;
-                g[q] = cur[q] / nvt;
-            }
-            let mut jm = [0.0f64; MAX_J * MAX_J];
-            let mut f = [0.0f64; MAX_J];
-            for q in 0..nj {
-                let mut s = v[q] - v0[q];
-                for r in 0..nj {
-                    let zqr = self.z[q * nj + r];
-                    s -= zqr * cur[r];
-                    jm[q * MAX_J + r] = -zqr * g[r];
-                }
-                jm[q * MAX_J + q] += 1.0;
-                f[q] = s;
-            }
+            let (mut jm, mut f) = self.system(v, v0, fastmath::exp, cur, &mut g);
             let Some(dv) = solve_small(&mut jm, &mut f, nj) else {
                 return false;
             };
