@@ -731,3 +731,26 @@ out = \"y\"\n[outputs.o]\nfrom = \"net\"\n",
     // the limit for most of the 0.2 s, the op-amp slews only in those short stretches
     assert!(ev.slew_s < 0.01, "slewing while held: {ev:?}");
 }
+
+// A composite amplifier: a non-inverting stage whose feedback divider is taken after a
+// buffer op-amp, so its negative loop closes only through the other op-amp. Gain
+// 1 + Rf/Rg = 2 (textbook non-inverting gain), whatever the buffer: an ideal one, or a
+// reversing JFET-input one (which must not start latched at a rail).
+#[test]
+fn composite_amplifier_loop_through_a_buffer() {
+    for buffer in ["ideal", "jfet-general", "bipolar-lownoise"] {
+        let text = format!(
+            "{HEAD}{}[stages.comp]\ntype = \"network\"\n\
+amps = [{{ part = \"bipolar-lownoise\", plus = \"osc\", minus = \"f\", out = \"y\" }}, {{ part = \"{buffer}\", plus = \"y\", minus = \"z\", out = \"z\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"z\", \"f\"] }}, {{ r = \"10k\", ends = [\"f\", \"gnd\"] }}]\n\
+out = \"y\"\n[outputs.out]\nfrom = \"comp\"\n",
+            sine("osc", 1000.0, 1.0)
+        );
+        let y = render(&text);
+        let g = gain(&y[0], 1000.0, 1.0);
+        let d = db(g) - 20.0 * 2f64.log10();
+        assert!(d.abs() < 0.01, "{buffer}: {d} dB off gain 2");
+        let peak = y[0][960..].iter().fold(0.0f64, |a, &x| a.max(x.abs()));
+        assert!(peak < 2.1, "{buffer}: peak {peak}");
+    }
+}

@@ -534,6 +534,42 @@ pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
             let vd = val(&gp, &zeros_vn, &rhs, a.plus) - val(&gp, &zeros_vn, &rhs, a.minus);
             *b = -vd;
         }
+        // An op-amp whose negative loop closes only through other op-amps of the group (a
+        // composite amplifier: the feedback taken after a buffer) has no loop with the
+        // others held at 0 V; its loop factor is then taken with the others in their linear
+        // (DC) relation, as they follow within the step. Without that it would take the
+        // explicit step of an op-amp without negative feedback and run to a rail.
+        for (j, bj) in bs.iter_mut().enumerate() {
+            if *bj > BMIN {
+                continue;
+            }
+            let rows: Vec<AmpRow> = (0..na)
+                .map(|q| {
+                    if q == j {
+                        AmpRow::Pin(1.0)
+                    } else {
+                        AmpRow::Dc { plus_fixed: None }
+                    }
+                })
+                .collect();
+            let lin = Lin {
+                rows: &rows,
+                outs: &outs,
+                junc: &junc0,
+                caps: Some(&zj),
+                consts: false,
+            };
+            assemble(c, &gp, &lin, &zeros_vn, &mut m, &mut rhs);
+            if !lu_factor(&mut m, ny, &mut perm) {
+                continue;
+            }
+            lu_solve(&m, ny, &perm, &mut rhs, &mut tmp);
+            let a = &c.amps[gp.amps[j].amp];
+            let vd = val(&gp, &zeros_vn, &rhs, a.plus) - val(&gp, &zeros_vn, &rhs, a.minus);
+            if -vd > BMIN && (-vd).is_finite() {
+                *bj = -vd;
+            }
+        }
         for (ac, &b) in gp.amps.iter_mut().zip(&bs) {
             let eps = c.amps[ac.amp].eps;
             ac.b = b;
