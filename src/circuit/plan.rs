@@ -512,11 +512,11 @@ pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
         let singular = |gp: &GroupPlan| CircuitError::Singular {
             what: gp.describe(c),
         };
-        // loop factors
-        let mut bs = vec![0.0; na];
-        for (j, b) in bs.iter_mut().enumerate() {
+        // loop factors: `b = -dVd/dv` of op-amp `j` with its output set to 1 V and the other
+        // op-amps as `others` says (None when the group is then singular)
+        let mut loop_factor = |j: usize, others: AmpRow| -> Option<f64> {
             let rows: Vec<AmpRow> = (0..na)
-                .map(|q| AmpRow::Pin(if q == j { 1.0 } else { 0.0 }))
+                .map(|q| if q == j { AmpRow::Pin(1.0) } else { others })
                 .collect();
             let lin = Lin {
                 rows: &rows,
@@ -527,12 +527,15 @@ pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
             };
             assemble(c, &gp, &lin, &zeros_vn, &mut m, &mut rhs);
             if !lu_factor(&mut m, ny, &mut perm) {
-                return Err(singular(&gp));
+                return None;
             }
             lu_solve(&m, ny, &perm, &mut rhs, &mut tmp);
             let a = &c.amps[gp.amps[j].amp];
-            let vd = val(&gp, &zeros_vn, &rhs, a.plus) - val(&gp, &zeros_vn, &rhs, a.minus);
-            *b = -vd;
+            Some(val(&gp, &zeros_vn, &rhs, a.minus) - val(&gp, &zeros_vn, &rhs, a.plus))
+        };
+        let mut bs = vec![0.0; na];
+        for (j, b) in bs.iter_mut().enumerate() {
+            *b = loop_factor(j, AmpRow::Pin(0.0)).ok_or_else(|| singular(&gp))?;
         }
         // An op-amp whose negative loop closes only through other op-amps of the group (a
         // composite amplifier: the feedback taken after a buffer) has no loop with the
@@ -543,31 +546,10 @@ pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
             if *bj > BMIN {
                 continue;
             }
-            let rows: Vec<AmpRow> = (0..na)
-                .map(|q| {
-                    if q == j {
-                        AmpRow::Pin(1.0)
-                    } else {
-                        AmpRow::Dc { plus_fixed: None }
-                    }
-                })
-                .collect();
-            let lin = Lin {
-                rows: &rows,
-                outs: &outs,
-                junc: &junc0,
-                caps: Some(&zj),
-                consts: false,
-            };
-            assemble(c, &gp, &lin, &zeros_vn, &mut m, &mut rhs);
-            if !lu_factor(&mut m, ny, &mut perm) {
-                continue;
-            }
-            lu_solve(&m, ny, &perm, &mut rhs, &mut tmp);
-            let a = &c.amps[gp.amps[j].amp];
-            let vd = val(&gp, &zeros_vn, &rhs, a.plus) - val(&gp, &zeros_vn, &rhs, a.minus);
-            if -vd > BMIN && (-vd).is_finite() {
-                *bj = -vd;
+            if let Some(b) = loop_factor(j, AmpRow::Dc { plus_fixed: None }) {
+                if b > BMIN && b.is_finite() {
+                    *bj = b;
+                }
             }
         }
         for (ac, &b) in gp.amps.iter_mut().zip(&bs) {
