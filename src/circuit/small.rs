@@ -621,6 +621,10 @@ pub struct BlockIo<'a> {
     pub drive: Option<usize>,
     /// Noise draws, `nw` per sample (empty without noise).
     pub w: &'a [f64],
+    /// Band-limited corrections of the drive's slope corners (empty: none taken), entry
+    /// `i` for sample `i - 3` of the block (`n + SPAN` entries; see
+    /// [`super::step::GroupState::drive_w`]).
+    pub corr: &'a mut [f64],
 }
 
 /// Step group `gp` through samples `0..n`: with `kern` (and `fast`), the kernel with the
@@ -771,6 +775,13 @@ pub fn run_block(
         }
         if let Some(j) = io.drive {
             io.slots[nnodes][t] = st.z[nc + j];
+        }
+        if let Some(w) = st.drive_w.take() {
+            if let Some(c) = io.corr.get_mut(t..t + w.len()) {
+                for (a, b) in c.iter_mut().zip(w) {
+                    *a += b;
+                }
+            }
         }
         t += 1;
     }

@@ -4,6 +4,7 @@
 use super::linalg::{lu_factor, lu_solve};
 use super::plan::{assemble, val, AmpRow, CircuitError, CircuitPlan, GroupPlan, Lin, FAST_VD};
 use super::{Circuit, ElemKind, NodeKind, CM_DELTA, REV_FAST_MARGIN};
+use crate::engine::edges::{corner_weights, SlewStep, Stepped, SPAN};
 
 /// Most iterations of one nonlinear step (or of the rest state) before giving up.
 pub const MAX_ITER: usize = 200;
@@ -59,6 +60,32 @@ pub struct GroupState {
     pub w: Vec<f64>,
     /// Block nodes' noise currents of this step, A.
     cur: Vec<f64>,
+    /// Per op-amp: the stored `p` and state `v` after each of the last four nonlinear
+    /// steps, oldest first (the stiff slew model's target, [`SlewStep`]).
+    hist: Vec<[(f64, f64); 4]>,
+    /// How many of the newest entries of `hist` belong to consecutive nonlinear steps
+    /// ending with the previous step.
+    hist_n: usize,
+    /// Time of the last nonlinear step, s (NaN: none yet).
+    last_t: f64,
+    /// Per op-amp: the stiff slew model's mode at the end of the last nonlinear step
+    /// (`1`, `-1` slewing, `0` tracking).
+    mode: Vec<i8>,
+    /// Per op-amp: where the stiff slew model holds it in this step's iteration.
+    sharp: Vec<Option<f64>>,
+    /// Per op-amp: the bracket of that hold's fixed point found so far in this step.
+    brk: Vec<(f64, f64)>,
+    /// Per op-amp: the stiff slew model's step (its corners) in the last nonlinear step,
+    /// when that model took it.
+    pub(crate) edge: Vec<Option<Stepped>>,
+    /// The op-amp (index in the group) whose state is a network's drive (its output
+    /// before the clamp), set by the network engine; the corners of the last nonlinear
+    /// step as they reach it go to `drive_w`.
+    pub(crate) drive: Option<usize>,
+    /// The band-limited corrections of the last nonlinear step's slope corners on the
+    /// drive, samples `t - 3 ..= t + 2` of a step ending at `t`
+    /// ([`crate::engine::edges::corner_weights`]); `None` when it had none.
+    pub(crate) drive_w: Option<[f64; SPAN]>,
 }
 
 impl GroupState {
@@ -94,6 +121,15 @@ impl GroupState {
                 Vec::new()
             },
             cur: vec![0.0; if gp.noise.is_some() { gp.n_kcl } else { 0 }],
+            hist: vec![[(0.0, 0.0); 4]; na],
+            hist_n: 0,
+            last_t: f64::NAN,
+            mode: vec![0; na],
+            sharp: vec![None; na],
+            brk: vec![(0.0, 0.0); na],
+            edge: vec![None; na],
+            drive: None,
+            drive_w: None,
         }
     }
 
@@ -101,6 +137,11 @@ impl GroupState {
     pub fn restore_from(&mut self, o: &GroupState) {
         self.z.copy_from_slice(&o.z);
         self.y.copy_from_slice(&o.y);
+        self.hist.copy_from_slice(&o.hist);
+        self.hist_n = o.hist_n;
+        self.last_t = o.last_t;
+        self.mode.copy_from_slice(&o.mode);
+        self.edge.copy_from_slice(&o.edge);
     }
 }
 
@@ -329,6 +370,10 @@ fn rest_group(
     }
     st.pins.fill(None);
     st.vj.fill(0.0);
+    st.hist_n = 0;
+    st.last_t = f64::NAN;
+    st.mode.fill(0);
+    st.edge.fill(None);
     let mut converged = false;
     for _ in 0..MAX_ITER {
         for (j, ac) in gp.amps.iter().enumerate() {
@@ -636,8 +681,17 @@ pub(crate) fn full_step(
         let e = &c.elems[ei];
         st.vj[q] = val(gp, vn, &st.y, e.a) - val(gp, vn, &st.y, e.b);
     }
+    // the stiff slew model's history holds only consecutive nonlinear steps
+    if !(st.last_t.is_finite() && ((time_s - st.last_t) - h).abs() < 0.25 * h) {
+        st.hist_n = 0;
+        st.mode.fill(0);
+    }
+    st.sharp.fill(None);
+    st.edge.fill(None);
+    st.drive_w = None;
+    st.brk.fill((f64::NEG_INFINITY, f64::INFINITY));
     let mut converged = false;
-    for _ in 0..MAX_ITER {
+    for iter in 0..MAX_ITER {
         for (q, &ei) in gp.junctions.iter().enumerate() {
             let (is, nvt) = junction_params(c, ei);
             let (i, g) = junction(is, nvt, st.vj[q]);
@@ -661,6 +715,11 @@ pub(crate) fn full_step(
             let p0 = st.z[nc + na + j] - ac.b * v0 + bd * v0;
             let f = st.fs[j];
             st.pins[j] = None;
+            if let Some(x) = st.sharp[j] {
+                st.pins[j] = Some(x);
+                st.rows[j] = AmpRow::Pin(x);
+                continue;
+            }
             if ac.explicit || bd * f <= super::plan::BMIN {
                 let vd = f * (p0 - bd * v0);
                 let k = std::f64::consts::TAU * a.gbw;
@@ -773,6 +832,10 @@ pub(crate) fn full_step(
             }
             st.vj[q] = vl;
         }
+        // the stiff slew model reads the solution once the junctions have settled on it
+        if (jconv || iter == 0) && sharp_steps(c, gp, h, vn, st, iter >= SHARP_SETTLE) {
+            same_pins = false;
+        }
         let mut dy: f64 = 0.0;
         for (a, b) in st.y.iter().zip(&st.ynew) {
             dy = dy.max((a - b).abs() / (1.0 + b.abs()));
@@ -790,6 +853,20 @@ pub(crate) fn full_step(
         });
     }
     commit(c, gp, vn, st);
+    for j in 0..na {
+        st.mode[j] = match (st.sharp[j], st.edge[j]) {
+            (Some(_), Some(r)) => r.mode,
+            _ => 0,
+        };
+        if st.sharp[j].is_none() {
+            st.edge[j] = None;
+        }
+        st.hist[j].rotate_left(1);
+        st.hist[j][3] = (st.z[nc + na + j], st.z[nc + j]);
+    }
+    st.hist_n = (st.hist_n + 1).min(4);
+    st.last_t = time_s;
+    drive_corners(gp, st);
     for (j, ac) in gp.amps.iter().enumerate() {
         let a = &c.amps[ac.amp];
         let ev = &mut events[ac.amp];
@@ -817,4 +894,150 @@ pub(crate) fn full_step(
         }
     }
     Ok(())
+}
+
+/// Iterations of a nonlinear step after which the stiff slew model no longer lets an
+/// op-amp go back to the effective-`phi` row once it holds it (no limit cycle between the
+/// two).
+const SHARP_SETTLE: usize = 12;
+
+/// The stiff slew model ([`SlewStep`], as the stage engine takes it) for each op-amp of the
+/// group after one solve of the iteration (`st.ynew`): the target's newest sample `p` read
+/// from the solution, the older ones from the history. Where the model takes the step (the
+/// loop stiff, and the step slewing or reaching the slew rate), the op-amp is held at the
+/// model's end value in the next solve (`st.sharp`) and its corners kept (`st.edge`); the
+/// slew corners then fall between samples where the tone puts them instead of on the grid.
+/// True when a hold was set, moved or released (the iteration has not settled).
+fn sharp_steps(
+    c: &Circuit,
+    gp: &GroupPlan,
+    h: f64,
+    vn: &[f64],
+    st: &mut GroupState,
+    settle: bool,
+) -> bool {
+    let nn = gp.nodes.len();
+    let nc = gp.caps.len();
+    let na = gp.amps.len();
+    let mut moved = false;
+    for (j, ac) in gp.amps.iter().enumerate() {
+        let a = &c.amps[ac.amp];
+        let f = st.fs[j];
+        if ac.explicit || f <= 0.0 {
+            continue;
+        }
+        let bd = st.bdyn[j];
+        let v0 = st.z[nc + j];
+        let vend = st.ynew[nn + j];
+        let vp = val(gp, vn, &st.ynew, a.plus);
+        let pe = match a.cm {
+            Some((cl, ch)) if !a.reversal => vp.clamp(cl, ch.max(cl)),
+            _ => vp,
+        };
+        let pend = pe - val(gp, vn, &st.ynew, a.minus) + a.vos + en_of(gp, st, j) + bd * vend;
+        // the stored p of each step uses the compiled loop factor: re-split with this one
+        let mut p = [0.0; 5];
+        p[4] = pend;
+        p[3] = st.z[nc + na + j] + (bd - ac.b) * v0;
+        for i in (0..3).rev() {
+            p[i] = if i + st.hist_n >= 4 {
+                let (zp, v) = st.hist[j][i];
+                zp + (bd - ac.b) * v
+            } else {
+                // before the history: the line through the later two
+                2.0 * p[i + 1] - p[i + 2]
+            };
+        }
+        let ev = SlewStep {
+            p,
+            f,
+            b: bd,
+            eps: a.eps,
+            kh: ac.kh,
+            srh: a.slew * h,
+        };
+        let r = ev.step_if_eventful(v0, st.mode[j]);
+        let want = r.map(|r| {
+            let x = if r.v.is_finite() { r.v } else { v0 };
+            x.clamp(a.state_lo, a.state_hi)
+        });
+        match (want, st.sharp[j]) {
+            (Some(x), Some(y)) => {
+                // the hold `y` gave `x`: the fixed point lies above `y` when `x > y`
+                let tol = 1e-12 * (1.0 + y.abs());
+                let (lo, hi) = &mut st.brk[j];
+                if x > y {
+                    *lo = lo.max(y);
+                } else {
+                    *hi = hi.min(y);
+                }
+                let (lo, hi) = (*lo, *hi);
+                if (x - y).abs() > tol && !(hi - lo <= tol) {
+                    // past the settling iterations, bisect the bracket: the end value can
+                    // jump with the target (a ramp that just meets its curve at the
+                    // step's end, or just misses it), and the plain iteration then
+                    // alternates across the jump
+                    let next = if settle && lo.is_finite() && hi.is_finite() {
+                        0.5 * (lo + hi)
+                    } else {
+                        x
+                    };
+                    st.sharp[j] = Some(next);
+                    moved = true;
+                }
+                st.edge[j] = r;
+            }
+            (Some(x), None) => {
+                st.sharp[j] = Some(x);
+                st.edge[j] = r;
+                moved = true;
+            }
+            (None, Some(_)) => {
+                if !settle {
+                    st.sharp[j] = None;
+                    st.edge[j] = None;
+                    moved = true;
+                }
+            }
+            (None, None) => {}
+        }
+    }
+    moved
+}
+
+/// The slope corners of this step as they reach the drive (`st.drive`): the drive's own,
+/// and each other op-amp's scaled by the drive's sensitivity to it within the step (the
+/// last solve's factors: a follower passes a corner whole, an integrator a small part). Into
+/// `st.drive_w`.
+fn drive_corners(gp: &GroupPlan, st: &mut GroupState) {
+    let Some(d) = st.drive else { return };
+    let ny = gp.ny();
+    let nn = gp.nodes.len();
+    let mut w = [0.0; SPAN];
+    let mut any = false;
+    for j in 0..gp.amps.len() {
+        let Some(r) = st.edge[j] else { continue };
+        if r.n == 0 {
+            continue;
+        }
+        let s = if j == d {
+            1.0
+        } else if st.pins[d].is_some() {
+            // the drive is held (at its swing, or by the model): no corner reaches it
+            0.0
+        } else {
+            st.rhs.fill(0.0);
+            st.rhs[nn + j] = 1.0;
+            lu_solve(&st.m, ny, &st.perm, &mut st.rhs, &mut st.tmp);
+            st.rhs[nn + d]
+        };
+        if s != 0.0 && s.is_finite() {
+            let cw = corner_weights(&r);
+            for (a, b) in w.iter_mut().zip(cw) {
+                *a += s * b;
+            }
+            any = true;
+        }
+    }
+    st.drive_w = any.then_some(w);
 }

@@ -124,7 +124,7 @@ pub struct Corner {
 
 /// What one step did: its end value, whether it ends slewing (`+1`, `-1`) or tracking (`0`),
 /// and its corners.
-#[derive(Debug, Clone, Copy, Default)]
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
 pub struct Stepped {
     /// The output at the end of the step.
     pub v: f64,
@@ -151,6 +151,20 @@ impl Stepped {
 
 /// Samples a corner's correction touches: three before it and three after.
 pub const SPAN: usize = 6;
+
+/// The summed corrections of a step's corners on samples `t - 3 ..= t + 2` ([`corner6`]),
+/// the step ending at sample `t`.
+#[inline]
+pub fn corner_weights(r: &Stepped) -> [f64; SPAN] {
+    let mut w = [0.0; SPAN];
+    for c in &r.corners[..r.n] {
+        let (a, b) = corner6(c.u);
+        for i in 0..SPAN {
+            w[i] += c.d * a[i] + c.c * b[i];
+        }
+    }
+    w
+}
 
 /// `sum_j (-1)^j C(3, j) (d + 3/2 - j)+^e / e!` for `e` = 4 and 5: the second and third
 /// running integrals of the quadratic B-spline `B3` (three unit boxes convolved, support

@@ -4,7 +4,12 @@
 use crate::circuit::plan::CircuitPlan;
 use crate::circuit::small::{run_block, BlockIo, KernelRun, SmallKernel};
 use crate::circuit::step::CircuitState;
+use crate::engine::edges::SPAN;
 use crate::engine::noise::{stream_seed, NoiseStream, FLICKER_MIN_RATE};
+use crate::engine::shaper::{LOOKAHEAD, WINDOW};
+
+/// The clamp's history: its window less the newest sample.
+const H: usize = WINDOW - 1;
 
 /// One input node of a network, read from an engine buffer.
 #[derive(Debug, Clone, PartialEq)]
@@ -26,8 +31,8 @@ pub struct NetPlan {
     pub name: String,
     /// Buffer of the stage's output.
     pub node: usize,
-    /// Latency of that buffer relative to source time, internal samples (one: the clipper's
-    /// lookahead, or a plain one-sample delay for a passive output).
+    /// Latency of that buffer relative to source time, internal samples (the clamp's
+    /// lookahead, [`LOOKAHEAD`], or a plain delay as long for a passive output).
     pub latency: usize,
     /// Inputs.
     pub inputs: Vec<NetInput>,
@@ -121,9 +126,15 @@ pub(crate) struct GroupNoiseRun {
 #[derive(Debug, Clone)]
 pub(crate) struct NetRun {
     pub state: CircuitState,
-    pub x1: f64,
-    pub x2: f64,
-    pub ex_prev: Vec<f64>,
+    /// The drive's last `WINDOW - 1` samples, oldest first (the clamp's window less its
+    /// newest sample; the output is the window's centre, [`LOOKAHEAD`] samples late).
+    pub xh: [f64; H],
+    /// Band-limited corrections of the drive's slope corners, entry `i` for sample
+    /// `i - LOOKAHEAD` of the block (the block's length plus [`SPAN`]).
+    pub(crate) corr: Vec<f64>,
+    /// Per exported node its last [`LOOKAHEAD`] values, oldest first (exports are as late
+    /// as the output).
+    pub ex_hist: Vec<[f64; LOOKAHEAD]>,
     pub ex_vals: Vec<Vec<f64>>,
     /// Lowest and highest output of every op-amp (after its clamp), V.
     pub peaks: Vec<(f64, f64)>,
@@ -142,9 +153,9 @@ impl NetRun {
     pub(crate) fn new(np: &NetPlan, block: usize) -> NetRun {
         let mut r = NetRun {
             state: np.rest.clone(),
-            x1: 0.0,
-            x2: 0.0,
-            ex_prev: vec![0.0; np.exports.len()],
+            xh: [0.0; H],
+            corr: vec![0.0; block + SPAN],
+            ex_hist: vec![[0.0; LOOKAHEAD]; np.exports.len()],
             ex_vals: vec![vec![0.0; block]; np.exports.len()],
             peaks: vec![(f64::INFINITY, f64::NEG_INFINITY); np.circuit.circuit.amps.len()],
             noise: noise_runs(np, block),
@@ -171,6 +182,9 @@ impl NetRun {
                         .unwrap_or(0)
             ],
         };
+        if let Some((gi, j)) = np.drive {
+            r.state.groups[gi].drive = Some(j);
+        }
         r.reset(np);
         r
     }
@@ -181,10 +195,10 @@ impl NetRun {
             Some(a) => self.state.amp_state(&np.circuit, a),
             None => self.state.vn[np.out],
         };
-        self.x1 = x;
-        self.x2 = x;
-        for (p, &(n, _)) in self.ex_prev.iter_mut().zip(&np.exports) {
-            *p = np.rest.vn[n];
+        self.xh = [x; H];
+        self.corr.fill(0.0);
+        for (p, &(n, _)) in self.ex_hist.iter_mut().zip(&np.exports) {
+            *p = [np.rest.vn[n]; LOOKAHEAD];
         }
         self.peaks.fill((f64::INFINITY, f64::NEG_INFINITY));
         for k in self.kruns.iter_mut().flatten() {
@@ -305,11 +319,18 @@ pub(crate) fn net_block(
             (Some(k), Some(kr), true) => Some((k, kr)),
             _ => None,
         };
+        let drive = np.drive.filter(|d| d.0 == gi).map(|d| d.1);
+        let corr: &mut [f64] = if antialias && drive.is_some() {
+            &mut nr.corr[..b + SPAN]
+        } else {
+            &mut []
+        };
         let mut io = BlockIo {
             slots: &mut nr.slots,
             writes: &np.writes[gi],
-            drive: np.drive.filter(|d| d.0 == gi).map(|d| d.1),
+            drive,
             w: &nr.wbuf[..b * nw],
+            corr,
         };
         let r = run_block(
             c,
@@ -363,65 +384,69 @@ pub(crate) fn net_block(
         Some(_) => nnodes,
         None => np.out,
     };
-    let drive = &nr.slots[drive_slot][..b];
+    let x = &mut nr.slots[drive_slot][..b];
+    if antialias && np.drive.is_some() {
+        // the corners' corrections: the three samples before the block are still in the
+        // clamp's history (not yet shaped), the two after it carry to the next block
+        for (hv, c) in nr.xh[H - LOOKAHEAD..].iter_mut().zip(&nr.corr[..LOOKAHEAD]) {
+            *hv += c;
+        }
+        for (xv, c) in x.iter_mut().zip(&nr.corr[LOOKAHEAD..LOOKAHEAD + b]) {
+            *xv += c;
+        }
+        let carry = [nr.corr[b + LOOKAHEAD], nr.corr[b + LOOKAHEAD + 1]];
+        nr.corr.fill(0.0);
+        nr.corr[LOOKAHEAD..LOOKAHEAD + 2].copy_from_slice(&carry);
+    }
+    let x = &nr.slots[drive_slot][..b];
     match np.out_amp {
         Some(a) => {
             let sh = np.circuit.circuit.amps[a].shaper;
-            // The whole block inside the linear region (the per-sample test's bound, taken
-            // over the block at once: its lowest and highest drive and its largest second
-            // difference): the output is the drive one sample late.
-            let (lo, hi) = crate::engine::run::min_max(drive);
-            let (lo, hi) = (lo.min(nr.x1).min(nr.x2), hi.max(nr.x1).max(nr.x2));
-            if b >= 2 && lo.is_finite() && hi.is_finite() {
-                let e = max_second_diff(nr.x2, nr.x1, drive);
-                let m = 0.25 * 0.5 * e;
-                if lo - m > sh.lo + sh.w && hi + m < sh.hi - sh.w {
-                    own[0] = nr.x1;
-                    own[1..].copy_from_slice(&drive[..b - 1]);
-                    nr.x2 = drive[b - 2];
-                    nr.x1 = drive[b - 1];
+            // The whole block inside the linear region (the stage engine's cheap test: the
+            // middle samples widened by the bound on every window's reach): the output is
+            // the drive, LOOKAHEAD samples late.
+            if b >= 2 * H {
+                let mut e = [0.0; 2 * H];
+                e[..H].copy_from_slice(&nr.xh);
+                e[H..].copy_from_slice(&x[..H]);
+                if crate::engine::run::cheap_inside(&e, x, sh.lo + sh.w, sh.hi - sh.w).is_some() {
+                    own[..LOOKAHEAD].copy_from_slice(&nr.xh[H - LOOKAHEAD..]);
+                    own[LOOKAHEAD..].copy_from_slice(&x[..b - LOOKAHEAD]);
+                    nr.xh.copy_from_slice(&x[b - H..]);
                     return match err {
                         Some(e) => Err(e),
                         None => Ok(()),
                     };
                 }
             }
-            for (o, &xn) in own.iter_mut().zip(drive) {
-                let (x2, x1) = (nr.x2, nr.x1);
-                *o = if sh.inside(x2, x1, xn) {
-                    x1
+            let mut h = nr.xh;
+            for (o, &xn) in own.iter_mut().zip(x) {
+                let win: [f64; WINDOW] = std::array::from_fn(|i| if i < H { h[i] } else { xn });
+                let xc = h[LOOKAHEAD];
+                *o = if sh.inside7(&win) {
+                    xc
                 } else if antialias {
-                    sh.smooth(x2, x1, xn)
+                    sh.smooth7(&win)
                 } else {
-                    sh.apply(x1)
+                    sh.apply(xc)
                 };
-                nr.x2 = x1;
-                nr.x1 = xn;
+                h.copy_within(1.., 0);
+                h[H - 1] = xn;
             }
+            nr.xh = h;
         }
         None => {
-            for (o, &xn) in own.iter_mut().zip(drive) {
-                *o = nr.x1;
-                nr.x1 = xn;
+            let mut h = nr.xh;
+            for (o, &xn) in own.iter_mut().zip(x) {
+                *o = h[H - LOOKAHEAD];
+                h.copy_within(1.., 0);
+                h[H - 1] = xn;
             }
+            nr.xh = h;
         }
     }
     match err {
         Some(e) => Err(e),
         None => Ok(()),
     }
-}
-
-/// The largest `|x0 + x2 - 2 x1|` over the windows of three of `[x2, x1, d...]` (the
-/// clamp's windows over a block whose history is `x2`, `x1`); NaN when any is not finite.
-fn max_second_diff(x2: f64, x1: f64, d: &[f64]) -> f64 {
-    let mut e = (x2 + d[0] - 2.0 * x1).abs();
-    if d.len() >= 2 {
-        e = e.max((x1 + d[1] - 2.0 * d[0]).abs());
-    }
-    let rest = crate::engine::run::max_abs_second_diff(d);
-    if !e.is_finite() || !rest.is_finite() {
-        return f64::NAN;
-    }
-    e.max(rest)
 }

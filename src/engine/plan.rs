@@ -481,9 +481,9 @@ fn compile_network(
             gain,
         });
     }
-    let lat = 1 + lat_in;
+    let lat = LOOKAHEAD + lat_in;
     for inp in &mut inputs {
-        inp.delay = lat - 1 - node_lat[inp.buf];
+        inp.delay = lat - LOOKAHEAD - node_lat[inp.buf];
         *history = (*history).max(inp.delay);
     }
     node_lat[buf] = lat;

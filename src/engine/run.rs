@@ -1,6 +1,6 @@
 //! The running engine: block processing of a [`Plan`].
 
-use super::edges::{corner6, crossing, SlewStep, Stepped, Swing, SPAN};
+use super::edges::{corner_weights, crossing, SlewStep, Stepped, Swing};
 use super::feed::{SourceFeed, ToneFeed};
 use super::halfband::Decimator;
 use super::network::{net_block, NetRun};
@@ -766,8 +766,8 @@ impl Engine {
             })
             .collect();
         for (np, nr) in self.plan.networks.iter().zip(&self.nets) {
-            // a step at buffer time t reads inputs of source time t - (latency - 1) h
-            let lag = (np.latency as f64 - 1.0) * h;
+            // a step at buffer time t reads inputs of source time t - (latency - lookahead) h
+            let lag = (np.latency as f64 - LOOKAHEAD as f64) * h;
             for ((a, ev), &(lo, hi)) in np
                 .circuit
                 .circuit
@@ -869,9 +869,11 @@ impl Engine {
                     self.bufs[np.node] = own;
                     for (k, &(_, eb)) in np.exports.iter().enumerate() {
                         let dst = &mut self.bufs[eb][hist..hist + b];
+                        let ring = &mut nr.ex_hist[k];
                         for (o, &x) in dst.iter_mut().zip(&nr.ex_vals[k]) {
-                            *o = nr.ex_prev[k];
-                            nr.ex_prev[k] = x;
+                            *o = ring[0];
+                            ring.copy_within(1.., 0);
+                            ring[LOOKAHEAD - 1] = x;
                         }
                     }
                     if let Err(e) = r {
@@ -1683,19 +1685,6 @@ fn add_corners(r: &Stepped, x: &mut [f64], t: usize, xh: &mut [f64; WINDOW - 1])
     [w[4], w[5]]
 }
 
-/// The summed corrections of a step's corners on samples `t - 3 ..= t + 2` ([`corner6`]).
-#[inline]
-fn corner_weights(r: &Stepped) -> [f64; SPAN] {
-    let mut w = [0.0; SPAN];
-    for c in &r.corners[..r.n] {
-        let (a, b) = corner6(c.u);
-        for i in 0..SPAN {
-            w[i] += c.d * a[i] + c.c * b[i];
-        }
-    }
-    w
-}
-
 /// Output clipper with [`LOOKAHEAD`] samples of lookahead: writes y[n - LOOKAHEAD] at
 /// position n.
 #[inline(always)]
@@ -1833,7 +1822,12 @@ fn shape_block(
 /// output's peaks over the block); `None` when the bound does not decide it (or a sample
 /// is not finite), and the exact pass decides.
 #[inline]
-fn cheap_inside(head: &[f64; 2 * (WINDOW - 1)], x: &[f64], lo: f64, hi: f64) -> Option<(f64, f64)> {
+pub(crate) fn cheap_inside(
+    head: &[f64; 2 * (WINDOW - 1)],
+    x: &[f64],
+    lo: f64,
+    hi: f64,
+) -> Option<(f64, f64)> {
     const H: usize = WINDOW - 1;
     let b = x.len();
     // the concatenation s = [xh, x]: window j is s[j..j + 7] for j in 0..b; its middle
