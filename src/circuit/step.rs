@@ -972,7 +972,7 @@ fn sharp_steps(
                     *hi = hi.min(y);
                 }
                 let (lo, hi) = (*lo, *hi);
-                if (x - y).abs() > tol && !(hi - lo <= tol) {
+                if (x - y).abs() > tol && hi - lo > tol {
                     // past the settling iterations, bisect the bracket: the end value can
                     // jump with the target (a ramp that just meets its curve at the
                     // step's end, or just misses it), and the plain iteration then
