@@ -220,3 +220,89 @@ fn reversal_edges_are_band_limited_and_improve_with_k() {
         assert!(k[1] < k[0] - 2.0 && k[2] < k[1] - 2.0, "{a}: {k:?}");
     }
 }
+
+/// A slow part (the slew-corner case's) inside a two-op-amp loop: non-inverting gain 2 whose
+/// feedback is taken after a fast follower (a composite amplifier), so the group is solved
+/// by the circuit engine's generic nonlinear step, not a stage kernel. 10 kHz at 3 V peak
+/// in, 6 V peak out: 3.1 times the slow part's slew rate, as in `SLEWER`.
+fn composite(out: &str) -> String {
+    format!(
+        r#"
+[patch]
+noise = false
+length = "0.3 s"
+
+[rails]
+pos = "12 V"
+neg = "-12 V"
+
+[parts.slow]
+based_on = "single-supply"
+slew = "0.12 V/us"
+
+[sources.osc]
+wave = "sine"
+freq = "10 kHz"
+amp = "3 Vpk"
+
+[stages.comp]
+type = "network"
+amps = [
+  {{ part = "slow", plus = "osc", minus = "f", out = "y" }},
+  {{ part = "jfet-general", plus = "y", minus = "z", out = "z" }},
+]
+parts = [{{ r = "10k", ends = ["z", "f"] }}, {{ r = "10k", ends = ["f", "gnd"] }}]
+out = "{out}"
+
+[outputs.out]
+from = "comp"
+"#
+    )
+}
+
+// Slew corners of an op-amp in a multi-op-amp group (issue 16, item 1, in the network
+// engine's per-op-amp model): the generic step takes the same stiff slew model as the stage
+// engine (the target's newest sample read from the group's solution, the op-amp held at
+// the model's end value), and the corners reach the output band-limited, from the output's
+// own op-amp or, through the follower, scaled by the follower's sensitivity to it. Before
+// (the effective slew factor and a per-step bound, corners on the grid): -15.0 dBc at K =
+// 4, -25.5 at 8 for both outputs; the model alone without the corrections -48.5 at K = 4.
+// Measured now: output at the slow part -73.6 dBc at K = 4, -81.5 at 8; after the follower
+// -73.4, -80.9 (the issue asks -70 at K = 4; asserted with margin).
+#[test]
+fn slew_corners_in_a_multi_op_amp_loop_are_band_limited() {
+    for out in ["y", "z"] {
+        let text = composite(out);
+        let k4 = alias_dbc(&text, 4, &[]);
+        let k8 = alias_dbc(&text, 8, &[]);
+        println!("composite, output {out}: K 4 {k4:.1}, K 8 {k8:.1} dBc");
+        assert!(k4 < -72.0, "{out}: {k4}");
+        assert!(k8 < k4 - 5.0, "{out}: {k4} {k8}");
+    }
+}
+
+// The same loop below its slew rate (0.8 V peak in, 1.6 V peak out: largest slope
+// 0.10 V/us against 0.12), the tone faded in: the group takes its nonlinear step (the
+// input is past the fast path's bound) but no step holds a corner, and the samples are
+// bit for bit those without the corrections.
+#[test]
+fn a_multi_op_amp_loop_that_never_slews_is_untouched() {
+    let sets = [
+        "sources.osc.amp=0.8 Vpk".to_string(),
+        "sources.osc.attack=2 ms".to_string(),
+        "sources.osc.decay=3600 s".to_string(),
+    ];
+    let p = load(&composite("y"), &sets);
+    let run = |aa: bool| {
+        let mut plan = railsong::engine::compile(&p).expect("compiles");
+        plan.antialias = aa;
+        let mut eng = railsong::engine::Engine::new(&plan);
+        let mut out = vec![0.0; 4800];
+        eng.process(&mut [out.as_mut_slice()]);
+        out
+    };
+    let (on, off) = (run(true), run(false));
+    let differ = on.iter().zip(&off).filter(|(a, b)| a != b).count();
+    assert_eq!(differ, 0, "{differ} samples differ");
+    assert!(on[2400..].iter().any(|x| x.abs() > 1.0), "no tone");
+}
