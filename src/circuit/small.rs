@@ -621,10 +621,75 @@ pub struct BlockIo<'a> {
     pub drive: Option<usize>,
     /// Noise draws, `nw` per sample (empty without noise).
     pub w: &'a [f64],
-    /// Band-limited corrections of the drive's slope corners (empty: none taken), entry
-    /// `i` for sample `i - 3` of the block (`n + SPAN` entries; see
-    /// [`super::step::GroupState::drive_w`]).
-    pub corr: &'a mut [f64],
+    /// Band-limited corrections of the drive's slope corners (none: not taken).
+    pub edges: Option<&'a mut DriveEdges>,
+}
+
+/// The band-limited corrections of a network drive's slope corners over a block, entry `i`
+/// for sample `i - 3` of the block (a corner in the step ending at sample `t` touches
+/// samples `t - 3 ..= t + 2`, [`crate::engine::edges::corner6`]).
+#[derive(Debug, Clone)]
+pub struct DriveEdges {
+    /// Corrections added to the drive before the clamp.
+    pub corr: Vec<f64>,
+    /// Corrections of reversal edges, added after the static clamp of the drive.
+    pub ocorr: Vec<f64>,
+    /// Samples whose clamp window holds a reversal edge: their output is the static clamp
+    /// of the drive plus `ocorr` (the band-limited clamp's local polynomial cannot follow a
+    /// rail-to-rail jump).
+    pub mask: Vec<bool>,
+}
+
+impl DriveEdges {
+    /// Room for blocks of `block` samples.
+    pub fn new(block: usize) -> DriveEdges {
+        let n = block + crate::engine::edges::SPAN;
+        DriveEdges {
+            corr: vec![0.0; n],
+            ocorr: vec![0.0; n],
+            mask: vec![false; n],
+        }
+    }
+
+    /// Nothing pending.
+    pub fn clear(&mut self) {
+        self.corr.fill(0.0);
+        self.ocorr.fill(0.0);
+        self.mask.fill(false);
+    }
+
+    /// The corrections `w` of the step ending at sample `t`; `rev`: a reversal edge.
+    #[inline]
+    pub fn add(&mut self, t: usize, w: &[f64; crate::engine::edges::SPAN], rev: bool) {
+        let n = w.len();
+        if t + n > self.corr.len() {
+            return;
+        }
+        if rev {
+            for (a, b) in self.ocorr[t..t + n].iter_mut().zip(w) {
+                *a += b;
+            }
+            self.mask[t..t + n].fill(true);
+        } else {
+            for (a, b) in self.corr[t..t + n].iter_mut().zip(w) {
+                *a += b;
+            }
+        }
+    }
+
+    /// Move what falls past a block of `b` samples to the head (the next block's first
+    /// samples) and clear the rest.
+    pub fn carry(&mut self, b: usize) {
+        // a step ending at the block's last sample touches two samples past it
+        let la = crate::engine::shaper::LOOKAHEAD;
+        let c: [f64; 2] = [self.corr[b + la], self.corr[b + la + 1]];
+        let o: [f64; 2] = [self.ocorr[b + la], self.ocorr[b + la + 1]];
+        let m: [bool; 2] = [self.mask[b + la], self.mask[b + la + 1]];
+        self.clear();
+        self.corr[la..la + 2].copy_from_slice(&c);
+        self.ocorr[la..la + 2].copy_from_slice(&o);
+        self.mask[la..la + 2].copy_from_slice(&m);
+    }
 }
 
 /// Step group `gp` through samples `0..n`: with `kern` (and `fast`), the kernel with the
@@ -777,10 +842,8 @@ pub fn run_block(
             io.slots[nnodes][t] = st.z[nc + j];
         }
         if let Some(w) = st.drive_w.take() {
-            if let Some(c) = io.corr.get_mut(t..t + w.len()) {
-                for (a, b) in c.iter_mut().zip(w) {
-                    *a += b;
-                }
+            if let Some(e) = io.edges.as_deref_mut() {
+                e.add(t, &w, st.drive_rev);
             }
         }
         t += 1;

@@ -4,7 +4,7 @@
 use super::linalg::{lu_factor, lu_solve};
 use super::plan::{assemble, val, AmpRow, CircuitError, CircuitPlan, GroupPlan, Lin, FAST_VD};
 use super::{Circuit, ElemKind, NodeKind, CM_DELTA, REV_FAST_MARGIN};
-use crate::engine::edges::{corner_weights, SlewStep, Stepped, SPAN};
+use crate::engine::edges::{corner_weights, crossing, SlewStep, Stepped, Swing, SPAN, STIFF};
 
 /// Most iterations of one nonlinear step (or of the rest state) before giving up.
 pub const MAX_ITER: usize = 200;
@@ -86,6 +86,17 @@ pub struct GroupState {
     /// drive, samples `t - 3 ..= t + 2` of a step ending at `t`
     /// ([`crate::engine::edges::corner_weights`]); `None` when it had none.
     pub(crate) drive_w: Option<[f64; SPAN]>,
+    /// Whether the drive's own step in `drive_w` was a reversal edge (a rail-to-rail
+    /// jump: its samples take the static clamp plus the corrections, as in the stage
+    /// engine).
+    pub(crate) drive_rev: bool,
+    /// Per op-amp: whether its step was a reversal edge ([`SlewStep::enter_reversal`] and
+    /// the others).
+    edge_rev: Vec<bool>,
+    /// Per reversing op-amp: whether its loop was reversed after the last nonlinear step,
+    /// and V+ at the last two (NaN: not known).
+    rv_on: Vec<bool>,
+    rv_vp: Vec<[f64; 2]>,
 }
 
 impl GroupState {
@@ -130,6 +141,10 @@ impl GroupState {
             edge: vec![None; na],
             drive: None,
             drive_w: None,
+            drive_rev: false,
+            edge_rev: vec![false; na],
+            rv_on: vec![false; na],
+            rv_vp: vec![[f64::NAN; 2]; na],
         }
     }
 
@@ -142,6 +157,8 @@ impl GroupState {
         self.last_t = o.last_t;
         self.mode.copy_from_slice(&o.mode);
         self.edge.copy_from_slice(&o.edge);
+        self.rv_on.copy_from_slice(&o.rv_on);
+        self.rv_vp.copy_from_slice(&o.rv_vp);
     }
 }
 
@@ -374,6 +391,8 @@ fn rest_group(
     st.last_t = f64::NAN;
     st.mode.fill(0);
     st.edge.fill(None);
+    st.rv_on.fill(false);
+    st.rv_vp.fill([f64::NAN; 2]);
     let mut converged = false;
     for _ in 0..MAX_ITER {
         for (j, ac) in gp.amps.iter().enumerate() {
@@ -683,12 +702,21 @@ pub(crate) fn full_step(
     }
     // the stiff slew model's history holds only consecutive nonlinear steps
     if !(st.last_t.is_finite() && ((time_s - st.last_t) - h).abs() < 0.25 * h) {
+        // after linear steps (or the rest state): tracking, reversed as the factor from
+        // the previous values says (inside the range after linear steps, whose fast path
+        // keeps `REV_FAST_MARGIN` from its ends)
         st.hist_n = 0;
         st.mode.fill(0);
+        for (on, &f) in st.rv_on.iter_mut().zip(&st.fs) {
+            *on = f <= 0.0;
+        }
+        st.rv_vp.fill([f64::NAN; 2]);
     }
     st.sharp.fill(None);
     st.edge.fill(None);
+    st.edge_rev.fill(false);
     st.drive_w = None;
+    st.drive_rev = false;
     st.brk.fill((f64::NEG_INFINITY, f64::INFINITY));
     let mut converged = false;
     for iter in 0..MAX_ITER {
@@ -863,6 +891,12 @@ pub(crate) fn full_step(
         }
         st.hist[j].rotate_left(1);
         st.hist[j][3] = (st.z[nc + na + j], st.z[nc + j]);
+        let a = &c.amps[gp.amps[j].amp];
+        if let (Some((cl, ch)), true) = (a.cm, a.reversal) {
+            let vp = vn[a.plus];
+            st.rv_on[j] = (vp - cl).min(ch - vp) <= 0.0;
+            st.rv_vp[j] = [st.rv_vp[j][1], vp];
+        }
     }
     st.hist_n = (st.hist_n + 1).min(4);
     st.last_t = time_s;
@@ -901,6 +935,11 @@ pub(crate) fn full_step(
 /// two).
 const SHARP_SETTLE: usize = 12;
 
+/// Largest relative difference between an op-amp's loop factor through the group as its
+/// other op-amps now respond (held ones do not) and the one its step uses, for the stiff
+/// slew model to take the step.
+const LOOP_AGREE: f64 = 0.05;
+
 /// The stiff slew model ([`SlewStep`], as the stage engine takes it) for each op-amp of the
 /// group after one solve of the iteration (`st.ynew`): the target's newest sample `p` read
 /// from the solution, the older ones from the history. Where the model takes the step (the
@@ -916,20 +955,51 @@ fn sharp_steps(
     st: &mut GroupState,
     settle: bool,
 ) -> bool {
+    let ny = gp.ny();
     let nn = gp.nodes.len();
     let nc = gp.caps.len();
     let na = gp.amps.len();
     let mut moved = false;
     for (j, ac) in gp.amps.iter().enumerate() {
         let a = &c.amps[ac.amp];
-        let f = st.fs[j];
-        if ac.explicit || f <= 0.0 {
+        let rev = match a.cm {
+            Some(r) if a.reversal => Some(r),
+            _ => None,
+        };
+        let vp = val(gp, vn, &st.ynew, a.plus);
+        // the input factor at the step's end (the stage engine's convention); 1 unless
+        // the part reverses
+        let f = match rev {
+            Some((cl, ch)) => (((vp - cl).min(ch - vp)) * (1.0 / CM_DELTA)).tanh(),
+            None => st.fs[j],
+        };
+        if ac.explicit || (f <= 0.0 && rev.is_none()) {
             continue;
         }
         let bd = st.bdyn[j];
         let v0 = st.z[nc + j];
         let vend = st.ynew[nn + j];
-        let vp = val(gp, vn, &st.ynew, a.plus);
+        // The model takes the target `p = Vd + b v` as independent of the op-amp's own
+        // output, which holds while the other op-amps of its loop follow it as the loop
+        // factor assumes. Not when one of them is held (slewing itself, or at its swing):
+        // the loop is then open, and the effective-phi step takes it.
+        if na > 1 {
+            st.rhs.fill(0.0);
+            st.rhs[nn + j] = 1.0;
+            lu_solve(&st.m, ny, &st.perm, &mut st.rhs, &mut st.tmp);
+            let dv = st.rhs[nn + j];
+            let dvd = val(gp, &st.zvn, &st.rhs, a.plus) - val(gp, &st.zvn, &st.rhs, a.minus);
+            let b_act = -dvd / dv;
+            if !b_act.is_finite() || (b_act - bd).abs() > LOOP_AGREE * bd.abs() {
+                if st.sharp[j].is_some() && !settle {
+                    st.sharp[j] = None;
+                    st.edge[j] = None;
+                    st.edge_rev[j] = false;
+                    moved = true;
+                }
+                continue;
+            }
+        }
         let pe = match a.cm {
             Some((cl, ch)) if !a.reversal => vp.clamp(cl, ch.max(cl)),
             _ => vp,
@@ -956,7 +1026,12 @@ fn sharp_steps(
             kh: ac.kh,
             srh: a.slew * h,
         };
-        let r = ev.step_if_eventful(v0, st.mode[j]);
+        let edge = match rev {
+            Some(cm) => rev_edge(a, &ev, cm, st.rv_on[j], st.rv_vp[j], vp, v0, st.mode[j]),
+            None => None,
+        };
+        st.edge_rev[j] = edge.is_some();
+        let r = edge.or_else(|| ev.step_if_eventful(v0, st.mode[j]));
         let want = r.map(|r| {
             let x = if r.v.is_finite() { r.v } else { v0 };
             x.clamp(a.state_lo, a.state_hi)
@@ -1005,6 +1080,51 @@ fn sharp_steps(
     moved
 }
 
+/// A reversing op-amp's step through its edges, as the stage engine takes it: the step in
+/// which V+ leaves the input range ramps at the slew rate from the instant it crosses the
+/// range's end ([`crossing`], on the quadratic through V+ at the last three samples), held
+/// at the rail while reversed; the step in which it comes back ramps toward the target from
+/// that instant ([`SlewStep::enter_reversal`], [`SlewStep::reversed`],
+/// [`SlewStep::leave_reversal`], [`SlewStep::from_rail`]). `was` and `vph` (V+ at the two
+/// samples before) from the last nonlinear step; `None` when the step has no edge.
+#[allow(clippy::too_many_arguments)]
+fn rev_edge(
+    a: &super::Amp,
+    ev: &SlewStep,
+    (cl, ch): (f64, f64),
+    was: bool,
+    vph: [f64; 2],
+    vp: f64,
+    v0: f64,
+    mode: i8,
+) -> Option<Stepped> {
+    if ev.kh * (ev.b + ev.eps) < STIFF {
+        return None;
+    }
+    let on = ev.f <= 0.0;
+    let [vp2, vp1] = vph;
+    let low = vp + vp1 < cl + ch || vp1.is_nan() && vp < 0.5 * (cl + ch);
+    let m = |x: f64| if low { x - cl } else { ch - x };
+    let u = || crossing([m(vp2), m(vp1), m(vp)]);
+    let sw = Swing {
+        lo: a.shaper.lo,
+        hi: a.shaper.hi,
+    };
+    let hold = Swing {
+        lo: a.state_lo,
+        hi: a.state_hi,
+    };
+    let mut full = *ev;
+    full.f = 1.0;
+    match (was, on) {
+        (false, true) => Some(full.enter_reversal(v0, mode, u(), sw)),
+        (true, true) if mode != 0 => Some(ev.reversed(v0, mode, sw)),
+        (true, false) => Some(full.leave_reversal(v0, mode, u(), sw, hold)),
+        (false, false) if mode != 0 => full.from_rail(v0, mode, sw, hold),
+        _ => None,
+    }
+}
+
 /// The slope corners of this step as they reach the drive (`st.drive`): the drive's own,
 /// and each other op-amp's scaled by the drive's sensitivity to it within the step (the
 /// last solve's factors: a follower passes a corner whole, an integrator a small part). Into
@@ -1040,4 +1160,5 @@ fn drive_corners(gp: &GroupPlan, st: &mut GroupState) {
         }
     }
     st.drive_w = any.then_some(w);
+    st.drive_rev = any && st.edge[d].is_some() && st.edge_rev[d];
 }

@@ -186,6 +186,38 @@
 //! reversal factor is still `tanh(m / 0.2 V)` between the edges (taking it sharp for stiff
 //! loops was tried: 0.1 dB at K = 4).
 //!
+//! Multi-op-amp groups (circuit engine, `circuit::step::full_step`): the generic nonlinear
+//! step takes the same stiff slew model for each op-amp whose loop is stiff, the target's
+//! newest sample read from the group's solution and the op-amp held at the model's end
+//! value in the next solve (a bracketed fixed point: the end value can jump with the
+//! target). The model assumes the target independent of the op-amp's own output; where an
+//! op-amp's loop factor through the group as the others now respond differs from its step's
+//! by more than 5 % (another op-amp of its loop held: slewing itself, or at its swing) the
+//! effective-`phi` step takes it. The corners reach the network's output band-limited: the
+//! output op-amp's own, and another op-amp's scaled by the output's sensitivity to it within
+//! the step (a follower passes a corner whole, an integrator a small part). The network
+//! output goes through the same seven-sample clamp, with three samples of lookahead. A slow
+//! part (120 mV/us) in a composite amplifier (gain 2, feedback after a fast follower), 10 kHz
+//! at 6 V peak out (3.1x SR), `tests/engine_edges.rs`:
+//!
+//! | K | before (effective `phi`, corners on the grid) | model, no corrections | now, output at the slow part | now, output after the follower |
+//! |---|---|---|---|---|
+//! | 4 | -15.0 dBc | -48.5 dBc | -73.6 dBc | -73.4 dBc |
+//! | 8 | -25.5 dBc | -59.6 dBc | -81.5 dBc | -80.9 dBc |
+//!
+//! Reversal edges in such groups take the stage engine's split steps (`circuit::step`,
+//! `rev_edge`): a jfet-general follower whose feedback is taken after a buffer, 1 kHz at 10 V
+//! peak (2 V below the range), reads -33.2 dBc at K = 4 and -43.6 at K = 8 with an ideal
+//! buffer (-18.5 and -27.6 before), -32.9 and -26.3 with a slewing bipolar buffer (-18.6 and
+//! -22.0 before): far from the stage engine's -69.7 dBc for the same follower, not analysed
+//! yet (the generic step fixes the reversal factor from the previous step's V+, the stage
+//! engine from this step's). A Sallen-Key low-pass with a reversing part driven below its
+//! range (the part's output kicks V+ back through the first capacitor) chatters between
+//! the edges, a relaxation the model makes, not an aliasing figure.
+//! A feedback-diode clipper with the slow part (gain 2, antiparallel silicon diodes across
+//! the feedback resistor, 10 kHz at 3 V peak in): -65.3 dBc at K = 4, -80.0 at 8 (-32.5 and
+//! -42.9 before; the diodes' knees are not corrected).
+//!
 //! Diode knees (circuit engine, no correction): a gain-10 op-amp into 4k7 and two
 //! small-signal silicon diodes to ground, driven 20 dB past the knee (6 V peak at the
 //! op-amp's output), reads -89.3 dBc at K = 4 and -141.5 dBc at K = 8 at 1 kHz, -185 dBc

@@ -2,9 +2,8 @@
 //! outputs as engine buffers, and its block processing.
 
 use crate::circuit::plan::CircuitPlan;
-use crate::circuit::small::{run_block, BlockIo, KernelRun, SmallKernel};
+use crate::circuit::small::{run_block, BlockIo, DriveEdges, KernelRun, SmallKernel};
 use crate::circuit::step::CircuitState;
-use crate::engine::edges::SPAN;
 use crate::engine::noise::{stream_seed, NoiseStream, FLICKER_MIN_RATE};
 use crate::engine::shaper::{LOOKAHEAD, WINDOW};
 
@@ -129,9 +128,11 @@ pub(crate) struct NetRun {
     /// The drive's last `WINDOW - 1` samples, oldest first (the clamp's window less its
     /// newest sample; the output is the window's centre, [`LOOKAHEAD`] samples late).
     pub xh: [f64; H],
-    /// Band-limited corrections of the drive's slope corners, entry `i` for sample
-    /// `i - LOOKAHEAD` of the block (the block's length plus [`SPAN`]).
-    pub(crate) corr: Vec<f64>,
+    /// Band-limited corrections of the drive's slope corners over the block.
+    pub(crate) edges: DriveEdges,
+    /// For the samples of `xh`: the corrections of reversal edges and whether the sample's
+    /// clamp window holds one ([`DriveEdges::mask`]).
+    pub(crate) oh: [(f64, bool); H],
     /// Per exported node its last [`LOOKAHEAD`] values, oldest first (exports are as late
     /// as the output).
     pub ex_hist: Vec<[f64; LOOKAHEAD]>,
@@ -154,7 +155,8 @@ impl NetRun {
         let mut r = NetRun {
             state: np.rest.clone(),
             xh: [0.0; H],
-            corr: vec![0.0; block + SPAN],
+            edges: DriveEdges::new(block),
+            oh: [(0.0, false); H],
             ex_hist: vec![[0.0; LOOKAHEAD]; np.exports.len()],
             ex_vals: vec![vec![0.0; block]; np.exports.len()],
             peaks: vec![(f64::INFINITY, f64::NEG_INFINITY); np.circuit.circuit.amps.len()],
@@ -196,7 +198,8 @@ impl NetRun {
             None => self.state.vn[np.out],
         };
         self.xh = [x; H];
-        self.corr.fill(0.0);
+        self.edges.clear();
+        self.oh = [(0.0, false); H];
         for (p, &(n, _)) in self.ex_hist.iter_mut().zip(&np.exports) {
             *p = [np.rest.vn[n]; LOOKAHEAD];
         }
@@ -320,17 +323,12 @@ pub(crate) fn net_block(
             _ => None,
         };
         let drive = np.drive.filter(|d| d.0 == gi).map(|d| d.1);
-        let corr: &mut [f64] = if antialias && drive.is_some() {
-            &mut nr.corr[..b + SPAN]
-        } else {
-            &mut []
-        };
         let mut io = BlockIo {
             slots: &mut nr.slots,
             writes: &np.writes[gi],
             drive,
             w: &nr.wbuf[..b * nw],
-            corr,
+            edges: (antialias && drive.is_some()).then_some(&mut nr.edges),
         };
         let r = run_block(
             c,
@@ -385,18 +383,22 @@ pub(crate) fn net_block(
         None => np.out,
     };
     let x = &mut nr.slots[drive_slot][..b];
-    if antialias && np.drive.is_some() {
+    let edges = antialias && np.drive.is_some();
+    let mut marked = false;
+    if edges {
         // the corners' corrections: the three samples before the block are still in the
         // clamp's history (not yet shaped), the two after it carry to the next block
-        for (hv, c) in nr.xh[H - LOOKAHEAD..].iter_mut().zip(&nr.corr[..LOOKAHEAD]) {
-            *hv += c;
+        let e = &nr.edges;
+        for i in 0..LOOKAHEAD {
+            let k = H - LOOKAHEAD + i;
+            nr.xh[k] += e.corr[i];
+            nr.oh[k].0 += e.ocorr[i];
+            nr.oh[k].1 |= e.mask[i];
         }
-        for (xv, c) in x.iter_mut().zip(&nr.corr[LOOKAHEAD..LOOKAHEAD + b]) {
+        for (xv, c) in x.iter_mut().zip(&e.corr[LOOKAHEAD..LOOKAHEAD + b]) {
             *xv += c;
         }
-        let carry = [nr.corr[b + LOOKAHEAD], nr.corr[b + LOOKAHEAD + 1]];
-        nr.corr.fill(0.0);
-        nr.corr[LOOKAHEAD..LOOKAHEAD + 2].copy_from_slice(&carry);
+        marked = nr.oh.iter().any(|o| o.1) || e.mask[LOOKAHEAD..LOOKAHEAD + b].contains(&true);
     }
     let x = &nr.slots[drive_slot][..b];
     match np.out_amp {
@@ -405,7 +407,8 @@ pub(crate) fn net_block(
             // The whole block inside the linear region (the stage engine's cheap test: the
             // middle samples widened by the bound on every window's reach): the output is
             // the drive, LOOKAHEAD samples late.
-            if b >= 2 * H {
+            let mut done = false;
+            if b >= 2 * H && !marked {
                 let mut e = [0.0; 2 * H];
                 e[..H].copy_from_slice(&nr.xh);
                 e[H..].copy_from_slice(&x[..H]);
@@ -413,27 +416,40 @@ pub(crate) fn net_block(
                     own[..LOOKAHEAD].copy_from_slice(&nr.xh[H - LOOKAHEAD..]);
                     own[LOOKAHEAD..].copy_from_slice(&x[..b - LOOKAHEAD]);
                     nr.xh.copy_from_slice(&x[b - H..]);
-                    return match err {
-                        Some(e) => Err(e),
-                        None => Ok(()),
-                    };
+                    nr.oh = [(0.0, false); H];
+                    done = true;
                 }
             }
-            let mut h = nr.xh;
-            for (o, &xn) in own.iter_mut().zip(x) {
-                let win: [f64; WINDOW] = std::array::from_fn(|i| if i < H { h[i] } else { xn });
-                let xc = h[LOOKAHEAD];
-                *o = if sh.inside7(&win) {
-                    xc
-                } else if antialias {
-                    sh.smooth7(&win)
-                } else {
-                    sh.apply(xc)
-                };
-                h.copy_within(1.., 0);
-                h[H - 1] = xn;
+            if !done {
+                let gibbs = crate::engine::shaper::GIBBS * (sh.hi - sh.lo);
+                let mut h = nr.xh;
+                let mut oh = nr.oh;
+                for (t, (o, &xn)) in own.iter_mut().zip(x).enumerate() {
+                    let win: [f64; WINDOW] = std::array::from_fn(|i| if i < H { h[i] } else { xn });
+                    let xc = h[LOOKAHEAD];
+                    *o = if oh[LOOKAHEAD].1 {
+                        // a reversal edge in the window: the static clamp plus its
+                        // corrections, bounded as the band-limited clamp's own value
+                        (sh.apply(xc) + oh[LOOKAHEAD].0).clamp(sh.lo - gibbs, sh.hi + gibbs)
+                    } else if sh.inside7(&win) {
+                        xc
+                    } else if antialias {
+                        sh.smooth7(&win)
+                    } else {
+                        sh.apply(xc)
+                    };
+                    h.copy_within(1.., 0);
+                    h[H - 1] = xn;
+                    oh.copy_within(1.., 0);
+                    oh[H - 1] = if edges {
+                        (nr.edges.ocorr[LOOKAHEAD + t], nr.edges.mask[LOOKAHEAD + t])
+                    } else {
+                        (0.0, false)
+                    };
+                }
+                nr.xh = h;
+                nr.oh = oh;
             }
-            nr.xh = h;
         }
         None => {
             let mut h = nr.xh;
@@ -444,6 +460,9 @@ pub(crate) fn net_block(
             }
             nr.xh = h;
         }
+    }
+    if edges {
+        nr.edges.carry(b);
     }
     match err {
         Some(e) => Err(e),
