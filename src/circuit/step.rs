@@ -4,7 +4,7 @@
 use super::linalg::{lu_factor, lu_solve};
 use super::plan::{assemble, val, AmpRow, CircuitError, CircuitPlan, GroupPlan, Lin, FAST_VD};
 use super::{Circuit, ElemKind, NodeKind, CM_DELTA, REV_FAST_MARGIN};
-use crate::engine::edges::{corner_weights, crossing, SlewStep, Stepped, Swing, SPAN, STIFF};
+use crate::engine::edges::{corner_weights, reversal_step, SlewStep, Stepped, Swing, SPAN};
 
 /// Most iterations of one nonlinear step (or of the rest state) before giving up.
 pub const MAX_ITER: usize = 200;
@@ -1027,7 +1027,27 @@ fn sharp_steps(
             srh: a.slew * h,
         };
         let edge = match rev {
-            Some(cm) => rev_edge(a, &ev, cm, st.rv_on[j], st.rv_vp[j], vp, v0, st.mode[j]),
+            Some(cm) => {
+                let sw = Swing {
+                    lo: a.shaper.lo,
+                    hi: a.shaper.hi,
+                };
+                let hold = Swing {
+                    lo: a.state_lo,
+                    hi: a.state_hi,
+                };
+                reversal_step(
+                    &ev,
+                    cm,
+                    st.rv_on[j],
+                    st.rv_vp[j],
+                    vp,
+                    v0,
+                    st.mode[j],
+                    sw,
+                    hold,
+                )
+            }
             None => None,
         };
         st.edge_rev[j] = edge.is_some();
@@ -1078,51 +1098,6 @@ fn sharp_steps(
         }
     }
     moved
-}
-
-/// A reversing op-amp's step through its edges, as the stage engine takes it: the step in
-/// which V+ leaves the input range ramps at the slew rate from the instant it crosses the
-/// range's end ([`crossing`], on the quadratic through V+ at the last three samples), held
-/// at the rail while reversed; the step in which it comes back ramps toward the target from
-/// that instant ([`SlewStep::enter_reversal`], [`SlewStep::reversed`],
-/// [`SlewStep::leave_reversal`], [`SlewStep::from_rail`]). `was` and `vph` (V+ at the two
-/// samples before) from the last nonlinear step; `None` when the step has no edge.
-#[allow(clippy::too_many_arguments)]
-fn rev_edge(
-    a: &super::Amp,
-    ev: &SlewStep,
-    (cl, ch): (f64, f64),
-    was: bool,
-    vph: [f64; 2],
-    vp: f64,
-    v0: f64,
-    mode: i8,
-) -> Option<Stepped> {
-    if ev.kh * (ev.b + ev.eps) < STIFF {
-        return None;
-    }
-    let on = ev.f <= 0.0;
-    let [vp2, vp1] = vph;
-    let low = vp + vp1 < cl + ch || vp1.is_nan() && vp < 0.5 * (cl + ch);
-    let m = |x: f64| if low { x - cl } else { ch - x };
-    let u = || crossing([m(vp2), m(vp1), m(vp)]);
-    let sw = Swing {
-        lo: a.shaper.lo,
-        hi: a.shaper.hi,
-    };
-    let hold = Swing {
-        lo: a.state_lo,
-        hi: a.state_hi,
-    };
-    let mut full = *ev;
-    full.f = 1.0;
-    match (was, on) {
-        (false, true) => Some(full.enter_reversal(v0, mode, u(), sw)),
-        (true, true) if mode != 0 => Some(ev.reversed(v0, mode, sw)),
-        (true, false) => Some(full.leave_reversal(v0, mode, u(), sw, hold)),
-        (false, false) if mode != 0 => full.from_rail(v0, mode, sw, hold),
-        _ => None,
-    }
 }
 
 /// The slope corners of this step as they reach the drive (`st.drive`): the drive's own,

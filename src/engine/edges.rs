@@ -627,6 +627,44 @@ impl SlewStep {
     }
 }
 
+/// A reversing op-amp's step through its edges, for both engines: the step in which V+
+/// leaves the input range `(cl, ch)` ramps at the slew rate from the instant it crosses the
+/// range's end ([`crossing`], on V+ at the two samples before, `vph`, and now, `vp`), held
+/// at the rail while reversed; the step in which it comes back ramps toward the target from
+/// that instant. `was`: reversed after the previous step; `mode` that step's; `sw` the
+/// output swing, `hold` the state's limits. `None` when the loop is not stiff or the step
+/// has no edge.
+#[allow(clippy::too_many_arguments)]
+pub fn reversal_step(
+    ev: &SlewStep,
+    (cl, ch): (f64, f64),
+    was: bool,
+    vph: [f64; 2],
+    vp: f64,
+    v0: f64,
+    mode: i8,
+    sw: Swing,
+    hold: Swing,
+) -> Option<Stepped> {
+    if ev.kh * (ev.b + ev.eps) < STIFF {
+        return None;
+    }
+    let on = ev.f <= 0.0;
+    let [vp2, vp1] = vph;
+    let low = vp + vp1 < cl + ch || vp1.is_nan() && vp < 0.5 * (cl + ch);
+    let m = |x: f64| if low { x - cl } else { ch - x };
+    let u = || crossing([m(vp2), m(vp1), m(vp)]);
+    let mut full = *ev;
+    full.f = 1.0;
+    match (was, on) {
+        (false, true) => Some(full.enter_reversal(v0, mode, u(), sw)),
+        (true, true) if mode != 0 => Some(ev.reversed(v0, mode, sw)),
+        (true, false) => Some(full.leave_reversal(v0, mode, u(), sw, hold)),
+        (false, false) if mode != 0 => full.from_rail(v0, mode, sw, hold),
+        _ => None,
+    }
+}
+
 /// Where the input margin of a reversing stage (V+ less the end of its input range, positive
 /// inside) crosses zero within the step from sample `n - 1` to `n`, from its values at
 /// `n - 2`, `n - 1`, `n`: the first root in `(0, 1]` of the quadratic through them (the

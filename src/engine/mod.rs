@@ -206,7 +206,7 @@
 //! | 8 | -25.5 dBc | -59.6 dBc | -81.5 dBc | -80.9 dBc |
 //!
 //! Reversal edges in such groups take the stage engine's split steps (`circuit::step`,
-//! `rev_edge`): a jfet-general follower whose feedback is taken after a buffer, 1 kHz at 10 V
+//! `engine::edges::reversal_step`): a jfet-general follower whose feedback is taken after a buffer, 1 kHz at 10 V
 //! peak (2 V below the range), reads -33.2 dBc at K = 4 and -43.6 at K = 8 with an ideal
 //! buffer (-18.5 and -27.6 before), -32.9 and -26.3 with a slewing bipolar buffer (-18.6 and
 //! -22.0 before): far from the stage engine's -69.7 dBc for the same follower, not analysed

@@ -1,6 +1,6 @@
 //! The running engine: block processing of a [`Plan`].
 
-use super::edges::{corner_weights, crossing, SlewStep, Stepped, Swing};
+use super::edges::{corner_weights, SlewStep, Stepped, Swing};
 use super::feed::{SourceFeed, ToneFeed};
 use super::halfband::Decimator;
 use super::network::{net_block, NetRun};
@@ -1273,19 +1273,12 @@ fn rev_step(
     vp: f64,
     v: f64,
 ) -> Option<Stepped> {
-    let (cl, ch) = sp.cm?;
-    let on = ev.f <= 0.0;
+    let cm = sp.cm?;
     let was = st.rv.on;
-    let (vp2, vp1) = (st.rv.vp2, st.rv.vp1);
-    st.rv.vp2 = vp1;
+    let vph = [st.rv.vp2, st.rv.vp1];
+    st.rv.vp2 = st.rv.vp1;
     st.rv.vp1 = vp;
-    st.rv.on = on;
-    if ev.kh * (sp.b + sp.eps) < super::edges::STIFF {
-        return None;
-    }
-    let low = vp + vp1 < cl + ch || vp1.is_nan() && vp < 0.5 * (cl + ch);
-    let m = |x: f64| if low { x - cl } else { ch - x };
-    let u = || crossing([m(vp2), m(vp1), m(vp)]);
+    st.rv.on = ev.f <= 0.0;
     let sw = Swing {
         lo: sp.shaper.lo,
         hi: sp.shaper.hi,
@@ -1294,15 +1287,7 @@ fn rev_step(
         lo: sp.state_lo,
         hi: sp.state_hi,
     };
-    let mut full = *ev;
-    full.f = 1.0;
-    match (was, on) {
-        (false, true) => Some(full.enter_reversal(v, st.mode, u(), sw)),
-        (true, true) if st.mode != 0 => Some(ev.reversed(v, st.mode, sw)),
-        (true, false) => Some(full.leave_reversal(v, st.mode, u(), sw, hold)),
-        (false, false) if st.mode != 0 => full.from_rail(v, st.mode, sw, hold),
-        _ => None,
-    }
+    super::edges::reversal_step(ev, cm, was, vph, vp, v, st.mode, sw, hold)
 }
 
 /// The full model over a block: slew (implicit phi), common-mode range and reversal, state
