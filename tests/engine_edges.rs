@@ -306,3 +306,56 @@ fn a_multi_op_amp_loop_that_never_slews_is_untouched() {
     assert_eq!(differ, 0, "{differ} samples differ");
     assert!(on[2400..].iter().any(|x| x.abs() > 1.0), "no tone");
 }
+
+/// A JFET-input follower (the `REVERSER` case, 1 kHz at 10 V peak, 2 V below its input
+/// range) whose feedback is taken after a buffer: the group is solved by the generic step.
+fn reversing_composite(buffer: &str) -> String {
+    format!(
+        r#"
+[patch]
+noise = false
+length = "0.3 s"
+
+[rails]
+pos = "12 V"
+neg = "-12 V"
+
+[sources.osc]
+wave = "sine"
+freq = "1 kHz"
+amp = "10 Vpk"
+
+[stages.comp]
+type = "network"
+amps = [
+  {{ part = "jfet-general", plus = "osc", minus = "z", out = "y" }},
+  {{ part = "{buffer}", plus = "y", minus = "z", out = "z" }},
+]
+parts = [{{ r = "100k", ends = ["z", "gnd"] }}]
+out = "y"
+
+[outputs.out]
+from = "comp"
+"#
+    )
+}
+
+// Reversal edges of an op-amp in a multi-op-amp group (issue 16, item 1, in the network
+// engine's per-op-amp model): the stage engine's split steps (`engine::edges::
+// reversal_step`), the edge decided once per step from the settled solution, its target
+// read as if the output were linear and, for the edge itself, extrapolated from the last
+// four samples (the edge's own jump drives the buffer within the step). Before: -18.5 /
+// -18.6 dBc at K = 4 (ideal / slewing bipolar buffer), -27.6 / -22.0 at K = 8. Measured
+// now: -48.2 / -48.4 dBc at K = 4, -57.6 / -56.7 at K = 8; the same follower as a stage
+// reads -69.7 (DEVELOPERS.md, "Known gaps": the issue asks -60 at K = 4, not met here).
+#[test]
+fn reversal_edges_in_a_multi_op_amp_loop() {
+    for buffer in ["ideal", "bipolar-lownoise"] {
+        let text = reversing_composite(buffer);
+        let k4 = alias_dbc(&text, 4, &[]);
+        let k8 = alias_dbc(&text, 8, &[]);
+        println!("reversing composite, {buffer} buffer: K 4 {k4:.1}, K 8 {k8:.1} dBc");
+        assert!(k4 < -45.0, "{buffer}: {k4}");
+        assert!(k8 < k4 - 5.0, "{buffer}: {k4} {k8}");
+    }
+}

@@ -860,13 +860,16 @@ pub(crate) fn full_step(
             }
             st.vj[q] = vl;
         }
-        // the stiff slew model reads the solution once the junctions have settled on it
-        if (jconv || iter == 0) && sharp_steps(c, gp, h, vn, st, iter >= SHARP_SETTLE) {
-            same_pins = false;
-        }
         let mut dy: f64 = 0.0;
         for (a, b) in st.y.iter().zip(&st.ynew) {
             dy = dy.max((a - b).abs() / (1.0 + b.abs()));
+        }
+        // the stiff slew model reads the solution once the rest of the group has settled
+        // on it (junctions, holds, no damping): the target read from a solution still on
+        // its way can point the wrong way
+        let settled = same_pins && jconv && dy < 1e-9 && !st.damped.contains(&true);
+        if settled && sharp_steps(c, gp, h, vn, st, iter >= SHARP_SETTLE) {
+            same_pins = false;
         }
         st.y.copy_from_slice(&st.ynew);
         if same_pins && jconv && dy < 1e-10 {
@@ -890,7 +893,10 @@ pub(crate) fn full_step(
             st.edge[j] = None;
         }
         st.hist[j].rotate_left(1);
-        st.hist[j][3] = (st.z[nc + na + j], st.z[nc + j]);
+        // as if the output were linear (see `sharp_steps`)
+        let v = st.z[nc + j];
+        let ao = &c.amps[gp.amps[j].amp];
+        st.hist[j][3] = (st.z[nc + na + j] - gp.amps[j].b * (v - vn[ao.out]), v);
         let a = &c.amps[gp.amps[j].amp];
         if let (Some((cl, ch)), true) = (a.cm, a.reversal) {
             let vp = vn[a.plus];
@@ -983,32 +989,33 @@ fn sharp_steps(
         // output, which holds while the other op-amps of its loop follow it as the loop
         // factor assumes. Not when one of them is held (slewing itself, or at its swing):
         // the loop is then open, and the effective-phi step takes it.
-        if na > 1 {
+        // the output past its clamp's knee is the state clamp's business, not an open loop
+        // (as the loop factor is taken): the target is read as if the output were linear
+        let own_flat = st.outs[j].0 < 1.0;
+        let open = na > 1 && !own_flat && {
             st.rhs.fill(0.0);
             st.rhs[nn + j] = 1.0;
             lu_solve(&st.m, ny, &st.perm, &mut st.rhs, &mut st.tmp);
             let dv = st.rhs[nn + j];
             let dvd = val(gp, &st.zvn, &st.rhs, a.plus) - val(gp, &st.zvn, &st.rhs, a.minus);
             let b_act = -dvd / dv;
-            if !b_act.is_finite() || (b_act - bd).abs() > LOOP_AGREE * bd.abs() {
-                if st.sharp[j].is_some() && !settle {
-                    st.sharp[j] = None;
-                    st.edge[j] = None;
-                    st.edge_rev[j] = false;
-                    moved = true;
-                }
-                continue;
-            }
-        }
+            !b_act.is_finite() || (b_act - bd).abs() > LOOP_AGREE * bd.abs()
+        };
         let pe = match a.cm {
             Some((cl, ch)) if !a.reversal => vp.clamp(cl, ch.max(cl)),
             _ => vp,
         };
-        let pend = pe - val(gp, vn, &st.ynew, a.minus) + a.vos + en_of(gp, st, j) + bd * vend;
+        let pend = pe - val(gp, vn, &st.ynew, a.minus) + a.vos + en_of(gp, st, j) + bd * vend
+            - bd * (vend - val(gp, vn, &st.ynew, a.out));
         // the stored p of each step uses the compiled loop factor: re-split with this one
         let mut p = [0.0; 5];
         p[4] = pend;
-        p[3] = st.z[nc + na + j] + (bd - ac.b) * v0;
+        p[3] = if st.hist_n >= 1 {
+            let (zp, v) = st.hist[j][3];
+            zp + (bd - ac.b) * v
+        } else {
+            st.z[nc + na + j] + (bd - ac.b) * v0
+        };
         for i in (0..3).rev() {
             p[i] = if i + st.hist_n >= 4 {
                 let (zp, v) = st.hist[j][i];
@@ -1036,8 +1043,15 @@ fn sharp_steps(
                     lo: a.state_lo,
                     hi: a.state_hi,
                 };
+                // An edge's own jump drives the rest of its loop within the step (a buffer
+                // after it slews to follow), so the solution's `p` holds that response,
+                // not the target: the cubic through the last four samples stands in.
+                let mut evx = ev;
+                if st.hist_n >= 4 {
+                    evx.p[4] = 4.0 * (p[3] + p[1]) - 6.0 * p[2] - p[0];
+                }
                 reversal_step(
-                    &ev,
+                    &evx,
                     cm,
                     st.rv_on[j],
                     st.rv_vp[j],
@@ -1050,6 +1064,24 @@ fn sharp_steps(
             }
             None => None,
         };
+        if edge.is_some() && st.edge_rev[j] && st.sharp[j].is_some() {
+            // a reversal edge is taken once per step, from the first settled solution:
+            // its ramps run at the slew rate whatever the target, and the direction they
+            // take flips with the hold on either side of the unstable balance (no fixed
+            // point to iterate to)
+            continue;
+        }
+        if edge.is_none() && open {
+            // the slew model's target needs the loop closed (a reversal edge's ramps do
+            // not)
+            if st.sharp[j].is_some() && !settle {
+                st.sharp[j] = None;
+                st.edge[j] = None;
+                st.edge_rev[j] = false;
+                moved = true;
+            }
+            continue;
+        }
         st.edge_rev[j] = edge.is_some();
         let r = edge.or_else(|| ev.step_if_eventful(v0, st.mode[j]));
         let want = r.map(|r| {
