@@ -205,13 +205,19 @@
 //! | 4 | -15.0 dBc | -48.5 dBc | -73.6 dBc | -73.4 dBc |
 //! | 8 | -25.5 dBc | -59.6 dBc | -81.5 dBc | -80.9 dBc |
 //!
-//! Reversal edges in such groups take the stage engine's split steps (`circuit::step`,
-//! `engine::edges::reversal_step`): a jfet-general follower whose feedback is taken after a buffer, 1 kHz at 10 V
-//! peak (2 V below the range), reads -33.2 dBc at K = 4 and -43.6 at K = 8 with an ideal
-//! buffer (-18.5 and -27.6 before), -32.9 and -26.3 with a slewing bipolar buffer (-18.6 and
-//! -22.0 before): far from the stage engine's -69.7 dBc for the same follower, not analysed
-//! yet (the generic step fixes the reversal factor from the previous step's V+, the stage
-//! engine from this step's). A Sallen-Key low-pass with a reversing part driven below its
+//! Reversal edges in such groups take the stage engine's split steps
+//! (`engine::edges::reversal_step`), with differences forced by the group: the model reads
+//! the solution once the rest of the group has settled on it, a reversal edge is decided
+//! once per step (its runaway direction flips with the hold on either side of the unstable
+//! balance: no fixed point to iterate to), and the target is read as if the op-amp's output
+//! were linear (while it is past its clamp a buffer follows the clamped node, not the
+//! state) and, for the edge itself, extrapolated from the last four samples (the edge's own
+//! jump drives the rest of its loop within the step). A jfet-general follower whose
+//! feedback is taken after a buffer, 1 kHz at 10 V peak (2 V below the range): -48.2 dBc at
+//! K = 4 and -57.6 at K = 8 with an ideal buffer (-18.5 and -27.6 before), -48.4 and -56.7
+//! with a slewing bipolar buffer (-18.6 and -22.0 before), against the stage engine's
+//! -69.7 for the same follower; with two reversing parts (both op-amps leave their range)
+//! the loop is chaotic and the figure meaningless. A Sallen-Key low-pass with a reversing part driven below its
 //! range (the part's output kicks V+ back through the first capacitor) chatters between
 //! the edges, a relaxation the model makes, not an aliasing figure.
 //! A feedback-diode clipper with the slow part (gain 2, antiparallel silicon diodes across
