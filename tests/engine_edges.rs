@@ -227,25 +227,7 @@ fn reversal_edges_are_band_limited_and_improve_with_k() {
 /// in, 6 V peak out: 3.1 times the slow part's slew rate, as in `SLEWER`.
 fn composite(out: &str) -> String {
     format!(
-        r#"
-[patch]
-noise = false
-length = "0.3 s"
-
-[rails]
-pos = "12 V"
-neg = "-12 V"
-
-[parts.slow]
-based_on = "single-supply"
-slew = "0.12 V/us"
-
-[sources.osc]
-wave = "sine"
-freq = "10 kHz"
-amp = "3 Vpk"
-
-[stages.comp]
+        r#"{}[stages.comp]
 type = "network"
 amps = [
   {{ part = "slow", plus = "osc", minus = "f", out = "y" }},
@@ -256,8 +238,14 @@ out = "{out}"
 
 [outputs.out]
 from = "comp"
-"#
+"#,
+        sources_of(SLEWER).replace("amp = \"6 Vpk\"", "amp = \"3 Vpk\"")
     )
+}
+
+/// A patch's text before its stages (settings, rails, parts, sources).
+fn sources_of(text: &str) -> &str {
+    &text[..text.find("[stages.").expect("a stage")]
 }
 
 // Slew corners of an op-amp in a multi-op-amp group (issue 16, item 1, in the network
@@ -311,21 +299,7 @@ fn a_multi_op_amp_loop_that_never_slews_is_untouched() {
 /// range) whose feedback is taken after a buffer: the group is solved by the generic step.
 fn reversing_composite(buffer: &str) -> String {
     format!(
-        r#"
-[patch]
-noise = false
-length = "0.3 s"
-
-[rails]
-pos = "12 V"
-neg = "-12 V"
-
-[sources.osc]
-wave = "sine"
-freq = "1 kHz"
-amp = "10 Vpk"
-
-[stages.comp]
+        r#"{}[stages.comp]
 type = "network"
 amps = [
   {{ part = "jfet-general", plus = "osc", minus = "z", out = "y" }},
@@ -336,7 +310,8 @@ out = "y"
 
 [outputs.out]
 from = "comp"
-"#
+"#,
+        sources_of(REVERSER)
     )
 }
 

@@ -1035,14 +1035,7 @@ fn sharp_steps(
         };
         let edge = match rev {
             Some(cm) => {
-                let sw = Swing {
-                    lo: a.shaper.lo,
-                    hi: a.shaper.hi,
-                };
-                let hold = Swing {
-                    lo: a.state_lo,
-                    hi: a.state_hi,
-                };
+                let (sw, hold) = Swing::pair(a.shaper.lo, a.shaper.hi, a.state_lo, a.state_hi);
                 // An edge's own jump drives the rest of its loop within the step (a buffer
                 // after it slews to follow), so the solution's `p` holds that response,
                 // not the target: the cubic through the last four samples stands in.

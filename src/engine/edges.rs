@@ -627,6 +627,19 @@ impl SlewStep {
     }
 }
 
+impl Swing {
+    /// An op-amp's output swing (its clamp's limits) and its state's hold.
+    pub fn pair(lo: f64, hi: f64, state_lo: f64, state_hi: f64) -> (Swing, Swing) {
+        (
+            Swing { lo, hi },
+            Swing {
+                lo: state_lo,
+                hi: state_hi,
+            },
+        )
+    }
+}
+
 /// A reversing op-amp's step through its edges, for both engines: the step in which V+
 /// leaves the input range `(cl, ch)` ramps at the slew rate from the instant it crosses the
 /// range's end ([`crossing`], on V+ at the two samples before, `vph`, and now, `vp`), held

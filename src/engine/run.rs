@@ -1279,14 +1279,7 @@ fn rev_step(
     st.rv.vp2 = st.rv.vp1;
     st.rv.vp1 = vp;
     st.rv.on = ev.f <= 0.0;
-    let sw = Swing {
-        lo: sp.shaper.lo,
-        hi: sp.shaper.hi,
-    };
-    let hold = Swing {
-        lo: sp.state_lo,
-        hi: sp.state_hi,
-    };
+    let (sw, hold) = Swing::pair(sp.shaper.lo, sp.shaper.hi, sp.state_lo, sp.state_hi);
     super::edges::reversal_step(ev, cm, was, vph, vp, v, st.mode, sw, hold)
 }
 
