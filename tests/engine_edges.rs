@@ -52,6 +52,16 @@ from = "osc"
 from = "buf"
 "#;
 
+/// The first 0.1 s of a patch's first output, with the band-limited corrections on or off.
+fn render_0s1(p: &Patch, antialias: bool) -> Vec<f64> {
+    let mut plan = railsong::engine::compile(p).expect("compiles");
+    plan.antialias = antialias;
+    let mut eng = railsong::engine::Engine::new(&plan);
+    let mut out = vec![0.0; 4800];
+    eng.process(&mut [out.as_mut_slice()]);
+    out
+}
+
 fn amp(a: &str) -> String {
     format!("sources.osc.amp={a}")
 }
@@ -89,15 +99,7 @@ fn a_stage_that_never_slews_is_untouched() {
             "sources.osc.decay=3600 s".into(),
         ],
     );
-    let run = |aa: bool| {
-        let mut plan = railsong::engine::compile(&p).expect("compiles");
-        plan.antialias = aa;
-        let mut eng = railsong::engine::Engine::new(&plan);
-        let mut out = vec![0.0; 4800];
-        eng.process(&mut [out.as_mut_slice()]);
-        out
-    };
-    let (on, off) = (run(true), run(false));
+    let (on, off) = (render_0s1(&p, true), render_0s1(&p, false));
     let diff: Vec<(usize, f64)> = on
         .iter()
         .zip(&off)
@@ -281,15 +283,7 @@ fn a_multi_op_amp_loop_that_never_slews_is_untouched() {
         "sources.osc.decay=3600 s".to_string(),
     ];
     let p = load(&composite("y"), &sets);
-    let run = |aa: bool| {
-        let mut plan = railsong::engine::compile(&p).expect("compiles");
-        plan.antialias = aa;
-        let mut eng = railsong::engine::Engine::new(&plan);
-        let mut out = vec![0.0; 4800];
-        eng.process(&mut [out.as_mut_slice()]);
-        out
-    };
-    let (on, off) = (run(true), run(false));
+    let (on, off) = (render_0s1(&p, true), render_0s1(&p, false));
     let differ = on.iter().zip(&off).filter(|(a, b)| a != b).count();
     assert_eq!(differ, 0, "{differ} samples differ");
     assert!(on[2400..].iter().any(|x| x.abs() > 1.0), "no tone");
