@@ -683,17 +683,11 @@ pub(crate) fn full_step(
     let nn = gp.nodes.len();
     let nc = gp.caps.len();
     let na = gp.amps.len();
-    let delta_inv = 1.0 / CM_DELTA;
     noise_currents(gp, st);
     // the reversal factor from the previous values, fixed for the step
     for (j, ac) in gp.amps.iter().enumerate() {
         let a = &c.amps[ac.amp];
-        let mut f = 1.0;
-        if let (Some((cl, ch)), true) = (a.cm, a.reversal) {
-            let vp = vn[a.plus];
-            f = (((vp - cl).min(ch - vp)) * delta_inv).tanh();
-        }
-        st.fs[j] = f;
+        st.fs[j] = reversing(a).map_or(1.0, |cm| input_factor(cm, vn[a.plus]));
         st.prev_pin[j] = false;
     }
     for (q, &ei) in gp.junctions.iter().enumerate() {
@@ -892,15 +886,14 @@ pub(crate) fn full_step(
         if st.sharp[j].is_none() {
             st.edge[j] = None;
         }
+        let a = &c.amps[gp.amps[j].amp];
         st.hist[j].rotate_left(1);
         // as if the output were linear (see `sharp_steps`)
         let v = st.z[nc + j];
-        let ao = &c.amps[gp.amps[j].amp];
-        st.hist[j][3] = (st.z[nc + na + j] - gp.amps[j].b * (v - vn[ao.out]), v);
-        let a = &c.amps[gp.amps[j].amp];
-        if let (Some((cl, ch)), true) = (a.cm, a.reversal) {
+        st.hist[j][3] = (st.z[nc + na + j] - gp.amps[j].b * (v - vn[a.out]), v);
+        if let Some(cm) = reversing(a) {
             let vp = vn[a.plus];
-            st.rv_on[j] = (vp - cl).min(ch - vp) <= 0.0;
+            st.rv_on[j] = input_factor(cm, vp) <= 0.0;
             st.rv_vp[j] = [st.rv_vp[j][1], vp];
         }
     }
@@ -936,6 +929,19 @@ pub(crate) fn full_step(
     Ok(())
 }
 
+/// The common-mode range of a part whose phase reverses outside it.
+#[inline]
+fn reversing(a: &super::Amp) -> Option<(f64, f64)> {
+    a.cm.filter(|_| a.reversal)
+}
+
+/// The reversal factor `tanh(m / CM_DELTA)` of V+ at `vp`, `m` its margin inside the
+/// common-mode range (negative outside), as the stage engine takes it.
+#[inline]
+fn input_factor((cl, ch): (f64, f64), vp: f64) -> f64 {
+    ((vp - cl).min(ch - vp) * (1.0 / CM_DELTA)).tanh()
+}
+
 /// Iterations of a nonlinear step after which the stiff slew model no longer lets an
 /// op-amp go back to the effective-`phi` row once it holds it (no limit cycle between the
 /// two).
@@ -968,17 +974,11 @@ fn sharp_steps(
     let mut moved = false;
     for (j, ac) in gp.amps.iter().enumerate() {
         let a = &c.amps[ac.amp];
-        let rev = match a.cm {
-            Some(r) if a.reversal => Some(r),
-            _ => None,
-        };
+        let rev = reversing(a);
         let vp = val(gp, vn, &st.ynew, a.plus);
         // the input factor at the step's end (the stage engine's convention); 1 unless
         // the part reverses
-        let f = match rev {
-            Some((cl, ch)) => (((vp - cl).min(ch - vp)) * (1.0 / CM_DELTA)).tanh(),
-            None => st.fs[j],
-        };
+        let f = rev.map_or(st.fs[j], |cm| input_factor(cm, vp));
         if ac.explicit || (f <= 0.0 && rev.is_none()) {
             continue;
         }
@@ -988,9 +988,9 @@ fn sharp_steps(
         // The model takes the target `p = Vd + b v` as independent of the op-amp's own
         // output, which holds while the other op-amps of its loop follow it as the loop
         // factor assumes. Not when one of them is held (slewing itself, or at its swing):
-        // the loop is then open, and the effective-phi step takes it.
-        // the output past its clamp's knee is the state clamp's business, not an open loop
-        // (as the loop factor is taken): the target is read as if the output were linear
+        // the loop is then open, and the effective-phi step takes it. The op-amp's own
+        // output past its clamp's knee is the state clamp's business, not an open loop (as
+        // the loop factor is taken): the target is read as if the output were linear.
         let own_flat = st.outs[j].0 < 1.0;
         let open = na > 1 && !own_flat && {
             st.rhs.fill(0.0);
@@ -1008,18 +1008,15 @@ fn sharp_steps(
         let pend = pe - val(gp, vn, &st.ynew, a.minus) + a.vos + en_of(gp, st, j) + bd * vend
             - bd * (vend - val(gp, vn, &st.ynew, a.out));
         // the stored p of each step uses the compiled loop factor: re-split with this one
+        let resplit = |(zp, v): (f64, f64)| zp + (bd - ac.b) * v;
         let mut p = [0.0; 5];
         p[4] = pend;
-        p[3] = if st.hist_n >= 1 {
-            let (zp, v) = st.hist[j][3];
-            zp + (bd - ac.b) * v
-        } else {
-            st.z[nc + na + j] + (bd - ac.b) * v0
-        };
-        for i in (0..3).rev() {
+        for i in (0..4).rev() {
             p[i] = if i + st.hist_n >= 4 {
-                let (zp, v) = st.hist[j][i];
-                zp + (bd - ac.b) * v
+                resplit(st.hist[j][i])
+            } else if i == 3 {
+                // no nonlinear step before: the state the linear steps left
+                resplit((st.z[nc + na + j], v0))
             } else {
                 // before the history: the line through the later two
                 2.0 * p[i + 1] - p[i + 2]

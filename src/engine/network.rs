@@ -421,23 +421,14 @@ pub(crate) fn net_block(
                 }
             }
             if !done {
-                let gibbs = crate::engine::shaper::GIBBS * (sh.hi - sh.lo);
                 let mut h = nr.xh;
                 let mut oh = nr.oh;
                 for (t, (o, &xn)) in own.iter_mut().zip(x).enumerate() {
                     let win: [f64; WINDOW] = std::array::from_fn(|i| if i < H { h[i] } else { xn });
-                    let xc = h[LOOKAHEAD];
-                    *o = if oh[LOOKAHEAD].1 {
-                        // a reversal edge in the window: the static clamp plus its
-                        // corrections, bounded as the band-limited clamp's own value
-                        (sh.apply(xc) + oh[LOOKAHEAD].0).clamp(sh.lo - gibbs, sh.hi + gibbs)
-                    } else if sh.inside7(&win) {
-                        xc
-                    } else if antialias {
-                        sh.smooth7(&win)
-                    } else {
-                        sh.apply(xc)
-                    };
+                    // a reversal edge in the window: the static clamp plus its corrections
+                    let (add, edge) = oh[LOOKAHEAD];
+                    let over = edge.then(|| sh.apply(h[LOOKAHEAD]) + add);
+                    *o = sh.output7(&win, over, antialias);
                     h.copy_within(1.., 0);
                     h[H - 1] = xn;
                     oh.copy_within(1.., 0);

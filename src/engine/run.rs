@@ -1756,21 +1756,11 @@ fn shape_block(
     }
     let mut clip = 0u64;
     let mut oh = st.rv.oh;
-    let gibbs = super::shaper::GIBBS * (sh.hi - sh.lo);
     for (t, (o, &xn)) in out.iter_mut().zip(x).enumerate() {
         let win: [f64; WINDOW] = std::array::from_fn(|i| if i < H { h[i] } else { xn });
         let xc = h[LOOKAHEAD];
         let oc = oh[LOOKAHEAD];
-        *o = if !oc.is_nan() {
-            // bounded as the clamp's own band-limited value (`Shaper::smooth7`)
-            oc.clamp(sh.lo - gibbs, sh.hi + gibbs)
-        } else if sh.inside7(&win) {
-            xc
-        } else if aa {
-            sh.smooth7(&win)
-        } else {
-            sh.apply(xc)
-        };
+        *o = sh.output7(&win, (!oc.is_nan()).then_some(oc), aa);
         let c = sh.clipping(xc);
         if c && st.first_clip.is_none() {
             st.first_clip = Some(start + t as u64);

@@ -396,6 +396,27 @@ impl Shaper {
             & (x[2].max(x[3]).max(x[4]) + m < self.hi - self.w)
     }
 
+    /// The clamp's output for the window `x` (its centre, `x[LOOKAHEAD]`, is the sample
+    /// out): `over`, a value the caller sets instead (the static clamp plus corrections
+    /// around a reversal edge), bounded as the band-limited value may be; else the centre
+    /// inside the linear region ([`Shaper::inside7`]), else the band-limited clamp
+    /// ([`Shaper::smooth7`], `aa`) or the static one. Both engines' output stages.
+    #[inline]
+    pub fn output7(&self, x: &[f64; WINDOW], over: Option<f64>, aa: bool) -> f64 {
+        if let Some(o) = over {
+            let g = GIBBS * (self.hi - self.lo);
+            return o.clamp(self.lo - g, self.hi + g);
+        }
+        let xc = x[LOOKAHEAD];
+        if self.inside7(x) {
+            xc
+        } else if aa {
+            self.smooth7(x)
+        } else {
+            self.apply(xc)
+        }
+    }
+
     /// Band-limited output at the sample with drive `x[3]`, from the [`LOOKAHEAD`] samples
     /// before and after it: as [`Shaper::smooth`] with the drive taken as the polynomial of
     /// degree 6 through the seven samples; see the module documentation. The kernel's support
