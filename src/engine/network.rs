@@ -443,13 +443,8 @@ pub(crate) fn net_block(
             }
         }
         None => {
-            let mut h = nr.xh;
-            for (o, &xn) in own.iter_mut().zip(x) {
-                *o = h[H - LOOKAHEAD];
-                h.copy_within(1.., 0);
-                h[H - 1] = xn;
-            }
-            nr.xh = h;
+            // a passive output: the drive, LOOKAHEAD samples late
+            delay_block(&mut nr.xh, LOOKAHEAD, x, own);
         }
     }
     if edges {
@@ -458,5 +453,53 @@ pub(crate) fn net_block(
     match err {
         Some(e) => Err(e),
         None => Ok(()),
+    }
+}
+
+/// `out` is `x` delayed by `d <= N` samples: the first from the newest of `hist` (the last
+/// `N` samples before the block, oldest first), which then takes the block's last.
+pub(crate) fn delay_block<const N: usize>(
+    hist: &mut [f64; N],
+    d: usize,
+    x: &[f64],
+    out: &mut [f64],
+) {
+    let b = x.len();
+    if b >= N {
+        out[..d].copy_from_slice(&hist[N - d..]);
+        out[d..b].copy_from_slice(&x[..b - d]);
+        hist.copy_from_slice(&x[b - N..]);
+    } else {
+        for (o, &xn) in out.iter_mut().zip(x) {
+            *o = hist[N - d];
+            hist.copy_within(1.., 0);
+            hist[N - 1] = xn;
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The block copy and the sample-by-sample shift agree, over blocks of any length.
+    #[test]
+    fn delay_block_is_a_plain_delay() {
+        let xs: Vec<f64> = (0..200).map(|i| (i as f64 * 0.37).sin()).collect();
+        for d in [LOOKAHEAD, H] {
+            let mut hist = [0.0; H];
+            let mut out = Vec::new();
+            let mut at = 0;
+            for b in [1, 2, 7, 6, 40, 3, 100, 41] {
+                let mut o = vec![0.0; b];
+                delay_block(&mut hist, d, &xs[at..at + b], &mut o);
+                out.extend(o);
+                at += b;
+            }
+            for (i, &o) in out.iter().enumerate() {
+                let want = if i >= d { xs[i - d] } else { 0.0 };
+                assert_eq!(o, want, "delay {d}, sample {i}");
+            }
+        }
     }
 }

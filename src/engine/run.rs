@@ -870,11 +870,12 @@ impl Engine {
                     for (k, &(_, eb)) in np.exports.iter().enumerate() {
                         let dst = &mut self.bufs[eb][hist..hist + b];
                         let ring = &mut nr.ex_hist[k];
-                        for (o, &x) in dst.iter_mut().zip(&nr.ex_vals[k]) {
-                            *o = ring[0];
-                            ring.copy_within(1.., 0);
-                            ring[LOOKAHEAD - 1] = x;
-                        }
+                        crate::engine::network::delay_block(
+                            ring,
+                            LOOKAHEAD,
+                            &nr.ex_vals[k][..b],
+                            dst,
+                        );
                     }
                     if let Err(e) = r {
                         if self.failure.is_none() {
