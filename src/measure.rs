@@ -327,7 +327,9 @@ pub const REFERENCES: References = References {
     dc: "mean of the record",
     peak: "the circuit: the op-amp's own output after its swing clamp, through the output \
            divider; headroom against the stage's swing limits",
-    file_peak: "the rendered file: band-limited, so it may overshoot the circuit's peak",
+    file_peak:
+        "the output at the file's rate: band-limited, so it may overshoot the circuit's peak; \
+                before the edge fade and any listening gain",
     capture: "spectral figures skip the settle time (14 slowest time constants of the \
               circuit after the last source switch-on, at least 50 ms) and take a coherent \
               capture from what follows; levels cover the whole record",

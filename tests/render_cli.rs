@@ -235,3 +235,47 @@ fn files_fade_at_their_edges_and_the_figures_do_not() {
     assert_eq!(bad.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&bad.stderr).contains("--fade"));
 }
+
+/// The peaks `render` prints: `band-limited` is the output at the file's rate before the
+/// edge fade and the listening gain (the figures' record), `file` the samples written. The
+/// file's own peak, read back and scaled by the calibration, must be the one printed.
+#[test]
+fn the_printed_file_peak_is_the_files_own() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("hot");
+    let o = railsong(&[
+        "render",
+        "patches/hot-inputs.toml",
+        "--out",
+        out.to_str().unwrap(),
+        "--depth",
+        "float",
+        "--listen",
+        "-20",
+    ]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let text = String::from_utf8_lossy(&o.stdout);
+    let line = text
+        .lines()
+        .find(|l| l.trim_start().starts_with("main.wav:"))
+        .unwrap_or_else(|| panic!("no line for main.wav in {text}"));
+    let volts = |key: &str| -> f64 {
+        let at = line.find(key).unwrap_or_else(|| panic!("{key} in {line}")) + key.len();
+        let word: String = line[at..]
+            .chars()
+            .take_while(|c| c.is_ascii_digit() || *c == '.')
+            .collect();
+        word.parse().unwrap()
+    };
+    let (_, s) = read_wav(&out.join("main.wav"));
+    let full_scale = 15.0; // the patch's calibration (the larger rail)
+    let peak = s.iter().fold(0.0f64, |a, &x| a.max(x.abs())) * full_scale;
+    let printed = volts("file ");
+    // printed to four significant figures
+    assert!(
+        (printed - peak).abs() <= 5e-4 * peak,
+        "{line}: file read back {peak}"
+    );
+    // the listening gain lowers the file below the band-limited record
+    assert!(volts("band-limited ") > 2.0 * printed, "{line}");
+}

@@ -252,12 +252,23 @@ pub(crate) fn load_side(path: &Path, name: &str, sets: &[String]) -> Result<Patc
     }
 }
 
-/// `" (file X)"` when the file's band-limited peak differs from the circuit's by more than
-/// 0.1 %, else nothing.
-pub(crate) fn file_peak_note(f: &railsong::analysis::OutputFigures) -> String {
-    match (f.peak_v, f.file_peak_v) {
-        (Some(c), Some(p)) if (p - c).abs() > 1e-3 * c.abs().max(1e-9) => {
-            format!(" (file {})", fmt_eng(p, "V"))
+/// `" (band-limited X)"` when the peak of the output at the file's rate (band-limited, so it
+/// may overshoot; before any edge fade) differs from the circuit's by more than 0.1 %, and
+/// `", file Y"` inside it when `file` (the peak of the samples written, V at the file's
+/// calibration) differs from that by more than 0.1 % (an edge fade or a listening gain);
+/// else nothing.
+pub(crate) fn file_peak_note(f: &railsong::analysis::OutputFigures, file: Option<f64>) -> String {
+    let differs = |a: f64, b: f64| (a - b).abs() > 1e-3 * b.abs().max(1e-9);
+    let Some(p) = f.file_peak_v else {
+        return String::new();
+    };
+    let written = file
+        .filter(|&w| differs(w, p))
+        .map(|w| format!(", file {}", fmt_eng(w, "V")))
+        .unwrap_or_default();
+    match f.peak_v {
+        Some(c) if differs(p, c) || !written.is_empty() => {
+            format!(" (band-limited {}{written})", fmt_eng(p, "V"))
         }
         _ => String::new(),
     }

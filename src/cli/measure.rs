@@ -90,7 +90,7 @@ pub(crate) fn print_table(patch: &Patch, m: &measure::Measurement) {
         say!(
             "  level       peak {}{}  rms {} (AC)  dc {}  crest {}  ({} / {} / {})",
             opt(f.peak_v, " V", 3),
-            file_peak_note(f),
+            file_peak_note(f, None),
             opt(f.rms_v, " V", 3),
             opt(f.dc_v.map(|d| d * 1e3), " mV", 2),
             opt(f.crest_db, " dB", 1),

@@ -79,18 +79,22 @@ pub(crate) fn render_to(
     // The files fade in and out at their edges; the figures see the unfaded signal.
     let fade = flags.edge_fade(patch.frames(), patch.rate)?;
     let mut written = vec![0usize; files.len()];
+    // the peak of the samples written, V at the file's calibration
+    let mut file_peak = vec![0.0f64; files.len()];
     let mut scratch: Vec<f64> = Vec::new();
     let (_, m) = measure_streamed(patch, &Settings::default(), None, true, &mut |i, x| {
         let start = written[i];
         written[i] += x.len();
-        if gains[i] == 1.0 && !fade.touches(start, x.len()) {
-            files[i].write(x)
+        let w: &[f64] = if gains[i] == 1.0 && !fade.touches(start, x.len()) {
+            x
         } else {
             scratch.clear();
             scratch.extend(x.iter().map(|v| v * gains[i]));
             fade.apply(start, &mut scratch);
-            files[i].write(&scratch)
-        }
+            &scratch
+        };
+        file_peak[i] = w.iter().fold(file_peak[i], |a, &v| a.max(v.abs()));
+        files[i].write(w)
     })?;
     let mut stats = Vec::new();
     for f in files {
@@ -121,7 +125,7 @@ pub(crate) fn render_to(
             "  {}: peak {}{}  rms {} (AC)  headroom {} / {}{}{}",
             name,
             f.peak_v.map_or("-".into(), |v| fmt_eng(v, "V")),
-            file_peak_note(f),
+            file_peak_note(f, Some(file_peak[k])),
             f.rms_v.map_or("-".into(), |v| fmt_eng(v, "V")),
             db_or_dash(f.headroom_pos_db, "to +swing"),
             db_or_dash(f.headroom_neg_db, "to -swing"),
