@@ -271,8 +271,8 @@ pub struct OutputFigures {
     /// Peak |x|, V: the circuit's own peak where the caller knows it (`measure`: the
     /// op-amp's output after its clamp), else the record's.
     pub peak_v: Option<f64>,
-    /// Peak |x| of the record (the rendered file, band-limited: it may overshoot the
-    /// circuit's peak), V.
+    /// Peak |x| of the record (the output at the file's rate, band-limited: it may
+    /// overshoot the circuit's peak; before a file's edge fade and listening gain), V.
     pub file_peak_v: Option<f64>,
     /// AC RMS (about the mean, DC excluded: DC is `dc_v`), V.
     pub rms_v: Option<f64>,
