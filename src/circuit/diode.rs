@@ -138,6 +138,10 @@ pub struct DiodeTable {
     pub seg: Vec<f64>,
     /// Values per sub-interval.
     pub stride: usize,
+    /// Per sub-interval, per junction: the integral of the table's `c` along its line from
+    /// the table's start to the sub-interval's start (`nj` values each), A V; with the
+    /// local quartic, the antiderivative of the interpolant ([`DiodeTable::integral`]).
+    pub cum: Vec<f64>,
 }
 
 /// Values before the polynomials in a sub-interval of [`DiodeTable::seg`].
@@ -469,6 +473,19 @@ impl DiodeStep {
                 slot.push((first + i / (per_cell / m)) as u16);
             }
         }
+        // the running integral of each junction's cubic over the sub-intervals (in order
+        // of `s`, each starting where the one before ends)
+        let nsub = seg.len() / stride;
+        let mut cum = Vec::with_capacity(nsub * nj);
+        let mut run = [0.0f64; MAX_J];
+        for sg in seg.chunks_exact(stride) {
+            cum.extend_from_slice(&run[..nj]);
+            let width = 1.0 / sg[1];
+            for (q, r) in run.iter_mut().enumerate().take(nj) {
+                let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
+                *r += width * (p[0] + p[1] / 2.0 + p[2] / 3.0 + p[3] / 4.0);
+            }
+        }
         Some(DiodeTable {
             a,
             w,
@@ -482,6 +499,7 @@ impl DiodeStep {
             slot,
             seg,
             stride,
+            cum,
         })
     }
 
@@ -655,6 +673,7 @@ impl DiodeStep {
         n: usize,
         t0: f64,
         h: f64,
+        mut tap: Option<&mut [f64]>,
     ) -> Result<bool, (CircuitError, usize)> {
         let nz = self.ncol - 2;
         let nc = gp.caps.len();
@@ -669,7 +688,11 @@ impl DiodeStep {
                 nw += 1;
             }
         }
-        if xs.len() < n || nc != nz || st.z.len() != nz {
+        if xs.len() < n
+            || nc != nz
+            || st.z.len() != nz
+            || tap.as_ref().is_some_and(|t| t.len() < 2 * n)
+        {
             return Ok(false);
         }
         let a = TableRun {
@@ -686,9 +709,25 @@ impl DiodeStep {
         macro_rules! go {
             ($nj:literal, $nz:literal, $nc:literal, $w:literal, $p:literal) => {
                 if small {
-                    self.table_loop::<$nj, $nz, $nc, $w, $p, 4>(&a, vn, st, counts, slots, hist)
+                    self.table_loop::<$nj, $nz, $nc, $w, $p, 4>(
+                        &a,
+                        vn,
+                        st,
+                        counts,
+                        slots,
+                        hist,
+                        tap.as_deref_mut(),
+                    )
                 } else {
-                    self.table_loop::<$nj, $nz, $nc, $w, $p, 8>(&a, vn, st, counts, slots, hist)
+                    self.table_loop::<$nj, $nz, $nc, $w, $p, 8>(
+                        &a,
+                        vn,
+                        st,
+                        counts,
+                        slots,
+                        hist,
+                        tap.as_deref_mut(),
+                    )
                 }
             };
         }
@@ -728,6 +767,7 @@ impl DiodeStep {
         counts: &mut (u64, u64),
         slots: &mut [Vec<f64>],
         hist: &mut DiodeHist,
+        mut tap: Option<&mut [f64]>,
     ) -> Result<(), (CircuitError, usize)> {
         let nw = a.wr.len();
         assert!(NC == NZ + 2 && W == NC + NJ && NJ <= MAX_J && self.nj == NJ && self.ncol == NC);
@@ -873,6 +913,8 @@ impl DiodeStep {
                 lin &= v <= vth[q];
             }
             let mut cc = [0.0f64; NJ];
+            // the record for the knee correction: the coordinate, and how the step went
+            let mut kind = crate::engine::knee::tap::OFF;
             if lin {
                 nlin += 1;
             } else {
@@ -899,7 +941,9 @@ impl DiodeStep {
                 if let (Some((base, tt)), true) = (found, near) {
                     let c4 = seg_eval(&tab.seg[base..base + stride], NJ, tt, &r);
                     cc.copy_from_slice(&c4[..NJ]);
+                    kind = crate::engine::knee::tap::ON;
                 } else {
+                    kind = crate::engine::knee::tap::OTHER;
                     let mut v04 = [0.0f64; MAX_J];
                     for q in 0..NJ {
                         v04[q] = (0..NC).map(|j| v0m[q][j] * uc[j]).sum();
@@ -921,6 +965,10 @@ impl DiodeStep {
                         }
                     }
                 }
+            }
+            if let Some(tp) = tap.as_deref_mut() {
+                tp[2 * t] = proj[0];
+                tp[2 * t + 1] = kind;
             }
             uc[NC..].copy_from_slice(&cc);
             cppp = cpp;
@@ -1093,6 +1141,24 @@ impl DiodeTable {
         // SAFETY: 0 <= xf < slot.len() (checked just above): the cast is exact.
         let i = unsafe { xf.to_int_unchecked::<i64>() } as usize;
         Some(self.slot[i] as usize * self.stride)
+    }
+
+    /// The antiderivative along the table's line of each junction's `c` at `s` (on the
+    /// line: the state at zero), from the table's start, A V: exact for the interpolant
+    /// (the integral of its cubic in each sub-interval). `None` outside the table.
+    #[inline(always)]
+    pub fn integral(&self, nj: usize, s: f64) -> Option<[f64; MAX_J]> {
+        let (base, t) = self.locate(s)?;
+        let sg = &self.seg[base..base + self.stride];
+        let j = base / self.stride;
+        let width = 1.0 / sg[1];
+        let mut out = [0.0f64; MAX_J];
+        for (q, o) in out.iter_mut().enumerate().take(nj) {
+            let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
+            let poly = p[0] + t * (p[1] / 2.0 + t * (p[2] / 3.0 + t * (p[3] / 4.0)));
+            *o = self.cum[j * nj + q] + width * t * poly;
+        }
+        Some(out)
     }
 
     /// The junction currents `c = I + is` for open-circuit junction voltages `v0` (see the

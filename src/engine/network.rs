@@ -1,9 +1,11 @@
 //! Network stages in the engine: the compiled circuit of each network, its inputs and
 //! outputs as engine buffers, and its block processing.
 
+use crate::circuit::diode::MAX_J;
 use crate::circuit::plan::CircuitPlan;
 use crate::circuit::small::{run_block, BlockIo, DriveEdges, KernelRun, SmallKernel};
 use crate::circuit::step::CircuitState;
+use crate::engine::knee::{tap as knee_tap, KneeAa, HIST as KNEE_HIST};
 use crate::engine::noise::{stream_seed, NoiseStream, FLICKER_MIN_RATE};
 use crate::engine::shaper::{LOOKAHEAD, WINDOW};
 
@@ -57,6 +59,8 @@ pub struct NetPlan {
     pub writes: Vec<Vec<usize>>,
     /// The group and in-group index of the op-amp driving the output.
     pub drive: Option<(usize, usize)>,
+    /// The band-limited diode knees of a passive output in a memoryless diode group.
+    pub knee: Option<KneeAa>,
 }
 
 impl NetPlan {
@@ -99,6 +103,7 @@ impl NetPlan {
             .iter()
             .map(|g| SmallKernel::compile(c, g, &needed))
             .collect();
+        self.knee = self.knee_of_output();
         self.drive = self.out_amp.and_then(|a| {
             self.circuit
                 .groups
@@ -106,6 +111,35 @@ impl NetPlan {
                 .enumerate()
                 .find_map(|(gi, g)| g.amps.iter().position(|ac| ac.amp == a).map(|j| (gi, j)))
         });
+    }
+}
+
+impl NetPlan {
+    /// The knee correction of the output, when the output is a node of a diode group with
+    /// the table (no op-amp, one varying input, no noise) and no op-amp drives it.
+    fn knee_of_output(&self) -> Option<KneeAa> {
+        if self.out_amp.is_some() {
+            return None;
+        }
+        let (gi, gp) = self
+            .circuit
+            .groups
+            .iter()
+            .enumerate()
+            .find(|(_, g)| g.col[self.out].is_some_and(|i| i < g.nodes.len()))?;
+        let k = self.kernels[gi].as_ref()?;
+        let ds = k.diode.as_ref()?;
+        ds.table.as_ref()?;
+        if k.nk != 1 || k.nw != 0 {
+            return None;
+        }
+        let nj = ds.nj;
+        let (nz, ncol) = (ds.ncol - 2, ds.ncol);
+        let w = ncol + nj;
+        let row = &ds.rows[(nz + gp.col[self.out]?) * w..][..w];
+        let mut g = [0.0; MAX_J];
+        g[..nj].copy_from_slice(&row[ncol..]);
+        Some(KneeAa { group: gi, nj, g })
     }
 }
 
@@ -148,6 +182,9 @@ pub(crate) struct NetRun {
     pub(crate) slots: Vec<Vec<f64>>,
     /// One group's noise draws for the block, interleaved.
     pub(crate) wbuf: Vec<f64>,
+    /// The knee correction's record of the diode group's table loop ([`crate::engine::knee::tap`]:
+    /// two values per sample): its last [`KNEE_HIST`] samples, then the block's.
+    pub(crate) knee_tap: Vec<f64>,
 }
 
 impl NetRun {
@@ -173,6 +210,14 @@ impl NetRun {
                 })
                 .collect(),
             slots: vec![vec![0.0; block]; np.circuit.circuit.nodes.len() + 1],
+            knee_tap: vec![
+                0.0;
+                if np.knee.is_some() {
+                    2 * (block + KNEE_HIST)
+                } else {
+                    0
+                }
+            ],
             wbuf: vec![
                 0.0;
                 block
@@ -204,6 +249,10 @@ impl NetRun {
             *p = [np.rest.vn[n]; LOOKAHEAD];
         }
         self.peaks.fill((f64::INFINITY, f64::NEG_INFINITY));
+        // nothing recorded yet: no correction until the table's loop has run
+        for r in self.knee_tap.chunks_exact_mut(2) {
+            r.copy_from_slice(&[0.0, knee_tap::OTHER]);
+        }
         for k in self.kruns.iter_mut().flatten() {
             k.reset();
         }
@@ -323,12 +372,25 @@ pub(crate) fn net_block(
             _ => None,
         };
         let drive = np.drive.filter(|d| d.0 == gi).map(|d| d.1);
+        // the knee correction's record of this block (marked "not from the table" until
+        // the table's loop writes it)
+        let knee = match &np.knee {
+            Some(kn) if antialias && kn.group == gi => {
+                let t = &mut nr.knee_tap[2 * KNEE_HIST..2 * (KNEE_HIST + b)];
+                for r in t.chunks_exact_mut(2) {
+                    r[1] = knee_tap::OTHER;
+                }
+                Some(t)
+            }
+            _ => None,
+        };
         let mut io = BlockIo {
             slots: &mut nr.slots,
             writes: &np.writes[gi],
             drive,
             w: &nr.wbuf[..b * nw],
             edges: (antialias && drive.is_some()).then_some(&mut nr.edges),
+            knee,
         };
         let r = run_block(
             c,
@@ -377,6 +439,24 @@ pub(crate) fn net_block(
     }
     for (k, &(n, _)) in np.exports.iter().enumerate() {
         nr.ex_vals[k][..b].copy_from_slice(&nr.slots[n][..b]);
+    }
+    // the diode knees of a passive output (after the exports: they read the solved node)
+    if let (Some(kn), true, true) = (&np.knee, antialias, limit == b) {
+        let tab = np.kernels[kn.group]
+            .as_ref()
+            .and_then(|k| k.diode.as_ref())
+            .and_then(|d| d.table.as_ref());
+        if let Some(tab) = tab {
+            let mut pending = [nr.xh[H - 2], nr.xh[H - 1]];
+            kn.apply(
+                tab,
+                &nr.knee_tap[..2 * (b + KNEE_HIST)],
+                &mut pending,
+                &mut nr.slots[np.out][..b],
+            );
+            [nr.xh[H - 2], nr.xh[H - 1]] = pending;
+        }
+        nr.knee_tap.copy_within(2 * b..2 * (b + KNEE_HIST), 0);
     }
     let drive_slot = match np.drive {
         Some(_) => nnodes,

@@ -523,6 +523,7 @@ fn compile_network(
         kernels: Vec::new(),
         writes: Vec::new(),
         drive: None,
+        knee: None,
     };
     np.attach_kernels();
     Ok(np)
