@@ -138,14 +138,20 @@ pub struct DiodeTable {
     pub seg: Vec<f64>,
     /// Values per sub-interval.
     pub stride: usize,
-    /// Per sub-interval, per junction: the integral of the table's `c` along its line from
-    /// the table's start to the sub-interval's start (`nj` values each), A V; with the
-    /// local quartic, the antiderivative of the interpolant ([`DiodeTable::integral`]).
-    pub cum: Vec<f64>,
+    /// The antiderivative of the interpolant along the table's line
+    /// ([`DiodeTable::integral`]), per sub-interval ([`ISEG_HEAD`] `+ 5 nj` values): its
+    /// start and `1 / width`, then per junction the integral of `c` from the table's start
+    /// to the sub-interval's start, A V, and the quartic in the local `t` that adds the
+    /// rest (coefficients of `t .. t^4`).
+    pub iseg: Vec<f64>,
 }
 
 /// Values before the polynomials in a sub-interval of [`DiodeTable::seg`].
 pub const SEG_HEAD: usize = 2;
+
+/// Values before the junctions' antiderivatives in a sub-interval of
+/// [`DiodeTable::iseg`].
+pub const ISEG_HEAD: usize = 2;
 
 /// Values per sub-interval of [`DiodeTable::seg`] for `nj` junctions.
 pub const fn seg_stride(nj: usize) -> usize {
@@ -476,14 +482,22 @@ impl DiodeStep {
         // the running integral of each junction's cubic over the sub-intervals (in order
         // of `s`, each starting where the one before ends)
         let nsub = seg.len() / stride;
-        let mut cum = Vec::with_capacity(nsub * nj);
+        let mut iseg = Vec::with_capacity(nsub * (ISEG_HEAD + 5 * nj));
         let mut run = [0.0f64; MAX_J];
         for sg in seg.chunks_exact(stride) {
-            cum.extend_from_slice(&run[..nj]);
+            iseg.extend_from_slice(&sg[..2]);
             let width = 1.0 / sg[1];
             for (q, r) in run.iter_mut().enumerate().take(nj) {
                 let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
-                *r += width * (p[0] + p[1] / 2.0 + p[2] / 3.0 + p[3] / 4.0);
+                let a = [
+                    width * p[0],
+                    width * p[1] / 2.0,
+                    width * p[2] / 3.0,
+                    width * p[3] / 4.0,
+                ];
+                iseg.push(*r);
+                iseg.extend_from_slice(&a);
+                *r += a.iter().sum::<f64>();
             }
         }
         Some(DiodeTable {
@@ -499,7 +513,7 @@ impl DiodeStep {
             slot,
             seg,
             stride,
-            cum,
+            iseg,
         })
     }
 
@@ -673,7 +687,7 @@ impl DiodeStep {
         n: usize,
         t0: f64,
         h: f64,
-        mut tap: Option<&mut [f64]>,
+        mut tap: Option<&mut crate::engine::knee::Tap>,
     ) -> Result<bool, (CircuitError, usize)> {
         let nz = self.ncol - 2;
         let nc = gp.caps.len();
@@ -691,7 +705,9 @@ impl DiodeStep {
         if xs.len() < n
             || nc != nz
             || st.z.len() != nz
-            || tap.as_ref().is_some_and(|t| t.len() < 2 * n)
+            || tap
+                .as_ref()
+                .is_some_and(|t| t.rec.len() < crate::engine::knee::REC * n)
         {
             return Ok(false);
         }
@@ -750,8 +766,9 @@ impl DiodeStep {
     /// [`DiodeStep::run_table_block`] for `NJ` junctions and `NZ` states (`NC = NZ + 2`
     /// columns of `u`, `W = NC + NJ` of `[u, c]`), the per-sample maps as columns of `P`
     /// (projections: `NJ + 1` used) and `Q` (new state and written nodes) lanes in
-    /// fixed-size arrays (the compiler's vector code).
-    #[allow(clippy::needless_range_loop)]
+    /// fixed-size arrays (the compiler's vector code); `tap` records each sample for the knee
+    /// correction (`engine::knee`).
+    #[allow(clippy::needless_range_loop, clippy::too_many_arguments)]
     fn table_loop<
         const NJ: usize,
         const NZ: usize,
@@ -767,7 +784,7 @@ impl DiodeStep {
         counts: &mut (u64, u64),
         slots: &mut [Vec<f64>],
         hist: &mut DiodeHist,
-        mut tap: Option<&mut [f64]>,
+        mut tap: Option<&mut crate::engine::knee::Tap>,
     ) -> Result<(), (CircuitError, usize)> {
         let nw = a.wr.len();
         assert!(NC == NZ + 2 && W == NC + NJ && NJ <= MAX_J && self.nj == NJ && self.ncol == NC);
@@ -915,6 +932,7 @@ impl DiodeStep {
             let mut cc = [0.0f64; NJ];
             // the record for the knee correction: the coordinate, and how the step went
             let mut kind = crate::engine::knee::tap::OFF;
+            let mut rline = 0.0;
             if lin {
                 nlin += 1;
             } else {
@@ -939,9 +957,17 @@ impl DiodeStep {
                     found = tab.locate(sv);
                 }
                 if let (Some((base, tt)), true) = (found, near) {
-                    let c4 = seg_eval(&tab.seg[base..base + stride], NJ, tt, &r);
+                    let sg = &tab.seg[base..base + stride];
+                    let c4 = seg_eval(sg, NJ, tt, &r);
                     cc.copy_from_slice(&c4[..NJ]);
                     kind = crate::engine::knee::tap::ON;
+                    if let Some(tp) = tap.as_deref() {
+                        // the currents' part of the output along the line
+                        for q in 0..NJ {
+                            let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
+                            rline += tp.g[q] * ((p[0] + p[1] * tt) + tt * tt * (p[2] + p[3] * tt));
+                        }
+                    }
                 } else {
                     kind = crate::engine::knee::tap::OTHER;
                     let mut v04 = [0.0f64; MAX_J];
@@ -967,8 +993,8 @@ impl DiodeStep {
                 }
             }
             if let Some(tp) = tap.as_deref_mut() {
-                tp[2 * t] = proj[0];
-                tp[2 * t + 1] = kind;
+                let rec = &mut tp.rec[crate::engine::knee::REC * t..][..3];
+                rec.copy_from_slice(&[proj[0], kind, rline]);
             }
             uc[NC..].copy_from_slice(&cc);
             cppp = cpp;
@@ -1148,15 +1174,20 @@ impl DiodeTable {
     /// (the integral of its cubic in each sub-interval). `None` outside the table.
     #[inline(always)]
     pub fn integral(&self, nj: usize, s: f64) -> Option<[f64; MAX_J]> {
-        let (base, t) = self.locate(s)?;
-        let sg = &self.seg[base..base + self.stride];
-        let j = base / self.stride;
-        let width = 1.0 / sg[1];
+        let xf = (s - self.s0) * self.inv_hf;
+        if !(xf >= 0.0 && xf < self.slot.len() as f64) {
+            return None;
+        }
+        // SAFETY: 0 <= xf < slot.len() (checked just above): the cast is exact.
+        let i = unsafe { xf.to_int_unchecked::<i64>() } as usize;
+        let w = ISEG_HEAD + 5 * nj;
+        let j = self.slot[i] as usize;
+        let sg = &self.iseg[j * w..(j + 1) * w];
+        let t = ((s - sg[0]) * sg[1]).clamp(0.0, 1.0);
         let mut out = [0.0f64; MAX_J];
         for (q, o) in out.iter_mut().enumerate().take(nj) {
-            let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
-            let poly = p[0] + t * (p[1] / 2.0 + t * (p[2] / 3.0 + t * (p[3] / 4.0)));
-            *o = self.cum[j * nj + q] + width * t * poly;
+            let a = &sg[ISEG_HEAD + 5 * q..ISEG_HEAD + 5 * q + 5];
+            *o = a[0] + t * (a[1] + t * (a[2] + t * (a[3] + t * a[4])));
         }
         Some(out)
     }

@@ -658,8 +658,8 @@ pub struct BlockIo<'a> {
     /// Band-limited corrections of the drive's slope corners (none: not taken).
     pub edges: Option<&'a mut DriveEdges>,
     /// Where a diode group's table loop records each sample for the knee correction
-    /// (`engine::knee::tap`, two values per sample), when it is taken.
-    pub knee: Option<&'a mut [f64]>,
+    /// (`engine::knee::Tap`), when it is taken.
+    pub knee: Option<crate::engine::knee::Tap<'a>>,
 }
 
 /// The band-limited corrections of a network drive's slope corners over a block, entry `i`
@@ -798,7 +798,7 @@ pub fn run_block(
                     n,
                     t0,
                     h,
-                    io.knee.as_deref_mut(),
+                    io.knee.as_mut(),
                 )?;
                 if done {
                     kr.stale = false;

@@ -39,7 +39,8 @@ pub const HIST: usize = 4;
 const MIN_SPAN: f64 = 1e-5;
 
 /// What the table's block loop records per sample for the correction ([`KneeAa::apply`]):
-/// the table's coordinate `s`, then a flag.
+/// [`REC`] values, the table's coordinate `s`, a flag, and the currents' part of the output
+/// the step took along the table's line (`r(s)`; 0 for a linear step, whose currents are 0).
 pub mod tap {
     /// The step was linear: every junction below its "off" threshold.
     pub const OFF: f64 = 0.0;
@@ -47,6 +48,19 @@ pub mod tap {
     pub const ON: f64 = 1.0;
     /// Not from the table (its Newton step, or the block left the table's loop).
     pub const OTHER: f64 = 2.0;
+}
+
+/// Values per sample of the record.
+pub const REC: usize = 3;
+
+/// Where the table's block loop records each sample, and the output's part per junction
+/// current (to take `r(s)` while the sub-interval is at hand).
+#[derive(Debug)]
+pub struct Tap<'a> {
+    /// [`REC`] values per sample of the block.
+    pub rec: &'a mut [f64],
+    /// The output's part per junction current, V/A.
+    pub g: [f64; MAX_J],
 }
 
 /// The compiled correction of one network's output.
@@ -77,7 +91,8 @@ impl KneeAa {
     }
 
     /// The band-limited currents' part at the sample whose coordinates around it are
-    /// `w = [s(n-2), ..., s(n+2)]`; `None` outside the table.
+    /// `w = [s(n-2), ..., s(n+2)]`; `None` outside the table (the reference for one sample
+    /// of [`KneeAa::apply`]).
     pub fn mean_r(&self, tab: &DiodeTable, w: &[f64; 5]) -> Option<f64> {
         let mid = |k: usize| (-w[k] + 9.0 * w[k + 1] + 9.0 * w[k + 2] - w[k + 3]) / 16.0;
         let (lo, hi) = (mid(0), mid(1));
@@ -87,33 +102,58 @@ impl KneeAa {
         Some((self.big_r(tab, hi)? - self.big_r(tab, lo)?) / (hi - lo))
     }
 
-    /// Correct a block: `taps` holds the table loop's record ([`tap`]: `s`, flag per
+    /// Correct a block: `taps` holds the table loop's record ([`tap`], [`REC`] values per
     /// sample) from `HIST` samples before the block to its end, `pending` the two output
     /// samples before the block not yet corrected (they wait in the output's delay line)
     /// and `out` the block's output (its last two samples are corrected with the next
-    /// block). A corrected sample `n` takes `r~(n) - r(s(n))`.
-    pub fn apply(&self, tab: &DiodeTable, taps: &[f64], pending: &mut [f64; 2], out: &mut [f64]) {
+    /// block); `scratch` room for `2 (b + 1)` values. A corrected sample `n` takes `r~(n) -
+    /// r(n)`, `r(n)` the currents' part the step took.
+    ///
+    /// In three passes (the midpoints, `R` at each, the means), so that the table's
+    /// lookups, each a load that depends on another, overlap from one sample to the next.
+    pub fn apply(
+        &self,
+        tab: &DiodeTable,
+        taps: &[f64],
+        pending: &mut [f64; 2],
+        out: &mut [f64],
+        scratch: &mut [f64],
+    ) {
         let b = out.len();
-        debug_assert_eq!(taps.len(), 2 * (b + HIST));
+        debug_assert_eq!(taps.len(), REC * (b + HIST));
+        if !taps.iter().skip(1).step_by(REC).any(|&f| f == tap::ON) {
+            return;
+        }
+        let s = |j: usize| taps[REC * j];
+        // the midpoint between records k + 1 and k + 2: sample i's path runs from mid[i] to
+        // mid[i + 1]
+        let (mid, big) = scratch[..2 * (b + 1)].split_at_mut(b + 1);
+        for (k, m) in mid.iter_mut().enumerate() {
+            *m = (-s(k) + 9.0 * s(k + 1) + 9.0 * s(k + 2) - s(k + 3)) / 16.0;
+        }
+        for (r, &m) in big.iter_mut().zip(mid.iter()) {
+            *r = self.big_r(tab, m).unwrap_or(f64::NAN);
+        }
         // sample n (from -2) reads the records n - 2 ..= n + 2: i = n + 2 ..= n + 6 from the
         // start of `taps`
-        for i in 0..b {
-            let rec = &taps[2 * i..2 * i + 10];
+        for (i, rec) in taps.windows(5 * REC).step_by(REC).take(b).enumerate() {
             let mut any_on = false;
             let mut all_table = true;
             for k in 0..5 {
-                let f = rec[2 * k + 1];
+                let f = rec[REC * k + 1];
                 any_on |= f == tap::ON;
                 all_table &= f == tap::ON || f == tap::OFF;
             }
             if !any_on || !all_table {
                 continue;
             }
-            let w: [f64; 5] = std::array::from_fn(|k| rec[2 * k]);
-            let (Some(m), Some(r)) = (self.mean_r(tab, &w), self.r(tab, w[2])) else {
-                continue;
+            let (lo, hi) = (mid[i], mid[i + 1]);
+            let m = if (hi - lo).abs() < MIN_SPAN {
+                self.r(tab, 0.5 * (lo + hi)).unwrap_or(f64::NAN)
+            } else {
+                (big[i + 1] - big[i]) / (hi - lo)
             };
-            let d = m - r;
+            let d = m - rec[2 * REC + 2];
             if !d.is_finite() {
                 continue;
             }

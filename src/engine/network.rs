@@ -5,7 +5,7 @@ use crate::circuit::diode::MAX_J;
 use crate::circuit::plan::CircuitPlan;
 use crate::circuit::small::{run_block, BlockIo, DriveEdges, KernelRun, SmallKernel};
 use crate::circuit::step::CircuitState;
-use crate::engine::knee::{tap as knee_tap, KneeAa, HIST as KNEE_HIST};
+use crate::engine::knee::{tap as knee_tap, KneeAa, Tap, HIST as KNEE_HIST, REC as KNEE_REC};
 use crate::engine::noise::{stream_seed, NoiseStream, FLICKER_MIN_RATE};
 use crate::engine::shaper::{LOOKAHEAD, WINDOW};
 
@@ -182,9 +182,12 @@ pub(crate) struct NetRun {
     pub(crate) slots: Vec<Vec<f64>>,
     /// One group's noise draws for the block, interleaved.
     pub(crate) wbuf: Vec<f64>,
-    /// The knee correction's record of the diode group's table loop ([`crate::engine::knee::tap`]:
-    /// two values per sample): its last [`KNEE_HIST`] samples, then the block's.
+    /// The knee correction's record of the diode group's table loop
+    /// ([`crate::engine::knee::tap`], [`KNEE_REC`] values per sample): its last
+    /// [`KNEE_HIST`] samples, then the block's.
     pub(crate) knee_tap: Vec<f64>,
+    /// The knee correction's scratch (`2 (block + 1)` values).
+    pub(crate) knee_scr: Vec<f64>,
 }
 
 impl NetRun {
@@ -213,7 +216,15 @@ impl NetRun {
             knee_tap: vec![
                 0.0;
                 if np.knee.is_some() {
-                    2 * (block + KNEE_HIST)
+                    KNEE_REC * (block + KNEE_HIST)
+                } else {
+                    0
+                }
+            ],
+            knee_scr: vec![
+                0.0;
+                if np.knee.is_some() {
+                    2 * (block + 1)
                 } else {
                     0
                 }
@@ -250,8 +261,8 @@ impl NetRun {
         }
         self.peaks.fill((f64::INFINITY, f64::NEG_INFINITY));
         // nothing recorded yet: no correction until the table's loop has run
-        for r in self.knee_tap.chunks_exact_mut(2) {
-            r.copy_from_slice(&[0.0, knee_tap::OTHER]);
+        for r in self.knee_tap.chunks_exact_mut(KNEE_REC) {
+            r.copy_from_slice(&[0.0, knee_tap::OTHER, 0.0]);
         }
         for k in self.kruns.iter_mut().flatten() {
             k.reset();
@@ -376,11 +387,11 @@ pub(crate) fn net_block(
         // the table's loop writes it)
         let knee = match &np.knee {
             Some(kn) if antialias && kn.group == gi => {
-                let t = &mut nr.knee_tap[2 * KNEE_HIST..2 * (KNEE_HIST + b)];
-                for r in t.chunks_exact_mut(2) {
+                let rec = &mut nr.knee_tap[KNEE_REC * KNEE_HIST..KNEE_REC * (KNEE_HIST + b)];
+                for r in rec.chunks_exact_mut(KNEE_REC) {
                     r[1] = knee_tap::OTHER;
                 }
-                Some(t)
+                Some(Tap { rec, g: kn.g })
             }
             _ => None,
         };
@@ -450,13 +461,15 @@ pub(crate) fn net_block(
             let mut pending = [nr.xh[H - 2], nr.xh[H - 1]];
             kn.apply(
                 tab,
-                &nr.knee_tap[..2 * (b + KNEE_HIST)],
+                &nr.knee_tap[..KNEE_REC * (b + KNEE_HIST)],
                 &mut pending,
                 &mut nr.slots[np.out][..b],
+                &mut nr.knee_scr,
             );
             [nr.xh[H - 2], nr.xh[H - 1]] = pending;
         }
-        nr.knee_tap.copy_within(2 * b..2 * (b + KNEE_HIST), 0);
+        nr.knee_tap
+            .copy_within(KNEE_REC * b..KNEE_REC * (b + KNEE_HIST), 0);
     }
     let drive_slot = match np.drive {
         Some(_) => nnodes,
