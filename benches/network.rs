@@ -2,7 +2,8 @@
 //! 10 s of audio each, wall time, processing only: compile and allocation happen before the
 //! clock starts): the four-input summer plus restoring inverter as shorthand stages and as
 //! one network; a state-variable filter (three op-amps in one loop), clean and with circuit
-//! noise on; a diode clipper driven hard. Run with `cargo bench --bench network` (add
+//! noise on; a diode clipper driven hard, with the band-limited corrections (its knees,
+//! `engine::knee`) on and off. Run with `cargo bench --bench network` (add
 //! `-- WORD` to run only the cases whose name contains WORD, `-- =NAME` for one case).
 //! Each case also prints the median of the same runs in the thread's CPU time, which a
 //! shared machine's load inflates less than wall time.
@@ -72,7 +73,8 @@ parts = [{{ r = \"4k7\", ends = [\"y\", \"x\"] }}, {{ diode = \"silicon-signal\"
         ("summer + inverter, one network", network),
         ("state-variable filter, clean", svf),
         ("state-variable filter, clean, circuit noise on", svf_noise),
-        ("diode clipper, driven hard", clipper),
+        ("diode clipper, driven hard", clipper.clone()),
+        ("diode clipper, driven hard, corrections off", clipper),
     ]
 }
 
@@ -89,7 +91,8 @@ fn main() {
         }
         let p = railsong::patch::parse_str(&text, "bench.toml", std::path::Path::new("."), &[])
             .expect("bench patch");
-        let plan = compile(&p).expect("compiles");
+        let mut plan = compile(&p).expect("compiles");
+        plan.antialias = !name.ends_with("corrections off");
         let frames = p.frames();
         let mut out = vec![0.0; frames];
         let mut times = Vec::new();

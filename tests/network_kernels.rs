@@ -317,3 +317,78 @@ fn diode_table_hands_samples_past_its_range_to_the_newton_step() {
         }
     }
 }
+
+// The antiderivative the diode knees' correction reads (`engine::knee`): the table's own
+// (`DiodeTable::integral`, the exact integral of its cubic per sub-interval) against a
+// composite Simpson rule over the table's values on its line (a general numerical rule,
+// not the table's own arithmetic), its derivative against the table's value, and the
+// correction's weighted copy (`KneeAa`, one cache line per lookup) against the plain sum.
+#[test]
+fn diode_table_antiderivative() {
+    use railsong::engine::knee::KneeAa;
+    let ds = clipper_diode_step(&case(CLIPPER, 997.0, 1.0, false));
+    let tab = ds.table.as_ref().expect("a table");
+    let nj = ds.nj;
+    let on_line = |s: f64| -> [f64; 4] {
+        let mut v0 = [0.0; 4];
+        for q in 0..nj {
+            v0[q] = tab.a[q] * s + tab.b[q];
+        }
+        tab.eval(nj, &v0).expect("inside the table")
+    };
+    // the knees lie within a volt of 0 V at the junctions
+    let (lo, hi) = (-1.2, 1.2);
+    let n = 24_000;
+    let hs = (hi - lo) / n as f64;
+    let mut simpson = [0.0f64; 4];
+    for k in 0..n {
+        let (x0, x1) = (lo + k as f64 * hs, lo + (k + 1) as f64 * hs);
+        let (f0, fm, f1) = (on_line(x0), on_line(0.5 * (x0 + x1)), on_line(x1));
+        for q in 0..nj {
+            simpson[q] += hs / 6.0 * (f0[q] + 4.0 * fm[q] + f1[q]);
+        }
+    }
+    let (ia, ib) = (tab.integral(nj, lo).unwrap(), tab.integral(nj, hi).unwrap());
+    for q in 0..nj {
+        let exact = ib[q] - ia[q];
+        assert!(
+            (exact - simpson[q]).abs() <= 1e-9 * exact.abs().max(1e-12),
+            "junction {q}: {exact:e} against Simpson {:e}",
+            simpson[q]
+        );
+        assert!(exact > 0.0, "a junction conducts somewhere in the range");
+    }
+    let mut g = [0.0; 4];
+    g[..nj]
+        .iter_mut()
+        .enumerate()
+        .for_each(|(q, x)| *x = 1e3 * (q + 1) as f64);
+    let kn = KneeAa::new(0, nj, g, tab);
+    for k in 0..=200 {
+        let s = lo + (hi - lo) * k as f64 / 200.0;
+        // the derivative of the antiderivative is the table's value (central difference:
+        // its truncation, d^2/6 c'' with c'' about c / nvt^2, is near 3e-6 of c)
+        let d = 1e-4;
+        let (p, m) = (
+            tab.integral(nj, s + d).unwrap(),
+            tab.integral(nj, s - d).unwrap(),
+        );
+        let c = on_line(s);
+        for q in 0..nj {
+            let slope = (p[q] - m[q]) / (2.0 * d);
+            assert!(
+                (slope - c[q]).abs() <= 1e-5 * c[q].abs() + 1e-13,
+                "s {s}: slope {slope:e} against {:e}",
+                c[q]
+            );
+        }
+        let (fast, plain) = (
+            kn.big_r_fast(tab, s).unwrap(),
+            kn.big_r_reference(tab, s).unwrap(),
+        );
+        assert!(
+            (fast - plain).abs() <= 1e-12 * plain.abs().max(1e-9),
+            "s {s}: {fast:e} against {plain:e}"
+        );
+    }
+}

@@ -28,9 +28,9 @@
 //! `n`; the network output is [`crate::engine::shaper::LOOKAHEAD`] samples late, so they
 //! are there.
 
-use crate::circuit::diode::{seg_eval, DiodeTable, MAX_J};
+use crate::circuit::diode::{seg_eval, DiodeTable, ISEG_HEAD, MAX_J};
 
-/// Inputs before the block the correction reads (`n - 2` for the block's first pending
+/// Records before the block the correction reads (`n - 2` for the block's first pending
 /// sample, `n = -2`).
 pub const HIST: usize = 4;
 
@@ -72,14 +72,59 @@ pub struct KneeAa {
     pub nj: usize,
     /// The output's part per junction current, V/A.
     pub g: [f64; MAX_J],
+    /// `R` per sub-interval of the table ([`RSTRIDE`] values: its start, `1 / width`, `R`
+    /// at its start and the quartic in the local `t` that adds the rest), the junctions'
+    /// antiderivatives (`DiodeTable::iseg`) weighted by `g`: one cache line per lookup.
+    pub rtab: Vec<f64>,
 }
 
+/// Values per sub-interval of [`KneeAa::rtab`] (seven used).
+pub const RSTRIDE: usize = 8;
+
 impl KneeAa {
+    /// The correction for output weights `g` (per junction current) of a group whose table
+    /// is `tab` with `nj` junctions.
+    pub fn new(group: usize, nj: usize, g: [f64; MAX_J], tab: &DiodeTable) -> KneeAa {
+        let w = ISEG_HEAD + 5 * nj;
+        let mut rtab = Vec::with_capacity(tab.iseg.len() / w * RSTRIDE);
+        for sg in tab.iseg.chunks_exact(w) {
+            let mut r = [0.0; RSTRIDE];
+            r[..2].copy_from_slice(&sg[..2]);
+            for q in 0..nj {
+                for (k, x) in r[2..7].iter_mut().enumerate() {
+                    *x += g[q] * sg[ISEG_HEAD + 5 * q + k];
+                }
+            }
+            rtab.extend_from_slice(&r);
+        }
+        KneeAa { group, nj, g, rtab }
+    }
+
     /// `R(s)`: the antiderivative of the currents' part; `None` outside the table.
     #[inline(always)]
     fn big_r(&self, tab: &DiodeTable, s: f64) -> Option<f64> {
+        let xf = (s - tab.s0) * tab.inv_hf;
+        if !(xf >= 0.0 && xf < tab.slot.len() as f64) {
+            return None;
+        }
+        // SAFETY: 0 <= xf < slot.len() (checked just above): the cast is exact.
+        let i = unsafe { xf.to_int_unchecked::<i64>() } as usize;
+        let j = tab.slot[i] as usize;
+        let a: &[f64; RSTRIDE] = self.rtab[j * RSTRIDE..][..RSTRIDE].try_into().ok()?;
+        let t = ((s - a[0]) * a[1]).clamp(0.0, 1.0);
+        Some(a[2] + t * (a[3] + t * (a[4] + t * (a[5] + t * a[6]))))
+    }
+
+    /// `R(s)` from the table's own antiderivatives ([`DiodeTable::integral`]): the plain
+    /// reference of the weighted table.
+    pub fn big_r_reference(&self, tab: &DiodeTable, s: f64) -> Option<f64> {
         let c = tab.integral(self.nj, s)?;
         Some((0..self.nj).map(|q| self.g[q] * c[q]).sum())
+    }
+
+    /// [`KneeAa::big_r`], for tests.
+    pub fn big_r_fast(&self, tab: &DiodeTable, s: f64) -> Option<f64> {
+        self.big_r(tab, s)
     }
 
     /// `r(s)` from the table, on its line; `None` outside it.
@@ -136,15 +181,32 @@ impl KneeAa {
         }
         // sample n (from -2) reads the records n - 2 ..= n + 2: i = n + 2 ..= n + 6 from the
         // start of `taps`
-        for (i, rec) in taps.windows(5 * REC).step_by(REC).take(b).enumerate() {
-            let mut any_on = false;
-            let mut all_table = true;
-            for k in 0..5 {
-                let f = rec[REC * k + 1];
-                any_on |= f == tap::ON;
-                all_table &= f == tap::ON || f == tap::OFF;
+        // the window's counts of conducting samples and of samples not from the table, kept
+        // as the window slides
+        let flag = |j: usize| taps[REC * j + 1];
+        let (mut on, mut other) = (0u32, 0u32);
+        let count = |f: f64, on: &mut u32, other: &mut u32, add: bool| {
+            let (a, o) = (
+                u32::from(f == tap::ON),
+                u32::from(f != tap::ON && f != tap::OFF),
+            );
+            if add {
+                *on += a;
+                *other += o;
+            } else {
+                *on -= a;
+                *other -= o;
             }
-            if !any_on || !all_table {
+        };
+        for j in 0..4 {
+            count(flag(j), &mut on, &mut other, true);
+        }
+        for i in 0..b {
+            count(flag(i + 4), &mut on, &mut other, true);
+            if i > 0 {
+                count(flag(i - 1), &mut on, &mut other, false);
+            }
+            if on == 0 || other > 0 {
                 continue;
             }
             let (lo, hi) = (mid[i], mid[i + 1]);
@@ -153,7 +215,7 @@ impl KneeAa {
             } else {
                 (big[i + 1] - big[i]) / (hi - lo)
             };
-            let d = m - rec[2 * REC + 2];
+            let d = m - taps[REC * (i + 2) + 2];
             if !d.is_finite() {
                 continue;
             }

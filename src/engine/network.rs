@@ -129,7 +129,7 @@ impl NetPlan {
             .find(|(_, g)| g.col[self.out].is_some_and(|i| i < g.nodes.len()))?;
         let k = self.kernels[gi].as_ref()?;
         let ds = k.diode.as_ref()?;
-        ds.table.as_ref()?;
+        let tab = ds.table.as_ref()?;
         if k.nk != 1 || k.nw != 0 {
             return None;
         }
@@ -139,7 +139,7 @@ impl NetPlan {
         let row = &ds.rows[(nz + gp.col[self.out]?) * w..][..w];
         let mut g = [0.0; MAX_J];
         g[..nj].copy_from_slice(&row[ncol..]);
-        Some(KneeAa { group: gi, nj, g })
+        Some(KneeAa::new(gi, nj, g, tab))
     }
 }
 
