@@ -330,10 +330,7 @@ fn diode_table_antiderivative() {
     let tab = ds.table.as_ref().expect("a table");
     let nj = ds.nj;
     let on_line = |s: f64| -> [f64; 4] {
-        let mut v0 = [0.0; 4];
-        for q in 0..nj {
-            v0[q] = tab.a[q] * s + tab.b[q];
-        }
+        let v0: [f64; 4] = std::array::from_fn(|q| tab.a[q] * s + tab.b[q]);
         tab.eval(nj, &v0).expect("inside the table")
     };
     // the knees lie within a volt of 0 V at the junctions
