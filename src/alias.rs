@@ -508,6 +508,7 @@ pub fn estimate(
             &RenderOptions {
                 frames: Some(frames),
                 alias_probe: false,
+                uncorrected: false,
             },
             &mut |_| {},
         )?;
@@ -605,6 +606,7 @@ fn by_difference(patch: &Patch, outs: &[usize]) -> Result<Vec<(String, OutputAli
         &RenderOptions {
             frames: Some(start + n),
             alias_probe: false,
+            uncorrected: false,
         },
         &mut |_| {},
     )?;

@@ -317,7 +317,8 @@ pub struct References {
 pub const REFERENCES: References = References {
     thd: "relative to the fundamental: rss of harmonics 2..10 below Nyquist over the fundamental; \
           when the third harmonic lies above the file's Nyquist frequency, taken on the \
-          engine's internal oversampled signal (see notes), else null",
+          engine's internal oversampled signal (the model's steps without the corrections \
+          that band-limit the file; see notes), else null",
     thdn: "AES17: rms of what remains without the fundamental, over the rms of the whole \
            signal, both in the band and weighting stated",
     sinad: "the whole signal over what remains without the fundamental, in the same band: \

@@ -38,6 +38,12 @@ pub struct RenderOptions {
     pub frames: Option<usize>,
     /// Also measure each op-amp stage's alias figure (see [`engine::alias_probe`]).
     pub alias_probe: bool,
+    /// Leave out the band-limited corrections of the engine's events (slew corners,
+    /// reversal edges, diode knees: `engine::Plan::antialias`). They band-limit the signal
+    /// to the base rate's audio band, so a capture at the internal rate that measures
+    /// components above it (THD past the file's Nyquist frequency, [`complete_thd`]) takes
+    /// the model's own steps without them.
+    pub uncorrected: bool,
 }
 
 /// Adapts a [`Generator`] (which starts at t = 0) to the engine's feed contract (which starts
@@ -192,6 +198,7 @@ pub fn render_idle(patch: &Patch, full: bool) -> Result<Streamed, RenderError> {
     let opts = RenderOptions {
         frames: if full { None } else { idle_frames(patch) },
         alias_probe: false,
+        uncorrected: false,
     };
     render_streaming(&muted(patch), &opts, &mut |_, _| Ok(()), &mut |_| {})
 }
@@ -341,7 +348,10 @@ pub fn render_streaming(
     sink: &mut Sink,
     progress: &mut dyn FnMut(f64),
 ) -> Result<Streamed, RenderError> {
-    let plan = engine::compile(&for_compile(patch))?;
+    let mut plan = engine::compile(&for_compile(patch))?;
+    if opts.uncorrected {
+        plan.antialias = false;
+    }
     let frames = opts.frames.unwrap_or_else(|| patch.frames());
     // WAV inputs as they are before they are read: a change during the render is an error,
     // not silent or garbled audio.
@@ -474,6 +484,7 @@ pub fn complete_thd(
         &RenderOptions {
             frames: Some(frames),
             alias_probe: false,
+            uncorrected: true,
         },
         &mut |_| {},
     )?;

@@ -260,31 +260,33 @@ fn slewing_tone_thd_matches_a_fine_step_slew_limiter() {
 #[test]
 fn slewing_tone_above_nyquist_is_measured_on_the_internal_signal() {
     // 20 kHz at 48 kHz: every harmonic lies above the file's Nyquist frequency, so the file
-    // cannot show THD; the engine's internal signal can. At K = 8 (384 kHz) it holds
-    // harmonics 2..9: THD over those against the fine-step slew limiter's same harmonics
-    // (compare like with like), within the issue's 10 % (measured: 4 %). At K = 4 the
-    // engine's slew corners put H3 1.2 dB high (a limit of the engine's step, not of the
-    // measurement; DEVELOPERS.md "Known limit"), hence K = 8 here.
-    let p = load(SLEWER, &["sources.osc.freq=20 kHz", "patch.oversample=8"]);
-    let mut m = measure_of(&p);
-    assert_eq!(m.outputs["out"].figures.thd_percent, None);
-    render::complete_thd(&p, &mut m, &railsong::analysis::Settings::default(), None).unwrap();
-    let f = &m.outputs["out"].figures;
-    assert_eq!(f.thd_harmonics, Some(8), "{:?}", f.notes);
-    assert!(
-        f.notes
-            .iter()
-            .any(|n| n.contains("internal signal at 384000 Hz")),
-        "{:?}",
-        f.notes
-    );
-    let b = slew_limiter_harmonics(10.0, 20_000.0, 0.3e6, 9);
-    let expect = 100.0 * (2..=9).map(|i| b[i] * b[i]).sum::<f64>().sqrt() / b[1];
-    let got = f.thd_percent.unwrap();
-    assert!(
-        (got / expect - 1.0).abs() < 0.1,
-        "THD {got} % vs {expect} %"
-    );
+    // cannot show THD; the engine's internal signal can. At the default K = 4 (192 kHz) it
+    // holds harmonics 2..4, at K = 8 (384 kHz) 2..9: THD over those against the fine-step
+    // slew limiter's same harmonics (compare like with like), within 2 % (the issue asks for
+    // 10 %; measured 0.6 % at K = 4, 0.03 % at K = 8). The internal capture takes the
+    // model's steps without the band-limited corrections (`RenderOptions::uncorrected`):
+    // they band-limit to the audio band, and with them H3 (60 kHz) read 2.2 dB low at K = 4
+    // (THD 22 % low) and 4.5 % low at K = 8.
+    for (k, nh) in [(4, 3), (8, 8)] {
+        let p = load(
+            SLEWER,
+            &["sources.osc.freq=20 kHz", &format!("patch.oversample={k}")],
+        );
+        let mut m = measure_of(&p);
+        assert_eq!(m.outputs["out"].figures.thd_percent, None);
+        render::complete_thd(&p, &mut m, &railsong::analysis::Settings::default(), None).unwrap();
+        let f = &m.outputs["out"].figures;
+        assert_eq!(f.thd_harmonics, Some(nh), "{:?}", f.notes);
+        let at = format!("internal signal at {} Hz", 48_000 * k);
+        assert!(f.notes.iter().any(|n| n.contains(&at)), "{:?}", f.notes);
+        let b = slew_limiter_harmonics(10.0, 20_000.0, 0.3e6, nh + 1);
+        let expect = 100.0 * (2..=nh + 1).map(|i| b[i] * b[i]).sum::<f64>().sqrt() / b[1];
+        let got = f.thd_percent.unwrap();
+        assert!(
+            (got / expect - 1.0).abs() < 0.02,
+            "K = {k}: THD {got} % vs {expect} %"
+        );
+    }
 }
 
 #[test]

@@ -208,6 +208,7 @@ fn edge_values_through_the_library_never_panic_or_give_non_finite_figures() {
             let opts = railsong::render::RenderOptions {
                 frames: None,
                 alias_probe: true,
+                uncorrected: false,
             };
             let mut finite = true;
             let streamed = railsong::render::render_streaming(

@@ -121,6 +121,7 @@ pub(crate) fn options(alias: bool) -> RenderOptions {
     RenderOptions {
         frames: None,
         alias_probe: alias,
+        uncorrected: false,
     }
 }
 
