@@ -687,7 +687,7 @@ impl DiodeStep {
         n: usize,
         t0: f64,
         h: f64,
-        mut tap: Option<&mut crate::engine::knee::Tap>,
+        tap: Option<&mut crate::engine::knee::Tap>,
     ) -> Result<bool, (CircuitError, usize)> {
         let nz = self.ncol - 2;
         let nc = gp.caps.len();
@@ -722,28 +722,20 @@ impl DiodeStep {
             h,
         };
         let small = nz + nw <= 4;
+        let io = TableIo {
+            vn,
+            st,
+            counts,
+            slots,
+            hist,
+            tap,
+        };
         macro_rules! go {
             ($nj:literal, $nz:literal, $nc:literal, $w:literal, $p:literal) => {
                 if small {
-                    self.table_loop::<$nj, $nz, $nc, $w, $p, 4>(
-                        &a,
-                        vn,
-                        st,
-                        counts,
-                        slots,
-                        hist,
-                        tap.as_deref_mut(),
-                    )
+                    self.table_loop::<$nj, $nz, $nc, $w, $p, 4>(&a, io)
                 } else {
-                    self.table_loop::<$nj, $nz, $nc, $w, $p, 8>(
-                        &a,
-                        vn,
-                        st,
-                        counts,
-                        slots,
-                        hist,
-                        tap.as_deref_mut(),
-                    )
+                    self.table_loop::<$nj, $nz, $nc, $w, $p, 8>(&a, io)
                 }
             };
         }
@@ -766,9 +758,9 @@ impl DiodeStep {
     /// [`DiodeStep::run_table_block`] for `NJ` junctions and `NZ` states (`NC = NZ + 2`
     /// columns of `u`, `W = NC + NJ` of `[u, c]`), the per-sample maps as columns of `P`
     /// (projections: `NJ + 1` used) and `Q` (new state and written nodes) lanes in
-    /// fixed-size arrays (the compiler's vector code); `tap` records each sample for the knee
+    /// fixed-size arrays (the compiler's vector code); `io.tap` records each sample for the knee
     /// correction (`engine::knee`).
-    #[allow(clippy::needless_range_loop, clippy::too_many_arguments)]
+    #[allow(clippy::needless_range_loop)]
     fn table_loop<
         const NJ: usize,
         const NZ: usize,
@@ -779,13 +771,16 @@ impl DiodeStep {
     >(
         &self,
         a: &TableRun,
-        vn: &mut [f64],
-        st: &mut GroupState,
-        counts: &mut (u64, u64),
-        slots: &mut [Vec<f64>],
-        hist: &mut DiodeHist,
-        mut tap: Option<&mut crate::engine::knee::Tap>,
+        io: TableIo,
     ) -> Result<(), (CircuitError, usize)> {
+        let TableIo {
+            vn,
+            st,
+            counts,
+            slots,
+            hist,
+            mut tap,
+        } = io;
         let nw = a.wr.len();
         assert!(NC == NZ + 2 && W == NC + NJ && NJ <= MAX_J && self.nj == NJ && self.ncol == NC);
         assert!(NJ < P && NZ + nw <= Q);
@@ -1232,6 +1227,17 @@ pub fn seg_eval(sg: &[f64], nj: usize, t: f64, rho: &[f64; MAX_J]) -> [f64; MAX_
         c[q] = poly + corr;
     }
     c
+}
+
+/// What one table block writes: the node values, the group's state, the step counts, the
+/// nodes' sample buffers, the junction currents' history and the knee correction's record.
+struct TableIo<'a, 'b> {
+    vn: &'a mut [f64],
+    st: &'a mut GroupState,
+    counts: &'a mut (u64, u64),
+    slots: &'a mut [Vec<f64>],
+    hist: &'a mut DiodeHist,
+    tap: Option<&'a mut crate::engine::knee::Tap<'b>>,
 }
 
 /// The fixed inputs of one table block.

@@ -511,38 +511,6 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
     t
 }
 
-/// [`segment_avx2`] with the count of state entries that feed back fixed at compile time
-/// where it is small (the step's loops then unroll: about 7 % on the state-variable
-/// filter of the network bench).
-///
-/// # Safety
-/// As [`segment_avx2`].
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2,fma")]
-#[allow(clippy::too_many_arguments)]
-unsafe fn segment_ns<const G: usize>(
-    k: &SmallKernel,
-    zi: &mut [f64],
-    zpi: &mut [f64],
-    xw: &[f64],
-    ob: &mut [Vec<f64>],
-    orow: &[usize],
-    from: usize,
-    n: usize,
-) -> usize {
-    match k.nsig {
-        1 => segment_avx2::<G, 1>(k, zi, zpi, xw, ob, orow, from, n),
-        2 => segment_avx2::<G, 2>(k, zi, zpi, xw, ob, orow, from, n),
-        3 => segment_avx2::<G, 3>(k, zi, zpi, xw, ob, orow, from, n),
-        4 => segment_avx2::<G, 4>(k, zi, zpi, xw, ob, orow, from, n),
-        5 => segment_avx2::<G, 5>(k, zi, zpi, xw, ob, orow, from, n),
-        6 => segment_avx2::<G, 6>(k, zi, zpi, xw, ob, orow, from, n),
-        7 => segment_avx2::<G, 7>(k, zi, zpi, xw, ob, orow, from, n),
-        8 => segment_avx2::<G, 8>(k, zi, zpi, xw, ob, orow, from, n),
-        _ => segment_avx2::<G, 0>(k, zi, zpi, xw, ob, orow, from, n),
-    }
-}
-
 /// The kernel's steps from sample `from` while every check row stays inside its limits,
 /// plain (every column of the matrix through a slice): see `segment_avx2`.
 #[allow(clippy::too_many_arguments)]
@@ -612,11 +580,29 @@ fn run_segment(k: &SmallKernel, z: &mut [f64], kr: &mut KernelRun, from: usize, 
             // SAFETY: the CPU supports AVX2 and FMA (checked just above); `rp == 4 G` by the
             // match.
             unsafe {
+                // up to 16 rows, the count of state entries that feed back fixed at compile
+                // time where it is small (the step's loops then unroll: about 7 % on the
+                // state-variable filter of the network bench)
+                macro_rules! by_ns {
+                    ($g:literal) => {
+                        match k.nsig {
+                            1 => segment_avx2::<$g, 1>(k, zi, zpi, xw, ob, orow, from, n),
+                            2 => segment_avx2::<$g, 2>(k, zi, zpi, xw, ob, orow, from, n),
+                            3 => segment_avx2::<$g, 3>(k, zi, zpi, xw, ob, orow, from, n),
+                            4 => segment_avx2::<$g, 4>(k, zi, zpi, xw, ob, orow, from, n),
+                            5 => segment_avx2::<$g, 5>(k, zi, zpi, xw, ob, orow, from, n),
+                            6 => segment_avx2::<$g, 6>(k, zi, zpi, xw, ob, orow, from, n),
+                            7 => segment_avx2::<$g, 7>(k, zi, zpi, xw, ob, orow, from, n),
+                            8 => segment_avx2::<$g, 8>(k, zi, zpi, xw, ob, orow, from, n),
+                            _ => segment_avx2::<$g, 0>(k, zi, zpi, xw, ob, orow, from, n),
+                        }
+                    };
+                }
                 done = match k.rp {
-                    4 => Some(segment_ns::<1>(k, zi, zpi, xw, ob, orow, from, n)),
-                    8 => Some(segment_ns::<2>(k, zi, zpi, xw, ob, orow, from, n)),
-                    12 => Some(segment_ns::<3>(k, zi, zpi, xw, ob, orow, from, n)),
-                    16 => Some(segment_ns::<4>(k, zi, zpi, xw, ob, orow, from, n)),
+                    4 => Some(by_ns!(1)),
+                    8 => Some(by_ns!(2)),
+                    12 => Some(by_ns!(3)),
+                    16 => Some(by_ns!(4)),
                     20 => Some(segment_avx2::<5, 0>(k, zi, zpi, xw, ob, orow, from, n)),
                     24 => Some(segment_avx2::<6, 0>(k, zi, zpi, xw, ob, orow, from, n)),
                     28 => Some(segment_avx2::<7, 0>(k, zi, zpi, xw, ob, orow, from, n)),
@@ -924,6 +910,7 @@ from = "svf"
         let plan = crate::engine::compile(&p).unwrap();
         let k = plan.networks[0].kernels[0].as_ref().expect("kernel");
         assert!(k.nsig < k.nz, "some state should not feed back");
+        assert_eq!(k.nsig, 5, "the two capacitors and the three op-amps' `p`");
         assert_eq!(k.rp, 12, "the two constant common-mode rows are dropped");
         let n = 2000;
         let nx = k.nk + k.nw;
@@ -967,7 +954,7 @@ from = "svf"
                 // SAFETY: the CPU has AVX2 and FMA (checked); rp is 12.
                 let t_v = unsafe {
                     if fixed {
-                        segment_ns::<3>(k, &mut z_v, &mut zp_v, &xw, &mut ob_v, &kr.orow, 0, n)
+                        segment_avx2::<3, 5>(k, &mut z_v, &mut zp_v, &xw, &mut ob_v, &kr.orow, 0, n)
                     } else {
                         segment_avx2::<3, 0>(k, &mut z_v, &mut zp_v, &xw, &mut ob_v, &kr.orow, 0, n)
                     }
