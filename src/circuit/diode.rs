@@ -873,6 +873,7 @@ impl DiodeStep {
         let mut cpp = [0.0f64; NJ];
         let mut cppp = [0.0f64; NJ];
         let mut warm = hist.nc > 0;
+        let tg = tap.as_ref().map_or([0.0; MAX_J], |t| t.g);
         if warm {
             cprev.copy_from_slice(&hist.c[0][..NJ]);
             cpp.copy_from_slice(&hist.c[1][..NJ]);
@@ -956,12 +957,11 @@ impl DiodeStep {
                     let c4 = seg_eval(sg, NJ, tt, &r);
                     cc.copy_from_slice(&c4[..NJ]);
                     kind = crate::engine::knee::tap::ON;
-                    if let Some(tp) = tap.as_deref() {
-                        // the currents' part of the output along the line
-                        for q in 0..NJ {
-                            let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
-                            rline += tp.g[q] * ((p[0] + p[1] * tt) + tt * tt * (p[2] + p[3] * tt));
-                        }
+                    // the currents' part of the output along the line (zero weights
+                    // without a record)
+                    for q in 0..NJ {
+                        let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
+                        rline += tg[q] * ((p[0] + p[1] * tt) + tt * tt * (p[2] + p[3] * tt));
                     }
                 } else {
                     kind = crate::engine::knee::tap::OTHER;
