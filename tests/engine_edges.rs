@@ -21,6 +21,11 @@ fn alias_dbc(text: &str, k: usize, extra: &[&str]) -> f64 {
     est[0].1.dbc.expect("figure")
 }
 
+/// [`alias_dbc`] at K = 4 and K = 8.
+fn alias_k4_k8(text: &str, extra: &[&str]) -> (f64, f64) {
+    (alias_dbc(text, 4, extra), alias_dbc(text, 8, extra))
+}
+
 /// A slow part (single-supply class, slew rate lowered to 120 mV/us) as a follower on
 /// +/-12 V, 10 kHz at 6 V peak: the tone's largest slope, `2 pi f A` = 0.377 V/us, is 3.1
 /// times the slew rate, so the output is a triangle whose corners fall anywhere between
@@ -76,8 +81,7 @@ fn amp(a: &str) -> String {
 #[test]
 fn slew_corners_are_band_limited() {
     let a = amp("6 Vpk");
-    let k4 = alias_dbc(SLEWER, 4, &[&a]);
-    let k8 = alias_dbc(SLEWER, 8, &[&a]);
+    let (k4, k8) = alias_k4_k8(SLEWER, &[&a]);
     let k16 = alias_dbc(SLEWER, 16, &[&a]);
     println!("slew corners 3.1x SR: K 4 {k4:.1}, K 8 {k8:.1}, K 16 {k16:.1} dBc");
     assert!(k4 < -84.0, "{k4}");
@@ -160,10 +164,8 @@ from = "drive"
 // (asserted with margin). 220 Hz reads the floor either way (-185 dBc).
 #[test]
 fn diode_knees_are_band_limited() {
-    let k4 = alias_dbc(DIODE_CLIPPER, 4, &[]);
-    let k8 = alias_dbc(DIODE_CLIPPER, 8, &[]);
-    let f5 = alias_dbc(DIODE_CLIPPER, 4, &["sources.osc.freq=5 kHz"]);
-    let f5k8 = alias_dbc(DIODE_CLIPPER, 8, &["sources.osc.freq=5 kHz"]);
+    let (k4, k8) = alias_k4_k8(DIODE_CLIPPER, &[]);
+    let (f5, f5k8) = alias_k4_k8(DIODE_CLIPPER, &["sources.osc.freq=5 kHz"]);
     println!(
         "diode clipper 20 dB past the knee, 1 kHz: K 4 {k4:.1}, K 8 {k8:.1} dBc; 5 kHz K 4 {f5:.1}, K 8 {f5k8:.1}"
     );
@@ -306,8 +308,7 @@ fn sources_of(text: &str) -> &str {
 fn slew_corners_in_a_multi_op_amp_loop_are_band_limited() {
     for out in ["y", "z"] {
         let text = composite(out);
-        let k4 = alias_dbc(&text, 4, &[]);
-        let k8 = alias_dbc(&text, 8, &[]);
+        let (k4, k8) = alias_k4_k8(&text, &[]);
         println!("composite, output {out}: K 4 {k4:.1}, K 8 {k8:.1} dBc");
         assert!(k4 < -72.0, "{out}: {k4}");
         assert!(k8 < k4 - 5.0, "{out}: {k4} {k8}");
@@ -364,8 +365,7 @@ from = "comp"
 fn reversal_edges_in_a_multi_op_amp_loop() {
     for buffer in ["ideal", "bipolar-lownoise"] {
         let text = reversing_composite(buffer);
-        let k4 = alias_dbc(&text, 4, &[]);
-        let k8 = alias_dbc(&text, 8, &[]);
+        let (k4, k8) = alias_k4_k8(&text, &[]);
         println!("reversing composite, {buffer} buffer: K 4 {k4:.1}, K 8 {k8:.1} dBc");
         assert!(k4 < -45.0, "{buffer}: {k4}");
         assert!(k8 < k4 - 5.0, "{buffer}: {k4} {k8}");

@@ -138,20 +138,10 @@ pub struct DiodeTable {
     pub seg: Vec<f64>,
     /// Values per sub-interval.
     pub stride: usize,
-    /// The antiderivative of the interpolant along the table's line
-    /// ([`DiodeTable::integral`]), per sub-interval ([`ISEG_HEAD`] `+ 5 nj` values): its
-    /// start and `1 / width`, then per junction the integral of `c` from the table's start
-    /// to the sub-interval's start, A V, and the quartic in the local `t` that adds the
-    /// rest (coefficients of `t .. t^4`).
-    pub iseg: Vec<f64>,
 }
 
 /// Values before the polynomials in a sub-interval of [`DiodeTable::seg`].
 pub const SEG_HEAD: usize = 2;
-
-/// Values before the junctions' antiderivatives in a sub-interval of
-/// [`DiodeTable::iseg`].
-pub const ISEG_HEAD: usize = 2;
 
 /// Values per sub-interval of [`DiodeTable::seg`] for `nj` junctions.
 pub const fn seg_stride(nj: usize) -> usize {
@@ -479,27 +469,6 @@ impl DiodeStep {
                 slot.push((first + i / (per_cell / m)) as u16);
             }
         }
-        // the running integral of each junction's cubic over the sub-intervals (in order
-        // of `s`, each starting where the one before ends)
-        let nsub = seg.len() / stride;
-        let mut iseg = Vec::with_capacity(nsub * (ISEG_HEAD + 5 * nj));
-        let mut run = [0.0f64; MAX_J];
-        for sg in seg.chunks_exact(stride) {
-            iseg.extend_from_slice(&sg[..2]);
-            let width = 1.0 / sg[1];
-            for (q, r) in run.iter_mut().enumerate().take(nj) {
-                let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
-                let a = [
-                    width * p[0],
-                    width * p[1] / 2.0,
-                    width * p[2] / 3.0,
-                    width * p[3] / 4.0,
-                ];
-                iseg.push(*r);
-                iseg.extend_from_slice(&a);
-                *r += a.iter().sum::<f64>();
-            }
-        }
         Some(DiodeTable {
             a,
             w,
@@ -513,7 +482,6 @@ impl DiodeStep {
             slot,
             seg,
             stride,
-            iseg,
         })
     }
 
@@ -960,8 +928,7 @@ impl DiodeStep {
                     // the currents' part of the output along the line (zero weights
                     // without a record)
                     for q in 0..NJ {
-                        let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
-                        rline += tg[q] * ((p[0] + p[1] * tt) + tt * tt * (p[2] + p[3] * tt));
+                        rline += tg[q] * seg_line(sg, q, tt);
                     }
                 } else {
                     kind = crate::engine::knee::tap::OTHER;
@@ -988,7 +955,7 @@ impl DiodeStep {
                 }
             }
             if let Some(tp) = tap.as_deref_mut() {
-                let rec = &mut tp.rec[crate::engine::knee::REC * t..][..3];
+                let rec = &mut tp.rec[crate::engine::knee::REC * t..][..crate::engine::knee::REC];
                 rec.copy_from_slice(&[proj[0], kind, rline]);
             }
             uc[NC..].copy_from_slice(&cc);
@@ -1166,23 +1133,22 @@ impl DiodeTable {
 
     /// The antiderivative along the table's line of each junction's `c` at `s` (on the
     /// line: the state at zero), from the table's start, A V: exact for the interpolant
-    /// (the integral of its cubic in each sub-interval). `None` outside the table.
-    #[inline(always)]
+    /// (the integral of its cubic over every sub-interval before `s` and over the part of
+    /// its own up to `s`). `None` outside the table. The plain reference of the knee
+    /// correction's weighted table (`engine::knee::KneeAa::rtab`): it sums the
+    /// sub-intervals each time.
     pub fn integral(&self, nj: usize, s: f64) -> Option<[f64; MAX_J]> {
-        let xf = (s - self.s0) * self.inv_hf;
-        if !(xf >= 0.0 && xf < self.slot.len() as f64) {
-            return None;
-        }
-        // SAFETY: 0 <= xf < slot.len() (checked just above): the cast is exact.
-        let i = unsafe { xf.to_int_unchecked::<i64>() } as usize;
-        let w = ISEG_HEAD + 5 * nj;
-        let j = self.slot[i] as usize;
-        let sg = &self.iseg[j * w..(j + 1) * w];
-        let t = ((s - sg[0]) * sg[1]).clamp(0.0, 1.0);
+        let (base, t) = self.locate(s)?;
         let mut out = [0.0f64; MAX_J];
-        for (q, o) in out.iter_mut().enumerate().take(nj) {
-            let a = &sg[ISEG_HEAD + 5 * q..ISEG_HEAD + 5 * q + 5];
-            *o = a[0] + t * (a[1] + t * (a[2] + t * (a[3] + t * a[4])));
+        for (j, sg) in self.seg.chunks_exact(self.stride).enumerate() {
+            let last = j * self.stride == base;
+            let part = seg_integral(sg, nj, if last { t } else { 1.0 });
+            for (o, p) in out.iter_mut().zip(&part).take(nj) {
+                *o += p;
+            }
+            if last {
+                break;
+            }
         }
         Some(out)
     }
@@ -1213,13 +1179,11 @@ impl DiodeTable {
 #[inline(always)]
 pub fn seg_eval(sg: &[f64], nj: usize, t: f64, rho: &[f64; MAX_J]) -> [f64; MAX_J] {
     let ne = nj - 1;
-    let t2 = t * t;
     let jb = SEG_HEAD + 4 * nj;
     let db = jb + nj * ne;
     let mut c = [0.0f64; MAX_J];
     for q in 0..nj {
-        let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
-        let poly = (p[0] + p[1] * t) + t2 * (p[2] + p[3] * t);
+        let poly = seg_line(sg, q, t);
         let mut corr = 0.0;
         for k in 0..ne {
             corr += (sg[jb + q * ne + k] + t * sg[db + q * ne + k]) * rho[k];
@@ -1227,6 +1191,26 @@ pub fn seg_eval(sg: &[f64], nj: usize, t: f64, rho: &[f64; MAX_J]) -> [f64; MAX_
         c[q] = poly + corr;
     }
     c
+}
+
+/// Junction `q`'s value on the table's line in a sub-interval at local `t` in `[0, 1]` (its
+/// cubic, Estrin's scheme).
+#[inline(always)]
+pub fn seg_line(sg: &[f64], q: usize, t: f64) -> f64 {
+    let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
+    (p[0] + p[1] * t) + t * t * (p[2] + p[3] * t)
+}
+
+/// The integral of each junction's cubic over a sub-interval from its start to local `t`,
+/// A V: the quartic `width (p0 t + p1 t^2 / 2 + p2 t^3 / 3 + p3 t^4 / 4)`.
+pub fn seg_integral(sg: &[f64], nj: usize, t: f64) -> [f64; MAX_J] {
+    let width = 1.0 / sg[1];
+    let mut out = [0.0f64; MAX_J];
+    for (q, o) in out.iter_mut().enumerate().take(nj) {
+        let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
+        *o = width * t * (p[0] + t * (p[1] / 2.0 + t * (p[2] / 3.0 + t * p[3] / 4.0)));
+    }
+    out
 }
 
 /// What one table block writes: the node values, the group's state, the step counts, the

@@ -28,7 +28,7 @@
 //! `n`; the network output is [`crate::engine::shaper::LOOKAHEAD`] samples late, so they
 //! are there.
 
-use crate::circuit::diode::{seg_eval, DiodeTable, ISEG_HEAD, MAX_J};
+use crate::circuit::diode::{seg_line, DiodeTable, MAX_J, SEG_HEAD};
 
 /// Records before the block the correction reads (`n - 2` for the block's first pending
 /// sample, `n = -2`).
@@ -73,8 +73,8 @@ pub struct KneeAa {
     /// The output's part per junction current, V/A.
     pub g: [f64; MAX_J],
     /// `R` per sub-interval of the table ([`RSTRIDE`] values: its start, `1 / width`, `R`
-    /// at its start and the quartic in the local `t` that adds the rest), the junctions'
-    /// antiderivatives (`DiodeTable::iseg`) weighted by `g`: one cache line per lookup.
+    /// at its start and the quartic in the local `t` that adds the rest: the junctions'
+    /// cubics integrated and weighted by `g`): one cache line per lookup.
     pub rtab: Vec<f64>,
 }
 
@@ -85,24 +85,27 @@ impl KneeAa {
     /// The correction for output weights `g` (per junction current) of a group whose table
     /// is `tab` with `nj` junctions.
     pub fn new(group: usize, nj: usize, g: [f64; MAX_J], tab: &DiodeTable) -> KneeAa {
-        let w = ISEG_HEAD + 5 * nj;
-        let mut rtab = Vec::with_capacity(tab.iseg.len() / w * RSTRIDE);
-        for sg in tab.iseg.chunks_exact(w) {
-            let mut r = [0.0; RSTRIDE];
-            r[..2].copy_from_slice(&sg[..2]);
+        let mut rtab = Vec::with_capacity(tab.seg.len() / tab.stride * RSTRIDE);
+        let mut run = 0.0;
+        for sg in tab.seg.chunks_exact(tab.stride) {
+            // the quartic's coefficients of t .. t^4, weighted by g
+            let width = 1.0 / sg[1];
+            let mut a = [0.0; 4];
             for q in 0..nj {
-                for (k, x) in r[2..7].iter_mut().enumerate() {
-                    *x += g[q] * sg[ISEG_HEAD + 5 * q + k];
+                let p = &sg[SEG_HEAD + 4 * q..SEG_HEAD + 4 * q + 4];
+                for (k, x) in a.iter_mut().enumerate() {
+                    *x += g[q] * width * p[k] / (k + 1) as f64;
                 }
             }
-            rtab.extend_from_slice(&r);
+            rtab.extend_from_slice(&[sg[0], sg[1], run, a[0], a[1], a[2], a[3], 0.0]);
+            run += a.iter().sum::<f64>();
         }
         KneeAa { group, nj, g, rtab }
     }
 
     /// `R(s)`: the antiderivative of the currents' part; `None` outside the table.
     #[inline(always)]
-    fn big_r(&self, tab: &DiodeTable, s: f64) -> Option<f64> {
+    pub fn big_r(&self, tab: &DiodeTable, s: f64) -> Option<f64> {
         let xf = (s - tab.s0) * tab.inv_hf;
         if !(xf >= 0.0 && xf < tab.slot.len() as f64) {
             return None;
@@ -122,29 +125,12 @@ impl KneeAa {
         Some((0..self.nj).map(|q| self.g[q] * c[q]).sum())
     }
 
-    /// [`KneeAa::big_r`], for tests.
-    pub fn big_r_fast(&self, tab: &DiodeTable, s: f64) -> Option<f64> {
-        self.big_r(tab, s)
-    }
-
     /// `r(s)` from the table, on its line; `None` outside it.
     #[inline(always)]
     pub fn r(&self, tab: &DiodeTable, s: f64) -> Option<f64> {
         let (base, t) = tab.locate(s)?;
-        let c = seg_eval(&tab.seg[base..base + tab.stride], self.nj, t, &[0.0; MAX_J]);
-        Some((0..self.nj).map(|q| self.g[q] * c[q]).sum())
-    }
-
-    /// The band-limited currents' part at the sample whose coordinates around it are
-    /// `w = [s(n-2), ..., s(n+2)]`; `None` outside the table (the reference for one sample
-    /// of [`KneeAa::apply`]).
-    pub fn mean_r(&self, tab: &DiodeTable, w: &[f64; 5]) -> Option<f64> {
-        let mid = |k: usize| (-w[k] + 9.0 * w[k + 1] + 9.0 * w[k + 2] - w[k + 3]) / 16.0;
-        let (lo, hi) = (mid(0), mid(1));
-        if (hi - lo).abs() < MIN_SPAN {
-            return self.r(tab, 0.5 * (lo + hi));
-        }
-        Some((self.big_r(tab, hi)? - self.big_r(tab, lo)?) / (hi - lo))
+        let sg = &tab.seg[base..base + tab.stride];
+        Some((0..self.nj).map(|q| self.g[q] * seg_line(sg, q, t)).sum())
     }
 
     /// Correct a block: `taps` holds the table loop's record ([`tap`], [`REC`] values per

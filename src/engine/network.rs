@@ -112,9 +112,7 @@ impl NetPlan {
                 .find_map(|(gi, g)| g.amps.iter().position(|ac| ac.amp == a).map(|j| (gi, j)))
         });
     }
-}
 
-impl NetPlan {
     /// The knee correction of the output, when the output is a node of a diode group with
     /// the table (no op-amp, one varying input, no noise) and no op-amp drives it.
     fn knee_of_output(&self) -> Option<KneeAa> {
