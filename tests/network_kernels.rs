@@ -123,6 +123,78 @@ fn small_group_kernel_crosses_into_and_out_of_the_nonlinear_region() {
     }
 }
 
+// A ring of seven inverting stages of gain -1/2 each (a loop gain of -1/128: negative
+// feedback, no capacitor): the op-amps' outputs spread over more rows than the vector
+// segment keeps extremes for, so their peaks come from their rows written out.
+fn ring7() -> String {
+    let mut amps = Vec::new();
+    let mut parts = vec!["{ r = \"20k\", ends = [\"osc\", \"m0\"] }".to_string()];
+    for i in 0..7 {
+        amps.push(format!(
+            "{{ part = \"jfet-general\", plus = \"gnd\", minus = \"m{i}\", out = \"y{i}\" }}"
+        ));
+        parts.push(format!(
+            "{{ r = \"20k\", ends = [\"y{i}\", \"m{}\"] }}",
+            (i + 1) % 7
+        ));
+        parts.push(format!("{{ r = \"10k\", ends = [\"m{i}\", \"y{i}\"] }}"));
+    }
+    format!(
+        "amps = [{}]\nparts = [{}]\nout = \"y6\"\n",
+        amps.join(", "),
+        parts.join(", ")
+    )
+}
+
+/// Every op-amp's lowest and highest output over a render, kernels on or off.
+fn amp_peaks(text: &str, kernels: bool) -> Vec<(String, f64, f64)> {
+    let p = railsong::patch::parse_str(text, "t.toml", std::path::Path::new("."), &[])
+        .expect("test patch");
+    let plan = railsong::engine::compile(&p).expect("compiles");
+    let mut eng = railsong::engine::Engine::new(&plan);
+    eng.set_group_kernels(kernels);
+    let mut out = vec![0.0; p.frames()];
+    eng.process(&mut [&mut out[..]]);
+    assert!(eng.failure().is_none(), "{:?}", eng.failure());
+    eng.events()
+        .into_iter()
+        .map(|e| {
+            let hi = e.peak_pos_v.expect("a peak");
+            let lo = e.peak_neg_v.expect("a peak");
+            (e.stage, lo, hi)
+        })
+        .collect()
+}
+
+// The op-amps' peaks: the kernel keeps its segments' extremes in registers (or, past two
+// vectors of rows, takes them from the rows written out) and widens them at every
+// nonlinear step; the generic path takes every sample's node value. The same peaks to
+// rounding, clean and clipping.
+#[test]
+fn op_amp_peaks_match_the_generic_path() {
+    let ring = ring7();
+    for (name, net, f, amp) in [
+        ("state-variable filter", SVF, 997.0, 0.5),
+        ("state-variable filter, clipping", SVF, 997.0, 4.0),
+        ("two-integrator loop", LOOP, 1590.0, 1.0),
+        ("ring of seven", ring.as_str(), 997.0, 1.0),
+        ("ring of seven, clipping", ring.as_str(), 997.0, 30.0),
+    ] {
+        let text = case(net, f, amp, false);
+        let a = amp_peaks(&text, true);
+        let b = amp_peaks(&text, false);
+        assert_eq!(a.len(), b.len(), "{name}");
+        for ((na, la, ha), (_, lb, hb)) in a.iter().zip(&b) {
+            let tol = 1e-9 * (1.0 + hb.abs().max(lb.abs()));
+            assert!(
+                (la - lb).abs() < tol && (ha - hb).abs() < tol,
+                "{name}, {na}: kernel {la} .. {ha}, generic {lb} .. {hb}"
+            );
+            assert!(ha > la, "{name}, {na}: the output moves");
+        }
+    }
+}
+
 // Circuit noise on: the group's draws are extra inputs of the kernel's matrix; the same
 // draws give the same samples as the generic path, clean and clipping.
 #[test]

@@ -61,6 +61,9 @@ pub struct SmallKernel {
     pub full: Vec<f64>,
     /// Group nodes read outside the group: (circuit node, row).
     pub node_rows: Vec<(usize, usize)>,
+    /// Per op-amp of the group: the row of its output (its peaks are taken from the
+    /// rows' running extremes, not from a stored block).
+    pub amp_rows: Vec<usize>,
     /// The state columns of `m` that feed back (`nsig` columns of `rp`), for the vector
     /// path.
     pub mz: Vec<f64>,
@@ -254,6 +257,7 @@ impl SmallKernel {
             .into_iter()
             .map(|(n, r)| (n, new_row[r]))
             .collect();
+        let amp_rows = (0..na).map(|j| new_row[nc + j]).collect();
         let mz = m[..nsig * rp].to_vec();
         let mut k = SmallKernel {
             diode: None,
@@ -274,6 +278,7 @@ impl SmallKernel {
             hi,
             full,
             node_rows,
+            amp_rows,
         };
         k.diode = super::diode::DiodeStep::compile(c, gp, &k);
         Some(k)
@@ -331,6 +336,17 @@ pub struct KernelRun {
     stale: bool,
     /// Scratch rows.
     acc: Vec<f64>,
+    /// Every row's lowest (first `rp`) and highest (next `rp`) value over the last
+    /// segment's steps (the vector segment: only the rows in vectors `pk`).
+    ext: Vec<f64>,
+    /// The (at most two) vectors of four rows that hold the op-amps' outputs
+    /// (`usize::MAX`: none), whose extremes the vector segment keeps.
+    pk: [usize; 2],
+    /// Where the op-amps' outputs are written out instead (their rows spread over more
+    /// than two vectors): the index in `ob` of the first.
+    pk_ob: Option<usize>,
+    /// Outputs copied to the node buffers (node rows, then the drive).
+    nout: usize,
 }
 
 impl KernelRun {
@@ -341,6 +357,19 @@ impl KernelRun {
         if let Some(j) = drive {
             orow.push(k.state_row(nc + j));
         }
+        let nout = orow.len();
+        // the op-amps' peaks: from the vector segment's running extremes when their rows
+        // lie in at most two vectors, else from their rows written out
+        let mut vecs: Vec<usize> = k.amp_rows.iter().map(|&r| r / 4).collect();
+        vecs.sort_unstable();
+        vecs.dedup();
+        let (pk, pk_ob) = if vecs.len() <= 2 {
+            let v = |i: usize| vecs.get(i).copied().unwrap_or(usize::MAX);
+            ([v(0), v(1)], None)
+        } else {
+            orow.extend(&k.amp_rows);
+            ([usize::MAX; 2], Some(nout))
+        };
         KernelRun {
             xw: vec![0.0; block * (k.nk + k.nw)],
             ob: vec![vec![0.0; block]; orow.len()],
@@ -352,6 +381,10 @@ impl KernelRun {
             dhist: super::diode::DiodeHist::default(),
             stale: false,
             acc: vec![0.0; k.rp],
+            ext: vec![0.0; 2 * k.rp],
+            pk,
+            pk_ob,
+            nout,
         }
     }
 
@@ -389,13 +422,15 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
     xw: &[f64],
     ob: &mut [Vec<f64>],
     orow: &[usize],
+    pk: [usize; 2],
+    ext: &mut [f64],
     from: usize,
     n: usize,
 ) -> usize {
     use std::arch::x86_64::{
         _mm256_add_pd, _mm256_and_pd, _mm256_broadcast_sd, _mm256_cmp_pd, _mm256_fmadd_pd,
-        _mm256_loadu_pd, _mm256_movemask_pd, _mm256_setzero_pd, _mm256_storeu_pd, _CMP_GE_OQ,
-        _CMP_LE_OQ,
+        _mm256_loadu_pd, _mm256_max_pd, _mm256_min_pd, _mm256_movemask_pd, _mm256_set1_pd,
+        _mm256_setzero_pd, _mm256_storeu_pd, _CMP_GE_OQ, _CMP_LE_OQ,
     };
     let r = 4 * G;
     let nz = k.nz;
@@ -406,6 +441,7 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
     assert!(k.m.len() >= k.ncol * r && xw.len() >= n * (k.nk + k.nw));
     assert!(ob.len() >= no && no <= 8 && ob.iter().all(|o| o.len() >= n));
     assert!(zi.len() >= nz && zpi.len() >= nz && nz <= r && orow.iter().all(|&o| o < r));
+    assert!(ext.len() >= 2 * r);
     let mzp = k.mz.as_ptr();
     let mp = k.m.as_ptr();
     let xwp = xw.as_ptr();
@@ -421,6 +457,11 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
         hi[g] = _mm256_loadu_pd(k.hi.as_ptr().add(4 * g));
         cst[g] = _mm256_loadu_pd(mp.add(kc * r + 4 * g));
     }
+    // the lowest and highest value over the steps taken of the rows in vectors `pk[0]`
+    // and `pk[1]` (the op-amps' outputs, for their peaks; `usize::MAX`: none): two pairs
+    // of registers, not one per vector (those would spill)
+    let mut mn = [_mm256_set1_pd(f64::INFINITY); 2];
+    let mut mx = [_mm256_set1_pd(f64::NEG_INFINITY); 2];
     // the last two steps' rows (state first) and the step being taken, in rotation
     let mut rows = [[0.0f64; 32]; 3];
     rows[0][..nz].copy_from_slice(&zi[..nz]);
@@ -483,8 +524,10 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
         }
         let mut bad = 0;
         let nxt = rows[next].as_mut_ptr();
+        let mut av = [_mm256_setzero_pd(); G];
         for g in 0..G {
             let a = _mm256_add_pd(a0[g], a1[g]);
+            av[g] = a;
             let ok = _mm256_and_pd(
                 _mm256_cmp_pd::<_CMP_GE_OQ>(a, lo[g]),
                 _mm256_cmp_pd::<_CMP_LE_OQ>(a, hi[g]),
@@ -495,6 +538,15 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
         }
         if bad != 0 {
             break;
+        }
+        for g in 0..G {
+            // (loop-invariant tests on an unrolled loop)
+            for q in 0..2 {
+                if g == pk[q] {
+                    mn[q] = _mm256_min_pd(mn[q], av[g]);
+                    mx[q] = _mm256_max_pd(mx[q], av[g]);
+                }
+            }
         }
         let out = &rows[next];
         for (&(dst, row), _) in optr.iter().zip(0..no) {
@@ -507,6 +559,13 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
     if t > from {
         zi[..nz].copy_from_slice(&rows[cur][..nz]);
         zpi[..nz].copy_from_slice(&rows[prev][..nz]);
+    }
+    for q in 0..2 {
+        if pk[q] < G {
+            // SAFETY: `ext` holds 2 r entries (checked above), 4 pk + 3 < r.
+            _mm256_storeu_pd(ext.as_mut_ptr().add(4 * pk[q]), mn[q]);
+            _mm256_storeu_pd(ext.as_mut_ptr().add(r + 4 * pk[q]), mx[q]);
+        }
     }
     t
 }
@@ -522,6 +581,7 @@ fn segment_any(
     ob: &mut [Vec<f64>],
     orow: &[usize],
     acc: &mut [f64],
+    ext: &mut [f64],
     from: usize,
     n: usize,
 ) -> usize {
@@ -529,6 +589,9 @@ fn segment_any(
     let nx = k.nk + k.nw;
     let kc = k.ncol - 1;
     let rp = k.rp;
+    let (lo, hi) = ext[..2 * rp].split_at_mut(rp);
+    lo.fill(f64::INFINITY);
+    hi.fill(f64::NEG_INFINITY);
     let mut t = from;
     while t < n {
         acc[..rp].copy_from_slice(&k.m[kc * rp..(kc + 1) * rp]);
@@ -540,6 +603,10 @@ fn segment_any(
         }
         if !k.inside(acc) {
             break;
+        }
+        for ((l, h), &a) in lo.iter_mut().zip(hi.iter_mut()).zip(&acc[..rp]) {
+            *l = l.min(a);
+            *h = h.max(a);
         }
         for (i, &r) in orow.iter().enumerate() {
             ob[i][t] = acc[r];
@@ -564,6 +631,8 @@ fn run_segment(k: &SmallKernel, z: &mut [f64], kr: &mut KernelRun, from: usize, 
         zi,
         zpi,
         acc,
+        ext,
+        pk,
         ..
     } = kr;
     let nz = k.nz;
@@ -586,15 +655,15 @@ fn run_segment(k: &SmallKernel, z: &mut [f64], kr: &mut KernelRun, from: usize, 
                 macro_rules! by_ns {
                     ($g:literal) => {
                         match k.nsig {
-                            1 => segment_avx2::<$g, 1>(k, zi, zpi, xw, ob, orow, from, n),
-                            2 => segment_avx2::<$g, 2>(k, zi, zpi, xw, ob, orow, from, n),
-                            3 => segment_avx2::<$g, 3>(k, zi, zpi, xw, ob, orow, from, n),
-                            4 => segment_avx2::<$g, 4>(k, zi, zpi, xw, ob, orow, from, n),
-                            5 => segment_avx2::<$g, 5>(k, zi, zpi, xw, ob, orow, from, n),
-                            6 => segment_avx2::<$g, 6>(k, zi, zpi, xw, ob, orow, from, n),
-                            7 => segment_avx2::<$g, 7>(k, zi, zpi, xw, ob, orow, from, n),
-                            8 => segment_avx2::<$g, 8>(k, zi, zpi, xw, ob, orow, from, n),
-                            _ => segment_avx2::<$g, 0>(k, zi, zpi, xw, ob, orow, from, n),
+                            1 => segment_avx2::<$g, 1>(k, zi, zpi, xw, ob, orow, *pk, ext, from, n),
+                            2 => segment_avx2::<$g, 2>(k, zi, zpi, xw, ob, orow, *pk, ext, from, n),
+                            3 => segment_avx2::<$g, 3>(k, zi, zpi, xw, ob, orow, *pk, ext, from, n),
+                            4 => segment_avx2::<$g, 4>(k, zi, zpi, xw, ob, orow, *pk, ext, from, n),
+                            5 => segment_avx2::<$g, 5>(k, zi, zpi, xw, ob, orow, *pk, ext, from, n),
+                            6 => segment_avx2::<$g, 6>(k, zi, zpi, xw, ob, orow, *pk, ext, from, n),
+                            7 => segment_avx2::<$g, 7>(k, zi, zpi, xw, ob, orow, *pk, ext, from, n),
+                            8 => segment_avx2::<$g, 8>(k, zi, zpi, xw, ob, orow, *pk, ext, from, n),
+                            _ => segment_avx2::<$g, 0>(k, zi, zpi, xw, ob, orow, *pk, ext, from, n),
                         }
                     };
                 }
@@ -603,10 +672,18 @@ fn run_segment(k: &SmallKernel, z: &mut [f64], kr: &mut KernelRun, from: usize, 
                     8 => Some(by_ns!(2)),
                     12 => Some(by_ns!(3)),
                     16 => Some(by_ns!(4)),
-                    20 => Some(segment_avx2::<5, 0>(k, zi, zpi, xw, ob, orow, from, n)),
-                    24 => Some(segment_avx2::<6, 0>(k, zi, zpi, xw, ob, orow, from, n)),
-                    28 => Some(segment_avx2::<7, 0>(k, zi, zpi, xw, ob, orow, from, n)),
-                    32 => Some(segment_avx2::<8, 0>(k, zi, zpi, xw, ob, orow, from, n)),
+                    20 => Some(segment_avx2::<5, 0>(
+                        k, zi, zpi, xw, ob, orow, *pk, ext, from, n,
+                    )),
+                    24 => Some(segment_avx2::<6, 0>(
+                        k, zi, zpi, xw, ob, orow, *pk, ext, from, n,
+                    )),
+                    28 => Some(segment_avx2::<7, 0>(
+                        k, zi, zpi, xw, ob, orow, *pk, ext, from, n,
+                    )),
+                    32 => Some(segment_avx2::<8, 0>(
+                        k, zi, zpi, xw, ob, orow, *pk, ext, from, n,
+                    )),
                     _ => None,
                 };
             }
@@ -614,7 +691,7 @@ fn run_segment(k: &SmallKernel, z: &mut [f64], kr: &mut KernelRun, from: usize, 
     }
     let t = match done {
         Some(t) => t,
-        None => segment_any(k, zi, zpi, xw, ob, orow, acc, from, n),
+        None => segment_any(k, zi, zpi, xw, ob, orow, acc, ext, from, n),
     };
     if t > from {
         let nx = k.nk + k.nw;
@@ -646,6 +723,9 @@ pub struct BlockIo<'a> {
     /// Where a diode group's table loop records each sample for the knee correction
     /// (`engine::knee::Tap`), when it is taken.
     pub knee: Option<crate::engine::knee::Tap<'a>>,
+    /// Per op-amp of the circuit: its lowest and highest output so far (the group's
+    /// op-amps' entries are widened by the block's steps).
+    pub peaks: &'a mut [(f64, f64)],
 }
 
 /// The band-limited corrections of a network drive's slope corners over a block, entry `i`
@@ -807,8 +887,20 @@ pub fn run_block(
                 kr.stale = true;
                 kr.dhist.n = 0;
                 counts.0 += (t - from) as u64;
+                for (j, (ac, &row)) in gp.amps.iter().zip(&k.amp_rows).enumerate() {
+                    let (lo, hi) = match kr.pk_ob {
+                        Some(i) => kr.ob[i + j][from..t]
+                            .iter()
+                            .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &x| {
+                                (l.min(x), h.max(x))
+                            }),
+                        None => (kr.ext[row], kr.ext[k.rp + row]),
+                    };
+                    let pk = &mut io.peaks[ac.amp];
+                    *pk = (pk.0.min(lo), pk.1.max(hi));
+                }
                 let mut targets = k.node_rows.iter().map(|&(node, _)| node);
-                for ob in kr.ob.iter_mut() {
+                for ob in kr.ob[..kr.nout].iter_mut() {
                     let node = targets.next().unwrap_or(nnodes);
                     if from == 0 && t == n && ob.len() == io.slots[node].len() {
                         std::mem::swap(ob, &mut io.slots[node]);
@@ -861,6 +953,11 @@ pub fn run_block(
         }
         for &node in io.writes {
             io.slots[node][t] = vn[node];
+        }
+        for ac in &gp.amps {
+            let v = vn[c.amps[ac.amp].out];
+            let pk = &mut io.peaks[ac.amp];
+            *pk = (pk.0.min(v), pk.1.max(v));
         }
         if let Some(j) = io.drive {
             io.slots[nnodes][t] = st.z[nc + j];
@@ -929,6 +1026,7 @@ from = "svf"
         let mut zp_any = z0.clone();
         let mut ob_any = vec![vec![0.0; n]; kr.orow.len()];
         let mut acc = vec![0.0; k.rp];
+        let mut ext_any = vec![0.0; 2 * k.rp];
         let t_any = segment_any(
             k,
             &mut z_any,
@@ -937,6 +1035,7 @@ from = "svf"
             &mut ob_any,
             &kr.orow,
             &mut acc,
+            &mut ext_any,
             0,
             n,
         );
@@ -951,17 +1050,34 @@ from = "svf"
                 let mut z_v = z0.clone();
                 let mut zp_v = z0.clone();
                 let mut ob_v = vec![vec![0.0; n]; kr.orow.len()];
+                let mut ext_v = vec![0.0; 2 * k.rp];
                 // SAFETY: the CPU has AVX2 and FMA (checked); rp is 12.
                 let t_v = unsafe {
                     if fixed {
-                        segment_avx2::<3, 5>(k, &mut z_v, &mut zp_v, &xw, &mut ob_v, &kr.orow, 0, n)
+                        segment_avx2::<3, 5>(
+                            k, &mut z_v, &mut zp_v, &xw, &mut ob_v, &kr.orow, kr.pk, &mut ext_v, 0,
+                            n,
+                        )
                     } else {
-                        segment_avx2::<3, 0>(k, &mut z_v, &mut zp_v, &xw, &mut ob_v, &kr.orow, 0, n)
+                        segment_avx2::<3, 0>(
+                            k, &mut z_v, &mut zp_v, &xw, &mut ob_v, &kr.orow, kr.pk, &mut ext_v, 0,
+                            n,
+                        )
                     }
                 };
                 assert_eq!(t_v, n);
                 for (a, b) in ob_any.iter().flatten().zip(ob_v.iter().flatten()) {
                     assert!((a - b).abs() <= 1e-12 * (1.0 + a.abs()), "{a} {b}");
+                }
+                // the op-amps' rows' extremes (their peaks) are those of the plain segment
+                assert!(kr.pk_ob.is_none(), "three op-amps' rows fit two vectors");
+                for &row in &k.amp_rows {
+                    for (a, b) in [
+                        (ext_any[row], ext_v[row]),
+                        (ext_any[k.rp + row], ext_v[k.rp + row]),
+                    ] {
+                        assert!((a - b).abs() <= 1e-12 * (1.0 + a.abs()), "{a} {b}");
+                    }
                 }
                 for (a, b) in z_any.iter().zip(&z_v).chain(zp_any.iter().zip(&zp_v)) {
                     assert!((a - b).abs() <= 1e-12 * (1.0 + a.abs()), "{a} {b}");
@@ -970,5 +1086,16 @@ from = "svf"
         }
         let big = ob_any.iter().flatten().fold(0.0f64, |a, &x| a.max(x.abs()));
         assert!(big > 0.01, "the walk moves the outputs: {big}");
+        // the plain segment's extremes against the outputs it wrote (the drive is the
+        // low-pass op-amp's output row)
+        let row = *kr.orow.last().expect("the drive's row");
+        let (lo, hi) = ob_any
+            .last()
+            .expect("the drive")
+            .iter()
+            .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &x| {
+                (l.min(x), h.max(x))
+            });
+        assert_eq!((ext_any[row], ext_any[k.rp + row]), (lo, hi));
     }
 }

@@ -54,8 +54,9 @@ pub struct NetPlan {
     pub noise_seed: u64,
     /// Per group of the circuit: its small-group kernel (none without a linear fast path).
     pub kernels: Vec<Option<SmallKernel>>,
-    /// Per group: its nodes read outside it (by later groups, as the output, as exports,
-    /// an op-amp's output for its peaks), written per sample.
+    /// Per group: its nodes read outside it (by later groups, as a passive output, as
+    /// exports), written per sample. An op-amp's output read only for its peaks is not
+    /// (its group's steps widen the peaks).
     pub writes: Vec<Vec<usize>>,
     /// The group and in-group index of the op-amp driving the output.
     pub drive: Option<(usize, usize)>,
@@ -78,12 +79,13 @@ impl NetPlan {
                 add(n, &mut needed);
             }
         }
-        add(self.out, &mut needed);
+        // the output node, unless an op-amp drives it (the output is then read from the
+        // drive, the op-amp's state); the op-amps' peaks are taken in the groups' steps
+        if self.out_amp.is_none() {
+            add(self.out, &mut needed);
+        }
         for &(n, _) in &self.exports {
             add(n, &mut needed);
-        }
-        for a in &c.amps {
-            add(a.out, &mut needed);
         }
         self.writes = self
             .circuit
@@ -400,6 +402,7 @@ pub(crate) fn net_block(
             w: &nr.wbuf[..b * nw],
             edges: (antialias && drive.is_some()).then_some(&mut nr.edges),
             knee,
+            peaks: &mut nr.peaks,
         };
         let r = run_block(
             c,
@@ -441,10 +444,6 @@ pub(crate) fn net_block(
             };
             nr.slots[nnodes][limit..b].fill(last);
         }
-    }
-    for (pk, a) in nr.peaks.iter_mut().zip(&c.amps) {
-        let (lo, hi) = crate::engine::run::min_max(&nr.slots[a.out][..limit]);
-        *pk = (pk.0.min(lo), pk.1.max(hi));
     }
     for (k, &(n, _)) in np.exports.iter().enumerate() {
         nr.ex_vals[k][..b].copy_from_slice(&nr.slots[n][..b]);
