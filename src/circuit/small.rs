@@ -396,6 +396,23 @@ impl KernelRun {
     }
 }
 
+/// Lane `l` of `v` in every lane.
+///
+/// # Safety
+/// The CPU must support AVX2.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+#[inline]
+unsafe fn lane(v: std::arch::x86_64::__m256d, l: usize) -> std::arch::x86_64::__m256d {
+    use std::arch::x86_64::_mm256_permute4x64_pd;
+    match l {
+        0 => _mm256_permute4x64_pd::<0x00>(v),
+        1 => _mm256_permute4x64_pd::<0x55>(v),
+        2 => _mm256_permute4x64_pd::<0xAA>(v),
+        _ => _mm256_permute4x64_pd::<0xFF>(v),
+    }
+}
+
 /// The kernel's steps from sample `from` while every check row stays inside its limits,
 /// with AVX2 vectors: the state (internal order) in `zi` (updated; the state before the
 /// last step taken into `zpi`), the per-sample inputs in `xw`, output `i` of sample `t`
@@ -403,12 +420,13 @@ impl KernelRun {
 /// (or `n`).
 ///
 /// Each step is the constant and the inputs' part (independent of the state, so it
-/// overlaps) plus the state that feeds back (`nsig` entries, each
-/// broadcast from the last step's stored rows) times its column, in four partial sums with
-/// fused multiply-adds (the loop-carried chain is a broadcast load, about `nsig / 4`
-/// multiply-adds and two adds); the rows stay in `G` vectors of four. The sums are taken
-/// in another order than [`segment_any`] (both agree with the generic path to rounding).
-/// `NS` is `k.nsig` fixed at compile time, or 0 to read it from `k`.
+/// overlaps) plus the state that feeds back (`nsig` entries) times its column, in four
+/// partial sums with fused multiply-adds; the rows stay in `G` vectors of four. With `NS`
+/// (`k.nsig` fixed at compile time) each state entry is broadcast from the last step's rows
+/// held in registers (a permute: the loop-carried chain is a permute and `NS / 4 + 1`
+/// multiply-adds, about 3 % on the network bench's clipper); with `NS` = 0 (read from `k`)
+/// from the rows stored (a store and a reload on the chain). The sums are taken in another
+/// order than [`segment_any`] (both agree with the generic path to rounding).
 ///
 /// # Safety
 /// The CPU must support AVX2 and FMA; `k.rp == 4 G`.
@@ -429,8 +447,8 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
 ) -> usize {
     use std::arch::x86_64::{
         _mm256_add_pd, _mm256_and_pd, _mm256_broadcast_sd, _mm256_cmp_pd, _mm256_fmadd_pd,
-        _mm256_loadu_pd, _mm256_max_pd, _mm256_min_pd, _mm256_movemask_pd, _mm256_set1_pd,
-        _mm256_setzero_pd, _mm256_storeu_pd, _CMP_GE_OQ, _CMP_LE_OQ,
+        _mm256_loadu_pd, _mm256_max_pd, _mm256_min_pd, _mm256_movemask_pd, _mm256_mul_pd,
+        _mm256_set1_pd, _mm256_setzero_pd, _mm256_storeu_pd, _CMP_GE_OQ, _CMP_LE_OQ,
     };
     let r = 4 * G;
     let nz = k.nz;
@@ -467,6 +485,12 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
     rows[0][..nz].copy_from_slice(&zi[..nz]);
     rows[1][..nz].copy_from_slice(&zpi[..nz]);
     let (mut cur, mut prev, mut next) = (0, 1, 2);
+    // the last step's rows in registers (the state's part reads them)
+    let mut zr = [_mm256_setzero_pd(); G];
+    for (g, z) in zr.iter_mut().enumerate() {
+        // SAFETY: 4 g + 3 < r <= 32: inside the row.
+        *z = _mm256_loadu_pd(rows[cur].as_ptr().add(4 * g));
+    }
     // the output buffers' pointers (at most eight outputs, else the plain segment)
     let mut optr = [(std::ptr::null_mut::<f64>(), 0usize); 8];
     for ((p, o), &row) in optr.iter_mut().zip(ob.iter_mut()).zip(orow) {
@@ -486,47 +510,88 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
                 *a = _mm256_fmadd_pd(m, xv, *a);
             }
         }
-        // the state's part in two more partial sums, four columns at a time (the chain
-        // is then about `nsig / 4` multiply-adds deep)
-        let mut a2 = [_mm256_setzero_pd(); G];
-        let mut a3 = [_mm256_setzero_pd(); G];
-        let mut i = 0;
-        while i + 3 < ns {
-            // SAFETY: i + 3 < ns <= nz <= 32; columns i .. i + 3 of `mz`.
-            let v0 = _mm256_broadcast_sd(&*zs.add(i));
-            let v1 = _mm256_broadcast_sd(&*zs.add(i + 1));
-            let v2 = _mm256_broadcast_sd(&*zs.add(i + 2));
-            let v3 = _mm256_broadcast_sd(&*zs.add(i + 3));
-            for g in 0..G {
-                a0[g] = _mm256_fmadd_pd(_mm256_loadu_pd(mzp.add(i * r + 4 * g)), v0, a0[g]);
-                a1[g] = _mm256_fmadd_pd(_mm256_loadu_pd(mzp.add((i + 1) * r + 4 * g)), v1, a1[g]);
-                a2[g] = _mm256_fmadd_pd(_mm256_loadu_pd(mzp.add((i + 2) * r + 4 * g)), v2, a2[g]);
-                a3[g] = _mm256_fmadd_pd(_mm256_loadu_pd(mzp.add((i + 3) * r + 4 * g)), v3, a3[g]);
-            }
-            i += 4;
-        }
-        while i < ns {
-            // SAFETY: as above.
-            let v = _mm256_broadcast_sd(&*zs.add(i));
-            for g in 0..G {
-                let m = _mm256_loadu_pd(mzp.add(i * r + 4 * g));
-                if i % 2 == 0 {
-                    a2[g] = _mm256_fmadd_pd(m, v, a2[g]);
-                } else {
-                    a3[g] = _mm256_fmadd_pd(m, v, a3[g]);
+        if NS > 0 {
+            // The state's part from the last step's rows held in registers (`zr`), each
+            // entry broadcast from its lane (a permute, not a store and a reload): the
+            // chain from one step's rows to the next is a permute and `NS / 4 + 1`
+            // multiply-adds, the constant and the inputs' part folded into the first.
+            let mut q = [[_mm256_setzero_pd(); G]; 4];
+            for ii in 0..NS {
+                let v = lane(zr[ii / 4], ii % 4);
+                for g in 0..G {
+                    // SAFETY: ii < NS == nsig <= nz <= 32: column ii of `mz`, row 4 g + 3 < r.
+                    let m = _mm256_loadu_pd(mzp.add(ii * r + 4 * g));
+                    q[ii % 4][g] = if ii == 0 {
+                        _mm256_fmadd_pd(m, v, _mm256_add_pd(a0[g], a1[g]))
+                    } else if ii < 4 {
+                        _mm256_mul_pd(m, v)
+                    } else {
+                        _mm256_fmadd_pd(m, v, q[ii % 4][g])
+                    };
                 }
             }
-            i += 1;
-        }
-        for g in 0..G {
-            a0[g] = _mm256_add_pd(a0[g], a2[g]);
-            a1[g] = _mm256_add_pd(a1[g], a3[g]);
+            for g in 0..G {
+                a0[g] = match NS {
+                    1 => q[0][g],
+                    2 => _mm256_add_pd(q[0][g], q[1][g]),
+                    3 => _mm256_add_pd(q[0][g], _mm256_add_pd(q[1][g], q[2][g])),
+                    _ => _mm256_add_pd(
+                        _mm256_add_pd(q[0][g], q[1][g]),
+                        _mm256_add_pd(q[2][g], q[3][g]),
+                    ),
+                };
+                a1[g] = _mm256_setzero_pd();
+            }
+        } else {
+            // the state's part in two more partial sums, four columns at a time (the chain
+            // is then about `nsig / 4` multiply-adds deep)
+            let mut a2 = [_mm256_setzero_pd(); G];
+            let mut a3 = [_mm256_setzero_pd(); G];
+            let mut i = 0;
+            while i + 3 < ns {
+                // SAFETY: i + 3 < ns <= nz <= 32; columns i .. i + 3 of `mz`.
+                let v0 = _mm256_broadcast_sd(&*zs.add(i));
+                let v1 = _mm256_broadcast_sd(&*zs.add(i + 1));
+                let v2 = _mm256_broadcast_sd(&*zs.add(i + 2));
+                let v3 = _mm256_broadcast_sd(&*zs.add(i + 3));
+                for g in 0..G {
+                    a0[g] = _mm256_fmadd_pd(_mm256_loadu_pd(mzp.add(i * r + 4 * g)), v0, a0[g]);
+                    a1[g] =
+                        _mm256_fmadd_pd(_mm256_loadu_pd(mzp.add((i + 1) * r + 4 * g)), v1, a1[g]);
+                    a2[g] =
+                        _mm256_fmadd_pd(_mm256_loadu_pd(mzp.add((i + 2) * r + 4 * g)), v2, a2[g]);
+                    a3[g] =
+                        _mm256_fmadd_pd(_mm256_loadu_pd(mzp.add((i + 3) * r + 4 * g)), v3, a3[g]);
+                }
+                i += 4;
+            }
+            while i < ns {
+                // SAFETY: as above.
+                let v = _mm256_broadcast_sd(&*zs.add(i));
+                for g in 0..G {
+                    let m = _mm256_loadu_pd(mzp.add(i * r + 4 * g));
+                    if i % 2 == 0 {
+                        a2[g] = _mm256_fmadd_pd(m, v, a2[g]);
+                    } else {
+                        a3[g] = _mm256_fmadd_pd(m, v, a3[g]);
+                    }
+                }
+                i += 1;
+            }
+            for g in 0..G {
+                a0[g] = _mm256_add_pd(a0[g], a2[g]);
+                a1[g] = _mm256_add_pd(a1[g], a3[g]);
+            }
         }
         let mut bad = 0;
         let nxt = rows[next].as_mut_ptr();
         let mut av = [_mm256_setzero_pd(); G];
         for g in 0..G {
-            let a = _mm256_add_pd(a0[g], a1[g]);
+            let a = if NS > 0 {
+                a0[g]
+            } else {
+                _mm256_add_pd(a0[g], a1[g])
+            };
             av[g] = a;
             let ok = _mm256_and_pd(
                 _mm256_cmp_pd::<_CMP_GE_OQ>(a, lo[g]),
@@ -539,6 +604,7 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
         if bad != 0 {
             break;
         }
+        zr = av;
         for g in 0..G {
             // (loop-invariant tests on an unrolled loop)
             for q in 0..2 {
