@@ -807,6 +807,8 @@ pub struct DriveEdges {
     /// of the drive plus `ocorr` (the band-limited clamp's local polynomial cannot follow a
     /// rail-to-rail jump).
     pub mask: Vec<bool>,
+    /// Whether any entry may be set (none: a block with no corner or edge skips them).
+    pub live: bool,
 }
 
 impl DriveEdges {
@@ -817,6 +819,7 @@ impl DriveEdges {
             corr: vec![0.0; n],
             ocorr: vec![0.0; n],
             mask: vec![false; n],
+            live: false,
         }
     }
 
@@ -825,6 +828,7 @@ impl DriveEdges {
         self.corr.fill(0.0);
         self.ocorr.fill(0.0);
         self.mask.fill(false);
+        self.live = false;
     }
 
     /// The corrections `w` of the step ending at sample `t`; `rev`: a reversal edge.
@@ -834,6 +838,7 @@ impl DriveEdges {
         if t + n > self.corr.len() {
             return;
         }
+        self.live = true;
         if rev {
             for (a, b) in self.ocorr[t..t + n].iter_mut().zip(w) {
                 *a += b;
@@ -849,6 +854,9 @@ impl DriveEdges {
     /// Move what falls past a block of `b` samples to the head (the next block's first
     /// samples) and clear the rest.
     pub fn carry(&mut self, b: usize) {
+        if !self.live {
+            return;
+        }
         // a step ending at the block's last sample touches two samples past it
         let la = crate::engine::shaper::LOOKAHEAD;
         let c: [f64; 2] = [self.corr[b + la], self.corr[b + la + 1]];
@@ -858,6 +866,7 @@ impl DriveEdges {
         self.corr[la..la + 2].copy_from_slice(&c);
         self.ocorr[la..la + 2].copy_from_slice(&o);
         self.mask[la..la + 2].copy_from_slice(&m);
+        self.live = c.iter().chain(&o).any(|&x| x != 0.0) || m.contains(&true);
     }
 }
 

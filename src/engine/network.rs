@@ -475,7 +475,7 @@ pub(crate) fn net_block(
     let x = &mut nr.slots[drive_slot][..b];
     let edges = antialias && np.drive.is_some();
     let mut marked = false;
-    if edges {
+    if edges && nr.edges.live {
         // the corners' corrections: the three samples before the block are still in the
         // clamp's history (not yet shaped), the two after it carry to the next block
         let e = &nr.edges;
@@ -488,8 +488,9 @@ pub(crate) fn net_block(
         for (xv, c) in x.iter_mut().zip(&e.corr[LOOKAHEAD..LOOKAHEAD + b]) {
             *xv += c;
         }
-        marked = nr.oh.iter().any(|o| o.1) || e.mask[LOOKAHEAD..LOOKAHEAD + b].contains(&true);
+        marked = e.mask[LOOKAHEAD..LOOKAHEAD + b].contains(&true);
     }
+    marked |= nr.oh.iter().any(|o| o.1);
     let x = &nr.slots[drive_slot][..b];
     match np.out_amp {
         Some(a) => {
