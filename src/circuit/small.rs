@@ -605,12 +605,12 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
             break;
         }
         zr = av;
-        for g in 0..G {
+        for (g, &a) in av.iter().enumerate() {
             // (loop-invariant tests on an unrolled loop)
             for q in 0..2 {
                 if g == pk[q] {
-                    mn[q] = _mm256_min_pd(mn[q], av[g]);
-                    mx[q] = _mm256_max_pd(mx[q], av[g]);
+                    mn[q] = _mm256_min_pd(mn[q], a);
+                    mx[q] = _mm256_max_pd(mx[q], a);
                 }
             }
         }

@@ -673,7 +673,9 @@ pub fn reversal_step(
         (false, true) => Some(full.enter_reversal(v0, mode, u(), sw)),
         (true, true) if mode != 0 => Some(ev.reversed(v0, mode, sw)),
         (true, false) => Some(full.leave_reversal(v0, mode, u(), sw, hold)),
-        (false, false) if mode != 0 => full.from_rail(v0, mode, sw, hold),
+        (false, false) if mode != 0 => full
+            .from_rail(v0, mode, sw, hold)
+            .or_else(|| full.into_rail(v0, mode, sw)),
         _ => None,
     }
 }
@@ -727,6 +729,30 @@ impl SlewStep {
         }
     }
 
+    /// The output's corners while the state ramps with slope `r` from `v` at `u` to the
+    /// step's end: where it enters the swing from past a rail (the output leaves the rail),
+    /// then where it reaches the other end ([`SlewStep::swing_corner`]). A state past a rail
+    /// and moving away from it leaves the output flat.
+    fn ramp_corners(out: &mut Stepped, v: f64, u: f64, r: f64, sw: Swing) {
+        let (mut v, mut u) = (v, u);
+        let lim = if v < sw.lo && r > 0.0 {
+            Some(sw.lo)
+        } else if v > sw.hi && r < 0.0 {
+            Some(sw.hi)
+        } else {
+            None
+        };
+        if let Some(lim) = lim {
+            let x = u + (lim - v) / r;
+            if x > 1.0 || x.is_nan() {
+                return;
+            }
+            out.push(x, r, 0.0);
+            (v, u) = (lim, x);
+        }
+        Self::swing_corner(out, v, u, r, sw);
+    }
+
     /// The step in which the loop turns positive at `u0` (the input leaves its range, the
     /// reversal factor crosses zero): up to `u0` the stage as in [`SlewStep::step`] (this
     /// step's `f` the factor before the crossing), from `u0` a ramp at the slew rate away
@@ -753,8 +779,12 @@ impl SlewStep {
             }
         };
         let r = self.ramp(s, vu);
-        out.push(u0, r - out.slope, -out.curv);
-        Self::swing_corner(&mut out, vu, u0, r, sw);
+        if vu >= sw.lo && vu <= sw.hi {
+            out.push(u0, r - out.slope, -out.curv);
+        }
+        // (from a state past a rail, the output is flat there until the ramp brings the
+        // state back inside the swing)
+        Self::ramp_corners(&mut out, vu, u0, r, sw);
         out.v = vu + r * (1.0 - u0);
         out.mode = s as i8;
         out.slope = r;
@@ -767,7 +797,7 @@ impl SlewStep {
     pub fn reversed(&self, v0: f64, mode: i8, sw: Swing) -> Stepped {
         let r = self.ramp(f64::from(mode), v0);
         let mut out = Stepped::default();
-        Self::swing_corner(&mut out, v0, 0.0, r, sw);
+        Self::ramp_corners(&mut out, v0, 0.0, r, sw);
         out.v = v0 + r;
         out.mode = mode;
         out.slope = r;
@@ -782,6 +812,51 @@ impl SlewStep {
     pub fn from_rail(&self, v0: f64, mode: i8, sw: Swing, hold: Swing) -> Option<Stepped> {
         let toward = (v0 > sw.hi && mode < 0) || (v0 < sw.lo && mode > 0);
         toward.then(|| self.leave_reversal(v0, 0, 0.0, sw, hold))
+    }
+
+    /// A step that ramps in direction `mode` from inside the swing into a rail (the ramp
+    /// after a reversal, on its way to the other rail): the plain ramp, with the output's
+    /// corner where it reaches the swing; `None` when the step is not a plain ramp or does
+    /// not reach the swing.
+    pub fn into_rail(&self, v0: f64, mode: i8, sw: Swing) -> Option<Stepped> {
+        if !(v0 >= sw.lo && v0 <= sw.hi) {
+            return None;
+        }
+        let rest = self.step_span(v0, mode, 0.0, 1.0);
+        let r = self.ramp(f64::from(mode), v0);
+        let mut out = Stepped::default();
+        Self::rest_to_rail(&mut out, &rest, v0, 0.0, r, sw).then_some(())?;
+        out.v = rest.v;
+        out.mode = rest.mode;
+        out.slope = rest.slope;
+        out.curv = rest.curv;
+        Some(out)
+    }
+
+    /// The corners of `rest`, a span that starts at `ua` from `va` inside the swing with a
+    /// ramp of slope `r`, as the output sees them: where the ramp reaches the swing before
+    /// any corner of its own, the output's corner there and none after (the state then
+    /// runs on past the rail, its corners hidden by the clamp). True when the ramp reaches
+    /// the swing within the step (else `rest`'s corners as they are).
+    fn rest_to_rail(
+        out: &mut Stepped,
+        rest: &Stepped,
+        va: f64,
+        ua: f64,
+        r: f64,
+        sw: Swing,
+    ) -> bool {
+        let lim = if r > 0.0 { sw.hi } else { sw.lo };
+        let x = ua + (lim - va) / r;
+        let cut = x > ua && x <= 1.0 && rest.corners[..rest.n].iter().all(|c| c.u >= x);
+        if cut {
+            out.push(x, -r, 0.0);
+        } else {
+            for c in &rest.corners[..rest.n] {
+                out.push(c.u, c.d, c.c);
+            }
+        }
+        cut
     }
 
     /// The step in which the loop turns negative again at `u1` (the input is back in its
@@ -828,9 +903,8 @@ impl SlewStep {
             (ul, lim)
         };
         let rest = self.step_span(va, s, ua, 1.0);
-        for c in &rest.corners[..rest.n] {
-            out.push(c.u, c.d, c.c);
-        }
+        // (a ramp that reaches the other rail within the step: its corner there)
+        Self::rest_to_rail(&mut out, &rest, va, ua, r1, sw);
         out.v = rest.v;
         out.mode = rest.mode;
         out.slope = rest.slope;
@@ -871,6 +945,75 @@ mod tests {
             kh: 1e4,
             srh: 0.6,
         }
+    }
+
+    // A reversal that starts with the state past a rail: the output is flat at the rail
+    // until the slew-rate ramp brings the state back inside the swing, then ramps to the
+    // other end. Its corners are where the straight line of the state crosses each end of
+    // the swing (line crossings: x = u0 + (limit - v) / r).
+    #[test]
+    fn reversal_from_past_a_rail_has_the_outputs_corners() {
+        let s = step_of([-0.5; 5]);
+        let sw = Swing { lo: -0.1, hi: 0.1 };
+        let (u0, v0) = (0.2, -0.2);
+        let r = s.srh;
+        let out = s.enter_reversal(v0, 0, u0, sw);
+        assert_eq!(out.n, 2, "{:?}", &out.corners[..out.n]);
+        let x1 = u0 + (sw.lo - v0) / r;
+        let x2 = x1 + (sw.hi - sw.lo) / r;
+        let c = &out.corners;
+        assert!(
+            (c[0].u - x1).abs() < 1e-12 && (c[0].d - r).abs() < 1e-12,
+            "{:?}",
+            c[0]
+        );
+        assert!(
+            (c[1].u - x2).abs() < 1e-12 && (c[1].d + r).abs() < 1e-12,
+            "{:?}",
+            c[1]
+        );
+        // a state past the rail and moving away: the output stays flat, no corner
+        let away = s.reversed(-0.2, -1, sw);
+        assert_eq!(away.n, 0);
+    }
+
+    // The return from a reversal held at the upper rail onto a target past the lower one:
+    // the output leaves the upper rail, then stops at the lower one; the state's own
+    // corners beyond that (where it meets the target past the rail) are hidden by the
+    // clamp. The next step's ramp from inside the swing into the rail has its corner too.
+    #[test]
+    fn return_from_a_reversal_stops_at_the_other_rail() {
+        let s = step_of([-3.0; 5]);
+        let sw = Swing { lo: -0.2, hi: 0.2 };
+        let hold = Swing { lo: -0.3, hi: 0.3 };
+        let u1 = 0.1;
+        let out = s.leave_reversal(0.3, 1, u1, sw, hold);
+        let r = s.ramp(-1.0, 0.3);
+        let xa = u1 + (sw.hi - 0.3) / r;
+        let xb = xa + (sw.lo - sw.hi) / r;
+        assert!(
+            xb < 1.0,
+            "the ramp reaches the lower rail within the step: {xb}"
+        );
+        assert_eq!(out.n, 2, "{:?}", &out.corners[..out.n]);
+        let c = &out.corners;
+        assert!(
+            (c[0].u - xa).abs() < 1e-9 && (c[0].d - r).abs() < 1e-9,
+            "{:?}",
+            c[0]
+        );
+        assert!(
+            (c[1].u - xb).abs() < 1e-9 && (c[1].d + r).abs() < 1e-9,
+            "{:?}",
+            c[1]
+        );
+        // from inside the swing, ramping down into the lower rail
+        let v0 = -0.1;
+        let into = s.into_rail(v0, -1, sw).expect("a ramp into the rail");
+        let r = s.ramp(-1.0, v0);
+        assert_eq!(into.n, 1);
+        let x = (sw.lo - v0) / r;
+        assert!((into.corners[0].u - x).abs() < 1e-9 && (into.corners[0].d + r).abs() < 1e-9);
     }
 
     // End values against a brute-force slew limiter of the same tracking curve: onset inside
