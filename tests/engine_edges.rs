@@ -287,10 +287,11 @@ parts = [{ r = \"20k\", ends = [\"y\", \"fb\"] }, { r = \"10k\", ends = [\"fb\",
 // Reversal edges from a rail (issue 16): a reversal that starts with the op-amp's state past
 // its rail has its output corners where the slew-rate ramp brings the state back inside the
 // swing and where it reaches the other end, and a return that ramps into the other rail
-// (within its step or the next) has its corner there; before, only the ramp's start was
-// corrected and these edges read -30.1 dBc at K = 4, -38.3 at 8. Measured now (stage and
-// network alike): -35.8 at K = 4, -40.3 at 8, -50.8 at 16. The issue's -60 dBc at K = 4 is not
-// reached for this case (DEVELOPERS.md, "Known gaps").
+// (within its step or the next) has its corner there; a step whose ramp has not left the
+// rail by its end keeps its drive at the rail (it was thrown a whole ramp ahead, to the far
+// rail, a sample early). Before: -30.1 dBc at K = 4, -38.3 at 8. Measured now (stage and
+// network alike): -51.1 at K = 4, -53.2 at 8, -69.1 at 16. The issue's -60 dBc at K = 4 is
+// not reached for this case (DEVELOPERS.md, "Known gaps").
 #[test]
 fn reversal_edges_from_rail_to_rail() {
     for network in [false, true] {
@@ -300,8 +301,8 @@ fn reversal_edges_from_rail_to_rail() {
             .map(|&k| alias_dbc(&text, k, &[]))
             .collect();
         println!("reversing gain-3 stage (network {network}): K 4, 8, 16: {k:.1?} dBc");
-        assert!(k[0] < -34.0, "{k:?}");
-        assert!(k[1] < k[0] - 2.0 && k[2] < k[1] - 2.0, "{k:?}");
+        assert!(k[0] < -49.0, "{k:?}");
+        assert!(k[1] < k[0] - 1.0 && k[2] < k[1] - 5.0, "{k:?}");
     }
 }
 

@@ -670,7 +670,7 @@ pub fn reversal_step(
     let mut full = *ev;
     full.f = 1.0;
     match (was, on) {
-        (false, true) => Some(full.enter_reversal(v0, mode, u(), sw)),
+        (false, true) => Some(full.enter_reversal(v0, mode, u(), sw, hold)),
         (true, true) if mode != 0 => Some(ev.reversed(v0, mode, sw)),
         (true, false) => Some(full.leave_reversal(v0, mode, u(), sw, hold)),
         (false, false) if mode != 0 => full
@@ -761,9 +761,10 @@ impl SlewStep {
     /// (the finite gain's offset `p eps / G` decides a target at rest). Corners: the ramp's
     /// start (slope and second derivative) and, if it gets there within the step, the swing.
     /// [`Stepped::mode`] is the ramp's direction.
-    pub fn enter_reversal(&self, v0: f64, mode: i8, u0: f64, sw: Swing) -> Stepped {
+    pub fn enter_reversal(&self, v0: f64, mode: i8, u0: f64, sw: Swing, hold: Swing) -> Stepped {
         let mut out = self.step_span(v0, mode, 0.0, u0);
-        let vu = out.v;
+        // (the state saturates at its hold: a target past the rail moves it no further)
+        let vu = out.v.clamp(hold.lo, hold.hi);
         let s = if out.mode != 0 {
             -f64::from(out.mode)
         } else {
@@ -957,7 +958,7 @@ mod tests {
         let sw = Swing { lo: -0.1, hi: 0.1 };
         let (u0, v0) = (0.2, -0.2);
         let r = s.srh;
-        let out = s.enter_reversal(v0, 0, u0, sw);
+        let out = s.enter_reversal(v0, 0, u0, sw, Swing { lo: -0.3, hi: 0.3 });
         assert_eq!(out.n, 2, "{:?}", &out.corners[..out.n]);
         let x1 = u0 + (sw.lo - v0) / r;
         let x2 = x1 + (sw.hi - sw.lo) / r;

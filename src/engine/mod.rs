@@ -188,14 +188,17 @@
 //!
 //! An edge that starts with the op-amp's state past a rail (a reversing stage with gain,
 //! whose output sits at the rail when its input leaves the range) is flat at the rail until
-//! the ramp brings the state back inside the swing: its output corners are there and where
-//! the ramp reaches the other end; a return that ramps into the other rail has its corner
-//! there, within its own step or the next ([`edges::SlewStep::into_rail`]). A non-inverting
-//! stage of gain 3 thrown from rail to rail (jfet-general, 1 kHz at 10 V peak): -30.1 dBc at
-//! K = 4 and -38.3 at 8 before these corners, -35.8, -40.3 and -50.8 at 4, 8 and 16 now
-//! (stage and network alike); short of the follower's figures and of -60 dBc. A trace
-//! against K = 16 shows most edges within 0.05 V at the 48 kHz output and a few entering
-//! edges apart by up to 3.5 V (the edge a fraction of an internal sample apart): not analysed.
+//! the ramp brings the state (saturated at its hold) back inside the swing: its output
+//! corners are there and where the ramp reaches the other end; a return that ramps into the
+//! other rail has its corner there, within its own step or the next
+//! ([`edges::SlewStep::into_rail`]); a step whose ramp has not left the rail by its end keeps
+//! its drive there (it was set a whole ramp ahead, at the far rail: the edge a sample early
+//! whenever the input crossed late in a step). A non-inverting stage of gain 3 thrown from
+//! rail to rail (jfet-general, 1 kHz at 10 V peak): -30.1 dBc at K = 4 and -38.3 at 8 before,
+//! -51.1, -53.2 and -69.1 at 4, 8 and 16 now (stage and network alike); short of the
+//! follower's figures and of -60 dBc. Against K = 16 at the 48 kHz output the entering edges
+//! are within 0.05 V; the returns that cross near a step's start or end are 0.1 to 0.15 V off,
+//! an error that shrinks with K (0.13 V at K = 4, 0.04 V at 8): not analysed.
 //!
 //! Multi-op-amp groups (circuit engine, `circuit::step::full_step`): the generic nonlinear
 //! step takes the same stiff slew model for each op-amp whose loop is stiff, the target's

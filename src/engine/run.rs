@@ -1369,8 +1369,10 @@ fn full_block(
         };
         let xn = if xn.is_finite() { xn } else { v };
         v = xn.clamp(sp.state_lo, sp.state_hi);
-        // reversed and held: the drive the following held steps give (no kink at the rail)
-        x[t] = if edge.is_some() && f <= 0.0 && v != xn {
+        // reversed and held at the end the ramp runs to: the drive the following held steps
+        // give (no kink at the rail); not a state held where the ramp starts (a reversal
+        // from past a rail whose ramp has not left it by the step's end)
+        x[t] = if edge.is_some() && f <= 0.0 && (xn - v) * f64::from(st.mode) > 0.0 {
             v + ev.ramp(f64::from(st.mode), v)
         } else {
             xn
@@ -1588,8 +1590,9 @@ fn hybrid_block(
             };
             let xn = if xn.is_finite() { xn } else { v };
             v = xn.clamp(slo, shi);
-            // reversed and held: the drive the following held steps give (as `full_block`)
-            x[t] = if edge.is_some() && f <= 0.0 && v != xn {
+            // reversed and held at the end the ramp runs to: the drive the following held
+            // steps give (as `full_block`)
+            x[t] = if edge.is_some() && f <= 0.0 && (xn - v) * f64::from(st.mode) > 0.0 {
                 v + ev.ramp(f64::from(st.mode), v)
             } else {
                 xn
