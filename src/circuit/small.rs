@@ -485,6 +485,12 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
     rows[0][..nz].copy_from_slice(&zi[..nz]);
     rows[1][..nz].copy_from_slice(&zpi[..nz]);
     let (mut cur, mut prev, mut next) = (0, 1, 2);
+    // the row vectors stored per step: the state's (handed back at the end) and those the
+    // outputs read; the rest (check rows only) stay in registers
+    let gs = nz
+        .div_ceil(4)
+        .max(orow.iter().map(|&o| o / 4 + 1).max().unwrap_or(0))
+        .min(G);
     // the last step's rows in registers (the state's part reads them)
     let mut zr = [_mm256_setzero_pd(); G];
     for (g, z) in zr.iter_mut().enumerate() {
@@ -598,8 +604,10 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
                 _mm256_cmp_pd::<_CMP_LE_OQ>(a, hi[g]),
             );
             bad |= _mm256_movemask_pd(ok) ^ 0xf;
-            // SAFETY: 4 g + 3 < r <= 32.
-            _mm256_storeu_pd(nxt.add(4 * g), a);
+            if g < gs {
+                // SAFETY: 4 g + 3 < r <= 32.
+                _mm256_storeu_pd(nxt.add(4 * g), a);
+            }
         }
         if bad != 0 {
             break;
