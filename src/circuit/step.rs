@@ -96,6 +96,9 @@ pub struct GroupState {
     /// Per reversing op-amp: whether its loop was reversed after the last nonlinear step,
     /// and V+ at the last two (NaN: not known).
     rv_on: Vec<bool>,
+    /// Per reversing op-amp: whether its last step returned from a reversal and still
+    /// ramped ([`Stepped::ret`]).
+    rv_ret: Vec<bool>,
     rv_vp: Vec<[f64; 2]>,
 }
 
@@ -144,6 +147,7 @@ impl GroupState {
             drive_rev: false,
             edge_rev: vec![false; na],
             rv_on: vec![false; na],
+            rv_ret: vec![false; na],
             rv_vp: vec![[f64::NAN; 2]; na],
         }
     }
@@ -158,6 +162,7 @@ impl GroupState {
         self.mode.copy_from_slice(&o.mode);
         self.edge.copy_from_slice(&o.edge);
         self.rv_on.copy_from_slice(&o.rv_on);
+        self.rv_ret.copy_from_slice(&o.rv_ret);
         self.rv_vp.copy_from_slice(&o.rv_vp);
     }
 }
@@ -392,6 +397,7 @@ fn rest_group(
     st.mode.fill(0);
     st.edge.fill(None);
     st.rv_on.fill(false);
+    st.rv_ret.fill(false);
     st.rv_vp.fill([f64::NAN; 2]);
     let mut converged = false;
     for _ in 0..MAX_ITER {
@@ -704,6 +710,7 @@ pub(crate) fn full_step(
         for (on, &f) in st.rv_on.iter_mut().zip(&st.fs) {
             *on = f <= 0.0;
         }
+        st.rv_ret.fill(false);
         st.rv_vp.fill([f64::NAN; 2]);
     }
     st.sharp.fill(None);
@@ -883,6 +890,7 @@ pub(crate) fn full_step(
             (Some(_), Some(r)) => r.mode,
             _ => 0,
         };
+        st.rv_ret[j] = matches!((st.sharp[j], st.edge[j]), (Some(_), Some(r)) if r.ret);
         if st.sharp[j].is_none() {
             st.edge[j] = None;
         }
@@ -1044,6 +1052,7 @@ fn sharp_steps(
                     &evx,
                     cm,
                     st.rv_on[j],
+                    st.rv_ret[j],
                     st.rv_vp[j],
                     vp,
                     v0,

@@ -138,6 +138,9 @@ pub struct Stepped {
     pub slope: f64,
     /// Second derivative (volts per step squared) of the trajectory at the end of the span.
     pub curv: f64,
+    /// The step returns from a reversal and still ramps at its end: the next step continues
+    /// the return ([`SlewStep::into_rail`] takes its corner at the rail).
+    pub ret: bool,
 }
 
 impl Stepped {
@@ -644,7 +647,8 @@ impl Swing {
 /// leaves the input range `(cl, ch)` ramps at the slew rate from the instant it crosses the
 /// range's end ([`crossing`], on V+ at the two samples before, `vph`, and now, `vp`), held
 /// at the rail while reversed; the step in which it comes back ramps toward the target from
-/// that instant. `was`: reversed after the previous step; `mode` that step's; `sw` the
+/// that instant. `was`: reversed after the previous step; `ret`: the previous step returned
+/// from a reversal and still ramped ([`Stepped::ret`]); `mode` that step's; `sw` the
 /// output swing, `hold` the state's limits. `None` when the loop is not stiff or the step
 /// has no edge.
 #[allow(clippy::too_many_arguments)]
@@ -652,6 +656,7 @@ pub fn reversal_step(
     ev: &SlewStep,
     (cl, ch): (f64, f64),
     was: bool,
+    ret: bool,
     vph: [f64; 2],
     vp: f64,
     v0: f64,
@@ -673,9 +678,13 @@ pub fn reversal_step(
         (false, true) => Some(full.enter_reversal(v0, mode, u(), sw, hold)),
         (true, true) if mode != 0 => Some(ev.reversed(v0, mode, sw)),
         (true, false) => Some(full.leave_reversal(v0, mode, u(), sw, hold)),
-        (false, false) if mode != 0 => full
-            .from_rail(v0, mode, sw, hold)
-            .or_else(|| full.into_rail(v0, mode, sw)),
+        (false, false) if mode != 0 => full.from_rail(v0, mode, sw, hold).or_else(|| {
+            if ret {
+                full.into_rail(v0, mode, sw)
+            } else {
+                None
+            }
+        }),
         _ => None,
     }
 }
@@ -831,6 +840,7 @@ impl SlewStep {
         out.mode = rest.mode;
         out.slope = rest.slope;
         out.curv = rest.curv;
+        out.ret = rest.mode != 0;
         Some(out)
     }
 
@@ -898,6 +908,7 @@ impl SlewStep {
                 out.v = v1 + r1 * (1.0 - u1);
                 out.mode = s;
                 out.slope = r1;
+                out.ret = true;
                 return out;
             }
             out.push(ul, r1, 0.0);
@@ -910,6 +921,7 @@ impl SlewStep {
         out.mode = rest.mode;
         out.slope = rest.slope;
         out.curv = rest.curv;
+        out.ret = rest.mode != 0;
         out
     }
 }

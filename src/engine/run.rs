@@ -97,6 +97,8 @@ impl StageState {
 #[derive(Debug, Clone, Copy)]
 struct RevState {
     on: bool,
+    /// The last step returned from a reversal and still ramped ([`Stepped::ret`]).
+    ret: bool,
     vp1: f64,
     vp2: f64,
     oh: [f64; WINDOW - 1],
@@ -110,6 +112,7 @@ struct RevState {
 impl RevState {
     const REST: RevState = RevState {
         on: false,
+        ret: false,
         vp1: f64::NAN,
         vp2: f64::NAN,
         oh: [f64::NAN; WINDOW - 1],
@@ -1281,7 +1284,9 @@ fn rev_step(
     st.rv.vp1 = vp;
     st.rv.on = ev.f <= 0.0;
     let (sw, hold) = Swing::pair(sp.shaper.lo, sp.shaper.hi, sp.state_lo, sp.state_hi);
-    super::edges::reversal_step(ev, cm, was, vph, vp, v, st.mode, sw, hold)
+    let r = super::edges::reversal_step(ev, cm, was, st.rv.ret, vph, vp, v, st.mode, sw, hold);
+    st.rv.ret = r.is_some_and(|r| r.ret);
+    r
 }
 
 /// The full model over a block: slew (implicit phi), common-mode range and reversal, state
