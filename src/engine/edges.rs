@@ -960,6 +960,14 @@ mod tests {
         }
     }
 
+    /// Corner `c` is at `u` with slope change `d`, within `tol`.
+    fn corner_at(c: &Corner, u: f64, d: f64, tol: f64) {
+        assert!(
+            (c.u - u).abs() < tol && (c.d - d).abs() < tol,
+            "{c:?}: want {u} {d}"
+        );
+    }
+
     // A reversal that starts with the state past a rail: the output is flat at the rail
     // until the slew-rate ramp brings the state back inside the swing, then ramps to the
     // other end. Its corners are where the straight line of the state crosses each end of
@@ -974,17 +982,8 @@ mod tests {
         assert_eq!(out.n, 2, "{:?}", &out.corners[..out.n]);
         let x1 = u0 + (sw.lo - v0) / r;
         let x2 = x1 + (sw.hi - sw.lo) / r;
-        let c = &out.corners;
-        assert!(
-            (c[0].u - x1).abs() < 1e-12 && (c[0].d - r).abs() < 1e-12,
-            "{:?}",
-            c[0]
-        );
-        assert!(
-            (c[1].u - x2).abs() < 1e-12 && (c[1].d + r).abs() < 1e-12,
-            "{:?}",
-            c[1]
-        );
+        corner_at(&out.corners[0], x1, r, 1e-12);
+        corner_at(&out.corners[1], x2, -r, 1e-12);
         // a state past the rail and moving away: the output stays flat, no corner
         let away = s.reversed(-0.2, -1, sw);
         assert_eq!(away.n, 0);
@@ -1009,24 +1008,15 @@ mod tests {
             "the ramp reaches the lower rail within the step: {xb}"
         );
         assert_eq!(out.n, 2, "{:?}", &out.corners[..out.n]);
-        let c = &out.corners;
-        assert!(
-            (c[0].u - xa).abs() < 1e-9 && (c[0].d - r).abs() < 1e-9,
-            "{:?}",
-            c[0]
-        );
-        assert!(
-            (c[1].u - xb).abs() < 1e-9 && (c[1].d + r).abs() < 1e-9,
-            "{:?}",
-            c[1]
-        );
+        corner_at(&out.corners[0], xa, r, 1e-9);
+        corner_at(&out.corners[1], xb, -r, 1e-9);
         // from inside the swing, ramping down into the lower rail
         let v0 = -0.1;
         let into = s.into_rail(v0, -1, sw).expect("a ramp into the rail");
         let r = s.ramp(-1.0, v0);
         assert_eq!(into.n, 1);
         let x = (sw.lo - v0) / r;
-        assert!((into.corners[0].u - x).abs() < 1e-9 && (into.corners[0].d + r).abs() < 1e-9);
+        corner_at(&into.corners[0], x, -r, 1e-9);
     }
 
     // End values against a brute-force slew limiter of the same tracking curve: onset inside
