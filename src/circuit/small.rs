@@ -546,7 +546,6 @@ unsafe fn segment_avx2<const G: usize, const NS: usize>(
                         _mm256_add_pd(q[2][g], q[3][g]),
                     ),
                 };
-                a1[g] = _mm256_setzero_pd();
             }
         } else {
             // the state's part in two more partial sums, four columns at a time (the chain

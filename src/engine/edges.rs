@@ -835,7 +835,9 @@ impl SlewStep {
         let rest = self.step_span(v0, mode, 0.0, 1.0);
         let r = self.ramp(f64::from(mode), v0);
         let mut out = Stepped::default();
-        Self::rest_to_rail(&mut out, &rest, v0, 0.0, r, sw).then_some(())?;
+        if !Self::rest_to_rail(&mut out, &rest, v0, 0.0, r, sw) {
+            return None;
+        }
         out.v = rest.v;
         out.mode = rest.mode;
         out.slope = rest.slope;

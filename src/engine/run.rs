@@ -1289,6 +1289,19 @@ fn rev_step(
     r
 }
 
+/// The drive a step leaves: its end value `xn`, or, for a reversed step (`reversed`) whose
+/// state was held at the end its ramp runs to (`v`, the held state), the drive the
+/// following held steps give (a ramp on, no kink at the rail). Not a state held where the
+/// ramp starts (a reversal from past a rail whose ramp has not left it by the step's end).
+#[inline]
+fn step_drive(reversed: bool, ev: &SlewStep, mode: i8, xn: f64, v: f64) -> f64 {
+    if reversed && (xn - v) * f64::from(mode) > 0.0 {
+        v + ev.ramp(f64::from(mode), v)
+    } else {
+        xn
+    }
+}
+
 /// The full model over a block: slew (implicit phi), common-mode range and reversal, state
 /// clamp, events.
 #[allow(clippy::too_many_arguments)]
@@ -1374,14 +1387,7 @@ fn full_block(
         };
         let xn = if xn.is_finite() { xn } else { v };
         v = xn.clamp(sp.state_lo, sp.state_hi);
-        // reversed and held at the end the ramp runs to: the drive the following held steps
-        // give (no kink at the rail); not a state held where the ramp starts (a reversal
-        // from past a rail whose ramp has not left it by the step's end)
-        x[t] = if edge.is_some() && f <= 0.0 && (xn - v) * f64::from(st.mode) > 0.0 {
-            v + ev.ramp(f64::from(st.mode), v)
-        } else {
-            xn
-        };
+        x[t] = step_drive(edge.is_some() && f <= 0.0, &ev, st.mode, xn, v);
         x[t] += st.pend[0];
         st.pend = [st.pend[1], 0.0];
         if edge.is_some() || st.rv.ofut > 0 {
@@ -1595,13 +1601,7 @@ fn hybrid_block(
             };
             let xn = if xn.is_finite() { xn } else { v };
             v = xn.clamp(slo, shi);
-            // reversed and held at the end the ramp runs to: the drive the following held
-            // steps give (as `full_block`)
-            x[t] = if edge.is_some() && f <= 0.0 && (xn - v) * f64::from(st.mode) > 0.0 {
-                v + ev.ramp(f64::from(st.mode), v)
-            } else {
-                xn
-            };
+            x[t] = step_drive(edge.is_some() && f <= 0.0, &ev, st.mode, xn, v);
             // Slewing, counted as in `full_block`: not while held at the swing (or current)
             // limit, nor while latched by a phase reversal (f <= 0).
             let held = xn <= slo || xn >= shi;
