@@ -287,11 +287,15 @@ parts = [{ r = \"20k\", ends = [\"y\", \"fb\"] }, { r = \"10k\", ends = [\"fb\",
 // Reversal edges from a rail (issue 16): a reversal that starts with the op-amp's state past
 // its rail has its output corners where the slew-rate ramp brings the state back inside the
 // swing and where it reaches the other end, and a return that ramps into the other rail
-// (within its step or the next) has its corner there; a step whose ramp has not left the
-// rail by its end keeps its drive at the rail (it was thrown a whole ramp ahead, to the far
-// rail, a sample early). Before: -30.1 dBc at K = 4, -38.3 at 8. Measured now (stage and
-// network alike): -51.1 at K = 4, -53.2 at 8, -69.1 at 16. The issue's -60 dBc at K = 4 is
-// not reached for this case (DEVELOPERS.md, "Known gaps").
+// (within its step or a later one: the return goes on while the ramp does) has its corner
+// there; a step whose ramp has not left the rail by its end keeps its drive at the rail (it
+// was thrown a whole ramp ahead, to the far rail, a sample early). In the samples around an
+// edge (the static clamp of the drive plus the corners' corrections) a corner of the state
+// past the rail has no correction: the return ramps on past the other rail and meets its
+// target there, where the output is flat. Before the first of these: -30.1 dBc at K = 4,
+// -38.3 at 8; before the last two (the hidden corner corrected, the return's corner left to
+// the clamp when it fell two steps on): -51.1, -53.2 and -69.1 at 4, 8 and 16. Measured
+// now (stage and network alike): -81.7, -86.0 and -88.7 dBc.
 #[test]
 fn reversal_edges_from_rail_to_rail() {
     for network in [false, true] {
@@ -301,8 +305,8 @@ fn reversal_edges_from_rail_to_rail() {
             .map(|&k| alias_dbc(&text, k, &[]))
             .collect();
         println!("reversing gain-3 stage (network {network}): K 4, 8, 16: {k:.1?} dBc");
-        assert!(k[0] < -49.0, "{k:?}");
-        assert!(k[1] < k[0] - 1.0 && k[2] < k[1] - 5.0, "{k:?}");
+        assert!(k[0] < -75.0, "{k:?}");
+        assert!(k[1] < k[0] - 2.0 && k[2] < k[1] - 1.0, "{k:?}");
     }
 }
 
@@ -395,17 +399,23 @@ from = "comp"
 // engine's per-op-amp model): the stage engine's split steps (`engine::edges::
 // reversal_step`), the edge decided once per step from the settled solution, its target
 // read as if the output were linear and, for the edge itself, extrapolated from the last
-// four samples (the edge's own jump drives the buffer within the step). Before: -18.5 /
-// -18.6 dBc at K = 4 (ideal / slewing bipolar buffer), -27.6 / -22.0 at K = 8. Measured
-// now: -48.2 / -48.4 dBc at K = 4, -57.6 / -56.7 at K = 8; the same follower as a stage
-// reads -69.7 (DEVELOPERS.md, "Known gaps": the issue asks -60 at K = 4, not met here).
+// four samples (the edge's own jump drives the buffer within the step). The corners of the
+// two steps after an edge go to the same override as the edge's (the static clamp of the
+// drive plus the corrections), as in the stage engine: added to the drive, the part that
+// falls on samples held past the rail was lost in the clamp. Before the edges: -18.5 /
+// -18.6 dBc at K = 4 (ideal / slewing bipolar buffer), -27.6 / -22.0 at K = 8; before the
+// override: -48.2 / -48.4 at K = 4, -57.6 / -56.7 at K = 8. Measured now: ideal buffer
+// -69.0 at K = 4, -73.5 at 8 (the same follower as a stage: -69.7, -73.6); bipolar buffer
+// -47.0, -55.6, and worse at K = 16 (DEVELOPERS.md, "Known gaps": the buffer's own slewing
+// after the edge).
 #[test]
 fn reversal_edges_in_a_multi_op_amp_loop() {
     for buffer in ["ideal", "bipolar-lownoise"] {
         let text = reversing_composite(buffer);
         let (k4, k8) = alias_k4_k8(&text, &[]);
         println!("reversing composite, {buffer} buffer: K 4 {k4:.1}, K 8 {k8:.1} dBc");
-        assert!(k4 < -45.0, "{buffer}: {k4}");
-        assert!(k8 < k4 - 5.0, "{buffer}: {k4} {k8}");
+        let bound = if buffer == "ideal" { -66.0 } else { -45.0 };
+        assert!(k4 < bound, "{buffer}: {k4}");
+        assert!(k8 < k4 - 3.0, "{buffer}: {k4} {k8}");
     }
 }

@@ -100,6 +100,11 @@ pub struct GroupState {
     /// ramped ([`Stepped::ret`]).
     rv_ret: Vec<bool>,
     rv_vp: Vec<[f64; 2]>,
+    /// Per reversing op-amp: steps still in a reversal edge's window (the samples whose
+    /// output is the static clamp of the drive plus the corners' corrections: the stage
+    /// engine's `RevState::ofut`); its corners there go to that override, and only those
+    /// the output shows ([`SlewStep::visible`]).
+    rv_win: Vec<u8>,
 }
 
 impl GroupState {
@@ -149,6 +154,7 @@ impl GroupState {
             rv_on: vec![false; na],
             rv_ret: vec![false; na],
             rv_vp: vec![[f64::NAN; 2]; na],
+            rv_win: vec![0; na],
         }
     }
 
@@ -164,6 +170,7 @@ impl GroupState {
         self.rv_on.copy_from_slice(&o.rv_on);
         self.rv_ret.copy_from_slice(&o.rv_ret);
         self.rv_vp.copy_from_slice(&o.rv_vp);
+        self.rv_win.copy_from_slice(&o.rv_win);
     }
 }
 
@@ -399,6 +406,7 @@ fn rest_group(
     st.rv_on.fill(false);
     st.rv_ret.fill(false);
     st.rv_vp.fill([f64::NAN; 2]);
+    st.rv_win.fill(0);
     let mut converged = false;
     for _ in 0..MAX_ITER {
         for (j, ac) in gp.amps.iter().enumerate() {
@@ -712,6 +720,7 @@ pub(crate) fn full_step(
         }
         st.rv_ret.fill(false);
         st.rv_vp.fill([f64::NAN; 2]);
+        st.rv_win.fill(0);
     }
     st.sharp.fill(None);
     st.edge.fill(None);
@@ -908,6 +917,14 @@ pub(crate) fn full_step(
     st.hist_n = (st.hist_n + 1).min(4);
     st.last_t = time_s;
     drive_corners(gp, st);
+    for j in 0..na {
+        let corners = st.edge[j].is_some_and(|r| r.n > 0);
+        st.rv_win[j] = if corners && (st.edge_rev[j] || st.rv_win[j] > 0) {
+            2
+        } else {
+            st.rv_win[j].saturating_sub(1)
+        };
+    }
     for (j, ac) in gp.amps.iter().enumerate() {
         let a = &c.amps[ac.amp];
         let ev = &mut events[ac.amp];
@@ -1082,7 +1099,20 @@ fn sharp_steps(
             continue;
         }
         st.edge_rev[j] = edge.is_some();
-        let r = edge.or_else(|| ev.step_if_eventful(v0, st.mode[j]));
+        let r = edge.or_else(|| {
+            let r = ev.step_if_eventful(v0, st.mode[j])?;
+            // in an edge's window, only the corners the output shows
+            Some(match rev {
+                Some(_) if st.rv_win[j] > 0 => ev.visible(
+                    &r,
+                    Swing {
+                        lo: a.shaper.lo,
+                        hi: a.shaper.hi,
+                    },
+                ),
+                _ => r,
+            })
+        });
         let want = r.map(|r| {
             let x = if r.v.is_finite() { r.v } else { v0 };
             x.clamp(a.state_lo, a.state_hi)
@@ -1166,5 +1196,5 @@ fn drive_corners(gp: &GroupPlan, st: &mut GroupState) {
         }
     }
     st.drive_w = any.then_some(w);
-    st.drive_rev = any && st.edge[d].is_some() && st.edge_rev[d];
+    st.drive_rev = any && st.edge[d].is_some() && (st.edge_rev[d] || st.rv_win[d] > 0);
 }

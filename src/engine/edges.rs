@@ -462,6 +462,26 @@ impl SlewStep {
         t[1].abs() > self.srh || s1.abs() > self.srh
     }
 
+    /// `r`, a step of this loop through the sharp model, with only the corners the output
+    /// shows: those whose value (every corner of the model lies on the tracking curve) is
+    /// inside the swing. Past a rail the output is flat, so a corner of the state there
+    /// (a return from a reversal that ramps on past the other rail and meets its target
+    /// beyond it) has no correction; for the steps whose output is the static clamp of
+    /// the drive plus the corners' corrections (the samples around a reversal edge).
+    pub fn visible(&self, r: &Stepped, sw: Swing) -> Stepped {
+        let t = self.tracking();
+        let mut out = *r;
+        out.n = 0;
+        for c in &r.corners[..r.n] {
+            let u = c.u;
+            let v = t[0] + u * (t[1] + u * (t[2] + u * (t[3] + u * t[4])));
+            if v >= sw.lo && v <= sw.hi {
+                out.push(c.u, c.d, c.c);
+            }
+        }
+        out
+    }
+
     /// The step from `v0` in `mode` through the sharp model (see the module documentation).
     pub fn step(&self, v0: f64, mode: i8) -> Stepped {
         self.step_span(v0, mode, 0.0, 1.0)
@@ -826,8 +846,11 @@ impl SlewStep {
 
     /// A step that ramps in direction `mode` from inside the swing into a rail (the ramp
     /// after a reversal, on its way to the other rail): the plain ramp, with the output's
-    /// corner where it reaches the swing; `None` when the step is not a plain ramp or does
-    /// not reach the swing.
+    /// corner where it reaches the swing and none after it; a ramp that has not reached
+    /// the swing by the step's end is the step as it is, still returning
+    /// ([`Stepped::ret`]: the next step takes the corner); `None` when the step ends
+    /// tracking without reaching the swing (the stage's usual step), or starts outside
+    /// it.
     pub fn into_rail(&self, v0: f64, mode: i8, sw: Swing) -> Option<Stepped> {
         if !(v0 >= sw.lo && v0 <= sw.hi) {
             return None;
@@ -836,7 +859,14 @@ impl SlewStep {
         let r = self.ramp(f64::from(mode), v0);
         let mut out = Stepped::default();
         if !Self::rest_to_rail(&mut out, &rest, v0, 0.0, r, sw) {
-            return None;
+            // not there by the step's end: the ramp goes on (the next step continues the
+            // return), else the stage's usual step
+            if rest.mode == 0 {
+                return None;
+            }
+            let mut out = rest;
+            out.ret = true;
+            return Some(out);
         }
         out.v = rest.v;
         out.mode = rest.mode;

@@ -1289,6 +1289,20 @@ fn rev_step(
     r
 }
 
+/// The corners of `r`, an ordinary step of a reversing stage, as they reach the output: all
+/// of them, except in the samples after a reversal edge, whose output is the static clamp of
+/// the drive plus the corners' corrections ([`RevState`]): there only those inside the swing
+/// ([`SlewStep::visible`]).
+#[inline]
+fn visible(sp: &StagePlan, st: &StageState, ev: &SlewStep, r: Stepped) -> Stepped {
+    if st.rv.ofut > 0 {
+        let (sw, _) = Swing::pair(sp.shaper.lo, sp.shaper.hi, sp.state_lo, sp.state_hi);
+        ev.visible(&r, sw)
+    } else {
+        r
+    }
+}
+
 /// The drive a step leaves: its end value `xn`, or, for a reversed step (`reversed`) whose
 /// state was held at the end its ramp runs to (`v`, the held state), the drive the
 /// following held steps give (a ramp on, no kink at the rail). Not a state held where the
@@ -1375,7 +1389,7 @@ fn full_block(
             r.v
         } else if let Some(r) = ev.step_if_eventful(v, st.mode) {
             st.mode = r.mode;
-            corners = Some(r);
+            corners = Some(visible(sp, st, &ev, r));
             r.v
         } else if f > 0.0 {
             st.mode = 0;
@@ -1580,7 +1594,7 @@ fn hybrid_block(
                 r.v
             } else if let Some(r) = ev.step_if_eventful(v, st.mode) {
                 st.mode = r.mode;
-                corners = Some(r);
+                corners = Some(visible(sp, st, &ev, r));
                 r.v
             } else if let (Some(ws), true) = (weak, f == 1.0 && w2 < WEAK_W) {
                 st.mode = 0;
