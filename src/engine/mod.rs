@@ -190,15 +190,24 @@
 //! whose output sits at the rail when its input leaves the range) is flat at the rail until
 //! the ramp brings the state (saturated at its hold) back inside the swing: its output
 //! corners are there and where the ramp reaches the other end; a return that ramps into the
-//! other rail has its corner there, within its own step or the next
-//! ([`edges::SlewStep::into_rail`]); a step whose ramp has not left the rail by its end keeps
-//! its drive there (it was set a whole ramp ahead, at the far rail: the edge a sample early
-//! whenever the input crossed late in a step). A non-inverting stage of gain 3 thrown from
-//! rail to rail (jfet-general, 1 kHz at 10 V peak): -30.1 dBc at K = 4 and -38.3 at 8 before,
-//! -51.1, -53.2 and -69.1 at 4, 8 and 16 now (stage and network alike); short of the
-//! follower's figures and of -60 dBc. Against K = 16 at the 48 kHz output the entering edges
-//! are within 0.05 V; the returns that cross near a step's start or end are 0.1 to 0.15 V off,
-//! an error that shrinks with K (0.13 V at K = 4, 0.04 V at 8): not analysed.
+//! other rail has its corner there, within its own step or a later one (the return goes on
+//! while its ramp does, [`edges::SlewStep::into_rail`]); a step whose ramp has not left the
+//! rail by its end keeps its drive there (it was set a whole ramp ahead, at the far rail: the
+//! edge a sample early whenever the input crossed late in a step). In the samples around an
+//! edge (the static clamp of the drive plus the corners' corrections) only the corners the
+//! output shows are corrected ([`edges::SlewStep::visible`]): a return that ramps past the
+//! other rail meets its target beyond it, in the next step when the ramp reached the rail
+//! late in its own, and that corner of the state, corrected on the output, was the whole of
+//! the remaining error (a quarter of the returns 0.1 to 0.15 V off at the 48 kHz output,
+//! those whose rail corner fell in the last quarter of a step). A non-inverting stage of
+//! gain 3 thrown from rail to rail (jfet-general, 1 kHz at 10 V peak), stage and network
+//! alike:
+//!
+//! | K | before the edges from a rail | before the hidden corner was dropped | now |
+//! |---|---|---|---|
+//! | 4 | -30.1 dBc | -51.1 dBc | -81.7 dBc |
+//! | 8 | -38.3 dBc | -53.2 dBc | -86.0 dBc |
+//! | 16 | not measured | -69.1 dBc | -88.7 dBc |
 //!
 //! Multi-op-amp groups (circuit engine, `circuit::step::full_step`): the generic nonlinear
 //! step takes the same stiff slew model for each op-amp whose loop is stiff, the target's
@@ -226,11 +235,16 @@
 //! balance: no fixed point to iterate to), and the target is read as if the op-amp's output
 //! were linear (while it is past its clamp a buffer follows the clamped node, not the
 //! state) and, for the edge itself, extrapolated from the last four samples (the edge's own
-//! jump drives the rest of its loop within the step). A jfet-general follower whose
-//! feedback is taken after a buffer, 1 kHz at 10 V peak (2 V below the range): -48.2 dBc at
-//! K = 4 and -57.6 at K = 8 with an ideal buffer (-18.5 and -27.6 before), -48.4 and -56.7
-//! with a slewing bipolar buffer (-18.6 and -22.0 before), against the stage engine's
-//! -69.7 for the same follower; with two reversing parts (both op-amps leave their range)
+//! jump drives the rest of its loop within the step). The corners of the two steps after an
+//! edge go to the edge's override, as in the stage engine (added to the drive instead, the
+//! part of a correction that fell on a sample held past the rail was lost in the clamp),
+//! and only those the output shows. A jfet-general follower whose feedback is taken after a
+//! buffer, 1 kHz at 10 V peak (2 V below the range): with an ideal buffer -69.0 dBc at K = 4
+//! and -73.5 at K = 8 (-18.5 and -27.6 before the edges, -48.2 and -57.6 before the
+//! override), the stage engine's -69.7 and -73.6 for the same follower; with a slewing
+//! bipolar buffer -47.0 and -55.6 (-18.6 and -22.0 before), and worse at K = 16 (-35 dBc):
+//! the buffer's own slewing after the edge moves the target the model reads (DEVELOPERS.md,
+//! "Known gaps"); with two reversing parts (both op-amps leave their range)
 //! the loop is chaotic and the figure meaningless. A Sallen-Key low-pass with a reversing part driven below its
 //! range (the part's output kicks V+ back through the first capacitor) chatters between
 //! the edges, a relaxation the model makes, not an aliasing figure.
