@@ -698,15 +698,50 @@ pub fn reversal_step(
         (false, true) => Some(full.enter_reversal(v0, mode, u(), sw, hold)),
         (true, true) if mode != 0 => Some(ev.reversed(v0, mode, sw)),
         (true, false) => Some(full.leave_reversal(v0, mode, u(), sw, hold)),
-        (false, false) if mode != 0 => full.from_rail(v0, mode, sw, hold).or_else(|| {
-            if ret {
-                full.into_rail(v0, mode, sw)
-            } else {
-                None
+        (false, false) => {
+            // a dip below the range between two samples inside it
+            if !vp2.is_nan() {
+                if let Some((ua, ub)) = dip_roots([m(vp2), m(vp1), m(vp)]) {
+                    return Some(full.dip(v0, mode, ua, ub, sw, hold));
+                }
             }
-        }),
+            if mode == 0 {
+                return None;
+            }
+            full.from_rail(v0, mode, sw, hold).or_else(|| {
+                if ret {
+                    full.into_rail(v0, mode, sw)
+                } else {
+                    None
+                }
+            })
+        }
         _ => None,
     }
+}
+
+/// The two instants `(ua, ub)` in `(0, 1)` where the input margin of a reversing stage dips
+/// below zero and comes back within one step from sample `n - 1` to `n`, both samples
+/// inside the range: the roots of the quadratic through the margin at `n - 2`, `n - 1`,
+/// `n` (as [`crossing`]), when it is convex with its lowest point inside the step and below
+/// zero; `None` otherwise.
+pub fn dip_roots(m: [f64; 3]) -> Option<(f64, f64)> {
+    let [m2, m1, m0] = m;
+    if !(m1 > 0.0 && m0 > 0.0) {
+        return None;
+    }
+    let a1 = 0.5 * (m0 - m2);
+    let a2 = 0.5 * (m0 - 2.0 * m1 + m2);
+    if !(a2 > 0.0) {
+        return None;
+    }
+    let um = -a1 / (2.0 * a2);
+    if !(um > 0.0 && um < 1.0) || m1 + um * (a1 + um * a2) >= 0.0 {
+        return None;
+    }
+    let ua = first_root(a2, a1, m1, 0.0, um)?;
+    let ub = first_root(a2, a1, m1, um, 1.0)?;
+    (ua < ub).then_some((ua, ub))
 }
 
 /// Where the input margin of a reversing stage (V+ less the end of its input range, positive
@@ -923,7 +958,16 @@ impl SlewStep {
             let v1 = (v0 + r * u1).clamp(hold.lo, hold.hi);
             (v1, if inside(v1) { r } else { 0.0 })
         };
-        // toward the target from u1
+        self.leave_from(&mut out, v1, before, u1, sw);
+        out
+    }
+
+    /// The stable loop from `u1` on, the state `v1` there and the output's slope before it
+    /// `before` (the reversed ramp's, or 0 at a rail), slewing toward the target: the rest
+    /// of [`SlewStep::leave_reversal`] (and of [`SlewStep::dip`]), its corners after those
+    /// already in `out`.
+    fn leave_from(&self, out: &mut Stepped, v1: f64, before: f64, u1: f64, sw: Swing) {
+        let inside = |v: f64| v >= sw.lo && v <= sw.hi;
         let t = self.tracking();
         let target = t[0] + u1 * (t[1] + u1 * (t[2] + u1 * (t[3] + u1 * t[4])));
         let s: i8 = if target > v1 { 1 } else { -1 };
@@ -941,19 +985,39 @@ impl SlewStep {
                 out.mode = s;
                 out.slope = r1;
                 out.ret = true;
-                return out;
+                return;
             }
             out.push(ul, r1, 0.0);
             (ul, lim)
         };
         let rest = self.step_span(va, s, ua, 1.0);
         // (a ramp that reaches the other rail within the step: its corner there)
-        Self::rest_to_rail(&mut out, &rest, va, ua, r1, sw);
+        Self::rest_to_rail(out, &rest, va, ua, r1, sw);
         out.v = rest.v;
         out.mode = rest.mode;
         out.slope = rest.slope;
         out.curv = rest.curv;
         out.ret = rest.mode != 0;
+    }
+
+    /// A step in which the input leaves its range at `ua` and is back at `ub` (`ua < ub`,
+    /// inside the step: a dip shorter than a step, between two samples inside the range):
+    /// [`SlewStep::enter_reversal`] up to `ub` (its corners after `ub` dropped, the state
+    /// held within `hold`), then the stable loop from there as [`SlewStep::leave_reversal`]
+    /// takes it after its crossing. Without it such a dip is not seen at all, while a finer
+    /// step renders the output's pulse toward the other rail.
+    pub fn dip(&self, v0: f64, mode: i8, ua: f64, ub: f64, sw: Swing, hold: Swing) -> Stepped {
+        let inside = |v: f64| v >= sw.lo && v <= sw.hi;
+        let e = self.enter_reversal(v0, mode, ua, sw, hold);
+        let mut out = Stepped::default();
+        for c in e.corners[..e.n].iter().filter(|c| c.u <= ub) {
+            out.push(c.u, c.d, c.c);
+        }
+        // the ramp from `ua`: the state at `ua` (held), and its slope
+        let r = e.slope;
+        let vu = e.v - r * (1.0 - ua);
+        let v1 = (vu + r * (ub - ua)).clamp(hold.lo, hold.hi);
+        self.leave_from(&mut out, v1, if inside(v1) { r } else { 0.0 }, ub, sw);
         out
     }
 }
@@ -1019,6 +1083,62 @@ mod tests {
         // a state past the rail and moving away: the output stays flat, no corner
         let away = s.reversed(-0.2, -1, sw);
         assert_eq!(away.n, 0);
+    }
+
+    // A dip below the range between two samples inside it: the margin quadratic through
+    // m(-1) = 3, m(0) = 1, m(1) = 1 is m(u) = 1 - u + u^2, convex with its lowest point
+    // at u = 1/2, m = 3/4 > 0: no dip; through 1.3, 0.1, 0.1 it is 0.1 - 0.6 u + 0.6 u^2,
+    // lowest -0.05 at u = 1/2, roots (0.6 -+ sqrt(0.36 - 0.24)) / 1.2 (the quadratic
+    // formula).
+    #[test]
+    fn dip_roots_of_the_margin_quadratic() {
+        assert_eq!(dip_roots([3.0, 1.0, 1.0]), None);
+        let (ua, ub) = dip_roots([1.3, 0.1, 0.1]).expect("a dip");
+        let d = (0.36f64 - 0.24).sqrt();
+        assert!((ua - (0.6 - d) / 1.2).abs() < 1e-12, "{ua}");
+        assert!((ub - (0.6 + d) / 1.2).abs() < 1e-12, "{ub}");
+        // a sample outside the range: a crossing, not a dip
+        assert_eq!(dip_roots([1.3, -0.1, 0.1]), None);
+    }
+
+    // A dip from a state held past the lower rail: the output leaves the rail where the
+    // ramp (from the hold, at the slew rate) crosses the swing's lower end, turns at `ub`
+    // (the slope changes by twice the ramp's), and is back at the rail where the ramp down
+    // crosses it again (line crossings, as above); the state's corner past the rail is not
+    // the output's.
+    #[test]
+    fn dip_throws_a_pulse_between_its_roots() {
+        let s = step_of([-3.0; 5]);
+        let sw = Swing { lo: -0.2, hi: 0.2 };
+        let hold = Swing { lo: -0.3, hi: 0.3 };
+        let (ua, ub) = (0.2, 0.4);
+        let out = s.dip(-0.3, 0, ua, ub, sw, hold);
+        let r = s.ramp(1.0, -0.3);
+        let x1 = ua + (sw.lo + 0.3) / r;
+        let peak = -0.3 + r * (ub - ua);
+        let rd = s.ramp(-1.0, peak);
+        let x3 = ub + (sw.lo - peak) / rd;
+        assert!(x3 < 1.0, "back at the rail within the step: {x3}");
+        assert_eq!(out.n, 3, "{:?}", &out.corners[..out.n]);
+        corner_at(&out.corners[0], x1, r, 1e-9);
+        corner_at(&out.corners[1], ub, rd - r, 1e-9);
+        corner_at(&out.corners[2], x3, -rd, 1e-9);
+    }
+
+    // In the samples around an edge only the corners the output shows are corrected: a
+    // step that slews down from inside the swing and meets its target past the lower rail
+    // has that corner dropped; the same step with a target inside keeps it.
+    #[test]
+    fn visible_drops_the_corners_past_a_rail() {
+        let sw = Swing { lo: -0.2, hi: 0.2 };
+        let past = step_of([-0.5; 5]);
+        let r = past.step(-0.1, -1);
+        assert_eq!(r.n, 1, "{:?}", &r.corners[..r.n]);
+        assert_eq!(past.visible(&r, sw).n, 0);
+        let inside = step_of([-0.15; 5]);
+        let r = inside.step(0.1, -1);
+        assert_eq!(r.n, 1, "{:?}", &r.corners[..r.n]);
+        assert_eq!(inside.visible(&r, sw).n, 1);
     }
 
     // The return from a reversal held at the upper rail onto a target past the lower one:
