@@ -1835,12 +1835,14 @@ pub(crate) fn cheap_inside(
         return None;
     }
     emax = if e2 > emax { e2 } else { emax };
-    let (m1, x1) = min_max(&head[2..]);
-    let (m2, x2) = min_max(&x[H..b - 2]);
-    let (mn, mx) = (m1.min(m2), x1.max(x2));
+    // the centres (`head[3..]`, `x[H..b - 3]`) and the middle samples (one more at each
+    // end: `head[2]`, `x[b - 3]`) in one pass
     let (p1, q1) = min_max(&head[3..]);
     let (p2, q2) = min_max(&x[H..b - 3]);
     let (pk_lo, pk_hi) = (p1.min(p2), q1.max(q2));
+    let (e1, e2) = (head[2], x[b - 3]);
+    let mn = pk_lo.min(e1.min(e2));
+    let mx = pk_hi.max(e1.max(e2));
     let reach = super::shaper::REACH7_PER_E * emax;
     (emax.is_finite() && mn - reach > lo && mx + reach < hi).then_some((pk_lo, pk_hi))
 }
