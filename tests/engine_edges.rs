@@ -406,7 +406,8 @@ from = "comp"
 // -18.6 dBc at K = 4 (ideal / slewing bipolar buffer), -27.6 / -22.0 at K = 8; before the
 // override: -48.2 / -48.4 at K = 4, -57.6 / -56.7 at K = 8. Measured now: ideal buffer
 // -69.0 at K = 4, -73.5 at 8 (the same follower as a stage: -69.7, -73.6); bipolar buffer
-// -47.0, -55.6, and worse at K = 16 (DEVELOPERS.md, "Known gaps": the buffer's own slewing
+// -48.5, -56.0, and worse at K = 16 (-40.8; -35.1 before the edge step's target in the
+// history was the extrapolated one: DEVELOPERS.md, "Known gaps", the buffer's own slewing
 // after the edge).
 #[test]
 fn reversal_edges_in_a_multi_op_amp_loop() {

@@ -904,15 +904,25 @@ pub(crate) fn full_step(
             st.edge[j] = None;
         }
         let a = &c.amps[gp.amps[j].amp];
-        st.hist[j].rotate_left(1);
         // as if the output were linear (see `sharp_steps`)
         let v = st.z[nc + j];
-        st.hist[j][3] = (st.z[nc + na + j] - gp.amps[j].b * (v - vn[a.out]), v);
+        let mut p = st.z[nc + na + j] - gp.amps[j].b * (v - vn[a.out]);
         if let Some(cm) = reversing(a) {
             let vp = vn[a.plus];
-            st.rv_on[j] = input_factor(cm, vp) <= 0.0;
+            let on = input_factor(cm, vp) <= 0.0;
+            // the step of an edge (the factor changed sign): its solution's target holds
+            // the rest of the loop's response to the jump (a buffer after it slewing to
+            // follow), not the target; the extrapolation the edge was taken with stands
+            // in (the steps after it read their target from it)
+            if on != st.rv_on[j] && st.edge_rev[j] && st.hist_n >= 4 {
+                let h = &st.hist[j];
+                p = 4.0 * (h[3].0 + h[1].0) - 6.0 * h[2].0 - h[0].0;
+            }
+            st.rv_on[j] = on;
             st.rv_vp[j] = [st.rv_vp[j][1], vp];
         }
+        st.hist[j].rotate_left(1);
+        st.hist[j][3] = (p, v);
     }
     st.hist_n = (st.hist_n + 1).min(4);
     st.last_t = time_s;

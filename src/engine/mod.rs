@@ -251,9 +251,9 @@
 //! buffer, 1 kHz at 10 V peak (2 V below the range): with an ideal buffer -69.0 dBc at K = 4
 //! and -73.5 at K = 8 (-18.5 and -27.6 before the edges, -48.2 and -57.6 before the
 //! override), the stage engine's -69.7 and -73.6 for the same follower; with a slewing
-//! bipolar buffer -47.0 and -55.6 (-18.6 and -22.0 before), and worse at K = 16 (-35 dBc):
-//! the buffer's own slewing after the edge moves the target the model reads (DEVELOPERS.md,
-//! "Known gaps"); with two reversing parts (both op-amps leave their range)
+//! bipolar buffer -48.5 and -56.0 (-18.6 and -22.0 before), and worse at K = 16 (-40.8
+//! dBc): the buffer's own slewing after the edge moves the target the model reads
+//! (DEVELOPERS.md, "Known gaps"); with two reversing parts (both op-amps leave their range)
 //! the loop is chaotic and the figure meaningless. A Sallen-Key low-pass with a reversing part driven below its
 //! range (the part's output kicks V+ back through the first capacitor) chatters between
 //! the edges, a relaxation the model makes, not an aliasing figure.

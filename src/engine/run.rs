@@ -1296,7 +1296,10 @@ fn rev_step(
 #[inline]
 fn visible(sp: &StagePlan, st: &StageState, ev: &SlewStep, r: Stepped) -> Stepped {
     if st.rv.ofut > 0 {
-        let (sw, _) = Swing::pair(sp.shaper.lo, sp.shaper.hi, sp.state_lo, sp.state_hi);
+        let sw = Swing {
+            lo: sp.shaper.lo,
+            hi: sp.shaper.hi,
+        };
         ev.visible(&r, sw)
     } else {
         r
@@ -1840,9 +1843,9 @@ pub(crate) fn cheap_inside(
     let (p1, q1) = min_max(&head[3..]);
     let (p2, q2) = min_max(&x[H..b - 3]);
     let (pk_lo, pk_hi) = (p1.min(p2), q1.max(q2));
-    let (e1, e2) = (head[2], x[b - 3]);
-    let mn = pk_lo.min(e1.min(e2));
-    let mx = pk_hi.max(e1.max(e2));
+    let (c1, c2) = (head[2], x[b - 3]);
+    let mn = pk_lo.min(c1.min(c2));
+    let mx = pk_hi.max(c1.max(c2));
     let reach = super::shaper::REACH7_PER_E * emax;
     (emax.is_finite() && mn - reach > lo && mx + reach < hi).then_some((pk_lo, pk_hi))
 }
