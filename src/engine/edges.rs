@@ -732,7 +732,7 @@ pub fn dip_roots(m: [f64; 3]) -> Option<(f64, f64)> {
     }
     let a1 = 0.5 * (m0 - m2);
     let a2 = 0.5 * (m0 - 2.0 * m1 + m2);
-    if !(a2 > 0.0) {
+    if a2.is_nan() || a2 <= 0.0 {
         return None;
     }
     let um = -a1 / (2.0 * a2);
