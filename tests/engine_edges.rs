@@ -428,9 +428,11 @@ fn reversal_edges_in_a_multi_op_amp_loop() {
 // samples fall in it) threw the output toward the other rail for that moment. The step now
 // finds the dip on the margin's quadratic through three samples (`engine::edges::
 // dip_roots`) and takes the reversal and the return within the step
-// (`SlewStep::dip`). The estimate (the difference method: the patch against itself
-// stepping 4 times finer) read -48.2 dB at K = 4 before, -60.5 dB now (-27.7 before the
-// returns' hidden corner was dropped).
+// (`SlewStep::dip`); a return whose reversed ramp starts from a state still past the rail
+// has the output's corner where that ramp leaves the rail (it had none: each such pulse's
+// correction was a corner short). The estimate (the difference method: the patch against
+// itself stepping 4 times finer) read -48.2 dB at K = 4 before the dips, -60.5 dB with
+// them, -79.7 dB now (-27.7 before the returns' hidden corner was dropped).
 #[test]
 fn a_dip_shorter_than_a_step_is_not_missed() {
     let text = std::fs::read_to_string("patches/net-averaging-summer.toml").expect("patch");
@@ -441,5 +443,5 @@ fn a_dip_shorter_than_a_step_is_not_missed() {
     ];
     let k4 = alias_dbc(&text, 4, &sag);
     println!("averaging summer, sag: K 4 {k4:.1} dB");
-    assert!(k4 < -58.0, "{k4}");
+    assert!(k4 < -75.0, "{k4}");
 }

@@ -951,9 +951,12 @@ impl SlewStep {
             (v0, 0.0)
         } else {
             let r = self.ramp(f64::from(mode), v0);
-            Self::swing_corner(&mut out, v0, 0.0, r, sw);
-            if out.n > 0 && out.corners[0].u > u1 {
-                out.n = 0;
+            // (from a state past a rail: where the ramp brings it inside the swing, then
+            // where it reaches the other end; those up to u1)
+            let mut pre = Stepped::default();
+            Self::ramp_corners(&mut pre, v0, 0.0, r, sw);
+            for c in pre.corners[..pre.n].iter().filter(|c| c.u <= u1) {
+                out.push(c.u, c.d, c.c);
             }
             let v1 = (v0 + r * u1).clamp(hold.lo, hold.hi);
             (v1, if inside(v1) { r } else { 0.0 })
@@ -1122,6 +1125,29 @@ mod tests {
         assert_eq!(out.n, 3, "{:?}", &out.corners[..out.n]);
         corner_at(&out.corners[0], x1, r, 1e-9);
         corner_at(&out.corners[1], ub, rd - r, 1e-9);
+        corner_at(&out.corners[2], x3, -rd, 1e-9);
+    }
+
+    // A return whose reversed ramp starts from a state past the lower rail (the step after
+    // the one that entered the reversal, its ramp not yet out of the hold): the output
+    // leaves the rail where the ramp crosses the swing's lower end, turns at `u1`, and
+    // stops at the lower rail again (line crossings). Without the first corner the pulse's
+    // correction was short of one corner (the averaging summer's `sag` pulses).
+    #[test]
+    fn return_from_past_a_rail_has_the_outputs_corners() {
+        let s = step_of([-3.0; 5]);
+        let sw = Swing { lo: -0.2, hi: 0.2 };
+        let hold = Swing { lo: -0.3, hi: 0.3 };
+        let (v0, u1) = (-0.25, 0.3);
+        let out = s.leave_reversal(v0, 1, u1, sw, hold);
+        let r = s.ramp(1.0, v0);
+        let x1 = (sw.lo - v0) / r;
+        let v1 = v0 + r * u1;
+        let rd = s.ramp(-1.0, v1);
+        let x3 = u1 + (sw.lo - v1) / rd;
+        assert_eq!(out.n, 3, "{:?}", &out.corners[..out.n]);
+        corner_at(&out.corners[0], x1, r, 1e-9);
+        corner_at(&out.corners[1], u1, rd - r, 1e-9);
         corner_at(&out.corners[2], x3, -rd, 1e-9);
     }
 

@@ -215,8 +215,11 @@
 //! taken within the step ([`edges::SlewStep::dip`]): the reversal from the first root, the
 //! return from the second, as when the crossings fall in different steps. Without it such
 //! a dip is not seen at all, while a finer step (a sample in the dip) throws the output's
-//! pulse: the passive-averaging summer's `sag` variant read -48.2 dB at K = 4 (its estimate
-//! against the same patch stepping 4 times finer), -60.5 dB with it.
+//! pulse. A return whose reversed ramp starts from a state still past the rail (a reversal
+//! entered late in the step before) has the output's corner where that ramp leaves the
+//! rail. The passive-averaging summer's `sag` variant read -48.2 dB at K = 4 (its estimate
+//! against the same patch stepping 4 times finer), -60.5 dB with the dips, -79.7 dB with
+//! that corner too.
 //!
 //! Multi-op-amp groups (circuit engine, `circuit::step::full_step`): the generic nonlinear
 //! step takes the same stiff slew model for each op-amp whose loop is stiff, the target's
