@@ -916,7 +916,7 @@ pub(crate) fn full_step(
             // in (the steps after it read their target from it)
             if on != st.rv_on[j] && st.edge_rev[j] && st.hist_n >= 4 {
                 let h = &st.hist[j];
-                p = 4.0 * (h[3].0 + h[1].0) - 6.0 * h[2].0 - h[0].0;
+                p = cubic_next([h[0].0, h[1].0, h[2].0, h[3].0]);
             }
             st.rv_on[j] = on;
             st.rv_vp[j] = [st.rv_vp[j][1], vp];
@@ -962,6 +962,13 @@ pub(crate) fn full_step(
         }
     }
     Ok(())
+}
+
+/// The next sample of the cubic through four equally spaced ones (oldest first): the
+/// stand-in for a reversal edge's target (the fourth difference set to zero).
+#[inline]
+fn cubic_next(p: [f64; 4]) -> f64 {
+    4.0 * (p[3] + p[1]) - 6.0 * p[2] - p[0]
 }
 
 /// The common-mode range of a part whose phase reverses outside it.
@@ -1073,7 +1080,7 @@ fn sharp_steps(
                 // not the target: the cubic through the last four samples stands in.
                 let mut evx = ev;
                 if st.hist_n >= 4 {
-                    evx.p[4] = 4.0 * (p[3] + p[1]) - 6.0 * p[2] - p[0];
+                    evx.p[4] = cubic_next([p[0], p[1], p[2], p[3]]);
                 }
                 reversal_step(
                     &evx,
