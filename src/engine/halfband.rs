@@ -156,14 +156,19 @@ impl DownStage {
         // the tap at distance d = 2i + 1 reads even[j + (m -/+ d) / 2].
         let m = self.m;
         let half = input.len() / 2;
-        for (r, pair) in input.chunks_exact(2).enumerate() {
-            self.even[m + r] = gain * pair[0];
-            self.odd[m + r] = gain * pair[1];
+        for ((e, o), pair) in self.even[m..m + half]
+            .iter_mut()
+            .zip(&mut self.odd[m..m + half])
+            .zip(input.chunks_exact(2))
+        {
+            *e = gain * pair[0];
+            *o = gain * pair[1];
         }
         let c0 = (m - 1) / 2;
         let (even, odd) = (&self.even, &self.odd);
-        // Eight outputs at a time, accumulated in registers over all taps.
-        const W: usize = 8;
+        // Sixteen outputs at a time, accumulated in registers over all taps (four
+        // vectors: the adds of one tap overlap those of the next).
+        const W: usize = 16;
         let mut j = 0;
         while j + W <= half {
             let mut acc = [0.0; W];

@@ -106,6 +106,13 @@ impl KneeAa {
     /// `R(s)`: the antiderivative of the currents' part; `None` outside the table.
     #[inline(always)]
     pub fn big_r(&self, tab: &DiodeTable, s: f64) -> Option<f64> {
+        self.big_r_with::<false>(tab, s)
+    }
+
+    /// [`KneeAa::big_r`], its quartic with fused multiply-adds when `F` (only where the
+    /// code is compiled for a CPU that has them: [`KneeAa::apply`]'s AVX2 copy).
+    #[inline(always)]
+    fn big_r_with<const F: bool>(&self, tab: &DiodeTable, s: f64) -> Option<f64> {
         let xf = (s - tab.s0) * tab.inv_hf;
         if !(xf >= 0.0 && xf < tab.slot.len() as f64) {
             return None;
@@ -115,7 +122,14 @@ impl KneeAa {
         let j = tab.slot[i] as usize;
         let a: &[f64; RSTRIDE] = self.rtab[j * RSTRIDE..][..RSTRIDE].try_into().ok()?;
         let t = ((s - a[0]) * a[1]).clamp(0.0, 1.0);
-        Some(a[2] + t * (a[3] + t * (a[4] + t * (a[5] + t * a[6]))))
+        Some(if F {
+            t.mul_add(
+                t.mul_add(t.mul_add(t.mul_add(a[6], a[5]), a[4]), a[3]),
+                a[2],
+            )
+        } else {
+            a[2] + t * (a[3] + t * (a[4] + t * (a[5] + t * a[6])))
+        })
     }
 
     /// `R(s)` from the table's own antiderivatives ([`DiodeTable::integral`]): the plain
@@ -150,6 +164,43 @@ impl KneeAa {
         out: &mut [f64],
         scratch: &mut [f64],
     ) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::arch::is_x86_feature_detected!("avx2")
+                && std::arch::is_x86_feature_detected!("fma")
+            {
+                // SAFETY: the CPU supports AVX2 and FMA (checked just above).
+                unsafe { self.apply_fma(tab, taps, pending, out, scratch) };
+                return;
+            }
+        }
+        self.apply_with::<false>(tab, taps, pending, out, scratch);
+    }
+
+    /// [`KneeAa::apply`] compiled for AVX2 and FMA.
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2,fma")]
+    unsafe fn apply_fma(
+        &self,
+        tab: &DiodeTable,
+        taps: &[f64],
+        pending: &mut [f64; 2],
+        out: &mut [f64],
+        scratch: &mut [f64],
+    ) {
+        self.apply_with::<true>(tab, taps, pending, out, scratch);
+    }
+
+    /// [`KneeAa::apply`] (`F`: fused multiply-adds in `R`'s quartic).
+    #[inline(always)]
+    fn apply_with<const F: bool>(
+        &self,
+        tab: &DiodeTable,
+        taps: &[f64],
+        pending: &mut [f64; 2],
+        out: &mut [f64],
+        scratch: &mut [f64],
+    ) {
         let b = out.len();
         debug_assert_eq!(taps.len(), REC * (b + HIST));
         if !taps.iter().skip(1).step_by(REC).any(|&f| f == tap::ON) {
@@ -163,7 +214,7 @@ impl KneeAa {
             *m = (-s(k) + 9.0 * s(k + 1) + 9.0 * s(k + 2) - s(k + 3)) / 16.0;
         }
         for (r, &m) in big.iter_mut().zip(mid.iter()) {
-            *r = self.big_r(tab, m).unwrap_or(f64::NAN);
+            *r = self.big_r_with::<F>(tab, m).unwrap_or(f64::NAN);
         }
         // sample n (from -2) reads the records n - 2 ..= n + 2: i = n + 2 ..= n + 6 from the
         // start of `taps`
