@@ -3,6 +3,17 @@
 //! a clean mix and a mix that clips, each with circuit noise off and on. Only the processing is timed (compile and allocation
 //! happen before the clock starts). Run with `cargo bench --bench engine`.
 
+/// A line on standard output; a closed pipe (the output cut short by `head`) ends the bench
+/// quietly instead of a panic.
+macro_rules! out {
+    ($($t:tt)*) => {{
+        use std::io::Write as _;
+        if writeln!(std::io::stdout(), $($t)*).is_err() {
+            std::process::exit(0);
+        }
+    }};
+}
+
 use railsong::engine::{compile, Engine};
 use railsong::model::*;
 use railsong::parts::builtin;
@@ -149,7 +160,7 @@ fn measure_patch(label: &str, p: &Patch, aa: bool, seconds: f64) {
     }
     let (fast, full) = e.path_counts();
     let sps = frames as f64 / best;
-    println!(
+    out!(
         "{label:18} {frames} frames in {best:.4} s wall: {sps:.3e} samples/s, {:.0}x real time \
          at 48 kHz (stage blocks: {fast} fast, {full} full; clip {:.3} s)",
         sps / p.rate,
@@ -157,7 +168,7 @@ fn measure_patch(label: &str, p: &Patch, aa: bool, seconds: f64) {
     );
     if best_cpu.is_finite() {
         let cps = frames as f64 / best_cpu;
-        println!(
+        out!(
             "{label:18} by CPU time {best_cpu:.4} s: {cps:.3e} samples/s, {:.0}x real time",
             cps / p.rate
         );
@@ -166,7 +177,7 @@ fn measure_patch(label: &str, p: &Patch, aa: bool, seconds: f64) {
 }
 
 fn main() {
-    println!("four-input summer + restoring inverter, jfet-general, K = 4, 48 kHz, one core");
+    out!("four-input summer + restoring inverter, jfet-general, K = 4, 48 kHz, one core");
     // RAILSONG_BENCH=clean or =clipping runs one case only (for profiling).
     let only = std::env::var("RAILSONG_BENCH").unwrap_or_default();
     if only.is_empty() || only == "clean" {

@@ -8,6 +8,17 @@
 //! Each case also prints the median of the same runs in the thread's CPU time, which a
 //! shared machine's load inflates less than wall time.
 
+/// A line on standard output; a closed pipe (the output cut short by `head`) ends the bench
+/// quietly instead of a panic.
+macro_rules! out {
+    ($($t:tt)*) => {{
+        use std::io::Write as _;
+        if writeln!(std::io::stdout(), $($t)*).is_err() {
+            std::process::exit(0);
+        }
+    }};
+}
+
 use railsong::engine::{compile, Engine};
 use std::time::Instant;
 
@@ -109,7 +120,7 @@ fn main() {
         times.sort_by(f64::total_cmp);
         cpu.sort_by(f64::total_cmp);
         let med = times[2];
-        println!(
+        out!(
             "{name}: {:.0} x real time (median of 5, {:.3} s for {} s of audio; min {:.0} x, max {:.0} x)",
             p.length / med,
             med,
@@ -117,15 +128,16 @@ fn main() {
             p.length / times[4],
             p.length / times[0]
         );
-        println!(
+        out!(
             "  CPU time: {:.0} x real time (median of the same 5, {:.3} s)",
             p.length / cpu[2],
             cpu[2]
         );
         if counts.0 + counts.1 > 0 {
-            println!(
+            out!(
                 "  network steps: {} linear, {} nonlinear",
-                counts.0, counts.1
+                counts.0,
+                counts.1
             );
         }
     }

@@ -3,6 +3,17 @@
 //!
 //! `cargo bench --bench study`
 
+/// A line on standard output; a closed pipe (the output cut short by `head`) ends the bench
+/// quietly instead of a panic.
+macro_rules! out {
+    ($($t:tt)*) => {{
+        use std::io::Write as _;
+        if writeln!(std::io::stdout(), $($t)*).is_err() {
+            std::process::exit(0);
+        }
+    }};
+}
+
 use std::path::Path;
 use std::time::Instant;
 
@@ -54,7 +65,7 @@ fn main() {
         .iter()
         .filter(|p| p.measurement.outputs["clean"].figures.thd_percent.is_some())
         .count();
-    println!(
+    out!(
         "sweep: 200 points x 1 s at 48 kHz x4, {threads} thread(s): {dt:.2} s wall ({:.1} ms per point), THD at {with_thd} points",
         1e3 * dt / 200.0
     );
@@ -77,7 +88,7 @@ fn main() {
     )
     .expect("tolerance");
     let dt = t.elapsed().as_secs_f64();
-    println!(
+    out!(
         "tolerance: 1000 runs x 1 s, {threads} thread(s): {dt:.2} s wall ({:.1} ms per run); gain spread {:?}",
         1e3 * dt / 1000.0,
         rep.outputs[0].gain_db
