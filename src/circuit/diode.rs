@@ -1247,7 +1247,7 @@ pub fn seg_eval(sg: &[f64], nj: usize, t: f64, rho: &[f64; MAX_J]) -> [f64; MAX_
 /// `a b + c`, fused when `F` (only in code compiled for a CPU that has the instruction:
 /// without it the library's software fused multiply-add would run).
 #[inline(always)]
-fn madd<const F: bool>(a: f64, b: f64, c: f64) -> f64 {
+pub(crate) fn madd<const F: bool>(a: f64, b: f64, c: f64) -> f64 {
     if F {
         a.mul_add(b, c)
     } else {

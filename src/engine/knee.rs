@@ -28,7 +28,7 @@
 //! `n`; the network output is [`crate::engine::shaper::LOOKAHEAD`] samples late, so they
 //! are there.
 
-use crate::circuit::diode::{seg_line, DiodeTable, MAX_J, SEG_HEAD};
+use crate::circuit::diode::{madd, seg_line, DiodeTable, MAX_J, SEG_HEAD};
 
 /// Records before the block the correction reads (`n - 2` for the block's first pending
 /// sample, `n = -2`).
@@ -122,14 +122,8 @@ impl KneeAa {
         let j = tab.slot[i] as usize;
         let a: &[f64; RSTRIDE] = self.rtab[j * RSTRIDE..][..RSTRIDE].try_into().ok()?;
         let t = ((s - a[0]) * a[1]).clamp(0.0, 1.0);
-        Some(if F {
-            t.mul_add(
-                t.mul_add(t.mul_add(t.mul_add(a[6], a[5]), a[4]), a[3]),
-                a[2],
-            )
-        } else {
-            a[2] + t * (a[3] + t * (a[4] + t * (a[5] + t * a[6])))
-        })
+        let q = madd::<F>(t, madd::<F>(t, a[6], a[5]), a[4]);
+        Some(madd::<F>(t, madd::<F>(t, q, a[3]), a[2]))
     }
 
     /// `R(s)` from the table's own antiderivatives ([`DiodeTable::integral`]): the plain
