@@ -906,6 +906,13 @@ impl DiodeStep {
         }
         hist.nc = 0;
         let (mut nlin, mut nnl) = (0u64, 0u64);
+        // the knee correction's record, one array of `REC` values per sample
+        let mut recs = tap.as_deref_mut().map(|tp| {
+            tp.rec[..crate::engine::knee::REC * n]
+                .as_chunks_mut::<{ crate::engine::knee::REC }>()
+                .0
+                .iter_mut()
+        });
         for t in 0..n {
             let x = uc[NZ];
             // this sample's coordinate predicted from the currents two and three samples
@@ -1005,9 +1012,8 @@ impl DiodeStep {
                     }
                 }
             }
-            if let Some(tp) = tap.as_deref_mut() {
-                let rec = &mut tp.rec[crate::engine::knee::REC * t..][..crate::engine::knee::REC];
-                rec.copy_from_slice(&[proj[0], kind, rline]);
+            if let Some(rec) = recs.as_mut().and_then(|r| r.next()) {
+                *rec = [proj[0], kind, rline];
             }
             uc[NC..].copy_from_slice(&cc);
             cppp = cpp;
