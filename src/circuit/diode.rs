@@ -798,7 +798,7 @@ impl DiodeStep {
             counts,
             slots,
             hist,
-            mut tap,
+            tap,
         } = io;
         let nw = a.wr.len();
         assert!(NC == NZ + 2 && W == NC + NJ && NJ <= MAX_J && self.nj == NJ && self.ncol == NC);
@@ -907,7 +907,7 @@ impl DiodeStep {
         hist.nc = 0;
         let (mut nlin, mut nnl) = (0u64, 0u64);
         // the knee correction's record, one array of `REC` values per sample
-        let mut recs = tap.as_deref_mut().map(|tp| {
+        let mut recs = tap.map(|tp| {
             tp.rec[..crate::engine::knee::REC * n]
                 .as_chunks_mut::<{ crate::engine::knee::REC }>()
                 .0
