@@ -3,16 +3,9 @@
 //! a clean mix and a mix that clips, each with circuit noise off and on. Only the processing is timed (compile and allocation
 //! happen before the clock starts). Run with `cargo bench --bench engine`.
 
-/// A line on standard output; a closed pipe (the output cut short by `head`) ends the bench
-/// quietly instead of a panic.
-macro_rules! out {
-    ($($t:tt)*) => {{
-        use std::io::Write as _;
-        if writeln!(std::io::stdout(), $($t)*).is_err() {
-            std::process::exit(0);
-        }
-    }};
-}
+#[macro_use]
+#[path = "common/out.rs"]
+mod out;
 
 use railsong::engine::{compile, Engine};
 use railsong::model::*;

@@ -8,16 +8,9 @@
 //! Each case also prints the median of the same runs in the thread's CPU time, which a
 //! shared machine's load inflates less than wall time.
 
-/// A line on standard output; a closed pipe (the output cut short by `head`) ends the bench
-/// quietly instead of a panic.
-macro_rules! out {
-    ($($t:tt)*) => {{
-        use std::io::Write as _;
-        if writeln!(std::io::stdout(), $($t)*).is_err() {
-            std::process::exit(0);
-        }
-    }};
-}
+#[macro_use]
+#[path = "common/out.rs"]
+mod out;
 
 use railsong::engine::{compile, Engine};
 use std::time::Instant;
