@@ -71,6 +71,13 @@ amps = [{{ part = \"jfet-general\", plus = \"in\", minus = \"y\", out = \"y\" }}
 parts = [{{ r = \"4k7\", ends = [\"y\", \"x\"] }}, {{ diode = \"silicon-signal\", ends = [\"x\", \"gnd\"] }}, {{ diode = \"silicon-signal\", ends = [\"gnd\", \"x\"] }}]\nout = \"x\"\n\
 [outputs.out]\nfrom = \"clip\"\n"
     );
+    // gain -10 with two diodes across its 100k (in the op-amp's loop), 20 dB past the knees
+    let feedback = format!(
+        "{HEAD}[sources.in]\nwave = \"sine\"\nfreq = \"997 Hz\"\namp = \"1 V\"\n[stages.clip]\ntype = \"network\"\n\
+amps = [{{ part = \"jfet-general\", plus = \"gnd\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ r = \"10k\", ends = [\"in\", \"m\"] }}, {{ r = \"100k\", ends = [\"m\", \"y\"] }}, {{ diode = \"silicon-signal\", ends = [\"m\", \"y\"] }}, {{ diode = \"silicon-signal\", ends = [\"y\", \"m\"] }}]\nout = \"y\"\n\
+[outputs.out]\nfrom = \"clip\"\n"
+    );
     let svf_noise = svf.replace("noise = false", "noise = true");
     vec![
         ("summer + inverter, shorthand", shorthand),
@@ -79,6 +86,11 @@ parts = [{{ r = \"4k7\", ends = [\"y\", \"x\"] }}, {{ diode = \"silicon-signal\"
         ("state-variable filter, clean, circuit noise on", svf_noise),
         ("diode clipper, driven hard", clipper.clone()),
         ("diode clipper, driven hard, corrections off", clipper),
+        ("feedback-diode clipper, driven hard", feedback.clone()),
+        (
+            "feedback-diode clipper, driven hard, corrections off",
+            feedback,
+        ),
     ]
 }
 

@@ -235,14 +235,15 @@ impl DiodeStep {
             }
             r
         };
-        // J' = 2 gc (Va - Vb) - J
+        // J' = 2 gc (Va - Vb) - J (trapezoidal), gc (Va - Vb) (backward Euler)
         for (q, &(ei, gc)) in gp.caps.iter().enumerate() {
             let e = &c.elems[ei];
             let (ra, rb) = (node_row(e.a), node_row(e.b));
+            let (ka, kb) = gp.cap_update(q);
             for j in 0..w {
-                rows[q * w + j] = 2.0 * gc * (ra[j] - rb[j]);
+                rows[q * w + j] = ka * gc * (ra[j] - rb[j]);
             }
-            rows[q * w + q] -= 1.0;
+            rows[q * w + q] -= kb;
         }
         for (i, &node) in gp.nodes.iter().enumerate() {
             rows[(nc + i) * w..(nc + i + 1) * w].copy_from_slice(&node_row(node));

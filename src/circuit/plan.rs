@@ -83,8 +83,16 @@ pub struct GroupPlan {
     pub amps: Vec<AmpCoef>,
     /// Elements of the group's blocks.
     pub elems: Vec<usize>,
-    /// Capacitors: (element, companion conductance `2C/h`); `z[i]` is the history `J`.
+    /// Capacitors: (element, companion conductance: `2C/h` under the trapezoidal rule,
+    /// `C/h` under backward Euler); `z[i]` is the history `J`.
     pub caps: Vec<(usize, f64)>,
+    /// Per capacitor: stepped by backward Euler (`J' = gc (Va - Vb)`), else by the
+    /// trapezoidal rule (`J' = 2 gc (Va - Vb) - J`). A junction's own capacitance takes
+    /// backward Euler: with the conducting junction its mode is far faster than a step,
+    /// and the trapezoidal rule would leave it ringing at half the step rate (its pole
+    /// near -1) at every knee; the capacitors of the circuit keep the trapezoidal rule
+    /// (their phase is exact to the warping of the frequency axis).
+    pub cap_be: Vec<bool>,
     /// Diode junctions (elements).
     pub junctions: Vec<usize>,
     /// Non-fixed nodes read as known values (inputs, other groups' nodes).
@@ -246,6 +254,17 @@ pub fn add_noise(plan: &mut CircuitPlan, four_kt: f64, amps: &[AmpNoise]) {
 }
 
 impl GroupPlan {
+    /// Capacitor `q`'s history update `J' = a gc (Va - Vb) - b J` as `(a, b)`: `(2, 1)`
+    /// under the trapezoidal rule, `(1, 0)` under backward Euler ([`GroupPlan::cap_be`]).
+    #[inline]
+    pub fn cap_update(&self, q: usize) -> (f64, f64) {
+        if self.cap_be[q] {
+            (1.0, 0.0)
+        } else {
+            (2.0, 1.0)
+        }
+    }
+
     /// Number of unknowns.
     pub fn ny(&self) -> usize {
         self.nodes.len() + self.amps.len()
@@ -451,6 +470,7 @@ pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
             col[n] = Some(i);
         }
         let mut caps = Vec::new();
+        let mut cap_be = Vec::new();
         let mut junctions = Vec::new();
         let mut known = Vec::new();
         let note_known = |n: usize, known: &mut Vec<usize>| {
@@ -464,7 +484,14 @@ pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
         for &ei in &g.elems {
             let e = &c.elems[ei];
             match e.kind {
-                ElemKind::C(cap) => caps.push((ei, 2.0 * cap / h)),
+                ElemKind::C(cap) => {
+                    let across = c.elems.iter().any(|d| {
+                        matches!(d.kind, ElemKind::Junction { .. })
+                            && ((d.a, d.b) == (e.a, e.b) || (d.a, d.b) == (e.b, e.a))
+                    });
+                    caps.push((ei, if across { cap / h } else { 2.0 * cap / h }));
+                    cap_be.push(across);
+                }
                 ElemKind::Junction { .. } => junctions.push(ei),
                 ElemKind::R(_) => {}
             }
@@ -493,6 +520,7 @@ pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
                 .collect(),
             elems: g.elems.clone(),
             caps,
+            cap_be,
             junctions,
             known,
             col,

@@ -121,8 +121,9 @@ impl SmallKernel {
         // capacitor histories
         for (q, &(ei, gc)) in gp.caps.iter().enumerate() {
             let e = &c.elems[ei];
-            let mut r = lin(2.0 * gc, &node_row(e.a), -2.0 * gc, &node_row(e.b));
-            r[q] -= 1.0;
+            let (ka, kb) = gp.cap_update(q);
+            let mut r = lin(ka * gc, &node_row(e.a), -ka * gc, &node_row(e.b));
+            r[q] -= kb;
             rows.push(r);
         }
         // op-amp states

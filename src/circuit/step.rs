@@ -108,7 +108,8 @@ pub struct GroupState {
 }
 
 impl GroupState {
-    fn new(gp: &GroupPlan, nnodes: usize) -> GroupState {
+    /// A state sized for group `gp` of a circuit of `nnodes` nodes (all zero).
+    pub(crate) fn new(gp: &GroupPlan, nnodes: usize) -> GroupState {
         let ny = gp.ny();
         let na = gp.amps.len();
         GroupState {
@@ -374,31 +375,46 @@ fn rest_group(
     vn: &mut [f64],
     st: &mut GroupState,
 ) -> Result<(), CircuitError> {
+    dc_group(c, gp, vn, st, false)
+}
+
+/// [`rest_group`], from the solution already in `st` when `warm` (its node values and
+/// junction voltages: a nearby input's, so that a loop closed through diodes stays closed
+/// on the first linearisation instead of pinning its op-amp at a rail).
+fn dc_group(
+    c: &Circuit,
+    gp: &GroupPlan,
+    vn: &mut [f64],
+    st: &mut GroupState,
+    warm: bool,
+) -> Result<(), CircuitError> {
     let ny = gp.ny();
     let nn = gp.nodes.len();
     let nc = gp.caps.len();
     let na = gp.amps.len();
-    st.y.fill(0.0);
-    for (i, &n) in gp.nodes.iter().enumerate() {
-        st.y[i] = vn[n];
-    }
-    // start every op-amp inside its linear region (at 0 V, or mid-swing when 0 V is outside
-    // it, as on a single supply), so the first linearisation closes every loop
-    for (j, ac) in gp.amps.iter().enumerate() {
-        let sh = &c.amps[ac.amp].shaper;
-        let (l, h) = (sh.lo + sh.w, sh.hi - sh.w);
-        let v = if (l..=h).contains(&0.0) {
-            0.0
-        } else {
-            0.5 * (sh.lo + sh.hi)
-        };
-        st.y[nn + j] = v;
-        if let Some(i) = gp.col[c.amps[ac.amp].out] {
-            st.y[i] = v;
+    if !warm {
+        st.y.fill(0.0);
+        for (i, &n) in gp.nodes.iter().enumerate() {
+            st.y[i] = vn[n];
         }
+        // start every op-amp inside its linear region (at 0 V, or mid-swing when 0 V is outside
+        // it, as on a single supply), so the first linearisation closes every loop
+        for (j, ac) in gp.amps.iter().enumerate() {
+            let sh = &c.amps[ac.amp].shaper;
+            let (l, h) = (sh.lo + sh.w, sh.hi - sh.w);
+            let v = if (l..=h).contains(&0.0) {
+                0.0
+            } else {
+                0.5 * (sh.lo + sh.hi)
+            };
+            st.y[nn + j] = v;
+            if let Some(i) = gp.col[c.amps[ac.amp].out] {
+                st.y[i] = v;
+            }
+        }
+        st.vj.fill(0.0);
     }
     st.pins.fill(None);
-    st.vj.fill(0.0);
     st.hist_n = 0;
     st.last_t = f64::NAN;
     st.mode.fill(0);
@@ -512,6 +528,26 @@ fn rest_group(
         st.z[nc + na + j] = vd + ac.b * v;
     }
     Ok(())
+}
+
+/// One group's DC solution for the known node values in `vn` (as the rest state takes it:
+/// capacitors open, op-amps at equilibrium or held at their swing, diodes by their Shockley
+/// law), from a cold start or, when `warm`, from the solution in `st` (a nearby input's);
+/// the group's nodes are written to `vn` and the solution kept in `st`. Returns, per op-amp
+/// of the group, its state and whether it is held at its swing. A static map of the group
+/// (`engine::loopmap`) is tabulated from these.
+pub fn static_point(
+    c: &Circuit,
+    gp: &GroupPlan,
+    vn: &mut [f64],
+    st: &mut GroupState,
+    warm: bool,
+) -> Result<Vec<(f64, bool)>, CircuitError> {
+    dc_group(c, gp, vn, st, warm)?;
+    let nn = gp.nodes.len();
+    Ok((0..gp.amps.len())
+        .map(|j| (st.y[nn + j], st.pins[j].is_some()))
+        .collect())
 }
 
 /// The linear step; false (nothing changed) when something came near a limit.
@@ -631,7 +667,8 @@ pub(crate) fn commit(c: &Circuit, gp: &GroupPlan, vn: &mut [f64], st: &mut Group
     }
     for (q, &(ei, gc)) in gp.caps.iter().enumerate() {
         let e = &c.elems[ei];
-        st.z[q] = 2.0 * gc * (vn[e.a] - vn[e.b]) - st.z[q];
+        let (ka, kb) = gp.cap_update(q);
+        st.z[q] = ka * gc * (vn[e.a] - vn[e.b]) - kb * st.z[q];
     }
     for (j, ac) in gp.amps.iter().enumerate() {
         let a = &c.amps[ac.amp];

@@ -390,6 +390,7 @@ pub mod fastmath;
 pub mod feed;
 pub mod halfband;
 pub mod knee;
+pub mod loopmap;
 pub mod network;
 pub mod noise;
 pub mod plan;

@@ -6,6 +6,7 @@ use crate::circuit::plan::CircuitPlan;
 use crate::circuit::small::{run_block, BlockIo, DriveEdges, KernelRun, SmallKernel};
 use crate::circuit::step::CircuitState;
 use crate::engine::knee::{tap as knee_tap, KneeAa, Tap, HIST as KNEE_HIST, REC as KNEE_REC};
+use crate::engine::loopmap::{LoopMapAa, Out as MapOut, HIST as MAP_HIST};
 use crate::engine::noise::{stream_seed, NoiseStream, FLICKER_MIN_RATE};
 use crate::engine::shaper::{LOOKAHEAD, WINDOW};
 
@@ -62,6 +63,9 @@ pub struct NetPlan {
     pub drive: Option<(usize, usize)>,
     /// The band-limited diode knees of a passive output in a memoryless diode group.
     pub knee: Option<KneeAa>,
+    /// The band-limited static map of the output's group when it holds op-amps and
+    /// diodes and follows one input ([`crate::engine::loopmap`]).
+    pub loopmap: Option<LoopMapAa>,
 }
 
 impl NetPlan {
@@ -113,6 +117,54 @@ impl NetPlan {
                 .enumerate()
                 .find_map(|(gi, g)| g.amps.iter().position(|ac| ac.amp == a).map(|j| (gi, j)))
         });
+        self.loopmap = self.loopmap_of_output();
+    }
+
+    /// The static map's correction of the output, when the output (or the op-amp driving
+    /// it) belongs to a group with op-amps (none without negative feedback) and diodes,
+    /// one varying input, and no capacitor but the junctions' own.
+    fn loopmap_of_output(&self) -> Option<LoopMapAa> {
+        let c = &self.circuit.circuit;
+        let (gi, gp, out) = match self.out_amp {
+            Some(_) => {
+                let (gi, j) = self.drive?;
+                (gi, &self.circuit.groups[gi], MapOut::Amp(j))
+            }
+            None => {
+                let (gi, gp) = self
+                    .circuit
+                    .groups
+                    .iter()
+                    .enumerate()
+                    .find(|(_, g)| g.col[self.out].is_some_and(|i| i < g.nodes.len()))?;
+                (gi, gp, MapOut::Node(self.out))
+            }
+        };
+        if gp.amps.is_empty()
+            || gp.junctions.is_empty()
+            || gp.known.len() != 1
+            || gp.fast.is_none()
+            || gp.amps.iter().any(|ac| ac.explicit)
+        {
+            return None;
+        }
+        // every capacitor across a junction (its capacitance)
+        let across = |ei: usize| {
+            let e = &c.elems[ei];
+            gp.junctions.iter().any(|&j| {
+                let d = &c.elems[j];
+                (d.a, d.b) == (e.a, e.b) || (d.a, d.b) == (e.b, e.a)
+            })
+        };
+        if !gp.caps.iter().all(|&(ei, _)| across(ei)) {
+            return None;
+        }
+        let span = 2.0
+            * c.amps
+                .iter()
+                .map(|a| a.shaper.lo.abs().max(a.shaper.hi.abs()))
+                .fold(1.0, f64::max);
+        LoopMapAa::build(c, gp, gi, gp.known[0], out, span, &self.rest.vn)
     }
 
     /// The knee correction of the output, when the output is a node of a diode group with
@@ -188,6 +240,10 @@ pub(crate) struct NetRun {
     pub(crate) knee_tap: Vec<f64>,
     /// The knee correction's scratch (`2 (block + 1)` values).
     pub(crate) knee_scr: Vec<f64>,
+    /// The static map's input: its last [`MAP_HIST`] samples, then the block's.
+    pub(crate) map_x: Vec<f64>,
+    /// The static map's scratch (`block + 1` values).
+    pub(crate) map_scr: Vec<f64>,
 }
 
 impl NetRun {
@@ -229,6 +285,15 @@ impl NetRun {
                     0
                 }
             ],
+            map_x: vec![
+                0.0;
+                if np.loopmap.is_some() {
+                    block + MAP_HIST
+                } else {
+                    0
+                }
+            ],
+            map_scr: vec![0.0; if np.loopmap.is_some() { block + 1 } else { 0 }],
             wbuf: vec![
                 0.0;
                 block
@@ -263,6 +328,9 @@ impl NetRun {
         // nothing recorded yet: no correction until the table's loop has run
         for r in self.knee_tap.chunks_exact_mut(KNEE_REC) {
             r.copy_from_slice(&[0.0, knee_tap::OTHER, 0.0]);
+        }
+        if let Some(lm) = &np.loopmap {
+            self.map_x.fill(np.rest.vn[lm.input]);
         }
         for k in self.kruns.iter_mut().flatten() {
             k.reset();
@@ -472,6 +540,28 @@ pub(crate) fn net_block(
         Some(_) => nnodes,
         None => np.out,
     };
+    // the static map's knees of a group with op-amps and diodes (before the clamp), taken
+    // along the input the output implies (`engine::loopmap`: the loop's own lag included)
+    if let (Some(lm), true, true) = (&np.loopmap, antialias, limit == b) {
+        let mut guess = nr.map_x[MAP_HIST - 1];
+        for t in 0..b {
+            let x = nr.slots[lm.input][t];
+            let start = if guess.is_finite() { guess } else { x };
+            guess = lm
+                .inverse(nr.slots[drive_slot][t], start)
+                .unwrap_or(f64::NAN);
+            nr.map_x[MAP_HIST + t] = guess;
+        }
+        let mut pending = [nr.xh[H - 2], nr.xh[H - 1]];
+        lm.apply(
+            &nr.map_x[..MAP_HIST + b],
+            &mut pending,
+            &mut nr.slots[drive_slot][..b],
+            &mut nr.map_scr,
+        );
+        [nr.xh[H - 2], nr.xh[H - 1]] = pending;
+        nr.map_x.copy_within(b..b + MAP_HIST, 0);
+    }
     let x = &mut nr.slots[drive_slot][..b];
     let edges = antialias && np.drive.is_some();
     let mut marked = false;

@@ -524,6 +524,7 @@ fn compile_network(
         writes: Vec::new(),
         drive: None,
         knee: None,
+        loopmap: None,
     };
     np.attach_kernels();
     Ok(np)
