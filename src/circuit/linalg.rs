@@ -5,6 +5,62 @@
 /// diagonal, U on and above), pivot rows in `perm`. Returns false when a pivot is zero or
 /// not finite (a singular system).
 pub fn lu_factor(a: &mut [f64], n: usize, perm: &mut [usize]) -> bool {
+    match n {
+        2 => lu_factor_n::<2>(a, perm),
+        3 => lu_factor_n::<3>(a, perm),
+        4 => lu_factor_n::<4>(a, perm),
+        5 => lu_factor_n::<5>(a, perm),
+        6 => lu_factor_n::<6>(a, perm),
+        7 => lu_factor_n::<7>(a, perm),
+        8 => lu_factor_n::<8>(a, perm),
+        _ => lu_factor_any(a, n, perm),
+    }
+}
+
+/// [`lu_factor`] for a size known at compile time (the loops unrolled, the bounds checked
+/// once): the same operations in the same order, so the same bits.
+#[inline(always)]
+fn lu_factor_n<const N: usize>(a: &mut [f64], perm: &mut [usize]) -> bool {
+    let a = &mut a[..N * N];
+    let perm = &mut perm[..N];
+    for (i, p) in perm.iter_mut().enumerate() {
+        *p = i;
+    }
+    for k in 0..N {
+        let mut piv = k;
+        let mut best = a[k * N + k].abs();
+        for i in k + 1..N {
+            let v = a[i * N + k].abs();
+            if v > best {
+                best = v;
+                piv = i;
+            }
+        }
+        if !(best.is_finite() && best > 0.0) {
+            return false;
+        }
+        if piv != k {
+            for j in 0..N {
+                a.swap(k * N + j, piv * N + j);
+            }
+            perm.swap(k, piv);
+        }
+        let d = a[k * N + k];
+        for i in k + 1..N {
+            let f = a[i * N + k] / d;
+            a[i * N + k] = f;
+            if f != 0.0 {
+                for j in k + 1..N {
+                    a[i * N + j] -= f * a[k * N + j];
+                }
+            }
+        }
+    }
+    true
+}
+
+/// [`lu_factor`] for any size (the plain reference of the sized copies).
+fn lu_factor_any(a: &mut [f64], n: usize, perm: &mut [usize]) -> bool {
     for (i, p) in perm.iter_mut().enumerate().take(n) {
         *p = i;
     }
@@ -44,6 +100,47 @@ pub fn lu_factor(a: &mut [f64], n: usize, perm: &mut [usize]) -> bool {
 /// Solve with a factor from [`lu_factor`]: `b` is overwritten by the solution (`tmp` is
 /// scratch of length `n`).
 pub fn lu_solve(a: &[f64], n: usize, perm: &[usize], b: &mut [f64], tmp: &mut [f64]) {
+    match n {
+        2 => lu_solve_n::<2>(a, perm, b),
+        3 => lu_solve_n::<3>(a, perm, b),
+        4 => lu_solve_n::<4>(a, perm, b),
+        5 => lu_solve_n::<5>(a, perm, b),
+        6 => lu_solve_n::<6>(a, perm, b),
+        7 => lu_solve_n::<7>(a, perm, b),
+        8 => lu_solve_n::<8>(a, perm, b),
+        _ => lu_solve_any(a, n, perm, b, tmp),
+    }
+}
+
+/// [`lu_solve`] for a size known at compile time (scratch on the stack): the same
+/// operations in the same order.
+#[inline(always)]
+fn lu_solve_n<const N: usize>(a: &[f64], perm: &[usize], b: &mut [f64]) {
+    let a = &a[..N * N];
+    let b = &mut b[..N];
+    let mut tmp = [0.0; N];
+    for i in 0..N {
+        tmp[i] = b[perm[i]];
+    }
+    for i in 0..N {
+        let mut s = tmp[i];
+        for j in 0..i {
+            s -= a[i * N + j] * tmp[j];
+        }
+        tmp[i] = s;
+    }
+    for i in (0..N).rev() {
+        let mut s = tmp[i];
+        for j in i + 1..N {
+            s -= a[i * N + j] * tmp[j];
+        }
+        tmp[i] = s / a[i * N + i];
+    }
+    b.copy_from_slice(&tmp);
+}
+
+/// [`lu_solve`] for any size (the plain reference of the sized copies).
+fn lu_solve_any(a: &[f64], n: usize, perm: &[usize], b: &mut [f64], tmp: &mut [f64]) {
     for i in 0..n {
         tmp[i] = b[perm[i]];
     }
@@ -84,6 +181,34 @@ mod tests {
         lu_solve(&a, 3, &perm, &mut b, &mut tmp);
         for (u, v) in b.iter().zip(x) {
             assert!((u - v).abs() < 1e-12);
+        }
+    }
+
+    #[test]
+    fn sized_copies_give_the_same_bits_as_the_plain_one() {
+        // pseudo-random systems of every sized copy's order, against the loops for any size
+        let mut seed = 12345u64;
+        let mut rnd = || {
+            seed = seed
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            (seed >> 11) as f64 / (1u64 << 53) as f64 - 0.5
+        };
+        for n in 2..=8 {
+            let a0: Vec<f64> = (0..n * n).map(|_| rnd()).collect();
+            let b0: Vec<f64> = (0..n).map(|_| rnd()).collect();
+            let (mut a1, mut a2) = (a0.clone(), a0.clone());
+            let (mut p1, mut p2) = (vec![0; n], vec![0; n]);
+            assert_eq!(
+                lu_factor(&mut a1, n, &mut p1),
+                lu_factor_any(&mut a2, n, &mut p2)
+            );
+            assert_eq!(a1, a2);
+            assert_eq!(p1, p2);
+            let (mut b1, mut b2, mut t) = (b0.clone(), b0.clone(), vec![0.0; n]);
+            lu_solve(&a1, n, &p1, &mut b1, &mut t);
+            lu_solve_any(&a2, n, &p2, &mut b2, &mut t);
+            assert_eq!(b1, b2);
         }
     }
 

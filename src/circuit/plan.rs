@@ -95,6 +95,8 @@ pub struct GroupPlan {
     pub cap_be: Vec<bool>,
     /// Diode junctions (elements).
     pub junctions: Vec<usize>,
+    /// The part of the group's system no step changes ([`assemble_step`]).
+    pub base: Base,
     /// Non-fixed nodes read as known values (inputs, other groups' nodes).
     pub known: Vec<usize>,
     /// Column of every circuit node in `y`, if it is an unknown here.
@@ -349,6 +351,66 @@ pub(crate) fn val(gp: &GroupPlan, vn: &[f64], y: &[f64], n: usize) -> f64 {
     }
 }
 
+/// The part of a group's system that no step changes: the resistors' and the capacitors'
+/// companion conductances in the matrix (without and with the capacitors), and the
+/// right-hand side's coefficients of nodes outside the group, as `(row, node, g)`.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct Base {
+    m_r: Vec<f64>,
+    m_rc: Vec<f64>,
+    known_r: Vec<(usize, usize, f64)>,
+    known_c: Vec<(usize, usize, f64)>,
+}
+
+impl Base {
+    /// Group `gp`'s base, stamped as [`assemble`] stamps its resistors and capacitors.
+    pub fn of(c: &Circuit, gp: &GroupPlan) -> Base {
+        let ny = gp.ny();
+        let kcl = |n: usize| gp.col[n].filter(|&i| i < gp.n_kcl);
+        let mut b = Base {
+            m_r: vec![0.0; ny * ny],
+            m_rc: vec![0.0; ny * ny],
+            known_r: Vec::new(),
+            known_c: Vec::new(),
+        };
+        let mut ci = 0;
+        for &ei in &gp.elems {
+            let e = &c.elems[ei];
+            let (g, cap) = match e.kind {
+                ElemKind::R(r) => (1.0 / r, false),
+                ElemKind::C(_) => {
+                    ci += 1;
+                    (gp.caps[ci - 1].1, true)
+                }
+                ElemKind::Junction { .. } => continue,
+            };
+            for (x, o) in [(e.a, e.b), (e.b, e.a)] {
+                if let Some(r) = kcl(x) {
+                    let ms: &mut [&mut Vec<f64>] = if cap {
+                        &mut [&mut b.m_rc]
+                    } else {
+                        &mut [&mut b.m_r, &mut b.m_rc]
+                    };
+                    for m in ms.iter_mut() {
+                        m[r * ny + r] += g;
+                        if let Some(ci) = gp.col[o] {
+                            m[r * ny + ci] -= g;
+                        }
+                    }
+                    if gp.col[o].is_none() {
+                        if cap {
+                            b.known_c.push((r, o, g));
+                        } else {
+                            b.known_r.push((r, o, g));
+                        }
+                    }
+                }
+            }
+        }
+        b
+    }
+}
+
 /// Assemble `m y = rhs` for a group.
 pub(crate) fn assemble(
     c: &Circuit,
@@ -359,7 +421,6 @@ pub(crate) fn assemble(
     rhs: &mut [f64],
 ) {
     let ny = gp.ny();
-    let nn = gp.nodes.len();
     m[..ny * ny].fill(0.0);
     rhs[..ny].fill(0.0);
     let kcl = |n: usize| gp.col[n].filter(|&i| i < gp.n_kcl);
@@ -407,6 +468,77 @@ pub(crate) fn assemble(
             }
         }
     }
+    stamp_active(c, gp, lin, vn, m, rhs);
+}
+
+/// [`assemble`] from the group's [`Base`]: the resistors' and capacitors' conductances
+/// copied instead of stamped (the same system, summed in another order, so equal to
+/// rounding), then the junctions and the op-amps as [`assemble`] stamps them.
+pub(crate) fn assemble_step(
+    c: &Circuit,
+    gp: &GroupPlan,
+    lin: &Lin,
+    vn: &[f64],
+    m: &mut [f64],
+    rhs: &mut [f64],
+) {
+    let ny = gp.ny();
+    let b = &gp.base;
+    m[..ny * ny].copy_from_slice(if lin.caps.is_some() { &b.m_rc } else { &b.m_r });
+    rhs[..ny].fill(0.0);
+    for &(r, o, g) in &b.known_r {
+        rhs[r] += g * vn[o];
+    }
+    let kcl = |n: usize| gp.col[n].filter(|&i| i < gp.n_kcl);
+    if let Some(js) = lin.caps {
+        for &(r, o, g) in &b.known_c {
+            rhs[r] += g * vn[o];
+        }
+        for (&(ei, _), &j) in gp.caps.iter().zip(js) {
+            let e = &c.elems[ei];
+            if let Some(r) = kcl(e.a) {
+                rhs[r] += j;
+            }
+            if let Some(r) = kcl(e.b) {
+                rhs[r] -= j;
+            }
+        }
+    }
+    for (&ei, &(g, ieq)) in gp.junctions.iter().zip(lin.junc) {
+        let e = &c.elems[ei];
+        let g = g + super::GMIN;
+        for (x, o) in [(e.a, e.b), (e.b, e.a)] {
+            if let Some(r) = kcl(x) {
+                m[r * ny + r] += g;
+                match gp.col[o] {
+                    Some(ci) => m[r * ny + ci] -= g,
+                    None => rhs[r] += g * vn[o],
+                }
+            }
+        }
+        if let Some(r) = kcl(e.a) {
+            rhs[r] -= ieq;
+        }
+        if let Some(r) = kcl(e.b) {
+            rhs[r] += ieq;
+        }
+    }
+    stamp_active(c, gp, lin, vn, m, rhs);
+}
+
+/// The op-amps' part of [`assemble`]: their input bias currents (with `consts`), output
+/// rows and state rows.
+fn stamp_active(
+    c: &Circuit,
+    gp: &GroupPlan,
+    lin: &Lin,
+    vn: &[f64],
+    m: &mut [f64],
+    rhs: &mut [f64],
+) {
+    let ny = gp.ny();
+    let nn = gp.nodes.len();
+    let kcl = |n: usize| gp.col[n].filter(|&i| i < gp.n_kcl);
     if lin.consts {
         for a in &c.amps {
             for pin in [a.plus, a.minus] {
@@ -526,7 +658,9 @@ pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
             col,
             fast: None,
             noise: None,
+            base: Base::default(),
         };
+        gp.base = Base::of(c, &gp);
         let ny = gp.ny();
         let na = gp.amps.len();
         let mut m = vec![0.0; ny * ny];
@@ -757,5 +891,86 @@ impl std::fmt::Display for CircuitPlan {
             }
         }
         Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::circuit::{Amp, NodeKind};
+    use crate::model::Rails;
+
+    /// [`assemble_step`] (the resistors and capacitors from the group's [`Base`]) against the
+    /// plain [`assemble`] on a feedback-diode clipper with a capacitor to ground and an input
+    /// resistor (every kind of element, known nodes on both sides): the same system to
+    /// rounding, for arbitrary linearisations, histories and op-amp rows, with and without
+    /// the capacitors.
+    #[test]
+    fn the_base_assembly_matches_the_plain_one() {
+        let mut c = Circuit::new();
+        let gnd = c.node("gnd", NodeKind::Fixed(0.0));
+        let x = c.input("x");
+        let m = c.node("m", NodeKind::Free);
+        let y = c.node("y", NodeKind::Free);
+        let part = crate::parts::profiles::builtin("jfet-general").expect("profile");
+        let rails = Rails {
+            pos: 12.0,
+            neg: -12.0,
+        };
+        c.r(x, m, 10e3, "rin");
+        c.r(m, y, 100e3, "rfb");
+        c.c(m, gnd, 100e-12, "cm");
+        let d = crate::parts::diodes::builtin("silicon-signal").expect("diode");
+        let vt = crate::parts::diodes::thermal_voltage(300.0);
+        c.diode(m, y, &d, vt, "d1");
+        c.diode(y, m, &d, vt, "d2");
+        c.amp(Amp::new("u1", &part, rails, 0.0), gnd, m, y);
+        let plan = compile(c.clone(), 1.0 / 192e3).expect("compiles");
+        let mut seen = 0;
+        for gp in &plan.groups {
+            if gp.junctions.is_empty() {
+                continue;
+            }
+            seen += 1;
+            let ny = gp.ny();
+            let vn: Vec<f64> = (0..c.nodes.len()).map(|i| 0.3 * i as f64 - 0.7).collect();
+            let junc: Vec<(f64, f64)> = (0..gp.junctions.len())
+                .map(|q| (1e-3 * (q + 1) as f64, -2e-4 * q as f64))
+                .collect();
+            let z: Vec<f64> = (0..gp.caps.len())
+                .map(|q| 1e-5 * (q as f64 - 0.5))
+                .collect();
+            let outs = vec![(0.9, 0.01); gp.amps.len()];
+            for rows in [
+                vec![AmpRow::Pin(0.4); gp.amps.len()],
+                vec![
+                    AmpRow::Step {
+                        k: 0.3,
+                        b: 0.08,
+                        r: 0.02,
+                        plus_fixed: None
+                    };
+                    gp.amps.len()
+                ],
+            ] {
+                for caps in [Some(&z[..]), None] {
+                    let lin = Lin {
+                        rows: &rows,
+                        outs: &outs,
+                        junc: &junc,
+                        caps,
+                        consts: true,
+                    };
+                    let (mut m1, mut r1) = (vec![0.0; ny * ny], vec![0.0; ny]);
+                    let (mut m2, mut r2) = (vec![1.0; ny * ny], vec![1.0; ny]);
+                    assemble(&c, gp, &lin, &vn, &mut m1, &mut r1);
+                    assemble_step(&c, gp, &lin, &vn, &mut m2, &mut r2);
+                    for (a, b) in m1.iter().zip(&m2).chain(r1.iter().zip(&r2)) {
+                        assert!((a - b).abs() <= 1e-15 * (1.0 + a.abs()), "{a} against {b}");
+                    }
+                }
+            }
+        }
+        assert!(seen > 0, "a group with junctions");
     }
 }

@@ -2,7 +2,9 @@
 //! the bounded nonlinear step.
 
 use super::linalg::{lu_factor, lu_solve};
-use super::plan::{assemble, val, AmpRow, CircuitError, CircuitPlan, GroupPlan, Lin, FAST_VD};
+use super::plan::{
+    assemble, assemble_step, val, AmpRow, CircuitError, CircuitPlan, GroupPlan, Lin, FAST_VD,
+};
 use super::{Circuit, ElemKind, NodeKind, CM_DELTA, REV_FAST_MARGIN};
 use crate::engine::edges::{corner_weights, reversal_step, SlewStep, Stepped, Swing, SPAN};
 
@@ -702,7 +704,7 @@ fn loop_factors(c: &Circuit, gp: &GroupPlan, st: &mut GroupState) -> Result<(), 
         caps: Some(&st.zj),
         consts: false,
     };
-    assemble(c, gp, &lin, &st.zvn, &mut st.sens_m, &mut st.rhs);
+    assemble_step(c, gp, &lin, &st.zvn, &mut st.sens_m, &mut st.rhs);
     if !lu_factor(&mut st.sens_m, ny, &mut st.perm) {
         return Err(CircuitError::Singular {
             what: gp.describe(c),
@@ -839,7 +841,7 @@ pub(crate) fn full_step(
                 caps: Some(&st.z[..nc]),
                 consts: true,
             };
-            assemble(c, gp, &lin, vn, &mut st.m, &mut st.rhs);
+            assemble_step(c, gp, &lin, vn, &mut st.m, &mut st.rhs);
             add_noise_rhs(gp, st);
             if !lu_factor(&mut st.m, ny, &mut st.perm) {
                 return Err(CircuitError::Singular {
