@@ -97,6 +97,9 @@ pub struct GroupPlan {
     pub junctions: Vec<usize>,
     /// The part of the group's system no step changes ([`assemble_step`]).
     pub base: Base,
+    /// Per junction: saturation current, `n Vt` and the critical voltage of the Newton
+    /// step's limit (`n Vt ln(n Vt / (sqrt 2 Is))`), computed once.
+    pub jparams: Vec<(f64, f64, f64)>,
     /// Non-fixed nodes read as known values (inputs, other groups' nodes).
     pub known: Vec<usize>,
     /// Column of every circuit node in `y`, if it is an unknown here.
@@ -659,7 +662,20 @@ pub fn compile(circuit: Circuit, h: f64) -> Result<CircuitPlan, CircuitError> {
             fast: None,
             noise: None,
             base: Base::default(),
+            jparams: Vec::new(),
         };
+        gp.jparams = gp
+            .junctions
+            .iter()
+            .map(|&ei| {
+                // (the list holds junctions only; the step's own fallback otherwise)
+                let (is, nvt) = match c.elems[ei].kind {
+                    ElemKind::Junction { is, nvt } => (is, nvt),
+                    _ => (1e-14, 0.025),
+                };
+                (is, nvt, nvt * (nvt / (std::f64::consts::SQRT_2 * is)).ln())
+            })
+            .collect();
         gp.base = Base::of(c, &gp);
         let ny = gp.ny();
         let na = gp.amps.len();
