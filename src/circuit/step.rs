@@ -55,6 +55,8 @@ pub struct GroupState {
     sens_rows: Vec<AmpRow>,
     sens_outs: Vec<(f64, f64)>,
     sens_junc: Vec<(f64, f64)>,
+    /// The junction voltages the last nonlinear step started from (the step before's).
+    vj_last: Vec<f64>,
     zvn: Vec<f64>,
     zj: Vec<f64>,
     /// This step's noise draws (see [`super::plan::GroupNoise`]; empty: no noise), set by
@@ -135,6 +137,7 @@ impl GroupState {
             sens_rows: vec![AmpRow::Pin(0.0); na],
             sens_outs: vec![(1.0, 0.0); na],
             sens_junc: vec![(0.0, 0.0); gp.junctions.len()],
+            vj_last: vec![f64::NAN; gp.junctions.len()],
             zvn: vec![0.0; nnodes],
             zj: vec![0.0; gp.caps.len()],
             w: if gp.noise.is_some() {
@@ -746,12 +749,23 @@ pub(crate) fn full_step(
         st.fs[j] = reversing(a).map_or(1.0, |cm| input_factor(cm, vn[a.plus]));
         st.prev_pin[j] = false;
     }
+    let consecutive = st.last_t.is_finite() && ((time_s - st.last_t) - h).abs() < 0.25 * h;
     for (q, &ei) in gp.junctions.iter().enumerate() {
         let e = &c.elems[ei];
-        st.vj[q] = val(gp, vn, &st.y, e.a) - val(gp, vn, &st.y, e.b);
+        let v = val(gp, vn, &st.y, e.a) - val(gp, vn, &st.y, e.b);
+        // Newton starts each junction from the line through its last two solutions (at most
+        // two n Vt from the last: an exponential is not extrapolated far)
+        let (_, nvt, _) = gp.jparams[q];
+        let d = if consecutive { v - st.vj_last[q] } else { 0.0 };
+        st.vj[q] = if d.is_finite() {
+            v + d.clamp(-2.0 * nvt, 2.0 * nvt)
+        } else {
+            v
+        };
+        st.vj_last[q] = v;
     }
     // the stiff slew model's history holds only consecutive nonlinear steps
-    if !(st.last_t.is_finite() && ((time_s - st.last_t) - h).abs() < 0.25 * h) {
+    if !consecutive {
         // after linear steps (or the rest state): tracking, reversed as the factor from
         // the previous values says (inside the range after linear steps, whose fast path
         // keeps `REV_FAST_MARGIN` from its ends)
