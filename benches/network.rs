@@ -3,7 +3,8 @@
 //! clock starts): the four-input summer plus restoring inverter as shorthand stages and as
 //! one network; a state-variable filter (three op-amps in one loop), clean and with circuit
 //! noise on; a diode clipper driven hard, with the band-limited corrections (its knees,
-//! `engine::knee`) on and off. Run with `cargo bench --bench network` (add
+//! `engine::knee`) on and off; a feedback-diode clipper (its diodes in the op-amp's loop: the
+//! generic nonlinear step, `engine::loopmap`'s correction) on and off. Run with `cargo bench --bench network` (add
 //! `-- WORD` to run only the cases whose name contains WORD, `-- =NAME` for one case).
 //! Each case also prints the median of the same runs in the thread's CPU time, which a
 //! shared machine's load inflates less than wall time.
@@ -94,6 +95,15 @@ parts = [{{ r = \"10k\", ends = [\"in\", \"m\"] }}, {{ r = \"100k\", ends = [\"m
     ]
 }
 
+/// A times-real-time figure: whole above 10, one decimal below.
+fn times_rt(x: f64) -> String {
+    if x >= 10.0 {
+        format!("{x:.0}")
+    } else {
+        format!("{x:.1}")
+    }
+}
+
 fn main() {
     // `cargo bench --bench network -- WORD` runs only the cases whose name contains WORD
     let only: Option<String> = std::env::args().skip(1).find(|a| !a.starts_with('-'));
@@ -126,16 +136,16 @@ fn main() {
         cpu.sort_by(f64::total_cmp);
         let med = times[2];
         out!(
-            "{name}: {:.0} x real time (median of 5, {:.3} s for {} s of audio; min {:.0} x, max {:.0} x)",
-            p.length / med,
+            "{name}: {} x real time (median of 5, {:.3} s for {} s of audio; min {} x, max {} x)",
+            times_rt(p.length / med),
             med,
             p.length,
-            p.length / times[4],
-            p.length / times[0]
+            times_rt(p.length / times[4]),
+            times_rt(p.length / times[0])
         );
         out!(
-            "  CPU time: {:.0} x real time (median of the same 5, {:.3} s)",
-            p.length / cpu[2],
+            "  CPU time: {} x real time (median of the same 5, {:.3} s)",
+            times_rt(p.length / cpu[2]),
             cpu[2]
         );
         if counts.0 + counts.1 > 0 {
