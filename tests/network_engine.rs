@@ -416,6 +416,55 @@ out = \"x\"\n[outputs.out]\nfrom = \"clip\"\n",
     }
 }
 
+// Feedback-diode clipper (an inverting stage, ideal part, with two junctions anti-parallel
+// across its feedback resistor: the diodes in the op-amp's loop, band-limited by
+// `engine::loopmap`): with the inverting input a virtual ground the feedback current is
+// Vin / Rin = -(y / Rf + 2 Is sinh(y / (n Vt))) (Shockley, CHECKS.md; the same independent
+// bisection per sample as above), fundamental and third harmonic within 0.2 dB.
+#[test]
+fn feedback_diode_clipper_matches_an_independent_shockley_solution() {
+    let (is, n, rin, rf, amp, f) = (1e-12, 1.5, 10e3, 100e3, 1.0, 1000.0);
+    let text = format!(
+        "{HEAD}{}[diodes.d]\nis = \"{is}\"\nn = {n}\nrs = 0\ncj = 0\n\
+[stages.clip]\ntype = \"network\"\namps = [{{ part = \"ideal\", plus = \"gnd\", minus = \"m\", out = \"y\" }}]\n\
+parts = [{{ r = \"{rin}\", ends = [\"osc\", \"m\"] }}, {{ r = \"{rf}\", ends = [\"m\", \"y\"] }}, \
+{{ diode = \"d\", ends = [\"m\", \"y\"] }}, {{ diode = \"d\", ends = [\"y\", \"m\"] }}]\n\
+out = \"y\"\n[outputs.out]\nfrom = \"clip\"\n",
+        sine("osc", f, amp)
+    );
+    let y = render(&text);
+    let vt = 1.380649e-23 * 298.15 / 1.602176634e-19;
+    let solve = |vin: f64| -> f64 {
+        // g(y) = y / Rf + 2 Is sinh(y / n Vt) + Vin / Rin rises with y
+        let (mut lo, mut hi): (f64, f64) = (-12.0, 12.0);
+        for _ in 0..200 {
+            let v = 0.5 * (lo + hi);
+            let g = v / rf + 2.0 * is * (v / (n * vt)).sinh() + vin / rin;
+            if g > 0.0 {
+                hi = v;
+            } else {
+                lo = v;
+            }
+        }
+        0.5 * (lo + hi)
+    };
+    let skip = 960;
+    let want: Vec<f64> = (skip..y[0].len())
+        .map(|k| solve(amp * (TAU * f * k as f64 / RATE).sin()))
+        .collect();
+    for h in [1.0, 3.0] {
+        let (a, b, _, _) = fit(&y[0][skip..], skip, h * f, RATE);
+        let (wa, wb, _, _) = fit(&want, skip, h * f, RATE);
+        let got = 20.0 * a.hypot(b).log10();
+        let exp = 20.0 * wa.hypot(wb).log10();
+        println!("harmonic {h}: {got:.3} dB against {exp:.3} dB");
+        assert!(
+            (got - exp).abs() < 0.2,
+            "harmonic {h}: {got} dB vs {exp} dB"
+        );
+    }
+}
+
 // Inverting Schmitt trigger, R2 from the output to the + input, R1 from the + input to
 // ground: thresholds +/- Vsat R1 / (R1 + R2) [S] (CHECKS.md), Vsat = the rails for the ideal
 // part. Switching thresholds read from a slow sine within 1 %.
