@@ -13,7 +13,8 @@
 //! power of two) lands on `K N - j M`, which `M` (odd, > 1) never divides. Every other
 //! in-band bin (20 Hz - 20 kHz, and below the decimator's pass edge) is therefore alias:
 //! folded by a nonlinear event sampled on the internal grid, or passed by the decimator.
-//! The figure is its power relative to the fundamental, for the output and for each stage's
+//! The figure is its power relative to the fundamental (or to the strongest harmonic in band
+//! where that is stronger, as at a full-wave rectifier's output), for the output and for each stage's
 //! own output, so the stage the alias comes from can be named.
 //!
 //! Outputs with another signal (a two-tone pair, a mix, noise, a file, a sweep), whose
@@ -59,7 +60,8 @@ pub const METHOD: &str = "measured on this patch, per output and per op-amp stag
     it, 20 Hz - 20 kHz, noise off. method coherent (one periodic test signal): the stages \
     re-run at the patch's own oversampling with every source at full level from t = 0 and the \
     tone moved to the nearest odd bin of a power-of-two capture after the settle time; power \
-    off the tone's harmonics re the fundamental. method difference (any other signal): the \
+    off the tone's harmonics re the fundamental (or the strongest harmonic in band, if \
+    stronger). method difference (any other signal): the \
     settle time plus up to 2^15 samples of the patch as it plays, against the same stretch with \
     the same source signals and stages stepping 4 times finer; the in-band difference, less \
     the best smooth linear filter between the two, re the in-band signal (an upper bound of \
@@ -70,7 +72,8 @@ pub const METHOD: &str = "measured on this patch, per output and per op-amp stag
 pub struct StageAlias {
     /// Stage name.
     pub stage: String,
-    /// In-band alias re the stage's fundamental, dBc (`None`: no fundamental there).
+    /// In-band alias re the stage's fundamental (or its strongest harmonic in band, if
+    /// stronger), dBc (`None`: no fundamental there).
     pub dbc: Option<f64>,
 }
 
@@ -78,10 +81,10 @@ pub struct StageAlias {
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct OutputAlias {
     /// How it was measured: `"coherent"` (a periodic test signal: power off its harmonics
-    /// re the fundamental) or `"difference"` (any other signal: the in-band difference from
+    /// re the fundamental or the strongest harmonic) or `"difference"` (any other signal: the in-band difference from
     /// a render at [`REF_RATIO`] times the oversampling, re the in-band signal).
     pub method: Option<&'static str>,
-    /// In-band alias re the fundamental (or re the in-band signal for `"difference"`), dB;
+    /// In-band alias re the fundamental or the strongest harmonic (or re the in-band signal for `"difference"`), dB;
     /// `None` when not estimated (see `note`).
     pub dbc: Option<f64>,
     /// The tone the stages were run with, Hz (the test tone moved to a coherent bin).
@@ -135,7 +138,9 @@ pub fn coherent_bin(f0: f64, rate: f64) -> Option<(usize, usize)> {
 
 /// In-band alias of a coherent capture `x` (length `N`) of a tone on bin `m`: the power of
 /// every bin in [`BAND_HZ`] (and below the decimator's pass edge) that is not a multiple of
-/// `m`, relative to bin `m`, dB, at least [`FLOOR_DBC`]. `None` when the fundamental is below a nanovolt.
+/// `m`, relative to bin `m` (or to the strongest multiple of `m` in band, where that is
+/// stronger: a rectifier's), dB, at least [`FLOOR_DBC`]. `None` when that reference is below
+/// a nanovolt.
 pub fn coherent_alias_dbc(x: &[f64], m: usize, rate: f64) -> Option<f64> {
     let n = x.len();
     if n < 4 || m == 0 || m >= n / 2 {
@@ -144,16 +149,18 @@ pub fn coherent_alias_dbc(x: &[f64], m: usize, rate: f64) -> Option<f64> {
     let mut buf: Vec<Complex<f64>> = x.iter().map(|&v| Complex::new(v, 0.0)).collect();
     FftPlanner::new().plan_fft_forward(n).process(&mut buf);
     let pow = |k: usize| buf[k].norm_sqr();
-    // a sine of peak A puts (A N / 2)^2 into its bin
-    let fund = pow(m);
-    if fund.sqrt() * 2.0 / (n as f64) < MIN_FUNDAMENTAL_V {
-        return None;
-    }
     let df = rate / n as f64;
     let lo = ((BAND_HZ.0 / df).ceil() as usize).max(1);
     let hi = ((BAND_HZ.1 / df).floor() as usize)
         .min((PASS_EDGE * n as f64).floor() as usize)
         .min(n / 2);
+    // the reference: the fundamental, or the strongest harmonic in band where that is
+    // stronger (a full-wave rectifier's output is mostly its second harmonic, and its
+    // fundamental only the halves' imbalance); a sine of peak A puts (A N / 2)^2 into its bin
+    let fund = (m..=hi.max(m)).step_by(m).map(pow).fold(0.0, f64::max);
+    if fund.sqrt() * 2.0 / (n as f64) < MIN_FUNDAMENTAL_V {
+        return None;
+    }
     let alias: f64 = (lo..=hi).filter(|k| k % m != 0).map(pow).sum();
     // a clean capture reads the floor of the arithmetic; held at FLOOR_DBC rather than -inf
     Some((10.0 * (alias / fund).log10()).max(FLOOR_DBC))

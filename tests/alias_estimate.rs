@@ -91,6 +91,34 @@ fn figure_counts_in_band_bins_off_the_harmonics() {
     assert_eq!(coherent_alias_dbc(&vec![0.0; n], m, rate), None);
 }
 
+// A full-wave rectified sine has no fundamental: its Fourier series is
+// 2/pi - (4/pi) sum cos(2 k theta) / (4 k^2 - 1) (a textbook series), so its strongest
+// component is the second harmonic, 4 / (3 pi) of the peak. The figure is taken re that
+// harmonic: the series (band-limited, every term on a multiple of M) plus an alias tone of
+// 1e-3 reads 20 log10(1e-3 / (4 / (3 pi))) = -52.55 dB, where a figure re the (absent)
+// fundamental would be none at all, or, with a trace of imbalance, far too high.
+#[test]
+fn a_rectified_tone_is_measured_against_its_strongest_harmonic() {
+    let (n, m) = (16384, 341);
+    let rate = 48_000.0;
+    let cos_bin = |k: usize, i: usize| (TAU * ((k * i) % n) as f64 / n as f64).cos();
+    let mut x: Vec<f64> = (0..n).map(|_| 2.0 / std::f64::consts::PI).collect();
+    let mut k = 1;
+    while 2 * k * m < n / 2 {
+        let a = 4.0 / std::f64::consts::PI / (4.0 * (k * k) as f64 - 1.0);
+        for (i, v) in x.iter_mut().enumerate() {
+            *v -= a * cos_bin(2 * k * m, i);
+        }
+        k += 1;
+    }
+    for (i, v) in x.iter_mut().enumerate() {
+        *v += 1e-3 * cos_bin(m + 50, i);
+    }
+    let want = 20.0 * (1e-3 / (4.0 / (3.0 * std::f64::consts::PI))).log10();
+    let d = coherent_alias_dbc(&x, m, rate).expect("a figure");
+    assert!((d - want).abs() < 0.01, "{d} against {want}");
+}
+
 // The issue's case: a reversing follower whose render holds heavy alias must read worse
 // than -60 dBc and be flagged, naming the stage; more oversampling must help. At K = 1 (the
 // band-limited reversal edges of issue 16 read about -70 dBc at the default K = 4; the

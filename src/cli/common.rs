@@ -298,7 +298,7 @@ pub(crate) fn print_alias(m: &measure::Measurement, patch: &Patch) {
             .collect();
         let how = if a.method == Some("coherent") {
             format!(
-                "dBc in band, measured on this patch (its stages re-run at full level with the tone at {}, coherent capture, power off the harmonics 20 Hz - 20 kHz re the fundamental)",
+                "dBc in band, measured on this patch (its stages re-run at full level with the tone at {}, coherent capture, power off the harmonics 20 Hz - 20 kHz re the fundamental or the strongest harmonic)",
                 fmt_eng(a.tone_hz.unwrap_or(0.0), "Hz")
             )
         } else {

@@ -150,6 +150,23 @@ fn split_cell(pt: &mut impl FnMut(f64) -> (f64, u8), a: f64, h: f64, m: usize) -
     Some(rows)
 }
 
+/// Whether the map `f = g + la x` rises (or falls, with `la`) through every sub-interval
+/// that is not out: the input a drive implies ([`LoopMapAa::inverse`]) is unique only then.
+/// A map that turns back (a full-wave rectifier's) is not corrected here.
+fn monotonic(fitted: &[Vec<Row>], la: f64) -> bool {
+    let sg = la.signum();
+    fitted
+        .iter()
+        .flatten()
+        .filter(|r| r.3 != OUT)
+        .all(|&(_, w, cf, _)| {
+            [0.0, 0.25, 0.5, 0.75, 1.0].iter().all(|&t| {
+                let df = (cf[1] + t * (2.0 * cf[2] + t * 3.0 * cf[3])) / w + la;
+                df * sg > 0.0
+            })
+        })
+}
+
 /// What one solve of the map gives: the output and the point's class.
 #[allow(clippy::too_many_arguments)]
 fn point(
@@ -301,7 +318,7 @@ impl LoopMapAa {
                 }
             }
         }
-        if !any_bent {
+        if !any_bent || !monotonic(&fitted, la) {
             return None;
         }
         let per_cell = cells.iter().map(|c| c.1).max().unwrap_or(1);
@@ -471,5 +488,50 @@ impl LoopMapAa {
                 out[i - 2] += d;
             }
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Sub-intervals of `f` on `[-1, 1]` in eight pieces, each the cubic through `f` at
+    /// `t = 0, 1/3, 2/3, 1` (as `fit_cell` fits them), with `la x` taken out.
+    fn rows(f: impl Fn(f64) -> f64, la: f64) -> Vec<Vec<Row>> {
+        (0..8)
+            .map(|k| {
+                let (s0, w) = (-1.0 + 0.25 * k as f64, 0.25);
+                let v = |t: f64| f(s0 + t * w) - la * (s0 + t * w);
+                let [v0, v1, v2, v3] = [0.0, 1.0 / 3.0, 2.0 / 3.0, 1.0].map(v);
+                let (d1, d2, d3) = (v1 - v0, v2 - 2.0 * v1 + v0, v3 - 3.0 * v2 + 3.0 * v1 - v0);
+                let cf = [
+                    v0,
+                    3.0 * (d1 - d2 / 2.0 + d3 / 3.0),
+                    9.0 * (d2 - d3) / 2.0,
+                    4.5 * d3,
+                ];
+                vec![(s0, w, cf, BENT)]
+            })
+            .collect()
+    }
+
+    // A map that turns back (|x|, a full-wave rectifier's shape) has no unique input for a
+    // drive, so it is refused; a falling map (an inverting clipper's, -10 x softened by a
+    // cube) and a rising one pass; a sub-interval out of the map is not looked at.
+    #[test]
+    fn a_map_that_turns_back_is_refused() {
+        let clip = |x: f64| -10.0 * x + 3.0 * x * x * x;
+        assert!(monotonic(&rows(clip, -10.0), -10.0));
+        assert!(monotonic(&rows(|x| 2.0 * x + x.sin(), 2.0), 2.0));
+        assert!(!monotonic(
+            &rows(|x| x * x.abs().sqrt() - 0.5 * x.abs(), 1.0),
+            1.0
+        ));
+        assert!(!monotonic(&rows(f64::abs, 1.0), 1.0));
+        let mut out = rows(f64::abs, 1.0);
+        for r in out.iter_mut().take(4) {
+            r[0].3 = OUT;
+        }
+        assert!(monotonic(&out, 1.0), "only the rising half is in the map");
     }
 }
