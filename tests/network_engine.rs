@@ -370,6 +370,19 @@ out = \"y\"\n[outputs.out]\nfrom = \"d\"\n",
     assert!((cmrr / want - 1.0).abs() < 0.1, "CMRR {cmrr} vs {want}");
 }
 
+/// The root of `g`, rising through zero in `[lo, hi]`, by bisection to the last bit.
+fn bisect(mut lo: f64, mut hi: f64, g: impl Fn(f64) -> f64) -> f64 {
+    for _ in 0..200 {
+        let v = 0.5 * (lo + hi);
+        if g(v) > 0.0 {
+            hi = v;
+        } else {
+            lo = v;
+        }
+    }
+    0.5 * (lo + hi)
+}
+
 // Diode clipper (R into an anti-parallel pair of junctions to ground): the fundamental and
 // third harmonic within 0.2 dB of an independent solution of the Shockley equation
 // Vin = R 2 Is sinh(v / (n Vt)) + v (CHECKS.md), solved here by bisection at each sample,
@@ -387,18 +400,10 @@ out = \"x\"\n[outputs.out]\nfrom = \"clip\"\n",
     );
     let y = render(&text);
     let vt = 1.380649e-23 * 298.15 / 1.602176634e-19;
-    let solve = |vin: f64| -> f64 {
-        let (mut lo, mut hi) = (-vin.abs() - 1.0, vin.abs() + 1.0);
-        for _ in 0..200 {
-            let v = 0.5 * (lo + hi);
-            let g = r * 2.0 * is * (v / (n * vt)).sinh() + v - vin;
-            if g > 0.0 {
-                hi = v;
-            } else {
-                lo = v;
-            }
-        }
-        0.5 * (lo + hi)
+    let solve = |vin: f64| {
+        bisect(-vin.abs() - 1.0, vin.abs() + 1.0, |v| {
+            r * 2.0 * is * (v / (n * vt)).sinh() + v - vin
+        })
     };
     let skip = 960;
     let want: Vec<f64> = (skip..y[0].len())
@@ -434,19 +439,11 @@ out = \"y\"\n[outputs.out]\nfrom = \"clip\"\n",
     );
     let y = render(&text);
     let vt = 1.380649e-23 * 298.15 / 1.602176634e-19;
-    let solve = |vin: f64| -> f64 {
-        // g(y) = y / Rf + 2 Is sinh(y / n Vt) + Vin / Rin rises with y
-        let (mut lo, mut hi): (f64, f64) = (-12.0, 12.0);
-        for _ in 0..200 {
-            let v = 0.5 * (lo + hi);
-            let g = v / rf + 2.0 * is * (v / (n * vt)).sinh() + vin / rin;
-            if g > 0.0 {
-                hi = v;
-            } else {
-                lo = v;
-            }
-        }
-        0.5 * (lo + hi)
+    // y / Rf + 2 Is sinh(y / n Vt) + Vin / Rin rises with y
+    let solve = |vin: f64| {
+        bisect(-12.0, 12.0, |v| {
+            v / rf + 2.0 * is * (v / (n * vt)).sinh() + vin / rin
+        })
     };
     let skip = 960;
     let want: Vec<f64> = (skip..y[0].len())

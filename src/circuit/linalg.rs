@@ -5,63 +5,26 @@
 /// diagonal, U on and above), pivot rows in `perm`. Returns false when a pivot is zero or
 /// not finite (a singular system).
 pub fn lu_factor(a: &mut [f64], n: usize, perm: &mut [usize]) -> bool {
+    // the small sizes a circuit group has, each its own copy with `n` a constant (loops
+    // unrolled, bounds checked once); the same operations in the same order, so the same bits
     match n {
-        2 => lu_factor_n::<2>(a, perm),
-        3 => lu_factor_n::<3>(a, perm),
-        4 => lu_factor_n::<4>(a, perm),
-        5 => lu_factor_n::<5>(a, perm),
-        6 => lu_factor_n::<6>(a, perm),
-        7 => lu_factor_n::<7>(a, perm),
-        8 => lu_factor_n::<8>(a, perm),
-        _ => lu_factor_any(a, n, perm),
+        2 => factor(a, 2, perm),
+        3 => factor(a, 3, perm),
+        4 => factor(a, 4, perm),
+        5 => factor(a, 5, perm),
+        6 => factor(a, 6, perm),
+        7 => factor(a, 7, perm),
+        8 => factor(a, 8, perm),
+        _ => factor(a, n, perm),
     }
 }
 
-/// [`lu_factor`] for a size known at compile time (the loops unrolled, the bounds checked
-/// once): the same operations in the same order, so the same bits.
+/// The loops of [`lu_factor`].
 #[inline(always)]
-fn lu_factor_n<const N: usize>(a: &mut [f64], perm: &mut [usize]) -> bool {
-    let a = &mut a[..N * N];
-    let perm = &mut perm[..N];
+fn factor(a: &mut [f64], n: usize, perm: &mut [usize]) -> bool {
+    let a = &mut a[..n * n];
+    let perm = &mut perm[..n];
     for (i, p) in perm.iter_mut().enumerate() {
-        *p = i;
-    }
-    for k in 0..N {
-        let mut piv = k;
-        let mut best = a[k * N + k].abs();
-        for i in k + 1..N {
-            let v = a[i * N + k].abs();
-            if v > best {
-                best = v;
-                piv = i;
-            }
-        }
-        if !(best.is_finite() && best > 0.0) {
-            return false;
-        }
-        if piv != k {
-            for j in 0..N {
-                a.swap(k * N + j, piv * N + j);
-            }
-            perm.swap(k, piv);
-        }
-        let d = a[k * N + k];
-        for i in k + 1..N {
-            let f = a[i * N + k] / d;
-            a[i * N + k] = f;
-            if f != 0.0 {
-                for j in k + 1..N {
-                    a[i * N + j] -= f * a[k * N + j];
-                }
-            }
-        }
-    }
-    true
-}
-
-/// [`lu_factor`] for any size (the plain reference of the sized copies).
-fn lu_factor_any(a: &mut [f64], n: usize, perm: &mut [usize]) -> bool {
-    for (i, p) in perm.iter_mut().enumerate().take(n) {
         *p = i;
     }
     for k in 0..n {
@@ -100,47 +63,23 @@ fn lu_factor_any(a: &mut [f64], n: usize, perm: &mut [usize]) -> bool {
 /// Solve with a factor from [`lu_factor`]: `b` is overwritten by the solution (`tmp` is
 /// scratch of length `n`).
 pub fn lu_solve(a: &[f64], n: usize, perm: &[usize], b: &mut [f64], tmp: &mut [f64]) {
+    // sized copies as for the factor
     match n {
-        2 => lu_solve_n::<2>(a, perm, b),
-        3 => lu_solve_n::<3>(a, perm, b),
-        4 => lu_solve_n::<4>(a, perm, b),
-        5 => lu_solve_n::<5>(a, perm, b),
-        6 => lu_solve_n::<6>(a, perm, b),
-        7 => lu_solve_n::<7>(a, perm, b),
-        8 => lu_solve_n::<8>(a, perm, b),
-        _ => lu_solve_any(a, n, perm, b, tmp),
+        2 => solve(a, 2, perm, b, tmp),
+        3 => solve(a, 3, perm, b, tmp),
+        4 => solve(a, 4, perm, b, tmp),
+        5 => solve(a, 5, perm, b, tmp),
+        6 => solve(a, 6, perm, b, tmp),
+        7 => solve(a, 7, perm, b, tmp),
+        8 => solve(a, 8, perm, b, tmp),
+        _ => solve(a, n, perm, b, tmp),
     }
 }
 
-/// [`lu_solve`] for a size known at compile time (scratch on the stack): the same
-/// operations in the same order.
+/// The loops of [`lu_solve`].
 #[inline(always)]
-fn lu_solve_n<const N: usize>(a: &[f64], perm: &[usize], b: &mut [f64]) {
-    let a = &a[..N * N];
-    let b = &mut b[..N];
-    let mut tmp = [0.0; N];
-    for i in 0..N {
-        tmp[i] = b[perm[i]];
-    }
-    for i in 0..N {
-        let mut s = tmp[i];
-        for j in 0..i {
-            s -= a[i * N + j] * tmp[j];
-        }
-        tmp[i] = s;
-    }
-    for i in (0..N).rev() {
-        let mut s = tmp[i];
-        for j in i + 1..N {
-            s -= a[i * N + j] * tmp[j];
-        }
-        tmp[i] = s / a[i * N + i];
-    }
-    b.copy_from_slice(&tmp);
-}
-
-/// [`lu_solve`] for any size (the plain reference of the sized copies).
-fn lu_solve_any(a: &[f64], n: usize, perm: &[usize], b: &mut [f64], tmp: &mut [f64]) {
+fn solve(a: &[f64], n: usize, perm: &[usize], b: &mut [f64], tmp: &mut [f64]) {
+    let (a, perm, b, tmp) = (&a[..n * n], &perm[..n], &mut b[..n], &mut tmp[..n]);
     for i in 0..n {
         tmp[i] = b[perm[i]];
     }
@@ -158,7 +97,7 @@ fn lu_solve_any(a: &[f64], n: usize, perm: &[usize], b: &mut [f64], tmp: &mut [f
         }
         tmp[i] = s / a[i * n + i];
     }
-    b[..n].copy_from_slice(&tmp[..n]);
+    b.copy_from_slice(tmp);
 }
 
 #[cfg(test)]
@@ -186,7 +125,8 @@ mod tests {
 
     #[test]
     fn sized_copies_give_the_same_bits_as_the_plain_one() {
-        // pseudo-random systems of every sized copy's order, against the loops for any size
+        // pseudo-random systems of every sized copy's order, against the loops with the size
+        // hidden from the compiler (`black_box`: the copy for any size)
         let mut seed = 12345u64;
         let mut rnd = || {
             seed = seed
@@ -199,15 +139,16 @@ mod tests {
             let b0: Vec<f64> = (0..n).map(|_| rnd()).collect();
             let (mut a1, mut a2) = (a0.clone(), a0.clone());
             let (mut p1, mut p2) = (vec![0; n], vec![0; n]);
+            let opaque = std::hint::black_box(n);
             assert_eq!(
                 lu_factor(&mut a1, n, &mut p1),
-                lu_factor_any(&mut a2, n, &mut p2)
+                factor(&mut a2, opaque, &mut p2)
             );
             assert_eq!(a1, a2);
             assert_eq!(p1, p2);
             let (mut b1, mut b2, mut t) = (b0.clone(), b0.clone(), vec![0.0; n]);
             lu_solve(&a1, n, &p1, &mut b1, &mut t);
-            lu_solve_any(&a2, n, &p2, &mut b2, &mut t);
+            solve(&a2, opaque, &p2, &mut b2, &mut t);
             assert_eq!(b1, b2);
         }
     }

@@ -428,15 +428,7 @@ pub(crate) fn assemble(
     rhs[..ny].fill(0.0);
     let kcl = |n: usize| gp.col[n].filter(|&i| i < gp.n_kcl);
     let stamp = |m: &mut [f64], rhs: &mut [f64], a: usize, b: usize, g: f64| {
-        for (x, o) in [(a, b), (b, a)] {
-            if let Some(r) = kcl(x) {
-                m[r * ny + r] += g;
-                match gp.col[o] {
-                    Some(ci) => m[r * ny + ci] -= g,
-                    None => rhs[r] += g * vn[o],
-                }
-            }
-        }
+        stamp_g(gp, vn, m, rhs, a, b, g)
     };
     let mut ci = 0;
     let mut ji = 0;
@@ -509,16 +501,7 @@ pub(crate) fn assemble_step(
     }
     for (&ei, &(g, ieq)) in gp.junctions.iter().zip(lin.junc) {
         let e = &c.elems[ei];
-        let g = g + super::GMIN;
-        for (x, o) in [(e.a, e.b), (e.b, e.a)] {
-            if let Some(r) = kcl(x) {
-                m[r * ny + r] += g;
-                match gp.col[o] {
-                    Some(ci) => m[r * ny + ci] -= g,
-                    None => rhs[r] += g * vn[o],
-                }
-            }
-        }
+        stamp_g(gp, vn, m, rhs, e.a, e.b, g + super::GMIN);
         if let Some(r) = kcl(e.a) {
             rhs[r] -= ieq;
         }
@@ -527,6 +510,21 @@ pub(crate) fn assemble_step(
         }
     }
     stamp_active(c, gp, lin, vn, m, rhs);
+}
+
+/// A conductance `g` between nodes `a` and `b` into the rows of the group's KCL nodes (the
+/// far node's voltage to the right-hand side when it is outside the group).
+fn stamp_g(gp: &GroupPlan, vn: &[f64], m: &mut [f64], rhs: &mut [f64], a: usize, b: usize, g: f64) {
+    let ny = gp.ny();
+    for (x, o) in [(a, b), (b, a)] {
+        if let Some(r) = gp.col[x].filter(|&i| i < gp.n_kcl) {
+            m[r * ny + r] += g;
+            match gp.col[o] {
+                Some(ci) => m[r * ny + ci] -= g,
+                None => rhs[r] += g * vn[o],
+            }
+        }
+    }
 }
 
 /// The op-amps' part of [`assemble`]: their input bias currents (with `consts`), output
