@@ -209,12 +209,17 @@ fn diode_knee_correction_keeps_the_tone_and_leaves_a_quiet_clipper_alone() {
         bin_amp(a, 150) > 0.01 * bin_amp(a, 50),
         "the tone is clipped"
     );
-    let leds = DIODE_CLIPPER.replace("silicon-signal", "led-red");
+    quiet_leds_are_untouched(DIODE_CLIPPER);
+}
+
+/// `clipper` with red LEDs for its diodes: at 0.05 V peak in (0.5 V at the LEDs) the
+/// corrections leave every sample as solved; at 0.3 V peak (3 V: clipped) they are taken.
+fn quiet_leds_are_untouched(clipper: &str) {
+    let leds = clipper.replace("silicon-signal", "led-red");
     for (level, quiet) in [("0.05 Vpk", true), ("0.3 Vpk", false)] {
         let p = load(&leds, &[amp(level)]);
         let (on, off) = (render_0s1(&p, true), render_0s1(&p, false));
         let differ = on.iter().zip(&off).filter(|(x, y)| x != y).count();
-        // 0.5 V at the LEDs: untouched; 3 V: clipped, so the correction is taken
         assert_eq!(differ == 0, quiet, "{level}: {differ} samples differ");
     }
 }
@@ -304,13 +309,7 @@ fn loop_knee_correction_keeps_the_tone_and_leaves_a_quiet_clipper_alone() {
         bin_amp(a, 150) > 0.01 * bin_amp(a, 50),
         "the tone is clipped"
     );
-    let leds = FEEDBACK_CLIPPER.replace("silicon-signal", "led-red");
-    for (level, quiet) in [("0.05 Vpk", true), ("0.3 Vpk", false)] {
-        let p = load(&leds, &[amp(level)]);
-        let (on, off) = (render_0s1(&p, true), render_0s1(&p, false));
-        let differ = on.iter().zip(&off).filter(|(x, y)| x != y).count();
-        assert_eq!(differ == 0, quiet, "{level}: {differ} samples differ");
-    }
+    quiet_leds_are_untouched(FEEDBACK_CLIPPER);
 }
 
 /// A JFET-input follower (input range ending 4 V above the negative rail, common practice
