@@ -370,6 +370,26 @@ out = \"y\"\n[outputs.out]\nfrom = \"d\"\n",
     assert!((cmrr / want - 1.0).abs() < 0.1, "CMRR {cmrr} vs {want}");
 }
 
+/// The fundamental and third harmonic of `y` (after 20 ms) within 0.2 dB of those of
+/// `solve` applied to the driving sine (`amp` peak at `f`) sample by sample.
+fn harmonics_match(y: &[f64], amp: f64, f: f64, solve: impl Fn(f64) -> f64) {
+    let skip = 960;
+    let want: Vec<f64> = (skip..y.len())
+        .map(|k| solve(amp * (TAU * f * k as f64 / RATE).sin()))
+        .collect();
+    for h in [1.0, 3.0] {
+        let (a, b, _, _) = fit(&y[skip..], skip, h * f, RATE);
+        let (wa, wb, _, _) = fit(&want, skip, h * f, RATE);
+        let got = 20.0 * a.hypot(b).log10();
+        let exp = 20.0 * wa.hypot(wb).log10();
+        println!("harmonic {h}: {got:.3} dB against {exp:.3} dB");
+        assert!(
+            (got - exp).abs() < 0.2,
+            "harmonic {h}: {got} dB vs {exp} dB"
+        );
+    }
+}
+
 /// The root of `g`, rising through zero in `[lo, hi]`, by bisection to the last bit.
 fn bisect(mut lo: f64, mut hi: f64, g: impl Fn(f64) -> f64) -> f64 {
     for _ in 0..200 {
@@ -405,20 +425,7 @@ out = \"x\"\n[outputs.out]\nfrom = \"clip\"\n",
             r * 2.0 * is * (v / (n * vt)).sinh() + v - vin
         })
     };
-    let skip = 960;
-    let want: Vec<f64> = (skip..y[0].len())
-        .map(|k| solve(amp * (TAU * f * k as f64 / RATE).sin()))
-        .collect();
-    for h in [1.0, 3.0] {
-        let (a, b, _, _) = fit(&y[0][skip..], skip, h * f, RATE);
-        let (wa, wb, _, _) = fit(&want, skip, h * f, RATE);
-        let got = 20.0 * a.hypot(b).log10();
-        let exp = 20.0 * wa.hypot(wb).log10();
-        assert!(
-            (got - exp).abs() < 0.2,
-            "harmonic {h}: {got} dB vs {exp} dB"
-        );
-    }
+    harmonics_match(&y[0], amp, f, solve);
 }
 
 // Feedback-diode clipper (an inverting stage, ideal part, with two junctions anti-parallel
@@ -445,21 +452,7 @@ out = \"y\"\n[outputs.out]\nfrom = \"clip\"\n",
             v / rf + 2.0 * is * (v / (n * vt)).sinh() + vin / rin
         })
     };
-    let skip = 960;
-    let want: Vec<f64> = (skip..y[0].len())
-        .map(|k| solve(amp * (TAU * f * k as f64 / RATE).sin()))
-        .collect();
-    for h in [1.0, 3.0] {
-        let (a, b, _, _) = fit(&y[0][skip..], skip, h * f, RATE);
-        let (wa, wb, _, _) = fit(&want, skip, h * f, RATE);
-        let got = 20.0 * a.hypot(b).log10();
-        let exp = 20.0 * wa.hypot(wb).log10();
-        println!("harmonic {h}: {got:.3} dB against {exp:.3} dB");
-        assert!(
-            (got - exp).abs() < 0.2,
-            "harmonic {h}: {got} dB vs {exp} dB"
-        );
-    }
+    harmonics_match(&y[0], amp, f, solve);
 }
 
 // Inverting Schmitt trigger, R2 from the output to the + input, R1 from the + input to
